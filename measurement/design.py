@@ -1,0 +1,352 @@
+"""The study design: which items form which construct, their roles, and the key paths.
+
+Our own JSON format (see docs/design-file.md). :func:`parse_design` validates a design
+object and returns a :class:`Design`; every error names the offending field and value.
+:func:`check_columns` validates it against a data file's columns, and
+:func:`draft_design` infers a draft from column-name stems.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .errors import DesignError
+
+ROLES = ("substantive", "marker", "method")
+MIN_ITEMS = 2
+MIN_ITEMS_OMEGA = 3
+
+
+@dataclass(frozen=True)
+class Construct:
+    name: str
+    items: tuple[str, ...]
+    reverse: tuple[str, ...] = ()
+    role: str = "substantive"
+
+
+@dataclass(frozen=True)
+class Path:
+    """One equation: ``outcome`` regressed on all its ``predictors``."""
+
+    outcome: str
+    predictors: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Design:
+    constructs: dict[str, Construct]
+    paths: tuple[Path, ...] = ()
+    scale_min: float | None = None
+    scale_max: float | None = None
+    missing_codes: tuple[float, ...] = ()
+    id_column: str | None = None
+    group_column: str | None = None
+    raw: dict = field(default_factory=dict, compare=False, repr=False)
+
+    # Constructs by role, in design order.
+    def by_role(self, role: str) -> list[Construct]:
+        return [c for c in self.constructs.values() if c.role == role]
+
+    @property
+    def substantive(self) -> list[Construct]:
+        return self.by_role("substantive")
+
+    @property
+    def marker(self) -> Construct | None:
+        m = self.by_role("marker")
+        return m[0] if m else None
+
+    @property
+    def method(self) -> Construct | None:
+        m = self.by_role("method")
+        return m[0] if m else None
+
+    @property
+    def items(self) -> list[str]:
+        """Every item of every construct, in design order."""
+        return [i for c in self.constructs.values() for i in c.items]
+
+    def construct_of(self, item: str) -> str:
+        for c in self.constructs.values():
+            if item in c.items:
+                return c.name
+        raise KeyError(item)
+
+    def pair_key(self, a: str, b: str) -> str:
+        """The contract's "A|B" key: the two names in design order."""
+        order = list(self.constructs)
+        a, b = sorted((a, b), key=order.index)
+        return f"{a}|{b}"
+
+    def to_dict(self) -> dict:
+        out: dict[str, Any] = {"constructs": {}}
+        for c in self.constructs.values():
+            entry: dict[str, Any] = {"items": list(c.items)}
+            if c.reverse:
+                entry["reverse"] = list(c.reverse)
+            if c.role != "substantive":
+                entry["role"] = c.role
+            out["constructs"][c.name] = entry
+        out["paths"] = [{"outcome": p.outcome, "predictors": list(p.predictors)} for p in self.paths]
+        if self.scale_min is not None:
+            out["response_scale"] = {"min": self.scale_min, "max": self.scale_max}
+        if self.missing_codes:
+            out["missing_codes"] = list(self.missing_codes)
+        if self.id_column:
+            out["id_column"] = self.id_column
+        if self.group_column:
+            out["group_column"] = self.group_column
+        return out
+
+
+_TOP_FIELDS = {"constructs", "paths", "response_scale", "missing_codes", "id_column", "group_column"}
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, int | float) and not isinstance(v, bool) and v == v and abs(v) != float("inf")
+
+
+def _str_list(value: Any, where: str) -> tuple[str, ...]:
+    if not isinstance(value, list):
+        raise DesignError(f"must be a list of column names, got {json.dumps(value)[:60]}", field=where)
+    out = []
+    for i, v in enumerate(value):
+        if not isinstance(v, str) or not v.strip():
+            raise DesignError(f"must be a column name (a non-empty string), got {json.dumps(v)[:60]}",
+                              field=f"{where}[{i}]")
+        out.append(v)
+    dup = {v for v in out if out.count(v) > 1}
+    if dup:
+        raise DesignError(f"lists '{sorted(dup)[0]}' more than once", field=where)
+    return tuple(out)
+
+
+def parse_design(obj: Any) -> Design:
+    """Validate a design object (parsed JSON) and return a :class:`Design`."""
+    if not isinstance(obj, Mapping):
+        raise DesignError("the design must be a JSON object with 'constructs' and 'paths'", field="(top)")
+    unknown = sorted(set(obj) - _TOP_FIELDS)
+    if unknown:
+        raise DesignError(f"unknown field '{unknown[0]}'; allowed: {', '.join(sorted(_TOP_FIELDS))}",
+                          field=unknown[0])
+    cons = obj.get("constructs")
+    if not isinstance(cons, Mapping) or not cons:
+        raise DesignError("must be an object naming at least one construct and its items", field="constructs")
+
+    constructs: dict[str, Construct] = {}
+    owner: dict[str, str] = {}
+    for name, spec in cons.items():
+        where = f"constructs.{name}"
+        if not isinstance(name, str) or not name.strip() or "|" in name:
+            raise DesignError("a construct name must be a non-empty string without '|'", field=where)
+        if not isinstance(spec, Mapping):
+            raise DesignError("must be an object with 'items'", field=where)
+        bad = sorted(set(spec) - {"items", "reverse", "role"})
+        if bad:
+            raise DesignError(f"unknown field '{bad[0]}'; allowed: items, reverse, role", field=f"{where}.{bad[0]}")
+        if "items" not in spec:
+            raise DesignError("is missing; list the construct's item columns", field=f"{where}.items")
+        items = _str_list(spec["items"], f"{where}.items")
+        if len(items) < MIN_ITEMS:
+            raise DesignError(f"construct '{name}' has {len(items)} item(s); every construct needs at least "
+                              f"{MIN_ITEMS}", field=f"{where}.items")
+        reverse = _str_list(spec.get("reverse", []), f"{where}.reverse")
+        for r in reverse:
+            if r not in items:
+                raise DesignError(f"reverse item '{r}' is not one of construct '{name}' items", field=f"{where}.reverse")
+        role = spec.get("role", "substantive")
+        if role not in ROLES:
+            raise DesignError(f"unknown role {json.dumps(role)}; use one of {', '.join(ROLES)}", field=f"{where}.role")
+        for it in items:
+            if it in owner:
+                raise DesignError(f"item '{it}' is in construct '{owner[it]}' and in '{name}'; an item belongs to one "
+                                  "construct", field=f"{where}.items")
+            owner[it] = name
+        constructs[name] = Construct(name=name, items=items, reverse=reverse, role=role)
+
+    for role in ("marker", "method"):
+        named = [c.name for c in constructs.values() if c.role == role]
+        if len(named) > 1:
+            raise DesignError(f"more than one construct has role '{role}' ({', '.join(named)}); give one",
+                              field=f"constructs.{named[1]}.role")
+    if not any(c.role == "substantive" for c in constructs.values()):
+        raise DesignError("needs at least one substantive construct", field="constructs")
+
+    paths = _parse_paths(obj.get("paths", []), constructs)
+
+    scale_min = scale_max = None
+    if obj.get("response_scale") is not None:
+        rs = obj["response_scale"]
+        if not isinstance(rs, Mapping) or set(rs) - {"min", "max"} or not {"min", "max"} <= set(rs):
+            raise DesignError("must be an object {\"min\": number, \"max\": number}", field="response_scale")
+        if not (_is_number(rs["min"]) and _is_number(rs["max"])):
+            raise DesignError(f"min and max must be numbers, got {json.dumps(rs)[:60]}", field="response_scale")
+        if rs["min"] >= rs["max"]:
+            raise DesignError(f"min ({rs['min']}) must be below max ({rs['max']})", field="response_scale")
+        scale_min, scale_max = float(rs["min"]), float(rs["max"])
+
+    codes = obj.get("missing_codes", [])
+    if not isinstance(codes, list) or not all(_is_number(c) for c in codes):
+        raise DesignError(f"must be a list of numbers, got {json.dumps(codes)[:60]}", field="missing_codes")
+
+    cols = {}
+    for key in ("id_column", "group_column"):
+        v = obj.get(key)
+        if v is not None and (not isinstance(v, str) or not v.strip()):
+            raise DesignError(f"must be a column name, got {json.dumps(v)[:60]}", field=key)
+        if v is not None and v in owner:
+            raise DesignError(f"'{v}' is also an item of construct '{owner[v]}'", field=key)
+        cols[key] = v
+    if cols["id_column"] and cols["id_column"] == cols["group_column"]:
+        raise DesignError("must differ from id_column", field="group_column")
+
+    return Design(constructs=constructs, paths=paths, scale_min=scale_min, scale_max=scale_max,
+                  missing_codes=tuple(float(c) for c in codes), id_column=cols["id_column"],
+                  group_column=cols["group_column"], raw=dict(obj))
+
+
+def _parse_paths(value: Any, constructs: Mapping[str, Construct]) -> tuple[Path, ...]:
+    if not isinstance(value, list):
+        raise DesignError("must be a list of {\"outcome\": ..., \"predictors\": [...]}", field="paths")
+    paths: list[Path] = []
+    seen: set[str] = set()
+    for i, p in enumerate(value):
+        where = f"paths[{i}]"
+        if not isinstance(p, Mapping) or set(p) - {"outcome", "predictors"} or "outcome" not in p or "predictors" not in p:
+            raise DesignError("must be an object {\"outcome\": NAME, \"predictors\": [NAME, ...]}", field=where)
+        out = p["outcome"]
+        if out not in constructs:
+            raise DesignError(f"unknown construct {json.dumps(out)} as outcome", field=f"{where}.outcome")
+        preds = _str_list(p["predictors"], f"{where}.predictors")
+        if not preds:
+            raise DesignError("needs at least one predictor", field=f"{where}.predictors")
+        for j, pr in enumerate(preds):
+            if pr not in constructs:
+                raise DesignError(f"unknown construct {json.dumps(pr)} as predictor", field=f"{where}.predictors[{j}]")
+            if pr == out:
+                raise DesignError(f"construct '{out}' cannot predict itself", field=f"{where}.predictors[{j}]")
+        for name, w in [(out, f"{where}.outcome")] + [(pr, f"{where}.predictors") for pr in preds]:
+            if constructs[name].role != "substantive":
+                raise DesignError(f"'{name}' has role '{constructs[name].role}'; paths join substantive constructs only",
+                                  field=w)
+        if out in seen:
+            raise DesignError(f"outcome '{out}' appears in two paths; list all its predictors in one", field=f"{where}.outcome")
+        seen.add(out)
+        paths.append(Path(outcome=out, predictors=preds))
+    _check_acyclic(paths)
+    return tuple(paths)
+
+
+def _check_acyclic(paths: list[Path]) -> None:
+    graph = {p.outcome: set(p.predictors) for p in paths}
+    state: dict[str, int] = {}
+
+    def visit(node: str, trail: list[str]) -> None:
+        state[node] = 1
+        for nxt in sorted(graph.get(node, ())):
+            if state.get(nxt) == 1:
+                cycle = trail[trail.index(nxt):] + [nxt] if nxt in trail else [node, nxt]
+                raise DesignError("the paths form a cycle (" + " <- ".join(cycle) + "); a construct cannot "
+                                  "predict, directly or through others, a construct it depends on", field="paths")
+            if state.get(nxt) is None:
+                visit(nxt, trail + [nxt])
+        state[node] = 2
+
+    for n in sorted(graph):
+        if state.get(n) is None:
+            visit(n, [n])
+
+
+def check_columns(design: Design, columns: Iterable[str], *, file: str | None = None) -> None:
+    """Every column the design names must be in the data."""
+    cols = set(columns)
+    for c in design.constructs.values():
+        for i, it in enumerate(c.items):
+            if it not in cols:
+                hint = _closest(it, cols)
+                raise DesignError(f"item '{it}' is not a column of the data{hint}",
+                                  field=f"constructs.{c.name}.items[{i}]", file=file)
+    for key in ("id_column", "group_column"):
+        v = getattr(design, key)
+        if v and v not in cols:
+            raise DesignError(f"'{v}' is not a column of the data{_closest(v, cols)}", field=key, file=file)
+
+
+def _closest(name: str, cols: Iterable[str]) -> str:
+    import difflib
+
+    m = difflib.get_close_matches(name, list(cols), n=1)
+    return f" (did you mean '{m[0]}'?)" if m else ""
+
+
+def load_design(path: str | Path) -> Design:
+    """Read and validate a design file."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise DesignError("design file not found", file=str(path)) from None
+    except (OSError, UnicodeDecodeError) as e:
+        raise DesignError(f"cannot read the design file ({e.__class__.__name__})", file=str(path)) from None
+    try:
+        obj = json.loads(text)
+    except json.JSONDecodeError as e:
+        raise DesignError(f"not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}", file=str(path)) from None
+    try:
+        return parse_design(obj)
+    except DesignError as e:
+        e.file = str(path)
+        raise
+
+
+_STEM = re.compile(r"^(?P<stem>[A-Za-z][A-Za-z_.\- ]*?)[_.\- ]?(?P<num>\d+)(?P<rev>_?[rR])?$")
+_ID_NAMES = {"id", "respondent", "respondent_id", "resp_id", "participant", "participant_id", "responseid", "case"}
+_GROUP_NAMES = {"team", "team_id", "group", "group_id", "unit", "department", "dept", "work_unit"}
+
+
+def draft_design(columns: Iterable[str], numeric: Iterable[str] | None = None) -> dict:
+    """Infer a draft design from column-name stems (``sup1..sup5`` -> construct ``sup``).
+
+    ``numeric`` (optional) restricts items to columns known to hold numbers. Items whose
+    name ends in ``r`` or ``_r`` (``sup4r``) are drafted as reverse-keyed. The draft has no
+    paths: the analyst adds them.
+    """
+    cols = list(columns)
+    num = set(numeric) if numeric is not None else set(cols)
+    groups: dict[str, list[str]] = {}
+    reverse: dict[str, list[str]] = {}
+    id_col = group_col = None
+    for c in cols:
+        low = c.strip().lower()
+        if id_col is None and low in _ID_NAMES:
+            id_col = c
+            continue
+        if group_col is None and low in _GROUP_NAMES:
+            group_col = c
+            continue
+        m = _STEM.match(c.strip())
+        if not m or c not in num:
+            continue
+        stem = m.group("stem").rstrip("_.- ").lower()
+        groups.setdefault(stem, []).append(c)
+        if m.group("rev"):
+            reverse.setdefault(stem, []).append(c)
+    constructs = {}
+    for stem, items in groups.items():
+        if len(items) >= MIN_ITEMS:
+            entry: dict[str, Any] = {"items": items}
+            if reverse.get(stem):
+                entry["reverse"] = reverse[stem]
+            constructs[stem] = entry
+    draft: dict[str, Any] = {"constructs": constructs, "paths": []}
+    if id_col:
+        draft["id_column"] = id_col
+    if group_col:
+        draft["group_column"] = group_col
+    return draft
