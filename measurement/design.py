@@ -12,7 +12,7 @@ import json
 import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
-from pathlib import Path
+import pathlib
 from typing import Any
 
 from .errors import DesignError
@@ -170,6 +170,11 @@ def parse_design(obj: Any) -> Design:
             owner[it] = name
         constructs[name] = Construct(name=name, items=items, reverse=reverse, role=role)
 
+    clash = sorted(set(constructs) & set(owner))
+    if clash:
+        raise DesignError(f"'{clash[0]}' is both a construct name and an item; rename the construct",
+                          field=f"constructs.{clash[0]}")
+
     for role in ("marker", "method"):
         named = [c.name for c in constructs.values() if c.role == role]
         if len(named) > 1:
@@ -285,9 +290,9 @@ def _closest(name: str, cols: Iterable[str]) -> str:
     return f" (did you mean '{m[0]}'?)" if m else ""
 
 
-def load_design(path: str | Path) -> Design:
+def load_design(path: str | pathlib.Path) -> Design:
     """Read and validate a design file."""
-    p = Path(path)
+    p = pathlib.Path(path)
     try:
         text = p.read_text(encoding="utf-8-sig")
     except FileNotFoundError:

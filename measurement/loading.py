@@ -1,0 +1,759 @@
+"""Reading survey data files into a table of raw cells, remembering where each row came from.
+
+:func:`load_table` reads delimited text (.csv, .tsv, .txt), Excel workbooks (.xlsx) and SPSS
+files (.sav) from a path or from bytes (an HTTP upload). It does not interpret values: text
+cells stay strings so that :mod:`measurement.prepare` can name a bad value exactly as the
+user typed it. Every problem is an :class:`~measurement.errors.InputError` naming the file
+and, where it applies, the row and column.
+"""
+
+from __future__ import annotations
+
+import codecs
+import csv
+import hashlib
+import io
+import json
+import os
+import re
+import warnings
+import zipfile
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import DataError, UnsupportedFormat
+
+FORMATS = ("csv", "tsv", "txt", "xlsx", "sav")
+READABLE = ".csv, .tsv or .txt (delimited text), .xlsx or .sav"
+TEXT_EXTENSIONS = {".csv": "csv", ".tsv": "tsv", ".txt": "txt"}
+DELIMITERS = (",", ";", "\t", "|")
+
+_SNIFF_CHARS = 65536
+_SNIFF_RECORDS = 200
+_CLEAR_SCORE = 0.9  # share of sampled rows that must agree with the header's field count
+
+_DELIM_NAMES = {",": "comma", ";": "semicolon", "\t": "tab", "|": "pipe"}
+
+# Content signatures that are decisive whatever the file is called: (start, what, advice).
+_MAGIC: tuple[tuple[bytes, str, str], ...] = (
+    (b"%PDF", "a PDF document", ""),
+    (b"\x89PNG\r\n\x1a\n", "a PNG image", ""),
+    (b"\xff\xd8\xff", "a JPEG image", ""),
+    (b"GIF87a", "a GIF image", ""),
+    (b"GIF89a", "a GIF image", ""),
+    (b"\x1f\x8b", "a gzip-compressed file", "Decompress it first."),
+    (b"BZh", "a bzip2-compressed file", "Decompress it first."),
+    (b"\xfd7zXZ\x00", "an xz-compressed file", "Decompress it first."),
+    (b"7z\xbc\xaf\x27\x1c", "a 7-Zip archive", "Unpack it first."),
+    (b"Rar!\x1a\x07", "a RAR archive", "Unpack it first."),
+    (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1",
+     "an old-style Excel .xls workbook (or another Office 97-2003 file, or a "
+     "password-protected workbook)", "Save it as .xlsx or .csv, without a password."),
+    (b"SQLite format 3\x00", "an SQLite database", ""),
+    (b"PAR1", "a Parquet file", ""),
+    (b"<stata_dta>", "a Stata .dta file", "Export it as .csv or .sav."),
+    (b"{\\rtf", "a rich-text (RTF) document", ""),
+    (b"\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\xc2\xea\x81\x60\xb3\x14\x11\xcf",
+     "a SAS data set", "Export it as .csv or .sav."),
+)
+_BOMS = ((codecs.BOM_UTF8, "utf-8-sig"), (codecs.BOM_UTF16_LE, "utf-16"),
+         (codecs.BOM_UTF16_BE, "utf-16"))
+_CONTROL = re.compile(rb"[\x00-\x08\x0e-\x1a\x1c-\x1f\x7f]")
+_FORMULA_TAG = re.compile(rb"<(?:\w+:)?f[\s>/]")
+_COMMA_DECIMAL = re.compile(r"[+-]?\d*,\d+(?:[eE][+-]?\d+)?")
+_POINT_DECIMAL = re.compile(r"[+-]?\d*\.\d+(?:[eE][+-]?\d+)?")
+
+
+@dataclass
+class LoadedTable:
+    """A data file read into raw cells; nothing interpreted yet."""
+
+    frame: pd.DataFrame  # columns as named in the file; text cells are str or NaN (blank)
+    row_numbers: np.ndarray  # per frame row, the row (or SPSS case) number the user sees
+    row_label: str  # "row" or "case", for messages
+    format: str  # one of FORMATS, as detected from the content
+    source: str  # file name for messages
+    encoding: str | None = None
+    delimiter: str | None = None
+    decimal: str | None = None
+    sheet: str | None = None
+    value_labels: dict[str, dict] = field(default_factory=dict)
+    user_missing: dict[str, list] = field(default_factory=dict)
+    sha256: str = ""
+    size_bytes: int = 0
+    # Things the report should mention ({"code", "message"}): blank rows skipped, an
+    # encoding guessed, short rows padded, SPSS missing values applied, ...
+    warnings: list[dict] = field(default_factory=list)
+
+
+# --------------------------------------------------------------------------- detection
+
+
+def _unsupported(what: str, filename: str | None, advice: str = "") -> UnsupportedFormat:
+    return UnsupportedFormat(
+        f"this file looks like {what}, not a data table; samesource reads {READABLE} "
+        f"files. {advice or 'Export the data in one of these formats.'}",
+        file=filename)
+
+
+def _extension(filename: str | None) -> str:
+    return os.path.splitext(filename or "")[1].lower()
+
+
+def _zip_kind(head: bytes, ext: str, filename: str | None) -> str:
+    try:
+        names = zipfile.ZipFile(io.BytesIO(head)).namelist()
+    except (zipfile.BadZipFile, OSError, ValueError, EOFError):
+        names = None  # only the start of the archive: look at the entry names in the bytes
+    if names is not None:
+        blob = "\n".join(names).encode("utf-8", "replace")
+    else:
+        blob = head
+    if b"xl/workbook.bin" in blob:
+        raise _unsupported("an Excel binary workbook (.xlsb)", filename, "Save it as .xlsx.")
+    if b"xl/" in blob:
+        return "xlsx"
+    if b"opendocument.spreadsheet" in head:
+        raise _unsupported("an OpenDocument spreadsheet (.ods)", filename,
+                           "Save it as .xlsx or .csv.")
+    if b"word/" in blob:
+        raise _unsupported("a Word document", filename)
+    if b"ppt/" in blob:
+        raise _unsupported("a PowerPoint presentation", filename)
+    if names is None and ext == ".xlsx":
+        return "xlsx"  # damaged or cut short: let the workbook reader say so
+    raise _unsupported("a ZIP archive (not an Excel workbook)", filename, "Unpack it first.")
+
+
+def _looks_binary(head: bytes) -> bool:
+    sample = head[:_SNIFF_CHARS]
+    if b"\x00" in sample:
+        return True
+    return len(_CONTROL.findall(sample)) > max(2, len(sample) // 100)
+
+
+def _markup_kind(text: str) -> tuple[str, str] | None:
+    start = text.lstrip()[:200].lower()
+    if start.startswith(("<!doctype html", "<html", "<table")):
+        return "a web page (HTML)", "If it came from a survey site, download the data as .csv."
+    if start.startswith("<?xml"):
+        return ("an XML file (for example an Excel 2003 XML spreadsheet)",
+                "Save it as .xlsx or .csv.")
+    if start[:1] in ("{", "["):
+        try:
+            json.loads(text)
+        except ValueError:
+            return None
+        return "a JSON file", "If it is the study design, pass it as the design (--design)."
+    return None
+
+
+def _sample_lines(text: str) -> str:
+    if len(text) <= _SNIFF_CHARS:
+        return text
+    cut = text.rfind("\n", 0, _SNIFF_CHARS)
+    return text[: cut + 1] if cut > 0 else text[:_SNIFF_CHARS]
+
+
+def _is_blank(cells: Sequence[Any]) -> bool:
+    return all(_blank_cell(c) for c in cells)
+
+
+def _blank_cell(c: Any) -> bool:
+    if c is None:
+        return True
+    if isinstance(c, str):
+        return not c.strip()
+    return isinstance(c, float) and c != c
+
+
+def _preference(fmt: str | None) -> tuple[str, ...]:
+    if fmt == "tsv":
+        return ("\t", ",", ";", "|")
+    if fmt == "txt":
+        return ("\t", "|", ";", ",")
+    return DELIMITERS
+
+
+def sniff_delimiter(text: str, fmt: str | None = None) -> tuple[str | None, float]:
+    """The delimiter among , ; tab | whose field count is most consistent with the header.
+
+    Quotes are respected. Returns (delimiter, share of sampled rows agreeing with the
+    header), or (None, 0.0) when no candidate splits the header into two or more fields.
+    """
+    sample = _sample_lines(text)
+    pref = _preference(fmt)
+    best: tuple[tuple[float, int, int], str] | None = None
+    for rank, d in enumerate(pref):
+        rows: list[list[str]] = []
+        reader = csv.reader(io.StringIO(sample, newline=""), delimiter=d, quotechar='"',
+                            skipinitialspace=True, strict=False)
+        try:
+            for r in reader:
+                if not _is_blank(r):
+                    rows.append(r)
+                    if len(rows) >= _SNIFF_RECORDS:
+                        break
+        except csv.Error:
+            continue
+        if not rows or len(rows[0]) < 2:
+            continue
+        h = len(rows[0])
+        agree = sum(1 for r in rows if len(r) == h or (len(r) > h and _is_blank(r[h:])))
+        key = (round(agree / len(rows), 3), h, -rank)
+        if best is None or key > best[0]:
+            best = (key, d)
+    if best is None:
+        return None, 0.0
+    return best[1], best[0][0]
+
+
+def _text_head(head: bytes) -> str:
+    # Only for recognising the kind of text: a character cut in two or a wrong guess between
+    # 8-bit encodings does not matter here.
+    head = head[: 16 * _SNIFF_CHARS]
+    for bom, enc in _BOMS:
+        if head.startswith(bom):
+            return head[len(bom):].decode(enc if enc != "utf-8-sig" else "utf-8", "replace")
+    return head.decode("utf-8", "replace")
+
+
+def detect_format(head: bytes, filename: str | None) -> str:
+    """The file's format ("csv", "tsv", "txt", "xlsx" or "sav") from its content and name.
+
+    Content wins where it is decisive (a workbook called .csv is read as a workbook);
+    anything we do not read raises :class:`UnsupportedFormat` saying what it looks like.
+    ``head`` is the start of the file (the whole file is best for ZIP-based formats).
+    """
+    ext = _extension(filename)
+    if not head.strip():
+        raise DataError("the file is empty; export the survey data again", file=filename)
+    if head.startswith(b"PK\x03\x04") or head.startswith(b"PK\x05\x06"):
+        return _zip_kind(head, ext, filename)
+    if head[:4] in (b"$FL2", b"$FL3"):
+        return "sav"
+    has_bom = any(head.startswith(bom) for bom, _ in _BOMS)
+    if not has_bom:
+        for magic, what, advice in _MAGIC:
+            if head.startswith(magic):
+                raise _unsupported(what, filename, advice)
+        if _looks_binary(head):
+            sample = head[:4096]
+            if len(sample) > 8 and sample[1::2].count(0) > len(sample) // 4:
+                raise _unsupported("UTF-16 text without a byte-order mark", filename,
+                                   "Save it as UTF-8 text.")
+            raise _unsupported("binary data" + (f" (it is named {ext})" if ext else ""), filename)
+    text = _text_head(head)
+    markup = _markup_kind(text)
+    if markup:
+        raise _unsupported(markup[0], filename, markup[1])
+    if ext in TEXT_EXTENSIONS:
+        return TEXT_EXTENSIONS[ext]
+    delim, score = sniff_delimiter(text)
+    if delim is None or score < _CLEAR_SCORE:
+        raise _unsupported("text that is not a delimited table (no consistent comma, semicolon, "
+                           "tab or pipe separators in the first lines)", filename)
+    return {"\t": "tsv", "|": "txt"}.get(delim, "csv")
+
+
+# --------------------------------------------------------------------------- text files
+
+
+def _line_of(data: bytes, pos: int) -> int:
+    return data.count(b"\n", 0, pos) + 1
+
+
+def _decode(data: bytes, source: str) -> tuple[str, str]:
+    """Decode text: BOM, then strict UTF-8, then Windows-1252, a detected charset, Latin-1."""
+    for bom, enc in _BOMS:
+        if data.startswith(bom):
+            body = data[len(bom):]
+            try:
+                return body.decode("utf-8" if enc == "utf-8-sig" else enc), enc
+            except UnicodeDecodeError as e:
+                label = "UTF-8" if enc == "utf-8-sig" else "UTF-16"
+                where = f"line {_line_of(body, e.start)}" if enc == "utf-8-sig" else \
+                    f"byte {e.start + len(bom)}"
+                raise DataError(
+                    f"the file says it is {label} text (it starts with a byte-order mark) but "
+                    f"its {where} holds bytes that are not {label}; save it again as UTF-8 text",
+                    file=source) from None
+    try:
+        return data.decode("utf-8"), "utf-8"
+    except UnicodeDecodeError:
+        pass
+    try:
+        return data.decode("cp1252"), "cp1252"
+    except UnicodeDecodeError:
+        pass
+    try:
+        import charset_normalizer
+
+        best = charset_normalizer.from_bytes(data[: 4 * _SNIFF_CHARS]).best()
+        if best is not None and best.encoding:
+            return data.decode(best.encoding), best.encoding
+    except (LookupError, UnicodeDecodeError, ValueError):
+        pass
+    return data.decode("latin-1"), "latin-1"
+
+
+def _parse_records(text: str, delim: str, source: str, strict: bool
+                   ) -> tuple[list[tuple[int, list[str]]], list[int], int]:
+    """All records with their row numbers (each record, blank ones too, is one row).
+
+    Also returns the rows whose quoted values run over several lines, and the line on
+    which the last record starts.
+    """
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delim, quotechar='"',
+                        skipinitialspace=True, strict=strict)
+    records: list[tuple[int, list[str]]] = []
+    multiline: list[int] = []
+    row = 0
+    last_start = 1
+    while True:
+        first_line = reader.line_num + 1
+        try:
+            fields = next(reader)
+        except StopIteration:
+            break
+        except csv.Error as e:
+            if "end of data" in str(e):
+                raise _unclosed_quote(row + 1, first_line, source) from None
+            raise
+        row += 1
+        last_start = first_line
+        if reader.line_num > first_line:
+            multiline.append(row)
+        records.append((row, fields))
+    return records, multiline, last_start
+
+
+def _unclosed_quote(row: int, line: int, source: str) -> DataError:
+    return DataError(
+        f"a quoted value that starts in row {row} (line {line}) is never closed, so the rest "
+        "of the file would be read as one value; add the missing closing quote (\")",
+        file=source, row=row)
+
+
+def _read_text(data: bytes, source: str, fmt: str) -> dict:
+    text, encoding = _decode(data, source)
+    text = text.rstrip("\x1a")  # an old end-of-file marker
+    if not text.strip(" \t\r\n\f\v,;|\"\ufeff"):
+        raise DataError("the file is empty (it holds only blank lines or empty fields); export "
+                        "the survey data again", file=source)
+    notes: list[dict] = []
+    delim, _score = sniff_delimiter(text, fmt)
+    if delim is None:
+        # One column: split on a candidate the text does not contain.
+        sample = _sample_lines(text)
+        pref = _preference(fmt)
+        delim = next((d for d in pref if d not in sample), pref[0])
+    try:
+        records, multiline, _ = _parse_records(text, delim, source, strict=True)
+    except csv.Error:
+        # A quote in the middle of a value ("a"b): read it the forgiving way, and say so.
+        records, multiline, last_start = _parse_records(text, delim, source, strict=False)
+        last_row = records[-1][0]
+        tail = "".join(io.StringIO(text, newline="").readlines()[last_start - 1:])
+        if last_row in multiline and tail.count('"') % 2 == 1:
+            # Read the forgiving way, an unclosed quote swallows the rest of the file.
+            raise _unclosed_quote(last_row, last_start, source) from None
+        notes.append({"code": "loose_quotes", "message": (
+            "some quotes in the file are not where the CSV rules expect them (a quote inside "
+            "a value that is not itself quoted); those values were read with the quotes "
+            "dropped")})
+    if multiline:
+        notes.append({"code": "multiline_values", "message": (
+            f"{len(multiline)} row(s) hold a quoted value running over several lines (first: "
+            f"row {multiline[0]}); rows are numbered as a spreadsheet shows them, so from "
+            "there on a row number can differ from the line number in a text editor")})
+
+    header_row, header, rows, blank_inside = _split_header(records, _is_blank)
+    if header_row is None:
+        raise DataError("the file is empty (it holds only blank lines or empty fields)",
+                        file=source)
+    if header:
+        header[0] = header[0].lstrip("\ufeff")
+    columns, body, row_numbers = _assemble(
+        [h.strip() for h in header], rows, header_row, source,
+        position=str, extra_hint=(f"A value in this row may contain an unquoted "
+                                  f"{_DELIM_NAMES[delim]}: put quotes around it"
+                                  + (", or write decimals with a point" if delim == "," else "")),
+        notes=notes)
+    decimal = _apply_decimal(body, delim)
+    frame = _frame(columns, body)
+    _note_blank_rows(blank_inside, notes)
+    if encoding not in ("utf-8", "utf-8-sig", "utf-16") and not text.isascii():
+        notes.append({"code": "encoding_guessed", "message": (
+            f"the file is not UTF-8; it was read as {_ENCODING_NAMES.get(encoding, encoding)} "
+            "text. If accented letters look wrong, save the file as UTF-8")})
+    return dict(frame=frame, row_numbers=row_numbers, encoding=encoding, delimiter=delim,
+                decimal=decimal, warnings=notes)
+
+
+_ENCODING_NAMES = {"cp1252": "Windows-1252", "latin-1": "Latin-1", "utf-16": "UTF-16"}
+
+
+def _split_header(records: list, blank) -> tuple[int | None, list, list, list[int]]:
+    nonblank = [(n, r) for n, r in records if not blank(r)]
+    if not nonblank:
+        return None, [], [], []
+    header_row, header = nonblank[0]
+    rows = nonblank[1:]
+    last = rows[-1][0] if rows else header_row
+    blank_inside = [n for n, r in records if header_row < n < last and blank(r)]
+    return header_row, list(header), rows, blank_inside
+
+
+def _note_blank_rows(blank_inside: list[int], notes: list[dict]) -> None:
+    if blank_inside:
+        shown = ", ".join(str(n) for n in blank_inside[:5]) + (", ..." if len(blank_inside) > 5
+                                                               else "")
+        notes.append({"code": "blank_rows_skipped", "message": (
+            f"{len(blank_inside)} empty row(s) between the data rows were skipped (rows "
+            f"{shown})")})
+
+
+def _assemble(names: list[str], rows: list[tuple[int, Sequence[Any]]], header_row: int,
+              source: str, *, position, extra_hint: str, notes: list[dict]
+              ) -> tuple[list[str], list[list[Any]], np.ndarray]:
+    """Check the header against the rows; return kept names, cells and row numbers."""
+    if not rows:
+        raise DataError(f"the file has a header (row {header_row}) but no data rows; export "
+                        "the survey data with the respondents' answers", file=source,
+                        row=header_row)
+    width = len(names)
+    short = 0
+    body: list[list[Any]] = []
+    for n, r in rows:
+        r = list(r)
+        if len(r) > width:
+            extra = [j for j in range(width, len(r)) if not _blank_cell(r[j])]
+            if extra:
+                j = extra[0]
+                if position is str:
+                    count = f"this row has {len(r)} values"
+                else:
+                    count = f"this row has a value in column {position(j + 1)}"
+                raise DataError(
+                    f"{count} but the header (row {header_row}) names only {width} columns; "
+                    f"the first extra value is {_show(r[j])}. {extra_hint}; otherwise give "
+                    "the extra column a name in the header",
+                    file=source, row=n, column=position(j + 1))
+            r = r[:width]
+        elif len(r) < width:
+            short += 1
+            r = r + [None] * (width - len(r))
+        body.append(r)
+
+    keep: list[int] = []
+    for j, name in enumerate(names):
+        if name:
+            keep.append(j)
+            continue
+        used = next((n for (n, _), r in zip(rows, body, strict=True) if not _blank_cell(r[j])),
+                    None)
+        if used is not None:
+            left = next((names[k] for k in range(j - 1, -1, -1) if names[k]), None)
+            after = f" (the column after '{left}')" if left else ""
+            raise DataError(
+                f"column {position(j + 1)}{after} has no name in the header (row {header_row}) "
+                f"but holds values (first in row {used}); give it a name or delete the column",
+                file=source, row=header_row, column=position(j + 1))
+    seen: dict[str, list[int]] = {}
+    for j in keep:
+        seen.setdefault(names[j], []).append(j + 1)
+    for name, where in seen.items():
+        if len(where) > 1:
+            times = "twice" if len(where) == 2 else f"{len(where)} times"
+            cols = ", ".join(position(k) for k in where[:-1]) + f" and {position(where[-1])}"
+            raise DataError(
+                f"the column name '{name}' appears {times} in the header (columns {cols}); "
+                "give each column its own name", file=source, row=header_row, column=name)
+    if short:
+        notes.append({"code": "short_rows", "message": (
+            f"{short} row(s) have fewer values than the header has columns; the missing "
+            "values at their ends were read as blank")})
+    if len(keep) < width:
+        body = [[r[j] for j in keep] for r in body]
+    columns = [names[j] for j in keep]
+    return columns, body, np.array([n for n, _ in rows], dtype=np.int64)
+
+
+def _apply_decimal(body: list[list[Any]], delim: str) -> str:
+    """Detect a decimal comma ("3,5") and rewrite such cells as "3.5"."""
+    if delim == ",":
+        return "."
+    commas = points = 0
+    for r in body:
+        for c in r:
+            if isinstance(c, str) and ("," in c or "." in c):
+                s = c.strip()
+                if _COMMA_DECIMAL.fullmatch(s):
+                    commas += 1
+                elif _POINT_DECIMAL.fullmatch(s):
+                    points += 1
+    if commas == 0 or commas < points:
+        return "."
+    for r in body:
+        for j, c in enumerate(r):
+            if isinstance(c, str) and "," in c:
+                s = c.strip()
+                if _COMMA_DECIMAL.fullmatch(s):
+                    r[j] = s.replace(",", ".")
+    return ","
+
+
+def _frame(columns: list[str], body: list[list[Any]]) -> pd.DataFrame:
+    cells = [[np.nan if _blank_cell(c) else c for c in r] for r in body]
+    frame = pd.DataFrame(cells, columns=pd.Index(columns, dtype=object), dtype=object)
+    if frame.shape[1] != len(columns):  # no rows survive: keep the columns anyway
+        frame = pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
+    return frame
+
+
+def _show(v: Any) -> str:
+    s = str(v)
+    return repr(s if len(s) <= 40 else s[:37] + "...")
+
+
+# --------------------------------------------------------------------------- xlsx
+
+
+def _letter(n: int) -> str:
+    s = ""
+    while n:
+        n, rem = divmod(n - 1, 26)
+        s = chr(65 + rem) + s
+    return s
+
+
+def _header_name(v: Any) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, bool):
+        return "TRUE" if v else "FALSE"
+    if isinstance(v, float) and v.is_integer():
+        return str(int(v))
+    return str(v).strip()
+
+
+def _brief(e: BaseException) -> str:
+    msg = str(e).strip().splitlines()[0] if str(e).strip() else ""
+    return f"{e.__class__.__name__}: {msg[:120]}" if msg else e.__class__.__name__
+
+
+def _read_xlsx(data: bytes, source: str, sheet: str | int | None) -> dict:
+    import openpyxl
+
+    def open_book(data_only: bool):
+        return openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=data_only)
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # openpyxl warns about styles and extensions it skips
+        try:
+            wb = open_book(True)
+        except Exception as e:  # any failure inside the workbook reader means "cannot open"
+            raise DataError(
+                f"cannot open the Excel workbook ({_brief(e)}); check that the file is complete "
+                "and not password-protected, or save it again as .xlsx or .csv",
+                file=source) from None
+        try:
+            title = _pick_sheet(wb.sheetnames, sheet, source)
+            rows = _sheet_rows(wb, title, source)
+        finally:
+            wb.close()
+        notes: list[dict] = []
+        if _has_uncomputed(rows, data):
+            wb = open_book(False)
+            try:
+                formulas = _sheet_rows(wb, title, source)
+            finally:
+                wb.close()
+            filled = _fill_formulas(rows, formulas)
+            if filled:
+                r, c = filled[0]
+                notes.append({"code": "formulas_without_results", "message": (
+                    f"{len(filled)} cell(s) hold a formula with no saved result (first: "
+                    f"{_letter(c)}{r}), as when a program wrote the workbook without a "
+                    "spreadsheet ever calculating it; they were read as the formula text. Open "
+                    "and save the workbook in a spreadsheet program to store the results")})
+
+    numbered = [(i + 1, r) for i, r in enumerate(rows)]
+    header_row, header, body_rows, blank_inside = _split_header(numbered, _is_blank)
+    if header_row is None:
+        raise DataError(f"sheet '{title}' is empty", file=source)
+    last_col = max((max((j for j, c in enumerate(r) if not _blank_cell(c)), default=-1)
+                    for _, r in [(header_row, header)] + body_rows), default=-1)
+    header = [_header_name(v) for v in header[: last_col + 1]]
+    body_rows = [(n, list(r[: last_col + 1])) for n, r in body_rows]
+    columns, body, row_numbers = _assemble(
+        header, body_rows, header_row, source, position=_letter,
+        extra_hint="Clear that cell if it is not part of the data", notes=notes)
+    frame = _frame(columns, body)
+    _note_blank_rows(blank_inside, notes)
+    return dict(frame=frame, row_numbers=row_numbers, sheet=title, warnings=notes)
+
+
+def _pick_sheet(names: list[str], sheet: str | int | None, source: str) -> str:
+    listed = ", ".join(f"'{n}'" for n in names)
+    if not names:
+        raise DataError("the workbook has no sheets", file=source)
+    if sheet is None:
+        return names[0]
+    if isinstance(sheet, int) and not isinstance(sheet, bool):
+        if 0 <= sheet < len(names):
+            return names[sheet]
+        raise DataError(f"there is no sheet number {sheet} (counting from 0); the workbook has "
+                        f"{len(names)} sheet(s): {listed}", file=source)
+    if sheet in names:
+        return sheet
+    raise DataError(f"sheet '{sheet}' not found; the workbook has sheets {listed}", file=source)
+
+
+def _sheet_rows(wb, title: str, source: str) -> list[list[Any]]:
+    try:
+        ws = wb[title]
+        ws.reset_dimensions()  # a wrong stored size would silently cut rows off
+        return [list(r) for r in ws.iter_rows(min_row=1, min_col=1, values_only=True)]
+    except Exception as e:  # a damaged sheet, or a chart sheet
+        raise DataError(f"cannot read sheet '{title}' ({_brief(e)}); save the workbook again "
+                        "as .xlsx or .csv", file=source) from None
+
+
+def _has_uncomputed(rows: list[list[Any]], data: bytes) -> bool:
+    if not any(c is None for r in rows for c in r):
+        return False
+    try:
+        with zipfile.ZipFile(io.BytesIO(data)) as z:
+            for name in z.namelist():
+                if name.startswith("xl/worksheets/") and name.endswith(".xml"):
+                    if _FORMULA_TAG.search(z.read(name)):
+                        return True
+    except (zipfile.BadZipFile, OSError, KeyError):
+        return False
+    return False
+
+
+def _fill_formulas(rows: list[list[Any]], formulas: list[list[Any]]) -> list[tuple[int, int]]:
+    filled = []
+    for i, (r, f) in enumerate(zip(rows, formulas, strict=False)):
+        for j, c in enumerate(r):
+            if c is None and j < len(f) and f[j] is not None:
+                v = f[j]
+                text = getattr(v, "text", v)
+                if isinstance(text, str):
+                    r[j] = text if text.startswith("=") else "=" + text
+                    filled.append((i + 1, j + 1))
+    return filled
+
+
+# --------------------------------------------------------------------------- sav
+
+
+def _read_sav(data: bytes, source: str) -> dict:
+    import pyreadstat
+
+    try:
+        df, meta = pyreadstat.read_sav(io.BytesIO(data), user_missing=True)
+    except Exception as e:  # the reader's own error types vary by version
+        raise DataError(f"cannot read the SPSS file ({_brief(e)}); check that it is complete, "
+                        "or save it again from SPSS as .sav or .csv", file=source) from None
+    columns = [str(c) for c in df.columns]
+    if not columns:
+        raise DataError("the SPSS file has no variables", file=source)
+    if len(df) == 0:
+        raise DataError("the SPSS file has variables but no cases", file=source)
+    df.columns = columns
+    notes: list[dict] = []
+    user_missing: dict[str, list] = {}
+    applied: list[str] = []
+    for col, ranges in (getattr(meta, "missing_ranges", None) or {}).items():
+        if col not in df.columns or not ranges:
+            continue
+        s = df[col]
+        mask = np.zeros(len(s), dtype=bool)
+        kept = []
+        for rg in ranges:
+            lo, hi = rg.get("lo"), rg.get("hi")
+            try:
+                mask |= ((s == lo) if lo == hi else ((s >= lo) & (s <= hi))).to_numpy(bool)
+            except TypeError:
+                continue
+            kept.append({"lo": lo, "hi": hi})
+        if kept:
+            kept.sort(key=lambda d: (str(type(d["lo"])), d["lo"]))
+            user_missing[col] = kept
+            if mask.any():
+                df[col] = s.where(~mask)
+                applied.append(f"{col} ({int(mask.sum())})")
+    for col in df.columns:
+        if not pd.api.types.is_numeric_dtype(df[col]) and \
+                not pd.api.types.is_datetime64_any_dtype(df[col]):
+            s = df[col].astype(object)
+            df[col] = s.where(~s.map(_blank_cell), np.nan)
+    if applied:
+        notes.append({"code": "spss_missing_values", "message": (
+            "answers marked as missing values in the SPSS file were read as missing: "
+            + ", ".join(applied[:10]) + (", ..." if len(applied) > 10 else ""))})
+    labels = {str(k): dict(v) for k, v in (meta.variable_value_labels or {}).items()}
+    return dict(frame=df.reset_index(drop=True), row_numbers=np.arange(1, len(df) + 1,
+                                                                       dtype=np.int64),
+                encoding=getattr(meta, "file_encoding", None), value_labels=labels,
+                user_missing=user_missing, warnings=notes)
+
+
+# --------------------------------------------------------------------------- entry point
+
+
+def load_table(source: str | os.PathLike | bytes, *, name: str | None = None,
+               sheet: str | int | None = None, max_bytes: int | None = None) -> LoadedTable:
+    """Read a data file (a path, or the bytes of an upload) into a :class:`LoadedTable`.
+
+    ``name`` is the file name used in messages and for the extension (required in spirit
+    for bytes); ``sheet`` picks an .xlsx sheet by name or 0-based position (default: the
+    first); ``max_bytes`` refuses larger files.
+    """
+    if isinstance(source, bytes | bytearray | memoryview):
+        data = bytes(source)
+        label = name or "upload"
+    else:
+        path = os.fspath(source)
+        label = name or path
+        try:
+            size = os.path.getsize(path)
+            if max_bytes is not None and size > max_bytes:
+                raise _too_large(size, max_bytes, label)
+            with open(path, "rb") as fh:
+                data = fh.read()
+        except FileNotFoundError:
+            raise DataError("file not found; check the path", file=label,
+                            code="file_not_found") from None
+        except IsADirectoryError:
+            raise DataError("is a folder, not a data file", file=label) from None
+        except PermissionError:
+            raise DataError("cannot read the file (permission denied)", file=label) from None
+    if max_bytes is not None and len(data) > max_bytes:
+        raise _too_large(len(data), max_bytes, label)
+    if not data.strip():
+        raise DataError("the file is empty; export the survey data again", file=label)
+
+    fmt = detect_format(data, label)
+    if fmt == "xlsx":
+        parts = _read_xlsx(data, label, sheet)
+    elif fmt == "sav":
+        parts = _read_sav(data, label)
+    else:
+        parts = _read_text(data, label, fmt)
+    return LoadedTable(row_label="case" if fmt == "sav" else "row", format=fmt, source=label,
+                       sha256=hashlib.sha256(data).hexdigest(), size_bytes=len(data), **parts)
+
+
+def _too_large(size: int, limit: int, label: str) -> DataError:
+    return DataError(f"the file is {size / 1e6:.1f} MB, over the limit of {limit / 1e6:.1f} MB; "
+                     "remove columns the analysis does not use, or split the file",
+                     file=label, code="too_large")

@@ -1,0 +1,205 @@
+"""Builders: every model the product fits, made from the study design.
+
+This is the one place that writes model specifications (:class:`~measurement.modelspec.ModelSpec`);
+the engine in :mod:`measurement.fitting` fits whatever it is given. Latent variables carry
+the construct names; observed variables the item names.
+
+Identification convention: factor variances fixed at 1 and all loadings free, so loadings
+are on the standardized-factor scale and latent covariances are correlations.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+from .design import Construct, Design
+from .modelspec import Param, ModelSpec
+
+
+def _factor(name: str, items: Sequence[str]) -> list[Param]:
+    ps = [Param("load", name, it) for it in items]
+    ps.append(Param("cov", name, name, free=False, value=1.0))
+    return ps
+
+
+def _errors(items: Sequence[str]) -> list[Param]:
+    return [Param("cov", it, it) for it in items]
+
+
+def _correlate(names: Sequence[str]) -> list[Param]:
+    return [Param("cov", a, b) for i, a in enumerate(names) for b in names[i + 1:]]
+
+
+def single_factor_model(construct: Construct) -> ModelSpec:
+    """One construct's items on one factor: the basis of McDonald's omega."""
+    items = construct.items
+    return ModelSpec(
+        name=f"single_factor:{construct.name}",
+        observed=tuple(items),
+        latent=(construct.name,),
+        params=tuple(_factor(construct.name, items) + _errors(items)),
+        description=f"one factor for the items of '{construct.name}'",
+    )
+
+
+def measurement_model(design: Design, constructs: Sequence[Construct] | None = None) -> ModelSpec:
+    """Confirmatory factor model: each construct a factor, factors freely correlated."""
+    cons = list(constructs) if constructs is not None else list(design.constructs.values())
+    items = [it for c in cons for it in c.items]
+    params: list[Param] = []
+    for c in cons:
+        params += _factor(c.name, c.items)
+    params += _errors(items)
+    params += _correlate([c.name for c in cons])
+    return ModelSpec(
+        name="measurement_model",
+        observed=tuple(items),
+        latent=tuple(c.name for c in cons),
+        params=tuple(params),
+        description="every construct a factor of its own items, factors freely correlated",
+    )
+
+
+def one_factor_model(items: Sequence[str], name: str = "common") -> ModelSpec:
+    """Every item on a single factor: the confirmatory form of Harman's test."""
+    return ModelSpec(
+        name="one_factor",
+        observed=tuple(items),
+        latent=(name,),
+        params=tuple(_factor(name, items) + _errors(items)),
+        description="all items on one common factor",
+    )
+
+
+# --- Common-method models --------------------------------------------------------------
+
+METHOD = "method_factor"  # name of the latent method factor in every method model
+
+
+def _trait_params(cons: Sequence[Construct], orthogonal_to: Sequence[str] = ()) -> list[Param]:
+    """Trait factors with their loadings and unit variances; pairs are correlated except
+    pairs that involve a construct in ``orthogonal_to`` (the marker in marker models)."""
+    params: list[Param] = []
+    for c in cons:
+        params += _factor(c.name, c.items)
+    names = [c.name for c in cons]
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            if a in orthogonal_to or b in orthogonal_to:
+                continue
+            params.append(Param("cov", a, b))
+    return params
+
+
+def method_factor_model(design: Design, *, use_marker: bool, equal_loadings: bool) -> ModelSpec:
+    """A latent method factor on every item, orthogonal to the traits (Podsakoff et al. 2003).
+
+    ``use_marker``: the factor also loads on the marker's items and the marker's trait is
+    orthogonal to the substantive traits, so the marker identifies the method factor
+    ("marker-identified method factor"). Without a marker this is the plain latent method
+    factor, which Richardson, Simmering & Sturman (2009) found unreliable.
+
+    ``equal_loadings``: every method loading fixed at 1 with the factor's variance free (one
+    parameter: the method variance); otherwise free loadings with the variance fixed at 1.
+    """
+    cons = list(design.substantive)
+    marker = design.marker if use_marker else None
+    if use_marker and marker is None:
+        raise ValueError("the design has no marker construct")
+    if marker is not None:
+        cons.append(marker)
+    items = [it for c in cons for it in c.items]
+    params = _trait_params(cons, orthogonal_to=[marker.name] if marker else [])
+    params += _errors(items)
+    if equal_loadings:
+        params += [Param("load", METHOD, it, free=False, value=1.0) for it in items]
+        params.append(Param("cov", METHOD, METHOD, value=0.1))
+    else:
+        params += [Param("load", METHOD, it, value=0.3) for it in items]
+        params.append(Param("cov", METHOD, METHOD, free=False, value=1.0))
+    kind = "marker-identified" if marker else "plain latent"
+    loads = "equal" if equal_loadings else "free"
+    return ModelSpec(
+        name=f"method_factor:{'marker' if marker else 'plain'}:{loads}",
+        observed=tuple(items),
+        latent=tuple(c.name for c in cons) + (METHOD,),
+        params=tuple(params),
+        description=f"{kind} method factor with {loads} loadings on every item, orthogonal to the traits",
+    )
+
+
+def measured_method_model(design: Design) -> ModelSpec:
+    """The measured method construct's factor loads on every substantive item, orthogonal to
+    the traits (directly measured latent method factor; Podsakoff et al. 2003)."""
+    method = design.method
+    if method is None:
+        raise ValueError("the design has no method construct")
+    cons = list(design.substantive)
+    subst_items = [it for c in cons for it in c.items]
+    params = _trait_params(cons) + _factor(method.name, method.items)
+    params += _errors(subst_items + list(method.items))
+    params += [Param("load", method.name, it, value=0.1) for it in subst_items]
+    return ModelSpec(
+        name="measured_method",
+        observed=tuple(subst_items + list(method.items)),
+        latent=tuple(c.name for c in cons) + (method.name,),
+        params=tuple(params),
+        description=f"the measured method construct '{method.name}' loads on every substantive item, "
+                    "orthogonal to the traits",
+    )
+
+
+def cfa_marker_models(design: Design, marker_loadings: dict[str, float],
+                      marker_errors: dict[str, float],
+                      fixed_correlations: dict[tuple[str, str], float] | None = None,
+                      *, which: str) -> ModelSpec:
+    """The CFA marker technique's model sequence (Williams, Hartman & Cavazotte 2010).
+
+    The marker factor's loadings and error variances are fixed at their values in the
+    measurement model; the marker is orthogonal to the substantive factors. ``which``:
+
+    - ``"baseline"``: no method loadings (their "Baseline Model").
+    - ``"equal"``: the marker factor loads on every substantive item, one common loading
+      (their "Method-C").
+    - ``"free"``: the same with free loadings ("Method-U").
+    - ``"equal_held"`` / ``"free_held"``: "equal" / "free" with the substantive factor
+      correlations fixed at ``fixed_correlations`` (the baseline values; "Method-R").
+    """
+    marker = design.marker
+    if marker is None:
+        raise ValueError("the design has no marker construct")
+    cons = list(design.substantive)
+    subst_items = [it for c in cons for it in c.items]
+    params: list[Param] = []
+    for c in cons:
+        params += _factor(c.name, c.items)
+    names = [c.name for c in cons]
+    held = which.endswith("_held")
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            if held:
+                params.append(Param("cov", a, b, free=False, value=fixed_correlations[(a, b)]))
+            else:
+                params.append(Param("cov", a, b))
+    params += [Param("load", marker.name, it, free=False, value=marker_loadings[it]) for it in marker.items]
+    params.append(Param("cov", marker.name, marker.name, free=False, value=1.0))
+    params += [Param("cov", it, it, free=False, value=marker_errors[it]) for it in marker.items]
+    params += _errors(subst_items)
+    base = which.removesuffix("_held")
+    if base == "equal":
+        params += [Param("load", marker.name, it, label="marker_method", value=0.1) for it in subst_items]
+    elif base == "free":
+        params += [Param("load", marker.name, it, value=0.1) for it in subst_items]
+    elif base != "baseline":
+        raise ValueError(f"unknown model {which!r}")
+    return ModelSpec(
+        name=f"cfa_marker:{which}",
+        observed=tuple(subst_items + list(marker.items)),
+        latent=tuple(names) + (marker.name,),
+        params=tuple(params),
+        description={
+            "baseline": "marker kept apart: fixed marker measurement, no method loadings",
+            "equal": "marker loads on every substantive item with one common loading",
+            "free": "marker loads on every substantive item with free loadings",
+        }[base] + (", substantive correlations held at the baseline values" if held else ""),
+    )

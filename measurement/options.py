@@ -1,0 +1,63 @@
+"""Analysis options, validated at the door (command line and HTTP share them)."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, fields
+from typing import Any
+
+from .errors import InputError
+
+MISSING_METHODS = ("listwise", "fiml")
+LISTWISE_DROP_LIMIT = 0.05  # above this share of rows dropped, the report recommends FIML
+
+
+@dataclass(frozen=True)
+class AnalysisOptions:
+    missing: str = "listwise"        # "listwise" or "fiml" (full-information ML)
+    drop_flagged: bool = False       # drop rows flagged by screening before the analysis
+    fit_time_limit: float = 60.0     # seconds, per model fit
+    n_starts: int = 4                # starting points per model fit
+    confidence: float = 0.95
+    bootstrap: int = 0
+    seed: int = 0
+    min_group_size: int = 5          # common practice
+    sheet: str | None = None         # worksheet of an .xlsx file
+
+    @classmethod
+    def from_dict(cls, obj: Mapping[str, Any] | None) -> AnalysisOptions:
+        if obj is None:
+            return cls()
+        if not isinstance(obj, Mapping):
+            raise InputError("options must be a JSON object", code="bad_options", field="options")
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(obj) - known)
+        if unknown:
+            raise InputError(f"unknown option '{unknown[0]}'; allowed: {', '.join(sorted(known))}",
+                             code="bad_options", field=f"options.{unknown[0]}")
+        opts = cls(**dict(obj))
+        opts.validate()
+        return opts
+
+    def validate(self) -> None:
+        def bad(name: str, msg: str) -> InputError:
+            return InputError(msg, code="bad_options", field=f"options.{name}")
+
+        if self.missing not in MISSING_METHODS:
+            raise bad("missing", f"must be one of {', '.join(MISSING_METHODS)}, got {self.missing!r}")
+        if not isinstance(self.drop_flagged, bool):
+            raise bad("drop_flagged", "must be true or false")
+        for name, lo, hi in (("fit_time_limit", 0.1, 3600.0), ("confidence", 0.5, 0.999)):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, int | float) or not lo <= v <= hi:
+                raise bad(name, f"must be a number from {lo} to {hi}, got {v!r}")
+        for name, lo, hi in (("n_starts", 1, 50), ("bootstrap", 0, 100_000), ("seed", 0, 2**32 - 1),
+                             ("min_group_size", 2, 1000)):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
+                raise bad(name, f"must be a whole number from {lo} to {hi}, got {v!r}")
+        if self.sheet is not None and not isinstance(self.sheet, str):
+            raise bad("sheet", "must be a worksheet name")
+
+    def to_dict(self) -> dict:
+        return asdict(self)

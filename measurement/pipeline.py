@@ -1,0 +1,171 @@
+"""The one entry point: data and design in, an analysis (report data and fits) out.
+
+The command line and the HTTP service both call :func:`analyze`; nothing else in
+``service/`` reaches deeper into ``measurement/``.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .design import Design, parse_design
+from .errors import DataError
+from .loading import LoadedTable, load_table
+from .missing import MissingPlan, plan_missing
+from .options import AnalysisOptions
+from .prepare import PreparedData, prepare
+from .measurement_report import measurement_model_section
+from .reliability_report import construct_reliability
+from .report import finalize_report
+from .screening import screen_respondents
+
+Progress = Callable[[str, int, int], None]
+
+STAGES = ("load", "screen", "reliability", "measurement_model", "report")
+
+
+@dataclass
+class Analysis:
+    """What :func:`analyze` returns: the JSON-ready report and the objects behind it."""
+
+    report: dict
+    prepared: PreparedData
+    plan: MissingPlan
+    fits: dict[str, Any] = field(default_factory=dict)
+
+    def summary(self) -> str:
+        from .summary import text_summary
+
+        return text_summary(self.report)
+
+
+def analyze(
+    data: LoadedTable | str | os.PathLike | bytes,
+    design: Design | dict,
+    options: AnalysisOptions | dict | None = None,
+    *,
+    name: str | None = None,
+    progress: Progress | None = None,
+) -> Analysis:
+    """Run the whole analysis. Raises :class:`~measurement.errors.InputError` for bad input."""
+    opts = options if isinstance(options, AnalysisOptions) else AnalysisOptions.from_dict(options)
+    dsg = design if isinstance(design, Design) else parse_design(design)
+    step = progress or (lambda stage, done, total: None)
+    total = len(STAGES)
+
+    step("load", 0, total)
+    table = data if isinstance(data, LoadedTable) else load_table(data, name=name, sheet=opts.sheet)
+    prepared = prepare(table, dsg)
+
+    step("screen", 1, total)
+    screening = screen_respondents(prepared.items, scale_min=prepared.scale_min,
+                                   scale_max=prepared.scale_max, raw_items=_raw_answers(prepared, dsg))
+    plan = plan_missing(prepared, opts, flagged=screening.flagged_rows)
+    if plan.rows_analyzed < _min_rows(dsg):
+        raise DataError(
+            f"only {plan.rows_analyzed} rows are left to analyse after {plan.describe()}; "
+            f"the design's {len(dsg.items)} items need at least {_min_rows(dsg)}",
+            file=table.source)
+
+    step("reliability", 2, total)
+    fits: dict[str, Any] = {}
+    warnings: list[dict] = list(prepared.warnings)
+    if plan.recommendation:
+        warnings.append({"code": "listwise_dropped_many", "message": plan.recommendation})
+    constructs = construct_reliability(dsg, plan, opts, fits, warnings)
+
+    step("measurement_model", 3, total)
+    mm = measurement_model_section(dsg, plan, opts, fits, constructs, warnings)
+
+    step("report", 4, total)
+    report: dict[str, Any] = {
+        "schema": "samesource.report/1",
+        "tool": {"name": "samesource", "version": __version__},
+        "data": _data_section(table, prepared, plan),
+        "screening": _screening_section(screening, plan),
+        "constructs": constructs,
+        "measurement_model": mm,
+        "options": opts.to_dict(),
+        "design": dsg.to_dict(),
+    }
+    report = finalize_report(report, warnings=warnings, options=opts)
+    step("report", total, total)
+    return Analysis(report=report, prepared=prepared, plan=plan, fits=fits)
+
+
+def _min_rows(design: Design) -> int:
+    # Enough rows for a positive-definite covariance matrix of all items, and some to spare.
+    return max(len(design.items) + 2, 30)
+
+
+def _raw_answers(prepared: PreparedData, design: Design) -> pd.DataFrame:
+    """The answers as given (reverse keying undone), in the file's column order, for longstring."""
+    raw = prepared.items.copy()
+    lo_hi = prepared.scale_min + prepared.scale_max
+    for c in design.constructs.values():
+        for it in c.reverse:
+            raw[it] = lo_hi - raw[it]
+    order = [c for c in prepared.table.frame.columns if c in raw.columns]
+    return raw[order]
+
+
+def _data_section(table: LoadedTable, prepared: PreparedData, plan: MissingPlan) -> dict:
+    return {
+        "file": table.source,
+        "format": table.format,
+        "encoding": table.encoding,
+        "delimiter": table.delimiter,
+        "decimal": table.decimal,
+        "sheet": table.sheet,
+        "sha256": table.sha256,
+        "rows": prepared.n_rows,
+        "rows_analyzed": plan.rows_analyzed,
+        "items": len(prepared.items.columns),
+        "excluded_rows": plan.excluded_rows,
+        "excluded_by_reason": plan.excluded_by_reason,
+        "missing_cells": int(prepared.missing_cells),
+        "missing_share": float(prepared.missing_cells / max(prepared.items.size, 1)),
+        "response_scale": {"min": prepared.scale_min, "max": prepared.scale_max,
+                           "source": prepared.scale_source},
+        "missing_handling": plan.to_dict(),
+    }
+
+
+def _screening_section(screening, plan: MissingPlan) -> dict:
+    flagged = [
+        {"row": int(r), "reasons": list(screening.reasons.get(r, []))}
+        for r in screening.flagged_rows
+    ]
+    checks = {rule: {"rule": text, "flagged": int(screening.counts.get(rule, 0))}
+              for rule, text in screening.rules.items()}
+    per_row = screening.per_row
+    summary = {}
+    for col in ("longstring", "irv", "mahalanobis_d2", "share_missing"):
+        if col in per_row:
+            s = pd.to_numeric(per_row[col], errors="coerce")
+            summary[col] = {"median": _f(s.median()), "max": _f(s.max())}
+    return {
+        "flagged_rows": flagged,
+        "n_flagged": len(flagged),
+        "dropped": bool(plan.dropped_flagged),
+        "checks": checks,
+        "distribution": summary,
+        "note": ("Flagged rows are reported for review and kept in the analysis"
+                 if not plan.dropped_flagged else "Flagged rows were dropped before the analysis")
+                + "; screening rules are common practice, not proof of careless answering.",
+    }
+
+
+def _f(v: Any) -> float | None:
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return None
+    return v if np.isfinite(v) else None

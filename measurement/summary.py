@@ -1,0 +1,33 @@
+"""A short plain-text summary of a report, for the command line."""
+
+from __future__ import annotations
+
+
+def _num(v, fmt: str = ".2f") -> str:
+    return "—" if v is None else format(v, fmt)
+
+
+def text_summary(report: dict) -> str:
+    d = report["data"]
+    lines = [
+        f"samesource {report['tool']['version']}: {d['file']}",
+        f"  rows read {d['rows']}, analysed {d['rows_analyzed']} "
+        f"({d['missing_handling']['description']}), items {d['items']}",
+        f"  screening flagged {report['screening']['n_flagged']} row(s) for review",
+        "",
+        f"  {'construct':<18}{'role':<13}{'alpha':>7}{'omega':>7}{'CR':>7}{'AVE':>7}",
+    ]
+    for name, c in report["constructs"].items():
+        lines.append(f"  {name:<18}{c['role']:<13}{_num(c['alpha']):>7}{_num(c['omega']):>7}"
+                     f"{_num(c['composite_reliability']):>7}{_num(c['ave']):>7}")
+    mm = report.get("measurement_model")
+    if mm:
+        f = mm["fit"]
+        ci = f.get("rmsea_ci") or [None, None]
+        lines += ["", f"  measurement model ({mm['status']}): chi2 {_num(f['chi2'])} on {f['df']} df, "
+                      f"CFI {_num(f['cfi'], '.3f')}, TLI {_num(f['tli'], '.3f')}, RMSEA {_num(f['rmsea'], '.3f')} "
+                      f"[{_num(ci[0], '.3f')}, {_num(ci[1], '.3f')}], SRMR {_num(f['srmr'], '.3f')}"]
+    if report.get("warnings"):
+        lines += ["", f"  {len(report['warnings'])} warning(s):"]
+        lines += [f"  - {w['message']}" for w in report["warnings"]]
+    return "\n".join(lines)

@@ -1,0 +1,123 @@
+"""One verdict on common-method variance, from stated rules over every check's signal.
+
+Each signal needs both statistical significance (p < .05) and a size worth naming, so
+that large samples do not turn trivial method variance into a flag and several tests do
+not add up to a false alarm. Thresholds are ours and common practice; docs/method-variance.md
+states them with their reasons.
+"""
+
+from __future__ import annotations
+
+LEVELS = ("none", "minor", "substantial")
+
+# Share of substantive item variance due to method (squared standardized method loading).
+SHARE_MINOR = 0.03
+SHARE_SUBSTANTIAL = 0.10
+# Marker's smallest correlation with a substantive scale (Lindell & Whitney's r_M).
+R_M_MINOR = 0.05
+R_M_SUBSTANTIAL = 0.10
+
+RULES = [
+    f"Method factor (marker-identified, or plain when its identification checks pass) and measured "
+    f"method factor: share of substantive item variance due to method, when the factor improves fit "
+    f"significantly (p < .05): at least {SHARE_SUBSTANTIAL:.2f} is substantial, at least "
+    f"{SHARE_MINOR:.2f} minor.",
+    f"CFA marker technique: method share from the marker's factor, when adding it improves fit "
+    f"significantly: at least {SHARE_SUBSTANTIAL:.2f} substantial, at least {SHARE_MINOR:.2f} minor; "
+    "substantive correlations that change significantly when held at their baseline values: minor.",
+    f"Marker correlation r_M significantly above zero: at least {R_M_SUBSTANTIAL:.2f} substantial, at "
+    f"least {R_M_MINOR:.2f} minor.",
+    "Harman's test flagged (one factor, or a first factor above 50% of variance): minor at most, as the "
+    "test is insensitive and also flags strongly related constructs.",
+    "Full-collinearity VIF above 3.3 (Kock 2015): minor at most, as collinearity has other causes.",
+    "The verdict is the highest level any signal reaches; 'none' means no check found method variance "
+    "of a size worth naming, not that there is none.",
+]
+
+
+def _share_level(share: float | None, significant: bool) -> str:
+    if share is None or not significant:
+        return "none"
+    if share >= SHARE_SUBSTANTIAL:
+        return "substantial"
+    if share >= SHARE_MINOR:
+        return "minor"
+    return "none"
+
+
+def _sig(test: dict | None) -> bool:
+    return bool(test and test.get("p") is not None and test["p"] < 0.05)
+
+
+def verdict(mv: dict) -> dict:
+    """Weigh the method-variance sections (``report["method_variance"]`` without a verdict)."""
+    signals: list[tuple[str, str]] = []  # (level, reason)
+
+    mf = mv.get("method_factor")
+    if mf and mf.get("usable_as_correction"):
+        lvl = _share_level(mf.get("method_share"), _sig(mf["tests"]["method_vs_none"]))
+        signals.append((lvl, f"method factor ({mf['identified_by']}): method share of item variance "
+                             f"{_fmt(mf.get('method_share'))}, test p {_fmt(mf['tests']['method_vs_none']['p'], 3)}"))
+    elif mf:
+        signals.append(("none", "method factor: not usable here (" + "; ".join(mf.get("warnings") or ["checks failed"])
+                        + ")"))
+
+    mm = mv.get("measured_method")
+    if mm:
+        lvl = _share_level(mm.get("method_share"), _sig(mm["tests"]["method_vs_none"]))
+        signals.append((lvl, f"measured method '{mm['method_construct']}': method share "
+                             f"{_fmt(mm.get('method_share'))}, test p {_fmt(mm['tests']['method_vs_none']['p'], 3)}"))
+
+    cm = mv.get("cfa_marker")
+    if cm and cm.get("tests"):
+        lvl = _share_level(cm.get("method_share_overall"), _sig(cm["tests"].get("baseline_vs_equal")))
+        signals.append((lvl, f"CFA marker technique: method share {_fmt(cm.get('method_share_overall'))}, "
+                             f"test p {_fmt((cm['tests'].get('baseline_vs_equal') or {}).get('p'), 3)}"))
+        held = next((v for k, v in cm["tests"].items() if k.endswith("_vs_held")), None)
+        if _sig(held) and lvl != "none":
+            signals.append(("minor", "CFA marker technique: the substantive correlations change when "
+                                     "method variance is allowed for"))
+
+    mk = mv.get("marker")
+    if mk:
+        r_m, sig = mk["r_m"], mk["r_m_p"] is not None and mk["r_m_p"] < 0.05
+        lvl = "none"
+        if sig and r_m >= R_M_SUBSTANTIAL:
+            lvl = "substantial"
+        elif sig and r_m >= R_M_MINOR:
+            lvl = "minor"
+        signals.append((lvl, f"marker '{mk['marker']}': r_M {_fmt(r_m)} (p {_fmt(mk['r_m_p'], 3)})"))
+
+    h = mv.get("harman")
+    if h:
+        signals.append(("minor" if h["flag"] else "none",
+                        f"Harman: first factor {h['first_factor_share']:.0%} of variance, "
+                        f"{h['factors_eigen_gt_1']} eigenvalue(s) above 1"))
+
+    v = mv.get("collinearity_vif")
+    if v and v.get("values"):
+        top = max(v["values"].items(), key=lambda kv: kv[1])
+        signals.append(("minor" if v["flag"] else "none", f"full-collinearity VIF: highest {top[0]} {top[1]:.2f}"))
+
+    level = max((s[0] for s in signals), key=LEVELS.index, default="none")
+    raised = [r for lv, r in signals if lv == level and lv != "none"]
+    summary = {
+        "none": "No check found common-method variance of a size worth naming. A pass bounds the bias; "
+                "it does not prove its absence.",
+        "minor": "Some checks found modest common-method variance: read the corrected estimates beside "
+                 "the observed ones.",
+        "substantial": "Common-method variance is substantial: same-source associations are inflated. "
+                       "Lead with the corrected estimates, and prefer separating sources or times of "
+                       "measurement next time.",
+    }[level]
+    return {
+        "level": level,
+        "summary": summary,
+        "reasons": [f"[{lv}] {r}" for lv, r in signals],
+        "raised_by": raised,
+        "rules": RULES,
+    }
+
+
+def _fmt(v: float | None, digits: int = 2) -> str:
+    return "n/a" if v is None else f"{v:.{digits}f}"

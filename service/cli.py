@@ -1,0 +1,100 @@
+"""The `samesource` command line. It does I/O only; the work is measurement.pipeline.analyze."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from measurement import __version__
+from measurement.errors import InputError
+
+EXIT_BAD_INPUT = 2
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="samesource", description=(
+        "Check survey scales' reliability and validity, test for common-method variance, "
+        "and report corrected path estimates."))
+    p.add_argument("--version", action="version", version=f"samesource {__version__}")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    a = sub.add_parser("analyze", help="analyse a survey file with a design file; writes report.json")
+    a.add_argument("data", help="survey data: .csv, .tsv, .txt, .xlsx or .sav")
+    a.add_argument("--design", required=True, help="the study design (JSON)")
+    a.add_argument("--out", default="samesource-report", help="output folder (default ./samesource-report)")
+    a.add_argument("--sheet", help="worksheet of an .xlsx file (default: the first)")
+    a.add_argument("--missing", choices=["listwise", "fiml"], default="listwise",
+                   help="missing answers: drop incomplete rows (default) or full-information ML")
+    a.add_argument("--drop-flagged", action="store_true",
+                   help="drop rows that screening flags (by default they are reported and kept)")
+    a.add_argument("--fit-time-limit", type=float, default=60.0, metavar="SECONDS",
+                   help="time cap for each model fit (default 60)")
+    a.add_argument("--seed", type=int, default=0, help="seed for random starting values")
+    a.add_argument("--quiet", action="store_true", help="print only where the report is")
+
+    d = sub.add_parser("draft-design", help="print a draft design inferred from column names")
+    d.add_argument("data")
+    d.add_argument("--sheet")
+    return p
+
+
+def _analyze(args: argparse.Namespace) -> int:
+    from measurement.design import load_design
+    from measurement.options import AnalysisOptions
+    from measurement.pipeline import analyze
+    from measurement.report import dumps
+
+    design = load_design(args.design)
+    opts = AnalysisOptions.from_dict({
+        "missing": args.missing, "drop_flagged": args.drop_flagged,
+        "fit_time_limit": args.fit_time_limit, "seed": args.seed, "sheet": args.sheet,
+    })
+    result = analyze(args.data, design, opts)
+    out = Path(args.out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        (out / "report.json").write_text(dumps(result.report), encoding="utf-8")
+    except OSError as e:
+        raise InputError(f"cannot write the report there ({e.strerror})", code="bad_output",
+                         file=str(out)) from None
+    if not args.quiet:
+        print(result.summary())
+        print()
+    print(f"Report: {out / 'report.json'}")
+    return 0
+
+
+def _draft(args: argparse.Namespace) -> int:
+    from measurement.design import draft_design
+    from measurement.loading import load_table
+    from measurement.prepare import numeric_columns
+
+    table = load_table(args.data, sheet=args.sheet)
+    draft = draft_design(table.frame.columns, numeric=numeric_columns(table))
+    print(json.dumps(draft, indent=2, ensure_ascii=False))
+    if not draft["constructs"]:
+        print("No constructs found: item columns are expected to be named stem + number "
+              "(sup1, sup2, ...). Write the design by hand.", file=sys.stderr)
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    try:
+        if args.command == "analyze":
+            return _analyze(args)
+        if args.command == "draft-design":
+            return _draft(args)
+    except InputError as e:
+        print(f"samesource: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("samesource: interrupted", file=sys.stderr)
+        return 130
+    return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
