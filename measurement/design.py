@@ -9,10 +9,10 @@ object and returns a :class:`Design`; every error names the offending field and 
 from __future__ import annotations
 
 import json
+import pathlib
 import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
-import pathlib
 from typing import Any
 
 from .errors import DesignError

@@ -101,14 +101,17 @@ def rmsea_ci(chi2: float, df: int, n: int, level: float = 0.90) -> list[float] |
 
 def srmr(sample_cov: np.ndarray, implied_cov: np.ndarray) -> float:
     """Standardized root mean square residual: root mean square of the residual
-    correlations, lower triangle including the diagonal.
+    correlations, lower triangle including the diagonal (Bollen 1989; Hu & Bentler 1999).
 
     Each residual is the sample correlation minus the model-implied correlation,
-    ``s_ij/sqrt(s_ii s_jj) - sigma_ij/sqrt(sigma_ii sigma_jj)`` (Bollen 1989's form; the
-    diagonal terms are 0). This is the definition that reproduces the published .065 for the
-    three-factor Holzinger & Swineford model; the alternative that divides the residual
-    covariances by the sample sds (``(s_ij - sigma_ij)/sqrt(s_ii s_jj)``) gives .0652 vs
-    .0646 there, and the two agree to three decimals only by rounding (see the tests).
+    ``s_ij/sqrt(s_ii s_jj) - sigma_ij/sqrt(sigma_ii sigma_jj)``, so the diagonal terms are 0.
+    On the three-factor Holzinger & Swineford model it gives .0652, the published .065.
+    The other common definition, residual covariances divided by the sample sds
+    (:func:`srmr_by_sample_sd`), gives the same value there, because at the ML solution of a
+    scale-invariant model the implied variances equal the sample variances; the two differ
+    when a model constrains variances (fixed error variances, equality labels across
+    items). We report the residual-correlation form: it compares correlations with
+    correlations whatever the implied variances are.
     """
     s = np.asarray(sample_cov, dtype=float)
     m = np.asarray(implied_cov, dtype=float)

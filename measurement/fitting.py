@@ -19,13 +19,17 @@ Estimators
   by missing-data pattern; chi2 = -2(LL_model - LL_saturated), the saturated model fitted by
   EM (Dempster, Laird & Rubin 1977).
 
-Optimizer: a damped Fisher-scoring (Levenberg-Marquardt) iteration, i.e. Gauss-Newton with
-the expected information as the curvature matrix (Lee & Jennrich 1979 on scoring for
-covariance structures), an Armijo acceptance test and a damping factor that grows when a
-step fails (non-positive-definite Sigma or no decrease) and shrinks when it succeeds. The
-gradient is analytic (``G = Sigma^-1 - Sigma^-1 S Sigma^-1`` through the RAM chain rule);
-the information matrix is formed from whitened derivative vectors with no loop over
-parameters.
+Optimizer: damped Fisher scoring (Levenberg-Marquardt on the expected information; Lee &
+Jennrich 1979 compare scoring with other algorithms for covariance structures) with a
+symmetric rank-one secant correction for the misfit part of the Hessian (Dennis, Gay &
+Welsch 1981), an Armijo acceptance test and a damping factor that grows when a step fails
+(Sigma not positive definite, or no decrease) and shrinks when it succeeds. The gradient
+is analytic: ``dF/dSigma = Sigma^-1 - Sigma^-1 S Sigma^-1`` pushed through the RAM
+matrices; the information matrix is formed from whitened derivative vectors, with no
+Python loop over parameters.
+
+Time: :func:`fit_model` and :func:`refit` obey ``time_limit`` for everything (EM, all
+starts, standard errors) and report ``capped=True`` when they had to stop.
 """
 
 from __future__ import annotations
@@ -46,6 +50,16 @@ from .modelspec import ModelSpec, Param
 
 ParamKey = tuple[str, str, str]
 
+LOG2PI = math.log(2.0 * math.pi)
+
+# Status thresholds (documented in FitResult).
+GRAD_TOL = 1e-6          # converged: largest scaled gradient of F (or -2 LL / N) below this
+VAR_TOL = 1e-8           # proper: a free variance must exceed VAR_TOL x its variable's scale
+STD_LOAD_TOL = 1e-6      # proper: |standardized loading| <= 1 + STD_LOAD_TOL
+EIG_TOL = 1e-10          # identified: smallest/largest eigenvalue of the scaled information
+STD_SE_MAX = 10.0        # identified: no standardized SE above this
+SE_RATIO_MAX = 1e4       # identified: no SE above this multiple of the estimate's scale
+
 try:  # optional: present wherever scikit-learn is; the engine works without it
     from threadpoolctl import ThreadpoolController
 except ImportError:  # pragma: no cover
@@ -65,16 +79,6 @@ def _single_threaded_blas() -> contextlib.AbstractContextManager:
     if not _POOL:
         _POOL.append(ThreadpoolController())
     return _POOL[0].limit(limits=1, user_api="blas")
-
-LOG2PI = math.log(2.0 * math.pi)
-
-# Status thresholds (documented in FitResult).
-GRAD_TOL = 1e-6          # converged: largest |gradient| of F (or -2 LL / N) below this
-VAR_TOL = 1e-8           # proper: a free variance must exceed VAR_TOL x its variable's scale
-STD_LOAD_TOL = 1e-6      # proper: |standardized loading| <= 1 + STD_LOAD_TOL
-EIG_TOL = 1e-10          # identified: smallest/largest eigenvalue of the scaled information
-STD_SE_MAX = 10.0        # identified: no standardized SE above this
-SE_RATIO_MAX = 1e4       # identified: no SE above this multiple of the estimate's scale
 
 
 # ---------------------------------------------------------------------------------------
@@ -201,7 +205,8 @@ class _Structure:
                     r, c = c, r
             cell = (mat, r, c)
             if cell in used:
-                raise ValueError(f"{spec.name}: {par.key} and {used[cell]} are the same matrix cell")
+                raise ValueError(f"{spec.name}: {par.key} and {used[cell]} fill the same "
+                                 "matrix cell")
             used[cell] = par.key
             if mat == "A" and r == c:
                 raise ValueError(f"{spec.name}: {par.key} regresses a variable on itself")
@@ -247,7 +252,6 @@ class _Structure:
         self.Z = np.zeros((self.q, len(ek)))
         self.Z[ek, np.arange(len(ek))] = ew
         # Spec bookkeeping for standardization and reporting.
-        self.ops = np.array([p.op for p in spec.params])
         self.fixed_values = np.array([np.nan if p.free else float(p.value) for p in spec.params])
         self.keymap: dict[ParamKey, int] = {}
         for j, par in enumerate(spec.params):
@@ -369,10 +373,15 @@ class _TimeUp(Exception):
     pass
 
 
+class _Infeasible(Exception):
+    pass
+
+
 class _MLObjective:
     """F_ML of a structure on a sample covariance matrix; x holds the model parameters."""
 
     estimator = "ml"
+    deadline: _Deadline | None = None   # ML evaluations are quick: not checked inside
 
     def __init__(self, st: _Structure, S: np.ndarray, n: int) -> None:
         self.st = st
@@ -429,9 +438,12 @@ class _MLObjective:
 class _FIMLObjective:
     """-2 LL / N of the observed entries; x = (model parameters, saturated means).
 
-    Rows are grouped by missing-data pattern, and patterns with the same number of observed
-    variables are processed together as stacked arrays (no Python loop over rows or over
-    patterns of one size).
+    Rows are grouped by which variables they miss. Every pattern's inverse and
+    determinant come from the full precision matrix ``P = Sigma^-1`` through the Schur
+    complement (``Sigma_oo^-1 = P_oo - P_om P_mm^-1 P_mo``,
+    ``log|Sigma_oo| = log|Sigma| + log|P_mm|``), so a pattern costs O(p m^2) for its m
+    missing variables and the quadratic forms are one pass over the rows, instead of a
+    Cholesky factorization of every observed block.
     """
 
     estimator = "fiml"
@@ -445,185 +457,168 @@ class _FIMLObjective:
         self.dropped = int((~keep).sum())
         X = X[keep]
         obs = obs[keep]
-        self.n = X.shape[0]
-        if self.n < 2:
-            raise DataError(f"need at least 2 rows with an answer, got {self.n}")
+        self.n = n = X.shape[0]
+        if n < 2:
+            raise DataError(f"need at least 2 rows with an answer, got {n}")
         with np.errstate(invalid="ignore"):
             self.ac_mean = np.nanmean(X, axis=0)
             self.ac_var = np.nanvar(X, axis=0)
         self.ac_n = obs.sum(axis=0)
         if np.any(self.ac_n < 2) or np.any(~(self.ac_var > 0)):
             raise DataError("a variable has fewer than two answers or no variance")
+        self.obs = obs
+        self.Y0 = np.where(obs, X, 0.0)
+        self.k_sum = float(obs.sum())
         pats, inv = np.unique(obs, axis=0, return_inverse=True)
         inv = np.asarray(inv).reshape(-1)
         self.n_patterns = len(pats)
-        self.complete = self.n_patterns == 1 and bool(pats[0].all())
-        by_size: dict[int, list[int]] = {}
+        self.complete = bool(obs.all())
+        by_m: dict[int, list[int]] = {}
         for g, pat in enumerate(pats):
-            by_size.setdefault(int(pat.sum()), []).append(g)
+            m = int(p - pat.sum())
+            if m:
+                by_m.setdefault(m, []).append(g)
         self.groups = []
-        for k, gs in sorted(by_size.items()):
-            O = np.array([np.flatnonzero(pats[g]) for g in gs], dtype=int)
-            M = np.array([np.flatnonzero(~pats[g]) for g in gs], dtype=int).reshape(len(gs), p - k)
-            ns, ybars, covs = [], [], []
-            for g, o in zip(gs, O, strict=True):
-                rows = X[inv == g][:, o]
-                ybar = rows.mean(axis=0)
-                dev = rows - ybar
-                ns.append(rows.shape[0])
-                ybars.append(ybar)
-                covs.append(dev.T @ dev / rows.shape[0])
-            ns = np.array(ns, dtype=float)
-            self.groups.append({"k": k, "O": O, "M": M, "n": ns, "w": ns / self.n,
-                                "ybar": np.array(ybars), "S": np.array(covs),
+        for _, gs in sorted(by_m.items()):
+            M = np.array([np.flatnonzero(~pats[g]) for g in gs], dtype=int)
+            local = {g: i for i, g in enumerate(gs)}
+            rows = np.flatnonzero(np.isin(inv, gs))
+            pi = np.array([local[g] for g in inv[rows]], dtype=int)
+            counts = np.bincount(pi, minlength=len(gs)).astype(float)
+            self.groups.append({"M": M, "rows": rows, "pi": pi, "w": counts / n,
                                 "ii": np.arange(len(gs))[:, None, None]})
+        self.deadline: _Deadline | None = None
 
-    @staticmethod
-    def _block(Sig: np.ndarray, R: np.ndarray, C: np.ndarray) -> np.ndarray:
-        return Sig[R[:, :, None], C[:, None, :]]
+    def _core(self, Sig: np.ndarray, mu: np.ndarray, grad: bool):
+        """-2 LL / N at (Sigma, mu) and, if asked, d/dSigma (as G with tr(G dSigma)) and
+        d/dmu; also returns P and the exact expected information block of mu."""
+        L = _chol(Sig)
+        if L is None:
+            return None
+        Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
+        P = Li.T @ Li
+        n = self.n
+        Et = (self.Y0 - mu) * self.obs
+        U = Et @ P
+        logdet = n * 2.0 * float(np.sum(np.log(np.diag(L))))
+        Q = np.zeros((self.p, self.p)) if grad else None
+        for gr in self.groups:
+            if self.deadline is not None and self.deadline.over():
+                raise _TimeUp
+            M, rows, pi = gr["M"], gr["rows"], gr["pi"]
+            Pmm = P[M[:, :, None], M[:, None, :]]
+            try:
+                Lm = np.linalg.cholesky(Pmm)
+            except np.linalg.LinAlgError:
+                return None
+            logdet += float(np.sum(np.bincount(pi, minlength=len(M)) *
+                                   2.0 * np.sum(np.log(np.diagonal(Lm, axis1=1, axis2=2)),
+                                                axis=1)))
+            # V_g = P[:, M_g] Lm_g^-T, so that P_:M P_MM^-1 P_M: = V_g V_g'.
+            V = np.linalg.solve(Lm, P[:, M].transpose(1, 2, 0)).transpose(0, 2, 1)
+            Vr = V[pi]
+            c = np.matmul(Et[rows][:, None, :], Vr)                 # (r, 1, m)
+            U[rows] -= np.matmul(Vr, c.transpose(0, 2, 1))[:, :, 0]
+            if grad:
+                Vw = (V * np.sqrt(gr["w"])[:, None, None]).transpose(1, 0, 2).reshape(self.p, -1)
+                Q += Vw @ Vw.T
+        quad = float(np.sum(Et * U))
+        f = (self.k_sum * LOG2PI + logdet + quad) / n
+        if not np.isfinite(f):
+            return None
+        if not grad:
+            return f, None, None, None
+        Wsum = P - Q                         # sum_g w_g Sigma_oo^-1 (embedded)
+        G = Wsum - U.T @ U / n
+        gmu = -2.0 * U.sum(axis=0) / n
+        return f, (G + G.T) / 2.0, gmu, 2.0 * Wsum
 
-    def _eval(self, x: np.ndarray, grad: bool, info: bool):
+    def value(self, x: np.ndarray) -> float:
+        mo = self.st.moments(x[: self.st.q])
+        if mo is None:
+            return math.inf
+        r = self._core(mo[1][: self.p, : self.p], x[self.st.q:], False)
+        return math.inf if r is None else r[0]
+
+    def _grad(self, x: np.ndarray, info: bool):
         st = self.st
         mo = st.moments(x[: st.q])
         if mo is None:
             return None
         E, Om = mo
-        p = self.p
-        Sig = Om[:p, :p]
-        mu = x[st.q:]
-        tot = 0.0
-        G = np.zeros((p, p))
-        gmu = np.zeros(p)
-        Hmu = np.zeros((p, p))
-        Ht = np.zeros((st.q, st.q))
-        if info:
-            Amat, Bmat = st.deriv_vectors(E, Om)
-        for gr in self.groups:
-            O, w, k = gr["O"], gr["w"], gr["k"]
-            try:
-                L = np.linalg.cholesky(self._block(Sig, O, O))
-            except np.linalg.LinAlgError:
-                return None
-            diag = np.diagonal(L, axis1=1, axis2=2)
-            if not np.all(diag > 0) or not np.all(np.isfinite(diag)):
-                return None
-            Li = np.linalg.inv(L)
-            Si = np.einsum("gji,gjk->gik", Li, Li)
-            d = gr["ybar"] - mu[O]
-            T = gr["S"] + d[:, :, None] * d[:, None, :]
-            tr = np.einsum("gij,gji->g", Si, T)
-            tot += float(np.sum(gr["n"] * (k * LOG2PI + 2.0 * np.sum(np.log(diag), axis=1) + tr)))
-            if grad:
-                SiT = Si @ T
-                np.add.at(G, (O[:, :, None], O[:, None, :]),
-                          w[:, None, None] * (Si - SiT @ Si))
-                np.add.at(gmu, O, -2.0 * w[:, None] * np.einsum("gij,gj->gi", Si, d))
-            if info:
-                np.add.at(Hmu, (O[:, :, None], O[:, None, :]), 2.0 * w[:, None, None] * Si)
-                ne = Amat.shape[1]
-                chunk = max(1, int(2_000_000 // max(ne * ne, 1)))
-                h = np.zeros((ne, ne))
-                for s in range(0, len(w), chunk):
-                    sl = slice(s, s + chunk)
-                    At = Li[sl] @ Amat[O[sl]]
-                    Bt = Li[sl] @ Bmat[O[sl]]
-                    gaa = np.einsum("gki,gkj->gij", At, At)
-                    gbb = np.einsum("gki,gkj->gij", Bt, Bt)
-                    gab = np.einsum("gki,gkj->gij", At, Bt)
-                    h += np.einsum("g,gij->ij", w[sl], gaa * gbb + gab * gab.transpose(0, 2, 1))
-                Ht += st.Z @ (2.0 * h) @ st.Z.T
-        f = tot / self.n
-        if not np.isfinite(f):
+        Sig = Om[: self.p, : self.p]
+        r = self._core(Sig, x[st.q:], True)
+        if r is None:
             return None
-        if not grad:
-            return f, None, None
-        Amat, Bmat = st.deriv_vectors(E, Om) if not info else (Amat, Bmat)
+        f, G, gmu, Hmu = r
+        Amat, Bmat = st.deriv_vectors(E, Om)
         g = np.concatenate([st.Z @ (2.0 * np.sum(Amat * (G @ Bmat), axis=0)), gmu])
         if not info:
             return f, g, None
+        # Curvature for the optimizer: complete-data expected information for the model
+        # parameters (an upper bound of the observed-data one: the missing-information
+        # principle, Orchard & Woodbury 1972), exact expected information for the means.
+        L = np.linalg.cholesky(Sig)
+        Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
         H = np.zeros((self.nx, self.nx))
-        H[: st.q, : st.q] = Ht
+        H[: st.q, : st.q] = _info_from_whitened(Li @ Amat, Li @ Bmat, st.Z)
         H[st.q:, st.q:] = Hmu
         return f, g, H
 
-    def value(self, x: np.ndarray) -> float:
-        r = self._eval(x, False, False)
-        return math.inf if r is None else r[0]
-
     def full(self, x: np.ndarray):
-        """(-2 LL / N, gradient, expected information of -2 LL / N by pattern) or None."""
-        return self._eval(x, True, True)
+        return self._grad(x, True)
 
     def gradient(self, x: np.ndarray) -> np.ndarray | None:
-        r = self._eval(x, True, False)
+        r = self._grad(x, False)
         return None if r is None else r[1]
 
     def loglik(self, f: float) -> float:
         return -0.5 * self.n * f
 
-    def _sat_ll(self, mu: np.ndarray, Sig: np.ndarray) -> float | None:
-        tot = 0.0
-        for gr in self.groups:
-            O, k = gr["O"], gr["k"]
-            try:
-                L = np.linalg.cholesky(self._block(Sig, O, O))
-            except np.linalg.LinAlgError:
-                return None
-            Li = np.linalg.inv(L)
-            Si = np.einsum("gji,gjk->gik", Li, Li)
-            d = gr["ybar"] - mu[O]
-            T = gr["S"] + d[:, :, None] * d[:, None, :]
-            tr = np.einsum("gij,gji->g", Si, T)
-            logdet = 2.0 * np.sum(np.log(np.diagonal(L, axis1=1, axis2=2)), axis=1)
-            tot += float(np.sum(gr["n"] * (k * LOG2PI + logdet + tr)))
-        return -0.5 * tot
-
     def saturated(self, deadline: _Deadline, max_iter: int = 20000):
         """EM estimates of the unrestricted mean and covariance (Dempster, Laird & Rubin
         1977; Little & Rubin 2002, ch. 11) and their log-likelihood; None if cut off by the
-        deadline. Stops when the log-likelihood gains less than 1e-12 x (1 + |LL|)."""
-        p = self.p
+        deadline. The E-step uses the precision matrix: E(y_m | y_o) = mu_m -
+        P_mm^-1 P_mo (y_o - mu_o), cov(y_m | y_o) = P_mm^-1. Stops when the log-likelihood
+        gains less than 1e-12 x (1 + |LL|)."""
+        n = self.n
         if self.complete:
-            gr = self.groups[0]
-            mu, Sig = gr["ybar"][0].copy(), gr["S"][0].copy()
-            return mu, Sig, self._sat_ll(mu, Sig)
+            mu = self.Y0.mean(axis=0)
+            dev = self.Y0 - mu
+            Sig = dev.T @ dev / n
+            r = self._core(Sig, mu, False)
+            return None if r is None else (mu, Sig, -0.5 * n * r[0])
         mu = self.ac_mean.copy()
         Sig = np.diag(self.ac_var)
         last = -math.inf
         for _ in range(max_iter):
             if deadline.over():
                 return None
-            ll = self._sat_ll(mu, Sig)
-            if ll is None:
+            L = _chol(Sig)
+            if L is None:
                 return None
+            r = self._core(Sig, mu, False)
+            if r is None:
+                return None
+            ll = -0.5 * n * r[0]
             if ll - last < 1e-12 * (1.0 + abs(ll)):
                 return mu, Sig, ll
             last = ll
-            T1 = np.zeros(p)
-            T2 = np.zeros((p, p))
+            P = linalg.cho_solve((L, True), np.eye(self.p))
+            Yc = self.Y0.copy()
+            Et = (self.Y0 - mu) * self.obs
+            extra = np.zeros((self.p, self.p))
             for gr in self.groups:
-                O, M, ns, ii = gr["O"], gr["M"], gr["n"], gr["ii"]
-                ybar, Sg = gr["ybar"], gr["S"]
-                npat, k = O.shape
-                yc = np.empty((npat, p))
-                C = np.zeros((npat, p, p))
-                rows = np.arange(npat)[:, None]
-                yc[rows, O] = ybar
-                C[ii, O[:, :, None], O[:, None, :]] = Sg
-                if k < p:
-                    Soo = self._block(Sig, O, O)
-                    Som = self._block(Sig, O, M)
-                    B = np.linalg.solve(Soo, Som).transpose(0, 2, 1)      # (g, mis, obs)
-                    yc[rows, M] = mu[M] + np.einsum("gij,gj->gi", B, ybar - mu[O])
-                    BS = B @ Sg
-                    C[ii, M[:, :, None], O[:, None, :]] = BS
-                    C[ii, O[:, :, None], M[:, None, :]] = BS.transpose(0, 2, 1)
-                    C[ii, M[:, :, None], M[:, None, :]] = (
-                        self._block(Sig, M, M) - B @ Som + BS @ B.transpose(0, 2, 1))
-                T1 += ns @ yc
-                T2 += np.einsum("g,gij->ij", ns, C + yc[:, :, None] * yc[:, None, :])
-            mu = T1 / self.n
-            Sig = T2 / self.n - np.outer(mu, mu)
+                M, rows, pi, ii = gr["M"], gr["rows"], gr["pi"], gr["ii"]
+                Pmm = P[M[:, :, None], M[:, None, :]]
+                Cm = np.linalg.inv(Pmm)                               # cov(y_m | y_o)
+                PmE = np.einsum("rmp,rp->rm", P[M][pi], Et[rows])     # P_mo (y_o - mu_o)
+                Yc[rows[:, None], M[pi]] = mu[M[pi]] - np.einsum("rij,rj->ri", Cm[pi], PmE)
+                add = np.zeros((len(M), self.p, self.p))
+                add[ii, M[:, :, None], M[:, None, :]] = Cm
+                extra += np.einsum("g,gij->ij", gr["w"] * n, add)
+            mu = Yc.mean(axis=0)
+            Sig = (Yc.T @ Yc + extra) / n - np.outer(mu, mu)
             Sig = (Sig + Sig.T) / 2.0
         return mu, Sig, last
 
@@ -638,6 +633,16 @@ class _FIMLObjective:
 # ---------------------------------------------------------------------------------------
 
 
+def _scaled_grad(g: np.ndarray, H: np.ndarray) -> float:
+    """Largest |g_k| / sqrt(H_kk): the gradient in units of each parameter's information
+    scale, so the test does not depend on the units of the variables."""
+    if g.size == 0:
+        return 0.0
+    d = np.abs(np.diag(H))
+    d = np.maximum(d, 1e-12 * max(float(np.max(d)), 1e-300))
+    return float(np.max(np.abs(g) / np.sqrt(d)))
+
+
 @dataclass
 class _Run:
     x: np.ndarray
@@ -650,7 +655,7 @@ class _Run:
 
 
 def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
-              secant: bool = True) -> _Run | None:
+              secant: bool = True, lam0: float = 1e-3) -> _Run | None:
     """Damped Fisher scoring (Levenberg-Marquardt on the expected information).
 
     Curvature matrix: the expected information H plus a symmetric rank-one secant
@@ -658,74 +663,84 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
     quasi-Newton idea of Dennis, Gay & Welsch 1981). Pure scoring converges only linearly
     when the model misfits (rate about .7 on the Holzinger-Swineford model); the
     correction makes it superlinear. C is dropped whenever H + C is not positive definite.
-    Stops when the largest |gradient| is below 1e-10, when steps stop changing F, when the
-    damping grows past 1e12 (no descent possible) or at the deadline.
+    Stops when the largest scaled gradient (see :func:`_scaled_grad`) is below 1e-10, when
+    steps stop changing F, when the damping grows past 1e12 (no descent possible) or at the
+    deadline.
     """
+    # The first evaluation always completes, so there is a point to report; after it the
+    # objective itself watches the deadline (FIML evaluations can be long).
+    obj.deadline = None
     st = obj.full(x0)
     if st is None:
         return None
     x = np.array(x0, dtype=float)
     f, g, H = st
     C = np.zeros_like(H)
-    lam = 1e-3
+    lam = lam0
     it = 0
     stalls = 0
     capped = False
-    while it < max_iter:
-        if deadline.over():
-            capped = True
-            break
-        if np.max(np.abs(g), initial=0.0) < 1e-10:
-            break
-        dg = np.diag(H).copy()
-        scale = max(float(np.max(np.abs(dg), initial=0.0)), 1e-300)
-        dg = np.maximum(dg, 1e-10 * scale)
-        B = H + C
-        accepted = False
-        while lam < 1e12:
+    obj.deadline = deadline
+    try:
+        while it < max_iter:
             if deadline.over():
                 capped = True
                 break
-            try:
-                c = linalg.cho_factor(B + np.diag(lam * dg), lower=True, check_finite=False)
-                d = -linalg.cho_solve(c, g, check_finite=False)
-                ok = bool(np.all(np.isfinite(d)))
-            except (linalg.LinAlgError, ValueError):
-                ok = False
-            if not ok:
-                if C.any():
-                    C[:] = 0.0
-                    B = H
-                else:
-                    lam = max(lam * 10.0, 1e-8)
-                continue
-            slope = float(g @ d)
-            fn = obj.value(x + d)
-            if np.isfinite(fn) and fn <= f + 1e-4 * slope:
-                accepted = True
+            if _scaled_grad(g, H) < 1e-10:
                 break
-            lam = max(lam * 10.0, 1e-8)
-        if not accepted:
-            break
-        xn = x + d
-        stn = obj.full(xn)
-        if stn is None:  # pragma: no cover - value() just accepted this point
-            break
-        it += 1
-        small = (f - fn) <= 1e-15 * (1.0 + abs(f)) and np.max(np.abs(d)) <= 1e-9 * (
-            1.0 + np.max(np.abs(x)))
-        gn, Hn = stn[1], stn[2]
-        if secant:
-            r = (gn - g) - Hn @ d - C @ d
-            rs = float(r @ d)
-            if abs(rs) > 1e-8 * float(np.linalg.norm(r) * np.linalg.norm(d)) and rs != 0.0:
-                C = C + np.outer(r, r) / rs
-        x, f, g, H = xn, stn[0], gn, Hn
-        lam = max(lam / 10.0, 1e-12)
-        stalls = stalls + 1 if small else 0
-        if stalls >= 3:
-            break
-    success = (not capped) and float(np.max(np.abs(g), initial=0.0)) <= GRAD_TOL
+            dg = np.diag(H).copy()
+            scale = max(float(np.max(np.abs(dg), initial=0.0)), 1e-300)
+            dg = np.maximum(dg, 1e-10 * scale)
+            B = H + C
+            accepted = False
+            while lam < 1e12:
+                if deadline.over():
+                    capped = True
+                    break
+                try:
+                    c = linalg.cho_factor(B + np.diag(lam * dg), lower=True, check_finite=False)
+                    d = -linalg.cho_solve(c, g, check_finite=False)
+                    ok = bool(np.all(np.isfinite(d)))
+                except (linalg.LinAlgError, ValueError):
+                    ok = False
+                if not ok:
+                    if C.any():
+                        C[:] = 0.0
+                        B = H
+                    else:
+                        lam = max(lam * 10.0, 1e-8)
+                    continue
+                slope = float(g @ d)
+                fn = obj.value(x + d)
+                if np.isfinite(fn) and fn <= f + 1e-4 * slope:
+                    accepted = True
+                    break
+                lam = max(lam * 10.0, 1e-8)
+            if not accepted:
+                break
+            xn = x + d
+            stn = obj.full(xn)
+            if stn is None:  # pragma: no cover - value() just accepted this point
+                break
+            it += 1
+            small = (f - fn) <= 1e-15 * (1.0 + abs(f)) and np.max(np.abs(d)) <= 1e-9 * (
+                1.0 + np.max(np.abs(x)))
+            gn, Hn = stn[1], stn[2]
+            if secant:
+                r = (gn - g) - Hn @ d - C @ d
+                rs = float(r @ d)
+                if abs(rs) > 1e-8 * float(np.linalg.norm(r) * np.linalg.norm(d)) and rs != 0.0:
+                    C = C + np.outer(r, r) / rs
+            x, f, g, H = xn, stn[0], gn, Hn
+            lam = max(lam / 10.0, 1e-12)
+            stalls = stalls + 1 if small else 0
+            if stalls >= 3:
+                break
+    except _TimeUp:
+        capped = True
+    finally:
+        obj.deadline = None
+    success = (not capped) and _scaled_grad(g, H) <= GRAD_TOL
     return _Run(x=x, f=f, g=g, H=H, iterations=it, success=success, capped=capped)
 
 
@@ -839,8 +854,8 @@ def _feasible(obj, x: np.ndarray, safe: np.ndarray) -> np.ndarray | None:
 def _perturb(st: _Structure, x0: np.ndarray, S: np.ndarray, rng: np.random.Generator
              ) -> np.ndarray:
     """A random start around the rule start: variances scaled by exp(N(0, .4^2)), loadings
-    and paths moved by N(0, .5^2) in units of the implied sd ratio, covariances by
-    N(0, .2^2) correlation units."""
+    and paths moved by N(0, .3^2) in units of the implied sd ratio, covariances by
+    N(0, .2^2) in correlation units."""
     mo = st.moments(x0)
     var = np.abs(np.diag(mo[1])) if mo is not None else np.ones(st.m)
     var[: st.p] = np.diag(S)
@@ -851,7 +866,7 @@ def _perturb(st: _Structure, x0: np.ndarray, S: np.ndarray, rng: np.random.Gener
         j = members[0]
         r, c = st.rows[j], st.cols[j]
         if st.is_a[j]:
-            x[k] = x0[k] + 0.5 * z[k] * sd[r] / sd[c]
+            x[k] = x0[k] + 0.3 * z[k] * sd[r] / sd[c]
         elif r == c:
             x[k] = x0[k] * math.exp(0.4 * z[k])
         else:
@@ -889,10 +904,26 @@ def _start_from(st: _Structure, start: Any, base: np.ndarray) -> np.ndarray:
 class FitResult:
     """A fitted model.
 
+    Main attributes: ``params`` (one row per spec parameter, in spec order: op, lhs, rhs,
+    label, free, estimate, se, z, p, std, std_se); ``x`` (the free-parameter vector, one
+    entry per free parameter or label); ``param_cov`` (their covariance matrix, None when the
+    information matrix is singular); ``implied`` (model-implied covariance of the observed
+    variables, in ``spec.observed`` order); ``all_cov`` (implied covariance of all
+    variables, observed and latent); ``sample_cov`` (the covariance the model was fitted to:
+    the sample one for ML, the EM estimate for FIML); ``means`` (FIML only: the saturated
+    mean vector); ``fmin`` (F_ML at the minimum, or -2 LL / N for FIML); the fit indices
+    (see :meth:`fit_indices`).
+
+    Standardized values (``std``, completely standardized, with the model-implied sds of
+    all variables): b sd(rhs)/sd(lhs) for a regression, lambda sd(latent)/sd(item) for a
+    loading, c/(sd sd) for a covariance (so an error variance becomes 1 - R^2); ``std_se``
+    by the delta method (central-difference Jacobian times ``param_cov``).
+
     Status flags and their thresholds:
 
-    * ``converged``: the optimizer stopped normally (not at the time cap, not stalled) with
-      the largest |gradient| of F (ML) or of -2 LL / N (FIML) at most 1e-6.
+    * ``converged``: the optimizer stopped normally (not at the time cap) with the largest
+      gradient of F (ML) or of -2 LL / N (FIML), each element divided by the square root of
+      its information diagonal (so independent of the variables' units), at most 1e-6.
     * ``proper``: no Heywood case: every free variance (error, latent, residual) above
       1e-8 x its variable's scale, the model-implied covariance matrix of the latent
       variables positive definite, every |standardized loading| <= 1 + 1e-6. Offenders are
@@ -902,9 +933,14 @@ class FitResult:
       largest eigenvalue above 1e-10, and no SE explodes: no standardized SE above 10 and no
       SE above 1e4 x max(|estimate|, its natural unit sd(lhs)/sd(rhs) or sd(lhs)sd(rhs)).
       With ``compute_se=False`` only the eigenvalue and raw-SE tests run.
-    * ``capped``: the time limit stopped the fit.
+    * ``capped``: the time limit stopped the fit (during EM, a start or the SEs). When it
+      struck after a start had finished, the reported point is that finished solution and
+      ``converged`` describes it.
     * ``status``: the first that applies of "capped", "not_converged", "unidentified",
       "improper", else "ok".
+
+    ``warnings`` holds plain sentences for a report; ``heywood`` the offending parameters.
+    ``iterations`` counts the scoring steps of the reported start.
     """
 
     spec: ModelSpec
@@ -926,7 +962,7 @@ class FitResult:
     all_cov: pd.DataFrame
     sample_cov: np.ndarray
     means: pd.Series | None
-    chi2: float
+    chi2: float | None
     df: int
     p: float | None
     cfi: float | None
@@ -980,7 +1016,8 @@ class FitResult:
                 else format(v, fmt)
 
         width = 78
-        ci = "n/a" if self.rmsea_ci is None else f"[{num(self.rmsea_ci[0])}, {num(self.rmsea_ci[1])}]"
+        ci = "n/a" if self.rmsea_ci is None else \
+            f"[{num(self.rmsea_ci[0])}, {num(self.rmsea_ci[1])}]"
         left = [("Model:", self.spec.name), ("Estimator:", self.estimator.upper()),
                 ("Observations:", str(self.n)), ("Free parameters:", str(len(self.x))),
                 ("Status:", self.status), ("Starts tried:", str(self.starts_tried)),
@@ -1071,7 +1108,10 @@ def _num_jacobian(fun, x: np.ndarray, deadline: _Deadline) -> np.ndarray:
         xp[k] += h
         xm = x.copy()
         xm[k] -= h
-        J[:, k] = (np.asarray(fun(xp)) - np.asarray(fun(xm))) / (2.0 * h)
+        fp, fm = fun(xp), fun(xm)
+        if fp is None or fm is None:
+            raise _Infeasible
+        J[:, k] = (np.asarray(fp) - np.asarray(fm)) / (2.0 * h)
     return J
 
 
@@ -1153,17 +1193,15 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         return np.concatenate([x, mu])
 
     # Candidate starts.
-    rule = _rule_start(st, S_start)
     safe = _safe_start(st, S_start)
     starts: list[np.ndarray] = []
+    warm_full = None
     if warm_x is not None:
-        starts.append(warm_x[: st.q] if len(warm_x) >= st.q else rule)
+        starts.append(warm_x[: st.q])
         if fiml and len(warm_x) == obj.nx:
             warm_full = warm_x
-        else:
-            warm_full = None
     else:
-        warm_full = None
+        rule = _rule_start(st, S_start)
         if start is not None:
             starts.append(_start_from(st, start, rule))
         starts.append(rule)
@@ -1185,7 +1223,8 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         if xs is None:
             continue
         # Even past the deadline the first start is evaluated, so there is a point to report.
-        run = _optimize(obj, xs, deadline)
+        # A warm start is near a solution: begin with almost undamped scoring steps.
+        run = _optimize(obj, xs, deadline, lam0=1e-6 if warm_x is not None else 1e-3)
         if run is None:
             continue
         runs.append((run, _check_proper(st, run.x[: st.q], S_ref)))
@@ -1230,13 +1269,18 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
     se_failed: list[str] = []
     if fiml and compute_se and not capped:
         try:
+            obj.deadline = deadline
             H = _num_jacobian(obj.gradient, x_all, deadline)
             info = (obj.n / 2.0) * (H + H.T) / 2.0
         except _TimeUp:
             capped = True
             info = None
-        except TypeError:  # gradient() returned None: a step left the feasible region
-            info = (obj.n / 2.0) * best.H
+        except _Infeasible:
+            info = None
+            info_failed.append("the observed information could not be computed (a numerical "
+                               "step left the positive definite region)")
+        finally:
+            obj.deadline = None
     else:
         info = (obj.n / 2.0) * best.H
     if info is not None:
@@ -1315,14 +1359,13 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
             chi2 = max(-2.0 * (ll - sat[2]), 0.0)
             base_chi2 = max(-2.0 * (obj.baseline_loglik() - sat[2]), 0.0)
         else:
-            chi2 = math.nan
-            base_chi2 = math.nan
+            chi2 = base_chi2 = None
     else:
         chi2 = max(n * best.f, 0.0)
         ll = -0.5 * n * (best.f + obj.logdet_s + p + p * LOG2PI)
         base_f = float(np.sum(np.log(np.diag(obj.S)))) - obj.logdet_s
         base_chi2 = n * base_f
-    if np.isfinite(chi2):
+    if chi2 is not None:
         p_val = fx.chi2_pvalue(chi2, df)
         cfi_v = fx.cfi(chi2, df, base_chi2, base_df)
         tli_v = fx.tli(chi2, df, base_chi2, base_df)
@@ -1336,20 +1379,20 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
     aic = -2.0 * ll + 2.0 * k_total
     bic = -2.0 * ll + k_total * math.log(n)
     if df < 0:
-        warnings.append(f"The model has more free parameters ({q}) than the {moments_count} "
-                        "variances and covariances it explains, so it is not identified.")
-        info_failed.append("negative degrees of freedom")
+        info_failed.append(f"it has more free parameters ({q}) than the {moments_count} "
+                           "variances and covariances it explains")
         identified = False
 
     converged = best.success and not best.capped
     proper = not heywood
     if capped:
-        warnings.insert(0, f"The fit was stopped at its time limit of {deadline.end - deadline.t0:g} s "
-                        f"after {tried} of {len(starts)} starting points; the estimates are the "
-                        "best point reached and may not be a solution.")
+        limit = deadline.end - deadline.t0
+        warnings.insert(0, f"The fit was stopped at its time limit of {limit:g} s after "
+                        f"{tried} of {len(starts)} starting points; the estimates are the best "
+                        "point reached and may not be a solution.")
     if not converged and not best.capped:
-        warnings.append(f"The optimizer did not converge (largest gradient "
-                        f"{float(np.max(np.abs(best.g), initial=0.0)):.2g}).")
+        warnings.append(f"The optimizer did not converge (largest scaled gradient "
+                        f"{_scaled_grad(best.g, best.H):.2g}).")
     if heywood:
         warnings.append("Improper solution (Heywood case): " + "; ".join(heywood) + ".")
     if info_failed or se_failed:
@@ -1373,10 +1416,11 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         heywood=heywood, elapsed=deadline.elapsed(), starts_tried=tried,
         iterations=best.iterations, x=x.copy(), params=table,
         implied=Sig.copy(), all_cov=pd.DataFrame(Om, index=list(st.names), columns=list(st.names)),
-        sample_cov=np.array(S_ref), means=means, chi2=float(chi2), df=int(df),
+        sample_cov=np.array(S_ref), means=means,
+        chi2=None if chi2 is None else float(chi2), df=int(df),
         p=p_val, cfi=cfi_v, tli=tli_v, rmsea=rm, rmsea_ci=rm_ci, srmr=srmr,
         loglik=float(ll), aic=float(aic), bic=float(bic),
-        baseline_chi2=None if not np.isfinite(base_chi2) else float(base_chi2),
+        baseline_chi2=None if base_chi2 is None else float(base_chi2),
         baseline_df=int(base_df), fmin=float(best.f), param_cov=param_cov, _structure=st)
 
 

@@ -212,6 +212,13 @@ def _degenerate(fit: FitResult, design: Design, mm: FitResult | None) -> list[st
     return reasons
 
 
+def _only_method_negative(fit: FitResult) -> bool:
+    """True when the method variance is the only negative variance of the solution."""
+    t = fit.params
+    var = t[(t["op"] == "cov") & (t["lhs"] == t["rhs"]) & (t["lhs"] != METHOD)]
+    return bool((var["estimate"] > 0).all())
+
+
 def method_factor_section(design: Design, fitter: Fitter, mm: FitResult) -> dict:
     use_marker = design.marker is not None
     equal = fitter(method_factor_model(design, use_marker=use_marker, equal_loadings=True))
@@ -229,9 +236,8 @@ def method_factor_section(design: Design, fitter: Fitter, mm: FitResult) -> dict
     # A negative method variance (a Heywood case) is what sampling error gives when the true
     # method variance is zero: read it as none detected, not as a failed model.
     equal_ok = equal.converged and equal.identified and not equal.capped and (
-        equal.proper or (method_var is not None and method_var < 0
-                         and set(equal.heywood) <= {f"{METHOD} variance"}))
-    degenerate = _degenerate(free, design, mm) if free.converged else []
+        equal.proper or (method_var is not None and method_var < 0 and _only_method_negative(equal)))
+    degenerate = _degenerate(free, design, mm)
     free_ok = (free.status == "ok" and not degenerate and test_free["p"] is not None
                and test_free["p"] < ALPHA)
     if degenerate:

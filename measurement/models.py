@@ -13,7 +13,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 from .design import Construct, Design
-from .modelspec import Param, ModelSpec
+from .modelspec import ModelSpec, Param
 
 
 def _factor(name: str, items: Sequence[str]) -> list[Param]:

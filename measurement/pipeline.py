@@ -18,17 +18,18 @@ from . import __version__
 from .design import Design, parse_design
 from .errors import DataError
 from .loading import LoadedTable, load_table
+from .measurement_report import measurement_model_section
+from .method_variance import method_variance_section
 from .missing import MissingPlan, plan_missing
 from .options import AnalysisOptions
 from .prepare import PreparedData, prepare
-from .measurement_report import measurement_model_section
 from .reliability_report import construct_reliability
 from .report import finalize_report
 from .screening import screen_respondents
 
 Progress = Callable[[str, int, int], None]
 
-STAGES = ("load", "screen", "reliability", "measurement_model", "report")
+STAGES = ("load", "screen", "reliability", "measurement_model", "method_variance", "report")
 
 
 @dataclass
@@ -84,7 +85,10 @@ def analyze(
     step("measurement_model", 3, total)
     mm = measurement_model_section(dsg, plan, opts, fits, constructs, warnings)
 
-    step("report", 4, total)
+    step("method_variance", 4, total)
+    mv = method_variance_section(dsg, plan, opts, fits, fits["measurement_model"])
+
+    step("report", 5, total)
     report: dict[str, Any] = {
         "schema": "samesource.report/1",
         "tool": {"name": "samesource", "version": __version__},
@@ -92,6 +96,7 @@ def analyze(
         "screening": _screening_section(screening, plan),
         "constructs": constructs,
         "measurement_model": mm,
+        "method_variance": mv,
         "options": opts.to_dict(),
         "design": dsg.to_dict(),
     }

@@ -657,3 +657,29 @@ def simulate_survey(spec: SurveySpec, *, return_latent: bool = False
     latent = pd.DataFrame({c.name: m if c.role == "method" else traits[:, idx[c.name]]
                            for c in spec.constructs} | {METHOD_FACTOR: m})
     return df, truth, latent
+
+
+def design_for(spec: SurveySpec, *, scale: bool = True) -> dict:
+    """The study design (our JSON format) that matches a simulated survey: constructs with
+    their items, roles and reverse-keyed items, the spec's paths, and the response scale."""
+    constructs = {}
+    for c in spec.constructs:
+        names = c.item_names()
+        entry: dict[str, Any] = {"items": names}
+        if c.reverse:
+            entry["reverse"] = [names[i - 1] for i in c.reverse]
+        if c.role != "substantive":
+            entry["role"] = c.role
+        constructs[c.name] = entry
+    design: dict[str, Any] = {
+        "constructs": constructs,
+        "paths": [{"outcome": o, "predictors": list(p)} for o, p in spec.paths.items()],
+        "id_column": ID_COLUMN,
+    }
+    if scale and spec.scale_points:
+        design["response_scale"] = {"min": 1, "max": spec.scale_points}
+    if spec.missing_code is not None:
+        design["missing_codes"] = [spec.missing_code]
+    if spec.n_teams:
+        design["group_column"] = TEAM_COLUMN
+    return design

@@ -1,0 +1,129 @@
+"""The command line as an analyst uses it: exit codes, messages, files written."""
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+SAMPLE = ROOT / "sample_surveys" / "staff_survey.csv"
+DESIGN = ROOT / "sample_surveys" / "staff_survey_design.json"
+
+
+def run(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "service.cli", *map(str, args)],
+                          capture_output=True, text=True, cwd=cwd or ROOT, timeout=600)
+
+
+def small_design(tmp_path: Path, **extra) -> Path:
+    d = {"constructs": {"sup": {"items": ["sup1", "sup2", "sup3"]},
+                        "eng": {"items": ["eng1", "eng2", "eng3"]}},
+         "paths": [{"outcome": "eng", "predictors": ["sup"]}],
+         "response_scale": {"min": 1, "max": 5}}
+    d.update(extra)
+    p = tmp_path / "design.json"
+    p.write_text(json.dumps(d), encoding="utf-8")
+    return p
+
+
+def small_csv(tmp_path: Path, rows: list[str] | None = None, name: str = "survey.csv") -> Path:
+    import numpy as np
+
+    rng = np.random.default_rng(1)
+    lines = ["respondent,sup1,sup2,sup3,eng1,eng2,eng3"]
+    for i in range(120):
+        f = rng.normal()
+        vals = np.clip(np.round(3 + f + rng.normal(size=6) * 0.8), 1, 5).astype(int)
+        lines.append(f"R{i},{','.join(map(str, vals))}")
+    if rows:
+        lines[1:1 + len(rows)] = rows
+    p = tmp_path / name
+    p.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return p
+
+
+def write(folder: Path, name: str, content: str | bytes) -> Path:
+    p = folder / name
+    if isinstance(content, bytes):
+        p.write_bytes(content)
+    else:
+        p.write_text(content, encoding="utf-8")
+    return p
+
+
+def assert_one_clean_error(res: subprocess.CompletedProcess, *words: str) -> None:
+    assert res.returncode == 2, res.stderr
+    assert "Traceback" not in res.stderr
+    lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1, res.stderr
+    for w in words:
+        assert w in lines[0], lines[0]
+
+
+def test_analyze_small_file_writes_report(tmp_path):
+    out = tmp_path / "out"
+    res = run("analyze", small_csv(tmp_path), "--design", small_design(tmp_path), "--out", out)
+    assert res.returncode == 0, res.stderr
+    report = json.loads((out / "report.json").read_text(encoding="utf-8"))
+    assert report["schema"] == "samesource.report/1"
+    assert report["data"]["rows"] == 120
+    assert set(report["constructs"]) == {"sup", "eng"}
+    assert "Report:" in res.stdout
+
+
+@pytest.mark.parametrize("make, words", [
+    (lambda t: write(t, "empty.csv", b""), ["empty.csv", "empty"]),
+    (lambda t: write(t, "head.csv", "sup1,sup2,sup3,eng1,eng2,eng3\n"), ["head.csv", "no data rows"]),
+    (lambda t: write(t, "pic.csv", b"\x89PNG\r\n\x1a\n" + b"\0" * 64), ["pic.csv", "PNG"]),
+    (lambda t: small_csv(t, ["R0,1,2,3,4,5,5,9"]), ["survey.csv", "row 2"]),
+    (lambda t: small_csv(t, ["R0,1,two,3,4,5,5"]), ["survey.csv", "row 2", "sup2", "two"]),
+    (lambda t: small_csv(t, ["R0,1,2,3,4,5,8"]), ["survey.csv", "row 2", "eng3", "8"]),
+    (lambda t: write(t, "dup.csv", "sup1,sup1,sup3,eng1,eng2,eng3\n1,2,3,4,5,5\n"), ["dup.csv", "sup1", "twice"]),
+])
+def test_bad_files_exit_2_with_one_message(tmp_path, make, words):
+    assert_one_clean_error(run("analyze", make(tmp_path), "--design", small_design(tmp_path)), *words)
+
+
+def test_constant_item_is_named(tmp_path):
+    p = small_csv(tmp_path)
+    lines = p.read_text().splitlines()
+    lines = [lines[0]] + [",".join(ln.split(",")[:3] + ["3"] + ln.split(",")[4:]) for ln in lines[1:]]
+    p.write_text("\n".join(lines) + "\n")
+    assert_one_clean_error(run("analyze", p, "--design", small_design(tmp_path)), "sup3")
+
+
+@pytest.mark.parametrize("design, words", [
+    ({"constructs": {"sup": {"items": ["sup1"]}, "eng": {"items": ["eng1", "eng2"]}}}, ["constructs.sup.items", "at least 2"]),
+    ({"constructs": {"sup": {"items": ["sup1", "sup2", "supX"]}, "eng": {"items": ["eng1", "eng2"]}}},
+     ["constructs.sup.items[2]", "supX"]),
+    ({"constructs": {"sup": {"items": ["sup1", "sup2"]}, "eng": {"items": ["eng1", "eng2"]}},
+      "paths": [{"outcome": "eng", "predictors": ["pay"]}]}, ["paths[0].predictors[0]", "pay"]),
+    ({"constructs": {"sup": {"items": ["sup1", "sup2"], "role": "boss"}}}, ["constructs.sup.role", "boss"]),
+])
+def test_bad_designs_exit_2_naming_the_field(tmp_path, design, words):
+    p = tmp_path / "d.json"
+    p.write_text(json.dumps(design))
+    assert_one_clean_error(run("analyze", small_csv(tmp_path), "--design", p), *words)
+
+
+def test_design_file_not_json(tmp_path):
+    p = tmp_path / "d.json"
+    p.write_text("{constructs: }")
+    assert_one_clean_error(run("analyze", small_csv(tmp_path), "--design", p), "d.json", "not valid JSON")
+
+
+def test_missing_data_file(tmp_path):
+    assert_one_clean_error(run("analyze", tmp_path / "none.csv", "--design", small_design(tmp_path)), "none.csv")
+
+
+def test_draft_design_prints_a_valid_design(tmp_path):
+    res = run("draft-design", SAMPLE)
+    assert res.returncode == 0, res.stderr
+    draft = json.loads(res.stdout)
+    from measurement.design import parse_design
+
+    d = parse_design(draft)
+    assert {"sup", "eng"} <= set(d.constructs)
+    assert draft["id_column"] == "respondent" and draft["group_column"] == "team"

@@ -1,0 +1,115 @@
+"""Common-method checks end to end, on simulated surveys whose truth is known.
+
+Invented data with known truth (measurement.simulate): the method share of item variance is
+method_loading^2 by construction, and the verdict must say "none" when it is zero.
+"""
+
+import numpy as np
+import pytest
+
+from measurement.design import parse_design
+from measurement.fitting import Moments, fit_model
+from measurement.method_variance import Fitter, _degenerate, method_factor_section
+from measurement.missing import plan_missing
+from measurement.models import METHOD, measurement_model, method_factor_model
+from measurement.options import AnalysisOptions
+from measurement.pipeline import analyze
+from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+
+
+def survey(method_loading: float, seed: int, *, n: int = 800, marker: bool = True,
+           measured: bool = False, scale_points: int | None = None) -> SurveySpec:
+    cons = [ConstructSpec("sup", 4, 0.7, method_loading), ConstructSpec("eng", 4, 0.7, method_loading),
+            ConstructSpec("stay", 3, 0.7, method_loading, prefix="sty")]
+    if marker:
+        cons.append(ConstructSpec("wth", 3, 0.7, method_loading, role="marker"))
+    if measured:
+        cons.append(ConstructSpec("imp", 4, 0.65, role="method"))
+    return SurveySpec(constructs=cons, paths={"eng": {"sup": 0.3}, "stay": {"eng": 0.45}}, n=n,
+                      scale_points=scale_points, seed=seed)
+
+
+def run(spec: SurveySpec) -> dict:
+    df, _ = simulate_survey(spec)
+    return analyze(df.to_csv(index=False).encode(), design_for(spec), name="sim.csv").report["method_variance"]
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_method_share_recovered_and_flagged(seed):
+    # Truth: every item 0.70 trait + 0.35 method, so the method share of item variance is 0.1225.
+    mv = run(survey(0.35, seed))
+    mf = mv["method_factor"]
+    assert mf["identified_by"] == "marker" and mf["usable_as_correction"]
+    assert mf["method_share"] == pytest.approx(0.1225, abs=0.04)
+    assert mv["verdict"]["level"] == "substantial"
+    # The CFA marker technique takes the marker's own trait as the method source: it sees only
+    # the part of the marker that is method (methods.md measured 0.022 on similar data).
+    assert mv["cfa_marker"]["method_share_overall"] < mf["method_share"]
+    assert mv["marker"]["flag"]
+
+
+def test_measured_method_scale_recovers_share():
+    # The measured method scale's items load 0.65 on the method factor only.
+    mv = run(survey(0.35, 7, measured=True))
+    assert mv["measured_method"]["method_share"] == pytest.approx(0.1225, abs=0.04)
+    assert mv["measured_method"]["flag"]
+
+
+def test_verdict_none_without_method_variance_in_95_percent_of_seeds():
+    # 20 seeds, no method variance at all: "none" in at least 19 (95%). Observed: see the
+    # assertion message when it fails; in development every seed gave "none".
+    levels = [run(survey(0.0, seed, n=500, scale_points=5))["verdict"]["level"] for seed in range(20)]
+    assert levels.count("none") >= 19, levels
+
+
+def test_degenerate_free_loadings_are_detected_and_not_used():
+    # methods.md: free method loadings can absorb the substantive covariance (method loadings
+    # 0.7-0.8 on substantive items, 0.17 on the marker). Fit the free model with its method
+    # loadings held at such values and check the detector and the section refuse it.
+    spec = survey(0.35, 3)
+    df, _ = simulate_survey(spec)
+    design = parse_design(design_for(spec))
+    free = method_factor_model(design, use_marker=True, equal_loadings=False)
+    marker_items = set(design.marker.items)
+    held = free.with_params([
+        p.__class__("load", METHOD, p.rhs, free=False, value=0.17 if p.rhs in marker_items else 0.75)
+        if p.op == "load" and p.lhs == METHOD else p for p in free.params])
+    data = Moments.from_data(df[list(free.observed)].to_numpy(float), names=free.observed)
+    degenerate_fit = fit_model(held, data)
+    mm = fit_model(measurement_model(design), Moments.from_data(
+        df[design.items].to_numpy(float), names=tuple(design.items)))
+    reasons = _degenerate(degenerate_fit, design, mm)
+    assert reasons and any("far above" in r for r in reasons)
+
+    from measurement.loading import load_table
+    from measurement.prepare import prepare
+
+    prepared = prepare(load_table(df.to_csv(index=False).encode(), name="sim.csv"), design)
+    opts = AnalysisOptions()
+    plan = plan_missing(prepared, opts)
+    fits = {free.name: degenerate_fit}  # the free model "returns" the degenerate solution
+    section = method_factor_section(design, Fitter(plan, opts, fits), mm)
+    assert section["loadings"] == "equal"
+    assert any("degenerate" in w for w in section["warnings"])
+    assert section["method_share"] == pytest.approx(0.1225, abs=0.04)
+
+
+def test_plain_method_factor_without_marker_is_not_a_correction_when_unidentified():
+    # No marker, tau-equivalent loadings, no method variance: the plain latent method factor
+    # is empirically unidentified (methods.md) and must not be offered as a correction.
+    mv = run(survey(0.0, 11, marker=False))
+    mf = mv["method_factor"]
+    assert mf["identified_by"].startswith("loading pattern")
+    assert not mf["usable_as_correction"] or (mf["method_share"] or 0) < 0.03
+    assert mv["marker"] is None and mv["cfa_marker"] is None
+    assert mv["verdict"]["level"] == "none"
+
+
+def test_harman_flags_a_single_dominant_factor():
+    # Everything on one factor (no traits to speak of, large method loadings): Harman flags.
+    spec = SurveySpec(constructs=[ConstructSpec("sup", 4, 0.2, 0.8), ConstructSpec("eng", 4, 0.2, 0.8),
+                                  ConstructSpec("wth", 3, 0.2, 0.8, role="marker")], n=400, scale_points=None, seed=5)
+    mv = run(spec)
+    assert mv["harman"]["flag"] and mv["harman"]["factors_eigen_gt_1"] == 1
+    assert mv["verdict"]["level"] == "substantial"
+    assert np.isfinite(mv["harman"]["first_factor_share"])
