@@ -15,7 +15,7 @@ $(STAMP): pyproject.toml
 install: $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/samesource analyze sample_surveys/staff_survey.csv --design sample_surveys/staff_survey_design.json --out samesource-report
+	$(BIN)/samesource analyze sample_surveys/staff_survey.csv --design sample_surveys/staff_survey_design.json --missing fiml --out samesource-report
 	@echo "Report written to samesource-report/report.json"
 
 test: $(STAMP)

@@ -27,6 +27,11 @@ def text_summary(report: dict) -> str:
         lines += ["", f"  measurement model ({mm['status']}): chi2 {_num(f['chi2'])} on {f['df']} df, "
                       f"CFI {_num(f['cfi'], '.3f')}, TLI {_num(f['tli'], '.3f')}, RMSEA {_num(f['rmsea'], '.3f')} "
                       f"[{_num(ci[0], '.3f')}, {_num(ci[1], '.3f')}], SRMR {_num(f['srmr'], '.3f')}"]
+    mv = report.get("method_variance")
+    if mv:
+        v = mv["verdict"]
+        lines += ["", f"  common-method variance: {v['level'].upper()}: {v['summary']}"]
+        lines += [f"    {r}" for r in v["reasons"]]
     if report.get("warnings"):
         lines += ["", f"  {len(report['warnings'])} warning(s):"]
         lines += [f"  - {w['message']}" for w in report["warnings"]]
