@@ -42,11 +42,12 @@ class Fitter:
     def __init__(self, plan: MissingPlan, opts: AnalysisOptions, fits: dict[str, Any]):
         self.plan, self.opts, self.fits = plan, opts, fits
 
-    def __call__(self, spec: ModelSpec, start: FitResult | None = None) -> FitResult:
+    def __call__(self, spec: ModelSpec, start: FitResult | dict | None = None,
+                 n_starts: int | None = None) -> FitResult:
         if spec.name in self.fits:
             return self.fits[spec.name]
         fit = fit_model(spec, self.plan.data_for(list(spec.observed)), time_limit=self.opts.fit_time_limit,
-                        n_starts=self.opts.n_starts, seed=self.opts.seed, start=start)
+                        n_starts=n_starts or self.opts.n_starts, seed=self.opts.seed, start=start)
         self.fits[spec.name] = fit
         return fit
 
@@ -227,7 +228,17 @@ def method_factor_section(design: Design, fitter: Fitter, mm: FitResult) -> dict
     no_method = fitter(none_spec.with_params(
         [p if not (p.op == "cov" and p.lhs == METHOD) else p.__class__("cov", METHOD, METHOD, free=False, value=0.0)
          for p in none_spec.params], name=none_spec.name + ":without", description="no method factor"))
-    free = fitter(method_factor_model(design, use_marker=use_marker, equal_loadings=False), start=None)
+    # Free loadings start from the equal-loading solution (loadings sqrt of its method variance);
+    # two starts suffice: the free model is only a check on the equal one.
+    start = None
+    if equal.converged:
+        start = {(p.op, p.lhs, p.rhs): float(v) for p, v in zip(equal.spec.params, equal.params["estimate"],
+                                                                    strict=True)}
+        m = float(np.sqrt(max(equal.est("cov", METHOD, METHOD), 0.01)))
+        start = {k: (m if k[0] == "load" and k[1] == METHOD else v) for k, v in start.items()
+                 if k != ("cov", METHOD, METHOD)}
+    free = fitter(method_factor_model(design, use_marker=use_marker, equal_loadings=False), start=start,
+                  n_starts=2)
     warnings: list[str] = []
     test_equal = chi2_difference(no_method, equal)
     test_free = chi2_difference(equal, free)

@@ -203,3 +203,102 @@ def cfa_marker_models(design: Design, marker_loadings: dict[str, float],
             "free": "marker loads on every substantive item with free loadings",
         }[base] + (", substantive correlations held at the baseline values" if held else ""),
     )
+
+
+# --- Structural models: the key paths ----------------------------------------------------
+
+def path_constructs(design: Design) -> list[str]:
+    """Substantive constructs that appear in a path, in design order."""
+    named = {p.outcome for p in design.paths} | {x for p in design.paths for x in p.predictors}
+    return [c.name for c in design.substantive if c.name in named]
+
+
+def with_paths(spec: ModelSpec, design: Design, *, name: str | None = None,
+               description: str | None = None) -> ModelSpec:
+    """Turn a model whose trait factors are freely correlated into the declared path model.
+
+    Each outcome's correlations with other traits are replaced by its regressions on its
+    predictors, and its fixed unit variance by a free residual variance; its first loading is
+    then fixed at 1 to set its scale (standardized estimates do not depend on that choice).
+    Exogenous traits keep unit variances and their correlations.
+    """
+    outcomes = {p.outcome for p in design.paths}
+    traits = {c.name for c in design.substantive}
+    first_item: dict[str, str] = {}
+    for p in spec.params:
+        if p.op == "load" and p.lhs in outcomes and p.lhs not in first_item:
+            first_item[p.lhs] = p.rhs
+    params: list[Param] = []
+    for p in spec.params:
+        if p.op == "cov" and p.lhs != p.rhs and {p.lhs, p.rhs} <= traits and (
+                p.lhs in outcomes or p.rhs in outcomes):
+            continue
+        if p.op == "cov" and p.lhs == p.rhs and p.lhs in outcomes:
+            params.append(Param("cov", p.lhs, p.lhs, value=0.5))
+            continue
+        if p.op == "load" and p.lhs in outcomes and first_item.get(p.lhs) == p.rhs and p.free:
+            params.append(Param("load", p.lhs, p.rhs, free=False, value=1.0))
+            continue
+        params.append(p)
+    for path in design.paths:
+        params += [Param("reg", path.outcome, x, value=0.0) for x in path.predictors]
+    return spec.with_params(params, name=name or f"{spec.name}+paths",
+                            description=description or f"{spec.description}; with the declared paths")
+
+
+def latent_path_model(design: Design) -> ModelSpec:
+    """Full SEM: the path constructs' measurement model with the declared paths."""
+    cons = [design.constructs[n] for n in path_constructs(design)]
+    return with_paths(measurement_model(design, cons), design, name="latent",
+                      description="full structural model: each construct a factor of its items, the declared "
+                                  "paths among them")
+
+
+def score_name(construct: str) -> str:
+    return f"{construct}__score"
+
+
+def single_indicator_model(design: Design, error_variances: dict[str, float], *, name: str,
+                           equations: list | None = None) -> ModelSpec:
+    """Each construct measured by its scale score with a fixed error variance
+    (errors-in-variables; Bollen 1989, ch. 5): latent = score's true part.
+
+    ``error_variances`` maps construct -> (1 - reliability) * var(score). ``equations``
+    (default: all declared paths) limits the model to some equations.
+    """
+    paths = equations if equations is not None else list(design.paths)
+    names = [n for n in path_constructs(design)
+             if any(n == p.outcome or n in p.predictors for p in paths)]
+    outcomes = {p.outcome for p in paths}
+    params: list[Param] = []
+    for n in names:
+        params.append(Param("load", n, score_name(n), free=False, value=1.0))
+        params.append(Param("cov", score_name(n), score_name(n), free=False, value=float(error_variances[n])))
+        params.append(Param("cov", n, n, value=0.5))
+    exo = [n for n in names if n not in outcomes]
+    params += _correlate(exo)
+    for p in paths:
+        params += [Param("reg", p.outcome, x, value=0.0) for x in p.predictors]
+    return ModelSpec(name=name, observed=tuple(score_name(n) for n in names), latent=tuple(names),
+                     params=tuple(params),
+                     description="scale scores as single indicators with error variances fixed from reliability")
+
+
+def method_path_model(design: Design, method_spec: ModelSpec) -> ModelSpec:
+    """A method-factor model (marker-identified, plain or measured) with the declared paths."""
+    return with_paths(method_spec, design, name=f"{method_spec.name}+paths")
+
+
+def assumed_method_model(design: Design, item_variances: dict[str, float], share: float) -> ModelSpec:
+    """The latent path model with a method factor whose loadings are FIXED so that ``share``
+    of every item's variance is method (loading sqrt(share * var(item)), factor variance 1,
+    orthogonal to the traits): the sensitivity curve's model."""
+    base = latent_path_model(design)
+    items = list(base.observed)
+    params = list(base.params)
+    params += [Param("load", METHOD, it, free=False, value=float((share * item_variances[it]) ** 0.5))
+               for it in items]
+    params.append(Param("cov", METHOD, METHOD, free=False, value=1.0))
+    return ModelSpec(name=f"assumed_method:{share:.3f}", observed=base.observed,
+                     latent=base.latent + (METHOD,), params=tuple(params),
+                     description=f"latent path model with {share:.0%} of every item's variance fixed as method")

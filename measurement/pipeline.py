@@ -22,6 +22,7 @@ from .measurement_report import measurement_model_section
 from .method_variance import method_variance_section
 from .missing import MissingPlan, plan_missing
 from .options import AnalysisOptions
+from .paths_report import paths_section
 from .prepare import PreparedData, prepare
 from .reliability_report import construct_reliability
 from .report import finalize_report
@@ -29,7 +30,7 @@ from .screening import screen_respondents
 
 Progress = Callable[[str, int, int], None]
 
-STAGES = ("load", "screen", "reliability", "measurement_model", "method_variance", "report")
+STAGES = ("load", "screen", "reliability", "measurement_model", "method_variance", "paths", "report")
 
 
 @dataclass
@@ -54,6 +55,7 @@ def analyze(
     *,
     name: str | None = None,
     progress: Progress | None = None,
+    executor=None,
 ) -> Analysis:
     """Run the whole analysis. Raises :class:`~measurement.errors.InputError` for bad input."""
     opts = options if isinstance(options, AnalysisOptions) else AnalysisOptions.from_dict(options)
@@ -88,7 +90,11 @@ def analyze(
     step("method_variance", 4, total)
     mv = method_variance_section(dsg, plan, opts, fits, fits["measurement_model"])
 
-    step("report", 5, total)
+    step("paths", 5, total)
+    paths = paths_section(dsg, plan, opts, fits, mv, warnings, executor=executor,
+                          progress=lambda done, n: step("bootstrap", done, n))
+
+    step("report", 6, total)
     report: dict[str, Any] = {
         "schema": "samesource.report/1",
         "tool": {"name": "samesource", "version": __version__},
@@ -97,6 +103,7 @@ def analyze(
         "constructs": constructs,
         "measurement_model": mm,
         "method_variance": mv,
+        "paths": paths,
         "options": opts.to_dict(),
         "design": dsg.to_dict(),
     }

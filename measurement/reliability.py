@@ -49,19 +49,28 @@ def _complete_numeric(items: pd.DataFrame) -> np.ndarray:
     return items.dropna(axis=0, how="any").to_numpy(dtype=float)
 
 
+def alpha_from_cov(cov: np.ndarray) -> float | None:
+    """Cronbach's (1951) alpha from an item covariance matrix (any divisor); None when the
+    sum of the items has no variance."""
+    k = cov.shape[0]
+    total_var = cov.sum()
+    # A sum score with no variance (constant items, or items that cancel out) leaves
+    # alpha as 0/0 or a division by zero.
+    if k < 2 or not total_var > 1e-12 * max(np.trace(cov), 1.0):
+        return None
+    return float(k / (k - 1) * (1.0 - np.trace(cov) / total_var))
+
+
 def _alpha_from_array(x: np.ndarray) -> tuple[float | None, str | None]:
     n, k = x.shape
     if k < 2:
         return None, "alpha needs at least 2 items"
     if n < 2:
         return None, "alpha needs at least 2 complete rows"
-    cov = np.cov(x, rowvar=False, ddof=1)
-    total_var = cov.sum()
-    # A sum score with no variance (constant items, or items that cancel out) leaves
-    # alpha as 0/0 or a division by zero.
-    if not total_var > 1e-12 * max(np.trace(cov), 1.0):
+    alpha = alpha_from_cov(np.cov(x, rowvar=False, ddof=1))
+    if alpha is None:
         return None, "the sum of the items has no variance"
-    return float(k / (k - 1) * (1.0 - np.trace(cov) / total_var)), None
+    return alpha, None
 
 
 def cronbach_alpha(items: pd.DataFrame, confidence: float = 0.95) -> AlphaResult:

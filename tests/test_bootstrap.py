@@ -1,0 +1,443 @@
+"""The bootstrap (percentile and BCa intervals) and the executors it runs on.
+
+Reference for the intervals: scipy.stats.bootstrap (percentile and BCa; Efron & Tibshirani
+1993, ch. 13-14). Fed our replicates through its ``bootstrap_result`` argument it computes its
+intervals from exactly the same replicates, which allows exact comparisons; with its own
+replicates the intervals agree up to Monte Carlo error.
+"""
+
+from __future__ import annotations
+
+import os
+import types
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from measurement.bootstrap import (
+    FAILED_SHARE_NOTE,
+    MIN_SUCCESSFUL,
+    BootstrapResult,
+    acceleration_from_jackknife,
+    bootstrap,
+    jackknife_groups_for,
+    replicate_indices,
+)
+from measurement.executor import (
+    SERIAL_MAX_TASKS,
+    Executor,
+    LocalExecutor,
+    SerialExecutor,
+    default_executor,
+)
+
+SERIAL = SerialExecutor()
+
+
+# -- statistics (module level: picklable for the process pool) ------------------------------
+
+
+def mean_stat(data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    return np.atleast_1d(data[idx].mean(axis=0))
+
+
+def corr_stat(data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    return np.array([np.corrcoef(data[idx, 0], data[idx, 1])[0, 1]])
+
+
+def mean_sd_stat(data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    x = data[idx]
+    return np.concatenate([x.mean(axis=0), x.std(axis=0, ddof=1)])
+
+
+def scipy_corr(x: np.ndarray, y: np.ndarray, axis: int = -1) -> np.ndarray:
+    # vectorized Pearson correlation for scipy.stats.bootstrap (the reference)
+    xc = x - x.mean(axis=axis, keepdims=True)
+    yc = y - y.mean(axis=axis, keepdims=True)
+    return (xc * yc).sum(axis=axis) / np.sqrt((xc**2).sum(axis=axis) * (yc**2).sum(axis=axis))
+
+
+def flaky_stat(data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """Raises in some replicates and fails its second estimate (NaN) in others, both decided
+    by the drawn rows so the test can recount them."""
+    if idx[0] % 10 == 3:
+        raise ValueError("did not converge")
+    second = np.nan if idx[1] % 4 == 2 else data[idx, 0].std()
+    return np.array([data[idx, 0].mean(), second])
+
+
+def distinct_rows(data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    # every replicate has fewer distinct rows than the full data: all below the estimate
+    return np.array([float(np.unique(idx).size)])
+
+
+def mostly_failing(data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    return np.array([data[idx, 0].mean() if idx[0] < 3 else np.nan])
+
+
+def wrong_length(data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    return np.zeros(3) if idx[0] == 0 else np.zeros(2)
+
+
+def die(data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    os._exit(3)  # a worker crash (as from a segfault or the OOM killer)
+
+
+class WarmNewtonSD:
+    """Standard deviation by Newton's iteration for s^2 = v, started from the previous
+    answer: a picklable statistic carrying a warm start, like a refit from the last fit.
+    Returns (sd, iterations used)."""
+
+    def __init__(self, start: float = 1.0):
+        self.start = start
+
+    def __call__(self, data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+        x = data[idx, 0]
+        v = float(np.mean((x - x.mean()) ** 2))
+        s, it = self.start, 0
+        while abs(s * s - v) > 1e-13 * v and it < 200:
+            s = 0.5 * (s + v / s)
+            it += 1
+        self.start = s
+        return np.array([s, float(it)])
+
+
+# -- fixtures -----------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def pool():
+    with LocalExecutor(2) as ex:
+        yield ex
+
+
+@pytest.fixture(scope="module")
+def normal60() -> np.ndarray:
+    # simulated: n = 60 pairs with correlation 0.5 (skewed x, so BCa differs from percentile)
+    rng = np.random.default_rng(20240601)
+    z = rng.standard_normal((60, 2))
+    x = np.exp(0.5 * z[:, 0])
+    y = 0.5 * z[:, 0] + np.sqrt(0.75) * z[:, 1]
+    return np.column_stack([x, y])
+
+
+def _scipy_with_our_replicates(res: BootstrapResult, samples: tuple, fn, j: int, *,
+                               method: str, paired: bool = False):
+    """scipy.stats.bootstrap's interval computed from our replicates of estimate j
+    (``bootstrap_result`` with ``n_resamples=0``: scipy draws nothing and, for BCa, runs its own
+    delete-one jackknife on the data)."""
+    prior = types.SimpleNamespace(bootstrap_distribution=res.replicates[:, j])
+    return stats.bootstrap(samples, fn, n_resamples=0, bootstrap_result=prior, method=method,
+                           paired=paired, confidence_level=res.confidence, vectorized=True)
+
+
+# -- seeding ----------------------------------------------------------------------------
+
+
+def test_replicate_rows_come_from_the_spawned_seed_sequences():
+    # numpy's SeedSequence.spawn is the documented scheme: child r of SeedSequence(seed)
+    children = np.random.SeedSequence(123).spawn(40)
+    for r in (0, 7, 39):
+        want = np.random.default_rng(children[r]).integers(0, 25, size=25)
+        np.testing.assert_array_equal(replicate_indices(123, r, 25), want)
+
+
+# -- exact agreement with scipy on the same replicates ---------------------------------------
+
+
+def test_mean_intervals_equal_scipy_on_the_same_replicates(normal60):
+    x = normal60[:, 0]
+    res = bootstrap(mean_stat, x, n_boot=2000, seed=11, executor=SERIAL, jackknife_groups=60)
+    assert res.jackknife_groups == 60  # n <= groups: delete-one, as scipy
+    # scipy.stats.bootstrap (reference), fed the same replicates
+    for method, ours in (("percentile", res.ci_percentile[0]), ("BCa", res.ci_bca[0])):
+        ref = _scipy_with_our_replicates(res, (x,), np.mean, 0, method=method)
+        np.testing.assert_allclose(ours, [ref.confidence_interval.low,
+                                          ref.confidence_interval.high], rtol=1e-12)
+    # scipy.stats.bootstrap's standard_error is the ddof=1 sd of the replicates
+    assert res.se[0] == pytest.approx(ref.standard_error, rel=1e-12)
+    assert res.notes == []
+
+
+def test_correlation_intervals_equal_scipy_on_the_same_replicates(normal60):
+    res = bootstrap(corr_stat, normal60, n_boot=2000, seed=12, executor=SERIAL,
+                    jackknife_groups=100)
+    samples = (normal60[:, 0], normal60[:, 1])
+    for method, ours in (("percentile", res.ci_percentile[0]), ("BCa", res.ci_bca[0])):
+        # scipy.stats.bootstrap (reference), paired resampling, same replicates
+        ref = _scipy_with_our_replicates(res, samples, scipy_corr, 0, method=method, paired=True)
+        np.testing.assert_allclose(ours, [ref.confidence_interval.low,
+                                          ref.confidence_interval.high], rtol=1e-10)
+    assert res.acceleration[0] != 0.0 and np.isfinite(res.bias_correction[0])
+
+
+def test_bca_levels_match_efron_tibshirani_formulas(normal60):
+    # Efron & Tibshirani (1993) section 14.3, written out here independently: z0 from the
+    # share of replicates below the estimate (ties one half, as scipy), a from the delete-one
+    # jackknife, levels Phi(z0 + (z0 + z)/(1 - a (z0 + z))), then numpy's quantiles
+    x = normal60[:, 0]
+    res = bootstrap(mean_stat, x, n_boot=1500, seed=5, confidence=0.9, executor=SERIAL,
+                    jackknife_groups=60)
+    r = res.replicates[:, 0]
+    theta = x.mean()
+    z0 = stats.norm.ppf((np.sum(r < theta) + 0.5 * np.sum(r == theta)) / r.size)
+    jack = np.array([np.delete(x, i).mean() for i in range(x.size)])
+    d = jack.mean() - jack
+    a = np.sum(d**3) / (6 * np.sum(d**2) ** 1.5)
+    zs = stats.norm.ppf([0.05, 0.95])
+    levels = stats.norm.cdf(z0 + (z0 + zs) / (1 - a * (z0 + zs)))
+    assert res.bias_correction[0] == pytest.approx(z0, abs=1e-12)
+    assert res.acceleration[0] == pytest.approx(a, rel=1e-10)
+    np.testing.assert_allclose(res.ci_bca[0], np.quantile(r, levels), rtol=1e-12)
+    np.testing.assert_allclose(res.ci_percentile[0], np.quantile(r, [0.05, 0.95]), rtol=1e-12)
+
+
+def test_grouped_jackknife_acceleration_equals_delete_one_on_the_group_sums():
+    # For the mean, deleting a group of m rows acts like deleting one of the G group sums:
+    # the grouped acceleration must equal scipy.stats.bootstrap's delete-one acceleration for
+    # the mean of the group sums (reference). Compared through the BCa interval scipy
+    # computes from the same replicates, rescaled to the group-sum mean (x n/G).
+    rng = np.random.default_rng(3)
+    x = rng.gamma(2.0, size=400)
+    res = bootstrap(mean_stat, x, n_boot=1000, seed=8, executor=SERIAL, jackknife_groups=40)
+    assert res.jackknife_groups == 40
+    labels, g = jackknife_groups_for(400, 40, 8)
+    assert g == 40 and np.all(np.bincount(labels) == 10)
+    sums = np.bincount(labels, weights=x)
+    prior = types.SimpleNamespace(bootstrap_distribution=res.replicates[:, 0] * 10.0)
+    ref = stats.bootstrap((sums,), np.mean, n_resamples=0, bootstrap_result=prior,
+                          method="BCa", vectorized=True)
+    np.testing.assert_allclose(res.ci_bca[0] * 10.0, [ref.confidence_interval.low,
+                                                      ref.confidence_interval.high], rtol=1e-9)
+    # and the formula itself, for unequal groups, reduces to the group-sum form
+    a = acceleration_from_jackknife(
+        np.array([(x.sum() - x[labels == k].sum()) / (400 - 10) for k in range(40)]), 400,
+        np.full(40, 10))
+    s = sums - sums.mean()
+    assert a == pytest.approx(np.sum(s**3) / (6 * np.sum(s**2) ** 1.5), rel=1e-10)
+
+
+# -- agreement with scipy on its own replicates (Monte Carlo error only) --------------------
+
+
+@pytest.mark.parametrize("which", ["mean", "correlation"])
+def test_intervals_agree_with_scipy_on_independent_replicates(normal60, which):
+    if which == "mean":
+        res = bootstrap(mean_stat, normal60[:, 0], n_boot=4000, seed=21, executor=SERIAL,
+                        jackknife_groups=60)
+        samples, fn, paired = (normal60[:, 0],), np.mean, False
+    else:
+        res = bootstrap(corr_stat, normal60, n_boot=4000, seed=22, executor=SERIAL,
+                        jackknife_groups=60)
+        samples, fn, paired = (normal60[:, 0], normal60[:, 1]), scipy_corr, True
+    for method, ours in (("percentile", res.ci_percentile[0]), ("BCa", res.ci_bca[0])):
+        # scipy.stats.bootstrap (reference) with its own 4000 replicates. A 2.5% quantile of
+        # 4000 replicates has a Monte Carlo sd of about 0.04 bootstrap SEs, a difference of
+        # two about 0.06: the tolerance of 0.25 SE is some 4 sd of that difference.
+        ref = stats.bootstrap(samples, fn, n_resamples=4000, method=method, paired=paired,
+                              vectorized=True, rng=np.random.default_rng(99))
+        ci = [ref.confidence_interval.low, ref.confidence_interval.high]
+        np.testing.assert_allclose(ours, ci, atol=0.25 * ref.standard_error)
+    assert res.se[0] == pytest.approx(ref.standard_error, rel=0.05)  # sd of an sd: ~1.1% here
+
+
+# -- determinism across executors and chunkings --------------------------------------------
+
+
+def test_same_seed_same_replicates_whatever_the_executor_and_chunks(pool, normal60):
+    runs = [bootstrap(mean_sd_stat, normal60, n_boot=300, seed=42, executor=SERIAL),
+            bootstrap(mean_sd_stat, normal60, n_boot=300, seed=42, executor=SERIAL,
+                      chunk_size=1),
+            bootstrap(mean_sd_stat, normal60, n_boot=300, seed=42, executor=pool),
+            bootstrap(mean_sd_stat, normal60, n_boot=300, seed=42, executor=pool, chunk_size=7),
+            bootstrap(mean_sd_stat, normal60, n_boot=300, seed=42, executor=pool,
+                      chunk_size=1000)]
+    first = runs[0]
+    assert first.replicates.shape == (300, 4)
+    for other in runs[1:]:
+        np.testing.assert_array_equal(other.replicates, first.replicates)
+        np.testing.assert_array_equal(other.jackknife, first.jackknife)
+        np.testing.assert_array_equal(other.ci_bca, first.ci_bca)
+        np.testing.assert_array_equal(other.ci_percentile, first.ci_percentile)
+    different = bootstrap(mean_sd_stat, normal60, n_boot=300, seed=43, executor=SERIAL)
+    assert not np.array_equal(different.replicates, first.replicates)
+    # the first replicates do not depend on how many are drawn
+    shorter = bootstrap(mean_sd_stat, normal60, n_boot=50, seed=42, executor=SERIAL)
+    np.testing.assert_array_equal(shorter.replicates, first.replicates[:50])
+
+
+def test_grouped_jackknife_is_seeded_and_balanced():
+    a, g = jackknife_groups_for(1003, 50, 1)
+    b, _ = jackknife_groups_for(1003, 50, 1)
+    c, _ = jackknife_groups_for(1003, 50, 2)
+    assert g == 50
+    np.testing.assert_array_equal(a, b)
+    assert not np.array_equal(a, c)
+    assert set(np.bincount(a)) == {20, 21}  # 1003 = 50 x 20 + 3
+    d, g = jackknife_groups_for(30, 50, 1)
+    assert g == 30 and np.array_equal(d, np.arange(30))  # delete-one
+
+
+# -- failures -------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("use_pool", [False, True])
+def test_failed_replicates_are_counted_and_left_out(normal60, pool, use_pool):
+    n_boot = 400
+    res = bootstrap(flaky_stat, normal60, n_boot=n_boot, seed=7,
+                    executor=pool if use_pool else SERIAL)
+    # recount independently from the replicates' rows
+    idx = [replicate_indices(7, r, 60) for r in range(n_boot)]
+    raised = np.array([i[0] % 10 == 3 for i in idx])
+    nan2 = np.array([i[1] % 4 == 2 for i in idx]) & ~raised
+    assert res.n_failed.tolist() == [raised.sum(), (raised | nan2).sum()]
+    assert res.n_failed.dtype.kind == "i"
+    assert np.isnan(res.replicates[raised]).all()
+    # intervals from the rest: numpy's quantiles and sd of the successful replicates
+    ok = ~(raised | nan2)
+    want = np.array([normal60[i, 0].std() for i, keep in zip(idx, ok, strict=True) if keep])
+    np.testing.assert_allclose(res.replicates[ok, 1], want, rtol=1e-12)
+    np.testing.assert_allclose(res.ci_percentile[1], np.quantile(want, [0.025, 0.975]),
+                               rtol=1e-12)
+    assert res.se[1] == pytest.approx(np.std(want, ddof=1), rel=1e-12)
+    assert np.isfinite(res.ci_bca).all()
+    share2 = (raised | nan2).mean()
+    assert share2 > FAILED_SHARE_NOTE  # about 10% + 22%
+    assert any("raised an error" in n and "ValueError: did not converge" in n for n in res.notes)
+    assert any(n.startswith("estimate 1:") and "replicates failed" in n for n in res.notes)
+    assert "did not converge" in res.summary()
+
+
+def test_bca_undefined_when_every_replicate_is_on_one_side(normal60):
+    res = bootstrap(distinct_rows, normal60, n_boot=200, seed=1, executor=SERIAL)
+    assert res.estimate[0] == 60.0 and np.all(res.replicates < 60)
+    assert np.isnan(res.ci_bca).all() and np.isnan(res.bias_correction[0])
+    assert np.isfinite(res.ci_percentile).all()
+    assert any("BCa undefined" in n and "z0 infinite" in n for n in res.notes)
+
+
+def test_too_few_successful_replicates_give_no_interval(normal60):
+    res = bootstrap(mostly_failing, normal60, n_boot=60, seed=3, executor=SERIAL)
+    assert res.n_failed[0] > 60 - MIN_SUCCESSFUL
+    assert np.isnan(res.ci_percentile).all() and np.isnan(res.ci_bca).all()
+    assert any("no bootstrap interval" in n for n in res.notes)
+
+
+def test_wrong_number_of_values_counts_as_failed(normal60):
+    res = bootstrap(wrong_length, normal60, n_boot=300, seed=2, executor=SERIAL,
+                    estimate=np.zeros(2))
+    assert 0 < res.n_failed[0] == res.n_failed[1] < 300
+    assert any("wrong number of values" in n for n in res.notes)
+
+
+def test_a_dead_worker_raises_a_clear_error_and_the_pool_recovers(normal60):
+    with LocalExecutor(1) as ex:
+        with pytest.raises(RuntimeError, match="worker process"):
+            bootstrap(die, normal60, n_boot=20, seed=1, executor=ex, estimate=np.zeros(1))
+        assert ex.map(abs, [-1, -2]) == [1, 2]  # a fresh pool
+
+
+# -- stateful statistics, progress, executors ------------------------------------------------
+
+
+def test_warm_started_statistic_through_the_process_pool(pool):
+    rng = np.random.default_rng(17)
+    data = rng.normal(0.0, 100.0, size=(80, 1))
+    stat = WarmNewtonSD(start=1.0)
+    res = bootstrap(stat, data, n_boot=64, seed=4, executor=pool, chunk_size=8)
+    assert stat.start == pytest.approx(data[:, 0].std(), rel=1e-12)  # warmed on the full data
+    # numpy's population sd of each replicate's rows (reference)
+    want = [data[replicate_indices(4, r, 80), 0].std() for r in range(64)]
+    np.testing.assert_allclose(res.replicates[:, 0], want, rtol=1e-12)
+    cold = WarmNewtonSD(start=1.0)(data, np.arange(80))[1]
+    assert cold >= 8 and res.replicates[:, 1].max() <= 5  # every replicate started warm
+    assert res.n_failed.tolist() == [0, 0]
+
+
+def test_progress_is_reported_in_the_calling_process(pool, normal60):
+    calls = []
+    pid = os.getpid()
+
+    def progress(done: int, total: int) -> None:
+        calls.append((done, total, os.getpid()))
+
+    res = bootstrap(mean_stat, normal60[:, 0], n_boot=100, seed=1, executor=pool,
+                    chunk_size=10, jackknife_groups=20, progress=progress)
+    total = 100 + 20
+    assert calls[0][:2] == (0, total) and calls[-1][:2] == (total, total)
+    dones = [c[0] for c in calls]
+    assert dones == sorted(dones) and len(calls) == 1 + (10 + 2) // 2
+    assert {c[2] for c in calls} == {pid}
+    plain = bootstrap(mean_stat, normal60[:, 0], n_boot=100, seed=1, executor=pool,
+                      chunk_size=10, jackknife_groups=20)
+    np.testing.assert_array_equal(res.replicates, plain.replicates)
+
+
+def test_estimate_given_is_used_as_is(normal60):
+    calls = []
+
+    class Counting:
+        def __call__(self, data, idx):
+            calls.append(idx.size)
+            return mean_stat(data, idx)
+
+    res = bootstrap(Counting(), normal60[:, 0], n_boot=30, seed=1, executor=SERIAL,
+                    jackknife_groups=10, estimate=np.array([1.25]))
+    assert res.estimate.tolist() == [1.25] and len(calls) == 30 + 10
+
+
+def test_executors_and_default():
+    assert isinstance(SERIAL, Executor) and SERIAL.workers == 1
+    ex = LocalExecutor(2)
+    assert isinstance(ex, Executor) and ex.workers == 2
+    assert ex.start_method in ("forkserver", "spawn")
+    ex.shutdown()  # never started: nothing to stop
+    assert LocalExecutor().workers == (os.cpu_count() or 1)
+    with pytest.raises(ValueError, match="fork"):
+        LocalExecutor(2, start_method="fork")
+    assert isinstance(default_executor(SERIAL_MAX_TASKS), SerialExecutor)
+    if (os.cpu_count() or 1) > 1:
+        big = default_executor(1000)
+        assert isinstance(big, LocalExecutor) and big is default_executor(5000)  # shared
+
+
+def test_map_keeps_order_and_reraises_task_errors(pool):
+    assert pool.map(abs, list(range(-20, 0))) == list(range(20, 0, -1))
+    assert pool.map(abs, []) == []
+    with pytest.raises(TypeError):
+        pool.map(abs, [-1, "x", -3])
+    assert pool.map(abs, [-4]) == [4]  # the pool survives a task error
+
+
+@pytest.mark.parametrize("kwargs", [dict(n_boot=0), dict(seed=-1), dict(confidence=1.0),
+                                    dict(chunk_size=0), dict(jackknife_groups=1)])
+def test_bad_arguments(kwargs):
+    args = dict(n_boot=10, seed=1) | kwargs
+    with pytest.raises(ValueError):
+        bootstrap(mean_stat, np.arange(10.0), executor=SERIAL, **args)
+
+
+# -- coverage --------------------------------------------------------------------------------
+
+
+def test_percentile_interval_coverage_for_a_normal_mean():
+    # 200 simulated data sets of n = 30 from N(5, 2^2): the 95% percentile interval of the mean
+    # should cover 5 in roughly 95% of them. Theory for this n: about the coverage of
+    # mean +- 1.96 sd(ddof=0)/sqrt(n), i.e. 2 t_29.cdf(1.96 sqrt(29/30)) - 1 = 93.6%.
+    # Observed here: percentile 89.0%, BCa 90.0%, while the analytic interval itself covers
+    # 90.5% of these same data sets (an unlucky draw: 3 binomial sd = 5 points at 200 sets;
+    # over 1000 other sets the percentile interval covered 92.5%, scipy.stats.bootstrap's 92.7%).
+    rng = np.random.default_rng(2024)
+    hits_pct = hits_bca = hits_z = 0
+    z = stats.norm.ppf(0.975)
+    for s in range(200):
+        x = rng.normal(5.0, 2.0, size=30)
+        res = bootstrap(mean_stat, x, n_boot=500, seed=s, executor=SERIAL, jackknife_groups=10)
+        hits_pct += bool(res.ci_percentile[0, 0] <= 5.0 <= res.ci_percentile[0, 1])
+        hits_bca += bool(res.ci_bca[0, 0] <= 5.0 <= res.ci_bca[0, 1])
+        hits_z += bool(abs(x.mean() - 5.0) <= z * x.std() / np.sqrt(30))
+    assert 0.87 <= hits_pct / 200 <= 0.99
+    assert 0.87 <= hits_bca / 200 <= 0.99
+    # on the same data sets the bootstrap tracks the large-sample interval it approximates
+    assert abs(hits_pct - hits_z) <= 8 and abs(hits_bca - hits_z) <= 8
