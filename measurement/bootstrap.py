@@ -106,7 +106,7 @@ class BootstrapResult:
 # ---------------------------------------------------------------------------------------
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class _Chunk:
     """One task: a run of bootstrap replicates or of jackknife deletions.
 
@@ -234,7 +234,8 @@ def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
               confidence: float = 0.95, executor: Executor | None = None,
               chunk_size: int | None = None, jackknife_groups: int = 50,
               progress: Callable[[int, int], None] | None = None,
-              estimate: np.ndarray | None = None) -> BootstrapResult:
+              estimate: np.ndarray | None = None,
+              names: Sequence[str] | None = None) -> BootstrapResult:
     """Case-resampling bootstrap of ``statistic`` with percentile and BCa intervals.
 
     Efron & Tibshirani (1993) ch. 6, 13 and 14; BCa from Efron (1987); the jackknife for the
@@ -262,6 +263,9 @@ def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
     estimate:
         The statistic on the full data if already computed (it is not recomputed). Computed
         here otherwise; an exception it raises then propagates (no replicate to fail).
+    names:
+        A label per estimate for the notes; with names, estimates that are NaN on the full
+        data (not estimable there) get no notes.
     """
     n_boot, seed, chunk_size = _check_args(n_boot, seed, confidence, chunk_size, jackknife_groups)
     n = len(data)
@@ -301,7 +305,7 @@ def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
 
     notes = _failure_notes(raised)
     sizes = np.bincount(labels, minlength=n_groups)
-    out = _intervals(est, reps, jack, n, sizes, confidence, notes)
+    out = _intervals(est, reps, jack, n, sizes, confidence, notes, names)
     return BootstrapResult(estimate=est, replicates=reps, n_boot=n_boot, seed=seed,
                            confidence=float(confidence), notes=notes, jackknife_groups=n_groups,
                            jackknife=jack, **out)
@@ -355,7 +359,8 @@ def _failure_notes(raised: dict[str, list]) -> list[str]:
 
 
 def _intervals(est: np.ndarray, reps: np.ndarray, jack: np.ndarray, n: int, sizes: np.ndarray,
-               confidence: float, notes: list[str]) -> dict[str, np.ndarray]:
+               confidence: float, notes: list[str],
+               names: Sequence[str] | None = None) -> dict[str, np.ndarray]:
     k = est.size
     n_boot = reps.shape[0]
     alpha = (1.0 - confidence) / 2.0
@@ -371,7 +376,9 @@ def _intervals(est: np.ndarray, reps: np.ndarray, jack: np.ndarray, n: int, size
     for j in range(k):
         ok = reps[ok_mask[:, j], j]
         b = ok.size
-        label = f"estimate {j}"
+        label = names[j] if names is not None else f"estimate {j}"
+        if names is not None and not np.isfinite(est[j]):
+            continue  # the caller names estimates and knows this one is absent: nothing to say
         if n_failed[j] > FAILED_SHARE_NOTE * n_boot:
             notes.append(f"{label}: {n_failed[j]} of {n_boot} replicates failed "
                          f"({100 * n_failed[j] / n_boot:.1f}%); its intervals use the {b} "

@@ -30,9 +30,11 @@ from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any, Protocol, runtime_checkable
 
-# Up to this many tasks the default is serial: a pool of two workers took 0.2-0.3 s to start
-# on the two-core development machine (more when the main module imports much), which a
-# handful of tasks does not win back.
+# Up to this many tasks the default is serial. Start-up is each worker importing the main
+# module and the task's modules: on the two-core development machine a pool of two took
+# 0.2-0.3 s with a main module importing numpy, 1.1-1.3 s (up to 2.5 s on a busy machine)
+# with one importing measurement.pipeline as the command line does. Python 3.11's forkserver
+# does not preload the main module, so "spawn" cost the same.
 SERIAL_MAX_TASKS = 16
 
 _BLAS_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")

@@ -114,17 +114,22 @@ class PathEstimator:
         self.r_m_rule = r_m_rule
         self.time_limit, self.n_starts, self.seed = time_limit, n_starts, seed
         self.warm: dict[str, FitResult] = {}
+        self.notes: list[str] = []
         self.keys: list[Key] = [(m, p.outcome, x) for m in METHODS for p in self.paths for x in p.predictors]
 
     # -- building blocks ------------------------------------------------------------------
     def _fit(self, spec, data, compute_se: bool) -> FitResult:
         prev = self.warm.get(spec.name)
-        if prev is not None and not compute_se:
-            fit = refit(prev, data, time_limit=self.time_limit)
-            if fit.status == "ok":
-                return fit
-        return fit_model(spec, data, time_limit=self.time_limit, n_starts=self.n_starts, seed=self.seed,
-                         compute_se=compute_se, start=prev)
+        if compute_se or prev is None:  # the full sample: several starts, standard errors
+            return fit_model(spec, data, time_limit=self.time_limit, n_starts=self.n_starts, seed=self.seed,
+                             compute_se=compute_se, start=prev)
+        if prev.status != "ok":
+            return prev  # not used on the full sample, so not in the replicates either
+        fit = refit(prev, data, time_limit=self.time_limit)
+        if fit.status == "ok":
+            return fit
+        return fit_model(spec, data, time_limit=self.time_limit, n_starts=2, seed=self.seed,
+                         compute_se=False, start=prev)
 
     def _item_data(self, X: np.ndarray) -> tuple[Moments | RawData, np.ndarray]:
         """Model input for the items, and the item covariance for closed-form statistics."""
@@ -252,10 +257,7 @@ class PathEstimator:
             self._absent(out, "marker_adjusted", "the design has no marker construct")
 
         if self.use_method_factor:
-            spec = method_path_model(self.reduced, method_factor_model(
-                self.reduced, use_marker=self.use_method_factor == "marker",
-                equal_loadings=self.method_loadings == "equal"))
-            f = self._fit(spec, data, compute_se)
+            f = self._method_factor_fit(data, compute_se)
             fits[f.spec.name] = f
             extra["method_factor_fit"] = f
             for eq in self.paths:
@@ -275,6 +277,24 @@ class PathEstimator:
                 "the measured-method model did not fit cleanly"
             self._absent(out, "measured_method_adjusted", why)
         return out, extra
+
+    def _method_factor_fit(self, data, compute_se: bool) -> FitResult:
+        def spec(loadings: str):
+            return method_path_model(self.reduced, method_factor_model(
+                self.reduced, use_marker=self.use_method_factor == "marker",
+                equal_loadings=loadings == "equal"))
+
+        f = self._fit(spec(self.method_loadings), data, compute_se)
+        if compute_se and f.status != "ok" and self.method_loadings == "free":
+            # Free loadings that were proper in the measurement part can turn improper once
+            # the paths replace the trait correlations: fall back to equal loadings.
+            g = self._fit(spec("equal"), data, compute_se)
+            if g.status == "ok":
+                self.method_loadings = "equal"
+                self.notes.append("The free-loading method factor was improper in the path model; the "
+                                  "equal-loading method factor was used for the corrected paths.")
+                return g
+        return f
 
     def _absent(self, out: dict, method: str, why: str) -> None:
         for eq in self.paths:

@@ -47,6 +47,7 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
     full, extra = estimator.estimate(X, compute_se=True)
     fits.update(extra["fits"])
     estimator.warm = dict(extra["fits"])
+    warnings += [{"code": "paths", "message": n} for n in estimator.notes]
 
     boot = None
     if opts.bootstrap:
@@ -55,7 +56,8 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
 
         ex = executor or default_executor(opts.bootstrap)
         boot = bootstrap(estimator, X, n_boot=opts.bootstrap, seed=opts.seed, confidence=opts.confidence,
-                         executor=ex, progress=progress, estimate=estimator.vector(full))
+                         executor=ex, progress=progress, estimate=estimator.vector(full),
+                         names=[f"{m} estimate of {o} on {x}" for m, o, x in estimator.keys])
         warnings += [{"code": "bootstrap", "message": n} for n in boot.notes]
 
     # sensitivity on the latent model (under FIML: on the EM covariance matrix, two-stage ML)

@@ -130,7 +130,7 @@ def _raw_answers(prepared: PreparedData, design: Design) -> pd.DataFrame:
 
 def _data_section(table: LoadedTable, prepared: PreparedData, plan: MissingPlan) -> dict:
     return {
-        "file": table.source,
+        "file": os.path.basename(table.source),
         "format": table.format,
         "encoding": table.encoding,
         "delimiter": table.delimiter,

@@ -32,6 +32,21 @@ def text_summary(report: dict) -> str:
         v = mv["verdict"]
         lines += ["", f"  common-method variance: {v['level'].upper()}: {v['summary']}"]
         lines += [f"    {r}" for r in v["reasons"]]
+    paths = report.get("paths") or []
+    if paths:
+        lines += ["", "  key paths (standardized; preferred estimate marked *):"]
+        for p in paths:
+            lines.append(f"  {p['outcome']} <- {p['predictor']}")
+            for m, e in p["estimates"].items():
+                if e is None:
+                    continue
+                ci = e.get("ci") or [None, None]
+                mark = "*" if m == p["preferred"] else " "
+                lines.append(f"   {mark}{m:<26}{_num(e['estimate'], '.3f'):>7}  "
+                             f"[{_num(ci[0], '.3f')}, {_num(ci[1], '.3f')}]")
+            be = p["sensitivity"].get("break_even_method_share")
+            lines.append("    method share that would explain it away: "
+                         + (f"{be:.0%}" if be is not None else "none within the range tested"))
     if report.get("warnings"):
         lines += ["", f"  {len(report['warnings'])} warning(s):"]
         lines += [f"  - {w['message']}" for w in report["warnings"]]
