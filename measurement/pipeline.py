@@ -27,10 +27,12 @@ from .prepare import PreparedData, prepare
 from .reliability_report import construct_reliability
 from .report import finalize_report
 from .screening import screen_respondents
+from .teams_report import teams_section
 
 Progress = Callable[[str, int, int], None]
 
-STAGES = ("load", "screen", "reliability", "measurement_model", "method_variance", "paths", "report")
+STAGES = ("load", "screen", "reliability", "measurement_model", "method_variance", "paths", "teams",
+          "report")
 
 
 @dataclass
@@ -94,7 +96,10 @@ def analyze(
     paths = paths_section(dsg, plan, opts, fits, mv, warnings, executor=executor,
                           progress=lambda done, n: step("bootstrap", done, n))
 
-    step("report", 6, total)
+    step("teams", 6, total)
+    teams = teams_section(dsg, prepared, plan, opts, warnings)
+
+    step("report", 7, total)
     report: dict[str, Any] = {
         "schema": "samesource.report/1",
         "tool": {"name": "samesource", "version": __version__},
@@ -104,6 +109,7 @@ def analyze(
         "measurement_model": mm,
         "method_variance": mv,
         "paths": paths,
+        "teams": teams,
         "options": opts.to_dict(),
         "design": dsg.to_dict(),
     }

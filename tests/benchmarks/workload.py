@@ -12,7 +12,9 @@ def survey(n: int, n_items: int, seed: int = 0):
     cons = [ConstructSpec(f"c{i}", per, 0.7, 0.35, prefix=f"c{i}_") for i in range(n_cons - 2)]
     cons.append(ConstructSpec("mark", per, 0.7, 0.35, role="marker", prefix="mk"))
     cons.append(ConstructSpec("meth", per, 0.65, role="method", prefix="mt"))
-    paths = {"c1": {"c0": 0.3}, "c2": {"c1": 0.4}}
+    paths = {"c1": {"c0": 0.3}}
+    if n_cons - 2 >= 3:
+        paths["c2"] = {"c1": 0.4}
     spec = SurveySpec(constructs=cons, paths=paths, n=n, scale_points=5, seed=seed)
     df, truth = simulate_survey(spec)
     return df, design_for(spec), truth
