@@ -99,9 +99,11 @@ def harman_section(design: Design, plan: MissingPlan, fitter: Fitter) -> dict:
                 f"{SHARE_THRESHOLD:.0%} of the variance (common practice)",
         "single_factor_fit": fit_summary(one),
         "vs_measurement_model": test,
-        "flag": efa.flag,
+        # one construct has one factor by design: the test says nothing then
+        "flag": bool(efa.flag and len(design.substantive) > 1),
         "note": "Harman's test is insensitive: a pass is weak evidence that method variance is absent "
-                "(Podsakoff et al. 2003).",
+                "(Podsakoff et al. 2003)." + ("" if len(design.substantive) > 1 else
+                                              " With one substantive construct it cannot flag anything."),
     }
 
 

@@ -79,6 +79,8 @@ def analyze(
             f"the design's {len(dsg.items)} items need at least {_min_rows(dsg)}",
             file=table.source)
 
+    _check_redundant(plan, dsg, table.source)
+
     step("reliability", 2, total)
     fits: dict[str, Any] = {}
     warnings: list[dict] = list(prepared.warnings)
@@ -116,6 +118,18 @@ def analyze(
     report = finalize_report(report, warnings=warnings, options=opts)
     step("report", total, total)
     return Analysis(report=report, prepared=prepared, plan=plan, fits=fits)
+
+
+def _check_redundant(plan: MissingPlan, design: Design, source: str) -> None:
+    """Two items that carry the same information make every covariance matrix singular:
+    name them before any model is fitted."""
+    corr = plan.frame[design.items].corr().to_numpy()
+    iu = np.argwhere(np.triu(np.abs(corr) > 0.9999, k=1))
+    if len(iu):
+        a, b = design.items[iu[0][0]], design.items[iu[0][1]]
+        raise DataError(f"items '{a}' and '{b}' are perfectly correlated on the rows analysed (the same "
+                        "answers, or one the reverse of the other): drop one of them from the design",
+                        file=source, column=b)
 
 
 def _min_rows(design: Design) -> int:

@@ -99,12 +99,13 @@ def _ols(y: np.ndarray, X: np.ndarray, clusters: np.ndarray | None = None) -> tu
     return b, c * XtX_inv @ meat @ XtX_inv
 
 
-def within_between(y: np.ndarray, X: np.ndarray, groups: np.ndarray) -> dict:
+def within_between(y: np.ndarray, X: np.ndarray, groups: np.ndarray) -> dict | None:
     """Within- and between-team coefficients of y on the columns of X by group-mean centring,
     and the test of whether they differ (Mundlak 1978): regress y on X and the team means of
     X; the coefficients of the means are between minus within, tested with cluster-robust
     standard errors. When they differ, the predictors correlate with team effects, and a
-    random-effects estimate that pools the two is biased."""
+    random-effects estimate that pools the two is biased. None with fewer than k + 3 teams of
+    two or more members."""
     g = np.asarray(groups)
     codes, inv = np.unique(g, return_inverse=True)
     n_j = np.bincount(inv)
@@ -112,13 +113,15 @@ def within_between(y: np.ndarray, X: np.ndarray, groups: np.ndarray) -> dict:
     def gmean(a: np.ndarray) -> np.ndarray:
         return np.stack([np.bincount(inv, weights=a[:, j]) / n_j for j in range(a.shape[1])], axis=1)
 
+    k = X.shape[1]
+    if int((n_j >= 2).sum()) < k + 3:
+        return None  # too few teams with two or more members for a between-team regression
     Xm, ym = gmean(X), gmean(y[:, None])[:, 0]
     Xw, yw = X - Xm[inv], y - ym[inv]
     bw, vw = _ols(yw, Xw, clusters=g)
     keep = n_j >= 2
     Xb = np.column_stack([np.ones(keep.sum()), Xm[keep]])
     bb, vb = _ols(ym[keep], Xb)
-    k = X.shape[1]
     Z = np.column_stack([np.ones(len(y)), X, Xm[inv]])
     bz, vz = _ols(y, Z, clusters=g)
     d, vd = bz[1 + k:], vz[1 + k:, 1 + k:]

@@ -59,7 +59,13 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
         sub = scores[cols].dropna()
         gg = groups.loc[sub.index].to_numpy()
         y, X = sub[p.outcome].to_numpy(), sub[list(p.predictors)].to_numpy()
-        wb = within_between(y, X, gg)
+        with np.errstate(all="ignore"):
+            wb = within_between(y, X, gg)
+        if wb is None:
+            warnings.append({"code": "too_few_teams",
+                             "message": f"Too few teams with two or more respondents to estimate the "
+                                        f"within- and between-team paths of {p.outcome}."})
+            continue
         split = split_team_estimate(sub.to_numpy(), gg, seed=opts.seed, confidence=opts.confidence)
         same = same_source_team_estimate(sub.to_numpy(), gg)
         for j, x in enumerate(p.predictors):

@@ -110,6 +110,9 @@ def verdict(mv: dict) -> dict:
                        "Lead with the corrected estimates, and prefer separating sources or times of "
                        "measurement next time.",
     }[level]
+    if level == "none" and not mv.get("marker") and not mv.get("measured_method"):
+        summary += (" This design has neither a marker nor a measured method scale, so only the weak checks "
+                    "could run: add one to the questionnaire to test for method variance properly.")
     return {
         "level": level,
         "summary": summary,

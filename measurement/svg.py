@@ -1,0 +1,460 @@
+"""Inline SVG figures for the HTML report, drawn from plain numbers.
+
+Nothing here knows the report's layout: :mod:`measurement.html_report` picks the numbers and
+the words, these functions only draw. Every figure is a self-contained ``<svg>`` element with
+``role="img"``, a ``<title>`` and a ``<desc>`` (screen readers announce both), a ``viewBox``
+so it scales to any width, and no reference to anything outside the page. Meaning never rests
+on colour alone: the preferred estimate is a diamond and says "preferred", a value below its
+threshold is a hollow triangle and carries a cross.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from html import escape
+
+# Palette: every text colour reaches WCAG AA (4.5:1) on white and on the light fills used.
+INK = "#1f2933"
+MUTED = "#4a5866"
+GRID = "#d9e2ec"
+AXIS = "#7b8794"
+ACCENT = "#1d4e89"
+BAND = "#c9daf0"
+HIGHLIGHT = "#a2430f"
+HIGHLIGHT_BG = "#fbeadc"
+FAIL = "#a61b1b"
+SHADE = "#eceff3"
+FONT = "system-ui, -apple-system, 'Segoe UI', Roboto, 'Helvetica Neue', Arial, sans-serif"
+
+
+# --------------------------------------------------------------------------- primitives
+
+def _n(x: float) -> str:
+    """A coordinate: one decimal is plenty at these sizes and keeps the markup short."""
+    s = f"{x:.1f}"
+    return s[:-2] if s.endswith(".0") else s
+
+
+def _attrs(attrs: dict[str, object]) -> str:
+    out = []
+    for k, v in attrs.items():
+        if v is None or v is False:
+            continue
+        name = k.rstrip("_").replace("_", "-")
+        val = _n(v) if isinstance(v, float) else str(v)
+        out.append(f' {name}="{escape(val, quote=True)}"')
+    return "".join(out)
+
+
+def el(tag: str, content: str = "", **attrs: object) -> str:
+    """An element; ``content`` is markup (already escaped), attribute values are escaped here."""
+    if content:
+        return f"<{tag}{_attrs(attrs)}>{content}</{tag}>"
+    return f"<{tag}{_attrs(attrs)}/>"
+
+
+def text(x: float, y: float, s: str, **attrs: object) -> str:
+    attrs.setdefault("fill", INK)
+    return el("text", escape(s), x=float(x), y=float(y), **attrs)
+
+
+def line(x1: float, y1: float, x2: float, y2: float, **attrs: object) -> str:
+    return el("line", x1=float(x1), y1=float(y1), x2=float(x2), y2=float(y2), **attrs)
+
+
+def rect(x: float, y: float, w: float, h: float, **attrs: object) -> str:
+    return el("rect", x=float(x), y=float(y), width=float(max(w, 0.0)), height=float(max(h, 0.0)), **attrs)
+
+
+def points(pts: Sequence[tuple[float, float]]) -> str:
+    return " ".join(f"{_n(x)},{_n(y)}" for x, y in pts)
+
+
+def svg_figure(body: str, width: float, height: float, *, ident: str, title: str, desc: str) -> str:
+    """The outer ``<svg>``: scalable (viewBox), labelled for assistive technology."""
+    return (f'<svg viewBox="0 0 {_n(width)} {_n(height)}" width="{_n(width)}" height="{_n(height)}" '
+            f'role="img" aria-labelledby="{escape(ident)}-title {escape(ident)}-desc" '
+            f'class="chart" font-family="{escape(FONT, quote=True)}">'
+            f'<title id="{escape(ident)}-title">{escape(title)}</title>'
+            f'<desc id="{escape(ident)}-desc">{escape(desc)}</desc>{body}</svg>')
+
+
+def wrap(s: str, width: int) -> list[str]:
+    """Greedy word wrap for SVG text, which does not wrap by itself."""
+    words, lines, cur = s.split(), [], ""
+    for w in words:
+        if cur and len(cur) + 1 + len(w) > width:
+            lines.append(cur)
+            cur = w
+        else:
+            cur = f"{cur} {w}" if cur else w
+    if cur:
+        lines.append(cur)
+    return lines or [""]
+
+
+# --------------------------------------------------------------------------- scales and colour
+
+@dataclass
+class Linear:
+    """Maps a data interval onto a pixel interval."""
+
+    d0: float
+    d1: float
+    r0: float
+    r1: float
+
+    def __call__(self, v: float) -> float:
+        if self.d1 == self.d0:
+            return (self.r0 + self.r1) / 2
+        return self.r0 + (v - self.d0) / (self.d1 - self.d0) * (self.r1 - self.r0)
+
+
+def nice_ticks(lo: float, hi: float, count: int = 5) -> list[float]:
+    """Round tick values covering [lo, hi] (steps of 1, 2 or 5 times a power of ten)."""
+    if not (math.isfinite(lo) and math.isfinite(hi)):
+        return [0.0]
+    if hi <= lo:
+        hi = lo + 1.0
+    raw = (hi - lo) / max(count, 1)
+    mag = 10 ** math.floor(math.log10(raw))
+    step = next(m * mag for m in (1, 2, 2.5, 5, 10) if m * mag >= raw)
+    start = math.floor(lo / step + 1e-9) * step
+    ticks, t = [], start
+    while t <= hi + step * 1e-6:
+        ticks.append(round(t, 10) + 0.0)
+        t += step
+    if ticks[-1] < hi - 1e-12:
+        ticks.append(round(ticks[-1] + step, 10))
+    return ticks
+
+
+def _rgb(hex_colour: str) -> tuple[int, int, int]:
+    h = hex_colour.lstrip("#")
+    return int(h[0:2], 16), int(h[2:4], 16), int(h[4:6], 16)
+
+
+def mix(c0: str, c1: str, t: float) -> str:
+    """Colour ``t`` of the way from ``c0`` to ``c1``."""
+    t = min(max(t, 0.0), 1.0)
+    a, b = _rgb(c0), _rgb(c1)
+    return "#" + "".join(f"{round(x + (y - x) * t):02x}" for x, y in zip(a, b, strict=True))
+
+
+def luminance(colour: str) -> float:
+    """Relative luminance (WCAG 2.x)."""
+    def ch(c: int) -> float:
+        c = c / 255
+        return c / 12.92 if c <= 0.03928 else ((c + 0.055) / 1.055) ** 2.4
+
+    r, g, b = _rgb(colour)
+    return 0.2126 * ch(r) + 0.7152 * ch(g) + 0.0722 * ch(b)
+
+
+def contrast(c0: str, c1: str) -> float:
+    """WCAG contrast ratio between two colours (1 to 21)."""
+    a, b = sorted((luminance(c0), luminance(c1)), reverse=True)
+    return (a + 0.05) / (b + 0.05)
+
+
+def text_on(background: str) -> str:
+    """Dark or white text, whichever contrasts more with the cell."""
+    return INK if contrast(INK, background) >= contrast("#ffffff", background) else "#ffffff"
+
+
+# --------------------------------------------------------------------------- forest plot
+
+@dataclass
+class ForestRow:
+    label: str
+    value_text: str  # the numbers as the page prints them, e.g. "0.293 [0.233, 0.354]"
+    estimate: float | None = None
+    lo: float | None = None
+    hi: float | None = None
+    preferred: bool = False
+    unavailable: str | None = None  # "not available: <why>" when there is no estimate
+
+
+def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
+                axis_label: str = "standardized estimate") -> str:
+    """Every estimate of one path as a point with its interval; zero line; preferred highlighted."""
+    W, pad = 640.0, 18.0
+    x0, x1 = pad + 4, W - pad - 4
+    vals = [0.0]
+    for r in rows:
+        vals += [v for v in (r.estimate, r.lo, r.hi) if v is not None and math.isfinite(v)]
+    lo, hi = min(vals), max(vals)
+    span = max(hi - lo, 0.1)
+    ticks = nice_ticks(lo - 0.04 * span, hi + 0.04 * span, 6)
+    sx = Linear(ticks[0], ticks[-1], x0, x1)
+
+    body: list[str] = []
+    y = 8.0
+    layout: list[tuple[ForestRow, float, float, list[str]]] = []
+    for r in rows:
+        note_lines = wrap(r.unavailable, 88) if r.unavailable else []
+        h = 40.0 if not note_lines else 22.0 + 16.0 * len(note_lines)
+        layout.append((r, y, h, note_lines))
+        y += h
+    plot_bottom = y + 4
+    H = plot_bottom + 44
+
+    for t in ticks:  # grid first, so the data sits on top
+        body.append(line(sx(t), 4, sx(t), plot_bottom, stroke=GRID, stroke_width=1))
+    for r, top, h, note_lines in layout:
+        if r.preferred:
+            body.append(rect(2, top, W - 4, h, fill=HIGHLIGHT_BG, rx=4))
+        label = r.label + ("  (preferred)" if r.preferred else "")
+        body.append(text(pad, top + 15, label, font_size=14, font_weight="700" if r.preferred else None))
+        if note_lines:
+            for i, ln in enumerate(note_lines):
+                body.append(text(pad, top + 32 + 16 * i, ln, font_size=12.5, fill=MUTED, font_style="italic"))
+            continue
+        body.append(text(W - pad, top + 15, r.value_text, font_size=14, text_anchor="end",
+                         font_weight="700" if r.preferred else None))
+        cy = top + 29
+        colour = HIGHLIGHT if r.preferred else ACCENT
+        if r.lo is not None and r.hi is not None:
+            body.append(line(sx(r.lo), cy, sx(r.hi), cy, stroke=colour, stroke_width=4 if r.preferred else 2.5,
+                             stroke_linecap="round"))
+        if r.estimate is not None:
+            cx = sx(r.estimate)
+            if r.preferred:
+                d = 7.5
+                body.append(el("polygon", points=points([(cx, cy - d), (cx + d, cy), (cx, cy + d), (cx - d, cy)]),
+                               fill=colour, stroke="#ffffff", stroke_width=1.5))
+            else:
+                body.append(el("circle", cx=float(cx), cy=float(cy), r=5.5, fill=colour, stroke="#ffffff",
+                               stroke_width=1.5))
+    body.append(line(sx(0.0), 4, sx(0.0), plot_bottom, stroke=INK, stroke_width=1.5, stroke_dasharray="5 4"))
+    body.append(line(x0, plot_bottom, x1, plot_bottom, stroke=AXIS, stroke_width=1))
+    for t in ticks:
+        body.append(line(sx(t), plot_bottom, sx(t), plot_bottom + 5, stroke=AXIS))
+        body.append(text(sx(t), plot_bottom + 20, fmt_tick(t), font_size=13, text_anchor="middle", fill=MUTED))
+    body.append(text((x0 + x1) / 2, plot_bottom + 38, axis_label, font_size=13, text_anchor="middle", fill=MUTED))
+    return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
+
+
+def fmt_tick(t: float) -> str:
+    s = f"{t:.2f}".rstrip("0").rstrip(".")
+    if s in ("-0", ""):
+        s = "0"
+    return s.replace("-", "\u2212")
+
+
+# --------------------------------------------------------------------------- sensitivity curve
+
+@dataclass
+class Marker:
+    share: float
+    label: str
+    style: str  # "estimated" | "break_even" | "ci_zero"
+
+
+def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, float | None]], *,
+                     markers: Sequence[Marker], holds_up_to: float | None, ident: str, title: str,
+                     desc: str, x_max: float = 0.5, band_label: str = "interval") -> str:
+    """Estimate (line) and interval (band) against the assumed method share, with markers."""
+    W = 640.0
+    label_rows = max(len(markers), 1)
+    top = 14.0 + 18.0 * label_rows
+    left, right, bottom = 62.0, 18.0, 56.0
+    ph = 230.0
+    H = top + ph + bottom
+    pts = [(s, e, lo, hi) for s, e, lo, hi in curve if s is not None and e is not None]
+    vals = [0.0] + [v for _, e, lo, hi in pts for v in (e, lo, hi) if v is not None]
+    lo_v, hi_v = min(vals), max(vals)
+    span = max(hi_v - lo_v, 0.1)
+    yt = nice_ticks(lo_v - 0.03 * span, hi_v + 0.03 * span, 6)
+    sx = Linear(0.0, x_max, left, W - right)
+    sy = Linear(yt[0], yt[-1], top + ph, top)
+
+    body: list[str] = []
+    if holds_up_to is not None and holds_up_to < x_max:
+        xs = sx(holds_up_to)
+        body.append(rect(xs, top, W - right - xs, ph, fill=SHADE))
+        lines = wrap("beyond what the model can hold", 18)
+        for i, ln in enumerate(lines):
+            body.append(text((xs + W - right) / 2, top + 18 + 15 * i, ln, font_size=12.5,
+                             text_anchor="middle", fill=MUTED))
+    for t in yt:
+        body.append(line(left, sy(t), W - right, sy(t), stroke=GRID))
+        body.append(text(left - 8, sy(t) + 4.5, fmt_tick(t), font_size=13, text_anchor="end", fill=MUTED))
+    xt = [i * 0.1 for i in range(int(round(x_max * 10)) + 1)]
+    for t in xt:
+        body.append(line(sx(t), top + ph, sx(t), top + ph + 5, stroke=AXIS))
+        body.append(text(sx(t), top + ph + 20, f"{t:.0%}", font_size=13, text_anchor="middle", fill=MUTED))
+    body.append(line(left, top + ph, W - right, top + ph, stroke=AXIS))
+    body.append(text((left + W - right) / 2, top + ph + 42, "assumed share of every item's variance that is shared method",
+                     font_size=13, text_anchor="middle", fill=MUTED))
+    body.append(text(16, top + ph / 2, "standardized estimate", font_size=13, text_anchor="middle", fill=MUTED,
+                     transform=f"rotate(-90 16 {_n(top + ph / 2)})"))
+    banded = [(s, lo, hi) for s, _, lo, hi in pts if lo is not None and hi is not None]
+    if len(banded) >= 2:
+        poly = [(sx(s), sy(hi)) for s, _, hi in banded] + [(sx(s), sy(lo)) for s, lo, _ in reversed(banded)]
+        body.append(el("polygon", points=points(poly), fill=BAND, stroke="none"))
+    if yt[0] <= 0 <= yt[-1]:
+        body.append(line(left, sy(0), W - right, sy(0), stroke=INK, stroke_width=1.5))
+    if pts:
+        body.append(el("polyline", points=points([(sx(s), sy(e)) for s, e, _, _ in pts]), fill="none",
+                       stroke=ACCENT, stroke_width=2.5, stroke_linejoin="round"))
+        for s, e, _, _ in pts:
+            body.append(el("circle", cx=sx(s), cy=sy(e), r=3, fill=ACCENT))
+    styles = {"estimated": dict(stroke=HIGHLIGHT, stroke_width=2.5),
+              "break_even": dict(stroke=INK, stroke_width=2, stroke_dasharray="7 4"),
+              "ci_zero": dict(stroke=INK, stroke_width=2, stroke_dasharray="2 3")}
+    for i, m in enumerate(markers):
+        x = sx(min(max(m.share, 0.0), x_max))
+        ly = 14.0 + 18.0 * i
+        body.append(line(x, ly + 4, x, top + ph, **styles.get(m.style, styles["break_even"])))
+        anchor = "end" if x > W * 0.62 else "start"
+        dx = -6 if anchor == "end" else 6
+        body.append(text(x + dx, ly + 8, m.label, font_size=13, text_anchor=anchor,
+                         fill=HIGHLIGHT if m.style == "estimated" else INK, font_weight="600"))
+    return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
+
+
+# --------------------------------------------------------------------------- reliability panels
+
+@dataclass
+class Panel:
+    title: str
+    threshold: float | None
+    threshold_text: str
+    values: list[float | None]
+    texts: list[str]  # value as printed, with its pass/fail word or symbol
+    passes: list[bool | None]
+    intervals: list[tuple[float, float] | None] = field(default_factory=list)
+
+
+def reliability_panels(labels: Sequence[str], panels: Sequence[Panel], *, ident: str, title: str,
+                       desc: str) -> str:
+    """Small multiples, two per row: one dot per construct on a 0-1 axis, threshold dashed."""
+    cols = 2
+    pw, gap = 312.0, 16.0
+    lab_w, val_w = 96.0, 62.0
+    row_h = 26.0
+    head = 44.0
+    foot = 28.0
+    ph = head + row_h * len(labels) + foot
+    rows_n = math.ceil(len(panels) / cols)
+    W = cols * pw + (cols - 1) * gap
+    H = rows_n * ph + (rows_n - 1) * gap
+    body: list[str] = []
+    for k, p in enumerate(panels):
+        ox = (k % cols) * (pw + gap)
+        oy = (k // cols) * (ph + gap)
+        px0, px1 = ox + lab_w, ox + pw - val_w
+        sx = Linear(0.0, 1.0, px0, px1)
+        body.append(rect(ox, oy, pw, ph, fill="#ffffff", stroke=GRID, rx=4))
+        body.append(text(ox + 10, oy + 19, p.title, font_size=14, font_weight="700"))
+        plot_top, plot_bot = oy + head - 6, oy + head + row_h * len(labels)
+        for t in (0.0, 0.5, 1.0):
+            body.append(line(sx(t), plot_top, sx(t), plot_bot, stroke=GRID))
+            body.append(text(sx(t), plot_bot + 17, fmt_tick(t), font_size=12.5, text_anchor="middle", fill=MUTED))
+        if p.threshold is not None:
+            tx = sx(p.threshold)
+            body.append(line(tx, plot_top, tx, plot_bot, stroke=INK, stroke_width=1.5, stroke_dasharray="5 3"))
+            body.append(text(tx, plot_top - 4, p.threshold_text, font_size=12.5, text_anchor="middle", fill=INK))
+        for i, lab in enumerate(labels):
+            cy = oy + head + row_h * i + row_h / 2
+            body.append(text(ox + 10, cy + 4.5, _clip(lab, 12), font_size=13))
+            v = p.values[i] if i < len(p.values) else None
+            ci = p.intervals[i] if i < len(p.intervals) else None
+            passed = p.passes[i] if i < len(p.passes) else None
+            if ci is not None:
+                body.append(line(sx(_unit(ci[0])), cy, sx(_unit(ci[1])), cy, stroke=ACCENT, stroke_width=2))
+            if v is None:
+                body.append(text((px0 + px1) / 2, cy + 4.5, "not available", font_size=12, text_anchor="middle",
+                                 fill=MUTED, font_style="italic"))
+            elif passed is False:
+                cx, d = sx(_unit(v)), 6.5
+                body.append(el("polygon", points=points([(cx - d, cy - d + 1), (cx + d, cy - d + 1), (cx, cy + d)]),
+                               fill="#ffffff", stroke=FAIL, stroke_width=2))
+            else:
+                body.append(el("circle", cx=sx(_unit(v)), cy=cy, r=5.5, fill=ACCENT))
+            t = p.texts[i] if i < len(p.texts) else ""
+            body.append(text(ox + pw - 8, cy + 4.5, t, font_size=13, text_anchor="end",
+                             fill=FAIL if passed is False else INK, font_weight="700" if passed is False else None))
+    return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
+
+
+def _unit(v: float) -> float:
+    return min(max(v, 0.0), 1.0)
+
+
+def _clip(s: str, n: int) -> str:
+    return s if len(s) <= n else s[: n - 1] + "\u2026"
+
+
+# --------------------------------------------------------------------------- heat map
+
+@dataclass
+class HeatColumn:
+    label: str
+    high: str  # colour at the top of the scale
+    top: float  # value that gets the full colour (absolute values)
+    span_groups: bool = False  # one cell per group (construct-level value), spanning its rows
+
+
+@dataclass
+class HeatGroup:
+    label: str
+    rows: list[str]
+    # per column: span columns hold one (value, text); item columns a list of (value, text) per row
+    cells: list[list[tuple[float | None, str]]]
+
+
+def heat_map(groups: Sequence[HeatGroup], columns: Sequence[HeatColumn], *, ident: str, title: str,
+             desc: str) -> str:
+    """Items in rows (grouped by construct), one column per quantity; each cell prints its value."""
+    lab_w, col_w, row_h, grp_h = 150.0, 118.0, 24.0, 26.0
+    head_lines = [wrap(c.label, 15) for c in columns]
+    head = 14.0 + 16.0 * max((len(h) for h in head_lines), default=1)
+    W = lab_w + col_w * len(columns) + 4
+    n_rows = sum(len(g.rows) for g in groups)
+    H = head + grp_h * len(groups) + row_h * n_rows + 6
+    body: list[str] = []
+    for j, hl in enumerate(head_lines):
+        cx = lab_w + col_w * j + col_w / 2
+        for i, ln in enumerate(hl):
+            body.append(text(cx, 16 + 16 * i, ln, font_size=13, text_anchor="middle", font_weight="700"))
+    y = head
+    for g in groups:
+        body.append(rect(0, y, W, grp_h, fill=SHADE))
+        body.append(text(8, y + 17.5, _clip(g.label, 40), font_size=13.5, font_weight="700"))
+        y += grp_h
+        for i, item in enumerate(g.rows):
+            body.append(text(lab_w - 10, y + row_h * i + 16.5, _clip(item, 18), font_size=13, text_anchor="end"))
+        for j, c in enumerate(columns):
+            cells = g.cells[j] if j < len(g.cells) else []
+            x = lab_w + col_w * j
+            if c.span_groups:
+                v, t = cells[0] if cells else (None, "\u2014")
+                body.append(_cell(x, y, col_w, row_h * max(len(g.rows), 1), v, t, c))
+            else:
+                for i in range(len(g.rows)):
+                    v, t = cells[i] if i < len(cells) else (None, "\u2014")
+                    body.append(_cell(x, y + row_h * i, col_w, row_h, v, t, c))
+        y += row_h * len(g.rows)
+    return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
+
+
+def _cell(x: float, y: float, w: float, h: float, v: float | None, t: str, c: HeatColumn) -> str:
+    if v is None:
+        fill = "#f7f8fa"
+    else:
+        fill = mix("#ffffff", c.high, abs(v) / c.top if c.top > 0 else 0.0)
+    out = rect(x + 1, y + 1, w - 2, h - 2, fill=fill, stroke="#ffffff")
+    out += text(x + w / 2, y + h / 2 + 4.5, t, font_size=13, text_anchor="middle",
+                fill=MUTED if v is None else text_on(fill))
+    return out
+
+
+Formatter = Callable[[float | None], str]
+
+__all__ = ["ForestRow", "HeatColumn", "HeatGroup", "Linear", "Marker", "Panel", "contrast", "forest_plot",
+           "heat_map", "mix", "nice_ticks", "reliability_panels", "sensitivity_plot", "svg_figure", "text_on",
+           "wrap"]

@@ -1,0 +1,137 @@
+"""Shared fixtures of the HTTP service's tests (tests/test_service*.py)."""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import signal
+import subprocess
+import sys
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+POSTGRES_URL = os.environ.get("SAMESOURCE_TEST_POSTGRES_URL")
+
+
+def small_survey(n: int = 200, seed: int = 3) -> tuple[bytes, dict]:
+    """A simulated survey (CSV bytes) and its design: 3 constructs (one a marker) of 3-4
+    items, 200 respondents, so an analysis takes a couple of seconds."""
+    from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+
+    spec = SurveySpec(
+        constructs=[ConstructSpec("support", 4, 0.75, 0.3, reverse=[4]),
+                    ConstructSpec("engagement", 4, 0.7, 0.3),
+                    ConstructSpec("weather", 3, 0.7, 0.3, role="marker", prefix="wth")],
+        paths={"engagement": {"support": 0.4}}, n=n, seed=seed)
+    df, _truth = simulate_survey(spec)
+    return df.to_csv(index=False).encode("utf-8"), design_for(spec)
+
+
+@pytest.fixture(scope="session")
+def svc_survey() -> tuple[bytes, dict]:
+    return small_survey()
+
+
+def wait_for(predicate: Callable[[], object], *, timeout: float, every: float = 0.2,
+             what: str = "condition") -> object:
+    """Poll until ``predicate()`` is truthy; fail the test after ``timeout`` seconds (a bound
+    on a wait, not a speed check)."""
+    deadline = time.monotonic() + timeout
+    while True:
+        value = predicate()
+        if value:
+            return value
+        if time.monotonic() > deadline:
+            pytest.fail(f"gave up waiting for {what} after {timeout} s")
+        time.sleep(every)
+
+
+def cli(*args: str, env: dict | None = None, timeout: float = 600) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "service.cli", *map(str, args)],
+                          capture_output=True, text=True, cwd=ROOT, timeout=timeout,
+                          env={**os.environ, **(env or {})})
+
+
+@dataclass
+class ServerProcess:
+    """`samesource serve` in its own process (and process group), on a free loopback port."""
+
+    data_dir: Path
+    env: dict = field(default_factory=dict)
+    proc: subprocess.Popen | None = None
+    base: str = ""
+    log_path: Path | None = None
+
+    def start(self) -> ServerProcess:
+        self.log_path = self.data_dir.parent / f"{self.data_dir.name}-server-{time.time_ns()}.log"
+        log = open(self.log_path, "w")
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", "0",
+             "--data", str(self.data_dir)],
+            stdout=subprocess.PIPE, stderr=log, text=True, cwd=ROOT, start_new_session=True,
+            env={**os.environ, **self.env})
+        line = self.proc.stdout.readline()  # the announcement, or "" if it died
+        m = re.search(r"http://127\.0\.0\.1:(\d+)", line)
+        if not m:
+            self.stop()
+            pytest.fail(f"the server did not start: {line!r}\n{self.log()}")
+        self.base = f"http://127.0.0.1:{m.group(1)}"
+        return self
+
+    def log(self) -> str:
+        return self.log_path.read_text() if self.log_path and self.log_path.exists() else ""
+
+    def kill9(self) -> None:
+        """SIGKILL the server process alone (a crash); its job workers notice by themselves."""
+        self.proc.send_signal(signal.SIGKILL)
+        self.proc.wait(timeout=30)
+
+    def stop(self) -> None:
+        if self.proc is None:
+            return
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            try:
+                self.proc.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(timeout=30)
+        try:  # anything left in the server's own process group
+            os.killpg(self.proc.pid, signal.SIGKILL)
+        except (ProcessLookupError, PermissionError):
+            pass
+        self.proc.stdout.close()
+
+
+@pytest.fixture
+def server_factory(tmp_path: Path) -> Iterator[Callable[..., ServerProcess]]:
+    started: list[ServerProcess] = []
+
+    def make(data_dir: Path | None = None, **env: str) -> ServerProcess:
+        s = ServerProcess(data_dir or tmp_path / "data", env=env).start()
+        started.append(s)
+        return s
+
+    yield make
+    for s in started:
+        s.stop()
+
+
+def new_token(data_dir: Path, tenant: str) -> str:
+    res = cli("token", "create", "--tenant", tenant, "--data", str(data_dir))
+    assert res.returncode == 0, res.stderr
+    return res.stdout.strip()
+
+
+def auth(token: str) -> dict:
+    return {"Authorization": f"Bearer {token}"}
+
+
+def dumps(obj: object) -> str:
+    return json.dumps(obj)
