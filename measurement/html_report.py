@@ -20,7 +20,6 @@ from . import svg
 from .tables import (
     CHECK_LABELS,
     absent_reason,
-    flatten,
     meets,
     method_check_rows,
     method_label,
@@ -130,15 +129,19 @@ def _conf(report: dict) -> str:
 # --------------------------------------------------------------------------- HTML building blocks
 
 def table(head: Sequence[str], rows: Iterable[Sequence[str]], *, caption: str, numeric: Sequence[int] = (),
-          row_header: bool = True, row_classes: Sequence[str] | None = None, cls: str = "") -> str:
+          row_header: bool = True, row_classes: Sequence[str] | None = None, cls: str = "",
+          span_short: bool = False) -> str:
     """A table with a caption and scoped headers; cells are markup (escape before)."""
     numeric = set(numeric)
     th = "".join(f'<th scope="col"{" class=num" if i in numeric else ""}>{c}</th>' for i, c in enumerate(head))
     body = []
     for r_i, row in enumerate(rows):
         cells = []
+        short = span_short and len(row) < len(head)
         for i, c in enumerate(row):
-            attr = ' class="num"' if i in numeric else ""
+            attr = ' class="num"' if i in numeric and not short else ""
+            if short and i == len(row) - 1:
+                attr += f' colspan="{len(head) - i}"'
             if i == 0 and row_header:
                 cells.append(f'<th scope="row"{attr}>{c}</th>')
             else:
@@ -150,6 +153,17 @@ def table(head: Sequence[str], rows: Iterable[Sequence[str]], *, caption: str, n
     c = f' class="{cls}"' if cls else ""
     return (f'<div class="table-wrap"><table{c}><caption>{caption}</caption><thead><tr>{th}</tr></thead>'
             f'<tbody>{"".join(body)}</tbody></table></div>')
+
+
+class Figures:
+    """Numbers the figures in page order."""
+
+    def __init__(self) -> None:
+        self.n = 0
+
+    def next(self) -> int:
+        self.n += 1
+        return self.n
 
 
 def figure(svg_markup: str, caption: str, ident: str) -> str:
@@ -197,13 +211,15 @@ def _answer_for_path(report: dict, p: dict) -> str:
         s.append("No corrected estimate could be computed, so neither bias has been removed.")
     elif pref_key == "latent" or not _finite(la):
         if _finite(la) and _finite(o):
-            s.append(f"Correcting for unreliability moves it to {num(la)} ({signed(la - o)}, latent model).")
+            s.append(f"Correcting for unreliability moves it to {num(la)} ({signed(round(la, 3) - round(o, 3))}, "
+                     f"latent model).")
         s.append("No shared-method correction passed its checks, so the preferred estimate corrects unreliability "
                  "only: shared method, if present, is still in it, and whether it outweighs unreliability here is "
                  "not known.")
     else:
-        gap_u = la - o if _finite(o) else None
-        gap_m = pr - la
+        # differences of the printed (rounded) numbers, so the sentence adds up as read
+        gap_u = round(la, 3) - round(o, 3) if _finite(o) else None
+        gap_m = round(pr, 3) - round(la, 3)
         if gap_u is not None:
             s.append(f"Correcting for unreliability alone moves it to {num(la)} ({signed(gap_u)}, latent model); "
                      f"correcting also for shared method moves it to {num(pr)} ({signed(gap_m)}).")
@@ -253,13 +269,13 @@ def _sensitivity_sentence(s: dict) -> str:
 def _verdict_box(report: dict) -> str:
     v = _get(report, "method_variance", "verdict")
     if not isinstance(v, dict):
-        return ('<div class="verdict level-unknown"><p class="verdict-title">Common-method variance: '
-                'not assessed</p><p>The report has no method-variance verdict.</p></div>')
+        return ('<div class="verdict level-unknown"><h3 class="verdict-title">Common-method variance: '
+                'not assessed</h3><p>The report has no method-variance verdict.</p></div>')
     level = str(v.get("level") or "unknown")
     raised = v.get("raised_by") or []
     extra = ("<p>Raised by:</p><ul>" + "".join(f"<li>{h(r)}</li>" for r in raised) + "</ul>") if raised else ""
-    return (f'<div class="verdict level-{h(level)}"><p class="verdict-title">Common-method variance: '
-            f'<span class="level-word">{h(level.upper())}</span></p><p>{h(v.get("summary"))}</p>{extra}'
+    return (f'<div class="verdict level-{h(level)}"><h3 class="verdict-title">Common-method variance: '
+            f'<span class="level-word">{h(level.upper())}</span></h3><p>{h(v.get("summary"))}</p>{extra}'
             f'<p class="sub">The rules behind the verdict are in <a href="#method-variance">the common-method '
             f'checks</a>.</p></div>')
 
@@ -273,10 +289,11 @@ def answer_section(report: dict) -> str:
     if paths:
         body = "".join(_answer_for_path(report, p) for p in paths)
     else:
+        intro = ""
         body = ('<p class="note">The design declares no key paths, so there are no path estimates; the '
                 'reliability, validity and common-method checks follow.</p>')
     return (f'<section id="answer" aria-labelledby="answer-h"><h2 id="answer-h">The answer in brief</h2>{intro}'
-            f'<h3>Common-method variance</h3>{_verdict_box(report)}{body}</section>')
+            f'{_verdict_box(report)}{body}</section>')
 
 
 def cautions_section(report: dict, ident: str, title: str) -> str:
@@ -297,70 +314,114 @@ def _forest_rows(report: dict, p: dict) -> list[svg.ForestRow]:
             continue
         ci = e.get("ci") if isinstance(e.get("ci"), list) else None
         lo, hi = (ci[0], ci[1]) if ci and len(ci) == 2 and all(_finite(x) for x in ci) else (None, None)
-        rows.append(svg.ForestRow(label, est_ci(e).replace(MINUS, MINUS), e["estimate"], lo, hi,
+        rows.append(svg.ForestRow(label, est_ci(e), e["estimate"], lo, hi,
                                   preferred=m == p.get("preferred")))
     return rows
 
 
-def paths_section(report: dict) -> str:
+def paths_section(report: dict, figs: Figures | None = None) -> str:
+    figs = figs or Figures()
     paths = report.get("paths") or []
     if not paths:
         return section("paths", "Key paths under every correction",
                        '<p class="note">The design declares no key paths.</p>')
     conf = _conf(report)
-    out = [f"<p>Each path is estimated eight ways, from the plain observed estimate to models that correct "
+    n_ways = max(len(p.get("estimates") or {}) for p in paths)
+    out = [f"<p>Each path is estimated {n_ways} ways, from the plain observed estimate to models that correct "
            f"unreliability and shared method. Points are estimates, lines their {conf} intervals; the "
            f"preferred estimate is the diamond on the highlighted row.</p>"]
+    common = _common_notes(paths)
+    out.append(_glossary(report, common))
     for i, p in enumerate(paths):
         ident = f"forest-{i + 1}"
         rows = _forest_rows(report, p)
         desc = "; ".join(f"{r.label}: {r.value_text or r.unavailable}" + (" (preferred)" if r.preferred else "")
                          for r in rows)
         chart = svg.forest_plot(rows, ident=f"{ident}-svg", title=f"Every estimate of {_path_plain(p)}", desc=desc)
-        cap = (f"<strong>Figure {i + 1}a.</strong> Every estimate of {path_title(p)}. What to look for: how far the "
+        cap = (f"<strong>Figure {figs.next()}.</strong> Every estimate of {path_title(p)}. What to look for: how far the "
                f"preferred estimate (diamond, highlighted) sits from the observed one (top row), and whether its "
                f"interval crosses zero (dashed line). Rows marked not available name the reason.")
-        out.append(f'<h3 id="path-{i + 1}">{path_title(p)}</h3>')
+        out.append(f'<div class="keep"><h3 id="path-{i + 1}">{path_title(p)}</h3>')
         preds = p.get("predictors") or []
         if len(preds) > 1:
             out.append(f'<p class="sub">Estimated in the equation of {h(p.get("outcome"))} with all its predictors: '
                        f'{", ".join(h(x) for x in preds)}.</p>')
-        out.append(figure(chart, cap, ident))
-        out.append(_estimates_table(report, p))
+        out.append(figure(chart, cap, ident) + "</div>")
+        out.append(_estimates_table(report, p, common))
     return section("paths", "Key paths under every correction", "".join(out))
 
 
-def _estimates_table(report: dict, p: dict) -> str:
-    rows, classes = [], []
-    boot = False
-    for m, e in (p.get("estimates") or {}).items():
+def _common_notes(paths: list[dict]) -> dict[str, str]:
+    """The note of each method when it reads the same on every path (it then goes in the glossary)."""
+    seen: dict[str, set[str]] = {}
+    for p in paths:
+        for m, e in (p.get("estimates") or {}).items():
+            if e and _finite(e.get("estimate")) and e.get("note"):
+                seen.setdefault(m, set()).add(str(e["note"]))
+    return {m: next(iter(v)) for m, v in seen.items() if len(v) == 1}
+
+
+def _estimates_table(report: dict, p: dict, common: dict[str, str]) -> str:
+    rows, classes, notes = [], [], []
+    ests = p.get("estimates") or {}
+    boot = any(isinstance(e, dict) and e.get("bootstrap") for e in ests.values())
+    failed = any(_finite(_get(e, "bootstrap", "n_failed")) and e["bootstrap"]["n_failed"] > 0 for e in ests.values())
+    for m, e in ests.items():
         pref = m == p.get("preferred")
         label = h(method_label(m)) + (' <span class="tag">preferred</span>' if pref else "")
         if not e or not _finite(e.get("estimate")):
-            rows.append([label, DASH, DASH, DASH, DASH, DASH, f"<em>not available:</em> {h(absent_reason(report, m, e))}"])
+            row = [label, f'<span class="na">not available: {h(absent_reason(report, m, e))}</span>']
         else:
+            row = [label, num(e.get("estimate")), interval(e.get("ci")), num(e.get("se")), pval(e.get("p")),
+                   h(CI_METHOD.get(e.get("ci_method"), e.get("ci_method")))]
             b = e.get("bootstrap")
-            if b:
-                boot = True
-            note = h(e.get("note"))
-            if b:
-                note += (f' <span class="sub">Bootstrap: {count(b.get("n_boot"))} replicates, '
-                         f'{count(b.get("n_failed"))} failed; percentile {interval(b.get("ci_percentile"))}, '
-                         f'BCa {interval(b.get("ci_bca"))}.</span>')
-            rows.append([label, num(e.get("estimate")), interval(e.get("ci")), num(e.get("se")), pval(e.get("p")),
-                         h(CI_METHOD.get(e.get("ci_method"), e.get("ci_method"))), note])
+            if boot:
+                row += [interval((b or {}).get("ci_percentile")), interval((b or {}).get("ci_bca"))]
+                if failed:
+                    row.append(count((b or {}).get("n_failed")) if b else DASH)
+            if e.get("note") and common.get(m) != e.get("note"):
+                notes.append(f"<li><strong>{h(method_label(m))}:</strong> {h(e['note'])}</li>")
+        rows.append(row)
         classes.append("preferred" if pref else "")
-    cap = f"Estimates of {path_title(p)} ({_conf(report)} intervals" + (", bootstrap where stated)" if boot else ")")
-    return table(["Estimate", "Value", "Interval", "SE", "p", "Interval method", "What it corrects"], rows,
-                 caption=cap, numeric=(1, 2, 3, 4), row_classes=classes, cls="estimates")
+    head = ["Estimate", "Value", "Interval", "SE", "p", "Interval method"]
+    if boot:
+        head += ["Bootstrap percentile", "Bootstrap BCa"] + (["Failed replicates"] if failed else [])
+    width = len(head)
+    # an unavailable estimate: its reason spans the numeric columns
+    rows = [r if len(r) == width else [r[0], r[1]] for r in rows]
+    body = table(head, rows, caption=f"Estimates of {path_title(p)} ({_conf(report)} intervals)",
+                 numeric=tuple(i for i in range(1, width) if i != 5), row_classes=classes, cls="estimates",
+                 span_short=True)
+    n_boot = next((e["bootstrap"].get("n_boot") for e in ests.values() if isinstance(e, dict) and e.get("bootstrap")),
+                  None)
+    if boot:
+        body += (f'<p class="sub">Intervals and SEs from {count(n_boot)} bootstrap replicates'
+                 + ("" if failed else ", none of which failed")
+                 + '; the Interval column is the one the report uses (BCa, or percentile when BCa cannot be '
+                   'computed).</p>')
+    if notes:
+        body += '<ul class="sub">' + "".join(notes) + "</ul>"
+    return body
 
 
-def sensitivity_section(report: dict) -> str:
+def _glossary(report: dict, common: dict[str, str]) -> str:
+    if not common:
+        return ""
+    items = "".join(f"<dt>{h(method_label(m))}</dt><dd>{h(n)}</dd>" for m, n in common.items())
+    return ('<details class="glossary" open><summary>What each estimate corrects</summary>'
+            f'<dl class="facts">{items}</dl></details>')
+
+
+def sensitivity_section(report: dict, figs: Figures | None = None) -> str:
+    figs = figs or Figures()
     paths = report.get("paths") or []
     title = "How much shared method would explain each path away"
     if not paths:
         return section("sensitivity", title, '<p class="note">The design declares no key paths.</p>')
-    out = ["<p>Each curve re-estimates the latent path assuming that a given share of every item's variance "
+    meanings = {str((p.get("sensitivity") or {}).get("meaning") or "") for p in paths}
+    shared = meanings.pop() if len(meanings) == 1 else None
+    out = [f"<p>{h(shared)}</p>" if shared else
+           "<p>Each curve re-estimates the latent path assuming that a given share of every item's variance "
            "comes from one shared method source, from none to half.</p>"]
     for i, p in enumerate(paths):
         s = p.get("sensitivity") or {}
@@ -377,31 +438,34 @@ def sensitivity_section(report: dict) -> str:
         if _finite(be):
             markers.append(svg.Marker(be, f"break-even {pct(be)}", "break_even"))
         ident = f"sensitivity-{i + 1}"
-        out.append(f"<h3>{path_title(p)}</h3>")
+        out.append(f'<div class="keep"><h3 id="sensitivity-path-{i + 1}">{path_title(p)}</h3>')
         facts = [("Break-even method share", pct(be) if _finite(be) else "none within the range the model can hold"),
                  ("Interval first covers zero at", pct(cz) if _finite(cz) else "not within the range tested"),
                  ("Method share the checks estimated", pct(est) if _finite(est) else
                   "not available: no method factor or measured method model was usable"),
                  ("The model holds up to", pct(holds))]
         if not curve:
-            out.append('<p class="note">The sensitivity curve could not be computed for this path.</p>' + dl(facts))
+            out.append('<p class="note">The sensitivity curve could not be computed for this path.</p>' + dl(facts)
+                       + "</div>")
             continue
         desc = (f"Estimate from {num(curve[0][1])} at 0% to {num(curve[-1][1])} at {pct(curve[-1][0])}. "
                 + "; ".join(f"{k}: {v}" for k, v in facts))
         chart = svg.sensitivity_plot(curve, markers=markers, holds_up_to=holds if _finite(holds) else None,
                                      ident=f"{ident}-svg", title=f"Sensitivity of {_path_plain(p)} to shared method",
                                      desc=desc)
-        cap = (f"<strong>Figure {i + 1}b.</strong> {path_title(p)}: estimate (line) and its {_conf(report)} interval "
-               f"(band) against the assumed method share. What to look for: where the line crosses zero (dashed: "
-               f"break-even share) compared with the share the checks estimated (solid, orange). The dotted line "
-               f"marks where the interval first covers zero; the grey area is more method variance than the model "
-               f"can hold. {h(s.get('meaning') or '')}")
+        cap = (f"<strong>Figure {figs.next()}.</strong> {path_title(p)}: the estimate (line) and its "
+               f"{_conf(report)} interval (band) for each assumed method share. What to look for: the share the "
+               f"checks estimated (solid orange line) well left of the break-even share (dashed line, where the "
+               f"estimate reaches zero) means shared method of the size found cannot explain the association away. "
+               f"Dotted line: where the interval first covers zero. Grey area: more method variance than the model "
+               f"can hold." + (f" {h(s.get('meaning'))}" if s.get("meaning") and s.get("meaning") != shared else ""))
         out.append(figure(chart, cap, ident))
-        out.append(dl(facts))
+        out.append(dl(facts) + "</div>")
         pts = [[pct(c[0]), num(c[1]), interval([c[2], c[3]])] for c in curve]
         out.append("<details><summary>Every point of the curve</summary>"
                    + table(["Assumed method share", "Estimate", "Interval"], pts,
-                           caption=f"Sensitivity curve of {path_title(p)}", numeric=(0, 1, 2)) + "</details>")
+                           caption=f"Sensitivity curve of {path_title(p)}", numeric=(0, 1, 2), cls="narrow")
+                   + "</details>")
     return section("sensitivity", title, "".join(out))
 
 
@@ -417,7 +481,8 @@ RELIABILITY = (("alpha", "Cronbach's alpha"), ("omega", "Omega"), ("composite_re
                ("ave", "AVE"))
 
 
-def reliability_section(report: dict) -> str:
+def reliability_section(report: dict, figs: Figures | None = None) -> str:
+    figs = figs or Figures()
     constructs = report.get("constructs") or {}
     th = report.get("thresholds") or {}
     if not constructs:
@@ -436,13 +501,17 @@ def reliability_section(report: dict) -> str:
         panels.append(svg.Panel(f"{title} ({threshold_text(t)})" if t else title,
                                 t.get("value") if t else None, num(t.get("value"), 2) if t else "",
                                 vals, texts, passes, intervals))
-    desc = "; ".join(f"{n}: " + ", ".join(f"{t} {num(constructs[n].get(k))}" for k, t in RELIABILITY) for n in names)
-    chart = svg.reliability_panels(names, panels, ident="reliability-svg",
-                                   title="Reliability and AVE of each construct against the thresholds", desc=desc)
-    cap = ("<strong>Figure 3.</strong> Reliability of each scale. What to look for: every dot right of the dashed "
+    charts = []
+    for k, panel in enumerate(panels):
+        desc = "; ".join(f"{n}: {tx}" + (" (meets the threshold)" if ok else " (below the threshold)" if ok is False
+                                          else "") for n, tx, ok in zip(names, panel.texts, panel.passes, strict=True))
+        charts.append(svg.reliability_panel(names, panel, ident=f"reliability-{k + 1}-svg", desc=desc))
+    chart = '<div class="panels">' + "".join(charts) + "</div>"
+    cap = (f"<strong>Figure {figs.next()}.</strong> Reliability of each scale, one panel per measure. What to look for: "
+           "every dot right of the dashed "
            f"threshold line. A filled dot and {PASS} meet the threshold; a hollow triangle and {FAIL} fall below it. "
            "The line through the alpha dot is its interval (Feldt). Thresholds: "
-           + "; ".join(f"{t} {threshold_text(th.get(k))} ({h(_get(th, k, 'source'))})" for k, t in RELIABILITY if th.get(k))
+           + "; ".join(f"{t} {threshold_text(th.get(k))}, {h(_get(th, k, 'source'))}" for k, t in RELIABILITY if th.get(k))
            + ".")
     rows = []
     for n, c in constructs.items():
@@ -457,9 +526,12 @@ def reliability_section(report: dict) -> str:
                     else DASH + ' <span class="sub">(not available)</span>'
             cells.append(cell)
         rows.append(cells)
-    head = ["Construct", "Role", "Items", "n (complete)"] + [
-        f"{t} ({threshold_text(th.get(k))})" if th.get(k) else t for k, t in RELIABILITY]
-    tbl = table(head, rows, caption=f"Reliability per construct ({PASS} meets the threshold, {FAIL} below it)",
+    short = {"alpha": "Alpha", "omega": "Omega", "composite_reliability": "CR", "ave": "AVE"}
+    head = ["Construct", "Role", "Items", "n"] + [
+        f'{short[k]}<br><span class="sub">{threshold_text(th.get(k))}</span>' if th.get(k) else short[k]
+        for k, _ in RELIABILITY]
+    tbl = table(head, rows, caption=f"Reliability per construct (n: complete answers; CR: composite reliability; {PASS} meets the "
+                        f"threshold, {FAIL} below it; alpha's interval in brackets)",
                 numeric=(2, 3, 4, 5, 6, 7), cls="reliability")
     return section("reliability", "Reliability and validity of each scale",
                    figure(chart, cap, "reliability-figure") + tbl)
@@ -498,7 +570,8 @@ def _construct_method_shares(report: dict) -> list[tuple[str, dict]]:
     return out
 
 
-def loadings_section(report: dict) -> str:
+def loadings_section(report: dict, figs: Figures | None = None) -> str:
+    figs = figs or Figures()
     constructs = report.get("constructs") or {}
     th = report.get("thresholds") or {}
     title = "Item loadings"
@@ -537,8 +610,8 @@ def loadings_section(report: dict) -> str:
                        "(marker and method scales are not estimated).")
     else:
         method_note = "The report has no method-variance estimate per construct or item, so only trait loadings are shown."
-    cap = (f"<strong>Figure 4.</strong> Standardized loadings of each item on its construct; darker means larger. "
-           f"What to look for: loadings {threshold_text(lt)} ({h(_get(lt, 'source'))}); {FAIL} marks an item below. "
+    cap = (f"<strong>Figure {figs.next()}.</strong> Standardized loadings of each item on its construct; darker means larger. "
+           f"What to look for: loadings {threshold_text(lt)} ({h(_get(lt, 'source'))}), shown with no mark; {FAIL} marks an item below. "
            f"{method_note} A method share above 10% is substantial by the verdict's rules.")
     rows = []
     for name, c in constructs.items():
@@ -590,7 +663,8 @@ def method_section(report: dict) -> str:
     out.append(table(["Check", "Signal", "Value", "Test p", "Rule", "Level"], rows,
                      caption="Every signal the verdict weighed (○ none, ◐ minor, ● substantial)",
                      numeric=(3,), cls="checks"))
-    rules = _get(mv, "verdict", "rules") or []
+    shown = {r.get("rule") for r in method_check_rows(report)}
+    rules = [r for r in _get(mv, "verdict", "rules") or [] if r not in shown]
     if rules:
         out.append("<h3>How the verdict is reached</h3><ul>" + "".join(f"<li>{h(r)}</li>" for r in rules) + "</ul>")
     for key, render in (("method_factor", _mf_detail), ("measured_method", _mm_detail), ("marker", _marker_detail),
@@ -644,7 +718,7 @@ def _warnings_list(ws: Any) -> str:
 
 def _share_table(shares: dict, caption: str) -> str:
     return table(["Construct", "Method share of item variance"], [[h(k), pct(v)] for k, v in shares.items()],
-                 caption=caption, numeric=(1,))
+                 caption=caption, numeric=(1,), cls="narrow")
 
 
 def _mf_detail(report: dict, s: dict) -> str:
@@ -680,7 +754,7 @@ def _marker_detail(report: dict, s: dict) -> str:
     if s.get("marker_correlations"):
         out += table(["Scale", "Correlation with the marker"],
                      [[h(k), num(v)] for k, v in s["marker_correlations"].items()],
-                     caption="The marker's correlation with each substantive scale", numeric=(1,))
+                     caption="The marker's correlation with each substantive scale", numeric=(1,), cls="narrow")
     pairs = s.get("pairs") or {}
     if pairs:
         out += table(["Pair", "r", "r adjusted", "t", "p"],
@@ -689,11 +763,12 @@ def _marker_detail(report: dict, s: dict) -> str:
                      caption="Scale correlations before and after the marker adjustment", numeric=(1, 2, 3, 4))
     sens = [x for x in s.get("sensitivity") or [] if isinstance(x, dict)]
     if sens and pairs:
-        keys = list(pairs)
-        out += table(["Choice of r_M", "r_M"] + [h(k.replace("|", " \u00d7 ")) for k in keys],
-                     [[h(str(x.get("rule", "")).replace("_", " ")), num(x.get("r_m"))]
-                      + [num(_get(x, "pairs", k, "r_adjusted")) for k in keys] for x in sens],
-                     caption="Adjusted correlations under each choice of r_M", numeric=tuple(range(1, 2 + len(keys))))
+        head = ["Pair"] + [f'{h(str(x.get("rule", "")).replace("_", " "))}<br><span class="sub">r_M '
+                           f'{num(x.get("r_m"))}</span>' for x in sens]
+        out += table(head, [[h(k.replace("|", " \u00d7 "))] + [num(_get(x, "pairs", k, "r_adjusted")) for x in sens]
+                            for k in pairs],
+                     caption="Adjusted correlations under each choice of r_M (smallest, second smallest, upper "
+                             "95% bound)", numeric=tuple(range(1, 1 + len(sens))))
     if s.get("note"):
         out += f'<p class="sub">{h(s["note"])}</p>'
     return out
@@ -738,7 +813,7 @@ def _vif_detail(report: dict, s: dict) -> str:
     rows = [[h(k), num(v, 2) + (mark(v <= t, f"above {num(t, 1)}", f"at most {num(t, 1)}") if _finite(v) and _finite(t)
                                  else "")] for k, v in (s.get("values") or {}).items()]
     return (table(["Construct", f"VIF (flag above {num(t, 1)})" if _finite(t) else "VIF"], rows,
-                  caption="Full-collinearity VIF per construct", numeric=(1,))
+                  caption="Full-collinearity VIF per construct", numeric=(1,), cls="narrow")
             + f'<p class="sub">{h(s.get("rule"))}</p>')
 
 
@@ -760,7 +835,8 @@ def fit_section(report: dict) -> str:
         out.append(f'<p class="alert">The measurement model ended with status <strong>{h(status)}</strong>: read '
                    f'its fit and everything built on it with care.</p>')
     out.append(_warnings_list(mm.get("warnings")))
-    rows = [["Chi-square", f"{num(f.get('chi2'), 2)} on {count(f.get('df'))} df, p {pval(f.get('p'))}", DASH, DASH]]
+    rows = [["Chi-square", f"{num(f.get('chi2'), 2)} on {count(f.get('df'))} df, p {pval(f.get('p'))}", DASH, DASH,
+             DASH]]
     for key, label in FIT_ROWS:
         v = f.get(key)
         t = th.get(key)
@@ -768,10 +844,10 @@ def fit_section(report: dict) -> str:
         ok = meets(v, t)
         verdict = DASH if ok is None else (f'<span class="mark ok" aria-hidden="true">{PASS}</span> meets' if ok
                                            else f'<span class="mark bad" aria-hidden="true">{FAIL}</span> does not meet')
-        rows.append([label, val, f"{threshold_text(t, 2)} ({h(_get(t, 'source'))})" if t else DASH, verdict])
-    rows.append(["N", count(f.get("n")), DASH, DASH])
+        rows.append([label, val, threshold_text(t, 2) if t else DASH, verdict, h(_get(t, "source"))])
+    rows.append(["N", count(f.get("n")), DASH, DASH, DASH])
     out.append(dl([("Estimator", h(str(mm.get("estimator") or "").upper() or None)), ("Status", h(status))]))
-    out.append(table(["Index", "Value", "Threshold", "Against the threshold"], rows,
+    out.append(table(["Index", "Value", "Threshold", "Against the threshold", "Source"], rows,
                      caption="Fit of the measurement model (every construct a factor of its own items)",
                      numeric=(1,), cls="fit"))
     names = list((report.get("constructs") or {}).keys())
@@ -823,25 +899,55 @@ def teams_section(report: dict) -> str:
         return ""
     k = teams.get("min_group_size")
     out = [dl([("Group column", h(teams.get("group_column"))), ("Groups", count(teams.get("groups"))),
-               ("Groups reported", count(teams.get("groups_reported"))), ("Minimum group size", count(k))]),
-           f'<p class="note">Groups with fewer than {count(k)} respondents are never shown.</p>']
+               ("Groups shown", count(teams.get("groups_reported"))),
+               ("Groups withheld as too small", count(teams.get("groups_withheld"))),
+               ("Respondents without a group", count(teams.get("respondents_without_group"))),
+               ("Minimum group size", count(k))]),
+           f'<p class="note">Groups with fewer than {count(k)} respondents are never shown; their members still '
+           f'count in the pooled results.</p>']
+    meaning = teams.get("meaning") if isinstance(teams.get("meaning"), dict) else {}
     cons = teams.get("constructs") or {}
     if cons:
-        out.append(table(["Construct", "ICC(1)", "ICC(2)", "Median rwg(j)"],
-                         [[h(n), num(v.get("icc1")), num(v.get("icc2")), num(v.get("rwg_j_median"))]
-                          for n, v in cons.items() if isinstance(v, dict)],
-                         caption="Agreement within groups per construct", numeric=(1, 2, 3)))
-    tp = [flatten(p) for p in teams.get("paths") or [] if isinstance(p, dict)]
+        out.append(table(["Construct", "ICC(1)", "ICC(2)", "Median rwg(j)", "Groups in rwg(j)"],
+                         [[h(n), num(v.get("icc1")), num(v.get("icc2")), num(v.get("rwg_j_median")),
+                           count(v.get("rwg_j_groups"))] for n, v in cons.items() if isinstance(v, dict)],
+                         caption="How much each construct differs between groups, and agreement within them",
+                         numeric=(1, 2, 3, 4)))
+    if meaning:
+        labels = {"icc1": "ICC(1)", "icc2": "ICC(2)", "rwg_j": "rwg(j)"}
+        out.append(dl([(h(labels.get(m, m)), h(t)) for m, t in meaning.items()]))
+    tp = [p for p in teams.get("paths") or [] if isinstance(p, dict)]
     if tp:
-        cols = list(dict.fromkeys(c for p in tp for c in p))
-        out.append(table([h(c.replace("_", " ")) for c in cols], [[_cell(p.get(c)) for c in cols] for p in tp],
-                         caption="Key paths within and between groups"))
+        rows = []
+        for p in tp:
+            split = p.get("split_source") or {}
+            test = p.get("within_between_test") or {}
+            between = p.get("between") or {}
+            split_txt = num(split.get("estimate")) + (f" {interval(split.get('ci'))}" if split.get("ci") else "")
+            if split.get("splits") is not None:
+                split_txt += (f' <span class="sub">({count(split.get("splits"))} splits, '
+                              f'{count(split.get("teams_used"))} groups)</span>')
+            if split.get("note"):
+                split_txt += f' <span class="sub">{h(split["note"])}</span>'
+            rows.append([path_title(p), num(_get(p, "within", "estimate")),
+                         num(between.get("estimate")) + (f' <span class="sub">({count(between.get("teams"))} '
+                                                          f'groups)</span>' if between.get("teams") else ""),
+                         pval(test.get("p")) + (" (differ)" if test.get("differ") else ""),
+                         num(_get(p, "same_source_team", "estimate")), split_txt])
+        out.append(table(["Path", "Within groups", "Between groups", "Within vs between, p",
+                          "Same-source group means", "Split-group estimate"], rows,
+                         caption="Key paths within and between groups (standardized)", numeric=(1, 2, 3, 4),
+                         cls="teampaths"))
+    notes = [n for n in teams.get("notes") or [] if n]
+    if notes:
+        out.append('<ul class="sub">' + "".join(f"<li>{h(n)}</li>" for n in notes) + "</ul>")
     groups = visible_groups(teams)
     if groups:
-        cols = [c for c in dict.fromkeys(c for g in groups for c in g)]
-        out.append(table([h(c) for c in cols], [[_cell(g.get(c)) for c in cols] for g in groups],
-                         caption=f"Mean scale scores per group (groups of at least {count(k)} only)",
-                         numeric=tuple(range(1, len(cols)))))
+        cols = list(dict.fromkeys(c for g in groups for c in g))
+        out.append('<div class="long-table">' + table(
+            [h(c) for c in cols], [[_cell(g.get(c)) for c in cols] for g in groups],
+            caption=f"Mean scale scores per group ({count(len(groups))} groups of at least {count(k)} respondents)",
+            numeric=tuple(range(1, len(cols))), cls="narrow") + "</div>")
     else:
         out.append('<p class="note">No group is large enough to show.</p>')
     return section("teams", "Teams", "".join(out))
@@ -896,15 +1002,15 @@ def data_section(report: dict) -> str:
     if dist:
         out.append(table(["Measure", "Median over respondents"],
                          [[h(k.replace("_", " ")), num(v.get("median"), 2)] for k, v in dist.items() if isinstance(v, dict)],
-                         caption="Typical values of the screening measures", numeric=(1,)))
+                         caption="Typical values of the screening measures", numeric=(1,), cls="narrow"))
     flagged = [f for f in sc.get("flagged_rows") or [] if isinstance(f, dict)]
     if flagged and len(flagged) <= 40:
-        out.append(table(["Row", "Flagged by"], [[count(f.get("row")), h(", ".join(f.get("reasons") or []))]
+        out.append(table(["Row", "Flagged by"], [[h(f.get("row")), h(", ".join(f.get("reasons") or []))]
                                                 for f in flagged],
-                         caption=f"Rows flagged for review ({count(len(flagged))})"))
+                         caption=f"Rows flagged for review ({count(len(flagged))})", cls="narrow"))
     elif flagged:
         out.append(f"<p>Rows flagged for review ({count(len(flagged))}): "
-                   + "; ".join(f"{count(f.get('row'))} ({h(', '.join(f.get('reasons') or []))})" for f in flagged)
+                   + "; ".join(f"{h(f.get('row'))} ({h(', '.join(f.get('reasons') or []))})" for f in flagged)
                    + "</p>")
     else:
         out.append("<p>No row was flagged.</p>")
@@ -945,6 +1051,7 @@ a{color:var(--accent)}
 .sr-only{position:absolute;width:1px;height:1px;padding:0;margin:-1px;overflow:hidden;clip:rect(0 0 0 0);
 white-space:nowrap;border:0}
 header.top{border-bottom:3px solid var(--accent);padding:1.5rem 0 1rem;margin-bottom:1rem}
+#answer>h2{border-top:0;margin-top:1.5rem}
 .kicker{margin:0;color:var(--muted);font-size:.95rem;letter-spacing:.02em}
 h1{font-size:1.9rem;line-height:1.2;margin:.25rem 0 .5rem;overflow-wrap:anywhere}
 h2{font-size:1.4rem;line-height:1.25;margin:2.75rem 0 .75rem;padding-top:.75rem;border-top:1px solid var(--line)}
@@ -956,7 +1063,7 @@ p{margin:.5rem 0 .85rem}
 .meta{color:var(--muted);margin:0;font-size:.95rem}
 .verdict{border:1px solid var(--line);border-left:8px solid var(--muted);border-radius:6px;padding:.85rem 1.1rem;
 margin:.75rem 0 1.25rem;background:var(--panel)}
-.verdict-title{font-weight:700;font-size:1.1rem;margin:.1rem 0 .4rem}
+.verdict-title{font-weight:700;font-size:1.15rem;margin:.2rem 0 .4rem}
 .verdict ul{margin:.25rem 0 .5rem 1.25rem;padding:0}
 .level-substantial{border-left-color:var(--bad)} .level-substantial .level-word{color:var(--bad)}
 .level-minor{border-left-color:var(--caution-line)} .level-minor .level-word{color:#7a4d00}
@@ -975,8 +1082,8 @@ nav.toc{background:var(--panel);border-radius:6px;padding:.5rem 1.1rem;margin:1.
 nav.toc h2{font-size:1.05rem;border:0;margin:.5rem 0;padding:0}
 nav.toc ol{margin:0 0 .5rem;padding-left:1.4rem;columns:2 16rem}
 figure{margin:1.25rem 0 1.5rem;padding:0}
-figure svg{display:block;width:100%;height:auto;max-width:42rem}
-figure#loadings-figure svg{max-width:40rem}
+figure svg{display:block;width:100%;height:auto}
+.panels{display:grid;grid-template-columns:repeat(auto-fill,minmax(17rem,1fr));gap:1rem;max-width:46rem}
 figcaption{color:var(--muted);font-size:.93rem;margin-top:.6rem;max-width:46rem}
 .table-wrap{overflow-x:auto;-webkit-overflow-scrolling:touch;margin:.75rem 0 1.25rem;max-width:100%}
 table{border-collapse:collapse;width:100%;font-size:.93rem;font-variant-numeric:tabular-nums}
@@ -986,9 +1093,10 @@ thead th{border-bottom:2px solid var(--ink);font-weight:700;vertical-align:botto
 tbody th{font-weight:600}
 .num{text-align:right;white-space:nowrap}
 tr.preferred th,tr.preferred td{background:var(--hl-bg)}
-table.estimates td:last-child{min-width:18rem;font-size:.88rem}
 table.checks td:nth-child(2){min-width:14rem} table.checks td:nth-child(5){min-width:16rem;font-size:.88rem}
 table.matrix td:empty{background:var(--panel)}
+table.teampaths td:last-child{min-width:16rem}
+table.matrix,table.narrow{width:auto;min-width:min(100%,24rem)}
 .tag{display:inline-block;font-size:.78rem;font-weight:700;color:#fff;background:var(--hl);border-radius:3px;
 padding:0 .35rem;margin-left:.25rem;vertical-align:.1em}
 .mark{font-weight:700} .mark.ok{color:var(--ok)} .mark.bad{color:var(--bad)}
@@ -999,23 +1107,25 @@ dl.facts dt{color:var(--muted)} dl.facts dd{margin:0;overflow-wrap:anywhere}
 code{font-family:ui-monospace,SFMono-Regular,Menlo,Consolas,monospace;font-size:.88em}
 .hash{overflow-wrap:anywhere;word-break:break-all}
 ul.warn li{margin:.3rem 0}
+.long-table .table-wrap{max-height:32rem;overflow:auto}
 details{margin:.5rem 0 1.25rem} summary{cursor:pointer;color:var(--accent);font-weight:600}
+.na{color:var(--muted);font-style:italic}
+.glossary dl.facts{font-size:.93rem}
 footer{margin-top:3rem;padding-top:1rem;border-top:1px solid var(--line);color:var(--muted);font-size:.9rem}
 @media (max-width:40rem){
  .wrap{padding:0 .8rem 2rem} h1{font-size:1.5rem} h2{font-size:1.25rem}
  dl.facts{grid-template-columns:1fr} dl.facts dd{margin-bottom:.4rem}
  table{font-size:.86rem} th,td{padding:.35rem .45rem} .big{font-size:1.4rem}
- table.estimates td:last-child{min-width:14rem}
 }
 @media print{
  @page{margin:15mm 14mm}
- body{font-size:10pt} .wrap{max-width:none;padding:0}
+ html{font-size:10pt} body{font-size:1rem} .wrap{max-width:none;padding:0}
  .skip,nav.toc{display:none}
  section.major{break-before:page}
  h2,h3{break-after:avoid}
- figure,.cautions,.verdict,.answer-path,tr{break-inside:avoid}
+ figure,.cautions,.verdict,.answer-path,.keep,tr{break-inside:avoid}
  figure svg{max-width:100%}
- .table-wrap{overflow:visible}
+ .table-wrap,.long-table .table-wrap{overflow:visible;max-height:none}
  table{font-size:8.5pt}
  a{color:inherit;text-decoration:none}
  details>summary{display:none}
@@ -1054,16 +1164,17 @@ def render_html(report: dict) -> str:
     """The whole report as one self-contained HTML5 page (a string)."""
     d = report.get("data") or {}
     title = f"Survey measurement report: {d.get('file') or 'survey data'}"
+    figs = Figures()
     parts = [
         _header(report),
         '<main id="main">',
         answer_section(report),
         cautions_section(report, "cautions", "Cautions: read these before using any result"),
         _toc(report),
-        paths_section(report),
-        sensitivity_section(report),
-        reliability_section(report),
-        loadings_section(report),
+        paths_section(report, figs),
+        sensitivity_section(report, figs),
+        reliability_section(report, figs),
+        loadings_section(report, figs),
         method_section(report),
         fit_section(report),
         teams_section(report),

@@ -285,6 +285,9 @@ def method_factor_section(design: Design, fitter: Fitter, mm: FitResult) -> dict
         "loadings": "free" if free_ok else "equal",
         "method_share": shares["overall"],
         "method_share_by_construct": shares["by_construct"],
+        # standardized method loading of every item (marker items included), when usable
+        "item_loadings": ({it: chosen.std("load", METHOD, it) for it in chosen.spec.observed}
+                          if usable and shares["overall"] else {}),
         "proper": bool(chosen.proper),
         "identified": bool(chosen.identified),
         "usable_as_correction": bool(usable),
@@ -318,6 +321,8 @@ def measured_method_section(design: Design, fitter: Fitter) -> dict | None:
         "method_construct": method.name,
         "method_share": shares["overall"],
         "method_share_by_construct": shares["by_construct"],
+        "item_loadings": ({it: fit.std("load", method.name, it) for items in items.values() for it in items}
+                          if ok else {}),
         "proper": bool(fit.proper), "identified": bool(fit.identified), "status": fit.status,
         "fit": fit.fit_indices(),
         "tests": {"method_vs_none": test},

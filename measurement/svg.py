@@ -11,7 +11,7 @@ threshold is a hollow triangle and carries a cross.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from html import escape
 
@@ -75,7 +75,7 @@ def points(pts: Sequence[tuple[float, float]]) -> str:
 def svg_figure(body: str, width: float, height: float, *, ident: str, title: str, desc: str) -> str:
     """The outer ``<svg>``: scalable (viewBox), labelled for assistive technology."""
     return (f'<svg viewBox="0 0 {_n(width)} {_n(height)}" width="{_n(width)}" height="{_n(height)}" '
-            f'role="img" aria-labelledby="{escape(ident)}-title {escape(ident)}-desc" '
+            f'style="max-width:{_n(width * 1.1)}px" role="img" aria-labelledby="{escape(ident)}-title {escape(ident)}-desc" '
             f'class="chart" font-family="{escape(FONT, quote=True)}">'
             f'<title id="{escape(ident)}-title">{escape(title)}</title>'
             f'<desc id="{escape(ident)}-desc">{escape(desc)}</desc>{body}</svg>')
@@ -179,42 +179,51 @@ class ForestRow:
 
 def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
                 axis_label: str = "standardized estimate") -> str:
-    """Every estimate of one path as a point with its interval; zero line; preferred highlighted."""
-    W, pad = 640.0, 18.0
-    x0, x1 = pad + 4, W - pad - 4
+    """Every estimate of one path as a point with its interval; zero line; preferred highlighted.
+
+    Each row: the label on top, the interval below it, the numbers in a column of their own at
+    the right, so no grid line ever crosses a number.
+    """
+    W, pad, val_w = 560.0, 14.0, 172.0
+    x0, x1 = pad + 6, W - pad - val_w
     vals = [0.0]
     for r in rows:
         vals += [v for v in (r.estimate, r.lo, r.hi) if v is not None and math.isfinite(v)]
     lo, hi = min(vals), max(vals)
     span = max(hi - lo, 0.1)
-    ticks = nice_ticks(lo - 0.04 * span, hi + 0.04 * span, 6)
+    ticks = nice_ticks(lo - 0.04 * span, hi + 0.04 * span, 5)
     sx = Linear(ticks[0], ticks[-1], x0, x1)
 
     body: list[str] = []
-    y = 8.0
+    y = 6.0
     layout: list[tuple[ForestRow, float, float, list[str]]] = []
     for r in rows:
-        note_lines = wrap(r.unavailable, 88) if r.unavailable else []
-        h = 40.0 if not note_lines else 22.0 + 16.0 * len(note_lines)
+        note_lines = wrap(r.unavailable, 66) if r.unavailable else []
+        h = 42.0 if not note_lines else 24.0 + 16.0 * len(note_lines)
         layout.append((r, y, h, note_lines))
         y += h
     plot_bottom = y + 4
     H = plot_bottom + 44
 
-    for t in ticks:  # grid first, so the data sits on top
-        body.append(line(sx(t), 4, sx(t), plot_bottom, stroke=GRID, stroke_width=1))
-    for r, top, h, note_lines in layout:
+    for r, top, h, _ in layout:
         if r.preferred:
             body.append(rect(2, top, W - 4, h, fill=HIGHLIGHT_BG, rx=4))
+    for t in ticks:  # grid under the data
+        body.append(line(sx(t), 4, sx(t), plot_bottom, stroke=GRID, stroke_width=1))
+    body.append(line(sx(0.0), 4, sx(0.0), plot_bottom, stroke=INK, stroke_width=1.5, stroke_dasharray="5 4"))
+    for r, top, _h, note_lines in layout:
+        halo = HIGHLIGHT_BG if r.preferred else "#ffffff"
         label = r.label + ("  (preferred)" if r.preferred else "")
-        body.append(text(pad, top + 15, label, font_size=14, font_weight="700" if r.preferred else None))
+        body.append(text(pad, top + 16, label, font_size=14, font_weight="700" if r.preferred else None,
+                         stroke=halo, stroke_width=4, paint_order="stroke", stroke_linejoin="round"))
         if note_lines:
             for i, ln in enumerate(note_lines):
-                body.append(text(pad, top + 32 + 16 * i, ln, font_size=12.5, fill=MUTED, font_style="italic"))
+                body.append(text(pad, top + 34 + 16 * i, ln, font_size=13, fill=MUTED, font_style="italic",
+                                 stroke=halo, stroke_width=4, paint_order="stroke", stroke_linejoin="round"))
             continue
-        body.append(text(W - pad, top + 15, r.value_text, font_size=14, text_anchor="end",
+        cy = top + 31
+        body.append(text(W - pad, cy + 5, r.value_text, font_size=14, text_anchor="end",
                          font_weight="700" if r.preferred else None))
-        cy = top + 29
         colour = HIGHLIGHT if r.preferred else ACCENT
         if r.lo is not None and r.hi is not None:
             body.append(line(sx(r.lo), cy, sx(r.hi), cy, stroke=colour, stroke_width=4 if r.preferred else 2.5,
@@ -222,18 +231,18 @@ def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
         if r.estimate is not None:
             cx = sx(r.estimate)
             if r.preferred:
-                d = 7.5
+                d = 8.0
                 body.append(el("polygon", points=points([(cx, cy - d), (cx + d, cy), (cx, cy + d), (cx - d, cy)]),
                                fill=colour, stroke="#ffffff", stroke_width=1.5))
             else:
                 body.append(el("circle", cx=float(cx), cy=float(cy), r=5.5, fill=colour, stroke="#ffffff",
                                stroke_width=1.5))
-    body.append(line(sx(0.0), 4, sx(0.0), plot_bottom, stroke=INK, stroke_width=1.5, stroke_dasharray="5 4"))
     body.append(line(x0, plot_bottom, x1, plot_bottom, stroke=AXIS, stroke_width=1))
     for t in ticks:
         body.append(line(sx(t), plot_bottom, sx(t), plot_bottom + 5, stroke=AXIS))
         body.append(text(sx(t), plot_bottom + 20, fmt_tick(t), font_size=13, text_anchor="middle", fill=MUTED))
     body.append(text((x0 + x1) / 2, plot_bottom + 38, axis_label, font_size=13, text_anchor="middle", fill=MUTED))
+    body.append(text(W - pad, plot_bottom + 20, "estimate [interval]", font_size=13, text_anchor="end", fill=MUTED))
     return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
 
 
@@ -257,7 +266,7 @@ def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, fl
                      markers: Sequence[Marker], holds_up_to: float | None, ident: str, title: str,
                      desc: str, x_max: float = 0.5, band_label: str = "interval") -> str:
     """Estimate (line) and interval (band) against the assumed method share, with markers."""
-    W = 640.0
+    W = 560.0
     label_rows = max(len(markers), 1)
     top = 14.0 + 18.0 * label_rows
     left, right, bottom = 62.0, 18.0, 56.0
@@ -287,7 +296,7 @@ def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, fl
         body.append(line(sx(t), top + ph, sx(t), top + ph + 5, stroke=AXIS))
         body.append(text(sx(t), top + ph + 20, f"{t:.0%}", font_size=13, text_anchor="middle", fill=MUTED))
     body.append(line(left, top + ph, W - right, top + ph, stroke=AXIS))
-    body.append(text((left + W - right) / 2, top + ph + 42, "assumed share of every item's variance that is shared method",
+    body.append(text((left + W - right) / 2, top + ph + 42, "assumed method share of every item's variance",
                      font_size=13, text_anchor="middle", fill=MUTED))
     body.append(text(16, top + ph / 2, "standardized estimate", font_size=13, text_anchor="middle", fill=MUTED,
                      transform=f"rotate(-90 16 {_n(top + ph / 2)})"))
@@ -309,10 +318,12 @@ def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, fl
         x = sx(min(max(m.share, 0.0), x_max))
         ly = 14.0 + 18.0 * i
         body.append(line(x, ly + 4, x, top + ph, **styles.get(m.style, styles["break_even"])))
-        anchor = "end" if x > W * 0.62 else "start"
+        # to the right of its line unless it would run off the plot (about 7.5 px per character)
+        anchor = "end" if x + 6 + 7.5 * len(m.label) > W - right else "start"
         dx = -6 if anchor == "end" else 6
         body.append(text(x + dx, ly + 8, m.label, font_size=13, text_anchor=anchor,
-                         fill=HIGHLIGHT if m.style == "estimated" else INK, font_weight="600"))
+                         fill=HIGHLIGHT if m.style == "estimated" else INK, font_weight="600",
+                         stroke="#ffffff", stroke_width=4, paint_order="stroke", stroke_linejoin="round"))
     return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
 
 
@@ -329,56 +340,48 @@ class Panel:
     intervals: list[tuple[float, float] | None] = field(default_factory=list)
 
 
-def reliability_panels(labels: Sequence[str], panels: Sequence[Panel], *, ident: str, title: str,
-                       desc: str) -> str:
-    """Small multiples, two per row: one dot per construct on a 0-1 axis, threshold dashed."""
-    cols = 2
-    pw, gap = 312.0, 16.0
-    lab_w, val_w = 96.0, 62.0
-    row_h = 26.0
-    head = 44.0
-    foot = 28.0
-    ph = head + row_h * len(labels) + foot
-    rows_n = math.ceil(len(panels) / cols)
-    W = cols * pw + (cols - 1) * gap
-    H = rows_n * ph + (rows_n - 1) * gap
-    body: list[str] = []
-    for k, p in enumerate(panels):
-        ox = (k % cols) * (pw + gap)
-        oy = (k // cols) * (ph + gap)
-        px0, px1 = ox + lab_w, ox + pw - val_w
-        sx = Linear(0.0, 1.0, px0, px1)
-        body.append(rect(ox, oy, pw, ph, fill="#ffffff", stroke=GRID, rx=4))
-        body.append(text(ox + 10, oy + 19, p.title, font_size=14, font_weight="700"))
-        plot_top, plot_bot = oy + head - 6, oy + head + row_h * len(labels)
-        for t in (0.0, 0.5, 1.0):
-            body.append(line(sx(t), plot_top, sx(t), plot_bot, stroke=GRID))
-            body.append(text(sx(t), plot_bot + 17, fmt_tick(t), font_size=12.5, text_anchor="middle", fill=MUTED))
-        if p.threshold is not None:
-            tx = sx(p.threshold)
-            body.append(line(tx, plot_top, tx, plot_bot, stroke=INK, stroke_width=1.5, stroke_dasharray="5 3"))
-            body.append(text(tx, plot_top - 4, p.threshold_text, font_size=12.5, text_anchor="middle", fill=INK))
-        for i, lab in enumerate(labels):
-            cy = oy + head + row_h * i + row_h / 2
-            body.append(text(ox + 10, cy + 4.5, _clip(lab, 12), font_size=13))
-            v = p.values[i] if i < len(p.values) else None
-            ci = p.intervals[i] if i < len(p.intervals) else None
-            passed = p.passes[i] if i < len(p.passes) else None
-            if ci is not None:
-                body.append(line(sx(_unit(ci[0])), cy, sx(_unit(ci[1])), cy, stroke=ACCENT, stroke_width=2))
-            if v is None:
-                body.append(text((px0 + px1) / 2, cy + 4.5, "not available", font_size=12, text_anchor="middle",
-                                 fill=MUTED, font_style="italic"))
-            elif passed is False:
-                cx, d = sx(_unit(v)), 6.5
-                body.append(el("polygon", points=points([(cx - d, cy - d + 1), (cx + d, cy - d + 1), (cx, cy + d)]),
-                               fill="#ffffff", stroke=FAIL, stroke_width=2))
-            else:
-                body.append(el("circle", cx=sx(_unit(v)), cy=cy, r=5.5, fill=ACCENT))
-            t = p.texts[i] if i < len(p.texts) else ""
-            body.append(text(ox + pw - 8, cy + 4.5, t, font_size=13, text_anchor="end",
-                             fill=FAIL if passed is False else INK, font_weight="700" if passed is False else None))
-    return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
+def reliability_panel(labels: Sequence[str], p: Panel, *, ident: str, desc: str) -> str:
+    """One measure: a dot per construct on a 0-1 axis, the threshold dashed, the value at the right.
+
+    One SVG per measure, so the page can set them two abreast on a laptop and one under the
+    other on a phone.
+    """
+    pw, lab_w, val_w = 340.0, 104.0, 72.0
+    row_h, head, foot = 28.0, 46.0, 30.0
+    H = head + row_h * len(labels) + foot
+    px0, px1 = lab_w, pw - val_w
+    sx = Linear(0.0, 1.0, px0, px1)
+    body = [rect(0.5, 0.5, pw - 1, H - 1, fill="#ffffff", stroke=GRID, rx=4),
+            text(10, 20, p.title, font_size=15, font_weight="700")]
+    plot_top, plot_bot = head - 6, head + row_h * len(labels)
+    for t in (0.0, 0.5, 1.0):
+        body.append(line(sx(t), plot_top, sx(t), plot_bot, stroke=GRID))
+        body.append(text(sx(t), plot_bot + 18, fmt_tick(t), font_size=13, text_anchor="middle", fill=MUTED))
+    if p.threshold is not None:
+        tx = sx(p.threshold)
+        body.append(line(tx, plot_top, tx, plot_bot, stroke=INK, stroke_width=1.5, stroke_dasharray="5 3"))
+        body.append(text(tx, plot_top - 4, p.threshold_text, font_size=13, text_anchor="middle", fill=INK))
+    for i, lab in enumerate(labels):
+        cy = head + row_h * i + row_h / 2
+        body.append(text(10, cy + 5, _clip(lab, 12), font_size=14))
+        v = p.values[i] if i < len(p.values) else None
+        ci = p.intervals[i] if i < len(p.intervals) else None
+        passed = p.passes[i] if i < len(p.passes) else None
+        if ci is not None:
+            body.append(line(sx(_unit(ci[0])), cy, sx(_unit(ci[1])), cy, stroke=ACCENT, stroke_width=2))
+        if v is None:
+            body.append(text((px0 + px1) / 2, cy + 5, "not available", font_size=13, text_anchor="middle",
+                             fill=MUTED, font_style="italic"))
+        elif passed is False:
+            cx, d = sx(_unit(v)), 7.0
+            body.append(el("polygon", points=points([(cx - d, cy - d + 1), (cx + d, cy - d + 1), (cx, cy + d)]),
+                           fill="#ffffff", stroke=FAIL, stroke_width=2))
+        else:
+            body.append(el("circle", cx=sx(_unit(v)), cy=cy, r=6, fill=ACCENT))
+        t = p.texts[i] if i < len(p.texts) else ""
+        body.append(text(pw - 8, cy + 5, t, font_size=14, text_anchor="end",
+                         fill=FAIL if passed is False else INK, font_weight="700" if passed is False else None))
+    return svg_figure("".join(body), pw, H, ident=ident, title=p.title, desc=desc)
 
 
 def _unit(v: float) -> float:
@@ -410,8 +413,8 @@ class HeatGroup:
 def heat_map(groups: Sequence[HeatGroup], columns: Sequence[HeatColumn], *, ident: str, title: str,
              desc: str) -> str:
     """Items in rows (grouped by construct), one column per quantity; each cell prints its value."""
-    lab_w, col_w, row_h, grp_h = 150.0, 118.0, 24.0, 26.0
-    head_lines = [wrap(c.label, 15) for c in columns]
+    lab_w, col_w, row_h, grp_h = 112.0, 116.0, 24.0, 26.0
+    head_lines = [wrap(c.label, 13) for c in columns]
     head = 14.0 + 16.0 * max((len(h) for h in head_lines), default=1)
     W = lab_w + col_w * len(columns) + 4
     n_rows = sum(len(g.rows) for g in groups)
@@ -427,7 +430,7 @@ def heat_map(groups: Sequence[HeatGroup], columns: Sequence[HeatColumn], *, iden
         body.append(text(8, y + 17.5, _clip(g.label, 40), font_size=13.5, font_weight="700"))
         y += grp_h
         for i, item in enumerate(g.rows):
-            body.append(text(lab_w - 10, y + row_h * i + 16.5, _clip(item, 18), font_size=13, text_anchor="end"))
+            body.append(text(lab_w - 10, y + row_h * i + 16.5, _clip(item, 13), font_size=13, text_anchor="end"))
         for j, c in enumerate(columns):
             cells = g.cells[j] if j < len(g.cells) else []
             x = lab_w + col_w * j
@@ -442,19 +445,33 @@ def heat_map(groups: Sequence[HeatGroup], columns: Sequence[HeatColumn], *, iden
     return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
 
 
+def heat_fill(high: str, t: float) -> str:
+    """The cell colour for a value ``t`` of the way up the scale (0-1).
+
+    No text colour reaches 4.5:1 on every mid-tone, so the scale stops where dark text still
+    does: the darkest cell is the deepest mix of ``high`` that keeps INK readable.
+    """
+    lo, hi = 0.0, 1.0
+    for _ in range(30):  # bisection for the deepest readable mix
+        mid = (lo + hi) / 2
+        if contrast(INK, mix("#ffffff", high, mid)) >= 4.6:
+            lo = mid
+        else:
+            hi = mid
+    return mix("#ffffff", high, min(max(t, 0.0), 1.0) * lo)
+
+
 def _cell(x: float, y: float, w: float, h: float, v: float | None, t: str, c: HeatColumn) -> str:
     if v is None:
         fill = "#f7f8fa"
     else:
-        fill = mix("#ffffff", c.high, abs(v) / c.top if c.top > 0 else 0.0)
+        fill = heat_fill(c.high, abs(v) / c.top if c.top > 0 else 0.0)
     out = rect(x + 1, y + 1, w - 2, h - 2, fill=fill, stroke="#ffffff")
     out += text(x + w / 2, y + h / 2 + 4.5, t, font_size=13, text_anchor="middle",
                 fill=MUTED if v is None else text_on(fill))
     return out
 
 
-Formatter = Callable[[float | None], str]
-
 __all__ = ["ForestRow", "HeatColumn", "HeatGroup", "Linear", "Marker", "Panel", "contrast", "forest_plot",
-           "heat_map", "mix", "nice_ticks", "reliability_panels", "sensitivity_plot", "svg_figure", "text_on",
+           "heat_fill", "heat_map", "mix", "nice_ticks", "reliability_panel", "sensitivity_plot", "svg_figure", "text_on",
            "wrap"]

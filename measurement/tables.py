@@ -135,8 +135,8 @@ def method_check_rows(report: dict) -> list[dict]:
         elif key == "marker":
             value, value_name, p = sec.get("r_m"), "r_M", sec.get("r_m_p")
         elif key == "harman":
+            # the rule reads the first factor's share and the eigenvalues, not a test
             value, value_name = sec.get("first_factor_share"), "first-factor share"
-            p = (sec.get("vs_measurement_model") or {}).get("p")
         elif key == "collinearity_vif":
             vals = [v for v in (sec.get("values") or {}).values() if v is not None]
             value, value_name = (max(vals) if vals else None), "highest VIF"

@@ -275,7 +275,7 @@ def test_another_tenants_ids_answer_404_on_every_object_route(app, client, svc_s
         for arg in rule.arguments:
             url = url.replace(f"<{arg}>", ids[arg])
         for method in sorted(rule.methods - {"HEAD", "OPTIONS"}):
-            err = assert_error(client.open(url, method=method, headers=intruder), 404, "not_found")
+            assert_error(client.open(url, method=method, headers=intruder), 404, "not_found")
             tried.add((rule.rule, method))
     assert tried == {("/v1/datasets/<dataset_id>", "GET"), ("/v1/datasets/<dataset_id>", "DELETE"),
                      ("/v1/analyses/<analysis_id>", "GET"),
@@ -443,3 +443,39 @@ def test_a_bug_in_a_job_is_stored_as_internal_error_and_logged_without_content(m
     assert "an_test" in out.error["message"] and "awful" not in out.error["message"]
     assert "an_test" in caplog.text and "KeyError" in caplog.text
     assert "awful" not in caplog.text and "R00017" not in caplog.text
+
+
+def test_a_job_whose_worker_process_dies_runs_again(tmp_path, svc_survey):
+    import os
+    import signal
+
+    app = create_app({"data_dir": tmp_path / "d", "job_workers": 1})
+    svc = app.extensions[EXTENSION]
+    try:
+        c = app.test_client()
+        h = token_for(app, "oom")
+        data, design = svc_survey
+        ds = upload(c, h, data).get_json()
+        aid = start(c, h, ds["id"], design, {"bootstrap": 80}).get_json()["id"]
+
+        def in_bootstrap():
+            a = c.get(f"/v1/analyses/{aid}", headers=h).get_json()
+            return a["progress"]["stage"] == "bootstrap"
+
+        wait_for(in_bootstrap, timeout=120, every=0.1, what="the bootstrap stage")
+        (worker,) = svc.runner.backend.worker_pids()
+        os.kill(worker, signal.SIGKILL)  # as the kernel's out-of-memory killer would
+        a = finished(c, h, aid, timeout=180)
+        assert a["status"] == "succeeded", a["error"]
+        assert a["attempts"] == 2
+
+        def group_gone():  # the dead worker's bootstrap processes were ended too
+            try:
+                os.killpg(worker, 0)
+            except ProcessLookupError:
+                return True
+            return False
+
+        wait_for(group_gone, timeout=30, what="the dead worker's process group to end")
+    finally:
+        svc.close()

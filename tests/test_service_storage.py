@@ -3,14 +3,17 @@ one (`make test-postgres`; CI starts a server), on a real PostgreSQL server."""
 
 from __future__ import annotations
 
+import io
 import threading
 from datetime import timedelta
 
 import pytest
-from conftest import POSTGRES_URL
+from conftest import POSTGRES_URL, small_survey, wait_for
 from sqlalchemy import select, text, update
 
 from service import tokens
+from service.app import create_app
+from service.context import EXTENSION
 from service.db import Database
 from service.models import Analysis, Base, utcnow
 from service.store import Claim, Store
@@ -204,3 +207,32 @@ def test_json_and_timestamps_round_trip(store):
     assert store.get_dataset(a, ds["id"])["name"] == "Umfrage_ß.csv"
     with store.db.reading() as s:
         assert s.scalar(select(Analysis.status).where(Analysis.id == an["id"])) == "queued"
+
+
+def test_the_service_runs_an_analysis_on_this_database(store, tmp_path):
+    """Upload, queue, run in the worker pool (which writes progress itself), report."""
+    url = store.db.url
+    app = create_app({"data_dir": tmp_path / "d", "database_url": None if url.startswith("sqlite")
+                      else url, "job_workers": 1})
+    try:
+        c = app.test_client()
+        h = {"Authorization": f"Bearer {app.extensions[EXTENSION].store.create_token('db')}"}
+        data, design = small_survey(n=150, seed=9)
+        ds = c.post("/v1/datasets", headers=h, data={"file": (io.BytesIO(data), "s.csv")},
+                    content_type="multipart/form-data").get_json()
+        aid = c.post("/v1/analyses", headers=h,
+                     json={"dataset_id": ds["id"], "design": design}).get_json()["id"]
+        stages = set()
+
+        def done():
+            a = c.get(f"/v1/analyses/{aid}", headers=h).get_json()
+            stages.add(a["progress"]["stage"])
+            return a if a["status"] in ("succeeded", "failed") else None
+
+        a = wait_for(done, timeout=120, every=0.05, what="the analysis")
+        assert a["status"] == "succeeded", a["error"]
+        assert a["report"]["data"]["rows"] == 150
+        assert stages - {None, "starting", "done"}, stages  # progress came from the worker
+        assert app.extensions[EXTENSION].store.db.dialect == store.db.dialect
+    finally:
+        app.extensions[EXTENSION].close()

@@ -1,0 +1,545 @@
+"""The client's HTML report: self-contained, complete, faithful to report.json, escaped, accessible.
+
+Reports come from real analyses (measurement.pipeline.analyze) of simulated surveys with
+known structure (measurement.simulate) and of the bundled sample survey; the page is parsed
+with the standard library (html.parser; xml.etree for each SVG figure).
+"""
+
+from __future__ import annotations
+
+import copy
+import html
+import json
+import re
+import xml.etree.ElementTree as ET
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pytest
+
+from measurement import svg
+from measurement.executor import SerialExecutor
+from measurement.html_report import render_html
+from measurement.pipeline import analyze
+from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+from measurement.tables import method_label
+
+ROOT = Path(__file__).resolve().parents[1]
+MINUS = "\u2212"
+HOSTILE = '<script>alert("x")</script>'
+HOSTILE_2 = 'eng & "co" <b>'
+HOSTILE_ITEM = "<img src=x onerror=alert(1)>"
+
+
+# --------------------------------------------------------------------------- reports
+
+def _survey(*, marker: bool = True, measured: bool = False, paths: bool = True, teams: int = 0,
+            seed: int = 3) -> SurveySpec:
+    # every item .70 trait + .35 method: a method share of .1225 of item variance (known truth)
+    cons = [ConstructSpec("sup", 4, 0.7, 0.35), ConstructSpec("eng", 4, 0.7, 0.35, reverse=[2]),
+            ConstructSpec("stay", 3, 0.7, 0.35, prefix="sty")]
+    if marker:
+        cons.append(ConstructSpec("wth", 3, 0.7, 0.35, role="marker"))
+    if measured:
+        cons.append(ConstructSpec("imp", 4, 0.65, role="method"))
+    return SurveySpec(constructs=cons, paths={"eng": {"sup": 0.3}, "stay": {"eng": 0.45}} if paths else {},
+                      n=300, scale_points=5, seed=seed, n_teams=teams)
+
+
+def _run(spec: SurveySpec, options: dict | None = None, *, rename: dict | None = None,
+         rename_items: dict | None = None, **kw) -> dict:
+    df, _ = simulate_survey(spec)
+    design = design_for(spec)
+    if rename_items:
+        df = df.rename(columns=rename_items)
+        for c in design["constructs"].values():
+            c["items"] = [rename_items.get(i, i) for i in c["items"]]
+            if "reverse" in c:
+                c["reverse"] = [rename_items.get(i, i) for i in c["reverse"]]
+    if rename:
+        design["constructs"] = {rename.get(k, k): v for k, v in design["constructs"].items()}
+        design["paths"] = [{"outcome": rename.get(p["outcome"], p["outcome"]),
+                            "predictors": [rename.get(x, x) for x in p["predictors"]]} for p in design["paths"]]
+    return analyze(df.to_csv(index=False).encode(), design, options, name="survey.csv", **kw).report
+
+
+@pytest.fixture(scope="module")
+def sample() -> dict:
+    design = json.loads((ROOT / "sample_surveys" / "staff_survey_design.json").read_text())
+    return analyze(ROOT / "sample_surveys" / "staff_survey.csv", design).report
+
+
+@pytest.fixture(scope="module")
+def full() -> dict:
+    return _run(_survey(measured=True))
+
+
+@pytest.fixture(scope="module")
+def hostile() -> dict:
+    # no marker and no method construct, and names an attacker might choose
+    return _run(_survey(marker=False), rename={"sup": HOSTILE, "eng": HOSTILE_2},
+                rename_items={"sup1": HOSTILE_ITEM})
+
+
+@pytest.fixture(scope="module")
+def no_paths() -> dict:
+    return _run(_survey(paths=False))
+
+
+@pytest.fixture(scope="module")
+def boot_teams() -> dict:
+    return _run(_survey(teams=30), {"bootstrap": 20, "seed": 1}, executor=SerialExecutor())
+
+
+@pytest.fixture(scope="module")
+def reports(sample, full, hostile, no_paths, boot_teams) -> dict[str, dict]:
+    return {"sample": sample, "full": full, "hostile": hostile, "no_paths": no_paths, "boot_teams": boot_teams}
+
+
+# --------------------------------------------------------------------------- parsing the page
+
+VOID = {"meta", "br", "hr", "img", "input", "link", "area", "base", "col", "embed", "source", "track", "wbr"}
+
+
+class Page(HTMLParser):
+    """Collects tags (checking they balance), text, headings, ids and tables (caption, cells)."""
+
+    def __init__(self, markup: str) -> None:
+        super().__init__(convert_charrefs=True)
+        self.stack: list[str] = []
+        self.errors: list[str] = []
+        self.tags: list[tuple[str, dict]] = []
+        self.texts: list[str] = []
+        self.css = ""
+        self.headings: list[tuple[int, str]] = []
+        self.tables: list[dict] = []
+        self._heading: list | None = None
+        self._cell: str | None = None
+        self._caption: str | None = None
+        self._style = False
+        self.feed(markup)
+        self.close()
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+        if tag not in VOID:
+            self.stack.append(tag)
+        if tag == "style":
+            self._style = True
+        if re.fullmatch(r"h[1-6]", tag):
+            self._heading = [int(tag[1]), ""]
+        if tag == "table":
+            self.tables.append({"caption": "", "rows": [], "th_scopes": []})
+        if tag == "caption":
+            self._caption = ""
+        if tag == "tr" and self.tables:
+            self.tables[-1]["rows"].append([])
+        if tag in ("td", "th"):
+            self._cell = ""
+            if tag == "th":
+                self.tables[-1]["th_scopes"].append(dict(attrs).get("scope"))
+
+    def handle_startendtag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_endtag(self, tag):
+        if tag in VOID:
+            return
+        if not self.stack or self.stack[-1] != tag:
+            self.errors.append(f"</{tag}> closes <{self.stack[-1] if self.stack else '(nothing)'}>")
+            if tag in self.stack:
+                while self.stack.pop() != tag:
+                    pass
+            return
+        self.stack.pop()
+        if tag == "style":
+            self._style = False
+        if self._heading and tag == f"h{self._heading[0]}":
+            self.headings.append((self._heading[0], self._heading[1].strip()))
+            self._heading = None
+        if tag == "caption" and self._caption is not None:
+            self.tables[-1]["caption"] = self._caption.strip()
+            self._caption = None
+        if tag in ("td", "th") and self._cell is not None:
+            self.tables[-1]["rows"][-1].append(" ".join(self._cell.split()))
+            self._cell = None
+
+    def handle_data(self, data):
+        if self._style:
+            self.css += data
+            return
+        self.texts.append(data)
+        if self._heading is not None:
+            self._heading[1] += data
+        if self._cell is not None:
+            self._cell += data
+        if self._caption is not None:
+            self._caption += data
+
+    def ids(self) -> list[str]:
+        return [a["id"] for _, a in self.tags if "id" in a]
+
+    def table(self, caption_start: str) -> list[list[str]]:
+        found = [t for t in self.tables if t["caption"].startswith(caption_start)]
+        assert found, f"no table captioned {caption_start!r}"
+        return found[0]["rows"]
+
+    def row(self, caption_start: str, first_cell: str) -> list[str]:
+        rows = [r for r in self.table(caption_start) if r and r[0] == first_cell]
+        assert rows, f"no row {first_cell!r} in {caption_start!r}"
+        return rows[0]
+
+
+def svgs(markup: str) -> list[ET.Element]:
+    return [ET.fromstring(m) for m in re.findall(r"<svg\b.*?</svg>", markup, flags=re.S)]
+
+
+def plain(fragment: str) -> str:
+    return " ".join(html.unescape(re.sub(r"<[^>]+>", " ", fragment)).split())
+
+
+def fmt(v: float, d: int = 3) -> str:
+    """The page's number format, written out independently: d decimals, a true minus sign."""
+    s = f"{v:.{d}f}"
+    if float(s) == 0:
+        s = s.lstrip("-")
+    return s.replace("-", MINUS)
+
+
+def interval(ci: list[float], d: int = 3) -> str:
+    return f"[{fmt(ci[0], d)}, {fmt(ci[1], d)}]"
+
+
+def pct(v: float) -> str:
+    return fmt(v * 100, 1) + "%"
+
+
+# --------------------------------------------------------------------------- structure
+
+SECTIONS = ["answer", "cautions", "paths", "sensitivity", "reliability", "loadings", "method-variance", "fit",
+            "data", "cautions-again"]
+
+
+@pytest.mark.parametrize("name", ["sample", "full", "hostile", "no_paths", "boot_teams"])
+def test_page_parses_and_holds_every_section(reports, name):
+    report = reports[name]
+    markup = render_html(report)
+    page = Page(markup)
+    assert page.errors == [] and page.stack == []  # every element we open is closed, in order
+    assert markup.startswith("<!doctype html>")
+    ids = page.ids()
+    assert len(ids) == len(set(ids))  # ids are unique
+    for sec in SECTIONS:
+        assert sec in ids, sec
+    assert ("teams" in ids) == isinstance(report.get("teams"), dict)
+    n_paths = len(report["paths"] or [])
+    assert sum(i.startswith("forest-") and not i.endswith(("-svg", "-title", "-desc")) for i in ids) == n_paths
+    assert sum(re.fullmatch(r"sensitivity-\d+", i) is not None for i in ids) == n_paths
+    assert "reliability-figure" in ids and "loadings-figure" in ids
+    # every SVG figure is well-formed XML
+    assert len(svgs(markup)) == 2 * n_paths + 4 + 1  # forest + sensitivity per path, 4 reliability panels, heat map
+
+
+def test_headings_in_order_and_landmarks(sample):
+    page = Page(render_html(sample))
+    levels = [lv for lv, _ in page.headings]
+    assert levels[0] == 1 and levels.count(1) == 1
+    assert all(b <= a + 1 for a, b in zip(levels, levels[1:], strict=False))  # never skips a level
+    tags = page.tags
+    assert ("html", {"lang": "en"}) in tags
+    assert any(t == "main" and a.get("id") == "main" for t, a in tags)
+    skip = [a for t, a in tags if t == "a" and "skip" in (a.get("class") or "")]
+    assert skip and skip[0]["href"] == "#main"
+    assert any(t == "meta" and a.get("name") == "viewport" for t, a in tags)
+
+
+@pytest.mark.parametrize("name", ["sample", "hostile", "boot_teams"])
+def test_nothing_is_loaded_from_elsewhere(reports, name):
+    markup = render_html(reports[name])
+    page = Page(markup)
+    for tag, attrs in page.tags:
+        assert tag not in ("script", "link", "img", "iframe", "object", "embed", "base"), tag
+        for key in ("src", "href", "xlink:href", "action", "srcset", "poster", "data"):
+            v = attrs.get(key)
+            if v is not None:
+                assert v.startswith("#"), (tag, key, v)  # only links within the page
+    assert "http://" not in markup and "https://" not in markup
+    assert "@import" not in page.css and not re.search(r"url\(", page.css)
+
+
+# Words that would mean a missing value leaked into the page. "None of ..." is English (a fit
+# warning reads "None of the 4 starting points gave a proper solution") and is allowed.
+LEAK = re.compile(r"\b(NaN|nan|None|null|undefined|inf|Infinity|-inf)\b(?! of\b)")
+
+
+def _leaks(markup: str) -> list[str]:
+    page = Page(markup)
+    chunks = page.texts + [v for _, a in page.tags for v in a.values() if v]
+    return [m.group(0) for c in chunks for m in LEAK.finditer(c)]
+
+
+@pytest.mark.parametrize("name", ["sample", "full", "hostile", "no_paths", "boot_teams"])
+def test_no_missing_value_words(reports, name):
+    assert _leaks(render_html(reports[name])) == []
+
+
+def test_every_number_missing_still_renders(sample):
+    # Every float in the report set to null (what report.json holds where a value could not be
+    # computed): the page still renders, balanced, with dashes instead of missing-value words.
+    def blank(o):
+        if isinstance(o, dict):
+            return {k: blank(v) for k, v in o.items()}
+        if isinstance(o, list):
+            return [blank(v) for v in o]
+        return None if isinstance(o, float) else o
+
+    markup = render_html(blank(sample))
+    page = Page(markup)
+    assert page.errors == []
+    assert _leaks(markup) == []
+    for svg_el in svgs(markup):
+        assert svg_el.get("role") == "img"
+
+
+@pytest.mark.parametrize("drop", ["screening", "constructs", "measurement_model", "method_variance", "paths",
+                                  "thresholds", "options", "data", "teams", "cautions", "warnings"])
+def test_any_section_may_be_absent(sample, drop):
+    for value in (None, "absent"):
+        r = copy.deepcopy(sample)
+        if value == "absent":
+            r.pop(drop, None)
+        else:
+            r[drop] = None
+        markup = render_html(r)
+        page = Page(markup)
+        assert page.errors == [] and _leaks(markup) == []
+        assert "cautions" in page.ids()
+
+
+# --------------------------------------------------------------------------- faithful numbers
+
+@pytest.mark.parametrize("name", ["sample", "full", "boot_teams"])
+def test_path_numbers_equal_the_report(reports, name):
+    report = reports[name]
+    markup = render_html(report)
+    page = Page(markup)
+    blocks = [plain(b) for b in re.findall(r'<div class="answer-path">(.*?)</div>', markup, flags=re.S)]
+    assert len(blocks) == len(report["paths"])
+    for p, block in zip(report["paths"], blocks, strict=True):
+        pref = p["estimates"][p["preferred"]]
+        obs = p["estimates"]["observed"]
+        title = f"{p['predictor']} \u2192 {p['outcome']}"
+        assert block.startswith(title)
+        assert f"Preferred estimate: {fmt(pref['estimate'])} {interval(pref['ci'])}" in block
+        assert f"{fmt(obs['estimate'])} {interval(obs['ci'])} (observed" in block
+        # the estimates table: every available estimate with its interval, SE and p
+        caption = f"Estimates of {title}"
+        for m, e in p["estimates"].items():
+            row = [r for r in page.table(caption) if r and r[0].startswith(method_label(m))]
+            assert len(row) == 1, m
+            if e is None or e["estimate"] is None:
+                assert row[0][1].startswith("not available: ")
+                continue
+            assert row[0][1:4] == [fmt(e["estimate"]), interval(e["ci"]), fmt(e["se"])]
+        pref_rows = [r for r in page.table(caption) if "preferred" in r[0]]
+        assert len(pref_rows) == 1 and pref_rows[0][1] == fmt(pref["estimate"])
+        # the forest plot prints the same numbers
+        forest = [s for s in svgs(markup) if s.findtext("title") == f"Every estimate of {title}"]
+        texts = ["".join(t.itertext()) for t in forest[0].iter("text")]
+        assert f"{fmt(pref['estimate'])} {interval(pref['ci'])}" in texts
+
+
+def test_bootstrap_intervals_shown(boot_teams):
+    page = Page(render_html(boot_teams))
+    p = boot_teams["paths"][0]
+    caption = f"Estimates of {p['predictor']} \u2192 {p['outcome']}"
+    for m, e in p["estimates"].items():
+        if e is None or e["estimate"] is None:
+            continue
+        row = [r for r in page.table(caption) if r and r[0].startswith(method_label(m))][0]
+        b = e["bootstrap"]
+        assert row[5] == {"bca": "bootstrap BCa", "percentile": "bootstrap percentile"}[e["ci_method"]]
+        assert row[6] == interval(b["ci_percentile"])
+        assert row[7] == (interval(b["ci_bca"]) if b["ci_bca"] else "\u2014")
+
+
+def test_reliability_fit_and_method_numbers_equal_the_report(sample):
+    markup = render_html(sample)
+    page = Page(markup)
+    for name, c in sample["constructs"].items():
+        row = page.row("Reliability per construct", name)
+        assert row[4].startswith(fmt(c["alpha"])) and interval(c["alpha_ci"]) in row[4]
+        assert row[5].startswith(fmt(c["omega"])) and row[6].startswith(fmt(c["composite_reliability"]))
+        assert row[7].startswith(fmt(c["ave"]))
+        for item, s in c["item_stats"].items():
+            irow = page.row("Item statistics", item)
+            assert irow[3].startswith(fmt(s["loading"])) and irow[4] == fmt(s["item_rest_r"])
+    # AVE of the method scale is below .50 in the sample survey: marked by a cross, not colour alone
+    ave_row = page.row("Reliability per construct", "impression")
+    assert sample["constructs"]["impression"]["ave"] < 0.5 and "\u2717" in ave_row[7]
+    fit = sample["measurement_model"]["fit"]
+    assert page.row("Fit of the measurement model", "CFI")[1] == fmt(fit["cfi"])
+    rmsea = page.row("Fit of the measurement model", "RMSEA")[1]
+    assert rmsea.startswith(fmt(fit["rmsea"])) and interval(fit["rmsea_ci"]) in rmsea
+    assert page.row("Fit of the measurement model", "SRMR")[1] == fmt(fit["srmr"])
+    mv = sample["method_variance"]
+    assert f"Common-method variance: {mv['verdict']['level'].upper()}" in [t for _, t in page.headings]
+    mf_row = page.row("Every signal the verdict weighed", "Latent method factor")
+    reason = next(r for r in mv["verdict"]["reasons"] if re.match(r"\[\w+\] method factor", r))
+    assert pct(mv["method_factor"]["method_share"]) in mf_row[2]
+    assert mf_row[5].endswith(reason[1:reason.index("]")])
+    names = list(sample["constructs"])
+    for k, v in sample["measurement_model"]["htmt"].items():
+        a, b = k.split("|")
+        assert page.row("Heterotrait-monotrait", b)[1 + names.index(a)] == fmt(v)
+    # the sensitivity markers carry the report's shares
+    s = sample["paths"][0]["sensitivity"]
+    sens = [x for x in svgs(markup) if (x.findtext("title") or "").startswith("Sensitivity of")][0]
+    labels = ["".join(t.itertext()) for t in sens.iter("text")]
+    assert f"break-even {pct(s['break_even_method_share'])}" in labels
+    assert f"estimated share {pct(s['estimated_method_share'])}" in labels
+    assert f"interval reaches 0 at {pct(s['ci_covers_zero_at'])}" in labels
+
+
+def test_answer_names_the_bias_that_dominated(sample, full):
+    for report in (sample, full):
+        markup = render_html(report)
+        blocks = [plain(b) for b in re.findall(r'<div class="answer-path">(.*?)</div>', markup, flags=re.S)]
+        for p, block in zip(report["paths"], blocks, strict=True):
+            e = p["estimates"]
+            o, la, pr = (round(e[k]["estimate"], 3) for k in ("observed", "latent", p["preferred"]))
+            if p["preferred"] == "latent":
+                assert "corrects unreliability only" in block
+                continue
+            expected = "Shared method dominated" if abs(pr - la) > abs(la - o) else "Unreliability dominated"
+            assert expected in block
+            # the differences printed are those of the printed numbers
+            gap = fmt(la - o)
+            assert f"({gap if gap.startswith(MINUS) or gap == fmt(0) else '+' + gap}, latent model)" in block
+
+
+def test_missing_corrections_say_why(hostile):
+    markup = render_html(hostile)
+    text = plain(markup)
+    assert "not available: the design has no marker construct" in text
+    assert "not available: the design has no method construct" in text
+    # without a usable method correction the latent model leads, and the page says what that means
+    assert all(p["preferred"] in ("latent", "method_factor_adjusted") for p in hostile["paths"])
+
+
+def test_no_paths_is_said_not_hidden(no_paths):
+    page = Page(render_html(no_paths))
+    assert no_paths["paths"] == []
+    assert "The design declares no key paths." in "".join(page.texts)
+    assert not [i for i in page.ids() if i.startswith("forest-")]
+
+
+# --------------------------------------------------------------------------- cautions, escaping, groups
+
+@pytest.mark.parametrize("name", ["sample", "no_paths"])
+def test_cautions_in_full_near_the_top_and_again(reports, name):
+    report = reports[name]
+    markup = render_html(report)
+    assert report["cautions"]
+    top = markup.index('id="cautions"')
+    assert top < markup.index('id="paths"')  # before any evidence
+    for c in report["cautions"]:
+        esc = html.escape(c, quote=True)
+        assert markup.count(esc) == 2, c  # in full, in the top box and repeated at the end
+        assert top < markup.index(esc)
+    # the print stylesheet never hides them, and starts each major section on a new page
+    print_css = Page(markup).css.split("@media print", 1)[1]
+    for selector, body in re.findall(r"([^{}]+)\{([^{}]*)\}", print_css):
+        if "display:none" in body.replace(" ", ""):
+            assert ".cautions" not in selector and "#cautions" not in selector
+    assert re.search(r"section\.major\{break-before:page\}", print_css)
+
+
+def test_hostile_names_are_escaped(hostile):
+    markup = render_html(hostile)
+    page = Page(markup)
+    assert page.errors == []
+    assert "<script" not in markup.lower() and "<b>" not in markup and "<img" not in markup.lower()
+    assert not any("onerror" in a for _, a in page.tags)
+    text = "".join(page.texts)
+    assert HOSTILE in text and HOSTILE_2 in text and HOSTILE_ITEM in text  # shown as text
+    assert html.escape(HOSTILE) in markup
+    for s in svgs(markup):  # still well-formed with the names inside
+        assert s.get("role") == "img"
+
+
+def test_groups_below_the_minimum_are_never_shown(boot_teams):
+    teams = boot_teams["teams"]
+    assert isinstance(teams, dict)
+    k = teams["min_group_size"]
+    r = copy.deepcopy(boot_teams)
+    r["teams"]["group_scores"] = list(r["teams"]["group_scores"]) + [
+        {"group": "TINYGROUP", "n": k - 1, "sup": 9.99},
+        {"group": "NOSIZEGROUP", "sup": 9.98},
+    ]
+    markup = render_html(r)
+    assert "TINYGROUP" not in markup and "NOSIZEGROUP" not in markup
+    page = Page(markup)
+    shown = page.table("Mean scale scores per group")
+    assert len(shown) - 1 == len(teams["group_scores"])  # header row + every group at or above k
+    for g in teams["group_scores"]:
+        assert g["n"] >= k
+        assert any(row and row[0] == g["group"] for row in shown)
+    for name, c in teams["constructs"].items():
+        assert page.row("How much each construct differs", name)[1] == fmt(c["icc1"])
+
+
+def test_flagged_rows_are_row_numbers_only(sample):
+    page = Page(render_html(sample))
+    flagged = sample["screening"]["flagged_rows"]
+    rows = page.table("Rows flagged for review")[1:]
+    assert [r[0] for r in rows] == [str(f["row"]) for f in flagged]
+    assert [r[1] for r in rows] == [", ".join(f["reasons"]) for f in flagged]
+
+
+# --------------------------------------------------------------------------- accessibility
+
+def test_figures_tables_and_svgs_are_labelled(sample):
+    markup = render_html(sample)
+    page = Page(markup)
+    for s in svgs(markup):
+        assert s.get("role") == "img" and s.get("viewBox")
+        title_id, desc_id = s.get("aria-labelledby").split()
+        assert s.find("title").get("id") == title_id and s.find("desc").get("id") == desc_id
+        assert s.findtext("title").strip() and s.findtext("desc").strip()
+    figures = re.findall(r"<figure\b.*?</figure>", markup, flags=re.S)
+    assert figures and all("<figcaption>" in f and "What to look for" in f for f in figures)
+    for t in page.tables:
+        assert t["caption"]
+        assert t["th_scopes"] and all(s in ("col", "row") for s in t["th_scopes"])
+
+
+def test_colour_contrast_meets_wcag_aa(no_paths):
+    # WCAG 2.x contrast ratio: black on white is 21:1; #767676 is the lightest grey that still
+    # reaches 4.5:1 on white (published WCAG guidance, from memory).
+    assert svg.contrast("#000000", "#ffffff") == pytest.approx(21.0)
+    assert svg.contrast("#767676", "#ffffff") == pytest.approx(4.54, abs=0.01)
+    pairs = [(svg.INK, "#ffffff"), (svg.MUTED, "#ffffff"), (svg.ACCENT, "#ffffff"), (svg.HIGHLIGHT, "#ffffff"),
+             (svg.FAIL, "#ffffff"), (svg.INK, svg.HIGHLIGHT_BG), (svg.MUTED, svg.SHADE), (svg.INK, svg.SHADE),
+             ("#ffffff", svg.HIGHLIGHT)]
+    # the page's own colours, read from its stylesheet
+    v = dict(re.findall(r"(--[\w-]+):(#[0-9a-f]{6})", Page(render_html(no_paths)).css))
+    pairs += [(v["--ink"], "#ffffff"), (v["--muted"], "#ffffff"), (v["--muted"], v["--panel"]),
+              (v["--accent"], "#ffffff"), (v["--accent"], v["--panel"]), (v["--ok"], "#ffffff"),
+              (v["--ok"], v["--panel"]), (v["--bad"], "#ffffff"), (v["--bad"], v["--panel"]),
+              (v["--ink"], "#fdeeee"), (v["--hl"], "#ffffff"), ("#ffffff", v["--hl"]), (v["--ink"], v["--hl-bg"]),
+              (v["--ink"], v["--caution-bg"]), ("#5c3a00", v["--caution-bg"]), ("#7a4d00", "#ffffff"),
+              ("#7a4d00", v["--panel"])]
+    for fg, bg in pairs:
+        assert svg.contrast(fg, bg) >= 4.5, (fg, bg)
+    # heat-map cells: whatever the shade, the printed value keeps 4.5:1
+    for top in (svg.ACCENT, svg.HIGHLIGHT, "#6b3fa0"):
+        for i in range(21):
+            cell = svg.heat_fill(top, i / 20)
+            assert svg.contrast(svg.text_on(cell), cell) >= 4.5, (top, i)
+
+
+def test_render_is_pure(sample):
+    before = json.dumps(sample, sort_keys=True)
+    assert render_html(sample) == render_html(sample)
+    assert json.dumps(sample, sort_keys=True) == before  # the report is not changed

@@ -1,0 +1,101 @@
+"""Analyses on a real Dask distributed cluster (a LocalCluster on 127.0.0.1) give the same
+reports as the local process pool, bootstrap included."""
+
+from __future__ import annotations
+
+import io
+
+import pytest
+from conftest import small_survey, wait_for
+
+from service.app import create_app
+from service.context import EXTENSION
+from service.dask_backend import DaskExecutor
+
+distributed = pytest.importorskip("distributed")
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False, protocol="tcp://",
+                                  host="127.0.0.1", dashboard_address=None) as c:
+        yield c
+
+
+@pytest.fixture(scope="module")
+def client(cluster):
+    with distributed.Client(cluster.scheduler_address, set_as_default=False) as c:
+        yield c
+
+
+def square(x: int) -> int:
+    return x * x
+
+
+def fails_on_three(x: int) -> int:
+    if x == 3:
+        raise ValueError("three")
+    return x
+
+
+def test_dask_executor_keeps_order_and_reraises(client):
+    ex = DaskExecutor(client)
+    assert ex.workers == 2
+    assert ex.map(square, range(25)) == [x * x for x in range(25)]
+    assert ex.map(square, []) == []
+    with pytest.raises(ValueError, match="three"):
+        ex.map(fails_on_three, range(6))
+
+
+def test_dask_executor_inside_a_task_fans_out_on_the_cluster(client):
+    def job(n: int) -> tuple[list[int], int]:
+        ex = DaskExecutor()  # inside a task: borrows the worker's client
+        return ex.map(square, list(range(n))), ex.workers
+
+    values, workers = client.submit(job, 12, pure=False).result(timeout=60)
+    assert values == [x * x for x in range(12)] and workers == 2
+
+
+def run_through_service(config: dict, data: bytes, design: dict, options: dict) -> tuple[dict, set]:
+    app = create_app(config)
+    svc = app.extensions[EXTENSION]
+    try:
+        c = app.test_client()
+        h = {"Authorization": f"Bearer {svc.store.create_token('dask')}"}
+        ds = c.post("/v1/datasets", headers=h, data={"file": (io.BytesIO(data), "survey.csv")},
+                    content_type="multipart/form-data").get_json()
+        aid = c.post("/v1/analyses", headers=h, json={"dataset_id": ds["id"], "design": design,
+                                                        "options": options}).get_json()["id"]
+        stages: set = set()
+
+        def done():
+            a = c.get(f"/v1/analyses/{aid}", headers=h).get_json()
+            stages.add(a["progress"]["stage"])
+            return a if a["status"] in ("succeeded", "failed") else None
+
+        a = wait_for(done, timeout=240, every=0.1, what="the analysis")
+        assert a["status"] == "succeeded", a["error"]
+        return a["report"], stages
+    finally:
+        svc.close()
+
+
+def test_an_analysis_on_the_cluster_equals_the_local_pool(cluster, client, tmp_path):
+    data, design = small_survey()
+    options = {"bootstrap": 30, "seed": 4}
+    address = cluster.scheduler_address.replace("tcp://", "dask://")
+    on_dask, dask_stages = run_through_service(
+        {"data_dir": tmp_path / "dask", "executor": address}, data, design, options)
+    local, _ = run_through_service({"data_dir": tmp_path / "local"}, data, design, options)
+    assert on_dask == local
+    boot = on_dask["paths"][0]["estimates"]["latent"]["bootstrap"]
+    assert boot["n_boot"] == 30 and boot["seed"] == 4
+    # progress written from the cluster's events while it ran
+    assert dask_stages & {"load", "screen", "reliability", "measurement_model",
+                          "method_variance", "paths", "bootstrap", "report"}
+    # the job ran on the cluster (its progress events) and so did the replicates
+    events = [msg for _ts, msg in client.get_events("samesource-progress")]
+    assert any(m["stage"] == "bootstrap" for m in events)
+    prefixes = set(cluster.scheduler.task_prefixes)
+    assert "run_chunk" in prefixes, prefixes
+    assert "samesource" in prefixes, prefixes
