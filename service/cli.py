@@ -37,6 +37,21 @@ def _parser() -> argparse.ArgumentParser:
     d = sub.add_parser("draft-design", help="print a draft design inferred from column names")
     d.add_argument("data")
     d.add_argument("--sheet")
+
+    s = sub.add_parser("serve", help="run the HTTP service (waitress)")
+    s.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
+    s.add_argument("--port", type=int, default=8000,
+                   help="port (default 8000; 0 picks a free one and prints it)")
+    s.add_argument("--data", metavar="DIR",
+                   help="data folder: embedded database and stored uploads "
+                        "(default $SAMESOURCE_DATA_DIR or ./samesource-data)")
+    s.add_argument("--threads", type=int, default=8, help="request threads (default 8)")
+
+    t = sub.add_parser("token", help="API tokens")
+    tsub = t.add_subparsers(dest="token_command", required=True)
+    tc = tsub.add_parser("create", help="print a new API token for a tenant (created if needed)")
+    tc.add_argument("--tenant", required=True, help="tenant name")
+    tc.add_argument("--data", metavar="DIR", help="data folder (as for serve)")
     return p
 
 
@@ -80,13 +95,75 @@ def _draft(args: argparse.Namespace) -> int:
     return 0
 
 
+def _service_config(args: argparse.Namespace, **extra):
+    from .config import load_config
+
+    return load_config({"data_dir": getattr(args, "data", None), **extra})
+
+
+def _serve(args: argparse.Namespace) -> int:
+    import logging
+
+    from .server import serve
+
+    logging.basicConfig(level=logging.INFO, stream=sys.stderr,
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    if not 0 <= args.port <= 65535 or args.threads < 1:
+        raise InputError("--port must be 0 to 65535 and --threads at least 1", code="bad_option")
+    return serve(_service_config(args), host=args.host, port=args.port, threads=args.threads)
+
+
+def _token(args: argparse.Namespace) -> int:
+    from .db import Database
+    from .store import Store
+
+    tenant = args.tenant.strip()
+    if not tenant or len(tenant) > 200:
+        raise InputError("--tenant must be a name of 1 to 200 characters", code="bad_option")
+    cfg = _service_config(args, run_jobs=False)
+    cfg.data_dir.mkdir(parents=True, exist_ok=True)
+    db = Database(cfg.sqlalchemy_url)
+    try:
+        db.create_schema()
+        print(Store(db).create_token(tenant))
+    finally:
+        db.dispose()
+    return 0
+
+
+def _database_errors() -> tuple[type[BaseException], ...]:
+    try:
+        from sqlalchemy.exc import SQLAlchemyError
+    except ImportError:  # pragma: no cover - sqlalchemy is a dependency
+        return ()
+    return (SQLAlchemyError,)
+
+
 def main(argv: list[str] | None = None) -> int:
+    from .config import ConfigError
+
     args = _parser().parse_args(argv)
     try:
         if args.command == "analyze":
             return _analyze(args)
         if args.command == "draft-design":
             return _draft(args)
+        if args.command == "serve":
+            return _serve(args)
+        if args.command == "token":
+            return _token(args)
+    except ConfigError as e:
+        print(f"samesource: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except _database_errors() as e:
+        print(f"samesource: cannot use the database ({type(e).__name__}); check "
+              "SAMESOURCE_DATABASE_URL, or the data folder's permissions", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except OSError as e:
+        if args.command not in ("serve", "token"):
+            raise
+        print(f"samesource: {e.strerror or e} ({e.filename or 'data folder'})", file=sys.stderr)
+        return EXIT_BAD_INPUT
     except InputError as e:
         print(f"samesource: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT

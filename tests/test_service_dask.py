@@ -17,8 +17,10 @@ distributed = pytest.importorskip("distributed")
 
 @pytest.fixture(scope="module")
 def cluster():
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False, protocol="tcp://",
-                                  host="127.0.0.1", dashboard_address=None) as c:
+    # worker processes, as on a real cluster (they import measurement afresh, like the local pool)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  protocol="tcp://", host="127.0.0.1",
+                                  dashboard_address=None) as c:
         yield c
 
 
@@ -56,6 +58,16 @@ def test_dask_executor_inside_a_task_fans_out_on_the_cluster(client):
     assert values == [x * x for x in range(12)] and workers == 2
 
 
+def differences(a, b, path: str = "") -> list[str]:
+    """Where two JSON values differ (for the failure message)."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        return [d for k in sorted(set(a) | set(b))
+                for d in differences(a.get(k), b.get(k), f"{path}.{k}")]
+    if isinstance(a, list) and isinstance(b, list) and len(a) == len(b):
+        return [d for i, (x, y) in enumerate(zip(a, b, strict=True)) for d in differences(x, y, f"{path}[{i}]")]
+    return [] if a == b else [f"{path}: {a!r} != {b!r}"]
+
+
 def run_through_service(config: dict, data: bytes, design: dict, options: dict) -> tuple[dict, set]:
     app = create_app(config)
     svc = app.extensions[EXTENSION]
@@ -87,7 +99,7 @@ def test_an_analysis_on_the_cluster_equals_the_local_pool(cluster, client, tmp_p
     on_dask, dask_stages = run_through_service(
         {"data_dir": tmp_path / "dask", "executor": address}, data, design, options)
     local, _ = run_through_service({"data_dir": tmp_path / "local"}, data, design, options)
-    assert on_dask == local
+    assert on_dask == local, differences(on_dask, local)[:10]
     boot = on_dask["paths"][0]["estimates"]["latent"]["bootstrap"]
     assert boot["n_boot"] == 30 and boot["seed"] == 4
     # progress written from the cluster's events while it ran

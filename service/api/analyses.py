@@ -1,0 +1,174 @@
+"""/v1/analyses: start an analysis of a dataset, follow it, read its report.
+
+POST validates everything it can before answering 202: the JSON body, the design (parsed,
+and checked against the dataset's columns), the options. Problems with the data values
+that only a design reveals (a text answer in an item column, an answer outside the
+response scale) are found when the analysis runs, and become its error, naming row and
+column.
+"""
+
+from __future__ import annotations
+
+import importlib
+import importlib.util
+import json
+import logging
+
+from flask import Blueprint, Response, jsonify, request
+
+from measurement.design import check_columns, parse_design
+from measurement.errors import InputError
+from measurement.options import AnalysisOptions
+
+from ..context import services
+from ..errors import ApiError, from_input_error
+from .auth import tenant_id
+from .paging import page_args
+
+log = logging.getLogger("samesource.service")
+
+HTML_MODULE = "measurement.html_report"
+_BODY_FIELDS = ("dataset_id", "design", "options")
+
+
+def public(a: dict, *, report: dict | None = None, include_report: bool = True) -> dict:
+    out = {k: v for k, v in a.items() if k not in ("tenant_id", "report_text")}
+    if include_report:
+        out["report"] = report
+    return out
+
+
+def _reject_constant(name: str) -> float:
+    raise ValueError(f"{name} is not a JSON number")
+
+
+def json_body() -> dict:
+    """The request's JSON object, or a 415/400 saying what is wrong with it."""
+    if request.mimetype != "application/json":
+        raise ApiError(415, "unsupported_media_type",
+                       f"send a JSON body with Content-Type: application/json (got "
+                       f"{request.mimetype or 'none'!r})", None)
+    raw = request.get_data(cache=True)
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as e:
+        raise ApiError(400, "bad_json", f"the body is not UTF-8 text (byte {e.start})") from None
+    try:
+        body = json.loads(text, parse_constant=_reject_constant)
+    except json.JSONDecodeError as e:
+        raise ApiError(400, "bad_json", f"the body is not valid JSON: {e.msg} at line {e.lineno}, "
+                       f"column {e.colno}") from None
+    except ValueError as e:
+        raise ApiError(400, "bad_json", f"the body is not valid JSON: {e}") from None
+    if not isinstance(body, dict):
+        raise ApiError(400, "bad_request", "the body must be a JSON object {\"dataset_id\", "
+                       "\"design\", \"options\"}")
+    return body
+
+
+def create() -> tuple[Response, int]:
+    svc = services()
+    body = json_body()
+    unknown = sorted(set(body) - set(_BODY_FIELDS))
+    if unknown:
+        raise ApiError(400, "bad_request", f"unknown field '{unknown[0]}'; allowed: "
+                       f"{', '.join(_BODY_FIELDS)}", unknown[0])
+    dataset_id = body.get("dataset_id")
+    if not isinstance(dataset_id, str) or not dataset_id:
+        raise ApiError(400, "bad_request", "give the id of an uploaded dataset (a string, from "
+                       "POST /v1/datasets)", "dataset_id")
+    if "design" not in body:
+        raise ApiError(400, "bad_design", "the study design is missing (see docs/design-file.md, "
+                       "or start from the dataset's draft_design)", "design")
+    ds = svc.store.get_dataset(tenant_id(), dataset_id)
+    if ds is None:
+        raise ApiError(404, "not_found", f"no dataset {dataset_id!r}", "dataset_id")
+    try:
+        options = AnalysisOptions.from_dict(body.get("options"))
+    except InputError as e:
+        raise from_input_error(e) from None
+    try:
+        design = parse_design(body["design"])
+        if options.sheet is None:  # the summary's columns are the first sheet's
+            check_columns(design, ds["columns"], file=ds["name"])
+    except InputError as e:
+        raise from_input_error(e, field_prefix="design") from None
+    a = svc.store.add_analysis(tenant_id(), dataset_id, body["design"], options.to_dict())
+    if svc.runner is not None:
+        svc.runner.notify()
+    log.info("analysis %s queued for dataset %s", a["id"], dataset_id)
+    resp = jsonify({"id": a["id"], "status": a["status"], "dataset_id": dataset_id,
+                    "created_at": a["created_at"]})
+    resp.headers["Location"] = f"/v1/analyses/{a['id']}"
+    return resp, 202
+
+
+def _found(analysis_id: str, *, with_report: bool = False) -> dict:
+    a = services().store.get_analysis(tenant_id(), analysis_id, with_report=with_report)
+    if a is None:
+        raise ApiError(404, "not_found", f"no analysis {analysis_id!r}", "id")
+    return a
+
+
+def get_one(analysis_id: str) -> Response:
+    a = _found(analysis_id, with_report=True)
+    report = json.loads(a["report_text"]) if a["report_text"] else None
+    return jsonify(public(a, report=report))
+
+
+def list_all() -> Response:
+    limit, offset = page_args()
+    dataset_id = request.args.get("dataset_id")
+    rows, total = services().store.list_analyses(tenant_id(), dataset_id=dataset_id, limit=limit,
+                                                 offset=offset)
+    return jsonify({"analyses": [public(a, include_report=False) for a in rows], "total": total,
+                    "limit": limit, "offset": offset})
+
+
+def _finished(a: dict) -> str:
+    """The report text, or 409 while the analysis has none."""
+    if a["status"] == "succeeded" and a["report_text"]:
+        return a["report_text"]
+    if a["status"] == "failed":
+        raise ApiError(409, "analysis_failed", "the analysis failed, so it has no report: "
+                       + (a["error"] or {}).get("message", "no reason recorded"), None,
+                       {"status": a["status"]})
+    p = a["progress"]
+    raise ApiError(409, "not_finished", f"the analysis is {a['status']} (stage {p['stage'] or '-'}"
+                   f", {p['done']} of {p['total']}); ask again when its status is succeeded",
+                   None, {"status": a["status"]})
+
+
+def report_json(analysis_id: str) -> Response:
+    text = _finished(_found(analysis_id, with_report=True))
+    return Response(text, status=200, mimetype="application/json")
+
+
+def html_renderer():
+    """measurement.html_report.render_html when that module exists, else None."""
+    try:
+        if importlib.util.find_spec(HTML_MODULE) is None:
+            return None
+    except ModuleNotFoundError:
+        return None
+    return importlib.import_module(HTML_MODULE).render_html
+
+
+def report_html(analysis_id: str) -> Response:
+    a = _found(analysis_id, with_report=True)
+    render = html_renderer()
+    if render is None:
+        raise ApiError(404, "not_available", "the HTML report is not available in this version "
+                       "of samesource; read report.json", None)
+    text = _finished(a)
+    return Response(render(json.loads(text)), status=200, mimetype="text/html")
+
+
+def add_routes(bp: Blueprint) -> None:
+    bp.add_url_rule("/analyses", "create_analysis", create, methods=["POST"])
+    bp.add_url_rule("/analyses", "list_analyses", list_all, methods=["GET"])
+    bp.add_url_rule("/analyses/<analysis_id>", "get_analysis", get_one, methods=["GET"])
+    bp.add_url_rule("/analyses/<analysis_id>/report.json", "report_json", report_json,
+                    methods=["GET"])
+    bp.add_url_rule("/analyses/<analysis_id>/report.html", "report_html", report_html,
+                    methods=["GET"])

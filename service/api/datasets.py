@@ -1,0 +1,125 @@
+"""/v1/datasets: upload a survey file, list, read and delete uploads."""
+
+from __future__ import annotations
+
+import logging
+import os
+import re
+
+from flask import Blueprint, Response, jsonify, request
+
+from measurement.design import draft_design
+from measurement.errors import InputError
+from measurement.loading import load_table
+from measurement.prepare import numeric_columns
+
+from .. import uploads
+from ..context import services
+from ..errors import ApiError, from_input_error
+from ..store import new_id
+from .auth import tenant_id
+from .paging import page_args
+
+log = logging.getLogger("samesource.service")
+
+_UNSAFE = re.compile(r"[\x00-\x1f\x7f/\\]")
+
+
+def public(ds: dict) -> dict:
+    return {k: v for k, v in ds.items() if k not in ("stored_path", "tenant_id")}
+
+
+def _file_name(raw: str | None) -> str:
+    """The upload's own name without any folder part, for messages and format detection."""
+    name = os.path.basename((raw or "").replace("\\", "/")).strip()
+    name = _UNSAFE.sub("_", name)[:200]
+    return name or "upload"
+
+
+def upload() -> tuple[Response, int]:
+    svc = services()
+    cfg = svc.config
+    if request.mimetype != "multipart/form-data":
+        raise ApiError(415, "unsupported_media_type",
+                       "send the survey file as multipart/form-data in the field 'file' "
+                       f"(got Content-Type {request.mimetype or 'none'!r})", "file")
+    f = request.files.get("file")
+    if f is None:
+        raise ApiError(400, "missing_file", "the multipart body has no field 'file' holding the "
+                       "survey file", "file")
+    name = _file_name(f.filename)
+    try:
+        spooled = uploads.spool(f.stream, cfg.uploads_dir, max_bytes=cfg.max_upload_bytes)
+    except uploads.TooLarge:
+        raise ApiError(413, "too_large", f"the file is over the upload limit of "
+                       f"{cfg.max_upload_mb:g} MB; remove columns the analysis does not use, or "
+                       "split the file", "file") from None
+    try:
+        try:
+            table = load_table(spooled.read_bytes(), name=name, max_bytes=cfg.max_upload_bytes)
+            columns = [str(c) for c in table.frame.columns]
+            numeric = numeric_columns(table)
+        except InputError as e:
+            err = from_input_error(e)
+            if err.field is None:
+                err.field = "file"
+            log.info("upload refused: %s (%d bytes)", err.code, spooled.size)
+            raise err from None
+        dataset_id = new_id("ds")
+        rel = uploads.stored_relpath(tenant_id(), dataset_id)
+        uploads.keep(spooled, cfg.data_dir, rel)
+    except BaseException:
+        spooled.discard()
+        raise
+    try:
+        ds = svc.store.add_dataset(
+            tenant_id(), dataset_id, name=name, format=table.format, sha256=spooled.sha256,
+            size_bytes=spooled.size, rows=int(len(table.frame)), columns=columns,
+            numeric_columns=numeric, draft_design=draft_design(columns, numeric=numeric),
+            warnings=list(table.warnings), stored_path=rel)
+    except BaseException:
+        uploads.remove(cfg.data_dir, rel)
+        raise
+    log.info("dataset %s stored: %d bytes, %d rows, %d columns, %s", dataset_id, spooled.size,
+             ds["rows"], len(columns), table.format)
+    resp = jsonify(public(ds))
+    resp.headers["Location"] = f"/v1/datasets/{dataset_id}"
+    return resp, 201
+
+
+def list_datasets() -> Response:
+    limit, offset = page_args()
+    rows, total = services().store.list_datasets(tenant_id(), limit=limit, offset=offset)
+    return jsonify({"datasets": [public(d) for d in rows], "total": total, "limit": limit,
+                    "offset": offset})
+
+
+def _found(dataset_id: str) -> dict:
+    ds = services().store.get_dataset(tenant_id(), dataset_id)
+    if ds is None:
+        raise ApiError(404, "not_found", f"no dataset {dataset_id!r}", "id")
+    return ds
+
+
+def get_dataset(dataset_id: str) -> Response:
+    return jsonify(public(_found(dataset_id)))
+
+
+def delete_dataset(dataset_id: str) -> tuple[str, int]:
+    svc = services()
+    gone = svc.store.delete_dataset(tenant_id(), dataset_id)
+    if gone is None:
+        raise ApiError(404, "not_found", f"no dataset {dataset_id!r}", "id")
+    try:
+        uploads.remove(svc.config.data_dir, gone["stored_path"])
+    except OSError as e:  # the row is gone; a leftover file is only disk space
+        log.warning("dataset %s: stored file not removed (%s)", dataset_id, e.__class__.__name__)
+    log.info("dataset %s deleted with %d analyses", dataset_id, len(gone["analysis_ids"]))
+    return "", 204
+
+
+def add_routes(bp: Blueprint) -> None:
+    bp.add_url_rule("/datasets", "upload_dataset", upload, methods=["POST"])
+    bp.add_url_rule("/datasets", "list_datasets", list_datasets, methods=["GET"])
+    bp.add_url_rule("/datasets/<dataset_id>", "get_dataset", get_dataset, methods=["GET"])
+    bp.add_url_rule("/datasets/<dataset_id>", "delete_dataset", delete_dataset, methods=["DELETE"])

@@ -1,0 +1,55 @@
+"""The Flask app factory: configuration, storage, job runner, blueprints, JSON errors."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Mapping
+from typing import Any
+
+from flask import Flask, request
+
+from . import api, errors, pages
+from .config import MULTIPART_SLACK, ServiceConfig, load_config
+from .context import EXTENSION, Services
+from .db import Database
+from .runner import JobRunner, make_backend
+from .store import Store
+
+log = logging.getLogger("samesource.service")
+
+
+def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask:
+    """The service as a WSGI app. ``config``: a ServiceConfig, or settings over the
+    environment (as the flags of ``samesource serve`` are). With ``run_jobs`` (the default)
+    the job runner starts here; ``app.extensions["samesource"].close()`` stops it."""
+    cfg = config if isinstance(config, ServiceConfig) else load_config(config)
+    cfg.data_dir.mkdir(parents=True, exist_ok=True)
+    cfg.uploads_dir.mkdir(parents=True, exist_ok=True)
+    db = Database(cfg.sqlalchemy_url)
+    db.create_schema()
+    store = Store(db)
+
+    app = Flask("service", static_folder=None)
+    app.config["MAX_CONTENT_LENGTH"] = cfg.max_upload_bytes + MULTIPART_SLACK
+    app.config["SAMESOURCE_MAX_UPLOAD_MB"] = cfg.max_upload_mb
+    app.json.sort_keys = False  # fields in the documented order
+    svc = Services(config=cfg, store=store)
+    app.extensions[EXTENSION] = svc
+
+    @app.before_request
+    def _refuse_large_bodies_early() -> None:
+        # Before anything reads the body: the declared length alone is enough to say no.
+        limit = app.config["MAX_CONTENT_LENGTH"]
+        if request.content_length is not None and request.content_length > limit:
+            raise errors.ApiError(413, "too_large", f"the request body ({request.content_length} "
+                                  f"bytes) is over the upload limit of {cfg.max_upload_mb:g} MB",
+                                  "file" if request.path == "/v1/datasets" else None)
+
+    errors.register(app)
+    pages.register(app)
+    api.register(app)
+
+    if cfg.run_jobs:
+        svc.runner = JobRunner(store, cfg, make_backend(cfg, store))
+        svc.runner.start()
+    return app

@@ -1,0 +1,182 @@
+"""Analyses on a Dask distributed cluster (SAMESOURCE_EXECUTOR=dask://HOST:PORT).
+
+The job runs as one task on the cluster. Its bootstrap replicates fan out across the
+cluster's workers through :class:`DaskExecutor`, measurement.executor's Executor protocol
+over Dask. The task gets the file's bytes (cluster workers need not share the service's
+disk or database) and sends its progress back as cluster events on one topic, which the
+service writes to the database. The workers need samesource installed (same version).
+"""
+
+from __future__ import annotations
+
+import logging
+import queue
+import threading
+from collections.abc import Callable, Sequence
+from concurrent.futures import Future
+from dataclasses import replace
+from pathlib import Path
+from typing import Any
+
+from .errors import safe_trace
+from .jobs import JobSpec, Outcome
+from .store import Claim, Store
+
+log = logging.getLogger("samesource.dask")
+
+PROGRESS_TOPIC = "samesource-progress"
+
+
+class DaskExecutor:
+    """measurement.executor's Executor over a Dask cluster: ``map(fn, items)`` runs each call
+    as a task and returns the results in order.
+
+    With a ``client`` it submits through that client; without one it must be used inside a
+    task on the cluster, where it borrows a client with ``worker_client`` (the calling task
+    leaves the worker's thread pool while it waits, so the fan-out cannot deadlock the worker
+    it runs on). An exception raised by ``fn`` is re-raised; a task whose workers kept dying
+    raises RuntimeError, as the protocol says.
+    """
+
+    def __init__(self, client: Any = None) -> None:
+        self._client = client
+
+    @property
+    def workers(self) -> int:
+        if self._client is not None:
+            return _threads(self._client)
+        from distributed import get_client
+
+        return _threads(get_client())
+
+    def map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
+        items = list(items)
+        if not items:
+            return []
+        if self._client is not None:
+            return _gather(self._client, fn, items)
+        from distributed import worker_client
+
+        with worker_client() as client:
+            return _gather(client, fn, items)
+
+    def __repr__(self) -> str:
+        return "DaskExecutor()" if self._client is None else f"DaskExecutor({self._client!r})"
+
+
+def _threads(client: Any) -> int:
+    return max(1, sum(client.nthreads().values()))
+
+
+def _gather(client: Any, fn: Callable[[Any], Any], items: list[Any]) -> list[Any]:
+    from distributed import KilledWorker
+
+    futures = client.map(fn, items, pure=False)
+    try:
+        return client.gather(futures)
+    except KilledWorker as e:
+        raise RuntimeError(f"a Dask worker died running these tasks repeatedly ({e})") from e
+    finally:
+        client.cancel(futures)  # no-op for finished ones; stops the rest after an error
+
+
+def _run_on_cluster(spec: JobSpec) -> Outcome:
+    """The job as a Dask task."""
+    from distributed import get_worker
+
+    from .jobs import run_job
+
+    worker = get_worker()
+
+    def progress(stage: str, done: int, total: int) -> None:
+        worker.log_event(PROGRESS_TOPIC, {"analysis_id": spec.analysis_id, "attempt": spec.attempt,
+                                          "runner": spec.runner, "stage": stage, "done": done,
+                                          "total": total})
+
+    return run_job(spec, progress, executor=DaskExecutor())
+
+
+class DaskBackend:
+    """Submits jobs to the cluster and writes their progress events to the database."""
+
+    name = "dask"
+
+    def __init__(self, address: str, store: Store, *, timeout: float = 30) -> None:
+        from distributed import Client
+
+        self.address = address
+        self._store = store
+        self._client = Client(address, timeout=timeout, set_as_default=False)
+        self._events: queue.Queue = queue.Queue()
+        self._closed = threading.Event()
+        self._writer = threading.Thread(target=self._write_progress, daemon=True,
+                                        name="samesource-dask-progress")
+        self._writer.start()
+        self._client.subscribe_topic(PROGRESS_TOPIC, self._on_event)
+        self._futures: dict[str, Any] = {}
+        self._lock = threading.Lock()
+
+    def _on_event(self, event: tuple) -> None:
+        # In the client's event loop: hand over, never block it with a database write.
+        self._events.put(event[1])
+
+    def _write_progress(self) -> None:
+        while not self._closed.is_set():
+            try:
+                msg = self._events.get(timeout=0.5)
+            except queue.Empty:
+                continue
+            latest = {msg["analysis_id"]: msg}
+            while True:  # only the newest event of each analysis is worth a write
+                try:
+                    m = self._events.get_nowait()
+                except queue.Empty:
+                    break
+                latest[m["analysis_id"]] = m
+            for m in latest.values():
+                try:
+                    self._store.set_progress(Claim(m["analysis_id"], int(m["attempt"]),
+                                                   m["runner"]), m["stage"], m["done"], m["total"])
+                except Exception as e:
+                    log.warning("progress of analysis %s not recorded: %s", m.get("analysis_id"),
+                                safe_trace(e))
+
+    def submit(self, spec: JobSpec) -> Future:
+        from .runner import WorkerLost
+
+        data = Path(spec.path).read_bytes() if spec.path else spec.data
+        remote = replace(spec, path=None, data=data)
+        dfut = self._client.submit(_run_on_cluster, remote, pure=False,
+                                   key=f"samesource-analysis-{spec.analysis_id}-{spec.attempt}")
+        with self._lock:
+            self._futures[spec.analysis_id] = dfut
+        outer: Future = Future()
+
+        def _wait() -> None:
+            from distributed import KilledWorker
+
+            try:
+                outer.set_result(dfut.result())
+            except KilledWorker as e:
+                outer.set_exception(WorkerLost(f"the Dask workers running it died ({e})"))
+            except (OSError, TimeoutError) as e:
+                outer.set_exception(WorkerLost(f"lost the Dask cluster ({e.__class__.__name__})"))
+            except BaseException as e:  # noqa: BLE001 - handed to the dispatcher
+                outer.set_exception(e)
+            finally:
+                with self._lock:
+                    self._futures.pop(spec.analysis_id, None)
+
+        threading.Thread(target=_wait, daemon=True, name=f"samesource-dask-{spec.analysis_id}").start()
+        return outer
+
+    def close(self) -> None:
+        with self._lock:
+            futures = list(self._futures.values())
+        for f in futures:
+            f.cancel()
+        self._closed.set()
+        try:
+            self._client.close(timeout=10)
+        except Exception as e:
+            log.warning("closing the Dask client: %s", safe_trace(e))

@@ -1,0 +1,367 @@
+"""The job runner: takes queued analyses from the database and runs them outside the request.
+
+The queue is the analyses table itself (status "queued"), so an accepted analysis survives
+any crash. A few dispatcher threads each claim the oldest queued analysis (an atomic
+conditional UPDATE, so several service processes on one PostgreSQL database never take the
+same one), hand it to a backend and wait for its outcome:
+
+* :class:`LocalBackend`: a pool of local worker processes; the worker writes progress to the
+  database itself (it has the database URL);
+* :class:`service.dask_backend.DaskBackend`: the job runs on a Dask cluster and sends
+  progress back as cluster events, which this process writes.
+
+Every write for a run is conditioned on (analysis id, runner, attempt, status running), so a
+run that lost its claim (its dataset was deleted, or it was taken for dead and re-queued)
+cannot overwrite anything; its next progress call stops it.
+
+Recovery: a runner is identified as HOST:PID:NONCE and writes a heartbeat for its running
+analyses. At start-up and then periodically, analyses left "running" by a runner that is
+gone (a dead process on this machine, or no heartbeat for the lease) go back to the queue,
+or fail with the reason once they were interrupted ``max_attempts`` times.
+"""
+
+from __future__ import annotations
+
+import logging
+import multiprocessing
+import os
+import secrets
+import signal
+import socket
+import threading
+import time
+from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
+from pathlib import Path
+from typing import Protocol
+
+from .config import ServiceConfig
+from .errors import safe_trace
+from .jobs import JobSpec, Outcome
+from .store import Claim, Store
+
+log = logging.getLogger("samesource.runner")
+
+POLL_SECONDS = 2.0  # dispatchers look for queued analyses at least this often
+
+
+class WorkerLost(Exception):
+    """The process or cluster running a job went away before the job ended."""
+
+
+class Backend(Protocol):
+    name: str
+
+    def submit(self, spec: JobSpec) -> Future: ...
+
+    def close(self) -> None: ...
+
+
+# ---------------------------------------------------------------------- local process pool
+
+
+_WORKER_STORE: Store | None = None
+
+
+def _init_local_worker(database_url: str, service_pid: int) -> None:
+    """Runs once in each pool process: its own database connection for progress, its own
+    process group (so that it and every process it starts, the bootstrap's pool included,
+    can be ended together), and a watchdog that ends that group when the service is gone,
+    so a killed service leaves no analysis running behind it."""
+    global _WORKER_STORE
+    from .db import Database
+
+    os.setpgid(0, 0)
+    _WORKER_STORE = Store(Database(database_url))
+    threading.Thread(target=_watch_service, args=(service_pid, os.getppid()), daemon=True,
+                     name="samesource-watchdog").start()
+
+
+def _watch_service(service_pid: int, parent_pid: int) -> None:
+    while _alive(service_pid) and os.getppid() == parent_pid:
+        time.sleep(1.0)
+    os.killpg(0, signal.SIGKILL)
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _run_local(spec: JobSpec) -> Outcome:
+    from .jobs import Cancelled, run_job
+
+    store = _WORKER_STORE
+    assert store is not None, "the pool initializer did not run"
+    claim = Claim(spec.analysis_id, spec.attempt, spec.runner)
+
+    def progress(stage: str, done: int, total: int) -> None:
+        if not store.set_progress(claim, stage, done, total):
+            raise Cancelled(spec.analysis_id)
+
+    return run_job(spec, progress, executor=None)  # bootstrap: measurement's default pool
+
+
+class LocalBackend:
+    """Jobs in a pool of local processes ("forkserver" or "spawn": never "fork", the service
+    runs threads)."""
+
+    name = "local"
+
+    def __init__(self, workers: int, database_url: str) -> None:
+        methods = multiprocessing.get_all_start_methods()
+        self._context = multiprocessing.get_context("forkserver" if "forkserver" in methods
+                                                    else "spawn")
+        self._workers = workers
+        self._url = database_url
+        self._lock = threading.Lock()
+        self._pool: ProcessPoolExecutor | None = None
+        # pids of every worker each pool started (each leads its own process group), kept here
+        # because a broken pool may have forgotten them
+        self._pids: dict[int, set[int]] = {}
+
+    def _get_pool(self) -> ProcessPoolExecutor:
+        with self._lock:
+            if self._pool is None:
+                self._pool = ProcessPoolExecutor(
+                    max_workers=self._workers, mp_context=self._context,
+                    initializer=_init_local_worker, initargs=(self._url, os.getpid()))
+            return self._pool
+
+    def submit(self, spec: JobSpec) -> Future:
+        pool = self._get_pool()
+        try:
+            fut = pool.submit(_run_local, spec)
+        except BrokenProcessPool:
+            self._discard(pool)
+            pool = self._get_pool()
+            fut = pool.submit(_run_local, spec)
+        with self._lock:  # the pool starts its processes in submit
+            self._pids.setdefault(id(pool), set()).update(getattr(pool, "_processes", None) or {})
+        outer: Future = Future()
+
+        def _done(f: Future) -> None:
+            try:
+                outer.set_result(f.result())
+            except BrokenProcessPool as e:
+                self._discard(pool)
+                outer.set_exception(WorkerLost(f"a worker process stopped ({e.__class__.__name__})"))
+            except BaseException as e:  # noqa: BLE001 - handed to the dispatcher
+                outer.set_exception(e)
+
+        fut.add_done_callback(_done)
+        return outer
+
+    def worker_pids(self) -> list[int]:
+        with self._lock:
+            return sorted(p for pids in self._pids.values() for p in pids)
+
+    def _discard(self, pool: ProcessPoolExecutor) -> None:
+        """A worker died: drop the pool (the next job starts a fresh one) and end what is
+        left of every worker's process group, the dead one's bootstrap processes included."""
+        with self._lock:
+            if self._pool is not pool:
+                return  # already done for this pool
+            self._pool = None
+        self._end(pool)
+
+    def close(self) -> None:
+        # Jobs still running were handed back to the queue: end them now.
+        with self._lock:
+            pool, self._pool = self._pool, None
+        if pool is not None:
+            self._end(pool)
+
+    def _end(self, pool: ProcessPoolExecutor) -> None:
+        pool.shutdown(wait=False, cancel_futures=True)
+        with self._lock:
+            pids = self._pids.pop(id(pool), set())
+        for pid in pids:
+            try:
+                os.killpg(pid, signal.SIGKILL)
+            except (ProcessLookupError, PermissionError):
+                pass
+
+
+# ---------------------------------------------------------------------- the runner
+
+
+def runner_identity() -> str:
+    return f"{socket.gethostname()}:{os.getpid()}:{secrets.token_hex(4)}"
+
+
+def runner_is_dead(runner: str) -> bool:
+    """True when ``runner`` (HOST:PID:NONCE) was a process on this machine that has ended.
+    Runners elsewhere, or a live process, are left to the heartbeat lease."""
+    try:
+        host, pid, _nonce = runner.rsplit(":", 2)
+        pid_n = int(pid)
+    except ValueError:
+        return True
+    if host != socket.gethostname() or pid_n == os.getpid():
+        return False
+    return not _alive(pid_n)
+
+
+class JobRunner:
+    def __init__(self, store: Store, config: ServiceConfig, backend: Backend) -> None:
+        self.store = store
+        self.config = config
+        self.backend = backend
+        self.identity = runner_identity()
+        self._active: dict[str, Claim] = {}
+        self._active_lock = threading.Lock()
+        self._wake = threading.Condition()
+        self._stopping = threading.Event()
+        self._threads: list[threading.Thread] = []
+
+    # -- life cycle
+
+    def start(self) -> None:
+        self._recover()
+        for i in range(self.config.workers):
+            t = threading.Thread(target=self._dispatch_loop, name=f"samesource-dispatch-{i}",
+                                 daemon=True)
+            t.start()
+            self._threads.append(t)
+        t = threading.Thread(target=self._maintenance_loop, name="samesource-heartbeat",
+                             daemon=True)
+        t.start()
+        self._threads.append(t)
+        log.info("job runner %s started: %s backend, %d at once", self.identity,
+                 self.backend.name, self.config.workers)
+
+    def notify(self) -> None:
+        """A new analysis was queued."""
+        with self._wake:
+            self._wake.notify()
+
+    def stop(self) -> None:
+        """Stop taking work; running analyses go back to the queue for the next start."""
+        if self._stopping.is_set():
+            return
+        self._stopping.set()
+        with self._wake:
+            self._wake.notify_all()
+        with self._active_lock:
+            claims = list(self._active.values())
+        for c in claims:
+            try:
+                self.store.release(c)
+            except Exception as e:
+                log.warning("analysis %s not handed back: %s", c.analysis_id, safe_trace(e))
+        self.backend.close()
+        log.info("job runner %s stopped; %d running analyses re-queued", self.identity, len(claims))
+
+    # -- loops
+
+    def _dispatch_loop(self) -> None:
+        while not self._stopping.is_set():
+            try:
+                claim = self.store.claim_next(self.identity)
+            except Exception as e:  # database briefly unavailable: try again
+                log.warning("could not look for queued analyses: %s", safe_trace(e))
+                claim = None
+            if claim is None:
+                with self._wake:
+                    self._wake.wait(POLL_SECONDS)
+                continue
+            self._run(claim)
+
+    def _maintenance_loop(self) -> None:
+        beat = min(5.0, self.config.lease_seconds / 3)
+        sweep_every = max(beat, self.config.lease_seconds / 2)
+        last_sweep = time.monotonic()
+        while not self._stopping.wait(beat):
+            with self._active_lock:
+                claims = list(self._active.values())
+            try:
+                self.store.heartbeat(claims)
+                if time.monotonic() - last_sweep >= sweep_every:
+                    last_sweep = time.monotonic()
+                    self._recover()
+            except Exception as e:
+                log.warning("heartbeat or recovery failed: %s", safe_trace(e))
+
+    def _recover(self) -> None:
+        out = self.store.recover(lease_seconds=self.config.lease_seconds,
+                                 max_attempts=self.config.max_attempts,
+                                 runner_is_dead=runner_is_dead)
+        if out["requeued"] or out["failed"]:
+            log.warning("recovered analyses left running by a stopped runner: re-queued %s; "
+                        "failed after %d attempts %s", out["requeued"] or "none",
+                        self.config.max_attempts, out["failed"] or "none")
+            self.notify()
+
+    # -- one job
+
+    def _run(self, claim: Claim) -> None:
+        aid = claim.analysis_id
+        inputs = self.store.job_inputs(aid)
+        if inputs is None:  # deleted between claim and now
+            return
+        path = Path(self.config.data_dir) / inputs["stored_path"]
+        if not path.is_file():
+            log.error("analysis %s: stored file of its dataset is missing", aid)
+            self.store.finish(claim, error={
+                "code": "dataset_unavailable",
+                "message": "the dataset's stored file is missing from the service's data folder; "
+                           "upload the file again and start a new analysis", "field": None})
+            return
+        spec = JobSpec(analysis_id=aid, attempt=claim.attempt, runner=claim.runner,
+                       name=inputs["name"], design=inputs["design"], options=inputs["options"],
+                       path=str(path.resolve()))
+        with self._active_lock:
+            self._active[aid] = claim
+        t0 = time.monotonic()
+        log.info("analysis %s started (attempt %d)", aid, claim.attempt)
+        try:
+            outcome: Outcome = self.backend.submit(spec).result()
+        except WorkerLost as e:
+            if not self._stopping.is_set():
+                log.error("analysis %s lost its worker: %s", aid, e)
+                self._lost(claim)
+            return
+        except Exception as e:
+            if self._stopping.is_set():
+                return
+            log.error("analysis %s: the job runner failed: %s", aid, safe_trace(e))
+            self.store.finish(claim, error={
+                "code": "internal_error",
+                "message": f"internal error while running the analysis (analysis {aid}); the "
+                           "service's log has the details", "field": None})
+            return
+        finally:
+            with self._active_lock:
+                self._active.pop(aid, None)
+        if outcome.cancelled:
+            log.info("analysis %s stopped: it no longer belongs to this run", aid)
+            return
+        saved = self.store.finish(claim, report=outcome.report, error=outcome.error)
+        log.info("analysis %s %s in %.1f s%s", aid, "failed" if outcome.error else "succeeded",
+                 time.monotonic() - t0, "" if saved else " (not saved: deleted or re-queued meanwhile)")
+
+    def _lost(self, claim: Claim) -> None:
+        """The worker died under this job: queue it again, or fail it after max_attempts."""
+        if claim.attempt >= self.config.max_attempts:
+            self.store.finish(claim, error={
+                "code": "worker_lost",
+                "message": (f"the process running this analysis stopped {claim.attempt} times "
+                            "(killed or out of memory); it is not tried again. Try fewer "
+                            "bootstrap replicates or a smaller file"), "field": None})
+        else:
+            self.store.release_for_retry(claim)
+        self.notify()
+
+
+def make_backend(config: ServiceConfig, store: Store) -> Backend:
+    if config.dask_address:
+        from .dask_backend import DaskBackend
+
+        return DaskBackend(config.dask_address, store)
+    return LocalBackend(config.workers, config.sqlalchemy_url)
