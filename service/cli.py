@@ -31,7 +31,11 @@ def _parser() -> argparse.ArgumentParser:
                    help="drop rows that screening flags (by default they are reported and kept)")
     a.add_argument("--fit-time-limit", type=float, default=60.0, metavar="SECONDS",
                    help="time cap for each model fit (default 60)")
-    a.add_argument("--seed", type=int, default=0, help="seed for random starting values")
+    a.add_argument("--bootstrap", type=int, default=0, metavar="N",
+                   help="bootstrap replicates for percentile and BCa intervals (default 0: analytic intervals)")
+    a.add_argument("--seed", type=int, default=0, help="seed for the bootstrap and random starting values")
+    a.add_argument("--min-group-size", type=int, default=5, metavar="N",
+                   help="no group's numbers are shown for groups smaller than this (default 5)")
     a.add_argument("--quiet", action="store_true", help="print only where the report is")
 
     d = sub.add_parser("draft-design", help="print a draft design inferred from column names")
@@ -59,26 +63,42 @@ def _analyze(args: argparse.Namespace) -> int:
     from measurement.design import load_design
     from measurement.options import AnalysisOptions
     from measurement.pipeline import analyze
-    from measurement.report import dumps
 
     design = load_design(args.design)
     opts = AnalysisOptions.from_dict({
         "missing": args.missing, "drop_flagged": args.drop_flagged,
         "fit_time_limit": args.fit_time_limit, "seed": args.seed, "sheet": args.sheet,
+        "bootstrap": args.bootstrap, "min_group_size": args.min_group_size,
     })
     result = analyze(args.data, design, opts)
     out = Path(args.out)
     try:
-        out.mkdir(parents=True, exist_ok=True)
-        (out / "report.json").write_text(dumps(result.report), encoding="utf-8")
+        write_outputs(result.report, out)
     except OSError as e:
         raise InputError(f"cannot write the report there ({e.strerror})", code="bad_output",
                          file=str(out)) from None
     if not args.quiet:
         print(result.summary())
         print()
-    print(f"Report: {out / 'report.json'}")
+    print(f"Report: {out / 'report.html'} (data: report.json; tables: tables/ and tables.xlsx)")
     return 0
+
+
+def write_outputs(report: dict, out: Path) -> None:
+    """report.json, report.html and the tables (CSV per table, and one workbook) in ``out``."""
+    from measurement.html_report import render_html
+    from measurement.report import dumps
+    from measurement.tables import report_tables, tables_csv, tables_xlsx
+
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "report.json").write_text(dumps(report), encoding="utf-8")
+    (out / "report.html").write_text(render_html(report), encoding="utf-8")
+    tables = report_tables(report)
+    folder = out / "tables"
+    folder.mkdir(exist_ok=True)
+    for name, text in tables_csv(tables).items():
+        (folder / name).write_text(text, encoding="utf-8")
+    (out / "tables.xlsx").write_bytes(tables_xlsx(tables))
 
 
 def _draft(args: argparse.Namespace) -> int:

@@ -71,6 +71,25 @@ def test_analyze_small_file_writes_report(tmp_path):
     assert report["data"]["rows"] == 120
     assert set(report["constructs"]) == {"sup", "eng"}
     assert "Report:" in res.stdout
+    html = (out / "report.html").read_text(encoding="utf-8")
+    assert "<html" in html and "NaN" not in html
+    assert (out / "tables" / "paths.csv").exists() and (out / "tables.xlsx").stat().st_size > 0
+
+
+def test_bootstrap_option_reaches_the_report(tmp_path):
+    out = tmp_path / "out"
+    res = run("analyze", small_csv(tmp_path), "--design", small_design(tmp_path), "--out", out,
+              "--bootstrap", "20", "--seed", "3", "--quiet")
+    assert res.returncode == 0, res.stderr
+    report = json.loads((out / "report.json").read_text(encoding="utf-8"))
+    assert report["options"]["bootstrap"] == 20 and report["options"]["seed"] == 3
+    latent = report["paths"][0]["estimates"]["latent"]
+    assert latent["bootstrap"]["n_boot"] == 20 and latent["ci_method"] in ("bca", "percentile")
+
+
+def test_bad_option_exits_2(tmp_path):
+    res = run("analyze", small_csv(tmp_path), "--design", small_design(tmp_path), "--bootstrap", "-4")
+    assert_one_clean_error(res, "options.bootstrap")
 
 
 @pytest.mark.parametrize("make, words", [

@@ -70,11 +70,11 @@ def test_sqlite_runs_in_wal_mode(tmp_path):
 
 
 def test_tokens_are_stored_only_hashed(store):
-    token = store.create_token("acme")
-    again = store.create_token("acme")  # a second token, same tenant
+    token = store.create_token("quernmoor-hr")
+    again = store.create_token("quernmoor-hr")  # a second token, same tenant
     assert token != again
     t1, t2 = store.tenant_for_token(token), store.tenant_for_token(again)
-    assert t1 == t2 and t1["name"] == "acme"
+    assert t1 == t2 and t1["name"] == "quernmoor-hr"
     key_id = tokens.key_id_of(token)
     cells = all_cells(store)
     for t in (token, again):
