@@ -125,11 +125,11 @@ class PathEstimator:
                              compute_se=compute_se, start=prev)
         if prev.status != "ok":
             return prev  # not used on the full sample, so not in the replicates either
-        fit = refit(prev, data, time_limit=self.time_limit)
-        if fit.status == "ok":
-            return fit
-        return fit_model(spec, data, time_limit=self.time_limit, n_starts=2, seed=self.seed,
-                         compute_se=False, start=prev)
+        # A replicate is refitted once from the full-sample solution, within a time budget
+        # scaled to that fit; one that does not come back proper counts as failed (fragile
+        # free method loadings, say) rather than being chased through more starts.
+        budget = min(self.time_limit, max(0.25, 3 * prev.elapsed))
+        return refit(prev, data, time_limit=budget)
 
     def _item_data(self, X: np.ndarray) -> tuple[Moments | RawData, np.ndarray]:
         """Model input for the items, and the item covariance for closed-form statistics."""
