@@ -18,6 +18,7 @@ import threading
 import time
 from pathlib import Path
 
+import pandas as pd
 import pytest
 import requests
 from conftest import ROOT, auth, cli, new_token, small_survey, wait_for
@@ -90,10 +91,16 @@ def test_http_report_equals_the_command_line_report(server_factory, tmp_path):
     http_report = rj.json()
     assert http_report == a["report"]
     html = requests.get(f"{srv.base}/v1/analyses/{aid}/report.html", headers=auth(token), timeout=60)
-    if html.status_code == 200:
-        assert html.headers["Content-Type"].startswith("text/html")
-    else:
-        assert html.status_code == 404 and html.json()["error"]["code"] == "not_available"
+    assert html.status_code == 200 and html.headers["Content-Type"].startswith("text/html")
+
+    # small-group protection over HTTP: no team under the minimum size in JSON or HTML
+    teams = http_report["teams"]
+    sizes = pd.read_csv(SAMPLE)["team"].value_counts()
+    small = set(sizes[sizes < teams["min_group_size"]].index)
+    assert small and teams["groups_withheld"] == len(small)
+    assert {g["group"] for g in teams["group_scores"]}.isdisjoint(small)
+    for name in small:
+        assert f'"{name}"' not in rj.text and f">{name}<" not in html.text
 
     _, stderr = cli_run.communicate(timeout=300)
     assert cli_run.returncode == 0, stderr
