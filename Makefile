@@ -16,7 +16,6 @@ install: $(STAMP)
 
 demo: $(STAMP)
 	$(BIN)/samesource analyze sample_surveys/staff_survey.csv --design sample_surveys/staff_survey_design.json --missing fiml --out samesource-report
-	@echo "Report written to samesource-report/report.json"
 	$(BIN)/python -m service.demo_client
 
 test: $(STAMP)
