@@ -140,3 +140,22 @@ def test_bootstrap_is_reproducible_under_a_seed_and_differs_across_seeds():
     assert first["se"] == first["bootstrap"]["se"]
     lo, hi = first["ci"]
     assert lo < first["estimate"] < hi
+
+
+def test_sensitivity_curve_at_the_true_method_share_recovers_the_truth():
+    # Known truth: every item's method share is .35^2 = .1225. The curve assumes a fixed
+    # share; at 0 it is the latent estimate, at .125 (the nearest grid point) it should sit
+    # near the true path, and the break-even share is where it crosses zero.
+    paths = _paths(seed=101, n=3000)
+    for key, truth in TRUTH.items():
+        p = paths[key]
+        curve = {c["method_share"]: c for c in p["sensitivity"]["curve"]}
+        assert curve[0.0]["estimate"] == pytest.approx(p["estimates"]["latent"]["estimate"], abs=1e-4)
+        assert curve[0.125]["estimate"] == pytest.approx(truth, abs=0.06)
+        est = [c["estimate"] for c in p["sensitivity"]["curve"]]
+        assert all(a > b for a, b in zip(est, est[1:], strict=False))  # more method, smaller path
+        be = p["sensitivity"]["break_even_method_share"]
+        if be is not None:
+            xs = [c["method_share"] for c in p["sensitivity"]["curve"]]
+            i = next(j for j in range(1, len(est)) if est[j] <= 0)
+            assert xs[i - 1] <= be <= xs[i]
