@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint install clean bench postgres-up test-postgres
+.PHONY: demo test lint install clean bench postgres-up test-postgres test-browser
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
@@ -20,6 +20,11 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
+
+# The page at / driven in headless Chromium (Debian's /usr/bin/chromium: apt-get install -y
+# chromium); skipped with a reason when Chromium or the playwright package is missing.
+test-browser: $(STAMP)
+	$(BIN)/python -m pytest -q -rs tests/test_browser.py
 
 # A local PostgreSQL server for the service's storage tests (Debian's postgresql, as root;
 # about 15 s here). Prints the URL to export as SAMESOURCE_TEST_POSTGRES_URL.

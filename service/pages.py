@@ -1,8 +1,15 @@
-"""The start page (/) and the health check (/healthz): the two routes without a token."""
+"""The start page (/) and the health check (/healthz): the two routes without a token.
+
+The page is plain HTML, CSS and JavaScript from service/static/, inlined into one answer (no
+build step, nothing from the network, no extra routes). It keeps the user's token in
+sessionStorage and calls the /v1 API with it.
+"""
 
 from __future__ import annotations
 
+import functools
 import logging
+from pathlib import Path
 
 from flask import Blueprint, Flask, Response, jsonify
 
@@ -13,45 +20,36 @@ from .errors import safe_trace
 
 log = logging.getLogger("samesource.service")
 
-PAGE = """<!doctype html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<meta name="viewport" content="width=device-width, initial-scale=1">
-<title>samesource</title>
-<style>
- body {{ font-family: system-ui, sans-serif; max-width: 44rem; margin: 2rem auto; padding: 0 1rem;
-        line-height: 1.5; color: #222; }}
- code, pre {{ background: #f4f4f4; border-radius: 3px; }}
- pre {{ padding: .75rem; overflow-x: auto; }}
-</style>
-</head>
-<body>
-<h1>samesource</h1>
-<p>Reliability, validity and common-method checks for survey scales answered by the same
-people, with key paths re-estimated under each correction. Version {version}.</p>
-<h2>Use the API</h2>
-<ol>
- <li>Get a token from whoever runs this service (<code>samesource token create --tenant NAME</code>).</li>
- <li>Upload a survey file (.csv, .tsv, .txt, .xlsx or .sav):
-<pre>curl -H "Authorization: Bearer $TOKEN" -F file=@survey.csv {base}/v1/datasets</pre></li>
- <li>Start an analysis with your study design, then poll it:
-<pre>curl -H "Authorization: Bearer $TOKEN" -H "Content-Type: application/json" \\
-     -d '{{"dataset_id": "ds_...", "design": {{...}}}}' {base}/v1/analyses
-curl -H "Authorization: Bearer $TOKEN" {base}/v1/analyses/an_...</pre></li>
- <li>Read the report: <code>/v1/analyses/ID/report.json</code>.</li>
-</ol>
-<p>Every route is described in <code>/v1/openapi.json</code> (it needs the token too).
-Service health: <a href="/healthz">/healthz</a>.</p>
-<p><small>Survey scores describe groups; they are not for decisions about individuals.
-Statistical remedies bound common-method bias, they do not remove it.</small></p>
-</body>
-</html>
-"""
+STATIC_DIR = Path(__file__).resolve().parent / "static"
+
+
+def _read(name: str) -> str:
+    return (STATIC_DIR / name).read_text(encoding="utf-8")
+
+
+@functools.lru_cache(maxsize=1)
+def _page() -> tuple[str, str]:
+    """The page with its style and script inlined, and its content security policy."""
+    style, script = _read("app.css"), _read("app.js")
+    if "</" + "script" in script.lower() or "</" + "style" in style.lower():
+        raise RuntimeError("service/static: app.js or app.css closes its own tag")
+    html = (_read("index.html").replace("{version}", __version__)
+            .replace("{style}", style).replace("{script}", script))
+    # Nothing from other origins. Inline code is allowed (rather than hashes of ours) because
+    # the report opened from a blob: URL inherits this policy and has its own inline style.
+    csp = ("default-src 'self' 'unsafe-inline' data: blob:; connect-src 'self'; "
+           "frame-ancestors 'none'; base-uri 'none'; form-action 'none'")
+    return html, csp
 
 
 def page() -> Response:
-    return Response(PAGE.format(version=__version__, base=""), mimetype="text/html")
+    html, csp = _page()
+    resp = Response(html, mimetype="text/html")
+    resp.headers["Content-Security-Policy"] = csp
+    resp.headers["Cache-Control"] = "no-cache"
+    resp.headers["Referrer-Policy"] = "no-referrer"
+    resp.headers["X-Content-Type-Options"] = "nosniff"
+    return resp
 
 
 def healthz() -> tuple[Response, int]:

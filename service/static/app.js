@@ -1,0 +1,682 @@
+/* The service's page: token, upload, design form, run, progress, report. No libraries. */
+"use strict";
+
+(function () {
+  const TOKEN_KEY = "samesource.token";
+  const ROLES = [["substantive", "Substantive"], ["marker", "Marker"], ["method", "Method"]];
+  const $ = (id) => document.getElementById(id);
+
+  const state = {
+    dataset: null,        // the POST /v1/datasets answer (columns, numeric_columns, draft_design)
+    analysisId: null,
+    pollTimer: null,
+    reportUrl: null,
+    jsonUrl: null,
+    nextKey: 1,
+  };
+
+  // ---- messages --------------------------------------------------------------------------
+
+  function say(text) {
+    const s = $("status");
+    s.textContent = "";
+    // a fresh text node so that repeated messages are announced again
+    window.setTimeout(() => { s.textContent = text; }, 30);
+  }
+
+  function clearError() {
+    const a = $("alert");
+    a.hidden = true;
+    a.textContent = "";
+    document.querySelectorAll("[aria-invalid='true']").forEach((el) => el.removeAttribute("aria-invalid"));
+  }
+
+  function showError(message, field, focusEl) {
+    const a = $("alert");
+    a.textContent = "";
+    const p = document.createElement("p");
+    p.textContent = message;
+    a.appendChild(p);
+    if (field) {
+      const f = document.createElement("p");
+      f.className = "field-name";
+      f.textContent = "Field: " + field;
+      a.appendChild(f);
+    }
+    a.hidden = false;
+    const target = focusEl || elementForField(field);
+    if (target) {
+      target.setAttribute("aria-invalid", "true");
+      const go = el("button", { type: "button", class: "secondary go" }, "Go to this field");
+      go.addEventListener("click", () => {
+        const focusable = target.matches("input, select, textarea, button") ? target
+          : target.querySelector("input, select, textarea, button");
+        target.scrollIntoView({ block: "center" });
+        if (focusable) focusable.focus();
+      });
+      a.appendChild(go);
+    }
+    a.focus();
+  }
+
+  class ApiFailure extends Error {
+    constructor(status, code, message, field) {
+      super(message);
+      this.status = status;
+      this.code = code;
+      this.field = field;
+    }
+  }
+
+  function reportFailure(e, fallbackField) {
+    if (e instanceof ApiFailure) {
+      showError(e.message, e.field || fallbackField || null);
+    } else {
+      showError("The service could not be reached (" + (e && e.message ? e.message : e) + ").", null);
+    }
+  }
+
+  // ---- the API ---------------------------------------------------------------------------
+
+  function token() { return sessionStorage.getItem(TOKEN_KEY) || ""; }
+
+  async function api(method, path, body, { raw = false } = {}) {
+    if (!token()) {
+      throw new ApiFailure(401, "no_token", "Enter your API token first (step 1).", "token");
+    }
+    const headers = { Authorization: "Bearer " + token() };
+    let payload = body;
+    if (body !== undefined && !(body instanceof FormData)) {
+      headers["Content-Type"] = "application/json";
+      payload = JSON.stringify(body);
+    }
+    const resp = await fetch(path, { method, headers, body: payload, cache: "no-store" });
+    if (!resp.ok) {
+      let err = null;
+      try { err = (await resp.json()).error; } catch (_) { /* not JSON */ }
+      const msg = err && err.message ? err.message : "The service answered " + resp.status + ".";
+      throw new ApiFailure(resp.status, err ? err.code : "http_" + resp.status, msg,
+                           err ? err.field : null);
+    }
+    if (raw) return resp;
+    return resp.status === 204 ? null : resp.json();
+  }
+
+  // ---- step 1: token ---------------------------------------------------------------------
+
+  function showTokenState() {
+    const has = !!token();
+    $("token-state").textContent = has ? "A token is in use for this tab." : "No token yet.";
+    $("token-state").className = "state" + (has ? " ok" : "");
+    $("token-forget").hidden = !has;
+  }
+
+  $("token-form").addEventListener("submit", (ev) => {
+    ev.preventDefault();
+    clearError();
+    const value = $("token").value.trim();
+    if (!value) {
+      showError("Enter a token: it is the line `samesource token create` printed.", "token", $("token"));
+      return;
+    }
+    sessionStorage.setItem(TOKEN_KEY, value);
+    $("token").value = "";
+    showTokenState();
+    say("Token kept for this tab.");
+  });
+
+  $("token-forget").addEventListener("click", () => {
+    sessionStorage.removeItem(TOKEN_KEY);
+    showTokenState();
+    say("Token forgotten.");
+    $("token").focus();
+  });
+
+  // ---- step 2: upload --------------------------------------------------------------------
+
+  $("upload-form").addEventListener("submit", async (ev) => {
+    ev.preventDefault();
+    clearError();
+    const f = $("file").files[0];
+    if (!f) {
+      showError("Choose a survey file to upload.", "file", $("file"));
+      return;
+    }
+    const fd = new FormData();
+    fd.append("file", f, f.name);
+    $("upload-btn").disabled = true;
+    say("Uploading " + f.name + "…");
+    try {
+      const ds = await api("POST", "/v1/datasets", fd);
+      showDataset(ds);
+      say("Uploaded " + ds.name + ": " + ds.rows + " rows, " + ds.columns.length +
+          " columns. The draft design is in step 3.");
+    } catch (e) {
+      reportFailure(e, "file");
+      if (e.field === "file" || !e.field) $("file").setAttribute("aria-invalid", "true");
+    } finally {
+      $("upload-btn").disabled = false;
+    }
+  });
+
+  function showDataset(ds) {
+    state.dataset = ds;
+    $("dataset").hidden = false;
+    const warn = (ds.warnings || []).length ? " " + ds.warnings.length + " warning(s) while reading." : "";
+    $("dataset-summary").textContent = "“" + ds.name + "”: " + ds.rows + " rows, " +
+      ds.columns.length + " columns (" + ds.format + ")." + warn;
+    const numeric = new Set(ds.numeric_columns || ds.columns);
+    const ul = $("columns");
+    ul.textContent = "";
+    ds.columns.forEach((c) => {
+      const li = document.createElement("li");
+      li.textContent = c;
+      if (!numeric.has(c)) {
+        li.className = "text";
+        li.textContent = c + " (text)";
+      }
+      ul.appendChild(li);
+    });
+    $("column-count").textContent = String(ds.columns.length);
+    loadDesign(ds.draft_design || { constructs: {}, paths: [] });
+    $("design-step").hidden = false;
+    $("run-step").hidden = false;
+    resetProgress();
+  }
+
+  // ---- step 3: the design form -----------------------------------------------------------
+
+  function numericColumns() {
+    const ds = state.dataset;
+    return ds ? (ds.numeric_columns || ds.columns) : [];
+  }
+
+  function el(tag, attrs, ...children) {
+    const e = document.createElement(tag);
+    for (const [k, v] of Object.entries(attrs || {})) {
+      if (k === "class") e.className = v;
+      else if (k === "text") e.textContent = v;
+      else if (v !== null && v !== undefined && v !== false) e.setAttribute(k, v === true ? "" : v);
+    }
+    children.forEach((c) => e.appendChild(typeof c === "string" ? document.createTextNode(c) : c));
+    return e;
+  }
+
+  function checkbox(idBase, value, labelText, checked, cls) {
+    const id = idBase + "-" + value.replace(/[^A-Za-z0-9_-]/g, "_");
+    const input = el("input", { type: "checkbox", id, value });
+    input.checked = !!checked;
+    return el("div", { class: "choice" + (cls ? " " + cls : "") }, input,
+              el("label", { for: id, text: labelText }));
+  }
+
+  function constructBoxes() { return Array.from(document.querySelectorAll("#constructs .construct")); }
+  function pathBoxes() { return Array.from(document.querySelectorAll("#paths .path")); }
+
+  function addConstruct(name, spec, focus) {
+    const key = "c" + state.nextKey++;
+    const box = el("fieldset", { class: "construct", "data-key": key });
+    const legend = el("legend", { text: "Construct" });
+    const nameInput = el("input", { type: "text", id: key + "-name", value: name, autocomplete: "off",
+                                    spellcheck: "false", "data-role": "name" });
+    const roleSelect = el("select", { id: key + "-role", "data-role": "role" });
+    ROLES.forEach(([v, t]) => {
+      const o = el("option", { value: v, text: t });
+      if ((spec.role || "substantive") === v) o.selected = true;
+      roleSelect.appendChild(o);
+    });
+    const remove = el("button", { type: "button", class: "remove" }, "Remove construct");
+    box.append(legend,
+      el("div", { class: "head" },
+        el("div", { class: "field" }, el("label", { for: key + "-name", text: "Name" }), nameInput),
+        el("div", { class: "field" }, el("label", { for: key + "-role", text: "Role" }), roleSelect),
+        remove));
+
+    const items = new Set(spec.items || []);
+    const itemsSet = el("fieldset", { class: "checks", "data-role": "items" },
+                        el("legend", { text: "Items" }));
+    const list = el("div", { class: "check-list" });
+    const cols = numericColumns().slice();
+    (spec.items || []).forEach((c) => { if (!cols.includes(c)) cols.push(c); });
+    cols.forEach((c) => list.appendChild(checkbox(key + "-item", c, c, items.has(c))));
+    itemsSet.appendChild(list);
+    const showAll = el("input", { type: "checkbox", id: key + "-show-all", "data-role": "show-all" });
+    itemsSet.appendChild(el("div", { class: "choice show-all" }, showAll,
+      el("label", { for: key + "-show-all", text: "Also list columns used by other constructs" })));
+    showAll.addEventListener("change", markTaken);
+
+    const revSet = el("fieldset", { class: "checks", "data-role": "reverse" },
+                      el("legend", { text: "Reverse-keyed items" }));
+    box.append(itemsSet, revSet);
+    $("constructs").appendChild(box);
+    renderReverse(box, new Set(spec.reverse || []));
+    updateLegend(box);
+
+    nameInput.addEventListener("input", () => { updateLegend(box); refreshPaths(); });
+    roleSelect.addEventListener("change", () => { refreshPaths(); });
+    list.addEventListener("change", () => { renderReverse(box); markTaken(); });
+    remove.addEventListener("click", () => {
+      const label = nameInput.value || "the construct";
+      const next = box.nextElementSibling || box.previousElementSibling;
+      box.remove();
+      refreshPaths();
+      markTaken();
+      say("Removed " + label + ".");
+      (next ? next.querySelector("input[data-role='name']") : $("add-construct")).focus();
+    });
+    if (focus) nameInput.focus();
+    return box;
+  }
+
+  function updateLegend(box) {
+    const name = box.querySelector("input[data-role='name']").value.trim();
+    box.querySelector("legend").textContent = name ? "Construct “" + name + "”" : "New construct";
+  }
+
+  function checkedValues(container) {
+    return Array.from(container.querySelectorAll("input[type='checkbox']:checked")).map((i) => i.value);
+  }
+
+  function renderReverse(box, keep) {
+    const revSet = box.querySelector("[data-role='reverse']");
+    const before = keep || new Set(checkedValues(revSet));
+    const items = checkedValues(box.querySelector("[data-role='items']"));
+    revSet.querySelectorAll(".check-list, .empty").forEach((n) => n.remove());
+    if (!items.length) {
+      revSet.appendChild(el("p", { class: "empty", text: "Choose items first." }));
+      return;
+    }
+    const list = el("div", { class: "check-list" });
+    items.forEach((c) => list.appendChild(checkbox(box.dataset.key + "-rev", c, c, before.has(c))));
+    revSet.appendChild(list);
+  }
+
+  // an item belongs to one construct: show where a column is already used
+  function markTaken() {
+    const owner = new Map();
+    constructBoxes().forEach((b) => {
+      const name = b.querySelector("input[data-role='name']").value.trim() || "another construct";
+      checkedValues(b.querySelector("[data-role='items']")).forEach((c) => {
+        if (!owner.has(c)) owner.set(c, []);
+        owner.get(c).push({ key: b.dataset.key, name });
+      });
+    });
+    constructBoxes().forEach((b) => {
+      b.querySelectorAll("[data-role='items'] .check-list .choice").forEach((ch) => {
+        const input = ch.querySelector("input");
+        const others = (owner.get(input.value) || []).filter((o) => o.key !== b.dataset.key);
+        let note = ch.querySelector(".taken-note");
+        const showAll = b.querySelector("input[data-role='show-all']").checked;
+        ch.hidden = !!(others.length && !input.checked && !showAll);
+        if (others.length && !input.checked) {
+          ch.classList.add("taken");
+          if (!note) { note = el("span", { class: "taken-note" }); ch.appendChild(note); }
+          note.textContent = "(in " + others[0].name + ")";
+        } else {
+          ch.classList.remove("taken");
+          if (note) note.remove();
+        }
+      });
+    });
+  }
+
+  function substantive() {
+    return constructBoxes()
+      .filter((b) => b.querySelector("select[data-role='role']").value === "substantive")
+      .map((b) => ({ key: b.dataset.key, name: b.querySelector("input[data-role='name']").value.trim() }));
+  }
+
+  function keyForName(name) {
+    const b = constructBoxes().find((x) => x.querySelector("input[data-role='name']").value.trim() === name);
+    return b ? b.dataset.key : null;
+  }
+
+  function addPath(outcomeKey, predictorKeys, focus) {
+    const pk = "p" + state.nextKey++;
+    const box = el("fieldset", { class: "path", "data-key": pk });
+    box.dataset.outcome = outcomeKey || "";
+    box.dataset.predictors = (predictorKeys || []).join(" ");
+    const select = el("select", { id: pk + "-outcome", "data-role": "outcome" });
+    const remove = el("button", { type: "button", class: "remove" }, "Remove path");
+    box.append(el("legend", { text: "Path" }),
+      el("div", { class: "head" },
+        el("div", { class: "field" }, el("label", { for: pk + "-outcome", text: "Outcome" }), select),
+        el("div"),
+        remove),
+      el("fieldset", { class: "checks", "data-role": "predictors" }, el("legend", { text: "Predictors" })));
+    $("paths").appendChild(box);
+    select.addEventListener("change", () => { box.dataset.outcome = select.value; renderPath(box); });
+    remove.addEventListener("click", () => {
+      const next = box.nextElementSibling || box.previousElementSibling;
+      box.remove();
+      say("Path removed.");
+      (next ? next.querySelector("select") : $("add-path")).focus();
+    });
+    renderPath(box);
+    if (focus) select.focus();
+    return box;
+  }
+
+  function renderPath(box) {
+    const subs = substantive();
+    const select = box.querySelector("select[data-role='outcome']");
+    const predSet = box.querySelector("[data-role='predictors']");
+    // remember the current choices (by construct key, so renaming keeps them)
+    if (predSet.querySelector(".check-list")) {
+      box.dataset.predictors = checkedValues(predSet).join(" ");
+    }
+    const chosen = new Set(box.dataset.predictors.split(" ").filter(Boolean));
+    select.textContent = "";
+    select.appendChild(el("option", { value: "", text: "Choose an outcome" }));
+    subs.forEach((s) => {
+      const o = el("option", { value: s.key, text: s.name || "(unnamed)" });
+      if (s.key === box.dataset.outcome) o.selected = true;
+      select.appendChild(o);
+    });
+    if (!subs.some((s) => s.key === box.dataset.outcome)) select.value = "";
+    const legend = box.querySelector("legend");
+    const outName = (subs.find((s) => s.key === select.value) || {}).name;
+    legend.textContent = outName ? "Path to “" + outName + "”" : "Path";
+    predSet.querySelectorAll(".check-list, .empty").forEach((n) => n.remove());
+    const options = subs.filter((s) => s.key !== select.value);
+    if (!options.length) {
+      predSet.appendChild(el("p", { class: "empty", text: "Needs at least two substantive constructs." }));
+      return;
+    }
+    const list = el("div", { class: "check-list" });
+    options.forEach((s) => {
+      const ch = checkbox(box.dataset.key + "-pred", s.key, s.name || "(unnamed)", chosen.has(s.key));
+      list.appendChild(ch);
+    });
+    list.addEventListener("change", () => { box.dataset.predictors = checkedValues(list).join(" "); });
+    predSet.appendChild(list);
+  }
+
+  function refreshPaths() { pathBoxes().forEach(renderPath); }
+
+  function fillColumnSelect(select, value) {
+    select.textContent = "";
+    select.appendChild(el("option", { value: "", text: "None" }));
+    (state.dataset ? state.dataset.columns : []).forEach((c) => {
+      const o = el("option", { value: c, text: c });
+      select.appendChild(o);
+    });
+    if (value && !Array.from(select.options).some((o) => o.value === value)) {
+      select.appendChild(el("option", { value, text: value }));
+    }
+    select.value = value || "";
+  }
+
+  function loadDesign(d) {
+    $("constructs").textContent = "";
+    $("paths").textContent = "";
+    Object.entries(d.constructs || {}).forEach(([name, spec]) => addConstruct(name, spec || {}, false));
+    markTaken();
+    (d.paths || []).forEach((p) => {
+      addPath(keyForName(p.outcome), (p.predictors || []).map(keyForName).filter(Boolean), false);
+    });
+    const rs = d.response_scale || {};
+    $("scale-min").value = rs.min ?? "";
+    $("scale-max").value = rs.max ?? "";
+    $("missing-codes").value = (d.missing_codes || []).join(", ");
+    fillColumnSelect($("id-column"), d.id_column);
+    fillColumnSelect($("group-column"), d.group_column);
+    if ($("json-view").open) $("design-json").value = JSON.stringify(d, null, 2);
+  }
+
+  class FormProblem extends Error {
+    constructor(message, field, target) { super(message); this.field = field; this.target = target; }
+  }
+
+  function readDesign() {
+    const constructs = {};
+    const names = new Map();
+    constructBoxes().forEach((b, i) => {
+      const nameInput = b.querySelector("input[data-role='name']");
+      const name = nameInput.value.trim();
+      if (!name) throw new FormProblem("Construct " + (i + 1) + " has no name.", "constructs[" + (i + 1) + "].name", nameInput);
+      if (constructs[name]) throw new FormProblem("Two constructs are called “" + name + "”.", "constructs." + name, nameInput);
+      const spec = { items: checkedValues(b.querySelector("[data-role='items']")) };
+      const rev = checkedValues(b.querySelector("[data-role='reverse']"));
+      if (rev.length) spec.reverse = rev;
+      const role = b.querySelector("select[data-role='role']").value;
+      if (role !== "substantive") spec.role = role;
+      constructs[name] = spec;
+      names.set(b.dataset.key, name);
+    });
+    const design = { constructs, paths: [] };
+    pathBoxes().forEach((b, i) => {
+      const sel = b.querySelector("select[data-role='outcome']");
+      if (!sel.value) throw new FormProblem("Path " + (i + 1) + " has no outcome.", "paths[" + i + "].outcome", sel);
+      const preds = b.dataset.predictors.split(" ").filter((k) => k && names.has(k) && k !== sel.value);
+      design.paths.push({ outcome: names.get(sel.value), predictors: preds.map((k) => names.get(k)) });
+    });
+    const lo = $("scale-min").value.trim();
+    const hi = $("scale-max").value.trim();
+    if (lo !== "" || hi !== "") {
+      if (lo === "" || hi === "") {
+        throw new FormProblem("Give both the lowest and the highest answer, or neither.", "response_scale",
+                              lo === "" ? $("scale-min") : $("scale-max"));
+      }
+      design.response_scale = { min: Number(lo), max: Number(hi) };
+    }
+    const codesText = $("missing-codes").value.trim();
+    if (codesText) {
+      const codes = codesText.split(/[,;\s]+/).filter(Boolean).map((t) => {
+        const n = Number(t);
+        if (!Number.isFinite(n)) throw new FormProblem("“" + t + "” is not a number.", "missing_codes", $("missing-codes"));
+        return n;
+      });
+      design.missing_codes = codes;
+    }
+    if ($("id-column").value) design.id_column = $("id-column").value;
+    if ($("group-column").value) design.group_column = $("group-column").value;
+    return design;
+  }
+
+  // find the form control an API error field points at, e.g. design.constructs.support.items[2]
+  function elementForField(field) {
+    if (!field) return null;
+    const f = field.replace(/^design\./, "");
+    if (f === "file") return $("file");
+    if (f === "token") return $("token");
+    let m = f.match(/^constructs\.([^.[]+)/);
+    if (m) {
+      const key = keyForName(m[1]);
+      const box = key && document.querySelector(".construct[data-key='" + key + "']");
+      if (!box) return $("constructs");
+      if (/\.reverse/.test(f)) return box.querySelector("[data-role='reverse']");
+      if (/\.items/.test(f)) return box.querySelector("[data-role='items']");
+      if (/\.role/.test(f)) return box.querySelector("select[data-role='role']");
+      return box.querySelector("input[data-role='name']");
+    }
+    m = f.match(/^paths\[(\d+)\]/);
+    if (m) {
+      const box = pathBoxes()[Number(m[1])];
+      return box ? (/predictors/.test(f) ? box.querySelector("[data-role='predictors']") : box.querySelector("select")) : $("paths");
+    }
+    if (f.startsWith("response_scale")) return $("scale-min");
+    if (f.startsWith("missing_codes")) return $("missing-codes");
+    if (f === "id_column") return $("id-column");
+    if (f === "group_column") return $("group-column");
+    m = f.match(/^options\.(\w+)/);
+    if (m) return $(m[1] === "missing" ? "missing-listwise" : m[1]);
+    return null;
+  }
+
+  $("add-construct").addEventListener("click", () => {
+    addConstruct("", {}, true);
+    refreshPaths();
+    say("Added a construct: give it a name and items.");
+  });
+  $("add-path").addEventListener("click", () => { addPath(null, [], true); say("Added a path."); });
+
+  function refreshJson() {
+    try {
+      $("design-json").value = JSON.stringify(readDesign(), null, 2);
+      $("design-json").removeAttribute("aria-invalid");
+    } catch (e) {
+      if (!(e instanceof FormProblem)) throw e;
+      showError(e.message, e.field, e.target);
+    }
+  }
+  $("json-view").addEventListener("toggle", () => { if ($("json-view").open) refreshJson(); });
+  $("json-refresh").addEventListener("click", () => { clearError(); refreshJson(); say("JSON refreshed from the form."); });
+  $("json-load").addEventListener("click", () => {
+    clearError();
+    let d;
+    try {
+      d = JSON.parse($("design-json").value);
+    } catch (e) {
+      showError("The design JSON does not parse: " + e.message, "design", $("design-json"));
+      return;
+    }
+    if (!d || typeof d !== "object" || Array.isArray(d) || typeof (d.constructs || {}) !== "object") {
+      showError("The design must be a JSON object with a “constructs” object.", "design", $("design-json"));
+      return;
+    }
+    loadDesign(d);
+    say("Design loaded into the form: " + Object.keys(d.constructs || {}).length + " constructs, " +
+        (d.paths || []).length + " paths.");
+  });
+
+  // ---- step 4: options, run, progress ----------------------------------------------------
+
+  function readOptions() {
+    const opts = { missing: document.querySelector("input[name='missing']:checked").value };
+    for (const name of ["bootstrap", "seed"]) {
+      const t = $(name).value.trim();
+      if (t === "") continue;
+      const n = Number(t);
+      if (!Number.isInteger(n) || n < 0) {
+        throw new FormProblem("“" + t + "” is not a whole number of 0 or more.", "options." + name, $(name));
+      }
+      opts[name] = n;
+    }
+    return opts;
+  }
+
+  function resetProgress() {
+    if (state.pollTimer) window.clearTimeout(state.pollTimer);
+    state.pollTimer = null;
+    state.analysisId = null;
+    [state.reportUrl, state.jsonUrl].forEach((u) => u && URL.revokeObjectURL(u));
+    state.reportUrl = state.jsonUrl = null;
+    $("progress-box").hidden = true;
+    $("report-links").hidden = true;
+  }
+
+  $("run-form").addEventListener("submit", async (ev) => {
+    ev.preventDefault();
+    clearError();
+    if (!state.dataset) { showError("Upload a survey file first (step 2).", "file", $("file")); return; }
+    let design, options;
+    try {
+      design = readDesign();
+      options = readOptions();
+    } catch (e) {
+      if (!(e instanceof FormProblem)) throw e;
+      showError(e.message, e.field, e.target);
+      return;
+    }
+    if ($("json-view").open) $("design-json").value = JSON.stringify(design, null, 2);
+    resetProgress();
+    $("run-btn").disabled = true;
+    try {
+      const a = await api("POST", "/v1/analyses", { dataset_id: state.dataset.id, design, options });
+      state.analysisId = a.id;
+      $("progress-box").hidden = false;
+      showProgress({ status: a.status, progress: { stage: "waiting", done: 0, total: 0 } });
+      say("Analysis started.");
+      poll();
+    } catch (e) {
+      reportFailure(e);
+      $("run-btn").disabled = false;
+    }
+  });
+
+  const STAGES = {
+    waiting: "waiting to start", starting: "starting", load: "reading the data",
+    screen: "screening answers", reliability: "reliability", measurement_model: "measurement model",
+    method_variance: "common-method checks", paths: "key paths", bootstrap: "bootstrap",
+    teams: "teams", report: "writing the report", done: "done",
+  };
+
+  function showProgress(a) {
+    const p = a.progress || {};
+    const st = $("an-status");
+    st.textContent = a.status;
+    st.className = "status-" + a.status;
+    $("an-stage").textContent = STAGES[p.stage] || p.stage || "-";
+    const bar = $("an-progress");
+    if (a.status === "succeeded") {
+      bar.max = 1; bar.value = 1;
+      $("an-count").textContent = "";
+    } else if (p.total) {
+      bar.max = p.total; bar.value = Math.min(p.done || 0, p.total);
+      $("an-count").textContent = (p.done || 0) + " of " + p.total;
+    } else {
+      bar.removeAttribute("value");  // indeterminate until the service knows the steps
+      $("an-count").textContent = "";
+    }
+  }
+
+  async function poll() {
+    const id = state.analysisId;
+    if (!id) return;
+    let a;
+    try {
+      a = await api("GET", "/v1/analyses/" + encodeURIComponent(id));
+    } catch (e) {
+      reportFailure(e);
+      $("run-btn").disabled = false;
+      return;
+    }
+    if (id !== state.analysisId) return;
+    const before = $("an-stage").textContent;
+    showProgress(a);
+    if (a.status === "succeeded") {
+      $("run-btn").disabled = false;
+      await prepareReport(id);
+      return;
+    }
+    if (a.status === "failed") {
+      $("run-btn").disabled = false;
+      const err = a.error || {};
+      let where = "";
+      if (err.row) where += " (row " + err.row + (err.column ? ", column " + err.column : "") + ")";
+      say("The analysis failed.");
+      showError("The analysis failed: " + (err.message || "no reason given") + where, err.field || null);
+      return;
+    }
+    if ($("an-stage").textContent !== before) say("Analysis " + a.status + ": " + $("an-stage").textContent + ".");
+    state.pollTimer = window.setTimeout(poll, 1000);
+  }
+
+  async function prepareReport(id) {
+    try {
+      const json = await api("GET", "/v1/analyses/" + id + "/report.json", undefined, { raw: true });
+      state.jsonUrl = URL.createObjectURL(new Blob([await json.blob()], { type: "application/json" }));
+      $("download-json").href = state.jsonUrl;
+      $("download-json").download = "report-" + id + ".json";
+      let html = null;
+      try {
+        html = await api("GET", "/v1/analyses/" + id + "/report.html", undefined, { raw: true });
+      } catch (e) {
+        if (!(e instanceof ApiFailure && e.code === "not_available")) throw e;
+      }
+      $("open-report").hidden = !html;
+      if (html) {
+        state.reportUrl = URL.createObjectURL(new Blob([await html.blob()], { type: "text/html" }));
+        $("open-report").href = state.reportUrl;
+      }
+      $("report-links").hidden = false;
+      say("The analysis succeeded. " + (html ? "The report is ready to open." : "Download report.json to read it."));
+      (html ? $("open-report") : $("download-json")).focus();
+    } catch (e) {
+      reportFailure(e);
+    }
+  }
+
+  showTokenState();
+})();

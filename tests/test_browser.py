@@ -1,0 +1,225 @@
+"""The service's page at / driven in headless Chromium, from token to report, against the real
+server (`samesource serve` as a subprocess).
+
+Needs Debian's chromium (/usr/bin/chromium) and the Python `playwright` package (its bundled
+driver only; no downloaded browsers). Without either the test is skipped. `make test-browser`
+runs this file alone. Screenshots of every step go to tests/artifacts/.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from pathlib import Path
+
+import pytest
+from conftest import ROOT, new_token
+
+CHROMIUM = Path(os.environ.get("SAMESOURCE_TEST_CHROMIUM", "/usr/bin/chromium"))
+ARTIFACTS = ROOT / "tests" / "artifacts"
+SURVEY = ROOT / "sample_surveys" / "staff_survey.csv"
+DESIGN = json.loads((ROOT / "sample_surveys" / "staff_survey_design.json").read_text())
+CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
+                 "--disable-component-update", "--disable-sync", "--no-first-run"]
+
+try:
+    from playwright.sync_api import expect, sync_playwright
+except ImportError:  # pragma: no cover - depends on the machine
+    sync_playwright = None
+
+pytestmark = [
+    pytest.mark.skipif(sync_playwright is None,
+                       reason="the Python package 'playwright' is not installed (pip install -e '.[test]')"),
+    pytest.mark.skipif(not CHROMIUM.exists(),
+                       reason=f"no Chromium at {CHROMIUM} (Debian: apt-get install -y chromium)"),
+]
+
+# the draft design's construct names (column stems) and the names the study uses
+RENAME = {"sup": "support", "wld": "workload", "eng": "engagement", "stay": "intent",
+          "wth": "weather", "imp": "impression"}
+
+
+def shot(page, name: str) -> None:
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    page.screenshot(path=str(ARTIFACTS / f"browser-{name}.png"), full_page=True)
+
+
+def construct(page, name: str):
+    """The construct fieldset whose name field holds ``name``."""
+    boxes = page.locator("#constructs .construct")
+    for i in range(boxes.count()):
+        box = boxes.nth(i)
+        if box.locator("input[data-role='name']").input_value() == name:
+            return box
+    raise AssertionError(f"no construct named {name!r} in the form")
+
+
+def design_json(page) -> dict:
+    if not page.locator("#json-view").evaluate("d => d.open"):
+        page.locator("#json-view > summary").click()
+    page.locator("#json-refresh").click()
+    return json.loads(page.locator("#design-json").input_value())
+
+
+def test_page_from_token_to_report(server_factory, tmp_path):
+    server = server_factory(tmp_path / "data")
+    token = new_token(tmp_path / "data", "t")
+    problems: list[str] = []
+    t0 = time.monotonic()
+
+    with sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
+        context = browser.new_context(viewport={"width": 1280, "height": 900}, accept_downloads=True)
+
+        def watch(p):
+            p.on("console", lambda m: problems.append(f"console {m.type}: {m.text}")
+                 if m.type == "error" else None)
+            p.on("pageerror", lambda e: problems.append(f"page error: {e}"))
+        context.on("page", watch)
+        # nothing may leave the machine: every request goes to the service itself or a blob:
+        context.route("**/*", lambda route: route.continue_()
+                      if route.request.url.startswith((server.base, "blob:", "data:"))
+                      else (problems.append(f"outside request: {route.request.url}"), route.abort()))
+
+        page = context.new_page()
+        page.goto(server.base + "/")
+        expect(page.get_by_role("heading", level=1)).to_have_text("samesource")
+        expect(page.locator("#design-step")).to_be_hidden()
+        shot(page, "01-start")
+
+        # -- token, from the keyboard alone: skip link, then the token field; Enter submits
+        page.keyboard.press("Tab")
+        assert page.evaluate("document.activeElement.className") == "skip"
+        page.keyboard.press("Tab")
+        assert page.evaluate("document.activeElement.id") == "token"
+        page.keyboard.type(token)
+        page.keyboard.press("Enter")
+        expect(page.locator("#token-state")).to_have_text("A token is in use for this tab.")
+        assert page.evaluate("sessionStorage.getItem('samesource.token')") == token
+        assert token not in page.url and page.locator("#token").input_value() == ""
+
+        # -- a missing file is refused with a message naming the field
+        page.locator("#upload-btn").click()
+        expect(page.locator("#alert")).to_be_visible()
+        expect(page.locator("#alert")).to_contain_text("Choose a survey file")
+        expect(page.locator("#alert")).to_contain_text("Field: file")
+
+        # -- upload; the draft design appears in the form
+        page.locator("#file").set_input_files(str(SURVEY))
+        page.locator("#upload-btn").click()
+        expect(page.locator("#design-step")).to_be_visible(timeout=30_000)
+        expect(page.locator("#alert")).to_be_hidden()
+        expect(page.locator("#dataset-summary")).to_contain_text("staff_survey.csv")
+        expect(page.locator("#status")).to_contain_text("Uploaded staff_survey.csv")
+        names = page.locator("#constructs input[data-role='name']")
+        assert [names.nth(i).input_value() for i in range(names.count())] == list(RENAME)
+        sup = construct(page, "sup")
+        checked = sup.locator("[data-role='items'] input:checked")
+        assert [checked.nth(i).get_attribute("value") for i in range(checked.count())] == \
+            ["sup1", "sup2", "sup3", "sup4"]
+        assert page.locator("#id-column").input_value() == "respondent"
+        assert page.locator("#group-column").input_value() == "team"
+        # the page shows column names, never survey values (first respondent's id is R00001)
+        assert "R00001" not in page.content()
+        shot(page, "02-draft-design")
+
+        # -- edit the draft into the study's design with the form controls
+        for old, new in RENAME.items():
+            construct(page, old).locator("input[data-role='name']").fill(new)
+        construct(page, "support").locator("[data-role='reverse'] label", has_text="sup4").click()
+        construct(page, "workload").locator("[data-role='reverse'] label", has_text="wld3").click()
+        construct(page, "weather").locator("select[data-role='role']").select_option("marker")
+        construct(page, "impression").locator("select[data-role='role']").select_option("method")
+
+        page.locator("#add-path").click()
+        path = page.locator("#paths .path").nth(0)
+        assert page.evaluate("document.activeElement.dataset.role") == "outcome"
+        # a marker or method construct is no outcome to choose
+        options = path.locator("select[data-role='outcome'] option")
+        assert [options.nth(i).inner_text() for i in range(options.count())] == \
+            ["Choose an outcome", "support", "workload", "engagement", "intent"]
+        path.locator("select[data-role='outcome']").select_option(label="engagement")
+        path.locator("[data-role='predictors'] label", has_text="support").click()
+        path.locator("[data-role='predictors'] label", has_text="workload").click()
+        page.locator("#add-path").click()
+        path2 = page.locator("#paths .path").nth(1)
+        path2.locator("select[data-role='outcome']").select_option(label="intent")
+        path2.locator("[data-role='predictors'] label", has_text="engagement").click()
+
+        # a construct added then removed leaves the design as it was
+        page.locator("#add-construct").click()
+        expect(page.locator("#constructs .construct")).to_have_count(7)
+        page.locator("#constructs .construct").nth(6).get_by_role("button", name="Remove construct").click()
+        expect(page.locator("#constructs .construct")).to_have_count(6)
+
+        page.locator("#scale-min").fill("1")
+        page.locator("#scale-max").fill("7")
+        page.locator("#missing-codes").fill("-99")
+        assert design_json(page) == DESIGN
+        shot(page, "03-edited-design")
+
+        # -- choose FIML from the keyboard, then a design the service refuses: its message
+        # and field are shown
+        page.locator("#missing-listwise").focus()
+        page.keyboard.press("ArrowDown")
+        assert page.locator("#missing-fiml").is_checked()
+        page.locator("#scale-min").fill("9")
+        seen = len(problems)
+        page.locator("#run-btn").click()
+        expect(page.locator("#alert")).to_contain_text("Field: design.response_scale", timeout=15_000)
+        expect(page.locator("#alert")).to_contain_text("min")
+        expect(page.locator("#scale-min")).to_have_attribute("aria-invalid", "true")
+        assert page.evaluate("document.activeElement.id") == "alert"
+        # Chromium logs the refused request itself; that one 400 is the point of this step
+        assert problems[seen:] == ["console error: Failed to load resource: the server responded "
+                                   "with a status of 400 (BAD REQUEST)"]
+        del problems[seen:]
+        page.locator("#alert").get_by_role("button", name="Go to this field").click()
+        assert page.evaluate("document.activeElement.id") == "scale-min"
+        shot(page, "04-api-error")
+        page.locator("#scale-min").fill("1")
+
+        # -- start the analysis and watch it
+        page.locator("#run-btn").focus()
+        page.keyboard.press("Enter")
+        expect(page.locator("#progress-box")).to_be_visible(timeout=15_000)
+        expect(page.locator("#alert")).to_be_hidden()
+        expect(page.locator("#an-status")).not_to_have_text("-")
+        shot(page, "05-running")
+        expect(page.locator("#an-status")).to_have_text("succeeded", timeout=120_000)
+        expect(page.locator("#open-report")).to_be_visible(timeout=30_000)
+        assert page.locator("#an-progress").evaluate("p => p.value === p.max")
+        assert page.evaluate("document.activeElement.id") == "open-report"
+        shot(page, "06-succeeded")
+
+        # the same page at a phone's width
+        page.set_viewport_size({"width": 390, "height": 844})
+        shot(page, "07-phone")
+        page.set_viewport_size({"width": 1280, "height": 900})
+
+        # -- report.json downloads, with the options chosen in the form
+        with page.expect_download() as dl:
+            page.locator("#download-json").click()
+        report = json.loads(Path(dl.value.path()).read_text())
+        assert report["schema"] == "samesource.report/1"
+        assert report["data"]["missing_handling"]["method"] == "fiml"
+        assert [(p["outcome"], p["predictor"]) for p in report["paths"]] == \
+            [("engagement", "support"), ("engagement", "workload"), ("intent", "engagement")]
+        assert {n: c["role"] for n, c in report["constructs"].items()}["weather"] == "marker"
+
+        # -- the report opens in a new tab, fetched with the token
+        with context.expect_page() as new_tab:
+            page.locator("#open-report").click()
+        rep = new_tab.value
+        rep.wait_for_load_state()
+        assert rep.url.startswith("blob:")
+        expect(rep.get_by_role("heading", level=1)).to_have_text("staff_survey.csv")
+        expect(rep.locator("#paths h2")).to_have_text("Key paths under every correction")
+        expect(rep.locator("#paths h3")).to_have_count(3)
+        shot(rep, "08-report")
+
+        browser.close()
+
+    assert problems == []
+    print(f"browser run: {time.monotonic() - t0:.1f} s")
