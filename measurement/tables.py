@@ -316,9 +316,32 @@ def _frame(rows: list[dict], columns: list[str]) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=columns + list(dict.fromkeys(extra)))
 
 
+# A text cell starting with one of these is run as a formula when a spreadsheet opens the CSV
+# (OWASP, "CSV Injection"); construct, item and team names come from users' files.
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def _text_safe(value: Any) -> Any:
+    """Text that a spreadsheet would read as a formula, behind a leading apostrophe; numbers as they are."""
+    if isinstance(value, str) and value.startswith(_FORMULA_START):
+        return "'" + value
+    return value
+
+
 def tables_csv(tables: dict[str, pd.DataFrame]) -> dict[str, str]:
-    """File name -> CSV text (UTF-8, header row, no index)."""
-    return {f"{_safe_name(name)}.csv": df.to_csv(index=False, lineterminator="\n") for name, df in tables.items()}
+    """File name -> CSV text (UTF-8, header row, no index).
+
+    Text cells and headers that would start a spreadsheet formula get a leading apostrophe;
+    numeric columns are untouched (a negative estimate stays a number).
+    """
+    out = {}
+    for name, df in tables.items():
+        safe = df.rename(columns=_text_safe)
+        for col in safe.columns:
+            if not (pd.api.types.is_numeric_dtype(safe[col]) or pd.api.types.is_bool_dtype(safe[col])):
+                safe[col] = safe[col].map(_text_safe)
+        out[f"{_safe_name(name)}.csv"] = safe.to_csv(index=False, lineterminator="\n")
+    return out
 
 
 def tables_xlsx(tables: dict[str, pd.DataFrame]) -> bytes:

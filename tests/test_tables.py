@@ -147,6 +147,19 @@ def test_xlsx_keeps_user_text_as_text(plain):
     assert cell.value == "=HYPERLINK(\"x\",\"y\")" and cell.data_type == "s"
 
 
+def test_csv_keeps_user_text_from_becoming_a_formula(plain):
+    # OWASP "CSV Injection": text cells starting with = + - @ are escaped with a leading
+    # apostrophe; numbers, including negative ones, stay numbers.
+    r = copy.deepcopy(plain)
+    r["constructs"] = {("=HYPERLINK(\"x\",\"y\")" if k == "sup" else k): v for k, v in r["constructs"].items()}
+    csv = tables_csv(report_tables(r))
+    constructs = pd.read_csv(io.StringIO(csv["constructs.csv"]))
+    assert "'=HYPERLINK(\"x\",\"y\")" in constructs["construct"].tolist()
+    paths = pd.read_csv(io.StringIO(csv["paths.csv"]))
+    assert pd.api.types.is_numeric_dtype(paths["estimate"])
+    assert not any(str(v).startswith("'") for v in paths["estimate"])
+
+
 def test_long_and_clashing_sheet_names_are_cut_and_kept_apart():
     tables = {"cautions": pd.DataFrame({"caution": ["c"]}),
               "a" * 40: pd.DataFrame({"x": [1]}), "a" * 35: pd.DataFrame({"x": [2]})}
