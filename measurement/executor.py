@@ -16,7 +16,9 @@ Contract for ``fn``: it must be picklable (a module-level function) and should h
 own errors (the bootstrap wraps every replicate). An exception that escapes ``fn`` is
 re-raised by ``map`` (the serial executor stops at once; the pool cancels the tasks not yet
 started). A worker process that dies (killed, out of memory, crashed in C code) makes
-``map`` raise :class:`RuntimeError`.
+``map`` raise :class:`RuntimeError`. An interruption of ``map`` (KeyboardInterrupt,
+SystemExit) kills the pool's workers at once, and every worker leaves by itself within about a
+second when the process that owns the pool dies, even by SIGKILL.
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ import atexit
 import multiprocessing
 import os
 import threading
+import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
@@ -64,9 +67,30 @@ class SerialExecutor:
         return "SerialExecutor()"
 
 
-def _init_worker(blas_threads: int | None) -> None:
-    """Limit BLAS threads in a worker: one pool process per core, each multi-threaded, would
-    oversubscribe the cores (the fitting engine measured 10x slower fits that way)."""
+OWNER_POLL_SECONDS = 1.0
+
+
+def _exit_when_owner_gone(owner_pid: int) -> None:
+    # A pool worker blocks on a task queue whose write end every worker also holds, so it never
+    # sees end-of-file when the process that owns the pool is killed: it would sit idle (or
+    # finish a long task) for ever. Polling the owner is the one signal that always arrives.
+    while True:
+        time.sleep(OWNER_POLL_SECONDS)
+        try:
+            os.kill(owner_pid, 0)
+        except ProcessLookupError:
+            os._exit(1)
+        except PermissionError:  # exists, owned by someone else: cannot be ours, but is alive
+            pass
+
+
+def _init_worker(blas_threads: int | None, owner_pid: int | None = None) -> None:
+    """Set a worker up: leave when the pool's owner dies, and limit BLAS threads (one pool
+    process per core, each multi-threaded, would oversubscribe the cores: the fitting engine
+    measured 10x slower fits that way)."""
+    if owner_pid is not None:
+        threading.Thread(target=_exit_when_owner_gone, args=(owner_pid,), daemon=True,
+                         name="samesource-owner-watch").start()
     if blas_threads is None:
         return
     for var in _BLAS_ENV:  # read by BLAS when numpy is first imported in this process
@@ -131,7 +155,7 @@ class LocalExecutor:
             if self._pool is None:
                 self._pool = ProcessPoolExecutor(
                     max_workers=self._workers, mp_context=self._context,
-                    initializer=_init_worker, initargs=(self._blas_threads,))
+                    initializer=_init_worker, initargs=(self._blas_threads, os.getpid()))
             return self._pool
 
     def _discard(self, pool: ProcessPoolExecutor) -> None:
@@ -155,10 +179,33 @@ class LocalExecutor:
             raise RuntimeError(
                 "a worker process of the local pool died (killed, out of memory or crashed); "
                 f"{len(items)} tasks were lost") from exc
-        except BaseException:
+        except Exception:
             for f in futures:
                 f.cancel()
             raise
+        except BaseException:
+            # Interrupted or told to stop (KeyboardInterrupt, SystemExit, the command line's
+            # stop signal): the running tasks' results are no longer wanted, so stop the
+            # workers now instead of waiting for them.
+            self._terminate(pool)
+            raise
+
+    def _terminate(self, pool: ProcessPoolExecutor) -> None:
+        """Cancel what has not started, kill the workers and drop the pool."""
+        with self._lock:
+            if self._pool is pool:
+                self._pool = None
+        # ProcessPoolExecutor has no public way to stop running tasks before Python 3.14
+        # (terminate_workers), so its private worker table is read, and missing is tolerated.
+        procs = list((getattr(pool, "_processes", None) or {}).values())
+        pool.shutdown(wait=False, cancel_futures=True)
+        for proc in procs:
+            if proc.is_alive():
+                proc.terminate()
+        for proc in procs:
+            proc.join(timeout=5)
+            if proc.is_alive():
+                proc.kill()
 
     def shutdown(self, wait: bool = True) -> None:
         """Stop the worker processes (tasks not yet started are cancelled)."""

@@ -3,8 +3,11 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
+import signal
 import sys
+from collections.abc import Iterator
 from pathlib import Path
 
 from measurement import __version__
@@ -59,6 +62,50 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+class Stopped(BaseException):
+    """SIGTERM or SIGHUP during a run. A BaseException so that no ``except Exception`` on the
+    way swallows it, and so that the local pool kills its workers instead of waiting."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _raise_stopped(signum: int, frame: object) -> None:
+    raise Stopped(signum)
+
+
+@contextlib.contextmanager
+def stop_on_signals() -> Iterator[None]:
+    """Turn SIGTERM and SIGHUP into :class:`Stopped` while the block runs (the default would
+    end the process at once and leave the bootstrap's worker processes running)."""
+    previous = {sig: signal.signal(sig, _raise_stopped) for sig in (signal.SIGTERM, signal.SIGHUP)}
+    try:
+        yield
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+
+
+_DEFERRED = (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)
+
+
+@contextlib.contextmanager
+def _uninterrupted(note: list[int]) -> Iterator[None]:
+    """Hold stop signals while the report files are written: never a half-written report. A
+    signal that arrived meanwhile is dropped (the run is complete) and noted in ``note``."""
+    signal.pthread_sigmask(signal.SIG_BLOCK, _DEFERRED)
+    try:
+        yield
+    finally:
+        pending = signal.sigpending() & set(_DEFERRED)
+        note.extend(pending)
+        previous = {sig: signal.signal(sig, signal.SIG_IGN) for sig in pending}
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, _DEFERRED)  # an ignored pending signal is discarded
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+
+
 def _analyze(args: argparse.Namespace) -> int:
     from measurement.design import load_design
     from measurement.options import AnalysisOptions
@@ -72,12 +119,17 @@ def _analyze(args: argparse.Namespace) -> int:
     })
     result = analyze(args.data, design, opts)
     out = Path(args.out)
+    held: list[int] = []
     try:
-        write_outputs(result.report, out)
+        with _uninterrupted(held):
+            write_outputs(result.report, out)
     except OSError as e:
         raise InputError(f"cannot write the report there ({e.strerror})", code="bad_output",
                          file=str(out)) from None
-    if not args.quiet:
+    if held:  # the user asked to stop: no summary, but say where the finished report is
+        print(f"samesource: {signal.Signals(held[0]).name} arrived while the report was being "
+              "written; the report is complete", file=sys.stderr)
+    elif not args.quiet:
         print(result.summary())
         print()
     print(f"Report: {out / 'report.html'} (data: report.json; tables: tables/ and tables.xlsx)")
@@ -165,7 +217,8 @@ def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     try:
         if args.command == "analyze":
-            return _analyze(args)
+            with stop_on_signals():
+                return _analyze(args)
         if args.command == "draft-design":
             return _draft(args)
         if args.command == "serve":
@@ -188,8 +241,12 @@ def main(argv: list[str] | None = None) -> int:
         print(f"samesource: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
-        print("samesource: interrupted", file=sys.stderr)
+        print("samesource: interrupted; nothing was written", file=sys.stderr)
         return 130
+    except Stopped as e:
+        print(f"samesource: stopped by {signal.Signals(e.signum).name}; nothing was written",
+              file=sys.stderr)
+        return 128 + e.signum
     return 1
 
 
