@@ -4,7 +4,9 @@ The job runs as one task on the cluster. Its bootstrap replicates fan out across
 cluster's workers through :class:`DaskExecutor`, measurement.executor's Executor protocol
 over Dask. The task gets the file's bytes (cluster workers need not share the service's
 disk or database) and sends its progress back as cluster events on one topic, which the
-service writes to the database. The workers need samesource installed (same version).
+service writes to the database. When that write finds the analysis deleted or re-queued, the
+service sets a cluster event that the task checks at its next progress call, and the task
+stops. The workers need samesource installed (same version).
 """
 
 from __future__ import annotations
@@ -25,6 +27,11 @@ from .store import Claim, Store
 log = logging.getLogger("samesource.dask")
 
 PROGRESS_TOPIC = "samesource-progress"
+
+
+def stop_event_name(analysis_id: str, attempt: int) -> str:
+    """The cluster-wide flag that tells one run of an analysis to stop (deleted or re-queued)."""
+    return f"samesource-stop-{analysis_id}-{attempt}"
 
 
 class DaskExecutor:
@@ -82,16 +89,20 @@ def _gather(client: Any, fn: Callable[[Any], Any], items: list[Any]) -> list[Any
 
 def _run_on_cluster(spec: JobSpec) -> Outcome:
     """The job as a Dask task."""
-    from distributed import get_worker
+    from distributed import Event, get_worker
 
-    from .jobs import run_job
+    from .jobs import Cancelled, run_job
 
     worker = get_worker()
+    stop = Event(stop_event_name(spec.analysis_id, spec.attempt))
 
     def progress(stage: str, done: int, total: int) -> None:
         worker.log_event(PROGRESS_TOPIC, {"analysis_id": spec.analysis_id, "attempt": spec.attempt,
                                           "runner": spec.runner, "stage": stage, "done": done,
                                           "total": total})
+        # Cancelling a Dask future does not stop a task that is running: the task asks.
+        if stop.is_set():
+            raise Cancelled(spec.analysis_id)
 
     return run_job(spec, progress, executor=DaskExecutor())
 
@@ -135,11 +146,31 @@ class DaskBackend:
                 latest[m["analysis_id"]] = m
             for m in latest.values():
                 try:
-                    self._store.set_progress(Claim(m["analysis_id"], int(m["attempt"]),
-                                                   m["runner"]), m["stage"], m["done"], m["total"])
+                    ours = self._store.set_progress(Claim(m["analysis_id"], int(m["attempt"]),
+                                                          m["runner"]), m["stage"], m["done"], m["total"])
+                    if not ours:  # deleted, or re-queued to another run: stop it on the cluster
+                        self._stop(m["analysis_id"], int(m["attempt"]))
                 except Exception as e:
                     log.warning("progress of analysis %s not recorded: %s", m.get("analysis_id"),
                                 safe_trace(e))
+
+    def _stop(self, analysis_id: str, attempt: int) -> None:
+        from distributed import Event
+
+        with self._lock:
+            if analysis_id not in self._futures:  # a late event of a job that has ended
+                return
+        log.info("analysis %s (attempt %d) no longer belongs to this run: stopping it on the "
+                 "cluster", analysis_id, attempt)
+        Event(stop_event_name(analysis_id, attempt), client=self._client).set()
+
+    def _forget_stop(self, analysis_id: str, attempt: int) -> None:
+        from distributed import Event
+
+        try:  # the scheduler keeps an event until it is cleared
+            Event(stop_event_name(analysis_id, attempt), client=self._client).clear()
+        except Exception as e:
+            log.warning("clearing the stop flag of analysis %s: %s", analysis_id, safe_trace(e))
 
     def submit(self, spec: JobSpec) -> Future:
         from .runner import WorkerLost
@@ -166,6 +197,8 @@ class DaskBackend:
             finally:
                 with self._lock:
                     self._futures.pop(spec.analysis_id, None)
+                if not self._closed.is_set():
+                    self._forget_stop(spec.analysis_id, spec.attempt)
 
         threading.Thread(target=_wait, daemon=True, name=f"samesource-dask-{spec.analysis_id}").start()
         return outer

@@ -111,3 +111,49 @@ def test_an_analysis_on_the_cluster_equals_the_local_pool(cluster, client, tmp_p
     prefixes = set(cluster.scheduler.task_prefixes)
     assert "run_chunk" in prefixes, prefixes
     assert "samesource" in prefixes, prefixes
+
+
+def test_deleting_the_dataset_stops_its_analysis_on_the_cluster(cluster, client, tmp_path):
+    # A bootstrap on the cluster; the dataset is deleted as it starts. The service must stop
+    # the task on the worker (cancelling a Dask future alone leaves it running): the job's
+    # progress events must end inside the bootstrap, never reaching its end or the report.
+    data, design = small_survey()
+    address = cluster.scheduler_address.replace("tcp://", "dask://")
+    app = create_app({"data_dir": tmp_path / "dask", "executor": address})
+    svc = app.extensions[EXTENSION]
+    try:
+        c = app.test_client()
+        h = {"Authorization": f"Bearer {svc.store.create_token('dask-stop')}"}
+        ds = c.post("/v1/datasets", headers=h, data={"file": (io.BytesIO(data), "survey.csv")},
+                    content_type="multipart/form-data").get_json()
+        aid = c.post("/v1/analyses", headers=h, json={
+            "dataset_id": ds["id"], "design": design,
+            "options": {"bootstrap": 4000, "seed": 1}}).get_json()["id"]
+
+        def in_bootstrap():
+            a = c.get(f"/v1/analyses/{aid}", headers=h).get_json()
+            assert a["status"] in ("queued", "running"), a
+            return a["progress"]["stage"] == "bootstrap"
+
+        wait_for(in_bootstrap, timeout=240, every=0.1, what="the bootstrap to start")
+        assert c.delete(f"/v1/datasets/{ds['id']}", headers=h).status_code == 204
+
+        def idle():
+            busy = client.run(lambda dask_worker: len(dask_worker.state.executing))
+            return sum(busy.values()) == 0
+
+        # the job stops at its next progress call: the bootstrap comes in four waves per worker
+        wait_for(idle, timeout=240, every=0.5, what="the cluster's workers to stop the job")
+        mine = [m for _ts, m in client.get_events("samesource-progress") if m["analysis_id"] == aid]
+        boot = [m for m in mine if m["stage"] == "bootstrap"]
+        assert boot and max(m["done"] for m in boot) < boot[0]["total"], boot
+        assert not any(m["stage"] == "report" for m in mine)
+
+        def flags_cleared():
+            return not client.run_on_scheduler(
+                lambda dask_scheduler: [k for k in dask_scheduler.extensions["events"]._events
+                                        if str(k).startswith("samesource-stop-")])
+
+        wait_for(flags_cleared, timeout=30, every=0.5, what="the stop flag to be cleared")
+    finally:
+        svc.close()
