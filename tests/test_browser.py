@@ -1,5 +1,5 @@
-"""The service's page at / driven in headless Chromium, from token to report, against the real
-server (`samesource serve` as a subprocess).
+"""The service's page at / driven in headless Chromium, from token to report and back to the
+earlier work after a reload, against the real server (`samesource serve` as a subprocess).
 
 Needs Debian's chromium (/usr/bin/chromium) and the Python `playwright` package (its bundled
 driver only; no downloaded browsers). Without either the test is skipped. `make test-browser`
@@ -14,12 +14,21 @@ import time
 from pathlib import Path
 
 import pytest
-from conftest import ROOT, new_token
+import requests
+from conftest import ROOT, new_token, wait_for
 
 CHROMIUM = Path(os.environ.get("SAMESOURCE_TEST_CHROMIUM", "/usr/bin/chromium"))
 ARTIFACTS = ROOT / "tests" / "artifacts"
 SURVEY = ROOT / "sample_surveys" / "staff_survey.csv"
 DESIGN = json.loads((ROOT / "sample_surveys" / "staff_survey_design.json").read_text())
+# rows per page of the earlier-work lists (PAGE in service/static/app.js)
+PAGE = 10
+# five respondents: an analysis of this fails at once, with a message that shows no answers
+TINY = b"".join(SURVEY.read_bytes().splitlines(keepends=True)[:6])
+TINY_DESIGN = {"constructs": {"support": {"items": ["sup1", "sup2", "sup3", "sup4"]},
+                              "engagement": {"items": ["eng1", "eng2", "eng3", "eng4"]}},
+               "paths": [{"outcome": "engagement", "predictors": ["support"]}],
+               "missing_codes": [-99]}
 CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run"]
 
@@ -218,8 +227,125 @@ def test_page_from_token_to_report(server_factory, tmp_path):
         expect(rep.locator("#paths h2")).to_have_text("Key paths under every correction")
         expect(rep.locator("#paths h3")).to_have_count(3)
         shot(rep, "08-report")
+        report_title = rep.title()
+        rep.close()
+
+        earlier_work(page, context, server.base, token, report_title)
 
         browser.close()
 
     assert problems == []
     print(f"browser run: {time.monotonic() - t0:.1f} s")
+
+
+def earlier_work(page, context, base: str, token: str, report_title: str) -> None:
+    """After the run: the earlier-work lists, then the tab reloaded and the token entered again;
+    the dataset and its analysis are found, opened, reused and deleted from the lists."""
+    earlier = page.locator("#history-step")
+    datasets = earlier.get_by_role("table", name="Survey files")
+    analyses = earlier.get_by_role("table", name="Analyses")
+    ds_rows, an_rows = datasets.locator("tbody tr"), analyses.locator("tbody tr")
+    # refreshed after the upload and after the run, without asking
+    expect(earlier.get_by_role("heading", level=2)).to_have_text("Your earlier work")
+    expect(ds_rows).to_have_count(1)
+    expect(an_rows).to_have_count(1)
+    expect(an_rows.first).to_contain_text("succeeded")
+
+    # more uploads than one page holds, and an analysis that fails, through the API
+    headers = {"Authorization": f"Bearer {token}"}
+    pulse = []
+    for i in range(PAGE):
+        r = requests.post(f"{base}/v1/datasets", headers=headers,
+                          files={"file": (f"pulse_{i + 1:02}.csv", TINY)}, timeout=30)
+        assert r.status_code == 201, r.text
+        pulse.append(r.json()["id"])
+    r = requests.post(f"{base}/v1/analyses", headers=headers, timeout=30,
+                      json={"dataset_id": pulse[-1], "design": TINY_DESIGN})
+    assert r.status_code == 202, r.text
+    failed_id = r.json()["id"]
+    wait_for(lambda: requests.get(f"{base}/v1/analyses/{failed_id}", headers=headers,
+                                  timeout=30).json()["status"] == "failed",
+             timeout=60, what="the five-respondent analysis to fail")
+
+    # -- the tab reloaded: the tab's sessionStorage still has the token and the lists come
+    # back by themselves; then the token forgotten and entered again, as in a new tab
+    page.reload()
+    expect(page.locator("#design-step")).to_be_hidden()
+    expect(ds_rows).to_have_count(PAGE)
+    page.locator("#token-forget").click()
+    expect(earlier).to_be_hidden()
+    page.locator("#token").fill(token)
+    page.locator("#token").press("Enter")
+    expect(earlier).to_be_visible()
+    expect(page.locator("#status")).to_have_text(
+        f"Token kept for this tab. Earlier work: {PAGE + 1} survey file(s), 2 analysis(es).")
+
+    # newest first; the sample file is on the second page, its analysis already named
+    expect(ds_rows).to_have_count(PAGE)
+    expect(ds_rows.first.locator("th")).to_have_text(f"pulse_{PAGE:02}.csv")
+    expect(page.locator("#datasets-count")).to_have_text(f"Showing {PAGE} of {PAGE + 1}.")
+    expect(an_rows).to_have_count(2)
+    failed, done = an_rows.nth(0), an_rows.nth(1)
+    expect(failed.locator("th")).to_have_text(f"pulse_{PAGE:02}.csv")
+    expect(failed.locator("td").nth(1)).to_have_text("failed")
+    expect(done.locator("th")).to_have_text("staff_survey.csv")
+    expect(done.locator("td").nth(1)).to_have_text("succeeded")
+    expect(done.locator("td").nth(2)).to_have_text("done")
+    expect(page.get_by_role("button", name="Load more analyses")).to_be_hidden()
+    staff = datasets.locator("tbody tr", has_text="staff_survey.csv")
+    expect(staff).to_have_count(0)
+    more = page.get_by_role("button", name="Load more survey files")
+    more.click()
+    expect(staff).to_have_count(1)
+    expect(more).to_be_hidden()
+    expect(staff.locator("td").nth(0)).to_have_text("2500")
+    expect(staff.locator("td").nth(1)).to_have_text("25")
+    assert "R00001" not in page.content()
+    shot(page, "09-earlier-work")
+    page.set_viewport_size({"width": 390, "height": 844})
+    shot(page, "10-earlier-work-phone")
+    page.set_viewport_size({"width": 1280, "height": 900})
+
+    # -- a failed analysis's error goes to the error box
+    failed.get_by_role("button", name="Show the error").click()
+    expect(page.locator("#alert")).to_contain_text("only 4 rows are left")
+    expect(page.locator("#alert")).to_contain_text(f"pulse_{PAGE:02}.csv")
+
+    # -- the succeeded analysis's report opens in a new tab, and its JSON downloads
+    with context.expect_page() as new_tab:
+        done.get_by_role("button", name="Open the report").click()
+    rep = new_tab.value
+    rep.wait_for_load_state()
+    assert rep.url.startswith("blob:") and rep.title() == report_title
+    expect(page.locator("#alert")).to_be_hidden()
+    rep.close()
+    with page.expect_download() as dl:
+        done.get_by_role("button", name="Download report.json").click()
+    assert json.loads(Path(dl.value.path()).read_text())["data"]["file"] == "staff_survey.csv"
+    assert dl.value.suggested_filename.startswith("report-an_")
+
+    # -- reusing the file, from the keyboard, fills the design form with its draft
+    staff.get_by_role("button", name="Use again").focus()
+    page.keyboard.press("Enter")
+    expect(page.locator("#design-step")).to_be_visible()
+    assert page.evaluate("document.activeElement.id") == "design-h"
+    expect(page.locator("#dataset-summary")).to_contain_text("staff_survey.csv")
+    names = page.locator("#constructs input[data-role='name']")
+    assert [names.nth(i).input_value() for i in range(names.count())] == list(RENAME)
+    assert page.locator("#id-column").input_value() == "respondent"
+    expect(page.locator("#status")).to_contain_text("Using staff_survey.csv again")
+
+    # -- deleting asks first, naming the file; declined, nothing changes
+    dialogs: list[str] = []
+    page.once("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
+    staff.get_by_role("button", name="Delete").click()
+    expect(page.locator("#status")).to_have_text("Nothing deleted.")
+    expect(staff).to_have_count(1)
+    page.once("dialog", lambda d: (dialogs.append(d.message), d.accept()))
+    staff.get_by_role("button", name="Delete").click()
+    expect(staff).to_have_count(0)
+    expect(an_rows).to_have_count(1)  # its analysis went with it
+    expect(page.locator("#design-step")).to_be_hidden()  # the form was for that file
+    expect(page.locator("#status")).to_have_text("Deleted “staff_survey.csv” and its analyses.")
+    assert len(dialogs) == 2 and all("“staff_survey.csv”" in m for m in dialogs)
+    shot(page, "11-deleted")

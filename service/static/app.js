@@ -1,4 +1,5 @@
-/* The service's page: token, upload, design form, run, progress, report. No libraries. */
+/* The service's page: token, earlier work, upload, design form, run, progress, report.
+   No libraries. */
 "use strict";
 
 (function () {
@@ -31,6 +32,7 @@
     document.querySelectorAll("[aria-invalid='true']").forEach((el) => el.removeAttribute("aria-invalid"));
   }
 
+  // focusEl false: the field names no control of the form as it is now (an earlier analysis)
   function showError(message, field, focusEl) {
     const a = $("alert");
     a.textContent = "";
@@ -44,7 +46,7 @@
       a.appendChild(f);
     }
     a.hidden = false;
-    const target = focusEl || elementForField(field);
+    const target = focusEl === false ? null : (focusEl || elementForField(field));
     if (target) {
       target.setAttribute("aria-invalid", "true");
       const go = el("button", { type: "button", class: "secondary go" }, "Go to this field");
@@ -109,6 +111,7 @@
     $("token-state").textContent = has ? "A token is in use for this tab." : "No token yet.";
     $("token-state").className = "state" + (has ? " ok" : "");
     $("token-forget").hidden = !has;
+    $("history-step").hidden = !has;
   }
 
   $("token-form").addEventListener("submit", (ev) => {
@@ -123,10 +126,12 @@
     $("token").value = "";
     showTokenState();
     say("Token kept for this tab.");
+    refreshHistory("Token kept for this tab.");
   });
 
   $("token-forget").addEventListener("click", () => {
     sessionStorage.removeItem(TOKEN_KEY);
+    forgetHistory();
     showTokenState();
     say("Token forgotten.");
     $("token").focus();
@@ -151,6 +156,7 @@
       showDataset(ds);
       say("Uploaded " + ds.name + ": " + ds.rows + " rows, " + ds.columns.length +
           " columns. The draft design is in step 3.");
+      refreshHistory();
     } catch (e) {
       reportFailure(e, "file");
       if (e.field === "file" || !e.field) $("file").setAttribute("aria-invalid", "true");
@@ -479,7 +485,7 @@
     if (!field) return null;
     const f = field.replace(/^design\./, "");
     if (f === "file") return $("file");
-    if (f === "token") return $("token");
+    if (f === "token" || f === "Authorization") return $("token");
     let m = f.match(/^constructs\.([^.[]+)/);
     if (m) {
       const key = keyForName(m[1]);
@@ -564,6 +570,7 @@
     state.reportUrl = state.jsonUrl = null;
     $("progress-box").hidden = true;
     $("report-links").hidden = true;
+    $("run-btn").disabled = false;  // a run given up (new file, file deleted) may be re-run
   }
 
   $("run-form").addEventListener("submit", async (ev) => {
@@ -638,38 +645,49 @@
     if (a.status === "succeeded") {
       $("run-btn").disabled = false;
       await prepareReport(id);
+      refreshHistory();
       return;
     }
     if (a.status === "failed") {
       $("run-btn").disabled = false;
       const err = a.error || {};
-      let where = "";
-      if (err.row) where += " (row " + err.row + (err.column ? ", column " + err.column : "") + ")";
       say("The analysis failed.");
-      showError("The analysis failed: " + (err.message || "no reason given") + where, err.field || null);
+      showError(failureText("The analysis", err), err.field || null);
+      refreshHistory();
       return;
     }
     if ($("an-stage").textContent !== before) say("Analysis " + a.status + ": " + $("an-stage").textContent + ".");
     state.pollTimer = window.setTimeout(poll, 1000);
   }
 
+  function failureText(subject, err) {
+    let where = "";
+    if (err.row) where += " (row " + err.row + (err.column ? ", column " + err.column : "") + ")";
+    return subject + " failed: " + (err.message || "no reason given") + where;
+  }
+
+  // a report fetched with the token and handed to the browser as a blob: address, so the
+  // token never goes into a link
+  async function reportBlob(id, kind) {
+    const resp = await api("GET", "/v1/analyses/" + encodeURIComponent(id) + "/report." + kind,
+                           undefined, { raw: true });
+    const type = kind === "html" ? "text/html" : "application/json";
+    return URL.createObjectURL(new Blob([await resp.blob()], { type }));
+  }
+
   async function prepareReport(id) {
     try {
-      const json = await api("GET", "/v1/analyses/" + id + "/report.json", undefined, { raw: true });
-      state.jsonUrl = URL.createObjectURL(new Blob([await json.blob()], { type: "application/json" }));
+      state.jsonUrl = await reportBlob(id, "json");
       $("download-json").href = state.jsonUrl;
       $("download-json").download = "report-" + id + ".json";
       let html = null;
       try {
-        html = await api("GET", "/v1/analyses/" + id + "/report.html", undefined, { raw: true });
+        html = state.reportUrl = await reportBlob(id, "html");
       } catch (e) {
         if (!(e instanceof ApiFailure && e.code === "not_available")) throw e;
       }
       $("open-report").hidden = !html;
-      if (html) {
-        state.reportUrl = URL.createObjectURL(new Blob([await html.blob()], { type: "text/html" }));
-        $("open-report").href = state.reportUrl;
-      }
+      if (html) $("open-report").href = html;
       $("report-links").hidden = false;
       say("The analysis succeeded. " + (html ? "The report is ready to open." : "Download report.json to read it."));
       (html ? $("open-report") : $("download-json")).focus();
@@ -678,5 +696,285 @@
     }
   }
 
+  // ---- earlier work: this tenant's uploads and analyses ----------------------------------
+
+  const PAGE = 10;
+  const hist = {
+    gen: 0,               // bumped by every full refresh and by forgetting the token: late answers are dropped
+    datasets: [], datasetTotal: 0,
+    analyses: [], analysisTotal: 0,
+    names: new Map(),     // dataset id -> file name, also for datasets not on a loaded page
+    blobs: new Map(),     // "ID.html" / "ID.json" -> blob: address of a finished report
+  };
+
+  function whenText(iso) {
+    const d = new Date(iso || "");
+    return Number.isNaN(d.getTime()) ? "-"
+      : d.toLocaleString(undefined, { dateStyle: "medium", timeStyle: "short" });
+  }
+
+  function when(iso) {
+    return iso ? el("time", { datetime: iso, text: whenText(iso) }) : el("span", { text: "-" });
+  }
+
+  // every row has the same buttons: the hidden part makes each one's name say which row it is
+  function rowButton(text, context, cls) {
+    return el("button", { type: "button", class: cls },
+              text, el("span", { class: "visually-hidden", text: " " + context }));
+  }
+
+  function datasetContext(ds) { return ds.name + ", uploaded " + whenText(ds.created_at); }
+
+  function analysisContext(a) {
+    return "of " + (hist.names.get(a.dataset_id) || a.dataset_id) + ", requested " + whenText(a.created_at);
+  }
+
+  function forgetHistory() {
+    hist.gen++;
+    hist.datasets = []; hist.analyses = [];
+    hist.datasetTotal = hist.analysisTotal = 0;
+    hist.names.clear();
+    hist.blobs.forEach((u) => URL.revokeObjectURL(u));
+    hist.blobs.clear();
+    renderHistory();
+  }
+
+  function pageQuery(offset) { return "?limit=" + PAGE + "&offset=" + offset; }
+
+  // analyses name their dataset by id; look up the files that are not on a loaded page
+  async function learnNames(analyses) {
+    hist.datasets.forEach((ds) => hist.names.set(ds.id, ds.name));
+    const missing = [...new Set(analyses.map((a) => a.dataset_id))].filter((id) => !hist.names.has(id));
+    await Promise.all(missing.map(async (id) => {
+      try {
+        hist.names.set(id, (await api("GET", "/v1/datasets/" + encodeURIComponent(id))).name);
+      } catch (e) {
+        if (!(e instanceof ApiFailure && e.status === 404)) throw e;  // deleted meanwhile: show the id
+      }
+    }));
+  }
+
+  // reload the first page of both lists; announce says so through the live region
+  async function refreshHistory(announce) {
+    if (!token()) return;
+    const gen = ++hist.gen;
+    $("history-refresh").disabled = true;
+    try {
+      const [d, a] = await Promise.all([api("GET", "/v1/datasets" + pageQuery(0)),
+                                        api("GET", "/v1/analyses" + pageQuery(0))]);
+      if (gen !== hist.gen) return;
+      hist.datasets = d.datasets; hist.datasetTotal = d.total;
+      hist.analyses = a.analyses; hist.analysisTotal = a.total;
+      await learnNames(hist.analyses);
+      if (gen !== hist.gen) return;
+      renderHistory();
+      if (announce) {
+        say(announce + " Earlier work: " + d.total + " survey file(s), " + a.total + " analysis(es).");
+      }
+    } catch (e) {
+      if (gen === hist.gen) reportFailure(e);
+    } finally {
+      if (gen === hist.gen) $("history-refresh").disabled = false;
+    }
+  }
+
+  $("history-refresh").addEventListener("click", () => { clearError(); refreshHistory("Refreshed."); });
+
+  async function loadMore(kind) {
+    const gen = hist.gen;
+    const list = kind === "datasets" ? hist.datasets : hist.analyses;
+    const btn = $(kind + "-more");
+    btn.disabled = true;
+    clearError();
+    try {
+      const page = await api("GET", "/v1/" + kind + pageQuery(list.length));
+      if (gen !== hist.gen) return;
+      const seen = new Set(list.map((x) => x.id));
+      // newer uploads shift the pages: an item already shown may come again
+      const fresh = page[kind].filter((x) => !seen.has(x.id));
+      list.push(...fresh);
+      if (kind === "datasets") hist.datasetTotal = page.total; else hist.analysisTotal = page.total;
+      await learnNames(hist.analyses);
+      if (gen !== hist.gen) return;
+      renderHistory();
+      say(fresh.length + " more " + (kind === "datasets" ? "survey file(s)" : "analysis(es)") + " shown.");
+      if (btn.hidden) {  // the button went away under the focus: go to the first new row
+        const rows = $(kind + "-body").rows;
+        const first = rows[rows.length - fresh.length];
+        const target = first && first.querySelector("button");
+        (target || $(kind + "-h")).focus();
+      }
+    } catch (e) {
+      reportFailure(e);
+    } finally {
+      btn.disabled = false;
+    }
+  }
+
+  $("datasets-more").addEventListener("click", () => loadMore("datasets"));
+  $("analyses-more").addEventListener("click", () => loadMore("analyses"));
+
+  function renderList(kind, items, total, row) {
+    const body = $(kind + "-body");
+    body.textContent = "";
+    items.forEach((x) => body.appendChild(row(x)));
+    $(kind + "-wrap").hidden = !items.length;
+    $(kind + "-empty").hidden = !!items.length;
+    $(kind + "-count").textContent = items.length ? "Showing " + items.length + " of " + total + "." : "";
+    $(kind + "-more").hidden = items.length >= total;
+  }
+
+  function renderHistory() {
+    renderList("datasets", hist.datasets, hist.datasetTotal, datasetRow);
+    renderList("analyses", hist.analyses, hist.analysisTotal, analysisRow);
+  }
+
+  function datasetRow(ds) {
+    const use = rowButton("Use again", datasetContext(ds), "secondary");
+    const del = rowButton("Delete", datasetContext(ds), "remove");
+    use.addEventListener("click", () => reuseDataset(ds.id, use));
+    del.addEventListener("click", () => deleteDataset(ds, del));
+    return el("tr", { role: "row", "data-id": ds.id },
+      el("th", { role: "rowheader", scope: "row", text: ds.name }),
+      el("td", { role: "cell", class: "number", "data-label": "Rows", text: String(ds.rows) }),
+      el("td", { role: "cell", class: "number", "data-label": "Columns",
+                 text: String((ds.columns || []).length) }),
+      el("td", { role: "cell", "data-label": "Uploaded" }, when(ds.created_at)),
+      el("td", { role: "cell" }, el("div", { class: "actions" }, use, del)));
+  }
+
+  function stageText(a) {
+    const p = a.progress || {};
+    const stage = STAGES[p.stage] || p.stage;
+    if (a.status === "succeeded") return STAGES.done;
+    if (a.status === "queued") return STAGES.waiting;
+    if (a.status === "failed") return stage ? "stopped at " + stage : "-";
+    return (stage || STAGES.starting) + (p.total ? ", " + (p.done || 0) + " of " + p.total : "");
+  }
+
+  function analysisRow(a) {
+    const actions = el("div", { class: "actions" });
+    const ctx = analysisContext(a);
+    if (a.status === "succeeded") {
+      const open = rowButton("Open the report", ctx, "primary");
+      const save = rowButton("Download report.json", ctx, "secondary");
+      open.addEventListener("click", () => openListedReport(a, open));
+      save.addEventListener("click", () => downloadListedReport(a, save));
+      actions.append(open, save);
+    } else if (a.status === "failed") {
+      const why = rowButton("Show the error", ctx, "secondary");
+      why.addEventListener("click", () => {
+        clearError();
+        // the field is the failed design's, which the form may no longer hold
+        showError(failureText("The analysis " + ctx, a.error || {}), (a.error || {}).field || null, false);
+      });
+      actions.append(why);
+    }
+    return el("tr", { role: "row", "data-id": a.id },
+      el("th", { role: "rowheader", scope: "row", text: hist.names.get(a.dataset_id) || a.dataset_id }),
+      el("td", { role: "cell", "data-label": "Requested" }, when(a.created_at)),
+      el("td", { role: "cell", "data-label": "Status" },
+         el("span", { class: "status-" + a.status, text: a.status })),
+      el("td", { role: "cell", "data-label": "Stage", text: stageText(a) }),
+      el("td", { role: "cell" }, actions));
+  }
+
+  async function listedReport(id, kind) {
+    const key = id + "." + kind;
+    if (!hist.blobs.has(key)) hist.blobs.set(key, await reportBlob(id, kind));
+    return hist.blobs.get(key);
+  }
+
+  async function openListedReport(a, btn) {
+    clearError();
+    btn.disabled = true;
+    try {
+      const url = await listedReport(a.id, "html");
+      const w = window.open(url, "_blank");
+      if (w) {
+        w.opener = null;
+        say("The report opened in a new tab.");
+        return;
+      }
+      // the browser blocked the new tab (the fetch outlasted the click): a link works next time
+      const link = el("a", { class: "button primary", href: url, target: "_blank", rel: "noopener" },
+                      "Open the report", el("span", { class: "visually-hidden", text: " " + analysisContext(a) }));
+      btn.replaceWith(link);
+      link.focus();
+      say("The browser kept the report from opening: press Open the report again.");
+    } catch (e) {
+      reportFailure(e);
+    } finally {
+      btn.disabled = false;
+    }
+  }
+
+  async function downloadListedReport(a, btn) {
+    clearError();
+    btn.disabled = true;
+    try {
+      const link = el("a", { href: await listedReport(a.id, "json"), download: "report-" + a.id + ".json",
+                             hidden: true });
+      document.body.appendChild(link);
+      link.click();
+      link.remove();
+      say("Downloading report-" + a.id + ".json.");
+    } catch (e) {
+      reportFailure(e);
+    } finally {
+      btn.disabled = false;
+    }
+  }
+
+  async function reuseDataset(id, btn) {
+    clearError();
+    btn.disabled = true;
+    try {
+      const ds = await api("GET", "/v1/datasets/" + encodeURIComponent(id));
+      showDataset(ds);
+      say("Using " + ds.name + " again: " + ds.rows + " rows, " + ds.columns.length +
+          " columns. Its draft design is in step 3.");
+      $("design-h").focus();
+    } catch (e) {
+      reportFailure(e);
+    } finally {
+      btn.disabled = false;
+    }
+  }
+
+  async function deleteDataset(ds, btn) {
+    clearError();
+    if (!window.confirm("Delete “" + ds.name + "” (uploaded " + whenText(ds.created_at) +
+                        ") and every analysis of it? This cannot be undone.")) {
+      say("Nothing deleted.");
+      return;
+    }
+    btn.disabled = true;
+    try {
+      await api("DELETE", "/v1/datasets/" + encodeURIComponent(ds.id));
+    } catch (e) {
+      reportFailure(e);
+      btn.disabled = false;
+      return;
+    }
+    hist.analyses.filter((a) => a.dataset_id === ds.id).forEach((a) => {
+      ["html", "json"].forEach((k) => {
+        const u = hist.blobs.get(a.id + "." + k);
+        if (u) { URL.revokeObjectURL(u); hist.blobs.delete(a.id + "." + k); }
+      });
+    });
+    hist.names.delete(ds.id);
+    if (state.dataset && state.dataset.id === ds.id) {
+      // the form belonged to the deleted file: nothing left to run it on
+      state.dataset = null;
+      resetProgress();
+      $("dataset").hidden = $("design-step").hidden = $("run-step").hidden = true;
+    }
+    $("datasets-h").focus();
+    say("Deleted “" + ds.name + "” and its analyses.");
+    await refreshHistory();
+  }
+
   showTokenState();
+  refreshHistory();
 })();
