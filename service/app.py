@@ -8,7 +8,7 @@ from typing import Any
 
 from flask import Flask, request
 
-from . import api, errors, pages
+from . import api, errors, pages, uploads
 from .config import MULTIPART_SLACK, ServiceConfig, load_config
 from .context import EXTENSION, Services
 from .db import Database
@@ -49,7 +49,19 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
     pages.register(app)
     api.register(app)
 
-    if cfg.run_jobs:
+    if cfg.run_jobs:  # the serving process, not a one-off command such as `token create`
+        _sweep_uploads(cfg, store)
         svc.runner = JobRunner(store, cfg, make_backend(cfg, store))
         svc.runner.start()
     return app
+
+
+def _sweep_uploads(cfg: ServiceConfig, store: Store) -> None:
+    try:
+        gone = uploads.sweep(cfg.data_dir, store.stored_paths())
+    except OSError as e:
+        log.warning("sweeping orphaned upload files failed: %s", e.__class__.__name__)
+        return
+    if gone:
+        log.warning("removed %d upload file(s) no dataset owns (left by an interrupted upload "
+                    "or delete)", len(gone))

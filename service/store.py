@@ -119,6 +119,11 @@ class Store:
             out["analysis_ids"] = list(ids)
             return out
 
+    def stored_paths(self) -> set[str]:
+        """Every dataset's stored file (relative to the data folder), across tenants."""
+        with self.db.reading() as s:
+            return set(s.scalars(select(Dataset.stored_path)).all())
+
     def count_datasets(self) -> int:
         with self.db.reading() as s:
             return int(s.scalar(select(func.count()).select_from(Dataset)) or 0)

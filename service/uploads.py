@@ -3,7 +3,7 @@
 Layout: DATA_DIR/uploads/<tenant id>/<dataset id> holds the original bytes, unchanged; the
 database keeps the name, the SHA-256 and the summary. A file is first written under a
 temporary name, synced, then renamed into place, so a crash never leaves half a file under
-a dataset's name.
+a dataset's name; :func:`sweep` (run when the service starts) removes what a crash left.
 """
 
 from __future__ import annotations
@@ -11,6 +11,7 @@ from __future__ import annotations
 import hashlib
 import os
 import tempfile
+import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import BinaryIO
@@ -84,6 +85,35 @@ def keep(spooled: Spooled, data_dir: Path, relpath: str) -> Path:
 
 def remove(data_dir: Path, relpath: str) -> None:
     (data_dir / relpath).unlink(missing_ok=True)
+
+
+SWEEP_AGE_SECONDS = 3600.0  # far longer than any upload takes to reach its database row
+
+
+def sweep(data_dir: Path, known: set[str], *, older_than: float = SWEEP_AGE_SECONDS,
+          now: float | None = None) -> list[str]:
+    """Remove upload files that no dataset owns: spool files of uploads that never finished
+    and stored files whose database row is gone (a crash between the steps, or a failed
+    delete). Only files older than ``older_than`` seconds go, so an upload in progress in
+    another process is never touched. Returns the removed paths, relative to ``data_dir``."""
+    root = data_dir / "uploads"
+    if not root.is_dir():
+        return []
+    now = time.time() if now is None else now
+    removed = []
+    for path in sorted(root.rglob("*")):
+        if not path.is_file() or path.is_symlink():
+            continue
+        rel = path.relative_to(data_dir).as_posix()
+        owned = rel in known and not path.name.startswith(".incoming-")
+        try:
+            if owned or now - path.stat().st_mtime < older_than:
+                continue
+            path.unlink()
+        except OSError:  # gone meanwhile, or not ours to remove: the next sweep tries again
+            continue
+        removed.append(rel)
+    return removed
 
 
 def _fsync_dir(folder: Path) -> None:

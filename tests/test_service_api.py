@@ -479,3 +479,40 @@ def test_a_job_whose_worker_process_dies_runs_again(tmp_path, svc_survey):
         wait_for(group_gone, timeout=30, what="the dead worker's process group to end")
     finally:
         svc.close()
+
+
+def test_upload_files_no_dataset_owns_are_swept_when_the_service_starts(tmp_path, caplog):
+    # What a crash can leave: a spool file of an unfinished upload, a stored file whose row
+    # never got written. Both go at the next start once old enough; owned files and young
+    # files (an upload in progress elsewhere) stay.
+    import os
+    import time
+
+    data_dir = tmp_path / "svc"
+    first = create_app({"data_dir": data_dir, "run_jobs": False})
+    c = first.test_client()
+    h = token_for(first, "sweep")
+    ds = upload(c, h, small_survey()[0]).get_json()
+    owned = next((data_dir / "uploads").rglob(ds["id"]))
+    tenant_dir = owned.parent
+    first.extensions[EXTENSION].close()
+
+    old = time.time() - 2 * 3600
+    spool = data_dir / "uploads" / ".incoming-abc123"
+    orphan = tenant_dir / "ds_0123456789abcdef"
+    young = tenant_dir / "ds_fedcba9876543210"
+    for path in (spool, orphan, young):
+        path.write_bytes(b"respondent,sup1\n1,3\n")
+    for path in (spool, orphan, owned):
+        os.utime(path, (old, old))
+
+    with caplog.at_level(logging.WARNING, logger="samesource.service"):
+        second = create_app({"data_dir": data_dir, "job_workers": 1})
+    try:
+        assert not spool.exists() and not orphan.exists()
+        assert owned.exists() and young.exists()
+        assert "removed 2 upload file(s)" in caplog.text
+        c2 = second.test_client()
+        assert c2.get(f"/v1/datasets/{ds['id']}", headers=h).status_code == 200
+    finally:
+        second.extensions[EXTENSION].close()
