@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint install clean bench postgres-up test-postgres test-browser
+.PHONY: demo test lint install clean bench study postgres-up test-postgres test-browser
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
@@ -45,6 +45,10 @@ lint: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/run_all.py
+
+# Bias and interval coverage with known truth (about 7 minutes on two cores) -> docs/coverage.md
+study: $(STAMP)
+	$(BIN)/python tests/benchmarks/coverage_study.py
 
 clean:
 	rm -rf $(VENV) samesource-report

@@ -43,7 +43,8 @@ NOTES = {
     "latent": "Full structural model on the items: corrects unreliability, not shared method.",
     "marker_adjusted": "Scale correlations adjusted by the marker's r_M (Lindell & Whitney 2001), then "
                        "disattenuated with alpha: assumes method variance is equal for every scale and that "
-                       "the marker shares it.",
+                       "the marker shares it. Its analytic interval treats r_M and alpha as known, so it "
+                       "is too narrow; the bootstrap interval is not.",
     "method_factor_adjusted": "Structural model with a latent method factor on every item, orthogonal to the "
                               "traits: corrects unreliability and the shared method the factor captures.",
     "measured_method_adjusted": "Structural model with the measured method construct loading on every "
