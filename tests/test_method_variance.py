@@ -113,3 +113,27 @@ def test_harman_flags_a_single_dominant_factor():
     assert mv["harman"]["flag"] and mv["harman"]["factors_eigen_gt_1"] == 1
     assert mv["verdict"]["level"] == "substantial"
     assert np.isfinite(mv["harman"]["first_factor_share"])
+
+
+def test_a_check_model_on_a_flat_ridge_stops_early_and_says_why():
+    # Simulated survey (as tests/benchmarks/workload.py: 2,000 x 60, 5-point items): the
+    # free-loading marker method factor drifts along a flat ridge here (a marker loading runs
+    # off while the fit improves by hundredths of a chi-square unit). The engine must stop on
+    # the ridge (fitting.STALL_CHI2) instead of spending its 1000 iterations, say so, and the
+    # report must not use that model.
+    per = 5
+    cons = [ConstructSpec(f"c{i}", per, 0.7, 0.35, prefix=f"c{i}_") for i in range(10)]
+    cons.append(ConstructSpec("mark", per, 0.7, 0.35, role="marker", prefix="mk"))
+    cons.append(ConstructSpec("meth", per, 0.65, role="method", prefix="mt"))
+    spec = SurveySpec(constructs=cons, paths={"c1": {"c0": 0.3}, "c2": {"c1": 0.4}}, n=2000,
+                      scale_points=5, seed=0)
+    df, _ = simulate_survey(spec)
+    rep = analyze(df.to_csv(index=False).encode(), design_for(spec), name="sim.csv").report
+    mf = rep["method_variance"]["method_factor"]
+    free = mf["models"]["free"]
+    assert free["status"] == "not_converged"
+    ridge = [w for w in free["warnings"] if "flat ridge" in w]
+    assert ridge, free["warnings"]
+    iterations = int(ridge[0].split(" after ")[1].split(" iterations")[0])
+    assert iterations < 1000
+    assert mf["usable_as_correction"] and mf["fit"]["chi2"] == mf["models"]["equal"]["fit"]["chi2"]
