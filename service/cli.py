@@ -37,6 +37,8 @@ def _parser() -> argparse.ArgumentParser:
     a.add_argument("--bootstrap", type=int, default=0, metavar="N",
                    help="bootstrap replicates for percentile and BCa intervals (default 0: analytic intervals)")
     a.add_argument("--seed", type=int, default=0, help="seed for the bootstrap and random starting values")
+    a.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL",
+                   help="confidence level of every interval, 0.5 to 0.999 (default 0.95)")
     a.add_argument("--min-group-size", type=int, default=5, metavar="N",
                    help="no group's numbers are shown for groups smaller than this (default 5)")
     a.add_argument("--quiet", action="store_true", help="print only where the report is")
@@ -116,6 +118,7 @@ def _analyze(args: argparse.Namespace) -> int:
         "missing": args.missing, "drop_flagged": args.drop_flagged,
         "fit_time_limit": args.fit_time_limit, "seed": args.seed, "sheet": args.sheet,
         "bootstrap": args.bootstrap, "min_group_size": args.min_group_size,
+        "confidence": args.confidence,
     })
     result = analyze(args.data, design, opts)
     out = Path(args.out)

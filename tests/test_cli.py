@@ -87,9 +87,28 @@ def test_bootstrap_option_reaches_the_report(tmp_path):
     assert latent["bootstrap"]["n_boot"] == 20 and latent["ci_method"] in ("bca", "percentile")
 
 
+def test_confidence_option_sets_every_wald_interval(tmp_path):
+    from scipy.stats import norm
+
+    out = tmp_path / "out"
+    res = run("analyze", small_csv(tmp_path), "--design", small_design(tmp_path), "--out", out,
+              "--confidence", "0.9", "--quiet")
+    assert res.returncode == 0, res.stderr
+    report = json.loads((out / "report.json").read_text(encoding="utf-8"))
+    assert report["options"]["confidence"] == 0.9
+    wald = [e for e in report["paths"][0]["estimates"].values()
+            if e is not None and e.get("se") and e.get("ci_method") == "wald"]
+    assert len(wald) >= 4
+    for e in wald:
+        # a 90% Wald interval is estimate +/- z(.95) SE (z from scipy.stats.norm)
+        assert (e["ci"][1] - e["ci"][0]) / (2 * e["se"]) == pytest.approx(norm.ppf(0.95), rel=1e-6)
+
+
 def test_bad_option_exits_2(tmp_path):
     res = run("analyze", small_csv(tmp_path), "--design", small_design(tmp_path), "--bootstrap", "-4")
     assert_one_clean_error(res, "options.bootstrap")
+    res = run("analyze", small_csv(tmp_path), "--design", small_design(tmp_path), "--confidence", "95")
+    assert_one_clean_error(res, "options.confidence")
 
 
 @pytest.mark.parametrize("make, words", [
