@@ -108,6 +108,28 @@ def _uninterrupted(note: list[int]) -> Iterator[None]:
             signal.signal(sig, handler)
 
 
+class _TerminalProgress:
+    """One line on stderr, rewritten in place as the stages pass; only on a terminal, so logs
+    and pipes get nothing but the summary."""
+
+    def __init__(self, stream=None) -> None:
+        self.stream = stream or sys.stderr
+        self.width = 0
+
+    def __call__(self, stage: str, done: int, total: int) -> None:
+        text = f"  {stage.replace('_', ' ')} {done}/{total}" if stage == "bootstrap" else \
+            f"  {stage.replace('_', ' ')} (step {done + 1} of {total})"
+        self.stream.write("\r" + text.ljust(self.width))
+        self.stream.flush()
+        self.width = len(text)
+
+    def clear(self) -> None:
+        if self.width:
+            self.stream.write("\r" + " " * self.width + "\r")
+            self.stream.flush()
+            self.width = 0
+
+
 def _analyze(args: argparse.Namespace) -> int:
     from measurement.design import load_design
     from measurement.options import AnalysisOptions
@@ -120,7 +142,12 @@ def _analyze(args: argparse.Namespace) -> int:
         "bootstrap": args.bootstrap, "min_group_size": args.min_group_size,
         "confidence": args.confidence,
     })
-    result = analyze(args.data, design, opts)
+    shown = _TerminalProgress() if not args.quiet and sys.stderr.isatty() else None
+    try:
+        result = analyze(args.data, design, opts, progress=shown)
+    finally:
+        if shown is not None:
+            shown.clear()
     out = Path(args.out)
     held: list[int] = []
     try:

@@ -165,3 +165,44 @@ def test_draft_design_prints_a_valid_design(tmp_path):
     d = parse_design(draft)
     assert {"sup", "eng"} <= set(d.constructs)
     assert draft["id_column"] == "respondent" and draft["group_column"] == "team"
+
+
+def test_progress_line_on_a_terminal_only(tmp_path):
+    # On a terminal stderr shows one line rewritten in place as the stages pass, then cleared;
+    # piped (as every other test here runs) stderr stays empty on success.
+    import os
+    import pty
+
+    args = ["analyze", small_csv(tmp_path), "--design", small_design(tmp_path),
+            "--out", tmp_path / "out", "--bootstrap", "20"]
+    import threading
+
+    leader, follower = pty.openpty()
+    chunks: list[bytes] = []
+
+    def drain() -> None:  # read as it comes, so a full terminal buffer never blocks the run
+        while True:
+            try:
+                block = os.read(leader, 65536)
+            except OSError:  # the terminal's other end is closed: all read
+                return
+            if not block:
+                return
+            chunks.append(block)
+
+    reader = threading.Thread(target=drain, daemon=True)
+    reader.start()
+    try:
+        proc = subprocess.run([sys.executable, "-m", "service.cli", *map(str, args)],
+                              stdout=subprocess.PIPE, stderr=follower, cwd=ROOT, timeout=600)
+    finally:
+        os.close(follower)
+        reader.join(timeout=10)
+        os.close(leader)
+    assert proc.returncode == 0
+    shown = b"".join(chunks).decode()
+    assert "\r  load (step 1 of 8)" in shown and "\r  bootstrap " in shown
+    assert shown.endswith("\r")  # the line is cleared before the summary
+
+    piped = run(*args)
+    assert piped.returncode == 0 and piped.stderr == ""
