@@ -35,24 +35,33 @@ def adjust_correlation(r_u: float, r_m: float, n: int) -> AdjustedCorrelation:
     return AdjustedCorrelation(r=float(r_u), r_adjusted=float(r_a), t=float(t), p=p)
 
 
+def r_m_source(marker_correlations: list[float], rule: str = "smallest") -> int:
+    """Which of the marker correlations a rule takes r_M from (its position in the list)."""
+    if rule not in RULES:
+        raise ValueError(f"unknown rule {rule!r}")
+    if rule == "second_smallest" and len(marker_correlations) < 2:
+        raise ValueError("the second-smallest rule needs at least two marker correlations")
+    order = sorted(range(len(marker_correlations)), key=lambda i: float(marker_correlations[i]))
+    return order[1] if rule == "second_smallest" else order[0]
+
+
 def choose_r_m(marker_correlations: list[float], n: int, rule: str = "smallest",
-               confidence: float = 0.95) -> float:
+               confidence: float = 0.95, *, index: int | None = None) -> float:
     """r_M by one of the rules: the smallest marker correlation (Lindell & Whitney 2001),
     the second smallest (their more conservative suggestion), or the upper bound of the
     confidence interval of the smallest (Malhotra, Kim & Patil 2006), by Fisher's z.
 
     A negative smallest correlation carries no evidence of shared method; r_M is floored at 0.
+    ``index`` takes r_M from that correlation instead of choosing again (see
+    :func:`r_m_source`): bootstrap replicates keep the full sample's choice, because the
+    bootstrap of a smallest value is biased and unstable (Bickel & Freedman 1981, from
+    memory) while that of one correlation is not.
     """
     if rule not in RULES:
         raise ValueError(f"unknown rule {rule!r}")
-    rs = sorted(float(r) for r in marker_correlations)
-    if rule == "second_smallest":
-        if len(rs) < 2:
-            raise ValueError("the second-smallest rule needs at least two marker correlations")
-        r = rs[1]
-    else:
-        r = rs[0]
-    r = max(r, 0.0)
+    if index is None:
+        index = r_m_source(marker_correlations, rule)
+    r = max(float(marker_correlations[index]), 0.0)
     if rule == "upper_95":
         z = math.atanh(r) + stats.norm.ppf(0.5 + confidence / 2) / math.sqrt(n - 3)
         r = math.tanh(z)

@@ -17,7 +17,7 @@ from scipy import stats
 
 from .design import Design, Path
 from .fitting import FitResult, Moments, RawData, fit_model, refit
-from .marker import choose_r_m
+from .marker import choose_r_m, r_m_source
 from .models import (
     latent_path_model,
     measured_method_model,
@@ -115,6 +115,7 @@ class PathEstimator:
         self.r_m_rule = r_m_rule
         self.time_limit, self.n_starts, self.seed = time_limit, n_starts, seed
         self.warm: dict[str, FitResult] = {}
+        self.r_m_index: int | None = None  # which marker correlation gave the full sample's r_M
         self.notes: list[str] = []
         self.keys: list[Key] = [(m, p.outcome, x) for m in METHODS for p in self.paths for x in p.predictors]
 
@@ -248,8 +249,10 @@ class PathEstimator:
         # marker-adjusted: r_M from the marker's correlations with every substantive scale
         if self.design.marker is not None:
             m = sidx[self.design.marker.name]
-            r_m = choose_r_m([scorr[m, sidx[c]] for c in self.score_names if c != self.design.marker.name],
-                             n_s, self.r_m_rule)
+            rs = [scorr[m, sidx[c]] for c in self.score_names if c != self.design.marker.name]
+            if compute_se or self.r_m_index is None:  # the full sample chooses the source scale
+                self.r_m_index = r_m_source(rs, self.r_m_rule)
+            r_m = choose_r_m(rs, n_s, self.r_m_rule, index=self.r_m_index)
             extra["r_m"] = r_m
             adj = marker_adjust(scorr, r_m)
             spearman("marker_adjusted", adj, alpha,

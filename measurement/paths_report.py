@@ -90,6 +90,8 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
                         "n_boot": boot.n_boot, "n_failed": int(boot.n_failed[k]), "seed": boot.seed,
                         "se": float(boot.se[k]), "ci_percentile": [float(pct[0]), float(pct[1])],
                         "ci_bca": [float(bca[0]), float(bca[1])] if np.all(np.isfinite(bca)) else None,
+                        "bias_correction": float(boot.bias_correction[k]),
+                        "acceleration": float(boot.acceleration[k]),
                     }
                     if e.estimate is not None and np.all(np.isfinite(pct)):
                         entry["se"] = float(boot.se[k])

@@ -11,7 +11,7 @@ from statsmodels.multivariate.pca import PCA
 
 from measurement.collinearity import full_collinearity_vif
 from measurement.harman import harman_efa
-from measurement.marker import adjust_correlation, choose_r_m, marker_adjustment
+from measurement.marker import adjust_correlation, choose_r_m, marker_adjustment, r_m_source
 
 
 def test_lindell_whitney_adjustment_by_hand():
@@ -32,6 +32,20 @@ def test_r_m_rules():
     # z = atanh(.08) = 0.080171; + 1.959964 / sqrt(297) = 0.113729 -> tanh(0.193900) = 0.19150
     assert choose_r_m(rs, 300, "upper_95") == pytest.approx(0.19150, abs=1e-4)
     assert choose_r_m([-0.05, 0.2], 300, "smallest") == 0.0  # negative: no shared-method evidence
+
+
+def test_r_m_from_a_fixed_source():
+    # Bootstrap replicates take r_M from the scale the full sample chose, with the same rule's
+    # floor and Fisher-z bound (hand values as in test_r_m_rules).
+    rs = [0.21, 0.08, 0.12]
+    assert r_m_source(rs, "smallest") == 1 and r_m_source(rs, "second_smallest") == 2
+    assert r_m_source(rs, "upper_95") == 1
+    later = [0.05, 0.09, 0.11]  # another sample, where a different scale is smallest
+    assert choose_r_m(later, 300, "smallest", index=1) == pytest.approx(0.09)
+    assert choose_r_m([0.05, -0.02, 0.11], 300, "smallest", index=1) == 0.0
+    assert choose_r_m([0.3, 0.08, 0.4], 300, "upper_95", index=1) == pytest.approx(0.19150, abs=1e-4)
+    with pytest.raises(ValueError, match="second-smallest"):
+        r_m_source([0.1], "second_smallest")
 
 
 def test_marker_adjustment_pairs_and_sensitivity():
