@@ -68,16 +68,22 @@ def differences(a, b, path: str = "") -> list[str]:
     return [] if a == b else [f"{path}: {a!r} != {b!r}"]
 
 
+def upload_and_start(app, data: bytes, design: dict, options: dict):
+    """Client, auth headers, dataset id and analysis id of a fresh upload and analysis."""
+    c = app.test_client()
+    h = {"Authorization": f"Bearer {app.extensions[EXTENSION].store.create_token('dask')}"}
+    ds = c.post("/v1/datasets", headers=h, data={"file": (io.BytesIO(data), "survey.csv")},
+                content_type="multipart/form-data").get_json()
+    aid = c.post("/v1/analyses", headers=h, json={"dataset_id": ds["id"], "design": design,
+                                                    "options": options}).get_json()["id"]
+    return c, h, ds["id"], aid
+
+
 def run_through_service(config: dict, data: bytes, design: dict, options: dict) -> tuple[dict, set]:
     app = create_app(config)
     svc = app.extensions[EXTENSION]
     try:
-        c = app.test_client()
-        h = {"Authorization": f"Bearer {svc.store.create_token('dask')}"}
-        ds = c.post("/v1/datasets", headers=h, data={"file": (io.BytesIO(data), "survey.csv")},
-                    content_type="multipart/form-data").get_json()
-        aid = c.post("/v1/analyses", headers=h, json={"dataset_id": ds["id"], "design": design,
-                                                        "options": options}).get_json()["id"]
+        c, h, _, aid = upload_and_start(app, data, design, options)
         stages: set = set()
 
         def done():
@@ -122,13 +128,7 @@ def test_deleting_the_dataset_stops_its_analysis_on_the_cluster(cluster, client,
     app = create_app({"data_dir": tmp_path / "dask", "executor": address})
     svc = app.extensions[EXTENSION]
     try:
-        c = app.test_client()
-        h = {"Authorization": f"Bearer {svc.store.create_token('dask-stop')}"}
-        ds = c.post("/v1/datasets", headers=h, data={"file": (io.BytesIO(data), "survey.csv")},
-                    content_type="multipart/form-data").get_json()
-        aid = c.post("/v1/analyses", headers=h, json={
-            "dataset_id": ds["id"], "design": design,
-            "options": {"bootstrap": 4000, "seed": 1}}).get_json()["id"]
+        c, h, dataset_id, aid = upload_and_start(app, data, design, {"bootstrap": 4000, "seed": 1})
 
         def in_bootstrap():
             a = c.get(f"/v1/analyses/{aid}", headers=h).get_json()
@@ -136,7 +136,7 @@ def test_deleting_the_dataset_stops_its_analysis_on_the_cluster(cluster, client,
             return a["progress"]["stage"] == "bootstrap"
 
         wait_for(in_bootstrap, timeout=240, every=0.1, what="the bootstrap to start")
-        assert c.delete(f"/v1/datasets/{ds['id']}", headers=h).status_code == 204
+        assert c.delete(f"/v1/datasets/{dataset_id}", headers=h).status_code == 204
 
         def idle():
             busy = client.run(lambda dask_worker: len(dask_worker.state.executing))
