@@ -19,7 +19,7 @@ demo: $(STAMP)
 	$(BIN)/python -m service.demo_client
 
 test: $(STAMP)
-	$(BIN)/python -m pytest -q
+	$(BIN)/python -m pytest -q --durations=10
 
 # The page at / driven in headless Chromium (Debian's /usr/bin/chromium: apt-get install -y
 # chromium); skipped with a reason when Chromium or the playwright package is missing.
