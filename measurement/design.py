@@ -9,6 +9,7 @@ object and returns a :class:`Design`; every error names the offending field and 
 from __future__ import annotations
 
 import json
+import math
 import pathlib
 import re
 from collections.abc import Iterable, Mapping
@@ -109,16 +110,43 @@ _TOP_FIELDS = {"constructs", "paths", "response_scale", "missing_codes", "id_col
 
 
 def _is_number(v: Any) -> bool:
-    return isinstance(v, int | float) and not isinstance(v, bool) and v == v and abs(v) != float("inf")
+    """A finite JSON number that fits a float (an integer like 1e400 written out does not)."""
+    if isinstance(v, bool) or not isinstance(v, int | float):
+        return False
+    try:
+        return math.isfinite(float(v))
+    except OverflowError:
+        return False
+
+
+def _shown(value: Any) -> str:
+    """A value as JSON for a message, cut to 60 characters."""
+    try:
+        text = json.dumps(value)
+    except (TypeError, ValueError, RecursionError):  # not JSON, or an integer too long to print
+        text = f"a {type(value).__name__}"
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _is_text(v: Any) -> bool:
+    """A non-empty string that is valid Unicode: a lone UTF-16 surrogate ("\\ud800" in JSON)
+    is no character, and could be neither stored nor written into the report."""
+    if not isinstance(v, str) or not v.strip():
+        return False
+    try:
+        v.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
 
 
 def _str_list(value: Any, where: str) -> tuple[str, ...]:
     if not isinstance(value, list):
-        raise DesignError(f"must be a list of column names, got {json.dumps(value)[:60]}", field=where)
+        raise DesignError(f"must be a list of column names, got {_shown(value)}", field=where)
     out = []
     for i, v in enumerate(value):
-        if not isinstance(v, str) or not v.strip():
-            raise DesignError(f"must be a column name (a non-empty string), got {json.dumps(v)[:60]}",
+        if not _is_text(v):
+            raise DesignError(f"must be a column name (a non-empty string of characters), got {_shown(v)}",
                               field=f"{where}[{i}]")
         out.append(v)
     dup = {v for v in out if out.count(v) > 1}
@@ -143,8 +171,9 @@ def parse_design(obj: Any) -> Design:
     owner: dict[str, str] = {}
     for name, spec in cons.items():
         where = f"constructs.{name}"
-        if not isinstance(name, str) or not name.strip() or "|" in name:
-            raise DesignError("a construct name must be a non-empty string without '|'", field=where)
+        if not _is_text(name) or "|" in name:
+            raise DesignError(f"a construct name must be a non-empty string of characters without '|', "
+                              f"got {_shown(name)}", field=where)
         if not isinstance(spec, Mapping):
             raise DesignError("must be an object with 'items'", field=where)
         bad = sorted(set(spec) - {"items", "reverse", "role"})
@@ -162,7 +191,7 @@ def parse_design(obj: Any) -> Design:
                 raise DesignError(f"reverse item '{r}' is not one of construct '{name}' items", field=f"{where}.reverse")
         role = spec.get("role", "substantive")
         if role not in ROLES:
-            raise DesignError(f"unknown role {json.dumps(role)}; use one of {', '.join(ROLES)}", field=f"{where}.role")
+            raise DesignError(f"unknown role {_shown(role)}; use one of {', '.join(ROLES)}", field=f"{where}.role")
         for it in items:
             if it in owner:
                 raise DesignError(f"item '{it}' is in construct '{owner[it]}' and in '{name}'; an item belongs to one "
@@ -191,20 +220,22 @@ def parse_design(obj: Any) -> Design:
         if not isinstance(rs, Mapping) or set(rs) - {"min", "max"} or not {"min", "max"} <= set(rs):
             raise DesignError("must be an object {\"min\": number, \"max\": number}", field="response_scale")
         if not (_is_number(rs["min"]) and _is_number(rs["max"])):
-            raise DesignError(f"min and max must be numbers, got {json.dumps(rs)[:60]}", field="response_scale")
+            raise DesignError(f"min and max must be finite numbers, got {_shown(rs)}",
+                              field="response_scale")
         if rs["min"] >= rs["max"]:
             raise DesignError(f"min ({rs['min']}) must be below max ({rs['max']})", field="response_scale")
         scale_min, scale_max = float(rs["min"]), float(rs["max"])
 
     codes = obj.get("missing_codes", [])
     if not isinstance(codes, list) or not all(_is_number(c) for c in codes):
-        raise DesignError(f"must be a list of numbers, got {json.dumps(codes)[:60]}", field="missing_codes")
+        raise DesignError(f"must be a list of finite numbers, got {_shown(codes)}",
+                          field="missing_codes")
 
     cols = {}
     for key in ("id_column", "group_column"):
         v = obj.get(key)
-        if v is not None and (not isinstance(v, str) or not v.strip()):
-            raise DesignError(f"must be a column name, got {json.dumps(v)[:60]}", field=key)
+        if v is not None and not _is_text(v):
+            raise DesignError(f"must be a column name, got {_shown(v)}", field=key)
         if v is not None and v in owner:
             raise DesignError(f"'{v}' is also an item of construct '{owner[v]}'", field=key)
         cols[key] = v
@@ -226,14 +257,17 @@ def _parse_paths(value: Any, constructs: Mapping[str, Construct]) -> tuple[Path,
         if not isinstance(p, Mapping) or set(p) - {"outcome", "predictors"} or "outcome" not in p or "predictors" not in p:
             raise DesignError("must be an object {\"outcome\": NAME, \"predictors\": [NAME, ...]}", field=where)
         out = p["outcome"]
+        if not isinstance(out, str):
+            raise DesignError(f"must be a construct name (a string), got {_shown(out)}",
+                              field=f"{where}.outcome")
         if out not in constructs:
-            raise DesignError(f"unknown construct {json.dumps(out)} as outcome", field=f"{where}.outcome")
+            raise DesignError(f"unknown construct {_shown(out)} as outcome", field=f"{where}.outcome")
         preds = _str_list(p["predictors"], f"{where}.predictors")
         if not preds:
             raise DesignError("needs at least one predictor", field=f"{where}.predictors")
         for j, pr in enumerate(preds):
             if pr not in constructs:
-                raise DesignError(f"unknown construct {json.dumps(pr)} as predictor", field=f"{where}.predictors[{j}]")
+                raise DesignError(f"unknown construct {_shown(pr)} as predictor", field=f"{where}.predictors[{j}]")
             if pr == out:
                 raise DesignError(f"construct '{out}' cannot predict itself", field=f"{where}.predictors[{j}]")
         for name, w in [(out, f"{where}.outcome")] + [(pr, f"{where}.predictors") for pr in preds]:
@@ -303,6 +337,12 @@ def load_design(path: str | pathlib.Path) -> Design:
         obj = json.loads(text)
     except json.JSONDecodeError as e:
         raise DesignError(f"not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}", file=str(path)) from None
+    except RecursionError:
+        raise DesignError("not usable JSON: its lists or objects are nested too deeply; a design "
+                          "needs only a few levels (see docs/design-file.md)", file=str(path)) from None
+    except ValueError:  # Python's limit on the digits of an integer
+        raise DesignError("not usable JSON: it holds a number with too many digits to read; "
+                          "write numbers such as the response scale with a few digits", file=str(path)) from None
     try:
         return parse_design(obj)
     except DesignError as e:

@@ -38,7 +38,9 @@ class InputError(ValueError):
             parts.append(f"row {self.row}")
         if self.column is not None:
             parts.append(f"column '{self.column}'")
-        if self.field is not None:
+        if self.field is not None and self.code == "bad_options":  # options.NAME, not the design
+            parts.append(f"field '{self.field}'")
+        elif self.field is not None:
             parts.append(f"design field '{self.field}'")
         return ", ".join(parts)
 

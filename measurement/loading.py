@@ -15,7 +15,10 @@ import hashlib
 import io
 import json
 import os
+import pickle
 import re
+import subprocess
+import sys
 import warnings
 import zipfile
 from collections.abc import Sequence
@@ -60,7 +63,9 @@ _MAGIC: tuple[tuple[bytes, str, str], ...] = (
     (b"\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\xc2\xea\x81\x60\xb3\x14\x11\xcf",
      "a SAS data set", "Export it as .csv or .sav."),
 )
-_BOMS = ((codecs.BOM_UTF8, "utf-8-sig"), (codecs.BOM_UTF16_LE, "utf-16"),
+# UTF-32's marks first: little-endian UTF-32's starts with little-endian UTF-16's.
+_BOMS = ((codecs.BOM_UTF8, "utf-8-sig"), (codecs.BOM_UTF32_LE, "utf-32"),
+         (codecs.BOM_UTF32_BE, "utf-32"), (codecs.BOM_UTF16_LE, "utf-16"),
          (codecs.BOM_UTF16_BE, "utf-16"))
 _CONTROL = re.compile(rb"[\x00-\x08\x0e-\x1a\x1c-\x1f\x7f]")
 _FORMULA_TAG = re.compile(rb"<(?:\w+:)?f[\s>/]")
@@ -218,7 +223,9 @@ def _text_head(head: bytes) -> str:
     head = head[: 16 * _SNIFF_CHARS]
     for bom, enc in _BOMS:
         if head.startswith(bom):
-            return head[len(bom):].decode(enc if enc != "utf-8-sig" else "utf-8", "replace")
+            if enc != "utf-8-sig":  # the codec takes the byte order from the mark itself
+                return head.decode(enc, "replace")
+            return head[len(bom):].decode("utf-8", "replace")
     return head.decode("utf-8", "replace")
 
 
@@ -273,11 +280,13 @@ def _decode(data: bytes, source: str) -> tuple[str, str]:
         if data.startswith(bom):
             body = data[len(bom):]
             try:
-                return body.decode("utf-8" if enc == "utf-8-sig" else enc), enc
+                # UTF-16 or -32 with the mark: the codec reads the byte order (little- or
+                # big-endian) from it; without the mark it would assume this machine's order.
+                return (body.decode("utf-8") if enc == "utf-8-sig" else data.decode(enc)), enc
             except UnicodeDecodeError as e:
-                label = "UTF-8" if enc == "utf-8-sig" else "UTF-16"
+                label = "UTF-8" if enc == "utf-8-sig" else enc.upper()
                 where = f"line {_line_of(body, e.start)}" if enc == "utf-8-sig" else \
-                    f"byte {e.start + len(bom)}"
+                    f"byte {e.start}"
                 raise DataError(
                     f"the file says it is {label} text (it starts with a byte-order mark) but "
                     f"its {where} holds bytes that are not {label}; save it again as UTF-8 text",
@@ -323,6 +332,8 @@ def _parse_records(text: str, delim: str, source: str, strict: bool
         except csv.Error as e:
             if "end of data" in str(e):
                 raise _unclosed_quote(row + 1, first_line, source) from None
+            if "field larger than field limit" in str(e):
+                raise _too_long_value(text, row + 1, first_line, source) from None
             raise
         row += 1
         last_start = first_line
@@ -330,6 +341,18 @@ def _parse_records(text: str, delim: str, source: str, strict: bool
             multiline.append(row)
         records.append((row, fields))
     return records, multiline, last_start
+
+
+def _too_long_value(text: str, row: int, line: int, source: str) -> DataError:
+    """The csv module refuses a value over its field limit (131072 characters); no survey
+    answer is that long, so it is mostly a quote never closed, swallowing the rest."""
+    tail = "".join(io.StringIO(text, newline="").readlines()[line - 1:])
+    if tail.count('"') % 2 == 1:
+        return _unclosed_quote(row, line, source)
+    return DataError(
+        f"row {row} (line {line}) holds a value over {csv.field_size_limit()} characters long, "
+        "far longer than any survey answer; check that row, or remove long free-text columns "
+        "the analysis does not use", file=source, row=row)
 
 
 def _unclosed_quote(row: int, line: int, source: str) -> DataError:
@@ -387,7 +410,7 @@ def _read_text(data: bytes, source: str, fmt: str) -> dict:
     decimal = _apply_decimal(body, delim)
     frame = _frame(columns, body)
     _note_blank_rows(blank_inside, notes)
-    if encoding not in ("utf-8", "utf-8-sig", "utf-16") and not text.isascii():
+    if encoding not in ("utf-8", "utf-8-sig", "utf-16", "utf-32") and not text.isascii():
         notes.append({"code": "encoding_guessed", "message": (
             f"the file is not UTF-8; it was read as {_ENCODING_NAMES.get(encoding, encoding)} "
             "text. If accented letters look wrong, save the file as UTF-8")})
@@ -395,7 +418,8 @@ def _read_text(data: bytes, source: str, fmt: str) -> dict:
                 decimal=decimal, warnings=notes)
 
 
-_ENCODING_NAMES = {"cp1252": "Windows-1252", "latin-1": "Latin-1", "utf-16": "UTF-16"}
+_ENCODING_NAMES = {"cp1252": "Windows-1252", "latin-1": "Latin-1", "utf-16": "UTF-16",
+                   "utf-32": "UTF-32"}
 
 
 def _split_header(records: list, blank) -> tuple[int | None, list, list, list[int]]:
@@ -655,14 +679,48 @@ def _fill_formulas(rows: list[list[Any]], formulas: list[list[Any]]) -> list[tup
 # --------------------------------------------------------------------------- sav
 
 
-def _read_sav(data: bytes, source: str) -> dict:
-    import pyreadstat
+# The SPSS reader runs in a child process: readstat, the C library under pyreadstat, can crash
+# the whole process on a damaged file (a variable index or string width out of range read
+# out of bounds), and an upload is read inside the service's own process. The child also
+# caps the time a read can take.
+_SAV_CHILD = """
+import io, pickle, sys
+import pyreadstat
+try:
+    result = ("ok", pyreadstat.read_sav(io.BytesIO(sys.stdin.buffer.read()), user_missing=True))
+except Exception as e:  # the reader's own error types vary by version
+    msg = str(e).strip().splitlines()[0] if str(e).strip() else ""
+    result = ("error", f"{e.__class__.__name__}: {msg[:120]}" if msg else e.__class__.__name__)
+sys.stdout.buffer.write(pickle.dumps(result, protocol=pickle.HIGHEST_PROTOCOL))
+"""
+SAV_READ_SECONDS = 300.0
 
+
+def _read_sav_isolated(data: bytes, source: str) -> tuple[pd.DataFrame, Any]:
+    advice = "check that it is complete, or save it again from SPSS as .sav or .csv"
     try:
-        df, meta = pyreadstat.read_sav(io.BytesIO(data), user_missing=True)
-    except Exception as e:  # the reader's own error types vary by version
-        raise DataError(f"cannot read the SPSS file ({_brief(e)}); check that it is complete, "
-                        "or save it again from SPSS as .sav or .csv", file=source) from None
+        # -P: the child does not put the working folder on its import path
+        proc = subprocess.run([sys.executable, "-P", "-c", _SAV_CHILD], input=data,
+                              capture_output=True, timeout=SAV_READ_SECONDS)
+    except subprocess.TimeoutExpired:
+        raise DataError(f"cannot read the SPSS file (reading it took over "
+                        f"{SAV_READ_SECONDS:g} s and was stopped); {advice}", file=source) from None
+    status, value = "crashed", None
+    if proc.returncode == 0:
+        try:
+            status, value = pickle.loads(proc.stdout)
+        except Exception:  # it died before writing its whole answer
+            pass
+    if status == "crashed":
+        raise DataError(f"cannot read the SPSS file (the reader stopped on damaged contents); "
+                        f"{advice}", file=source)
+    if status != "ok":
+        raise DataError(f"cannot read the SPSS file ({value}); {advice}", file=source)
+    return value
+
+
+def _read_sav(data: bytes, source: str) -> dict:
+    df, meta = _read_sav_isolated(data, source)
     columns = [str(c) for c in df.columns]
     if not columns:
         raise DataError("the SPSS file has no variables", file=source)

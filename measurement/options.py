@@ -29,7 +29,7 @@ class AnalysisOptions:
         if obj is None:
             return cls()
         if not isinstance(obj, Mapping):
-            raise InputError("options must be a JSON object", code="bad_options", field="options")
+            raise InputError("must be a JSON object {NAME: value}", code="bad_options", field="options")
         known = {f.name for f in fields(cls)}
         unknown = sorted(set(obj) - known)
         if unknown:

@@ -25,6 +25,12 @@ def new_id(prefix: str) -> str:
     return f"{prefix}_{secrets.token_hex(12)}"
 
 
+def _can_exist(object_id: str) -> bool:
+    """False for an id no object can have: PostgreSQL text holds no NUL character, and
+    asking for one there is a database error, not "not found"."""
+    return "\x00" not in object_id
+
+
 def iso(dt: datetime | None) -> str | None:
     """UTC timestamp text; SQLite hands back naive datetimes, which are UTC here."""
     if dt is None:
@@ -90,6 +96,8 @@ class Store:
             return _dataset(ds)
 
     def get_dataset(self, tenant_id: str, dataset_id: str) -> dict | None:
+        if not _can_exist(dataset_id):
+            return None
         with self.db.reading() as s:
             ds = s.scalar(select(Dataset).where(Dataset.id == dataset_id,
                                                 Dataset.tenant_id == tenant_id))
@@ -106,6 +114,8 @@ class Store:
 
     def delete_dataset(self, tenant_id: str, dataset_id: str) -> dict | None:
         """Delete the dataset and its analyses; returns what was deleted (None: not found)."""
+        if not _can_exist(dataset_id):
+            return None
         with self.db.writing() as s:
             ds = s.scalar(select(Dataset).where(Dataset.id == dataset_id,
                                                 Dataset.tenant_id == tenant_id))
@@ -140,6 +150,8 @@ class Store:
             return _analysis(a)
 
     def get_analysis(self, tenant_id: str, analysis_id: str, *, with_report: bool = False) -> dict | None:
+        if not _can_exist(analysis_id):
+            return None
         with self.db.reading() as s:
             a = s.scalar(select(Analysis).where(Analysis.id == analysis_id,
                                                 Analysis.tenant_id == tenant_id))
@@ -147,6 +159,8 @@ class Store:
 
     def list_analyses(self, tenant_id: str, *, dataset_id: str | None, limit: int,
                       offset: int) -> tuple[list[dict], int]:
+        if dataset_id is not None and not _can_exist(dataset_id):
+            return [], 0
         where = [Analysis.tenant_id == tenant_id]
         if dataset_id is not None:
             where.append(Analysis.dataset_id == dataset_id)

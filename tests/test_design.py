@@ -59,6 +59,18 @@ def mutate(fn):
     (lambda d: d["constructs"]["intent"].update(role="marker"), "constructs.weather.role", "more than one"),
     (lambda d: d.update(constructs={}), "constructs", "at least one"),
     (lambda d: d.update(group_column="sup1"), "group_column", "item"),
+    # found by tests/test_fuzz_inputs.py: each raised TypeError or OverflowError instead
+    (lambda d: d["paths"][0].update(outcome=["engagement"]), "paths[0].outcome", "construct name"),
+    (lambda d: d["paths"][0].update(outcome={"a": 1}), "paths[0].outcome", "construct name"),
+    (lambda d: d.update(response_scale={"min": 1, "max": 10**400}), "response_scale", "finite"),
+    (lambda d: d.update(missing_codes=[10**400]), "missing_codes", "finite"),
+    (lambda d: d.update(missing_codes=[10**5000]), "missing_codes", "finite"),
+    # a lone UTF-16 surrogate ("\ud800" in JSON) is no character: it broke storing the report
+    (lambda d: d["constructs"]["support"]["items"].__setitem__(1, "sup\ud8002"),
+     "constructs.support.items[1]", "column name"),
+    (lambda d: d["constructs"].update({"\udc00": {"items": ["a1", "a2"]}}), "constructs.\udc00",
+     "construct name"),
+    (lambda d: d.update(id_column="\ud800"), "id_column", "column name"),
 ])
 def test_invalid_designs_name_the_field(change, field, words):
     with pytest.raises(DesignError) as e:
@@ -96,6 +108,19 @@ def test_load_design_reports_json_errors(tmp_path):
     assert e.value.file == str(p)
     with pytest.raises(DesignError, match="not found"):
         load_design(tmp_path / "nope.json")
+
+
+def test_design_files_json_cannot_hold_is_refused_naming_the_file(tmp_path):
+    # Python's JSON reader raises RecursionError and ValueError (not JSONDecodeError) here.
+    p = tmp_path / "design.json"
+    p.write_text('{"constructs": ' + "[" * 100_000 + "]" * 100_000 + "}", encoding="utf-8")
+    with pytest.raises(DesignError, match="nested too deeply") as e:
+        load_design(p)
+    assert e.value.file == str(p)
+    p.write_text('{"response_scale": {"min": 1, "max": 1' + "0" * 5000 + "}}", encoding="utf-8")
+    with pytest.raises(DesignError, match="too many digits") as e:
+        load_design(p)
+    assert e.value.file == str(p)
 
 
 def test_draft_design_groups_stems_and_finds_reverse_items():

@@ -101,6 +101,16 @@ def test_utf16_with_bom_is_read(tmp_path):
     assert t.encoding == "utf-16" and cells(t) == [["r1", "3"]]
 
 
+@pytest.mark.parametrize("codec", ["utf-16-le", "utf-16-be", "utf-32-le", "utf-32-be"])
+def test_utf16_and_utf32_in_either_byte_order_are_read_by_their_mark(tmp_path, codec):
+    # Big-endian UTF-16 was decoded in this machine's (little-endian) order, and UTF-32 as
+    # UTF-16: garbled cells, with NUL characters in the column names.
+    data = "\ufeffid,sup1\nr1,3\n".encode(codec)
+    t = load_table(write(tmp_path, "u.csv", data))
+    assert t.encoding == codec[:6] and list(t.frame.columns) == ["id", "sup1"]
+    assert cells(t) == [["r1", "3"]]
+
+
 def test_crlf_line_ends_and_trailing_blank_lines(tmp_path):
     t = load_table(write(tmp_path, "w.csv", b"id,sup1\r\nr1,1\r\nr2,2\r\n\r\n\r\n"))
     assert cells(t) == [["r1", "1"], ["r2", "2"]]
@@ -321,6 +331,18 @@ def test_sav_from_bytes(tmp_path):
     assert t.source == "upload.sav" and t.format == "sav" and len(t.frame) == 5
 
 
+def test_sav_that_crashes_the_reader_is_refused(tmp_path):
+    # A string width out of step with its continuation records made readstat (the C library
+    # under pyreadstat) crash the whole process, the service with it; it reads in a child.
+    data = bytearray(make_sav(tmp_path / "s.sav").read_bytes())
+    assert data[176:184] == b"\x02\x00\x00\x00\x02\x00\x00\x00"  # variable 'id': a string of width 2
+    data[180] = 15
+    with pytest.raises(DataError) as e:
+        load_table(bytes(data), name="damaged.sav")
+    assert str(e.value).startswith("damaged.sav: cannot read the SPSS file")
+    assert len(load_table(tmp_path / "s.sav").frame) == 5  # and the next read still works
+
+
 def test_sav_that_cannot_be_read(tmp_path):
     p = write(tmp_path, "bad.sav", b"$FL2" + b"\x01\x02garbage" * 10)
     with pytest.raises(DataError) as e:
@@ -453,6 +475,19 @@ def test_unclosed_quote(tmp_path):
     with pytest.raises(DataError) as e:
         load_table(p)
     assert "never closed" in str(e.value) and e.value.row == 3 and str(p) in str(e.value)
+
+
+def test_value_over_the_csv_field_limit_names_its_row(tmp_path):
+    # The csv module's own error ("field larger than field limit") escaped unexplained.
+    p = write(tmp_path, "long.csv", "id,note\nr1,ok\nr2," + "x" * 140_000 + "\nr3,ok\n")
+    with pytest.raises(DataError) as e:
+        load_table(p)
+    assert e.value.row == 3 and "row 3" in str(e.value) and "characters long" in str(e.value)
+    # the same length inside a quote never closed is the missing quote
+    p = write(tmp_path, "open.csv", 'id,note\nr1,"oops\n' + "r,1\n" * 40_000)
+    with pytest.raises(DataError) as e:
+        load_table(p)
+    assert e.value.row == 2 and "never closed" in str(e.value)
 
 
 def test_loose_quote_is_read_and_noted(tmp_path):

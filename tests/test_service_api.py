@@ -386,13 +386,26 @@ def test_bad_analysis_requests_are_400_naming_the_field(app, client, svc_survey)
                  "design.paths[0].predictors[0]")
     assert_error(start(client, h, ds["id"], "not a design"), 400, "bad_design", "design")
 
-    assert_error(start(client, h, ds["id"], design, {"bootstrap": -1}), 400, "bad_options",
-                 "options.bootstrap")
+    err = assert_error(start(client, h, ds["id"], design, {"bootstrap": -1}), 400, "bad_options",
+                       "options.bootstrap")
+    assert err["message"].startswith("field 'options.bootstrap': ")  # not "design field ..."
     assert_error(start(client, h, ds["id"], design, {"bootstrapp": 10}), 400, "bad_options",
                  "options.bootstrapp")
     assert_error(start(client, h, ds["id"], design, {"missing": "guess"}), 400, "bad_options",
                  "options.missing")
     assert_error(start(client, h, ds["id"], design, ["bootstrap"]), 400, "bad_options", "options")
+    # found by tests/test_fuzz_inputs.py: each was a 500
+    err = assert_error(post_raw(b"[" * 100_000 + b"]" * 100_000), 400, "bad_json")
+    assert "nested too deeply" in err["message"]
+    err = assert_error(post_raw(b'{"dataset_id": "\\ud800"}'), 400, "bad_json", "dataset_id")
+    assert "surrogate" in err["message"]
+    body = json.dumps({"dataset_id": ds["id"], "design": design, "options": {"sheet": "x\ud800"}})
+    assert_error(post_raw(body.encode()), 400, "bad_json", "options.sheet")
+    err = assert_error(post_raw(b'{"dataset_id": 1' + b"0" * 5000 + b"}"), 400, "bad_json")
+    assert "too many digits" in err["message"] and "sys." not in err["message"]
+    big = json.loads(json.dumps(design))
+    big["response_scale"] = {"min": 1, "max": 10**400}
+    assert_error(start(client, h, ds["id"], big), 400, "bad_design", "design.response_scale")
     # nothing was queued by any of these
     assert client.get("/v1/analyses", headers=h).get_json()["total"] == 0
 

@@ -103,6 +103,19 @@ def test_every_read_is_scoped_to_its_tenant(store):
     assert total == 1 and rows[0]["id"] == ds["id"]
 
 
+def test_an_id_with_a_nul_character_is_simply_not_found(store):
+    # From a URL such as /v1/datasets/a%00b: PostgreSQL refused the query (a 500), as its
+    # text cannot hold NUL; found by tests/test_fuzz_inputs.py.
+    _, a = tenant(store, "nul")
+    ds = add_dataset(store, a)
+    store.add_analysis(a, ds["id"], {"constructs": {}}, {})
+    for bad in ("a\x00b", ds["id"] + "\x00"):
+        assert store.get_dataset(a, bad) is None and store.delete_dataset(a, bad) is None
+        assert store.get_analysis(a, bad) is None
+        assert store.list_analyses(a, dataset_id=bad, limit=10, offset=0) == ([], 0)
+    assert store.get_dataset(a, ds["id"]) is not None
+
+
 def test_deleting_a_dataset_deletes_its_analyses(store):
     _, a = tenant(store, "a")
     ds, other = add_dataset(store, a, "one.csv"), add_dataset(store, a, "two.csv")

@@ -13,6 +13,7 @@ import importlib
 import importlib.util
 import json
 import logging
+import re
 
 from flask import Blueprint, Response, jsonify, request
 
@@ -42,6 +43,30 @@ def _reject_constant(name: str) -> float:
     raise ValueError(f"{name} is not a JSON number")
 
 
+_SURROGATE_ESCAPE = re.compile(r"\\u[dD][89a-fA-F][0-9a-fA-F]{2}")
+
+
+def _lone_surrogate(body: object) -> str | None:
+    """Where the parsed body holds a string (or key) with half of a UTF-16 surrogate pair, a
+    \\uD800-\\uDFFF escape that is no character: it could be neither stored nor reported.
+    Iterative, as the body may nest as deeply as the JSON parser allows."""
+    stack: list[tuple[str, object]] = [("", body)]
+    while stack:
+        where, value = stack.pop()
+        if isinstance(value, str):
+            try:
+                value.encode("utf-8")
+            except UnicodeEncodeError:
+                return where.encode("utf-8", "backslashreplace").decode("utf-8")
+        elif isinstance(value, dict):
+            for k, v in value.items():
+                path = f"{where}.{k}" if where else k
+                stack += [(path, k), (path, v)]
+        elif isinstance(value, list):
+            stack += [(f"{where}[{i}]", v) for i, v in enumerate(value)]
+    return None
+
+
 def json_body() -> dict:
     """The request's JSON object, or a 415/400 saying what is wrong with it."""
     if request.mimetype != "application/json":
@@ -58,11 +83,23 @@ def json_body() -> dict:
     except json.JSONDecodeError as e:
         raise ApiError(400, "bad_json", f"the body is not valid JSON: {e.msg} at line {e.lineno}, "
                        f"column {e.colno}") from None
+    except RecursionError:
+        raise ApiError(400, "bad_json", "the body's lists or objects are nested too deeply to "
+                       "read; a request needs only a few levels") from None
     except ValueError as e:
+        if "digits" in str(e):  # Python's limit on the digits of an integer
+            raise ApiError(400, "bad_json", "the body holds a number with too many digits to "
+                           "read (over 4300); send numbers with a few digits") from None
         raise ApiError(400, "bad_json", f"the body is not valid JSON: {e}") from None
     if not isinstance(body, dict):
         raise ApiError(400, "bad_request", "the body must be a JSON object {\"dataset_id\", "
                        "\"design\", \"options\"}")
+    if _SURROGATE_ESCAPE.search(text):
+        where = _lone_surrogate(body)
+        if where is not None:
+            raise ApiError(400, "bad_json", f"the body's text at '{where}' holds a \\u escape "
+                           "for half of a UTF-16 surrogate pair (\\ud800 to \\udfff) without "
+                           "its other half, which is no character; send the text as UTF-8", where)
     return body
 
 
