@@ -38,6 +38,13 @@ class ApiError(Exception):
         return {"error": err}
 
 
+def echo(value: object, limit: int = 60) -> str:
+    """What a client sent, quoted for a message and cut to ``limit`` characters: enough to
+    recognise, never a 5000-character id sent back."""
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 4] + "...'"
+
+
 def input_error_status(e: InputError) -> int:
     if e.code == "too_large":
         return 413

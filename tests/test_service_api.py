@@ -529,3 +529,15 @@ def test_upload_files_no_dataset_owns_are_swept_when_the_service_starts(tmp_path
         assert c2.get(f"/v1/datasets/{ds['id']}", headers=h).status_code == 200
     finally:
         second.extensions[EXTENSION].close()
+
+
+def test_refusals_quote_what_was_sent_only_briefly(client, app):
+    # A 404 or a bad query names the value sent, cut short: never the whole of a huge id.
+    h = token_for(app, "echo")
+    long_id = "ds_" + "x" * 5000
+    for r in (client.get(f"/v1/datasets/{long_id}", headers=h),
+              client.get(f"/v1/analyses/an_{'y' * 5000}", headers=h),
+              client.get(f"/v1/datasets?limit={'9' * 5000}", headers=h)):
+        assert 400 <= r.status_code < 500
+        msg = r.get_json()["error"]["message"]
+        assert len(msg) < 200 and "..." in msg, msg

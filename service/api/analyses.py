@@ -22,7 +22,7 @@ from measurement.errors import InputError
 from measurement.options import AnalysisOptions
 
 from ..context import services
-from ..errors import ApiError, from_input_error
+from ..errors import ApiError, echo, from_input_error
 from .auth import tenant_id
 from .paging import page_args
 
@@ -119,7 +119,7 @@ def create() -> tuple[Response, int]:
                        "or start from the dataset's draft_design)", "design")
     ds = svc.store.get_dataset(tenant_id(), dataset_id)
     if ds is None:
-        raise ApiError(404, "not_found", f"no dataset {dataset_id!r}", "dataset_id")
+        raise ApiError(404, "not_found", f"no dataset {echo(dataset_id)}", "dataset_id")
     try:
         options = AnalysisOptions.from_dict(body.get("options"))
     except InputError as e:
@@ -143,7 +143,7 @@ def create() -> tuple[Response, int]:
 def _found(analysis_id: str, *, with_report: bool = False) -> dict:
     a = services().store.get_analysis(tenant_id(), analysis_id, with_report=with_report)
     if a is None:
-        raise ApiError(404, "not_found", f"no analysis {analysis_id!r}", "id")
+        raise ApiError(404, "not_found", f"no analysis {echo(analysis_id)}", "id")
     return a
 
 

@@ -15,7 +15,7 @@ from measurement.prepare import numeric_columns
 
 from .. import uploads
 from ..context import services
-from ..errors import ApiError, from_input_error
+from ..errors import ApiError, echo, from_input_error
 from ..store import new_id
 from .auth import tenant_id
 from .paging import page_args
@@ -97,7 +97,7 @@ def list_datasets() -> Response:
 def _found(dataset_id: str) -> dict:
     ds = services().store.get_dataset(tenant_id(), dataset_id)
     if ds is None:
-        raise ApiError(404, "not_found", f"no dataset {dataset_id!r}", "id")
+        raise ApiError(404, "not_found", f"no dataset {echo(dataset_id)}", "id")
     return ds
 
 
@@ -109,7 +109,7 @@ def delete_dataset(dataset_id: str) -> tuple[str, int]:
     svc = services()
     gone = svc.store.delete_dataset(tenant_id(), dataset_id)
     if gone is None:
-        raise ApiError(404, "not_found", f"no dataset {dataset_id!r}", "id")
+        raise ApiError(404, "not_found", f"no dataset {echo(dataset_id)}", "id")
     try:
         uploads.remove(svc.config.data_dir, gone["stored_path"])
     except OSError as e:  # the row is gone; a leftover file is only disk space

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from flask import request
 
-from ..errors import ApiError
+from ..errors import ApiError, echo
 
 DEFAULT_LIMIT = 100
 MAX_LIMIT = 1000
@@ -19,7 +19,7 @@ def _int_arg(name: str, default: int, lo: int, hi: int) -> int:
     except ValueError:
         value = None
     if value is None or not lo <= value <= hi:
-        raise ApiError(400, "bad_query", f"must be a whole number from {lo} to {hi}, got {raw!r}",
+        raise ApiError(400, "bad_query", f"must be a whole number from {lo} to {hi}, got {echo(raw)}",
                        name)
     return value
 
