@@ -12,6 +12,8 @@ class InputError(ValueError):
     respondent row 2.
     """
 
+    field_label = "field"  # how where() names ``field`` (an option, say: "options.seed")
+
     def __init__(
         self,
         message: str,
@@ -38,10 +40,8 @@ class InputError(ValueError):
             parts.append(f"row {self.row}")
         if self.column is not None:
             parts.append(f"column '{self.column}'")
-        if self.field is not None and self.code == "bad_options":  # options.NAME, not the design
-            parts.append(f"field '{self.field}'")
-        elif self.field is not None:
-            parts.append(f"design field '{self.field}'")
+        if self.field is not None:
+            parts.append(f"{self.field_label} '{self.field}'")
         return ", ".join(parts)
 
     def __str__(self) -> str:
@@ -66,6 +66,8 @@ class DataError(InputError):
 
 class DesignError(InputError):
     """The study design is invalid (HTTP 400)."""
+
+    field_label = "design field"
 
     def __init__(self, message: str, **kw) -> None:
         kw.setdefault("code", "bad_design")

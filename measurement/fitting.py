@@ -757,8 +757,7 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
     finally:
         obj.deadline = None
     success = (not capped) and _scaled_grad(g, H) <= GRAD_TOL
-    return _Run(x=x, f=f, g=g, H=H, iterations=it, success=success, capped=capped,
-                stalled=ridge and not success)
+    return _Run(x=x, f=f, g=g, H=H, iterations=it, success=success, capped=capped, stalled=ridge)
 
 
 # ---------------------------------------------------------------------------------------

@@ -13,6 +13,7 @@ from .missing import MissingPlan
 from .models import path_constructs
 from .options import AnalysisOptions
 from .paths import METHODS, NOTES, PathEstimator, wald
+from .report import finite_or_none
 from .sensitivity import sensitivity_curves
 
 # Which estimate the report leads with: the best-identified correction that passed its checks.
@@ -90,8 +91,9 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
                         "n_boot": boot.n_boot, "n_failed": int(boot.n_failed[k]), "seed": boot.seed,
                         "se": float(boot.se[k]), "ci_percentile": [float(pct[0]), float(pct[1])],
                         "ci_bca": [float(bca[0]), float(bca[1])] if np.all(np.isfinite(bca)) else None,
-                        "bias_correction": float(boot.bias_correction[k]),
-                        "acceleration": float(boot.acceleration[k]),
+                        # null with ci_bca where BCa is undefined (not an undefined-value warning)
+                        "bias_correction": finite_or_none(boot.bias_correction[k]),
+                        "acceleration": finite_or_none(boot.acceleration[k]),
                     }
                     if e.estimate is not None and np.all(np.isfinite(pct)):
                         entry["se"] = float(boot.se[k])

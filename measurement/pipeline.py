@@ -25,7 +25,7 @@ from .options import AnalysisOptions
 from .paths_report import paths_section
 from .prepare import PreparedData, prepare
 from .reliability_report import construct_reliability
-from .report import finalize_report
+from .report import finalize_report, finite_or_none
 from .screening import screen_respondents
 from .teams_report import teams_section
 
@@ -182,7 +182,7 @@ def _screening_section(screening, plan: MissingPlan) -> dict:
     for col in ("longstring", "irv", "mahalanobis_d2", "share_missing"):
         if col in per_row:
             s = pd.to_numeric(per_row[col], errors="coerce")
-            summary[col] = {"median": _f(s.median()), "max": _f(s.max())}
+            summary[col] = {"median": finite_or_none(s.median()), "max": finite_or_none(s.max())}
     return {
         "flagged_rows": flagged,
         "n_flagged": len(flagged),
@@ -195,9 +195,3 @@ def _screening_section(screening, plan: MissingPlan) -> dict:
     }
 
 
-def _f(v: Any) -> float | None:
-    try:
-        v = float(v)
-    except (TypeError, ValueError):
-        return None
-    return v if np.isfinite(v) else None

@@ -54,6 +54,16 @@ def finalize_report(report: dict, *, warnings: list[dict], options: AnalysisOpti
     return clean
 
 
+def finite_or_none(v: Any) -> float | None:
+    """A number as a float, or None where it is missing or not finite (said at the source,
+    rather than left for :func:`to_jsonable` to flag as undefined)."""
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
 def to_jsonable(obj: Any, *, path: str = "", undefined: list[str] | None = None) -> Any:
     """Plain JSON types only; non-finite floats become None and their paths are collected."""
     if isinstance(obj, dict):
