@@ -194,11 +194,14 @@ def test_analysis_runs_in_the_background_and_reports(app, client, svc_survey):
 
 
 def test_data_problems_found_while_running_fail_the_analysis_naming_row_and_column(app, client):
+    # An answer outside the response scale shows only when the run reads the design's items.
+    # (This test used a text answer, "n/a?"; text answers are now refused when the analysis
+    # starts: test_unmapped_text_answers_are_refused_when_the_analysis_starts.)
     h = token_for(app, "typo")
     data, design = small_survey(n=120)
     lines = data.decode().splitlines()
     cells = lines[7].split(",")
-    cells[2] = "n/a?"  # sup2 of the 7th respondent: file row 8
+    cells[2] = "7"  # sup2 of the 7th respondent: file row 8, outside the scale 1 to 5
     lines[7] = ",".join(cells)
     ds = upload(client, h, ("\n".join(lines) + "\n").encode()).get_json()
     a = finished(client, h, start(client, h, ds["id"], design).get_json()["id"])
@@ -240,7 +243,8 @@ def test_delete_removes_the_dataset_its_file_and_its_analyses(tmp_path, svc_surv
         h = token_for(app, "deleter")
         data, design = svc_survey
         ds = upload(c, h, data).get_json()
-        keep = upload(c, h, data).get_json()
+        # other bytes: the same bytes again would be the same dataset (uploads are re-used)
+        keep = upload(c, h, data + b"\n").get_json()
         aids = [start(c, h, ds["id"], design).get_json()["id"] for _ in range(2)]
         other = start(c, h, keep["id"], design).get_json()["id"]
         r = c.delete(f"/v1/datasets/{ds['id']}", headers=h)
@@ -265,7 +269,7 @@ def test_another_tenants_ids_answer_404_on_every_object_route(app, client, svc_s
     ds = upload(client, owner, data).get_json()
     aid = start(client, owner, ds["id"], design).get_json()["id"]
     finished(client, owner, aid)
-    ids = {"dataset_id": ds["id"], "analysis_id": aid}
+    ids = {"dataset_id": ds["id"], "analysis_id": aid, "name": "constructs"}
 
     tried = set()
     for rule in v1_rules(app):
@@ -280,7 +284,9 @@ def test_another_tenants_ids_answer_404_on_every_object_route(app, client, svc_s
     assert tried == {("/v1/datasets/<dataset_id>", "GET"), ("/v1/datasets/<dataset_id>", "DELETE"),
                      ("/v1/analyses/<analysis_id>", "GET"),
                      ("/v1/analyses/<analysis_id>/report.json", "GET"),
-                     ("/v1/analyses/<analysis_id>/report.html", "GET")}
+                     ("/v1/analyses/<analysis_id>/report.html", "GET"),
+                     ("/v1/analyses/<analysis_id>/tables.xlsx", "GET"),
+                     ("/v1/analyses/<analysis_id>/tables/<name>.csv", "GET")}
     # an object named in a body is checked too
     assert_error(start(client, intruder, ds["id"], design), 404, "not_found", "dataset_id")
     # lists show only one's own
