@@ -390,9 +390,14 @@ def check_columns(design: Design, columns: Iterable[str], *, file: str | None = 
     other sheets and their columns) lets the message name the sheet that has the column."""
     cols = set(columns)
 
+    wanted = set(design.items)
+    # the other sheets, those holding more of the design's items first
+    ranked = sorted(((sheet, set(names)) for sheet, names in (other_sheets or {}).items()),
+                    key=lambda kv: -len(kv[1] & wanted))
+
     def elsewhere(name: str) -> str:
-        for sheet, names in (other_sheets or {}).items():
-            if name in set(names):
+        for sheet, names in ranked:
+            if name in names:
                 return f"; it is a column of sheet '{sheet}': choose that sheet (--sheet, or the option sheet)"
         return ""
 
