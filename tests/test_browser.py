@@ -136,8 +136,15 @@ def test_page_from_token_to_report(server_factory, tmp_path):
         # -- edit the draft into the study's design with the form controls
         for old, new in RENAME.items():
             construct(page, old).locator("input[data-role='name']").fill(new)
-        construct(page, "support").locator("[data-role='reverse'] label", has_text="sup4").click()
-        construct(page, "workload").locator("[data-role='reverse'] label", has_text="wld3").click()
+        # the draft reads the answers now: sup4 and wld3 run against their groups, so they come
+        # drafted as reverse-keyed (before, the test ticked them), and the scale 1 to 7 and the
+        # code -99 come filled in
+        for name, item in (("support", "sup4"), ("workload", "wld3")):
+            rev = construct(page, name).locator("[data-role='reverse'] input:checked")
+            assert [rev.nth(i).get_attribute("value") for i in range(rev.count())] == [item]
+        assert page.locator("#scale-min").input_value() == "1"
+        assert page.locator("#scale-max").input_value() == "7"
+        assert page.locator("#missing-codes").input_value() == "-99"
         construct(page, "weather").locator("select[data-role='role']").select_option("marker")
         construct(page, "impression").locator("select[data-role='role']").select_option("method")
 
@@ -256,7 +263,9 @@ def earlier_work(page, context, base: str, token: str, report_title: str) -> Non
     pulse = []
     for i in range(PAGE):
         r = requests.post(f"{base}/v1/datasets", headers=headers,
-                          files={"file": (f"pulse_{i + 1:02}.csv", TINY)}, timeout=30)
+                          # blank lines at the end make each file's bytes its own: the same
+                          # bytes again would be re-used as one dataset
+                          files={"file": (f"pulse_{i + 1:02}.csv", TINY + b"\n" * i)}, timeout=30)
         assert r.status_code == 201, r.text
         pulse.append(r.json()["id"])
     r = requests.post(f"{base}/v1/analyses", headers=headers, timeout=30,
