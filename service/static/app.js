@@ -172,12 +172,16 @@
     $("dataset-summary").textContent = "“" + ds.name + "”: " + ds.rows + " rows, " +
       ds.columns.length + " columns (" + ds.format + ")." + warn;
     const numeric = new Set(ds.numeric_columns || ds.columns);
+    const texts = new Set((ds.warnings || []).filter((w) => w.code === "text_answers").map((w) => w.column));
     const ul = $("columns");
     ul.textContent = "";
     ds.columns.forEach((c) => {
       const li = document.createElement("li");
       li.textContent = c;
-      if (!numeric.has(c)) {
+      if (texts.has(c)) {
+        li.className = "text";
+        li.textContent = c + " (answer texts)";
+      } else if (!numeric.has(c)) {
         li.className = "text";
         li.textContent = c + " (text)";
       }
@@ -219,9 +223,14 @@
 
   // ---- step 3: the design form -----------------------------------------------------------
 
+  // columns that can be items: those holding numbers, and those holding answer texts (which
+  // answer_labels map to numbers)
   function numericColumns() {
     const ds = state.dataset;
-    return ds ? (ds.numeric_columns || ds.columns) : [];
+    if (!ds) return [];
+    const usable = new Set(ds.numeric_columns || ds.columns);
+    (ds.warnings || []).forEach((w) => { if (w.code === "text_answers") usable.add(w.column); });
+    return ds.columns.filter((c) => usable.has(c));
   }
 
   function el(tag, attrs, ...children) {
