@@ -136,7 +136,8 @@ class _TerminalProgress:
 
 class _LineProgress:
     """Plain progress lines for logs and pipes (stderr not a terminal): one per stage, and
-    one per tenth of the bootstrap."""
+    one per tenth of the bootstrap. The first comes once the data are read and checked
+    against the design, so that bad input still gets one message alone on stderr."""
 
     def __init__(self, stream=None) -> None:
         self.stream = stream or sys.stderr
@@ -150,7 +151,7 @@ class _LineProgress:
             self.last = ("bootstrap", tenth)
             text = f"samesource: bootstrap {done}/{total} replicates ({10 * tenth}%)"
         else:
-            if self.last is not None and self.last[0] == stage:
+            if (self.last is not None and self.last[0] == stage) or stage == "load":
                 return
             self.last = (stage, 0)
             text = f"samesource: {stage.replace('_', ' ')} (stage {min(done + 1, total)} of {total})"

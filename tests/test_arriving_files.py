@@ -374,7 +374,8 @@ def test_progress_lines_off_a_terminal_and_the_review_on_the_last_line(tmp_path)
             "--missing", "FIML")
     assert r.returncode == 0, r.stderr
     lines = r.stderr.splitlines()
-    assert "samesource: load (stage 1 of 8)" in lines
+    assert "samesource: load (stage 1 of 8)" not in lines  # bad input still gets one line alone
+    assert lines[0] == "samesource: screen (stage 2 of 8)"
     assert "samesource: reliability (stage 3 of 8)" in lines
     boot = [x for x in lines if "bootstrap" in x]
     assert boot[-1].endswith("(100%)") and 2 <= len(boot) <= 11
