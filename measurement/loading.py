@@ -28,7 +28,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .design import item_stem
+from .design import did_you_mean, item_stem
 from .errors import DataError, UnsupportedFormat
 
 FORMATS = ("csv", "tsv", "txt", "xlsx", "sav")
@@ -705,7 +705,8 @@ def _pick_sheet(names: list[str], sheet: str | int | None, source: str) -> str:
                         f"{len(names)} sheet(s): {listed}", file=source)
     if sheet in names:
         return sheet
-    raise DataError(f"sheet '{sheet}' not found; the workbook has sheets {listed}", file=source)
+    raise DataError(f"sheet '{sheet}' not found{did_you_mean(str(sheet), names)}; the workbook has "
+                    f"sheets {listed}", file=source)
 
 
 def _sheet_rows(wb, title: str, source: str) -> list[list[Any]]:

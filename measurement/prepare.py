@@ -347,12 +347,14 @@ def standing_apart(values: np.ndarray) -> tuple[list[float], tuple[float, float]
     """Answer values that stand apart from the rest, as codes for "no answer" do, and the
     range of the others (None when there are no answers).
 
-    Rules (common practice, see docs/design-file.md): with answers of 0 or more, a negative
-    value stands apart (-1, -9, -99); going up from the lowest answer, a value more than 2
-    above the next lower one starts the values apart (9 beside 1 to 5); a value written with
-    nines alone (9, 99, 999) stands apart when the value one below it never occurs (9 beside
-    1 to 7, not 9 on a 1 to 9 scale). Whole-number answers only: decimals mean a scale of
-    another kind, and nothing is set apart.
+    Rules (common practice, see docs/design-file.md): beside answers of 1 or more, or more
+    than 2 below the lowest answer of 0 or more, negative values stand apart (-1, -9, -99;
+    not the -3 to 3 of a scale with a middle of 0); going up from the lowest answer, a value
+    more than 2 above the next lower one starts the values apart (9 beside 1 to 5); a value
+    written with nines alone (9, 99, 999) stands apart when the value one below it never
+    occurs (9 beside 1 to 7, not 9 on a 1 to 9 scale). Whole-number answers only, and at most
+    15 different answers besides those set apart: decimals or a wide range (a slider from 0
+    to 100) mean a scale of another kind, and nothing is set apart.
     """
     v = np.asarray(values, dtype=float)
     v = v[~np.isnan(v)]
@@ -363,9 +365,14 @@ def standing_apart(values: np.ndarray) -> tuple[list[float], tuple[float, float]
         return [], (distinct[0], distinct[-1])
     apart: list[float] = []
     core = distinct
-    if any(x >= 0 for x in distinct):
-        apart += [x for x in distinct if x < 0]
-        core = [x for x in distinct if x >= 0]
+    low = [x for x in distinct if x < 0]
+    high = [x for x in distinct if x >= 0]
+    if low and high and (high[0] >= 1 or high[0] - low[-1] > 2):
+        apart += low
+        core = high
+    wide = [x for x in core if not (x >= 9 and set(str(int(x))) == {"9"})]
+    if len(wide) > 15:  # a wide scale (a slider): gaps are no sign of codes
+        return sorted(apart), (core[0], core[-1])
     kept = [core[0]]
     for x in core[1:]:
         if x - kept[-1] > 2:

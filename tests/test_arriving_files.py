@@ -232,6 +232,11 @@ def test_standing_apart_rules():
     assert standing_apart(np.arange(1, 10)) == ([], (1.0, 9.0))  # a 1 to 9 scale
     assert standing_apart(np.array([0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10])) == ([], (0.0, 10.0))
     assert standing_apart(np.array([1.5, 2.5, 99.0])) == ([], (1.5, 99.0))  # decimals: no rule
+    assert standing_apart(np.arange(-3, 4)) == ([], (-3.0, 3.0))  # a scale with a middle of 0
+    assert standing_apart(np.array([-1, 1, 2, 3, 4, 5])) == ([-1.0], (1.0, 5.0))
+    assert standing_apart(np.array([-9, 0, 1, 2, 3])) == ([-9.0], (0.0, 3.0))
+    slider = np.array([0, 3, 4, 5, 6, 7, 8, 10, 11, 12, 13, 14, 15, 37, 55, 80, 100])
+    assert standing_apart(slider) == ([], (0.0, 100.0))  # a slider 0 to 100: gaps are no codes
 
 
 def test_no_response_scale_and_a_code_standing_apart_stops_the_run(tmp_path):
