@@ -126,7 +126,8 @@ SCHEMAS: dict[str, Any] = {
             "size_bytes": {"type": "integer"},
             "created_at": {"type": "string", "format": "date-time"},
             "draft_design": {"type": "object",
-                             "description": "a design inferred from the column names, to edit"},
+                             "description": ("a design inferred from the column names, the answers "
+                                             "and SPSS labels, to edit (docs/design-file.md, Drafting)")},
             "warnings": {"type": "array", "items": _ref("Warning"), "description": (
                 "what the reader noticed; code text_answers (with column, row, text, texts) for "
                 "item-like columns holding answer texts")},
