@@ -29,6 +29,7 @@ class Construct:
     items: tuple[str, ...]
     reverse: tuple[str, ...] = ()
     role: str = "substantive"
+    answer_labels: dict[str, float | None] | None = None  # this construct's own, if any
 
 
 @dataclass(frozen=True)
@@ -48,6 +49,7 @@ class Design:
     missing_codes: tuple[float, ...] = ()
     id_column: str | None = None
     group_column: str | None = None
+    answer_labels: dict[str, float | None] = field(default_factory=dict)
     raw: dict = field(default_factory=dict, compare=False, repr=False)
 
     # Constructs by role, in design order.
@@ -73,6 +75,14 @@ class Design:
         """Every item of every construct, in design order."""
         return [i for c in self.constructs.values() for i in c.items]
 
+    def labels_for(self, item: str) -> dict[str, float | None]:
+        """The answer texts of ``item`` mapped to numbers (None: a missing answer), keyed by
+        :func:`answer_key`: its construct's own labels, else the design's."""
+        for c in self.constructs.values():
+            if item in c.items and c.answer_labels is not None:
+                return {answer_key(k): v for k, v in c.answer_labels.items()}
+        return {answer_key(k): v for k, v in self.answer_labels.items()}
+
     def construct_of(self, item: str) -> str:
         for c in self.constructs.values():
             if item in c.items:
@@ -93,6 +103,8 @@ class Design:
                 entry["reverse"] = list(c.reverse)
             if c.role != "substantive":
                 entry["role"] = c.role
+            if c.answer_labels is not None:
+                entry["answer_labels"] = dict(c.answer_labels)
             out["constructs"][c.name] = entry
         out["paths"] = [{"outcome": p.outcome, "predictors": list(p.predictors)} for p in self.paths]
         if self.scale_min is not None:
@@ -103,10 +115,39 @@ class Design:
             out["id_column"] = self.id_column
         if self.group_column:
             out["group_column"] = self.group_column
+        if self.answer_labels:
+            out["answer_labels"] = dict(self.answer_labels)
         return out
 
 
-_TOP_FIELDS = {"constructs", "paths", "response_scale", "missing_codes", "id_column", "group_column"}
+_TOP_FIELDS = {"constructs", "paths", "response_scale", "missing_codes", "id_column", "group_column",
+               "answer_labels"}
+_CONSTRUCT_FIELDS = {"items", "reverse", "role", "answer_labels"}
+
+
+def answer_key(text: str) -> str:
+    """How answer texts are matched: without regard to case, surrounding spaces, runs of
+    spaces inside, or the kind of apostrophe ("Don’t know" = "don't know")."""
+    return " ".join(text.replace("\u2019", "'").replace("\u2018", "'").split()).casefold()
+
+
+def did_you_mean(name: str, choices: Iterable[str]) -> str:
+    """" (did you mean 'X'?)" for the nearest of ``choices``, or "": a name differing only in
+    case comes first, then the closest spelling."""
+    import difflib
+
+    options = [c for c in choices if isinstance(c, str)]
+    if not isinstance(name, str):
+        return ""
+    same = [c for c in options if c.casefold() == name.casefold() and c != name]
+    if same:
+        return f" (did you mean '{same[0]}'?)"
+    m = difflib.get_close_matches(name, options, n=1, cutoff=0.6)
+    if not m:
+        folded = {c.casefold(): c for c in options}
+        m = [folded[x] for x in difflib.get_close_matches(name.casefold(), list(folded), n=1,
+                                                            cutoff=0.6)]
+    return f" (did you mean '{m[0]}'?)" if m else ""
 
 
 def _is_number(v: Any) -> bool:
@@ -161,8 +202,8 @@ def parse_design(obj: Any) -> Design:
         raise DesignError("the design must be a JSON object with 'constructs' and 'paths'", field="(top)")
     unknown = sorted(set(obj) - _TOP_FIELDS)
     if unknown:
-        raise DesignError(f"unknown field '{unknown[0]}'; allowed: {', '.join(sorted(_TOP_FIELDS))}",
-                          field=unknown[0])
+        raise DesignError(f"unknown field '{unknown[0]}'{did_you_mean(unknown[0], _TOP_FIELDS)}; "
+                          f"allowed: {', '.join(sorted(_TOP_FIELDS))}", field=unknown[0])
     cons = obj.get("constructs")
     if not isinstance(cons, Mapping) or not cons:
         raise DesignError("must be an object naming at least one construct and its items", field="constructs")
@@ -176,9 +217,10 @@ def parse_design(obj: Any) -> Design:
                               f"got {_shown(name)}", field=where)
         if not isinstance(spec, Mapping):
             raise DesignError("must be an object with 'items'", field=where)
-        bad = sorted(set(spec) - {"items", "reverse", "role"})
+        bad = sorted(set(spec) - _CONSTRUCT_FIELDS)
         if bad:
-            raise DesignError(f"unknown field '{bad[0]}'; allowed: items, reverse, role", field=f"{where}.{bad[0]}")
+            raise DesignError(f"unknown field '{bad[0]}'{did_you_mean(bad[0], _CONSTRUCT_FIELDS)}; "
+                              f"allowed: {', '.join(sorted(_CONSTRUCT_FIELDS))}", field=f"{where}.{bad[0]}")
         if "items" not in spec:
             raise DesignError("is missing; list the construct's item columns", field=f"{where}.items")
         items = _str_list(spec["items"], f"{where}.items")
@@ -188,16 +230,23 @@ def parse_design(obj: Any) -> Design:
         reverse = _str_list(spec.get("reverse", []), f"{where}.reverse")
         for r in reverse:
             if r not in items:
-                raise DesignError(f"reverse item '{r}' is not one of construct '{name}' items", field=f"{where}.reverse")
+                raise DesignError(f"reverse item '{r}' is not one of construct '{name}' items"
+                                  f"{did_you_mean(r, items)}", field=f"{where}.reverse")
         role = spec.get("role", "substantive")
+        if isinstance(role, str) and role not in ROLES and role.strip().lower() in ROLES:
+            role = role.strip().lower()  # "Marker" means "marker"
         if role not in ROLES:
-            raise DesignError(f"unknown role {_shown(role)}; use one of {', '.join(ROLES)}", field=f"{where}.role")
+            raise DesignError(f"unknown role {_shown(role)}{did_you_mean(role, ROLES)}; use one of "
+                              f"{', '.join(ROLES)}", field=f"{where}.role")
+        own_labels = (_parse_labels(spec["answer_labels"], f"{where}.answer_labels")
+                      if spec.get("answer_labels") is not None else None)
         for it in items:
             if it in owner:
                 raise DesignError(f"item '{it}' is in construct '{owner[it]}' and in '{name}'; an item belongs to one "
                                   "construct", field=f"{where}.items")
             owner[it] = name
-        constructs[name] = Construct(name=name, items=items, reverse=reverse, role=role)
+        constructs[name] = Construct(name=name, items=items, reverse=reverse, role=role,
+                                     answer_labels=own_labels)
 
     clash = sorted(set(constructs) & set(owner))
     if clash:
@@ -242,9 +291,37 @@ def parse_design(obj: Any) -> Design:
     if cols["id_column"] and cols["id_column"] == cols["group_column"]:
         raise DesignError("must differ from id_column", field="group_column")
 
+    labels = (_parse_labels(obj["answer_labels"], "answer_labels")
+              if obj.get("answer_labels") is not None else {})
     return Design(constructs=constructs, paths=paths, scale_min=scale_min, scale_max=scale_max,
                   missing_codes=tuple(float(c) for c in codes), id_column=cols["id_column"],
-                  group_column=cols["group_column"], raw=dict(obj))
+                  group_column=cols["group_column"], answer_labels=labels, raw=dict(obj))
+
+
+def _parse_labels(value: Any, where: str) -> dict[str, float | None]:
+    """``{"Strongly agree": 5, ..., "Don't know": null}``: answer texts to numbers (null for
+    a text that means no answer). Two texts that match alike must not differ."""
+    if not isinstance(value, Mapping) or not value:
+        raise DesignError(f"must be an object mapping answer texts to numbers, such as "
+                          f"{{\"Strongly disagree\": 1, \"Strongly agree\": 5}}, got {_shown(value)}",
+                          field=where)
+    out: dict[str, float | None] = {}
+    seen: dict[str, str] = {}
+    for text, number in value.items():
+        if not _is_text(text):
+            raise DesignError(f"an answer text must be a non-empty string, got {_shown(text)}",
+                              field=where)
+        if number is not None and not _is_number(number):
+            raise DesignError(f"must be a number (or null for an answer that means no answer), "
+                              f"got {_shown(number)}", field=f"{where}.{text}")
+        key = answer_key(text)
+        if key in seen and value[seen[key]] != number:
+            raise DesignError(f"'{seen[key]}' and '{text}' are the same answer (matched without "
+                              "regard to case and spaces) but map to different numbers",
+                              field=f"{where}.{text}")
+        seen[key] = text
+        out[text] = None if number is None else float(number)
+    return out
 
 
 def _parse_paths(value: Any, constructs: Mapping[str, Construct]) -> tuple[Path, ...]:
@@ -254,20 +331,25 @@ def _parse_paths(value: Any, constructs: Mapping[str, Construct]) -> tuple[Path,
     seen: set[str] = set()
     for i, p in enumerate(value):
         where = f"paths[{i}]"
-        if not isinstance(p, Mapping) or set(p) - {"outcome", "predictors"} or "outcome" not in p or "predictors" not in p:
-            raise DesignError("must be an object {\"outcome\": NAME, \"predictors\": [NAME, ...]}", field=where)
+        extra = sorted(set(p) - {"outcome", "predictors"}) if isinstance(p, Mapping) else []
+        if not isinstance(p, Mapping) or extra or "outcome" not in p or "predictors" not in p:
+            hint = did_you_mean(extra[0], ("outcome", "predictors")) if extra else ""
+            raise DesignError("must be an object {\"outcome\": NAME, \"predictors\": [NAME, ...]}"
+                              + (f"; unknown field '{extra[0]}'{hint}" if extra else ""), field=where)
         out = p["outcome"]
         if not isinstance(out, str):
             raise DesignError(f"must be a construct name (a string), got {_shown(out)}",
                               field=f"{where}.outcome")
         if out not in constructs:
-            raise DesignError(f"unknown construct {_shown(out)} as outcome", field=f"{where}.outcome")
+            raise DesignError(f"unknown construct {_shown(out)} as outcome{did_you_mean(out, constructs)}",
+                              field=f"{where}.outcome")
         preds = _str_list(p["predictors"], f"{where}.predictors")
         if not preds:
             raise DesignError("needs at least one predictor", field=f"{where}.predictors")
         for j, pr in enumerate(preds):
             if pr not in constructs:
-                raise DesignError(f"unknown construct {_shown(pr)} as predictor", field=f"{where}.predictors[{j}]")
+                raise DesignError(f"unknown construct {_shown(pr)} as predictor{did_you_mean(pr, constructs)}",
+                                  field=f"{where}.predictors[{j}]")
             if pr == out:
                 raise DesignError(f"construct '{out}' cannot predict itself", field=f"{where}.predictors[{j}]")
         for name, w in [(out, f"{where}.outcome")] + [(pr, f"{where}.predictors") for pr in preds]:
@@ -302,26 +384,34 @@ def _check_acyclic(paths: list[Path]) -> None:
             visit(n, [n])
 
 
-def check_columns(design: Design, columns: Iterable[str], *, file: str | None = None) -> None:
-    """Every column the design names must be in the data."""
+def check_columns(design: Design, columns: Iterable[str], *, file: str | None = None,
+                  other_sheets: Mapping[str, Iterable[str]] | None = None) -> None:
+    """Every column the design names must be in the data. ``other_sheets`` (a workbook's
+    other sheets and their columns) lets the message name the sheet that has the column."""
     cols = set(columns)
+
+    wanted = set(design.items)
+    # the other sheets, those holding more of the design's items first
+    ranked = sorted(((sheet, set(names)) for sheet, names in (other_sheets or {}).items()),
+                    key=lambda kv: -len(kv[1] & wanted))
+
+    def elsewhere(name: str) -> str:
+        for sheet, names in ranked:
+            if name in names:
+                return f"; it is a column of sheet '{sheet}': choose that sheet (--sheet, or the option sheet)"
+        return ""
+
     for c in design.constructs.values():
         for i, it in enumerate(c.items):
             if it not in cols:
-                hint = _closest(it, cols)
+                hint = elsewhere(it) or did_you_mean(it, cols)
                 raise DesignError(f"item '{it}' is not a column of the data{hint}",
                                   field=f"constructs.{c.name}.items[{i}]", file=file)
     for key in ("id_column", "group_column"):
         v = getattr(design, key)
         if v and v not in cols:
-            raise DesignError(f"'{v}' is not a column of the data{_closest(v, cols)}", field=key, file=file)
-
-
-def _closest(name: str, cols: Iterable[str]) -> str:
-    import difflib
-
-    m = difflib.get_close_matches(name, list(cols), n=1)
-    return f" (did you mean '{m[0]}'?)" if m else ""
+            raise DesignError(f"'{v}' is not a column of the data{elsewhere(v) or did_you_mean(v, cols)}",
+                              field=key, file=file)
 
 
 def load_design(path: str | pathlib.Path) -> Design:
@@ -350,23 +440,67 @@ def load_design(path: str | pathlib.Path) -> Design:
         raise
 
 
+# Item names, as survey platforms and analysts write them (docs/design-file.md, "Drafting").
+# A question number and an item number: Q3_1, Q3.1, q3-1, Q12r1 (r for "row").
+_NUMBERED = re.compile(r"^(?P<stem>[A-Za-z]+\d+)(?:[_.\-]|[rR](?=\d))(?P<num>\d+)$")
+# The open-text box beside a choice: Q3_1_TEXT, Q3_4_other.
+_TEXT_BOX = re.compile(r"^[A-Za-z]+\d+(?:[_.\-]\d+)*[_.\-](?:text|other|specify)$", re.IGNORECASE)
+# A letter stem and a number: sup1, clim_1, eng.2; a trailing r or _r marks a reverse item.
 _STEM = re.compile(r"^(?P<stem>[A-Za-z][A-Za-z_.\- ]*?)[_.\- ]?(?P<num>\d+)(?P<rev>_?[rR])?$")
-_ID_NAMES = {"id", "respondent", "respondent_id", "resp_id", "participant", "participant_id", "responseid", "case"}
-_GROUP_NAMES = {"team", "team_id", "group", "group_id", "unit", "department", "dept", "work_unit"}
+_ID_NAMES = {"id", "respondent", "respondent_id", "resp_id", "participant", "participant_id", "responseid",
+             "response_id", "case", "caseid", "case_id", "record", "respid"}
+_GROUP_NAMES = {"team", "team_id", "group", "group_id", "unit", "department", "dept", "work_unit", "ward",
+                "site", "branch", "office", "clinic", "location", "unit_id", "ward_id", "site_id"}
+_GROUP_WORDS = ("team", "group", "unit", "ward", "dept", "department", "site", "branch", "office",
+                "clinic", "location", "store", "division")
 
 
-def draft_design(columns: Iterable[str], numeric: Iterable[str] | None = None) -> dict:
-    """Infer a draft design from column-name stems (``sup1..sup5`` -> construct ``sup``).
+def item_stem(name: str) -> tuple[str, bool] | None:
+    """The construct stem an item-like column name drafts to, and whether the name marks it
+    reverse-keyed; None for a name that is no item (an open-text box, a bare question number
+    such as Q7, a name without a number)."""
+    n = name.strip()
+    if _TEXT_BOX.match(n):
+        return None
+    m = _NUMBERED.match(n)
+    if m:
+        return m.group("stem").lower(), False
+    m = _STEM.match(n)
+    if not m:
+        return None
+    stem = m.group("stem").rstrip("_.- ").lower()
+    if stem == "q":  # Q1, Q2, ...: question numbers, each its own question
+        return None
+    return stem, bool(m.group("rev"))
+
+
+def left_out_reason(name: str) -> str:
+    """Why a column is not drafted as an item, from its name alone."""
+    n = name.strip()
+    if _TEXT_BOX.match(n):
+        return "an open-text box beside a question (its name ends in _TEXT or _other)"
+    if re.fullmatch(r"[qQ]\d+", n):
+        return "a single question (a question number without an item number)"
+    return "its name is not a stem and a number (such as sup1, clim_2, Q3_1, Q3r1, Q3.1)"
+
+
+def draft_design(columns: Iterable[str], numeric: Iterable[str] | None = None,
+                 left_out: list[dict] | None = None) -> dict:
+    """Infer a draft design from column names (``sup1..sup5`` -> construct ``sup``,
+    ``Q3_1..Q3_4`` -> construct ``q3``).
 
     ``numeric`` (optional) restricts items to columns known to hold numbers. Items whose
     name ends in ``r`` or ``_r`` (``sup4r``) are drafted as reverse-keyed. The draft has no
-    paths: the analyst adds them.
+    paths: the analyst adds them. ``left_out``, when given, receives ``{"column", "reason"}``
+    for every column the draft does not use. :func:`measurement.drafting.draft_from_table`
+    adds what the answers tell (scale, missing codes, id and team columns, reverse items).
     """
     cols = list(columns)
     num = set(numeric) if numeric is not None else set(cols)
     groups: dict[str, list[str]] = {}
     reverse: dict[str, list[str]] = {}
     id_col = group_col = None
+    skipped: list[dict] = []
     for c in cols:
         low = c.strip().lower()
         if id_col is None and low in _ID_NAMES:
@@ -375,13 +509,16 @@ def draft_design(columns: Iterable[str], numeric: Iterable[str] | None = None) -
         if group_col is None and low in _GROUP_NAMES:
             group_col = c
             continue
-        m = _STEM.match(c.strip())
-        if not m or c not in num:
+        stem = item_stem(c)
+        if stem is None:
+            skipped.append({"column": c, "reason": left_out_reason(c)})
             continue
-        stem = m.group("stem").rstrip("_.- ").lower()
-        groups.setdefault(stem, []).append(c)
-        if m.group("rev"):
-            reverse.setdefault(stem, []).append(c)
+        if c not in num:
+            skipped.append({"column": c, "reason": "its answers are not numbers"})
+            continue
+        groups.setdefault(stem[0], []).append(c)
+        if stem[1]:
+            reverse.setdefault(stem[0], []).append(c)
     constructs = {}
     for stem, items in groups.items():
         if len(items) >= MIN_ITEMS:
@@ -389,9 +526,28 @@ def draft_design(columns: Iterable[str], numeric: Iterable[str] | None = None) -
             if reverse.get(stem):
                 entry["reverse"] = reverse[stem]
             constructs[stem] = entry
+        else:
+            skipped.append({"column": items[0], "reason": f"the only item with the stem '{stem}' "
+                            f"(a construct needs at least {MIN_ITEMS})"})
     draft: dict[str, Any] = {"constructs": constructs, "paths": []}
     if id_col:
         draft["id_column"] = id_col
     if group_col:
         draft["group_column"] = group_col
+    if left_out is not None:
+        order = {c: i for i, c in enumerate(cols)}
+        left_out.extend(sorted(skipped, key=lambda d: order.get(d["column"], 0)))
     return draft
+
+
+def looks_like_group(name: str) -> bool:
+    """A column name that suggests teams or units (team, ward, site, ...)."""
+    low = name.strip().lower()
+    return low in _GROUP_NAMES or any(w in re.split(r"[^a-z]+", low) for w in _GROUP_WORDS)
+
+
+def looks_like_id(name: str) -> bool:
+    """A column name that suggests a respondent id (id, ResponseId, resp_id, ...)."""
+    low = name.strip().lower()
+    return (low in _ID_NAMES or bool(re.search(r"(?:^|[_ .\-])id$", low))
+            or bool(re.fullmatch(r"(?:response|respondent|resp|case|record|participant)[_ ]?(?:id|no|number)", low)))

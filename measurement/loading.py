@@ -28,6 +28,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .design import did_you_mean, item_stem
 from .errors import DataError, UnsupportedFormat
 
 FORMATS = ("csv", "tsv", "txt", "xlsx", "sav")
@@ -69,6 +70,9 @@ _BOMS = ((codecs.BOM_UTF8, "utf-8-sig"), (codecs.BOM_UTF32_LE, "utf-32"),
          (codecs.BOM_UTF16_BE, "utf-16"))
 _CONTROL = re.compile(rb"[\x00-\x08\x0e-\x1a\x1c-\x1f\x7f]")
 _FORMULA_TAG = re.compile(rb"<(?:\w+:)?f[\s>/]")
+# Text that survey and statistics exports write for "no answer" (read as blank in items).
+MISSING_WORDS = frozenset({"na", "n/a", "#n/a", "nan", ".", "null"})
+_NUMBER_TEXT = re.compile(r"\s*[+-]?(?:\d+[.,]?\d*|[.,]\d+)(?:[eE][+-]?\d+)?\s*")
 _COMMA_DECIMAL = re.compile(r"[+-]?\d*,\d+(?:[eE][+-]?\d+)?")
 _POINT_DECIMAL = re.compile(r"[+-]?\d*\.\d+(?:[eE][+-]?\d+)?")
 
@@ -90,6 +94,11 @@ class LoadedTable:
     user_missing: dict[str, list] = field(default_factory=dict)
     sha256: str = ""
     size_bytes: int = 0
+    # A workbook's sheets ({"name", "rows", "columns", "item_like"}) and their column names.
+    sheets: list[dict] = field(default_factory=list)
+    sheet_columns: dict[str, list[str]] = field(default_factory=dict)
+    variable_labels: dict[str, str] = field(default_factory=dict)  # SPSS variable labels
+    row_names: list[str] | None = None  # an unnamed first column read as row labels
     # Things the report should mention ({"code", "message"}): blank rows skipped, an
     # encoding guessed, short rows padded, SPSS missing values applied, ...
     warnings: list[dict] = field(default_factory=list)
@@ -401,7 +410,7 @@ def _read_text(data: bytes, source: str, fmt: str) -> dict:
                         file=source)
     if header:
         header[0] = header[0].lstrip("\ufeff")
-    columns, body, row_numbers = _assemble(
+    columns, body, row_numbers, row_names = _assemble(
         [h.strip() for h in header], rows, header_row, source,
         position=str, extra_hint=(f"A value in this row may contain an unquoted "
                                   f"{_DELIM_NAMES[delim]}: put quotes around it"
@@ -415,7 +424,7 @@ def _read_text(data: bytes, source: str, fmt: str) -> dict:
             f"the file is not UTF-8; it was read as {_ENCODING_NAMES.get(encoding, encoding)} "
             "text. If accented letters look wrong, save the file as UTF-8")})
     return dict(frame=frame, row_numbers=row_numbers, encoding=encoding, delimiter=delim,
-                decimal=decimal, warnings=notes)
+                decimal=decimal, warnings=notes, row_names=row_names)
 
 
 _ENCODING_NAMES = {"cp1252": "Windows-1252", "latin-1": "Latin-1", "utf-16": "UTF-16",
@@ -444,8 +453,9 @@ def _note_blank_rows(blank_inside: list[int], notes: list[dict]) -> None:
 
 def _assemble(names: list[str], rows: list[tuple[int, Sequence[Any]]], header_row: int,
               source: str, *, position, extra_hint: str, notes: list[dict]
-              ) -> tuple[list[str], list[list[Any]], np.ndarray]:
-    """Check the header against the rows; return kept names, cells and row numbers."""
+              ) -> tuple[list[str], list[list[Any]], np.ndarray, list[str] | None]:
+    """Check the header against the rows; return kept names, cells, row numbers and the row
+    labels of an unnamed first column (None when there is none)."""
     if not rows:
         raise DataError(f"the file has a header (row {header_row}) but no data rows; export "
                         "the survey data with the respondents' answers", file=source,
@@ -475,9 +485,12 @@ def _assemble(names: list[str], rows: list[tuple[int, Sequence[Any]]], header_ro
         body.append(r)
 
     keep: list[int] = []
+    row_names = _row_names(names, body, position, notes)
     for j, name in enumerate(names):
         if name:
             keep.append(j)
+            continue
+        if j == 0 and row_names is not None:
             continue
         used = next((n for (n, _), r in zip(rows, body, strict=True) if not _blank_cell(r[j])),
                     None)
@@ -505,7 +518,26 @@ def _assemble(names: list[str], rows: list[tuple[int, Sequence[Any]]], header_ro
     if len(keep) < width:
         body = [[r[j] for j in keep] for r in body]
     columns = [names[j] for j in keep]
-    return columns, body, np.array([n for n, _ in rows], dtype=np.int64)
+    return columns, body, np.array([n for n, _ in rows], dtype=np.int64), row_names
+
+
+def _row_names(names: list[str], body: list[list[Any]], position, notes: list[dict]) -> list[str] | None:
+    """A first column with an empty header holding 1, 2, ..., n, or a label per row, all
+    different: row labels as some statistics programs write them, not data."""
+    if len(names) < 2 or names[0] or not body:
+        return None
+    cells = [r[0] for r in body]
+    if any(_blank_cell(c) for c in cells):
+        return None
+    labels = [_header_name(c) if not isinstance(c, str) else c.strip() for c in cells]
+    if len(set(labels)) != len(labels):
+        return None
+    counting = labels == [str(i) for i in range(1, len(labels) + 1)]
+    what = f"1 to {len(labels)}" if counting else "a different label in every row"
+    notes.append({"code": "row_names", "message": (
+        f"column {position(1)} has no name in the header and holds {what}: it was read as row "
+        "labels, not as data (as some statistics programs write a table with row names)")})
+    return labels
 
 
 def _apply_decimal(body: list[list[Any]], delim: str) -> str:
@@ -587,11 +619,28 @@ def _read_xlsx(data: bytes, source: str, sheet: str | int | None) -> dict:
                 "and not password-protected, or save it again as .xlsx or .csv",
                 file=source) from None
         try:
-            title = _pick_sheet(wb.sheetnames, sheet, source)
-            rows = _sheet_rows(wb, title, source)
+            if sheet is None and len(wb.sheetnames) > 1:
+                every = {t: _sheet_rows(wb, t, source) for t in wb.sheetnames}
+                sheets = [_sheet_size(t, r) for t, r in every.items()]
+                title = _choose_sheet(sheets)
+                rows = every[title]
+            else:
+                title = _pick_sheet(wb.sheetnames, sheet, source)
+                rows = _sheet_rows(wb, title, source)
+                sheets = [_sheet_size(title, rows)]
+                if len(wb.sheetnames) > 1:  # the others' names and sizes, for the listing
+                    sheets = [_sheet_size(t, rows if t == title else _sheet_rows(wb, t, source))
+                              for t in wb.sheetnames]
         finally:
             wb.close()
         notes: list[dict] = []
+        if len(sheets) > 1:
+            listed = "; ".join(f"'{d['name']}' ({d['rows']} rows, {d['columns']} columns)" for d in sheets)
+            why = ("chosen as the sheet with the most rows under item-like columns" if sheet is None
+                   else "as asked")
+            notes.append({"code": "sheet_chosen", "message": (
+                f"the workbook has {len(sheets)} sheets: {listed}; sheet '{title}' was read ({why}). "
+                "To read another, name it with --sheet (or the option sheet)")})
         if _has_uncomputed(rows, data):
             wb = open_book(False)
             try:
@@ -615,12 +664,32 @@ def _read_xlsx(data: bytes, source: str, sheet: str | int | None) -> dict:
                     for _, r in [(header_row, header)] + body_rows), default=-1)
     header = [_header_name(v) for v in header[: last_col + 1]]
     body_rows = [(n, list(r[: last_col + 1])) for n, r in body_rows]
-    columns, body, row_numbers = _assemble(
+    columns, body, row_numbers, row_names = _assemble(
         header, body_rows, header_row, source, position=_letter,
         extra_hint="Clear that cell if it is not part of the data", notes=notes)
     frame = _frame(columns, body)
     _note_blank_rows(blank_inside, notes)
-    return dict(frame=frame, row_numbers=row_numbers, sheet=title, warnings=notes)
+    names = {d["name"]: d.pop("names") for d in sheets}
+    names[title] = list(columns)
+    return dict(frame=frame, row_numbers=row_numbers, sheet=title, warnings=notes, sheets=sheets,
+                sheet_columns=names, row_names=row_names)
+
+
+def _sheet_size(title: str, rows: list[list[Any]]) -> dict:
+    """A sheet's name, data rows, named columns and item-like columns (by the draft's naming
+    rules), from its first non-blank row as the header."""
+    numbered = [(i + 1, r) for i, r in enumerate(rows)]
+    _, header, body, _ = _split_header(numbered, _is_blank)
+    names = [h for h in (_header_name(v) for v in header) if h]
+    return {"name": title, "rows": len(body), "columns": len(names),
+            "item_like": sum(item_stem(n) is not None for n in names), "names": names}
+
+
+def _choose_sheet(sheets: list[dict]) -> str:
+    """The sheet that holds the respondents: the most rows among sheets with at least two
+    item-like columns; else the most rows; the first such sheet on a tie."""
+    best = max(range(len(sheets)), key=lambda i: (sheets[i]["item_like"] >= 2, sheets[i]["rows"], -i))
+    return sheets[best]["name"]
 
 
 def _pick_sheet(names: list[str], sheet: str | int | None, source: str) -> str:
@@ -636,7 +705,8 @@ def _pick_sheet(names: list[str], sheet: str | int | None, source: str) -> str:
                         f"{len(names)} sheet(s): {listed}", file=source)
     if sheet in names:
         return sheet
-    raise DataError(f"sheet '{sheet}' not found; the workbook has sheets {listed}", file=source)
+    raise DataError(f"sheet '{sheet}' not found{did_you_mean(str(sheet), names)}; the workbook has "
+                    f"sheets {listed}", file=source)
 
 
 def _sheet_rows(wb, title: str, source: str) -> list[list[Any]]:
@@ -759,10 +829,12 @@ def _read_sav(data: bytes, source: str) -> dict:
             "answers marked as missing values in the SPSS file were read as missing: "
             + ", ".join(applied[:10]) + (", ..." if len(applied) > 10 else ""))})
     labels = {str(k): dict(v) for k, v in (meta.variable_value_labels or {}).items()}
+    var_labels = {str(k): str(v) for k, v in (getattr(meta, "column_names_to_labels", None) or {}).items()
+                  if isinstance(v, str) and v.strip()}
     return dict(frame=df.reset_index(drop=True), row_numbers=np.arange(1, len(df) + 1,
                                                                        dtype=np.int64),
                 encoding=getattr(meta, "file_encoding", None), value_labels=labels,
-                user_missing=user_missing, warnings=notes)
+                variable_labels=var_labels, user_missing=user_missing, warnings=notes)
 
 
 # --------------------------------------------------------------------------- entry point
@@ -809,6 +881,46 @@ def load_table(source: str | os.PathLike | bytes, *, name: str | None = None,
         parts = _read_text(data, label, fmt)
     return LoadedTable(row_label="case" if fmt == "sav" else "row", format=fmt, source=label,
                        sha256=hashlib.sha256(data).hexdigest(), size_bytes=len(data), **parts)
+
+
+def text_answers(table: LoadedTable, columns: Sequence[str] | None = None, *,
+                 limit: int = 50) -> dict[str, dict]:
+    """Columns (item-like by name, or the ``columns`` given) whose cells hold answer texts:
+    text that is not a number, not blank and not a word for "no answer" (NA, n/a, ...).
+
+    Returns ``{column: {"row": first row, "text": its text, "texts": distinct texts (up to
+    ``limit``, in order of appearance), "rows": the first row of each, "more": whether there
+    were more}}``.
+    """
+    out: dict[str, dict] = {}
+    names = [str(c) for c in table.frame.columns]
+    wanted = list(columns) if columns is not None else [c for c in names if item_stem(c) is not None]
+    for col in wanted:
+        if col not in table.frame.columns:
+            continue
+        s = table.frame[col]
+        if pd.api.types.is_numeric_dtype(s.dtype) or pd.api.types.is_datetime64_any_dtype(s.dtype):
+            continue
+        first = None
+        texts: dict[str, int] = {}
+        more = False
+        for i, v in enumerate(s.to_numpy(dtype=object)):
+            if not isinstance(v, str):
+                continue
+            t = v.strip()
+            if not t or t.lower() in MISSING_WORDS or _NUMBER_TEXT.fullmatch(t) or t.startswith("="):
+                continue
+            if first is None:
+                first = (int(table.row_numbers[i]), t)
+            if t not in texts:
+                if len(texts) >= limit:
+                    more = True
+                    continue
+                texts[t] = int(table.row_numbers[i])
+        if first is not None:
+            out[col] = {"row": first[0], "text": first[1], "texts": list(texts),
+                        "rows": list(texts.values()), "more": more}
+    return out
 
 
 def _too_large(size: int, limit: int, label: str) -> DataError:

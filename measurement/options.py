@@ -6,6 +6,7 @@ from collections.abc import Mapping
 from dataclasses import asdict, dataclass, fields
 from typing import Any
 
+from .design import did_you_mean
 from .errors import InputError
 
 MISSING_METHODS = ("listwise", "fiml")
@@ -33,9 +34,13 @@ class AnalysisOptions:
         known = {f.name for f in fields(cls)}
         unknown = sorted(set(obj) - known)
         if unknown:
-            raise InputError(f"unknown option '{unknown[0]}'; allowed: {', '.join(sorted(known))}",
+            raise InputError(f"unknown option '{unknown[0]}'{did_you_mean(unknown[0], known)}; "
+                             f"allowed: {', '.join(sorted(known))}",
                              code="bad_options", field=f"options.{unknown[0]}")
-        opts = cls(**dict(obj))
+        values = dict(obj)
+        if isinstance(values.get("missing"), str):  # "FIML" means "fiml"
+            values["missing"] = values["missing"].strip().lower()
+        opts = cls(**values)
         opts.validate()
         return opts
 
@@ -44,7 +49,8 @@ class AnalysisOptions:
             return InputError(msg, code="bad_options", field=f"options.{name}")
 
         if self.missing not in MISSING_METHODS:
-            raise bad("missing", f"must be one of {', '.join(MISSING_METHODS)}, got {self.missing!r}")
+            hint = did_you_mean(self.missing, MISSING_METHODS) if isinstance(self.missing, str) else ""
+            raise bad("missing", f"must be one of {', '.join(MISSING_METHODS)}, got {self.missing!r}{hint}")
         if not isinstance(self.drop_flagged, bool):
             raise bad("drop_flagged", "must be true or false")
         for name, lo, hi in (("fit_time_limit", 0.1, 3600.0), ("confidence", 0.5, 0.999)):

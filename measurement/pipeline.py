@@ -26,6 +26,7 @@ from .paths_report import paths_section
 from .prepare import PreparedData, prepare
 from .reliability_report import construct_reliability
 from .report import finalize_report, finite_or_none
+from .review import review_section
 from .screening import screen_respondents
 from .teams_report import teams_section
 
@@ -117,6 +118,8 @@ def analyze(
         "options": opts.to_dict(),
         "design": dsg.to_dict(),
     }
+    # Review before use (measurement/review.py): after every section it reads from.
+    report.update(review_section(constructs, dsg, scale_source=prepared.scale_source))
     report = finalize_report(report, warnings=warnings, options=opts)
     step("report", total, total)
     return Analysis(report=report, prepared=prepared, plan=plan, fits=fits)

@@ -18,13 +18,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .design import Design, check_columns
-from .errors import DataError
-from .loading import LoadedTable
-
-# Text that survey and statistics exports write for "no answer"; read as blank, with a
-# warning, because missing_codes can only hold numbers.
-MISSING_WORDS = frozenset({"na", "n/a", "#n/a", "nan", ".", "null"})
+from .design import Design, answer_key, check_columns, did_you_mean
+from .errors import DataError, DesignError
+from .loading import MISSING_WORDS, LoadedTable  # missing words: read as blank, with a warning
 
 _NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
 _COMMA_NUMBER = re.compile(r"[+-]?\d*,\d+")
@@ -68,8 +64,12 @@ def _rows_text(label: str, rows: list[int], limit: int = 5) -> str:
     return f"{label}s " + ", ".join(shown) + more
 
 
-def _read_column(s: pd.Series) -> tuple[np.ndarray, np.ndarray, Counter]:
-    """Numbers of one item column, a mask of cells that are not numbers, missing words."""
+def _read_column(s: pd.Series, labels: dict[str, float | None] | None = None
+                 ) -> tuple[np.ndarray, np.ndarray, Counter]:
+    """Numbers of one item column, a mask of cells that are not numbers, missing words.
+
+    ``labels`` (keys from :func:`~measurement.design.answer_key`) turn answer texts into
+    numbers; a text labelled None is a missing answer (counted with the missing words)."""
     n = len(s)
     words: Counter = Counter()
     if pd.api.types.is_bool_dtype(s.dtype):
@@ -106,6 +106,12 @@ def _read_column(s: pd.Series) -> tuple[np.ndarray, np.ndarray, Counter]:
                     bad[i] = True
                 else:
                     vals[i] = f
+            elif labels and answer_key(t) in labels:
+                number = labels[answer_key(t)]
+                if number is None:
+                    words[t] += 1
+                else:
+                    vals[i] = number
             elif t.lower() in MISSING_WORDS:
                 words[t] += 1
             else:
@@ -144,8 +150,29 @@ def _what_is_wrong(v: Any) -> str:
     return "is not a number"
 
 
+def _text_advice(s: pd.Series, bad: np.ndarray, labels: dict[str, float | None]) -> str | None:
+    """For a column whose bad cells are answer texts: how to map them with answer_labels."""
+    texts = [str(v).strip() for v in s[bad].to_numpy(dtype=object)
+             if isinstance(v, str) and not _NUMBER.fullmatch(v.strip())
+             and not _COMMA_NUMBER.fullmatch(v.strip()) and not v.strip().startswith("=")]
+    if not texts:
+        return None
+    distinct = list(dict.fromkeys(texts))
+    shown = ", ".join(_show(t) for t in distinct[:8]) + (", ..." if len(distinct) > 8 else "")
+    if labels:
+        hint = did_you_mean(answer_key(distinct[0]), list(labels))
+        return (f"The design's answer_labels do not map {shown}{hint}: add them to answer_labels "
+                "(a text meaning no answer may map to null, or to a number listed in missing_codes)")
+    return (f"The answers in this column are texts ({shown}): map them to numbers with "
+            "answer_labels in the design, for example {\"Strongly disagree\": 1, ..., "
+            "\"Strongly agree\": 5} (samesource draft-design proposes it for scales it "
+            "recognises); a text meaning no answer may map to null, or to a number listed in "
+            "missing_codes")
+
+
 def _non_numeric_error(table: LoadedTable, col: str, s: pd.Series, bad: np.ndarray,
-                       others: list[str]) -> DataError:
+                       others: list[str], labels: dict[str, float | None] | None = None
+                       ) -> DataError:
     idx = np.flatnonzero(bad)
     first = idx[0]
     rows = table.row_numbers
@@ -160,6 +187,10 @@ def _non_numeric_error(table: LoadedTable, col: str, s: pd.Series, bad: np.ndarr
     if others:
         more += " Other items with cells that are not numbers: " + ", ".join(others[:5]) + (
             ", ..." if len(others) > 5 else "") + "."
+    advice = _text_advice(s, bad, labels or {})
+    if advice:
+        return DataError(f"the value {_show(value)} {_what_is_wrong(value)}.{more} {advice}",
+                         file=table.source, row=int(rows[first]), column=col, code="text_answers")
     return DataError(
         f"the value {_show(value)} {_what_is_wrong(value)}.{more} Item answers "
         "must be numbers: fix the value, or, if it stands for a missing answer, leave the "
@@ -204,7 +235,8 @@ def _label(v: Any) -> str | None:
 
 def prepare(table: LoadedTable, design: Design) -> PreparedData:
     """Numeric item data for ``design`` from ``table``; bad cells raise :class:`DataError`."""
-    check_columns(design, [str(c) for c in table.frame.columns], file=table.source)
+    check_columns(design, [str(c) for c in table.frame.columns], file=where_read(table),
+                  other_sheets={k: v for k, v in table.sheet_columns.items() if k != table.sheet})
     frame = table.frame
     items = design.items
     n = len(frame)
@@ -215,14 +247,15 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
     bad_cols: list[tuple[str, np.ndarray]] = []
     words: Counter = Counter()
     for j, col in enumerate(items):
-        vals, bad, w = _read_column(frame[col])
+        vals, bad, w = _read_column(frame[col], design.labels_for(col))
         matrix[:, j] = vals
         words.update(w)
         if bad.any():
             bad_cols.append((col, bad))
     if bad_cols:
         col, bad = bad_cols[0]
-        raise _non_numeric_error(table, col, frame[col], bad, [c for c, _ in bad_cols[1:]])
+        raise _non_numeric_error(table, col, frame[col], bad, [c for c, _ in bad_cols[1:]],
+                                 design.labels_for(col))
     if words:
         listed = ", ".join(f"'{k}' ({c}x)" for k, c in words.most_common())
         notes.append({"code": "text_missing_markers", "message": (
@@ -242,6 +275,7 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
                                [items[k] for k in cols[1:]])
         source = "design"
     else:
+        _refuse_values_apart(table, items, matrix)
         lo = hi = float("nan")
         source = "data"
 
@@ -302,6 +336,75 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
     return PreparedData(items=items_frame, ids=ids, groups=groups, scale_min=lo, scale_max=hi,
                         scale_source=source, n_rows=n,
                         missing_cells=int(np.isnan(matrix).sum()), warnings=notes, table=table)
+
+
+def where_read(table: LoadedTable) -> str:
+    """The file, and for a workbook the sheet read: "survey.xlsx (sheet 'Responses')"."""
+    return f"{table.source} (sheet '{table.sheet}')" if table.sheet else table.source
+
+
+def standing_apart(values: np.ndarray) -> tuple[list[float], tuple[float, float] | None]:
+    """Answer values that stand apart from the rest, as codes for "no answer" do, and the
+    range of the others (None when there are no answers).
+
+    Rules (common practice, see docs/design-file.md): beside answers of 1 or more, or more
+    than 2 below the lowest answer of 0 or more, negative values stand apart (-1, -9, -99;
+    not the -3 to 3 of a scale with a middle of 0); going up from the lowest answer, a value
+    more than 2 above the next lower one starts the values apart (9 beside 1 to 5); a value
+    written with nines alone (9, 99, 999) stands apart when the value one below it never
+    occurs (9 beside 1 to 7, not 9 on a 1 to 9 scale). Whole-number answers only, and at most
+    15 different answers besides those set apart: decimals or a wide range (a slider from 0
+    to 100) mean a scale of another kind, and nothing is set apart.
+    """
+    v = np.asarray(values, dtype=float)
+    v = v[~np.isnan(v)]
+    if v.size == 0:
+        return [], None
+    distinct = sorted(set(v.tolist()))
+    if not all(float(x).is_integer() for x in distinct):
+        return [], (distinct[0], distinct[-1])
+    apart: list[float] = []
+    core = distinct
+    low = [x for x in distinct if x < 0]
+    high = [x for x in distinct if x >= 0]
+    if low and high and (high[0] >= 1 or high[0] - low[-1] > 2):
+        apart += low
+        core = high
+    wide = [x for x in core if not (x >= 9 and set(str(int(x))) == {"9"})]
+    if len(wide) > 15:  # a wide scale (a slider): gaps are no sign of codes
+        return sorted(apart), (core[0], core[-1])
+    kept = [core[0]]
+    for x in core[1:]:
+        if x - kept[-1] > 2:
+            apart += [y for y in core if y >= x]
+            break
+        kept.append(x)
+    present = set(kept)
+    nines = [x for x in kept if x >= 9 and set(str(int(x))) == {"9"} and x - 1 not in present]
+    if nines and len(kept) > len(nines) + 1:
+        apart += nines
+        kept = [x for x in kept if x not in nines]
+    return sorted(set(apart)), (kept[0], kept[-1])
+
+
+def _refuse_values_apart(table: LoadedTable, items: list[str], matrix: np.ndarray) -> None:
+    """With no response_scale, codes such as 99 would become the top of the scale: refuse."""
+    apart, core = standing_apart(matrix.ravel())
+    if not apart or core is None:
+        return
+    counts = []
+    for code in apart[:6]:
+        cols = [items[j] for j in range(len(items)) if (matrix[:, j] == code).any()]
+        n = int((matrix == code).sum())
+        counts.append(f"{_num(code)} ({n}x, in {', '.join(cols[:3])}{', ...' if len(cols) > 3 else ''})")
+    codes = ", ".join(_num(c) for c in apart)
+    raise DesignError(
+        f"the design gives no response_scale, and the answers hold values that stand apart from "
+        f"the others ({_num(core[0])} to {_num(core[1])}): {'; '.join(counts)}. Taken as answers they "
+        f"would stretch the scale to {_num(min(apart + [core[0]]))} to {_num(max(apart + [core[1]]))}. "
+        f"If they are codes for no answer, add \"missing_codes\": [{codes}] to the design, and give "
+        f"the answer range, such as \"response_scale\": {{\"min\": {_num(core[0])}, \"max\": "
+        f"{_num(core[1])}}}", field="response_scale", file=table.source, code="values_apart")
 
 
 def _check_ids(ids: pd.Series, table: LoadedTable, col: str, notes: list[dict]) -> None:

@@ -20,9 +20,27 @@ def assumption_lines(report: dict) -> list[str]:
     return out
 
 
+def _review_block(report: dict) -> list[str]:
+    """"Review before use" at the top when report["review_needed"] (measurement/review.py)."""
+    if not report.get("review_needed"):
+        return []
+    lines = ["REVIEW BEFORE USE: this report may mislead until the design is corrected"]
+    for r in report.get("review_reasons") or []:
+        lines += [f"  ! {r['message']}", f"    fix: {r['fix']}"]
+    return lines + [""]
+
+
+def review_last_line(report: dict) -> str | None:
+    """The summary's last line when the report needs review, else None."""
+    if not report.get("review_needed"):
+        return None
+    n = len(report.get("review_reasons") or [])
+    return f"Review needed before use: {n} reason(s), listed at the top (report.json: review_reasons)."
+
+
 def text_summary(report: dict) -> str:
     d = report["data"]
-    lines = [
+    lines = _review_block(report) + [
         f"samesource {report['tool']['version']}: {d['file']}",
         f"  rows read {d['rows']}, analysed {d['rows_analyzed']} "
         f"({d['missing_handling']['description']}), items {d['items']}",
@@ -71,4 +89,6 @@ def text_summary(report: dict) -> str:
     if report.get("warnings"):
         lines += ["", f"  {len(report['warnings'])} warning(s):"]
         lines += [f"  - {w['message']}" for w in report["warnings"]]
+    if review_last_line(report):
+        lines += ["", review_last_line(report)]
     return "\n".join(lines)

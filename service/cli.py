@@ -27,8 +27,9 @@ def _parser() -> argparse.ArgumentParser:
     a.add_argument("data", help="survey data: .csv, .tsv, .txt, .xlsx or .sav")
     a.add_argument("--design", required=True, help="the study design (JSON)")
     a.add_argument("--out", default="samesource-report", help="output folder (default ./samesource-report)")
-    a.add_argument("--sheet", help="worksheet of an .xlsx file (default: the first)")
-    a.add_argument("--missing", choices=["listwise", "fiml"], default="listwise",
+    a.add_argument("--sheet", help="worksheet of an .xlsx file (default: the sheet with the most rows "
+                   "under item-like columns)")
+    a.add_argument("--missing", choices=["listwise", "fiml"], default="listwise", type=str.lower,
                    help="missing answers: drop incomplete rows (default) or full-information ML")
     a.add_argument("--drop-flagged", action="store_true",
                    help="drop rows that screening flags (by default they are reported and kept)")
@@ -42,11 +43,14 @@ def _parser() -> argparse.ArgumentParser:
                    help="confidence level of every interval, 0.5 to 0.999 (default 0.95)")
     a.add_argument("--min-group-size", type=int, default=5, metavar="N",
                    help="no group's numbers are shown for groups smaller than this (default 5)")
-    a.add_argument("--quiet", action="store_true", help="print only where the report is")
+    a.add_argument("--quiet", action="store_true",
+                   help="print only where the report is (no summary, no progress lines)")
 
-    d = sub.add_parser("draft-design", help="print a draft design inferred from column names")
+    d = sub.add_parser("draft-design", help="print a draft design inferred from the data "
+                       "(column names, answers, SPSS labels); what it left out goes to stderr")
     d.add_argument("data")
-    d.add_argument("--sheet")
+    d.add_argument("--sheet", help="worksheet of an .xlsx file (default: the sheet that holds the "
+                   "respondents)")
 
     s = sub.add_parser("serve", help="run the HTTP service (waitress)")
     s.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
@@ -131,6 +135,34 @@ class _TerminalProgress:
             self.width = 0
 
 
+class _LineProgress:
+    """Plain progress lines for logs and pipes (stderr not a terminal): one per stage, and
+    one per tenth of the bootstrap. The first comes once the data are read and checked
+    against the design, so that bad input still gets one message alone on stderr."""
+
+    def __init__(self, stream=None) -> None:
+        self.stream = stream or sys.stderr
+        self.last: tuple[str, int] | None = None
+
+    def __call__(self, stage: str, done: int, total: int) -> None:
+        if stage == "bootstrap":
+            tenth = (10 * done) // total if total else 10
+            if self.last == ("bootstrap", tenth) or (done and tenth == 0):
+                return
+            self.last = ("bootstrap", tenth)
+            text = f"samesource: bootstrap {done}/{total} replicates ({10 * tenth}%)"
+        else:
+            if (self.last is not None and self.last[0] == stage) or stage == "load":
+                return
+            self.last = (stage, 0)
+            text = f"samesource: {stage.replace('_', ' ')} (stage {min(done + 1, total)} of {total})"
+        self.stream.write(text + "\n")
+        self.stream.flush()
+
+    def clear(self) -> None:
+        pass
+
+
 def _analyze(args: argparse.Namespace) -> int:
     from measurement.design import load_design
     from measurement.options import AnalysisOptions
@@ -143,7 +175,7 @@ def _analyze(args: argparse.Namespace) -> int:
         "bootstrap": args.bootstrap, "min_group_size": args.min_group_size,
         "confidence": args.confidence,
     })
-    shown = _TerminalProgress() if not args.quiet and sys.stderr.isatty() else None
+    shown = None if args.quiet else _TerminalProgress() if sys.stderr.isatty() else _LineProgress()
     try:
         result = analyze(args.data, design, opts, progress=shown)
     finally:
@@ -164,6 +196,10 @@ def _analyze(args: argparse.Namespace) -> int:
         print(result.summary())
         print()
     print(f"Report: {out / 'report.html'} (data: report.json; tables: tables/ and tables.xlsx)")
+    from measurement.summary import review_last_line
+
+    if review_last_line(result.report):  # the last line says so (exit 0 all the same)
+        print(review_last_line(result.report))
     return 0
 
 
@@ -185,16 +221,24 @@ def write_outputs(report: dict, out: Path) -> None:
 
 
 def _draft(args: argparse.Namespace) -> int:
-    from measurement.design import draft_design
+    from measurement.drafting import draft_from_table
     from measurement.loading import load_table
-    from measurement.prepare import numeric_columns
 
     table = load_table(args.data, sheet=args.sheet)
-    draft = draft_design(table.frame.columns, numeric=numeric_columns(table))
-    print(json.dumps(draft, indent=2, ensure_ascii=False))
-    if not draft["constructs"]:
+    draft = draft_from_table(table)
+    print(json.dumps(draft.design, indent=2, ensure_ascii=False))
+    for w in table.warnings:
+        if w["code"] in ("sheet_chosen", "row_names"):
+            print(f"samesource: {w['message']}", file=sys.stderr)
+    for note in draft.notes:
+        print(f"samesource: drafted {note}", file=sys.stderr)
+    if draft.left_out:
+        print(f"samesource: {len(draft.left_out)} column(s) left out:", file=sys.stderr)
+        for d in draft.left_out:
+            print(f"  {d['column']}: {d['reason']}", file=sys.stderr)
+    if not draft.design["constructs"]:
         print("No constructs found: item columns are expected to be named stem + number "
-              "(sup1, sup2, ...). Write the design by hand.", file=sys.stderr)
+              "(sup1, clim_2, Q3_1, Q3r1, Q3.1, ...). Write the design by hand.", file=sys.stderr)
     return 0
 
 

@@ -60,6 +60,23 @@ class Database:
 
     def create_schema(self) -> None:
         Base.metadata.create_all(self.engine)
+        self._add_new_columns()
+
+    def _add_new_columns(self) -> None:
+        """Nullable columns added to a model after its table was created: ALTER TABLE ADD
+        COLUMN, so that a data folder from an earlier version keeps working."""
+        from sqlalchemy import inspect
+
+        insp = inspect(self.engine)
+        for table in Base.metadata.sorted_tables:
+            if not insp.has_table(table.name):
+                continue
+            have = {c["name"] for c in insp.get_columns(table.name)}
+            for col in table.columns:
+                if col.name not in have and col.nullable:
+                    kind = col.type.compile(dialect=self.engine.dialect)
+                    with self.engine.begin() as conn:
+                        conn.exec_driver_sql(f'ALTER TABLE {table.name} ADD COLUMN {col.name} {kind}')
 
     @contextmanager
     def reading(self) -> Iterator[Session]:

@@ -56,6 +56,8 @@ class Dataset(Base):
     numeric_columns: Mapped[list] = mapped_column(JSON)
     draft_design: Mapped[dict] = mapped_column(JSON)
     warnings: Mapped[list] = mapped_column(JSON, default=list)
+    # sheets, sheet, draft_left_out, draft_notes (added later: nullable, see db.create_schema)
+    details: Mapped[dict | None] = mapped_column(JSON, nullable=True)
     stored_path: Mapped[str] = mapped_column(String(500))  # relative to the data dir
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
 

@@ -103,6 +103,13 @@ class Store:
                                                 Dataset.tenant_id == tenant_id))
             return _dataset(ds) if ds else None
 
+    def find_dataset_by_sha256(self, tenant_id: str, sha256: str) -> dict | None:
+        """The tenant's earliest dataset holding exactly these bytes, if any."""
+        with self.db.reading() as s:
+            ds = s.scalar(select(Dataset).where(Dataset.tenant_id == tenant_id, Dataset.sha256 == sha256)
+                          .order_by(Dataset.created_at, Dataset.id).limit(1))
+            return _dataset(ds) if ds else None
+
     def list_datasets(self, tenant_id: str, *, limit: int, offset: int) -> tuple[list[dict], int]:
         with self.db.reading() as s:
             total = s.scalar(select(func.count()).select_from(Dataset)
@@ -297,6 +304,9 @@ class Store:
 # ---------------------------------------------------------------------- serialisation
 
 
+_DETAILS = ("sheet", "sheets", "draft_left_out", "draft_notes", "sheet_columns")
+
+
 def _dataset(ds: Dataset) -> dict:
     return {
         "id": ds.id,
@@ -310,6 +320,7 @@ def _dataset(ds: Dataset) -> dict:
         "created_at": iso(ds.created_at),
         "draft_design": ds.draft_design,
         "warnings": list(ds.warnings or []),
+        **{k: v for k, v in (ds.details or {}).items() if k in _DETAILS},
         "stored_path": ds.stored_path,
         "tenant_id": ds.tenant_id,
     }

@@ -136,8 +136,15 @@ def test_page_from_token_to_report(server_factory, tmp_path):
         # -- edit the draft into the study's design with the form controls
         for old, new in RENAME.items():
             construct(page, old).locator("input[data-role='name']").fill(new)
-        construct(page, "support").locator("[data-role='reverse'] label", has_text="sup4").click()
-        construct(page, "workload").locator("[data-role='reverse'] label", has_text="wld3").click()
+        # the draft reads the answers now: sup4 and wld3 run against their groups, so they come
+        # drafted as reverse-keyed (before, the test ticked them), and the scale 1 to 7 and the
+        # code -99 come filled in
+        for name, item in (("support", "sup4"), ("workload", "wld3")):
+            rev = construct(page, name).locator("[data-role='reverse'] input:checked")
+            assert [rev.nth(i).get_attribute("value") for i in range(rev.count())] == [item]
+        assert page.locator("#scale-min").input_value() == "1"
+        assert page.locator("#scale-max").input_value() == "7"
+        assert page.locator("#missing-codes").input_value() == "-99"
         construct(page, "weather").locator("select[data-role='role']").select_option("marker")
         construct(page, "impression").locator("select[data-role='role']").select_option("method")
 
@@ -256,7 +263,9 @@ def earlier_work(page, context, base: str, token: str, report_title: str) -> Non
     pulse = []
     for i in range(PAGE):
         r = requests.post(f"{base}/v1/datasets", headers=headers,
-                          files={"file": (f"pulse_{i + 1:02}.csv", TINY)}, timeout=30)
+                          # blank lines at the end make each file's bytes its own: the same
+                          # bytes again would be re-used as one dataset
+                          files={"file": (f"pulse_{i + 1:02}.csv", TINY + b"\n" * i)}, timeout=30)
         assert r.status_code == 201, r.text
         pulse.append(r.json()["id"])
     r = requests.post(f"{base}/v1/analyses", headers=headers, timeout=30,
@@ -349,3 +358,81 @@ def earlier_work(page, context, base: str, token: str, report_title: str) -> Non
     expect(page.locator("#status")).to_have_text("Deleted “staff_survey.csv” and its analyses.")
     assert len(dialogs) == 2 and all("“staff_survey.csv”" in m for m in dialogs)
     shot(page, "11-deleted")
+
+
+def test_page_offers_sheets_answer_texts_every_option_and_design_files(server_factory, tmp_path):
+    """A workbook with a cover sheet, answers as texts: the sheet read and the draft's answer
+    texts show; the answer range is required; every option reaches the analysis; the design
+    saves as a file and loads again; the tables workbook downloads (issue 12)."""
+    import io
+
+    import openpyxl
+    from test_arriving_files import AGREE, pulse, workbook_with_cover
+
+    df = pulse(n=200, code=None).drop(columns=["Q3_4_TEXT"])
+    for c in df.columns:
+        if c.startswith("Q"):
+            df[c] = [AGREE[int(v) - 1] for v in df[c]]
+    book = tmp_path / "pulse.xlsx"
+    book.write_bytes(workbook_with_cover(df))
+    server = server_factory(tmp_path / "data")
+    token = new_token(tmp_path / "data", "t")
+    problems: list[str] = []
+    with sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
+        context = browser.new_context(viewport={"width": 1280, "height": 900}, accept_downloads=True)
+        page = context.new_page()
+        page.on("pageerror", lambda e: problems.append(f"page error: {e}"))
+        page.goto(server.base + "/")
+        page.locator("#token").fill(token)
+        page.locator("#token-form button[type='submit']").click()
+        page.locator("#file").set_input_files(str(book))
+        page.locator("#upload-btn").click()
+        expect(page.locator("#design-step")).to_be_visible(timeout=30_000)
+        expect(page.locator("#dataset-sheets")).to_contain_text("Read: “Responses”")
+        expect(page.locator("#dataset-warnings")).to_contain_text("answer texts")
+        assert page.locator("#sheet").input_value() == "Responses"
+        labels = json.loads(page.locator("#answer-labels").input_value())
+        assert labels["Strongly agree"] == 5 and labels["Strongly disagree"] == 1
+        rev = construct(page, "q4").locator("[data-role='reverse'] input:checked")
+        assert [rev.nth(i).get_attribute("value") for i in range(rev.count())] == ["Q4_2", "Q4_4"]
+        shot(page, "10-answer-texts")
+
+        # the answer range is required
+        page.locator("#scale-max").fill("")
+        page.locator("#run-btn").click()
+        expect(page.locator("#alert")).to_contain_text("highest answer")
+        page.locator("#scale-max").fill("5")
+
+        # save the design as a file, change the form, load the file back
+        page.locator("#add-path").click()
+        path = page.locator("#paths .path").nth(0)
+        path.locator("select[data-role='outcome']").select_option(label="q4")
+        path.locator("[data-role='predictors'] label", has_text="q3").click()
+        with page.expect_download() as dl:
+            page.locator("#design-save").click()
+        saved = json.loads(Path(dl.value.path()).read_text())
+        assert saved["answer_labels"] == labels and saved["paths"] == [{"outcome": "q4", "predictors": ["q3"]}]
+        page.locator("#scale-min").fill("0")
+        page.locator("#design-file").set_input_files(dl.value.path())
+        expect(page.locator("#scale-min")).to_have_value("1")
+        assert design_json(page) == saved
+
+        # every option reaches the analysis
+        page.locator("#confidence").fill("0.9")
+        page.locator("#min_group_size").fill("7")
+        page.locator("#drop_flagged").check()
+        page.locator("#run-btn").click()
+        expect(page.locator("#an-status")).to_have_text("succeeded", timeout=120_000)
+        listed = requests.get(f"{server.base}/v1/analyses", headers={"Authorization": f"Bearer {token}"},
+                              timeout=30).json()["analyses"][0]
+        assert listed["options"]["confidence"] == 0.9 and listed["options"]["min_group_size"] == 7
+        assert listed["options"]["drop_flagged"] is True and listed["options"]["sheet"] is None
+        expect(page.locator("#download-tables")).to_be_visible()
+        with page.expect_download() as tables:
+            page.locator("#download-tables").click()
+        sheets = openpyxl.load_workbook(io.BytesIO(Path(tables.value.path()).read_bytes())).sheetnames
+        assert "constructs" in sheets
+        shot(page, "11-every-option")
+        browser.close()
+    assert not problems, problems

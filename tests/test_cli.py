@@ -169,7 +169,7 @@ def test_draft_design_prints_a_valid_design(tmp_path):
 
 def test_progress_line_on_a_terminal_only(tmp_path):
     # On a terminal stderr shows one line rewritten in place as the stages pass, then cleared;
-    # piped (as every other test here runs) stderr stays empty on success.
+    # piped (as every other test here runs) it gets plain lines instead.
     import os
     import pty
 
@@ -204,5 +204,11 @@ def test_progress_line_on_a_terminal_only(tmp_path):
     assert "\r  load (step 1 of 8)" in shown and "\r  bootstrap " in shown
     assert shown.endswith("\r")  # the line is cleared before the summary
 
+    # piped: plain lines, one per stage after the data are read (issue 12; stderr was empty
+    # here before), and none with --quiet
     piped = run(*args)
-    assert piped.returncode == 0 and piped.stderr == ""
+    lines = piped.stderr.splitlines()
+    assert piped.returncode == 0 and "\r" not in piped.stderr
+    assert lines[0] == "samesource: screen (stage 2 of 8)"
+    assert all(ln.startswith("samesource: ") for ln in lines)
+    assert run(*args, "--quiet").stderr == ""

@@ -194,11 +194,14 @@ def test_analysis_runs_in_the_background_and_reports(app, client, svc_survey):
 
 
 def test_data_problems_found_while_running_fail_the_analysis_naming_row_and_column(app, client):
+    # An answer outside the response scale shows only when the run reads the design's items.
+    # (This test used a text answer, "n/a?"; text answers are now refused when the analysis
+    # starts: test_unmapped_text_answers_are_refused_when_the_analysis_starts.)
     h = token_for(app, "typo")
     data, design = small_survey(n=120)
     lines = data.decode().splitlines()
     cells = lines[7].split(",")
-    cells[2] = "n/a?"  # sup2 of the 7th respondent: file row 8
+    cells[2] = "7"  # sup2 of the 7th respondent: file row 8, outside the scale 1 to 5
     lines[7] = ",".join(cells)
     ds = upload(client, h, ("\n".join(lines) + "\n").encode()).get_json()
     a = finished(client, h, start(client, h, ds["id"], design).get_json()["id"])
@@ -240,7 +243,8 @@ def test_delete_removes_the_dataset_its_file_and_its_analyses(tmp_path, svc_surv
         h = token_for(app, "deleter")
         data, design = svc_survey
         ds = upload(c, h, data).get_json()
-        keep = upload(c, h, data).get_json()
+        # other bytes: the same bytes again would be the same dataset (uploads are re-used)
+        keep = upload(c, h, data + b"\n").get_json()
         aids = [start(c, h, ds["id"], design).get_json()["id"] for _ in range(2)]
         other = start(c, h, keep["id"], design).get_json()["id"]
         r = c.delete(f"/v1/datasets/{ds['id']}", headers=h)
@@ -265,7 +269,7 @@ def test_another_tenants_ids_answer_404_on_every_object_route(app, client, svc_s
     ds = upload(client, owner, data).get_json()
     aid = start(client, owner, ds["id"], design).get_json()["id"]
     finished(client, owner, aid)
-    ids = {"dataset_id": ds["id"], "analysis_id": aid}
+    ids = {"dataset_id": ds["id"], "analysis_id": aid, "name": "constructs"}
 
     tried = set()
     for rule in v1_rules(app):
@@ -280,7 +284,9 @@ def test_another_tenants_ids_answer_404_on_every_object_route(app, client, svc_s
     assert tried == {("/v1/datasets/<dataset_id>", "GET"), ("/v1/datasets/<dataset_id>", "DELETE"),
                      ("/v1/analyses/<analysis_id>", "GET"),
                      ("/v1/analyses/<analysis_id>/report.json", "GET"),
-                     ("/v1/analyses/<analysis_id>/report.html", "GET")}
+                     ("/v1/analyses/<analysis_id>/report.html", "GET"),
+                     ("/v1/analyses/<analysis_id>/tables.xlsx", "GET"),
+                     ("/v1/analyses/<analysis_id>/tables/<name>.csv", "GET")}
     # an object named in a body is checked too
     assert_error(start(client, intruder, ds["id"], design), 404, "not_found", "dataset_id")
     # lists show only one's own
@@ -541,3 +547,80 @@ def test_refusals_quote_what_was_sent_only_briefly(client, app):
         assert 400 <= r.status_code < 500
         msg = r.get_json()["error"]["message"]
         assert len(msg) < 200 and "..." in msg, msg
+
+
+# ------------------------------------------------------------------ files as they arrive (issue 12)
+
+
+def test_upload_lists_sheets_and_reads_the_sheet_of_respondents(app, client):
+    from test_arriving_files import pulse, workbook_with_cover
+
+    h = token_for(app, "sheets")
+    r = upload(client, h, workbook_with_cover(pulse(n=60)), name="pulse.xlsx")
+    assert r.status_code == 201, r.get_json()
+    ds = r.get_json()
+    assert ds["sheet"] == "Responses" and ds["rows"] == 60
+    assert [(s["name"], s["chosen"]) for s in ds["sheets"]] == [
+        ("Cover", False), ("Questions", False), ("Responses", True)]
+    assert "sheet_columns" not in ds
+    assert ds["draft_design"]["missing_codes"] == [99]
+    assert {x["column"] for x in ds["draft_left_out"]} == {"Q3_4_TEXT"}
+    # an analysis of another sheet is checked against that sheet's columns
+    design = dict(ds["draft_design"], paths=[{"outcome": "q4", "predictors": ["q3"]}])
+    err = assert_error(start(client, h, ds["id"], design, {"sheet": "Cover"}), 400, "bad_design")
+    assert "sheet 'Responses'" in err["message"]
+    assert_error(start(client, h, ds["id"], design, {"sheet": "Responsez"}), 400, "bad_options")
+
+
+def test_text_answers_warn_on_upload_and_refuse_at_once_unless_mapped(app, client, tmp_path):
+    from test_arriving_files import text_export
+
+    h = token_for(app, "texts")
+    ds = upload(client, h, text_export(tmp_path).read_bytes()).get_json()
+    warned = {w["column"] for w in ds["warnings"] if w["code"] == "text_answers"}
+    assert warned == {f"Q{q}_{k}" for q in (3, 4) for k in range(1, 5)}
+    design = {"constructs": {"q3": {"items": ["Q3_1", "Q3_2", "Q3_3", "Q3_4"]}},
+              "response_scale": {"min": 1, "max": 5}}
+    err = assert_error(start(client, h, ds["id"], design), 422, "text_answers")
+    assert err["message"].count("Q3_1") >= 1 and "row 2" in err["message"]
+    assert "answer_labels" in err["message"]
+    # with the draft's answer_labels it starts, and runs
+    design["answer_labels"] = ds["draft_design"]["answer_labels"]
+    r = start(client, h, ds["id"], design)
+    assert r.status_code == 202, r.get_json()
+
+
+def test_the_same_bytes_again_are_the_same_dataset(app, client, svc_survey):
+    h, other = token_for(app, "twice"), token_for(app, "someone else")
+    data, _ = svc_survey
+    first = upload(client, h, data)
+    again = upload(client, h, data, name="renamed.csv")
+    assert first.status_code == 201 and again.status_code == 200
+    assert again.get_json()["id"] == first.get_json()["id"] and again.get_json()["reused"] is True
+    assert client.get("/v1/datasets", headers=h).get_json()["total"] == 1
+    # another tenant's upload of the same bytes is its own
+    theirs = upload(client, other, data)
+    assert theirs.status_code == 201 and theirs.get_json()["id"] != first.get_json()["id"]
+
+
+def test_tables_over_http_are_the_command_lines_files(app, client, svc_survey):
+    from measurement.tables import report_tables, tables_csv
+
+    h = token_for(app, "tables")
+    data, design = svc_survey
+    ds = upload(client, h, data).get_json()
+    a = finished(client, h, start(client, h, ds["id"], design).get_json()["id"])
+    assert a["status"] == "succeeded", a["error"]
+    files = tables_csv(report_tables(a["report"]))
+    for name, text in files.items():
+        r = client.get(f"/v1/analyses/{a['id']}/tables/{name}", headers=h)
+        assert r.status_code == 200 and r.mimetype == "text/csv"
+        assert r.get_data(as_text=True) == text
+    x = client.get(f"/v1/analyses/{a['id']}/tables.xlsx", headers=h)
+    assert x.status_code == 200 and x.get_data()[:2] == b"PK"
+    import openpyxl
+
+    sheets = openpyxl.load_workbook(io.BytesIO(x.get_data()), read_only=True).sheetnames
+    assert "constructs" in sheets
+    err = assert_error(client.get(f"/v1/analyses/{a['id']}/tables/constructz.csv", headers=h), 404)
+    assert "did you mean 'constructs'" in err["message"]

@@ -47,7 +47,7 @@ def test_the_document_is_valid_openapi_3_1(doc):
 
 
 def openapi_path(rule: str) -> str:
-    return re.sub(r"<(?:[^:>]+:)?[^>]+>", "{id}", rule)
+    return re.sub(r"<(?:[^:>]+:)?([^>]+)>", lambda m: "{name}" if m.group(1) == "name" else "{id}", rule)
 
 
 def test_every_flask_route_is_described_and_nothing_else(app, doc):
@@ -120,6 +120,9 @@ def test_real_responses_validate_against_the_documented_schemas(app, headers, do
     up = upload(data)
     check("/v1/datasets", "post", up)
     ds = up.get_json()
+    again = upload(data)  # the same bytes: the same dataset, 200
+    check("/v1/datasets", "post", again)
+    assert again.status_code == 200 and again.get_json()["id"] == ds["id"] and again.get_json()["reused"]
     check("/v1/datasets", "post", upload(b"\x89PNG\r\n\x1a\n\x00\x00"))
     check("/v1/datasets", "post", upload(b"a,b\n1,2\n3,4,5\n"))
     check("/v1/datasets", "post", c.post("/v1/datasets", headers=headers, data={},
@@ -158,6 +161,11 @@ def test_real_responses_validate_against_the_documented_schemas(app, headers, do
           c.get(f"/v1/analyses/{aid}/report.html", headers=headers))
     check("/v1/analyses/{id}/report.html", "get",
           c.get("/v1/analyses/an_none/report.html", headers=headers))
+    check("/v1/analyses/{id}/tables.xlsx", "get", c.get(f"/v1/analyses/{aid}/tables.xlsx", headers=headers))
+    check("/v1/analyses/{id}/tables/{name}.csv", "get",
+          c.get(f"/v1/analyses/{aid}/tables/constructs.csv", headers=headers))
+    check("/v1/analyses/{id}/tables/{name}.csv", "get",
+          c.get(f"/v1/analyses/{aid}/tables/nosuch.csv", headers=headers))
     check("/v1/datasets/{id}", "delete", c.delete(f"/v1/datasets/{ds['id']}", headers=headers))
     check("/v1/datasets/{id}", "delete", c.delete(f"/v1/datasets/{ds['id']}", headers=headers))
 

@@ -1,10 +1,10 @@
 """/v1/analyses: start an analysis of a dataset, follow it, read its report.
 
 POST validates everything it can before answering 202: the JSON body, the design (parsed,
-and checked against the dataset's columns), the options. Problems with the data values
-that only a design reveals (a text answer in an item column, an answer outside the
-response scale) are found when the analysis runs, and become its error, naming row and
-column.
+and checked against the columns of the sheet to be read), the options, and the answer texts
+the upload found in the design's items (422 when answer_labels do not map one). Problems
+only the run reveals (an answer outside the response scale) become the analysis's error,
+naming row and column.
 """
 
 from __future__ import annotations
@@ -17,8 +17,9 @@ import re
 
 from flask import Blueprint, Response, jsonify, request
 
-from measurement.design import check_columns, parse_design
-from measurement.errors import InputError
+from measurement.design import Design, answer_key, check_columns, did_you_mean, parse_design
+from measurement.errors import DataError, InputError
+from measurement.loading import MISSING_WORDS
 from measurement.options import AnalysisOptions
 
 from ..context import services
@@ -126,10 +127,19 @@ def create() -> tuple[Response, int]:
         raise from_input_error(e) from None
     try:
         design = parse_design(body["design"])
-        if options.sheet is None:  # the summary's columns are the first sheet's
-            check_columns(design, ds["columns"], file=ds["name"])
+        columns = _sheet_columns(ds, options.sheet)
+        if columns is not None:
+            read = ds.get("sheet") if options.sheet is None else options.sheet
+            others = {k: v for k, v in (ds.get("sheet_columns") or {}).items() if k != read}
+            check_columns(design, columns, file=f"{ds['name']} (sheet '{read}')" if read else ds["name"],
+                          other_sheets=others)
     except InputError as e:
         raise from_input_error(e, field_prefix="design") from None
+    if options.sheet is None or options.sheet == ds.get("sheet"):
+        try:
+            _check_texts(design, ds)
+        except InputError as e:
+            raise from_input_error(e) from None
     a = svc.store.add_analysis(tenant_id(), dataset_id, body["design"], options.to_dict())
     if svc.runner is not None:
         svc.runner.notify()
@@ -138,6 +148,41 @@ def create() -> tuple[Response, int]:
                     "created_at": a["created_at"]})
     resp.headers["Location"] = f"/v1/analyses/{a['id']}"
     return resp, 202
+
+
+def _sheet_columns(ds: dict, sheet: str | None) -> list[str] | None:
+    """The columns of the sheet an analysis will read (None: not known from the upload)."""
+    if sheet is None or sheet == ds.get("sheet"):
+        return ds["columns"]
+    by_sheet = ds.get("sheet_columns") or {}
+    if sheet in by_sheet:
+        return by_sheet[sheet]
+    if by_sheet:
+        raise ApiError(400, "bad_options", f"sheet {echo(sheet)} not found{did_you_mean(sheet, by_sheet)}; "
+                       f"the workbook has sheets {', '.join(repr(k) for k in by_sheet)}", "options.sheet")
+    return None
+
+
+def _check_texts(design: Design, ds: dict) -> None:
+    """422 at once when an item holds answer texts the design's answer_labels do not map."""
+    found = {w["column"]: w for w in ds.get("warnings") or [] if w.get("code") == "text_answers"
+             and isinstance(w.get("column"), str)}
+    for item in design.items:
+        w = found.get(item)
+        if w is None:
+            continue
+        labels = design.labels_for(item)
+        rows = w.get("rows") or [w.get("row")] * len(w.get("texts") or [])
+        for text, row in zip(w.get("texts") or [], rows, strict=False):
+            if answer_key(text) in labels or text.strip().lower() in MISSING_WORDS:
+                continue
+            hint = did_you_mean(answer_key(text), list(labels)) if labels else ""
+            advice = (f"answer_labels has no entry for it{hint}; add it (a text meaning no answer may map to null)"
+                      if labels else "map the answer texts to numbers with answer_labels in the design, "
+                      "for example {\"Strongly disagree\": 1, ..., \"Strongly agree\": 5} (the dataset's "
+                      "draft_design proposes it for scales it recognises)")
+            raise DataError(f"item '{item}' holds the answer text {text!r}, not a number: {advice}",
+                            file=ds["name"], row=row, column=item, code="text_answers")
 
 
 def _found(analysis_id: str, *, with_report: bool = False) -> dict:
@@ -201,7 +246,42 @@ def report_html(analysis_id: str) -> Response:
     return Response(render(json.loads(text)), status=200, mimetype="text/html")
 
 
+XLSX = "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"
+
+
+def _tables(analysis_id: str) -> dict:
+    from measurement.tables import report_tables
+
+    return report_tables(json.loads(_finished(_found(analysis_id, with_report=True))))
+
+
+def tables_xlsx(analysis_id: str) -> Response:
+    """The report's tables as one workbook, the command line's tables.xlsx."""
+    from measurement.tables import tables_xlsx as workbook
+
+    resp = Response(workbook(_tables(analysis_id)), status=200, mimetype=XLSX)
+    resp.headers["Content-Disposition"] = f'attachment; filename="{analysis_id}-tables.xlsx"'
+    return resp
+
+
+def table_csv(analysis_id: str, name: str) -> Response:
+    """One table as CSV, as the command line writes it into tables/."""
+    from measurement.tables import tables_csv
+
+    files = tables_csv(_tables(analysis_id))
+    want = f"{name}.csv"
+    if want not in files:
+        names = [f[:-4] for f in files]
+        raise ApiError(404, "not_found", f"no table {echo(name)}{did_you_mean(name, names)}; the "
+                       f"tables are {', '.join(names)}", "name")
+    resp = Response(files[want], status=200, mimetype="text/csv")
+    resp.headers["Content-Disposition"] = f'attachment; filename="{want}"'
+    return resp
+
+
 def add_routes(bp: Blueprint) -> None:
+    bp.add_url_rule("/analyses/<analysis_id>/tables.xlsx", "tables_xlsx", tables_xlsx, methods=["GET"])
+    bp.add_url_rule("/analyses/<analysis_id>/tables/<name>.csv", "table_csv", table_csv, methods=["GET"])
     bp.add_url_rule("/analyses", "create_analysis", create, methods=["POST"])
     bp.add_url_rule("/analyses", "list_analyses", list_all, methods=["GET"])
     bp.add_url_rule("/analyses/<analysis_id>", "get_analysis", get_one, methods=["GET"])

@@ -9,8 +9,9 @@ import re
 from flask import Blueprint, Response, jsonify, request
 
 from measurement.design import draft_design
+from measurement.drafting import Draft, draft_from_table
 from measurement.errors import InputError
-from measurement.loading import load_table
+from measurement.loading import LoadedTable, load_table, text_answers
 from measurement.prepare import numeric_columns
 
 from .. import uploads
@@ -26,7 +27,7 @@ _UNSAFE = re.compile(r"[\x00-\x1f\x7f/\\]")
 
 
 def public(ds: dict) -> dict:
-    return {k: v for k, v in ds.items() if k not in ("stored_path", "tenant_id")}
+    return {k: v for k, v in ds.items() if k not in ("stored_path", "tenant_id", "sheet_columns")}
 
 
 def _file_name(raw: str | None) -> str:
@@ -34,6 +35,43 @@ def _file_name(raw: str | None) -> str:
     name = os.path.basename((raw or "").replace("\\", "/")).strip()
     name = _UNSAFE.sub("_", name)[:200]
     return name or "upload"
+
+
+def text_warnings(table: LoadedTable, mapped: set[str]) -> list[dict]:
+    """A ``text_answers`` warning per item-like column holding answer texts; ``mapped``
+    columns (the draft's answer_labels cover them) say so."""
+    out = []
+    for col, info in text_answers(table).items():
+        shown = ", ".join(repr(t) for t in info["texts"][:6]) + (", ..." if len(info["texts"]) > 6 else "")
+        if col in mapped:
+            advice = "the draft design maps them with answer_labels: check the numbers"
+        else:
+            advice = ("map them to numbers with answer_labels in the design before starting an "
+                      "analysis of this item")
+        out.append({"code": "text_answers", "column": col, "row": info["row"], "text": info["text"],
+                    "texts": info["texts"], "rows": info["rows"], "message": (
+                        f"column '{col}' holds answer texts ({shown}; first in {table.row_label} "
+                        f"{info['row']}), not numbers; {advice}")})
+    return out
+
+
+def _draft(table: LoadedTable, columns: list[str], numeric: list[str]) -> Draft:
+    """The draft from the answers; from the names alone should reading the answers fail
+    on something unforeseen (an upload is never refused for its draft)."""
+    try:
+        return draft_from_table(table)
+    except Exception as e:  # noqa: BLE001 - the draft is a convenience, the upload is what counts
+        log.warning("draft from the answers failed (%s); drafted from the names", e.__class__.__name__)
+        left: list[dict] = []
+        return Draft(design=draft_design(columns, numeric=numeric, left_out=left), left_out=left)
+
+
+def _reused(existing: dict) -> tuple[Response, int]:
+    out = public(existing)
+    out["reused"] = True
+    resp = jsonify(out)
+    resp.headers["Location"] = f"/v1/datasets/{existing['id']}"
+    return resp, 200
 
 
 def upload() -> tuple[Response, int]:
@@ -54,11 +92,17 @@ def upload() -> tuple[Response, int]:
         raise ApiError(413, "too_large", f"the file is over the upload limit of "
                        f"{cfg.max_upload_mb:g} MB; remove columns the analysis does not use, or "
                        "split the file", "file") from None
+    existing = svc.store.find_dataset_by_sha256(tenant_id(), spooled.sha256)
+    if existing is not None:  # the same bytes again: answer the dataset already stored
+        spooled.discard()
+        log.info("upload of %d bytes is dataset %s again; not stored twice", spooled.size, existing["id"])
+        return _reused(existing)
     try:
         try:
             table = load_table(spooled.read_bytes(), name=name, max_bytes=cfg.max_upload_bytes)
             columns = [str(c) for c in table.frame.columns]
             numeric = numeric_columns(table)
+            draft = _draft(table, columns, numeric)
         except InputError as e:
             err = from_input_error(e)
             if err.field is None:
@@ -71,12 +115,18 @@ def upload() -> tuple[Response, int]:
     except BaseException:
         spooled.discard()
         raise
+    mapped = {i for c in draft.design["constructs"].values() for i in c["items"]} \
+        if draft.design.get("answer_labels") else set()
+    sheets = [dict(d, chosen=d["name"] == table.sheet) for d in table.sheets]
+    details = {"sheet": table.sheet, "sheets": sheets, "draft_left_out": draft.left_out,
+               "draft_notes": draft.notes, "sheet_columns": table.sheet_columns}
     try:
         ds = svc.store.add_dataset(
             tenant_id(), dataset_id, name=name, format=table.format, sha256=spooled.sha256,
             size_bytes=spooled.size, rows=int(len(table.frame)), columns=columns,
-            numeric_columns=numeric, draft_design=draft_design(columns, numeric=numeric),
-            warnings=list(table.warnings), stored_path=rel)
+            numeric_columns=numeric, draft_design=draft.design,
+            warnings=list(table.warnings) + text_warnings(table, mapped), details=details,
+            stored_path=rel)
     except BaseException:
         uploads.remove(cfg.data_dir, rel)
         raise

@@ -40,6 +40,9 @@ _PAGE = [
 ]
 _AUTH_ERRORS = {"401": _error("No API token, or not a valid one")}
 
+XLSX = "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"
+_LABELS = {"type": "object", "additionalProperties": {"type": ["number", "null"]}, "description": "answer texts to numbers (null: no answer), matched without regard to case and spaces"}
+
 SCHEMAS: dict[str, Any] = {
     "ErrorObject": {
         "type": "object",
@@ -75,6 +78,7 @@ SCHEMAS: dict[str, Any] = {
                     "items": {"type": "array", "items": {"type": "string"}},
                     "reverse": {"type": "array", "items": {"type": "string"}},
                     "role": {"enum": ["substantive", "marker", "method"]},
+                    "answer_labels": _LABELS,
                 }}},
             "paths": {"type": "array", "items": {
                 "type": "object", "required": ["outcome", "predictors"],
@@ -85,6 +89,7 @@ SCHEMAS: dict[str, Any] = {
             "missing_codes": {"type": "array", "items": {"type": "number"}},
             "id_column": {"type": "string"},
             "group_column": {"type": "string"},
+            "answer_labels": _LABELS,
         },
     },
     "Options": {
@@ -92,7 +97,8 @@ SCHEMAS: dict[str, Any] = {
         "additionalProperties": False,
         "description": "Analysis options; every one is optional.",
         "properties": {
-            "missing": {"enum": ["listwise", "fiml"], "default": "listwise"},
+            "missing": {"type": "string", "default": "listwise",
+                        "description": "listwise or fiml (matched without regard to case)"},
             "drop_flagged": {"type": "boolean", "default": False},
             "fit_time_limit": {"type": "number", "minimum": 0.1, "maximum": 3600, "default": 60},
             "n_starts": {"type": "integer", "minimum": 1, "maximum": 50, "default": 4},
@@ -120,8 +126,25 @@ SCHEMAS: dict[str, Any] = {
             "size_bytes": {"type": "integer"},
             "created_at": {"type": "string", "format": "date-time"},
             "draft_design": {"type": "object",
-                             "description": "a design inferred from the column names, to edit"},
-            "warnings": {"type": "array", "items": _ref("Warning")},
+                             "description": ("a design inferred from the column names, the answers "
+                                             "and SPSS labels, to edit (docs/design-file.md, Drafting)")},
+            "warnings": {"type": "array", "items": _ref("Warning"), "description": (
+                "what the reader noticed; code text_answers (with column, row, text, texts) for "
+                "item-like columns holding answer texts")},
+            "sheet": {"type": ["string", "null"], "description": "the workbook sheet read"},
+            "sheets": {"type": "array", "description": "a workbook's sheets and their sizes",
+                       "items": {"type": "object", "properties": {
+                           "name": {"type": "string"}, "rows": {"type": "integer"},
+                           "columns": {"type": "integer"}, "item_like": {"type": "integer"},
+                           "chosen": {"type": "boolean"}}}},
+            "draft_left_out": {"type": "array", "description": "columns the draft left out, and why",
+                               "items": {"type": "object", "properties": {
+                                   "column": {"type": "string"}, "reason": {"type": "string"}}}},
+            "draft_notes": {"type": "array", "items": {"type": "string"},
+                            "description": "what the draft inferred from the answers, to check"},
+            "reused": {"type": "boolean", "description": (
+                "true when the same tenant had already uploaded these bytes: the earlier "
+                "dataset is answered (200) and no second copy is stored")},
         },
     },
     "DatasetList": {
@@ -203,6 +226,14 @@ SCHEMAS: dict[str, Any] = {
             "teams": {"type": ["object", "null"], "description": "null without a group_column"},
             "cautions": {"type": "array", "items": {"type": "string"}},
             "warnings": {"type": "array", "items": _ref("Warning")},
+            "review_needed": {"type": "boolean",
+                              "description": "true when the report may mislead until the design is corrected"},
+            "review_reasons": {"type": "array", "items": {
+                "type": "object", "required": ["code", "message", "items", "fix"],
+                "properties": {"code": {"type": "string"}, "message": {"type": "string"},
+                               "items": {"type": "array", "items": {"type": "string"}},
+                               "fix": {"type": "string"},
+                               "construct": {"type": ["string", "null"]}}}},
         },
     },
     "Health": {
@@ -234,6 +265,8 @@ def document() -> dict:
                         "file": {"type": "string", "contentMediaType": "application/octet-stream",
                                  "description": ".csv, .tsv, .txt, .xlsx or .sav"}}}}}},
                 "responses": {
+                    "200": _json(_ref("Dataset"), "The same tenant had uploaded these bytes "
+                                 "already: that dataset (reused: true), no second copy stored"),
                     "201": _json(_ref("Dataset"), "Stored; the summary of what was read"),
                     "400": _error("No field 'file' in the form"),
                     **_AUTH_ERRORS,
@@ -305,6 +338,27 @@ def document() -> dict:
                                   **_AUTH_ERRORS,
                                   "404": _error("No such analysis, or (code not_available) no "
                                                 "HTML report in this version"),
+                                  "409": _error("Not finished yet, or failed")}},
+        },
+        "/v1/analyses/{id}/tables.xlsx": {
+            "parameters": [_ID],
+            "get": {"summary": "The report's tables as one workbook (a sheet per table), as the "
+                               "command line writes tables.xlsx", "operationId": "getTablesXlsx",
+                    "responses": {"200": {"description": "The workbook", "content": {
+                        XLSX: {"schema": {"type": "string", "contentMediaType": XLSX}}}},
+                                  **_AUTH_ERRORS, "404": not_found,
+                                  "409": _error("Not finished yet, or failed")}},
+        },
+        "/v1/analyses/{id}/tables/{name}.csv": {
+            "parameters": [_ID, {"name": "name", "in": "path", "required": True,
+                                 "schema": {"type": "string"},
+                                 "description": "a table's name, as in the command line's tables/ folder"}],
+            "get": {"summary": "One of the report's tables as CSV (UTF-8, a header row)",
+                    "operationId": "getTableCsv",
+                    "responses": {"200": {"description": "The table", "content": {
+                        "text/csv": {"schema": {"type": "string"}}}},
+                                  **_AUTH_ERRORS,
+                                  "404": _error("No such analysis, or no such table (the message lists them)"),
                                   "409": _error("Not finished yet, or failed")}},
         },
         "/v1/openapi.json": {

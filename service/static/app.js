@@ -172,29 +172,65 @@
     $("dataset-summary").textContent = "“" + ds.name + "”: " + ds.rows + " rows, " +
       ds.columns.length + " columns (" + ds.format + ")." + warn;
     const numeric = new Set(ds.numeric_columns || ds.columns);
+    const texts = new Set((ds.warnings || []).filter((w) => w.code === "text_answers").map((w) => w.column));
     const ul = $("columns");
     ul.textContent = "";
     ds.columns.forEach((c) => {
       const li = document.createElement("li");
       li.textContent = c;
-      if (!numeric.has(c)) {
+      if (texts.has(c)) {
+        li.className = "text";
+        li.textContent = c + " (answer texts)";
+      } else if (!numeric.has(c)) {
         li.className = "text";
         li.textContent = c + " (text)";
       }
       ul.appendChild(li);
     });
     $("column-count").textContent = String(ds.columns.length);
+    showSheets(ds);
+    const warnings = $("dataset-warnings");
+    warnings.textContent = "";
+    (ds.warnings || []).forEach((w) => warnings.appendChild(el("li", { text: w.message })));
+    warnings.hidden = !(ds.warnings || []).length;
+    const notes = $("draft-notes");
+    notes.textContent = "";
+    (ds.draft_notes || []).forEach((n) => notes.appendChild(el("li", { text: "Drafted " + n })));
+    (ds.draft_left_out || []).forEach((d) => notes.appendChild(el("li", { text: "Left out " + d.column + ": " + d.reason })));
+    notes.hidden = !notes.children.length;
     loadDesign(ds.draft_design || { constructs: {}, paths: [] });
     $("design-step").hidden = false;
     $("run-step").hidden = false;
     resetProgress();
   }
 
+  // a workbook's sheets: listed with their sizes, the one read chosen in step 4
+  function showSheets(ds) {
+    const sheets = ds.sheets || [];
+    const select = $("sheet");
+    select.textContent = "";
+    sheets.forEach((sh) => {
+      const o = el("option", { value: sh.name, text: sh.name + " (" + sh.rows + " rows, " + sh.columns + " columns)" });
+      if (sh.name === ds.sheet) o.selected = true;
+      select.appendChild(o);
+    });
+    $("sheet-field").hidden = sheets.length < 2;
+    $("dataset-sheets").hidden = sheets.length < 2;
+    $("dataset-sheets").textContent = sheets.length < 2 ? "" :
+      "Sheets: " + sheets.map((sh) => "“" + sh.name + "” (" + sh.rows + " rows)").join(", ") +
+      ". Read: “" + ds.sheet + "”, the sheet with the most rows under item-like columns; choose another in step 4.";
+  }
+
   // ---- step 3: the design form -----------------------------------------------------------
 
+  // columns that can be items: those holding numbers, and those holding answer texts (which
+  // answer_labels map to numbers)
   function numericColumns() {
     const ds = state.dataset;
-    return ds ? (ds.numeric_columns || ds.columns) : [];
+    if (!ds) return [];
+    const usable = new Set(ds.numeric_columns || ds.columns);
+    (ds.warnings || []).forEach((w) => { if (w.code === "text_answers") usable.add(w.column); });
+    return ds.columns.filter((c) => usable.has(c));
   }
 
   function el(tag, attrs, ...children) {
@@ -222,6 +258,7 @@
   function addConstruct(name, spec, focus) {
     const key = "c" + state.nextKey++;
     const box = el("fieldset", { class: "construct", "data-key": key });
+    if (spec.answer_labels) box.dataset.labels = JSON.stringify(spec.answer_labels);  // kept as loaded
     const legend = el("legend", { text: "Construct" });
     const nameInput = el("input", { type: "text", id: key + "-name", value: name, autocomplete: "off",
                                     spellcheck: "false", "data-role": "name" });
@@ -425,6 +462,7 @@
     $("scale-min").value = rs.min ?? "";
     $("scale-max").value = rs.max ?? "";
     $("missing-codes").value = (d.missing_codes || []).join(", ");
+    $("answer-labels").value = d.answer_labels ? JSON.stringify(d.answer_labels, null, 1) : "";
     fillColumnSelect($("id-column"), d.id_column);
     fillColumnSelect($("group-column"), d.group_column);
     if ($("json-view").open) $("design-json").value = JSON.stringify(d, null, 2);
@@ -447,6 +485,7 @@
       if (rev.length) spec.reverse = rev;
       const role = b.querySelector("select[data-role='role']").value;
       if (role !== "substantive") spec.role = role;
+      if (b.dataset.labels) spec.answer_labels = JSON.parse(b.dataset.labels);
       constructs[name] = spec;
       names.set(b.dataset.key, name);
     });
@@ -459,12 +498,21 @@
     });
     const lo = $("scale-min").value.trim();
     const hi = $("scale-max").value.trim();
-    if (lo !== "" || hi !== "") {
-      if (lo === "" || hi === "") {
-        throw new FormProblem("Give both the lowest and the highest answer, or neither.", "response_scale",
-                              lo === "" ? $("scale-min") : $("scale-max"));
+    if (lo === "" || hi === "") {
+      throw new FormProblem("Give the lowest and the highest answer the scale offers (such as 1 and 5): " +
+                            "reverse-keyed items are recoded with them, and codes such as 99 would " +
+                            "otherwise be read as answers.", "response_scale",
+                            lo === "" ? $("scale-min") : $("scale-max"));
+    }
+    design.response_scale = { min: Number(lo), max: Number(hi) };
+    const labelsText = $("answer-labels").value.trim();
+    if (labelsText) {
+      let labels;
+      try { labels = JSON.parse(labelsText); } catch (e) { labels = null; }
+      if (!labels || typeof labels !== "object" || Array.isArray(labels)) {
+        throw new FormProblem("The answer texts must be a JSON object such as {\"Agree\": 4}.", "answer_labels", $("answer-labels"));
       }
-      design.response_scale = { min: Number(lo), max: Number(hi) };
+      design.answer_labels = labels;
     }
     const codesText = $("missing-codes").value.trim();
     if (codesText) {
@@ -503,10 +551,11 @@
     }
     if (f.startsWith("response_scale")) return $("scale-min");
     if (f.startsWith("missing_codes")) return $("missing-codes");
+    if (f.startsWith("answer_labels")) return $("answer-labels");
     if (f === "id_column") return $("id-column");
     if (f === "group_column") return $("group-column");
     m = f.match(/^options\.(\w+)/);
-    if (m) return $(m[1] === "missing" ? "missing-listwise" : m[1]);
+    if (m) return $(m[1] === "missing" ? "missing-listwise" : m[1]) || null;
     return null;
   }
 
@@ -546,6 +595,45 @@
         (d.paths || []).length + " paths.");
   });
 
+  // save the design as a file, and load one again
+  $("design-save").addEventListener("click", () => {
+    clearError();
+    let design;
+    try {
+      design = readDesign();
+    } catch (e) {
+      if (!(e instanceof FormProblem)) throw e;
+      showError(e.message, e.field, e.target);
+      return;
+    }
+    const url = URL.createObjectURL(new Blob([JSON.stringify(design, null, 2) + "\n"], { type: "application/json" }));
+    const a = el("a", { href: url, download: "design.json" });
+    document.body.appendChild(a);
+    a.click();
+    a.remove();
+    window.setTimeout(() => URL.revokeObjectURL(url), 10000);
+    say("Design saved as design.json.");
+  });
+  $("design-file").addEventListener("change", async () => {
+    clearError();
+    const f = $("design-file").files[0];
+    if (!f) return;
+    let d;
+    try {
+      d = JSON.parse(await f.text());
+    } catch (e) {
+      showError("“" + f.name + "” is not a design file (its JSON does not parse: " + e.message + ").", "design", $("design-file"));
+      return;
+    }
+    if (!d || typeof d !== "object" || Array.isArray(d) || typeof (d.constructs || {}) !== "object") {
+      showError("“" + f.name + "” is not a design: it needs a “constructs” object.", "design", $("design-file"));
+      return;
+    }
+    loadDesign(d);
+    $("design-file").value = "";
+    say("Design loaded from " + f.name + ": " + Object.keys(d.constructs || {}).length + " constructs.");
+  });
+
   // ---- step 4: options, run, progress ----------------------------------------------------
 
   function readOptions() {
@@ -559,6 +647,27 @@
       }
       opts[name] = n;
     }
+    const conf = $("confidence").value.trim();
+    if (conf !== "") {
+      const c = Number(conf);
+      if (!Number.isFinite(c) || c < 0.5 || c > 0.999) {
+        throw new FormProblem("The confidence level must be a number from 0.5 to 0.999.", "options.confidence", $("confidence"));
+      }
+      opts.confidence = c;
+    }
+    const mg = $("min_group_size").value.trim();
+    if (mg !== "") {
+      const g = Number(mg);
+      if (!Number.isInteger(g) || g < 2 || g > 1000) {
+        throw new FormProblem("The smallest team shown must be a whole number from 2 to 1000.", "options.min_group_size", $("min_group_size"));
+      }
+      opts.min_group_size = g;
+    }
+    opts.drop_flagged = $("drop_flagged").checked;
+    const ds = state.dataset;
+    if (ds && (ds.sheets || []).length > 1 && $("sheet").value && $("sheet").value !== ds.sheet) {
+      opts.sheet = $("sheet").value;
+    }
     return opts;
   }
 
@@ -566,8 +675,8 @@
     if (state.pollTimer) window.clearTimeout(state.pollTimer);
     state.pollTimer = null;
     state.analysisId = null;
-    [state.reportUrl, state.jsonUrl].forEach((u) => u && URL.revokeObjectURL(u));
-    state.reportUrl = state.jsonUrl = null;
+    [state.reportUrl, state.jsonUrl, state.tablesUrl].forEach((u) => u && URL.revokeObjectURL(u));
+    state.reportUrl = state.jsonUrl = state.tablesUrl = null;
     $("progress-box").hidden = true;
     $("report-links").hidden = true;
     $("run-btn").disabled = false;  // a run given up (new file, file deleted) may be re-run
@@ -675,11 +784,25 @@
     return URL.createObjectURL(new Blob([await resp.blob()], { type }));
   }
 
+  async function tablesBlob(id) {
+    const resp = await api("GET", "/v1/analyses/" + encodeURIComponent(id) + "/tables.xlsx", undefined, { raw: true });
+    return URL.createObjectURL(new Blob([await resp.blob()],
+      { type: "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet" }));
+  }
+
   async function prepareReport(id) {
     try {
       state.jsonUrl = await reportBlob(id, "json");
       $("download-json").href = state.jsonUrl;
       $("download-json").download = "report-" + id + ".json";
+      try {
+        state.tablesUrl = await tablesBlob(id);
+        $("download-tables").href = state.tablesUrl;
+        $("download-tables").download = "tables-" + id + ".xlsx";
+        $("download-tables").hidden = false;
+      } catch (e) {
+        $("download-tables").hidden = true;  // the report itself is what counts
+      }
       let html = null;
       try {
         html = state.reportUrl = await reportBlob(id, "html");
