@@ -33,7 +33,8 @@ PUBLISHED_SHARES = PublishedShares(
            "variance (Lance, Dawson, Birkelbach & Hoffman 2010), 26% on average and up to 41% for attitude "
            "measures (Cote & Buckley 1987, from memory)")
 
-# A range wider than this on the -1 to 1 scale cannot guide a decision (our rule).
+# A range wider than this on the -1 to 1 scale, and over twice the width of the preferred
+# estimate's own interval, cannot guide a decision (our rule).
 WIDE = 0.30
 
 
@@ -147,8 +148,18 @@ def path_bounds(sensitivity: dict, shares: PlausibleShares, preferred: dict | No
     low, high = float(min(lows)), float(max(highs))
     basis = shares.basis + (f"; the model holds no share above {truncated:.2f} for these data" if truncated else "")
     ci = (preferred or {}).get("ci")
+    if shares.source == "estimated" and ci:
+        # The curve assumes the same share in every item; the preferred correction's own
+        # model (free loadings, say) may spread it differently, so its interval is kept in
+        # the bounds (measured: congeneric loadings, docs/coverage.md).
+        low, high = min(low, ci[0]), max(high, ci[1])
+        basis += "; the preferred estimate's own interval included"
     crosses = low < 0 < high
-    wide = (high - low) > WIDE or (crosses and bool(ci) and (ci[0] > 0 or ci[1] < 0))
+    ci_width = (ci[1] - ci[0]) if ci else 0.0
+    # wide: allowing for the method moves the answer well beyond sampling error, or turns an
+    # association the interval shows into one that may not exist (our rule)
+    wide = ((high - low) > max(WIDE, 2 * ci_width)
+            or (crosses and bool(ci) and (ci[0] > 0 or ci[1] < 0)))
     why = None
     if wide:
         if shares.source == "published":
