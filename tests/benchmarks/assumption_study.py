@@ -34,6 +34,9 @@ from measurement.executor import LocalExecutor, SerialExecutor  # noqa: E402
 from measurement.pipeline import analyze  # noqa: E402
 from measurement.simulate import SCENARIOS, Scenario, make_scenario, simulate_survey  # noqa: E402
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from coverage_study import binomial_range  # noqa: E402
+
 FIRST_SEED = 20_000  # apart from the coverage study's and the quick tests' seeds
 RUNS = ("latest", "baseline")  # docs/coverage.md keeps one block of each, between markers
 
@@ -108,13 +111,6 @@ def run(names: list[str], seeds: int, workers: int = 2, log=print) -> list[dict]
 
 
 # ---- summaries ----------------------------------------------------------------------------
-
-def binomial_range(k: int, p: float = 0.95, tail: float = 0.025) -> tuple[int, int]:
-    """Counts out of k that a procedure with true rate p gives with probability 1 - 2*tail."""
-    from scipy.stats import binom
-
-    return int(binom.ppf(tail, k, p)), int(binom.isf(tail, k, p))
-
 
 def margin(k: int, p: float = 0.95) -> float:
     """Half-width of the 95% binomial range of an observed rate around p with k trials."""
