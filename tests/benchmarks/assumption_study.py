@@ -89,6 +89,7 @@ def one_sample(task: tuple[str, int]) -> dict:
             b = p["bounds"] or {}
             entry["bounds"] = [b.get("low"), b.get("high")]
             entry["bounds_basis"] = b.get("basis")
+            entry["plausible_share"] = b.get("plausible_share")
         if "trust" in p:
             entry["trust"] = (p["trust"] or {}).get("level")
         paths.append(entry)
@@ -154,6 +155,9 @@ class ScenarioSummary:
     paths: dict[tuple[str, str], PathCell] = field(default_factory=dict)
     shares: list[float] = field(default_factory=list)
     loadings: Counter = field(default_factory=Counter)
+    share_range_n: int = 0  # path-samples with bounds.plausible_share
+    share_range_held: int = 0  # ... holding the true method share
+    trust: Counter = field(default_factory=Counter)
     none_when_instrument_failed_check: int = 0  # verdict none while the report said the marker fails
     instrument_failed_check: int = 0
 
@@ -189,6 +193,11 @@ def summarize(rows: list[dict]) -> dict[str, ScenarioSummary]:
             c.chosen[p["preferred"]] += 1
             if p.get("trust") is not None:
                 c.trust[p["trust"]] += 1
+                s.trust[p["trust"]] += 1
+            ps = p.get("plausible_share")
+            if ps and len(ps) == 2 and ps[0] is not None and ps[1] is not None:
+                s.share_range_n += 1
+                s.share_range_held += ps[0] <= s.scenario.method_share <= ps[1]
             if p["estimate"] is None:
                 continue
             c.estimates.append(p["estimate"])
@@ -338,16 +347,18 @@ def markdown(summaries: dict[str, ScenarioSummary], seeds: int, seconds: float, 
                        f"{c.bias:+.3f} | {c.rmse:.3f} | {cov} | {c.nonzero}/{c.with_ci} | {bounds} | {nv} | "
                        f"{_fmt_counter(c.chosen)} |")
     out += ["", "#### Verdicts, method shares and assumption statuses", "",
-            "| scenario | true share | estimated share (mean, range) | loadings used | verdict | "
-            "assumption statuses | errors |",
-            "| --- | ---: | --- | --- | --- | --- | ---: |"]
+            "| scenario | true share | estimated share (mean, range) | method factor loadings | verdict | "
+            "plausible share holds truth | trust | assumption statuses | errors |",
+            "| --- | ---: | --- | --- | --- | ---: | --- | --- | ---: |"]
     for s in summaries.values():
         sh = (f"{sum(s.shares) / len(s.shares):.3f} ({min(s.shares):.3f}-{max(s.shares):.3f})"
               if s.shares else "-")
         st = ("absent" if s.assumptions_absent and not s.statuses else
               "; ".join(f"{aid}: {_fmt_counter(c, STATUSES)}" for aid, c in s.statuses.items()))
+        ps = f"{s.share_range_held}/{s.share_range_n}" if s.share_range_n else "absent"
+        tr = _fmt_counter(s.trust) if s.trust else "absent"
         out.append(f"| {s.scenario.name} | {s.scenario.method_share:.3f} | {sh} | {_fmt_counter(s.loadings)} | "
-                   f"{_fmt_counter(s.verdicts, VERDICTS)} | {st} | {len(s.errors)} |")
+                   f"{_fmt_counter(s.verdicts, VERDICTS)} | {ps} | {tr} | {st} | {len(s.errors)} |")
     errs = [(s.scenario.name, e) for s in summaries.values() for e in s.errors]
     if errs:
         out += ["", "Analyses that raised: " + "; ".join(f"{n}: {e}" for n, e in errs[:5])]
