@@ -299,7 +299,7 @@ def markdown(summaries: dict[str, ScenarioSummary], seeds: int, seconds: float, 
         f"### {'Latest run' if run_key == 'latest' else 'Baseline run'}: {label}",
         "",
         f"Made by `tests/benchmarks/assumption_study.py` on {made or _now()}"
-        f" ({seeds} samples per scenario, {seconds / 60:.0f} min on two processes). "
+        f" (up to {seeds} samples per scenario, {seconds / 60:.0f} min on two processes). "
         "The slow test `tests/test_assumption_study.py` reruns one scenario.",
         "",
         "Every scenario is the survey of `measurement.simulate` (support 4 items, engagement 4, intent",
@@ -322,13 +322,13 @@ def markdown(summaries: dict[str, ScenarioSummary], seeds: int, seconds: float, 
         "false alarms (minor or substantial) on clean data. A field the report does not have yet is",
         "counted as absent.",
         "",
-        "| scenario | tests | true share | assumptions hold | n |",
-        "| --- | --- | ---: | --- | ---: |",
+        "| scenario | tests | true share | assumptions hold | n | samples |",
+        "| --- | --- | ---: | --- | ---: | ---: |",
     ]
     for s in summaries.values():
         sc = s.scenario
         out.append(f"| {sc.name} | {sc.tests} | {sc.method_share:.3f} | "
-                   f"{'yes' if sc.assumptions_hold else 'no'}: {sc.why} | {sc.spec.n:,} |")
+                   f"{'yes' if sc.assumptions_hold else 'no'}: {sc.why} | {sc.spec.n:,} | {s.samples} |")
     out += ["", "#### Targets", "", "| scenario | target | figure | met |", "| --- | --- | --- | --- |"]
     for s in summaries.values():
         for t in targets(s):
@@ -393,15 +393,18 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--label", default="the code at this commit")
     ap.add_argument("--run", choices=RUNS, default="latest", help="which block of docs/coverage.md to replace")
     ap.add_argument("--raw", type=Path, help="also write every sample's figures to this JSON file")
-    ap.add_argument("--from-raw", type=Path, help="summarize a --raw file instead of running")
+    ap.add_argument("--from-raw", type=Path, nargs="+",
+                    help="summarize --raw files (their rows together) instead of running")
     ap.add_argument("--out", type=Path, default=ROOT / "docs" / "coverage.md")
     ap.add_argument("--no-write", action="store_true", help="print only")
     args = ap.parse_args(argv)
     t0 = time.monotonic()
     if args.from_raw:
-        saved = json.loads(args.from_raw.read_text(encoding="utf-8"))
-        rows, seconds, seeds = saved["rows"], saved["seconds"], saved["seeds"]
-        made = saved.get("made")
+        saved = [json.loads(f.read_text(encoding="utf-8")) for f in args.from_raw]
+        rows = [r for d in saved for r in d["rows"]]
+        seconds = sum(d["seconds"] for d in saved)
+        seeds = max(d["seeds"] for d in saved)
+        made = max((d.get("made") or "" for d in saved), default="") or None
     else:
         rows = run(args.scenarios, args.seeds, args.workers, log=lambda m: print(m, file=sys.stderr))
         seconds, seeds, made = time.monotonic() - t0, args.seeds, _now()
