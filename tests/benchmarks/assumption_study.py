@@ -97,7 +97,8 @@ def one_sample(task: tuple[str, int]) -> dict:
     return row
 
 
-def run(names: list[str], seeds: int, workers: int = 2, log=print) -> list[dict]:
+def run(names: list[str], seeds: int, workers: int = 2, log=print, save=None) -> list[dict]:
+    """Every scenario's samples; ``save(rows)`` after each scenario keeps partial results."""
     rows: list[dict] = []
     ex = LocalExecutor(workers) if workers > 1 else SerialExecutor()
     try:
@@ -105,6 +106,8 @@ def run(names: list[str], seeds: int, workers: int = 2, log=print) -> list[dict]
             t0 = time.monotonic()
             rows += ex.map(one_sample, [(name, FIRST_SEED + i) for i in range(seeds)])
             log(f"{name}: {seeds} samples in {time.monotonic() - t0:.0f} s")
+            if save is not None:
+                save(rows)
     finally:
         if isinstance(ex, LocalExecutor):
             ex.shutdown()
@@ -406,11 +409,17 @@ def main(argv: list[str] | None = None) -> int:
         seeds = max(d["seeds"] for d in saved)
         made = max((d.get("made") or "" for d in saved), default="") or None
     else:
-        rows = run(args.scenarios, args.seeds, args.workers, log=lambda m: print(m, file=sys.stderr))
-        seconds, seeds, made = time.monotonic() - t0, args.seeds, _now()
-        if args.raw:
-            args.raw.write_text(json.dumps({"rows": rows, "seconds": seconds, "seeds": seeds,
-                                            "made": made}), encoding="utf-8")
+        made = _now()
+
+        def save(rows: list[dict]) -> None:
+            if args.raw:
+                args.raw.write_text(json.dumps({"rows": rows, "seconds": time.monotonic() - t0,
+                                                "seeds": args.seeds, "made": made}), encoding="utf-8")
+
+        rows = run(args.scenarios, args.seeds, args.workers, log=lambda m: print(m, file=sys.stderr),
+                   save=save)
+        seconds, seeds = time.monotonic() - t0, args.seeds
+        save(rows)
     text = markdown(summarize(rows), seeds, seconds, args.label, args.run, made)
     if not args.no_write:
         write_section(args.out, text, args.run)
