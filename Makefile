@@ -46,9 +46,11 @@ lint: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/run_all.py
 
-# Bias and interval coverage with known truth (about 7 minutes on two cores) -> docs/coverage.md
+# Bias and interval coverage with known truth (about 7 minutes on two cores), then the
+# assumption study's scenarios (about 5-15 minutes) -> docs/coverage.md
 study: $(STAMP)
 	$(BIN)/python tests/benchmarks/coverage_study.py
+	$(BIN)/python tests/benchmarks/assumption_study.py
 
 clean:
 	rm -rf $(VENV) samesource-report

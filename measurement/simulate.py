@@ -30,14 +30,34 @@ The model
   ``team_size_dispersion > 0``), at least 2 each, adjusted to sum to ``n``.
 - Missing cells are MCAR, independently per item cell, drawn after everything else (so the
   same seed gives the same answers with and without missing values).
+
+Departures from that model, each off by default (and then absent from the truth and the spec
+record, so existing specs reproduce bit for bit):
+
+- ``method_trait_corr``: M correlates with the named exogenous traits (endogenous traits get
+  their correlation with M through the paths). M is drawn as ``w' exo + u`` with
+  ``w = R^-1 c``, so its correlations with the exogenous traits are exactly ``c``; the error
+  variances are ``1 - lam' Phi lam`` so every item still has variance 1.
+- ``acquiescence``: a response style ``A`` (standard normal, independent of the traits and of M)
+  adds ``acquiescence * A`` to every answer as the respondent gives it, before reverse-keying;
+  after an analyst recodes a reverse-keyed item its loading on ``A`` is ``-acquiescence``.
+  ``A`` is another shared method factor: it counts in the method share of item variance.
+- ``category_probabilities``: the population share of each answer 1..k, in the construct's
+  direction (thresholds ``norm.ppf`` of the cumulative shares); a reverse-keyed item, stored
+  as ``k + 1 - x``, is skewed the other way as stored and the same way after recoding.
+  Gives skewed items; the default is the symmetric rule above.
+
+Named scenarios (:data:`SCENARIOS`, :func:`make_scenario`) put these to use for the study of
+the assumptions behind each correction (tests/benchmarks/assumption_study.py): each states its
+truth, computed from the generating model and not estimated (:class:`Scenario`).
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field
-from typing import Any, Literal, overload
+from typing import Any, Literal, NamedTuple, overload
 
 import numpy as np
 import pandas as pd
@@ -46,6 +66,7 @@ from scipy.stats import norm
 ID_COLUMN = "respondent"
 TEAM_COLUMN = "team"
 METHOD_FACTOR = "method_factor"
+STYLE_FACTOR = "acquiescence"  # the response-style factor, when SurveySpec.acquiescence != 0
 ROLES = ("substantive", "marker", "method")
 LIKERT_SPAN = 1.8  # outermost category centres, in standard deviations of the continuous item
 _HERMITE_TERMS = 400  # Mehler-series terms for Likert item covariances (|r| <= .97 converges)
@@ -89,6 +110,15 @@ class SurveySpec:
     team_icc: dict[str, float] = field(default_factory=dict)  # exogenous traits only
     team_size_dispersion: float = 0.0  # coefficient of variation of the expected team size
     seed: int = 0
+    # Departures from the base model (module docstring); the defaults leave it unchanged.
+    method_trait_corr: dict[str, float] = field(default_factory=dict)  # exogenous trait -> corr with M
+    acquiescence: float = 0.0  # loading of every answer, as given (before reverse-keying), on A
+    category_probabilities: Sequence[float] | None = None  # share of each answer 1..k; None: symmetric
+
+
+# Fields added after the first release of the spec record: left out of spec_to_dict at their
+# defaults, so the records (and committed truth files) of existing specs do not change.
+_OPTIONAL_FIELDS = {"method_trait_corr": {}, "acquiescence": 0.0, "category_probabilities": None}
 
 
 def _per_item(value: float | Sequence[float], k: int, where: str) -> list[float]:
@@ -117,8 +147,28 @@ def likert_thresholds(k: int) -> np.ndarray:
 
 def likert_category_probabilities(k: int) -> np.ndarray:
     """Population share of each answer 1..k (the same for every item: items are N(0, 1))."""
-    cdf = norm.cdf(likert_thresholds(k))
+    return _category_probabilities(likert_thresholds(k))
+
+
+def _category_probabilities(tau: np.ndarray) -> np.ndarray:
+    cdf = norm.cdf(tau)
     return np.diff(np.concatenate([[0.0], cdf, [1.0]]))
+
+
+def spec_thresholds(spec: SurveySpec) -> np.ndarray | None:
+    """The cut points a spec's Likert items use (None for continuous items)."""
+    k = spec.scale_points
+    if not k:
+        if spec.category_probabilities is not None:
+            raise ValueError("category_probabilities needs scale_points")
+        return None
+    if spec.category_probabilities is None:
+        return likert_thresholds(k)
+    p = np.asarray(spec.category_probabilities, dtype=float)
+    if p.shape != (k,) or not np.all(np.isfinite(p)) or np.any(p <= 0) or abs(p.sum() - 1) > 1e-9:
+        raise ValueError(f"category_probabilities must be {k} positive shares summing to 1, "
+                         f"got {list(spec.category_probabilities)}")
+    return norm.ppf(np.cumsum(p)[:-1])
 
 
 @dataclass
@@ -138,19 +188,26 @@ class _Model:
     items: list[str]
     item_construct: list[str]
     sign: np.ndarray  # -1 for reverse-keyed items
-    lam: np.ndarray  # items x (traits + M), construct direction
+    lam: np.ndarray  # items x (traits + M [+ A]), construct direction
     theta: np.ndarray  # error variances
+    tau: np.ndarray | None = None  # Likert thresholds
+    method_cov: np.ndarray | None = None  # corr of each trait with M (None: orthogonal)
+    method_weights: np.ndarray | None = None  # M = exo @ w + sqrt(1 - w'Rw) * u
+    style: bool = False  # an acquiescence factor A is the last column of lam
 
     @property
     def factors(self) -> list[str]:
-        return self.traits + [METHOD_FACTOR]
+        return self.traits + [METHOD_FACTOR] + ([STYLE_FACTOR] if self.style else [])
 
     @property
     def phi_full(self) -> np.ndarray:
         p = len(self.traits)
-        out = np.zeros((p + 1, p + 1))
+        q = p + 1 + int(self.style)
+        out = np.zeros((q, q))
         out[:p, :p] = self.phi
-        out[p, p] = 1.0
+        if self.method_cov is not None:
+            out[:p, p] = out[p, :p] = self.method_cov
+        out[p:, p:] = np.eye(q - p)
         return out
 
 
@@ -167,8 +224,13 @@ def _build(spec: SurveySpec) -> _Model:
         raise ValueError(f"n must be an integer of at least 2, got {spec.n}")
     if spec.scale_points is not None:
         likert_thresholds(spec.scale_points)
+    tau = spec_thresholds(spec)
     if not 0.0 <= spec.missing_rate < 1.0:
         raise ValueError(f"missing_rate must be in [0, 1), got {spec.missing_rate}")
+    acq = spec.acquiescence
+    if not (isinstance(acq, int | float) and math.isfinite(acq) and -1 < acq < 1):
+        raise ValueError(f"acquiescence must be a loading in (-1, 1), got {acq}")
+    style = acq != 0
 
     traits = [c.name for c in cons if c.role != "method"]
     items: list[str] = []
@@ -176,7 +238,8 @@ def _build(spec: SurveySpec) -> _Model:
     signs: list[float] = []
     rows: list[np.ndarray] = []
     theta: list[float] = []
-    nf = len(traits) + 1
+    im = len(traits)  # column of M
+    nf = len(traits) + 1 + int(style)
     for c in cons:
         if c.role not in ROLES:
             raise ValueError(f"{c.name}: unknown role {c.role!r}; use one of {', '.join(ROLES)}")
@@ -191,19 +254,24 @@ def _build(spec: SurveySpec) -> _Model:
         if bad or len(set(rev)) != len(rev):
             raise ValueError(f"{c.name}: reverse positions must be distinct integers in 1..{c.n_items}")
         for pos, (name, lv, mv) in enumerate(zip(c.item_names(), lam, mload, strict=True), 1):
-            err = 1.0 - lv * lv - mv * mv
+            err = 1.0 - lv * lv - mv * mv - acq * acq  # (- 0.0 leaves the value bit for bit)
             if err < 0:
-                raise ValueError(f"{name}: loading {lv} and method loading {mv} leave a negative "
-                                 f"error variance ({err:.4f}); need loading² + method_loading² <= 1")
+                extra = f" and acquiescence {acq}" if style else ""
+                raise ValueError(f"{name}: loading {lv} and method loading {mv}{extra} leave a negative "
+                                 f"error variance ({err:.4f}); need loading² + method_loading² "
+                                 f"{'+ acquiescence² ' if style else ''}<= 1")
+            sign = -1.0 if pos in rev else 1.0
             row = np.zeros(nf)
             if c.role == "method":
-                row[-1] = lv
+                row[im] = lv
             else:
                 row[traits.index(c.name)] = lv
-                row[-1] = mv
+                row[im] = mv
+            if style:  # added to the answer as given: reversed with the item when recoded
+                row[-1] = sign * acq
             items.append(name)
             item_construct.append(c.name)
-            signs.append(-1.0 if pos in rev else 1.0)
+            signs.append(sign)
             rows.append(row)
             theta.append(err)
     if len(set(items)) != len(items):
@@ -293,11 +361,41 @@ def _build(spec: SurveySpec) -> _Model:
         phi_b[j, j] = float(beta @ phi_b[np.ix_(pi, pi)] @ beta)
         done.append(j)
 
-    return _Model(spec=spec, traits=traits, exogenous=exogenous, endogenous=endogenous,
-                  residual_var=residual, phi=phi, phi_between=phi_b, exo_corr=r,
-                  exo_between=between_exo, icc=icc,
-                  items=items, item_construct=item_construct, sign=np.array(signs),
-                  lam=np.array(rows).reshape(len(items), nf), theta=np.array(theta))
+    lam_m = np.array(rows).reshape(len(items), nf)
+    theta_v = np.array(theta)
+    method_cov = weights = None
+    if spec.method_trait_corr:
+        c_exo = np.zeros(len(exogenous))
+        for t, v in spec.method_trait_corr.items():
+            if t not in exogenous:
+                raise ValueError(f"method_trait_corr '{t}': give M's correlation with exogenous traits "
+                                 f"({', '.join(exogenous)}); endogenous traits get theirs through the paths")
+            if not (math.isfinite(v) and -1 < v < 1):
+                raise ValueError(f"method_trait_corr '{t}' = {v} is not in (-1, 1)")
+            c_exo[exogenous.index(t)] = v
+        weights = np.linalg.solve(r, c_exo)
+        if float(c_exo @ weights) >= 1 - 1e-9:
+            raise ValueError("method_trait_corr with exogenous_corr is not a valid correlation matrix "
+                             "(not positive definite)")
+        method_cov = np.zeros(p)
+        method_cov[ex] = c_exo
+        for t in endogenous:  # cov(eta, M) = beta' cov(predictors, M)
+            pi = [idx[q] for q in spec.paths[t]]
+            method_cov[idx[t]] = float(np.array(list(spec.paths[t].values())) @ method_cov[pi])
+    model = _Model(spec=spec, traits=traits, exogenous=exogenous, endogenous=endogenous,
+                   residual_var=residual, phi=phi, phi_between=phi_b, exo_corr=r,
+                   exo_between=between_exo, icc=icc,
+                   items=items, item_construct=item_construct, sign=np.array(signs),
+                   lam=lam_m, theta=theta_v, tau=tau, method_cov=method_cov,
+                   method_weights=weights, style=style)
+    if method_cov is not None:
+        # a loading on M now also carries trait variance: keep every item at variance 1
+        model.theta = 1.0 - np.einsum("ij,jk,ik->i", lam_m, model.phi_full, lam_m)
+        if np.any(model.theta < 0):
+            bad_item = items[int(np.argmin(model.theta))]
+            raise ValueError(f"{bad_item}: with M correlated with the traits its loadings leave a "
+                             f"negative error variance ({model.theta.min():.4f})")
+    return model
 
 
 def _cholesky(m: np.ndarray, message: str) -> np.ndarray:
@@ -314,14 +412,13 @@ def _continuous_cov(model: _Model) -> np.ndarray:
     return model.lam @ model.phi_full @ model.lam.T + np.diag(model.theta)
 
 
-def _likert_cov(corr: np.ndarray, k: int) -> np.ndarray:
+def _likert_cov(corr: np.ndarray, tau: np.ndarray) -> np.ndarray:
     """Covariance of Likert-coded items given the correlation of their continuous versions.
 
     Mehler's expansion of the bivariate normal: for a step function f with thresholds tau,
     cov(f(X), f(Y)) = sum_{n>=1} rho^n a_n^2 with a_n = sum_j phi(tau_j) h_{n-1}(tau_j) / sqrt(n),
     h the orthonormal (probabilists') Hermite polynomials.
     """
-    tau = likert_thresholds(k)
     dens = norm.pdf(tau)
     h_prev, h = np.zeros_like(tau), np.ones_like(tau)
     a2 = np.empty(_HERMITE_TERMS)
@@ -333,13 +430,13 @@ def _likert_cov(corr: np.ndarray, k: int) -> np.ndarray:
     for n in range(_HERMITE_TERMS):
         power = power * corr
         out += power * a2[n]
-    np.fill_diagonal(out, _likert_variance(k))
+    np.fill_diagonal(out, _likert_variance(tau))
     return out
 
 
-def _likert_variance(k: int) -> float:
-    prob = likert_category_probabilities(k)
-    v = np.arange(1, k + 1)
+def _likert_variance(tau: np.ndarray) -> float:
+    prob = _category_probabilities(tau)
+    v = np.arange(1, len(tau) + 2)
     mean = float(prob @ v)
     return float(prob @ (v - mean) ** 2)
 
@@ -349,7 +446,7 @@ def _item_cov(model: _Model, discrete: bool) -> np.ndarray:
     if discrete:
         if model.spec.scale_points is None:
             raise ValueError("discrete=True needs scale_points")
-        c = _likert_cov(c, model.spec.scale_points)
+        c = _likert_cov(c, model.tau)
     return c
 
 
@@ -417,6 +514,11 @@ def spec_to_dict(spec: SurveySpec) -> dict:
     d["exogenous_corr"] = {f"{a}|{b}": float(v) for (a, b), v in spec.exogenous_corr.items()}
     for c in d["constructs"]:
         c["reverse"] = list(c["reverse"])
+    for name, default in _OPTIONAL_FIELDS.items():
+        if d[name] == default:
+            del d[name]
+        elif name == "category_probabilities":
+            d[name] = [float(v) for v in d[name]]
     return d
 
 
@@ -427,10 +529,11 @@ def implied_truth(spec: SurveySpec) -> dict:
     cons = spec.constructs
     names = [c.name for c in cons]
     cont = _continuous_cov(model)
-    lik = _likert_cov(cont, k) if k else None
+    tau = model.tau
+    lik = _likert_cov(cont, tau) if k else None
     w = _weights(model)
     # E f'(X) for the Likert coding: by Stein's lemma cov(f(X), Z) = corr(X, Z) * slope.
-    slope = float(norm.pdf(likert_thresholds(k)).sum()) if k else None
+    slope = float(norm.pdf(tau).sum()) if k else None
 
     constructs: dict[str, Any] = {}
     for ci, c in enumerate(cons):
@@ -458,12 +561,17 @@ def implied_truth(spec: SurveySpec) -> dict:
         }
         if c.role != "method":
             entry["omega_with_method"] = (sum(trait_l) ** 2 + sum(meth_l) ** 2) / var_sum
+        if model.style:
+            acq_l = [float(model.lam[i, -1]) for i in sel]
+            entry["acquiescence_loadings"] = acq_l
+            entry["item_acquiescence_share"] = [v * v for v in acq_l]
+            entry["acquiescence_share_of_sum"] = sum(acq_l) ** 2 / var_sum
         if lik is not None:
             lv = float(lik[np.ix_(sel, sel)].sum())
             entry["likert"] = {
                 "trait_share_of_sum": (slope * sum(trait_l)) ** 2 / lv,
                 "method_share_of_sum": (slope * sum(meth_l)) ** 2 / lv,
-                "alpha": (n_it / (n_it - 1) * (1 - n_it * _likert_variance(k) / lv))
+                "alpha": (n_it / (n_it - 1) * (1 - n_it * _likert_variance(tau) / lv))
                 if n_it > 1 else None,
             }
         constructs[c.name] = entry
@@ -507,17 +615,34 @@ def implied_truth(spec: SurveySpec) -> dict:
         ],
     }
     if k:
-        tau = likert_thresholds(k)
         sum_lik = _corr(w @ lik @ w.T)
         truth["likert"] = {
             "thresholds": [float(t) for t in tau],
-            "category_probabilities": [float(p) for p in likert_category_probabilities(k)],
-            "item_variance": _likert_variance(k),
+            "category_probabilities": [float(p) for p in _category_probabilities(tau)],
+            "item_variance": _likert_variance(tau),
             "rule": f"category centres equally spaced on [-{LIKERT_SPAN}, {LIKERT_SPAN}] SD of the "
-                    "continuous item, thresholds midway between centres",
+                    "continuous item, thresholds midway between centres"
+                    if spec.category_probabilities is None else
+                    "thresholds at the normal quantiles of the given category shares, in the "
+                    "construct's direction",
         }
         truth["sum_score_correlation"]["likert"] = _matrix_dict(sum_lik, names)
         truth["sum_score_paths"]["likert"] = _std_paths(sum_lik, names, spec.paths)
+    if model.method_cov is not None:
+        truth["method_factor"]["orthogonal_to_traits"] = False
+        truth["method_factor"]["correlation_with_traits"] = {
+            t: float(v) for t, v in zip(model.traits, model.method_cov, strict=True)}
+        truth["model"] += ("; here M correlates with the traits (method_factor.correlation_with_traits) "
+                           "and error variances are 1 - lam' Phi lam")
+        truth["notes"].append("With M correlated with the traits, omega (sum of trait loadings)^2 / "
+                              "var(sum) is no longer the squared correlation of the sum with its trait.")
+    if model.style:
+        truth["acquiescence"] = {
+            "name": STYLE_FACTOR, "variance": 1.0, "loading_as_given": spec.acquiescence,
+            "orthogonal_to_traits_and_method": True,
+            "rule": "every answer as given gets acquiescence * A before reverse-keying; after recoding, "
+                    "a reverse-keyed item loads -acquiescence on A"}
+        truth["model"] += "; plus acquiescence * A on every answer as given (before reverse-keying)"
     if spec.n_teams:
         pb = model.phi_between
         pw = model.phi - pb
@@ -581,7 +706,7 @@ def simulate_survey(spec: SurveySpec, *, return_latent: bool = False
 
     Data columns: ``respondent`` (R00001...), ``team`` when ``n_teams > 0`` (T001...), then the
     items in construct order. ``latent`` holds each construct's true score (a method scale's is
-    M) and ``method_factor``, row-aligned with the data.
+    M) and ``method_factor`` (and ``acquiescence`` when the spec has it), row-aligned with the data.
     """
     model = _build(spec)
     truth = implied_truth(spec)
@@ -607,13 +732,20 @@ def simulate_survey(spec: SurveySpec, *, return_latent: bool = False
         eta = sum(b * traits[:, idx[q]] for q, b in spec.paths[t].items())
         traits[:, idx[t]] = eta + math.sqrt(model.residual_var[t]) * rng.standard_normal(n)
     m = rng.standard_normal(n)
-    factors = np.column_stack([traits, m])
+    if model.method_weights is not None:
+        w = model.method_weights
+        m = exo @ w + math.sqrt(1.0 - float(w @ model.exo_corr @ w)) * m
+    columns = [traits, m]
+    if model.style:
+        a = rng.standard_normal(n)
+        columns.append(a)
+    factors = np.column_stack(columns)
     x = factors @ model.lam.T + rng.standard_normal((n, len(model.items))) * np.sqrt(model.theta)
 
     k = spec.scale_points
     rev = model.sign < 0
     if k:
-        vals = np.searchsorted(likert_thresholds(k), x, side="right") + 1
+        vals = np.searchsorted(model.tau, x, side="right") + 1
         vals[:, rev] = k + 1 - vals[:, rev]
     else:
         vals = x * model.sign
@@ -655,7 +787,8 @@ def simulate_survey(spec: SurveySpec, *, return_latent: bool = False
     if not return_latent:
         return df, truth
     latent = pd.DataFrame({c.name: m if c.role == "method" else traits[:, idx[c.name]]
-                           for c in spec.constructs} | {METHOD_FACTOR: m})
+                           for c in spec.constructs} | {METHOD_FACTOR: m}
+                          | ({STYLE_FACTOR: a} if model.style else {}))
     return df, truth, latent
 
 
@@ -683,3 +816,193 @@ def design_for(spec: SurveySpec, *, scale: bool = True) -> dict:
     if spec.n_teams:
         design["group_column"] = TEAM_COLUMN
     return design
+
+
+# ---- named scenarios with known truth (the assumption study) -------------------------------
+
+@dataclass
+class Scenario:
+    """A named survey population, what it tests, and its truth.
+
+    ``true_paths`` are the standardized paths among the traits, solved exactly from the trait
+    covariance the generating model implies (not estimated); ``method_share`` is the true share
+    of substantive item variance due to shared method factors (M, and the response style A
+    when there is one), the quantity the method checks estimate. ``assumptions_hold`` says
+    whether the correction the report should lead with rests on assumptions that hold in this
+    population; ``instrument_fails`` whether the design's method instrument (marker or method
+    scale) fails to carry the shared method; ``expected`` gives, per assumption id of the
+    report, the statuses its check should give here.
+    """
+
+    name: str
+    title: str
+    tests: str
+    spec: SurveySpec
+    true_paths: dict[tuple[str, str], float]
+    method_share: float
+    marker_method_share: float | None
+    assumptions_hold: bool
+    why: str
+    instrument_fails: bool = False
+    expected: dict[str, tuple[str, ...]] = field(default_factory=dict)
+
+    def design(self) -> dict:
+        return design_for(self.spec)
+
+    def truth(self) -> dict:
+        """JSON-ready record of the scenario's truth."""
+        return {"name": self.name, "title": self.title, "tests": self.tests, "n": self.spec.n,
+                "scale_points": self.spec.scale_points,
+                "true_paths": {f"{o} on {p}": v for (o, p), v in self.true_paths.items()},
+                "method_share": self.method_share, "marker_method_share": self.marker_method_share,
+                "assumptions_hold": self.assumptions_hold, "why": self.why,
+                "instrument_fails": self.instrument_fails,
+                "expected": {k: list(v) for k, v in self.expected.items()}}
+
+
+def true_standardized_paths(spec: SurveySpec) -> dict[tuple[str, str], float]:
+    """Standardized path of each (outcome, predictor) among the traits, solved from the trait
+    covariance the spec implies (with every outcome's declared predictors together)."""
+    model = _build(spec)
+    out = _std_paths(model.phi, model.traits, spec.paths)
+    # rounded at 1e-12 so a true null reads 0, not the solver's 1e-17
+    return {(y, x): round(float(v), 12) + 0.0 for y, preds in out.items() for x, v in preds.items()}
+
+
+def true_method_shares(spec: SurveySpec) -> dict[str, float | None]:
+    """Mean share of item variance due to the shared method factors (M and A: their squared
+    loadings, both standardized), over the substantive items and over the marker's items."""
+    model = _build(spec)
+    im = len(model.traits)
+    share = np.square(model.lam[:, im:]).sum(axis=1)
+    roles = {c.name: c.role for c in spec.constructs}
+    role = np.array([roles[c] for c in model.item_construct])
+    subst = share[role == "substantive"]
+    mark = share[role == "marker"]
+    return {"substantive": float(subst.mean()) if subst.size else None,
+            "marker": float(mark.mean()) if mark.size else None}
+
+
+# The base survey of every scenario: support (4 items), engagement (4), intent to stay (3), a
+# marker with a trait of its own (3); engagement on support .30, intent on engagement .45 and a
+# true null path, intent on support. Trait loadings .70; method loading .35 (share .1225).
+TRAIT_LOADING = 0.70
+METHOD_LOADING = 0.35
+SCENARIO_N = 600
+SCENARIO_PATHS = {"eng": {"sup": 0.30}, "sty": {"eng": 0.45, "sup": 0.0}}
+# Congeneric method loadings from .10 to .60 (mean square .160 on the substantive items).
+CONGENERIC = {"sup": [0.10, 0.25, 0.45, 0.60], "eng": [0.60, 0.45, 0.25, 0.10],
+              "sty": [0.10, 0.35, 0.60], "wth": [0.15, 0.35, 0.55]}
+# Strongly skewed 5-point answers (a ceiling): skew -1.91, excess kurtosis 3.76 per item.
+SKEWED_SHARES = (0.01, 0.03, 0.06, 0.25, 0.65)
+
+
+def _base(method: dict[str, float | list[float]], *, marker: bool = True, method_scale: bool = False,
+          reverse: dict[str, list[int]] | None = None, seed: int = 0, n: int = SCENARIO_N,
+          **kw: Any) -> SurveySpec:
+    rev = reverse or {}
+    lam = TRAIT_LOADING
+    cons = [ConstructSpec("sup", 4, lam, method.get("sup", 0.0), reverse=rev.get("sup", ())),
+            ConstructSpec("eng", 4, lam, method.get("eng", 0.0), reverse=rev.get("eng", ())),
+            ConstructSpec("sty", 3, lam, method.get("sty", 0.0), reverse=rev.get("sty", ()))]
+    if marker:
+        cons.append(ConstructSpec("wth", 3, lam, method.get("wth", 0.0), role="marker"))
+    if method_scale:
+        cons.append(ConstructSpec("imp", 4, lam, role="method"))
+    return SurveySpec(constructs=cons, paths={k: dict(v) for k, v in SCENARIO_PATHS.items()}, n=n,
+                      scale_points=kw.pop("scale_points", None), seed=seed, **kw)
+
+
+def _equal(m: float, *, marker: float | None = None) -> dict[str, float | list[float]]:
+    return {"sup": m, "eng": m, "sty": m, "wth": m if marker is None else marker}
+
+
+class _Entry(NamedTuple):
+    title: str
+    tests: str
+    make: Callable[[int, int], SurveySpec]  # (seed, n) -> spec
+    assumptions_hold: bool
+    why: str
+    instrument_fails: bool
+    expected: dict[str, tuple[str, ...]]
+    n: int = SCENARIO_N
+
+
+def _scenario_table() -> dict[str, _Entry]:
+    m = METHOD_LOADING
+    return {
+        "clean": _Entry(
+            "Clean survey, no method variance",
+            "false alarms: the verdict should say none (or minor at most 5% of the time)",
+            lambda seed, n: _base(_equal(0.0), seed=seed, n=n),
+            True, "no method variance at all: every correction is correctly specified", False, {}),
+        "baseline": _Entry(
+            "The model's assumptions hold",
+            "accuracy where everything the marker-identified method factor assumes is true",
+            lambda seed, n: _base(_equal(m), seed=seed, n=n),
+            True, "the marker carries the method, equal method loadings, M orthogonal to the traits",
+            False, {}),
+        "marker_without_method": _Entry(
+            "A marker without the shared method",
+            "a marker that finds nothing although the substantive items share method variance",
+            lambda seed, n: _base(_equal(m, marker=0.0), seed=seed, n=n),
+            False, "the marker's items carry none of the method the substantive items share",
+            True, {"marker_carries_method": ("fails", "untestable")}),
+        "congeneric": _Entry(
+            "Congeneric method loadings (.10 to .60)",
+            "method loadings that differ by item: the equal-loading factor understates them",
+            lambda seed, n: _base(CONGENERIC, seed=seed, n=n),
+            True, "holds for a free-loading method factor (the equal-loading one is misspecified)",
+            False, {"method_loadings": ("holds",)}),
+        "method_trait_corr": _Entry(
+            "Method correlated .30 with a trait",
+            "the untestable orthogonality of method and traits: M correlates .30 with support",
+            lambda seed, n: _base(_equal(m), seed=seed, n=n, method_trait_corr={"sup": 0.30}),
+            False, "M correlates with support (and through the paths with engagement and intent)",
+            False, {"method_orthogonal": ("untestable", "doubtful", "fails")}),
+        "skewed": _Entry(
+            "Strongly skewed 5-point items",
+            "normal-theory ML on discrete, skewed answers (skew -1.9, excess kurtosis 3.8)",
+            lambda seed, n: _base(_equal(m), seed=seed, n=n, scale_points=5,
+                                  category_probabilities=SKEWED_SHARES),
+            False, "the items are 5-point and strongly skewed, not continuous and normal; the rest "
+                   "of the model holds (robust standard errors should keep the coverage)",
+            False, {"items_continuous": ("doubtful", "fails")}),
+        "n150": _Entry(
+            "Baseline with 150 respondents",
+            "small-sample accuracy and coverage where the assumptions hold",
+            lambda seed, n: _base(_equal(m), seed=seed, n=n),
+            True, "as the baseline, at n = 150", False, {}, n=150),
+        "measured_method": _Entry(
+            "A measured method scale, no marker",
+            "correction by a method scale (4 items, loading .70 on M) that measures the shared method",
+            lambda seed, n: _base(_equal(m), marker=False, method_scale=True, seed=seed, n=n),
+            True, "the method scale measures exactly the method the substantive items share", False, {}),
+        "acquiescence": _Entry(
+            "Acquiescence with reverse-keyed items",
+            "a response style added to every answer before reverse-keying: after recoding, method "
+            "loadings are +.35 on positively and -.35 on reverse-keyed items",
+            lambda seed, n: _base(_equal(0.0), seed=seed, n=n, acquiescence=m,
+                                  reverse={"sup": [2, 4], "eng": [2, 4], "sty": [3]}),
+            False, "the method loadings' sign follows the keying: equal loadings fail, and the marker "
+                   "(all positively keyed) carries the style with one sign only",
+            False, {"method_loadings": ("doubtful", "fails")}),
+    }
+
+
+SCENARIOS: tuple[str, ...] = tuple(_scenario_table())
+
+
+def make_scenario(name: str, seed: int = 0, n: int | None = None) -> Scenario:
+    """The named scenario (see :data:`SCENARIOS`) for one sample: its spec and its truth."""
+    table = _scenario_table()
+    if name not in table:
+        raise ValueError(f"unknown scenario {name!r}; use one of {', '.join(table)}")
+    e = table[name]
+    spec = e.make(seed, e.n if n is None else n)
+    shares = true_method_shares(spec)
+    return Scenario(name=name, title=e.title, tests=e.tests, spec=spec,
+                    true_paths=true_standardized_paths(spec),
+                    method_share=float(shares["substantive"] or 0.0),
+                    marker_method_share=shares["marker"], assumptions_hold=e.assumptions_hold,
+                    why=e.why, instrument_fails=e.instrument_fails, expected=dict(e.expected))

@@ -16,13 +16,16 @@ from scipy.stats import multivariate_normal, norm
 from measurement.design import check_columns, load_design
 from measurement.simulate import (
     METHOD_FACTOR,
+    SCENARIOS,
     ConstructSpec,
     SurveySpec,
     implied_truth,
     likert_category_probabilities,
     likert_thresholds,
+    make_scenario,
     population_item_correlation,
     simulate_survey,
+    spec_to_dict,
 )
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -326,3 +329,117 @@ def test_codebook_lists_every_item_with_its_wording():
     for item, wording in gen.item_wording().items():
         assert f"`{item}`" in codebook and wording in codebook, item
     assert gen.COMPANY in codebook and "-99" in codebook
+
+
+# ---- named scenarios: their truth against a direct computation -------------------------------
+
+def _direct_implied(sc) -> tuple[np.ndarray, list[str], np.ndarray]:
+    """Implied item covariance (as stored), written out by hand from the scenario's generating
+    parameters with numpy: the base survey's traits sup -> eng -> sty (beta .30, .45, and 0 for
+    sty on sup), an unrelated marker trait, M correlated c with sup, and A independent of all.
+    Returns (covariance, item names, latent covariance of [sup, eng, sty, wth, M, A])."""
+    spec = sc.spec
+    c = spec.method_trait_corr.get("sup", 0.0)
+    b1, b2 = spec.paths["eng"]["sup"], spec.paths["sty"]["eng"]
+    assert spec.paths["sty"]["sup"] == 0.0
+    order = ["sup", "eng", "sty", "wth", METHOD_FACTOR, "acquiescence"]
+    phi = np.eye(6)
+    phi[0, 1] = b1
+    phi[0, 2] = b2 * b1
+    phi[1, 2] = b2
+    phi[0, 4], phi[1, 4], phi[2, 4] = c, b1 * c, b2 * b1 * c
+    phi = np.triu(phi) + np.triu(phi, 1).T
+    rows, names, signs = [], [], []
+    for con in spec.constructs:
+        for pos, (name, lv, mv) in enumerate(zip(con.item_names(), con.loadings(),
+                                                 con.method_loadings(), strict=True), 1):
+            row = np.zeros(6)
+            sign = -1.0 if pos in con.reverse else 1.0
+            if con.role == "method":
+                row[4] = lv
+            else:
+                row[order.index(con.name)] = lv
+                row[4] = mv
+            row[5] = sign * spec.acquiescence
+            rows.append(row)
+            names.append(name)
+            signs.append(sign)
+    lam = np.array(rows)
+    common = lam @ phi @ lam.T
+    cov = common + np.diag(1.0 - np.diag(common))  # every item has variance 1
+    s = np.array(signs)
+    return cov * np.outer(s, s), names, phi
+
+
+@pytest.mark.parametrize("name", SCENARIOS)
+def test_scenario_truth_matches_a_direct_computation(name):
+    sc = make_scenario(name, seed=5, n=50_000)
+    cov, names, phi = _direct_implied(sc)
+    df, _, latent = simulate_survey(sc.spec, return_latent=True)
+    assert items_of(df) == names
+    # The project's implied correlation equals the hand-written one (continuous items).
+    pop = population_item_correlation(sc.spec).loc[names, names].to_numpy()
+    assert np.allclose(pop, cov, atol=1e-12)
+    x = df[names].to_numpy(dtype=float)
+    if sc.spec.scale_points is None:
+        # numpy's sample covariance at n = 50,000: SE of each entry at most ~0.0065
+        assert np.abs(np.cov(x.T) - cov).max() < 0.03
+    else:
+        disc = population_item_correlation(sc.spec, discrete=True).loc[names, names].to_numpy()
+        assert np.abs(np.corrcoef(x.T) - disc).max() < 0.03
+        shares = np.bincount(x.astype(int).ravel(), minlength=6)[1:] / x.size
+        assert np.allclose(shares, sc.spec.category_probabilities, atol=0.005)
+    # True standardized paths: solved from the hand-written trait covariance (exact) and
+    # recovered by numpy least squares on the latent scores.
+    for (y, pred), value in sc.true_paths.items():
+        preds = list(sc.spec.paths[y])
+        ix = [["sup", "eng", "sty"].index(q) for q in preds]
+        beta = np.linalg.solve(phi[np.ix_(ix, ix)], phi[ix, ["sup", "eng", "sty"].index(y)])
+        assert value == pytest.approx(beta[preds.index(pred)], abs=1e-12)
+        ols = std_ols(latent[y].to_numpy(), latent[preds].to_numpy())
+        assert ols[preds.index(pred)] == pytest.approx(value, abs=0.02)
+    # True method share: mean squared method loading (M and A) over the substantive items.
+    subst = [c for c in sc.spec.constructs if c.role == "substantive"]
+    direct = np.mean([m * m + sc.spec.acquiescence ** 2 for c in subst for m in c.method_loadings()])
+    assert sc.method_share == pytest.approx(direct, abs=1e-12)
+    if sc.spec.method_trait_corr:
+        assert latent[METHOD_FACTOR].corr(latent["sup"]) == pytest.approx(0.30, abs=0.02)
+    if sc.spec.acquiescence:
+        # after recoding, a reverse-keyed item correlates negatively with the style
+        recoded = df["sup2"].to_numpy(dtype=float) * -1
+        assert np.corrcoef(recoded, latent["acquiescence"])[0, 1] == pytest.approx(-0.35, abs=0.02)
+        assert np.corrcoef(df["sup1"], latent["acquiescence"])[0, 1] == pytest.approx(0.35, abs=0.02)
+
+
+def test_skewed_thresholds_match_bivariate_normal():
+    # Skewed 5-point items with continuous correlation .49: the exact covariance by direct
+    # bivariate normal sums (scipy), as in the symmetric case above.
+    probs = (0.01, 0.03, 0.06, 0.25, 0.65)
+    spec = SurveySpec([ConstructSpec("a", 2, 0.7)], paths={}, scale_points=5,
+                      category_probabilities=probs)
+    got = population_item_correlation(spec, discrete=True).iloc[0, 1]
+    tau = norm.ppf(np.cumsum(probs)[:-1])
+    rho = 0.49
+    mvn = multivariate_normal(mean=[0, 0], cov=[[1, rho], [rho, 1]])
+    cov = sum(mvn.cdf([-a, -b]) - norm.sf(a) * norm.sf(b) for a in tau for b in tau)
+    p = np.array(probs)
+    v = np.arange(1, 6)
+    assert got == pytest.approx(cov / (p @ (v - p @ v) ** 2), abs=1e-5)
+
+
+@pytest.mark.parametrize("bad, message", [
+    (dict(method_trait_corr={"engagement": 0.3}), "exogenous"),
+    (dict(method_trait_corr={"support": 1.2}), "not in"),
+    (dict(acquiescence=0.9), "negative error variance"),
+    (dict(scale_points=5, category_probabilities=[0.5, 0.5]), "5 positive shares"),
+    (dict(category_probabilities=[0.2] * 5), "needs scale_points"),
+])
+def test_impossible_departures_raise(bad, message):
+    with pytest.raises(ValueError, match=message):
+        implied_truth(scenario(**bad))
+
+
+def test_departures_off_leave_the_spec_record_unchanged():
+    record = spec_to_dict(scenario())
+    assert not {"method_trait_corr", "acquiescence", "category_probabilities"} & set(record)
+    assert spec_to_dict(scenario(acquiescence=0.2))["acquiescence"] == 0.2
