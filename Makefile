@@ -43,8 +43,11 @@ test-postgres: $(STAMP) postgres-up
 lint: $(STAMP)
 	$(BIN)/ruff check measurement service tests sample_surveys
 
+# The report and bootstrap grid, then the big files (10k/100k/1M rows against the floor, the
+# bootstrap at 100,000 x 60 on the local pool and on a local Dask cluster): about an hour alone.
 bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/run_all.py
+	$(BIN)/python tests/benchmarks/scale.py
 
 # Bias and interval coverage with known truth (about 7 minutes on two cores), then the
 # assumption study's scenarios (about 5-15 minutes) -> docs/coverage.md

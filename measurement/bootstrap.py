@@ -23,6 +23,13 @@ Method (Efron & Tibshirani 1993, *An Introduction to the Bootstrap*):
   third/second moment ratio ``n m3 / (n m2)^1.5``, the same as n single values, so ``a``
   estimates the same quantity, with more noise the fewer the groups.
 
+* Weighted cross-products (measurement/replicate_moments.py): when the data have no missing
+  cell and the statistic needs only the rows' moments (it has ``from_moments``, as the path
+  estimator does), a replicate is not materialised: its draw counts (the same draws, from the
+  same seed, counted) weight one matrix product per batch of replicates, and the jackknife's
+  deletions are 0/1 weights. The replicates are those of the resampled rows up to rounding
+  in the last bits. With a missing cell (FIML fits raw rows) rows are resampled as above.
+
 Failures: a statistic returns NaN for an estimate that failed in a replicate (a model that
 did not converge) or raises, which fails the whole replicate. Non-finite values count as
 failed. Every interval uses the successful replicates of its estimate; estimates with more
@@ -121,6 +128,7 @@ class _Chunk:
     stop: int
     seed: int = 0
     labels: np.ndarray | None = None  # jackknife group of every row
+    moments: Any = None  # the statistic's moment form: replicates from weighted cross-products
 
     @property
     def size(self) -> int:
@@ -148,13 +156,17 @@ def _run_chunk(chunk: _Chunk) -> _ChunkResult:
     values = np.full((chunk.size, chunk.k), np.nan)
     n_raised = n_bad = 0
     first: str | None = None
-    for i, r in enumerate(range(chunk.start, chunk.stop)):
-        if chunk.kind == "boot":
-            idx = replicate_indices(chunk.seed, r, n)
-        else:
-            idx = np.flatnonzero(chunk.labels != r)
+    replicates = range(chunk.start, chunk.stop)
+    moments = _chunk_moments(chunk, replicates) if chunk.moments is not None else None
+    for i, r in enumerate(replicates):
         try:
-            out = np.asarray(chunk.statistic(chunk.data, idx), dtype=float).reshape(-1)
+            if moments is not None:
+                out = chunk.moments.from_moments(moments[i])
+            else:
+                idx = replicate_indices(chunk.seed, r, n) if chunk.kind == "boot" else \
+                    np.flatnonzero(chunk.labels != r)
+                out = chunk.statistic(chunk.data, idx)
+            out = np.asarray(out, dtype=float).reshape(-1)
         except Exception as exc:  # a failed replicate, not a failed bootstrap
             n_raised += 1
             first = first or f"{type(exc).__name__}: {exc}"
@@ -166,6 +178,33 @@ def _run_chunk(chunk: _Chunk) -> _ChunkResult:
         values[i] = out
     values[~np.isfinite(values)] = np.nan  # infinities count as failures too
     return _ChunkResult(chunk.start, values, n_raised, n_bad, first)
+
+
+def _chunk_moments(chunk: _Chunk, replicates: range) -> list:
+    from .replicate_moments import draw_counts, weighted_moments
+
+    n = len(chunk.data)
+    if chunk.kind == "boot":
+        def weights(a: int, b: int) -> np.ndarray:
+            return draw_counts(lambda r: replicate_indices(chunk.seed, r, n), replicates[a:b], n)
+    else:
+        def weights(a: int, b: int) -> np.ndarray:
+            groups = np.asarray(replicates[a:b])
+            return (chunk.labels[None, :] != groups[:, None]).astype(float)
+    return weighted_moments(chunk.data, len(replicates), weights)
+
+
+def _moment_form(statistic: Any, data: Any, scheme: str) -> Any:
+    """The statistic's moment form when replicates can come from weighted cross-products:
+    complete rows (no missing cell) and a statistic that needs only their moments."""
+    if scheme == "rows":
+        return None
+    if not (isinstance(data, np.ndarray) and data.ndim == 2 and data.dtype.kind == "f"
+            and len(data) and np.isfinite(data).all()):
+        return None
+    from .replicate_moments import moment_form
+
+    return moment_form(statistic)
 
 
 # ---------------------------------------------------------------------------------------
@@ -235,7 +274,7 @@ def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
               chunk_size: int | None = None, jackknife_groups: int = 50,
               progress: Callable[[int, int], None] | None = None,
               estimate: np.ndarray | None = None,
-              names: Sequence[str] | None = None) -> BootstrapResult:
+              names: Sequence[str] | None = None, scheme: str = "auto") -> BootstrapResult:
     """Case-resampling bootstrap of ``statistic`` with percentile and BCa intervals.
 
     Efron & Tibshirani (1993) ch. 6, 13 and 14; BCa from Efron (1987); the jackknife for the
@@ -253,7 +292,8 @@ def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
         Where the replicates and jackknife fits run; default :func:`default_executor`.
     chunk_size:
         Replicates (or jackknife fits) per task; default about
-        :data:`CHUNKS_PER_WORKER` chunks per worker. Does not change the results.
+        :data:`CHUNKS_PER_WORKER` chunks per worker; rounded up to whole batches of
+        ``replicate_moments.BATCH`` under weighted cross-products. Does not change the results.
     jackknife_groups:
         Groups of the delete-a-group jackknife (delete-one when n is not larger).
     progress:
@@ -266,8 +306,14 @@ def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
     names:
         A label per estimate for the notes; with names, estimates that are NaN on the full
         data (not estimable there) get no notes.
+    scheme:
+        "auto" (default): weighted cross-products where they apply (complete rows, a
+        statistic with a moment form; see the module docstring), resampled rows otherwise;
+        "rows": always resampled rows.
     """
     n_boot, seed, chunk_size = _check_args(n_boot, seed, confidence, chunk_size, jackknife_groups)
+    if scheme not in ("auto", "rows"):
+        raise ValueError(f"scheme must be 'auto' or 'rows', got {scheme!r}")
     n = len(data)
     if n < 2:
         raise ValueError(f"the bootstrap needs at least 2 rows, got {n}")
@@ -285,12 +331,18 @@ def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
     ex = executor if executor is not None else default_executor(total)
     workers = max(1, int(ex.workers))
 
+    moments = _moment_form(statistic, data, scheme)
     chunks: list[_Chunk] = []
     for kind, count in (("boot", n_boot), ("jack", n_groups)):
         size = chunk_size or max(1, math.ceil(count / (CHUNKS_PER_WORKER * workers)))
+        if moments is not None:  # whole batches, so a replicate's sums never depend on the chunks
+            from .replicate_moments import BATCH
+
+            size = math.ceil(size / BATCH) * BATCH
         for start in range(0, count, size):
-            chunks.append(_Chunk(statistic, data, k, kind, start, min(start + size, count), seed,
-                                 labels if kind == "jack" else None))
+            chunks.append(_Chunk(None if moments is not None else statistic, data, k, kind, start,
+                                 min(start + size, count), seed, labels if kind == "jack" else None,
+                                 moments))
     results = _map_chunks(ex, chunks, workers, progress, total)
 
     reps = np.full((n_boot, k), np.nan)

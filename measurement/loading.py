@@ -1,7 +1,8 @@
 """Reading survey data files into a table of raw cells, remembering where each row came from.
 
-:func:`load_table` reads delimited text (.csv, .tsv, .txt), Excel workbooks (.xlsx) and SPSS
-files (.sav) from a path or from bytes (an HTTP upload). It does not interpret values: text
+:func:`load_table` reads delimited text (.csv, .tsv, .txt), Excel workbooks (.xlsx), SPSS
+files (.sav) and Parquet files (.parquet), and any of them gzip-compressed (.csv.gz), from a
+path or from bytes (an HTTP upload). It does not interpret values: text
 cells stay strings so that :mod:`measurement.prepare` can name a bad value exactly as the
 user typed it. Every problem is an :class:`~measurement.errors.InputError` naming the file
 and, where it applies, the row and column.
@@ -21,6 +22,7 @@ import subprocess
 import sys
 import warnings
 import zipfile
+import zlib
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -29,10 +31,11 @@ import numpy as np
 import pandas as pd
 
 from .design import did_you_mean, item_stem
-from .errors import DataError, UnsupportedFormat
+from .errors import DataError, InputError, UnsupportedFormat
 
-FORMATS = ("csv", "tsv", "txt", "xlsx", "sav")
-READABLE = ".csv, .tsv or .txt (delimited text), .xlsx or .sav"
+FORMATS = ("csv", "tsv", "txt", "xlsx", "sav", "parquet")
+READABLE = (".csv, .tsv or .txt (delimited text), .xlsx, .sav or .parquet (any of them also "
+            "gzip-compressed, as .csv.gz)")
 TEXT_EXTENSIONS = {".csv": "csv", ".tsv": "tsv", ".txt": "txt"}
 DELIMITERS = (",", ";", "\t", "|")
 
@@ -49,7 +52,6 @@ _MAGIC: tuple[tuple[bytes, str, str], ...] = (
     (b"\xff\xd8\xff", "a JPEG image", ""),
     (b"GIF87a", "a GIF image", ""),
     (b"GIF89a", "a GIF image", ""),
-    (b"\x1f\x8b", "a gzip-compressed file", "Decompress it first."),
     (b"BZh", "a bzip2-compressed file", "Decompress it first."),
     (b"\xfd7zXZ\x00", "an xz-compressed file", "Decompress it first."),
     (b"7z\xbc\xaf\x27\x1c", "a 7-Zip archive", "Unpack it first."),
@@ -58,7 +60,6 @@ _MAGIC: tuple[tuple[bytes, str, str], ...] = (
      "an old-style Excel .xls workbook (or another Office 97-2003 file, or a "
      "password-protected workbook)", "Save it as .xlsx or .csv, without a password."),
     (b"SQLite format 3\x00", "an SQLite database", ""),
-    (b"PAR1", "a Parquet file", ""),
     (b"<stata_dta>", "a Stata .dta file", "Export it as .csv or .sav."),
     (b"{\\rtf", "a rich-text (RTF) document", ""),
     (b"\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\x00\xc2\xea\x81\x60\xb3\x14\x11\xcf",
@@ -239,7 +240,7 @@ def _text_head(head: bytes) -> str:
 
 
 def detect_format(head: bytes, filename: str | None) -> str:
-    """The file's format ("csv", "tsv", "txt", "xlsx" or "sav") from its content and name.
+    """The file's format (one of :data:`FORMATS`) from its content and name.
 
     Content wins where it is decisive (a workbook called .csv is read as a workbook);
     anything we do not read raises :class:`UnsupportedFormat` saying what it looks like.
@@ -252,6 +253,11 @@ def detect_format(head: bytes, filename: str | None) -> str:
         return _zip_kind(head, ext, filename)
     if head[:4] in (b"$FL2", b"$FL3"):
         return "sav"
+    if head.startswith(PARQUET_MAGIC):
+        return "parquet"
+    if head.startswith(GZIP_MAGIC):  # load_table unpacks once: here it was compressed twice
+        raise _unsupported("a gzip-compressed file", filename,
+                           "Decompress it until it is a data table (compressing that once is fine).")
     has_bom = any(head.startswith(bom) for bom, _ in _BOMS)
     if not has_bom:
         for magic, what, advice in _MAGIC:
@@ -872,15 +878,145 @@ def load_table(source: str | os.PathLike | bytes, *, name: str | None = None,
     if not data.strip():
         raise DataError("the file is empty; export the survey data again", file=label)
 
-    fmt = detect_format(data, label)
+    packed = data
+    unpack_notes: list[dict] = []
+    if data.startswith(GZIP_MAGIC):
+        data, unpack_notes = gunzip(data, label, max_bytes)
+    fmt = _detect_unpacked(data, label) if unpack_notes else detect_format(data, label)
     if fmt == "xlsx":
         parts = _read_xlsx(data, label, sheet)
     elif fmt == "sav":
         parts = _read_sav(data, label)
+    elif fmt == "parquet":
+        parts = read_parquet(data, label)
     else:
         parts = _read_text(data, label, fmt)
+    parts["warnings"] = unpack_notes + parts.get("warnings", [])
     return LoadedTable(row_label="case" if fmt == "sav" else "row", format=fmt, source=label,
-                       sha256=hashlib.sha256(data).hexdigest(), size_bytes=len(data), **parts)
+                       sha256=hashlib.sha256(packed).hexdigest(), size_bytes=len(packed), **parts)
+
+
+# --------------------------------------------------------------------------- gzip, Parquet
+
+GZIP_MAGIC = b"\x1f\x8b"
+PARQUET_MAGIC = b"PAR1"
+# A compressed file may unpack to at most this many times the byte limit (when there is one):
+# survey tables of small integers compress about 5 to 10 times, a "zip bomb" a million times.
+UNPACKED_LIMIT_FACTOR = 20
+_UNPACK_BLOCK = 1 << 24
+
+
+def gunzip(data: bytes, label: str, max_bytes: int | None = None) -> tuple[bytes, list[dict]]:
+    """The unpacked contents of a gzip file (RFC 1952; every member of a multi-member file),
+    and a note for the report. Stops with a :class:`DataError` as soon as the contents pass
+    ``UNPACKED_LIMIT_FACTOR x max_bytes``, or when the file is damaged or cut short."""
+    cap = None if max_bytes is None else max_bytes * UNPACKED_LIMIT_FACTOR
+    advice = "check that it is complete, or compress the file again"
+    parts: list[bytes] = []
+    size = 0
+    rest = data
+    try:
+        while rest:
+            d = zlib.decompressobj(wbits=31)  # 31: the gzip wrapper
+            buf = rest
+            while buf:
+                block = d.decompress(buf, _UNPACK_BLOCK)
+                size += len(block)
+                if cap is not None and size > cap:
+                    raise DataError(
+                        f"the compressed file unpacks to over {cap / 1e6:.3g} MB ({UNPACKED_LIMIT_FACTOR} "
+                        f"times the limit of {max_bytes / 1e6:.3g} MB); remove columns the analysis "
+                        "does not use, or split the file", file=label, code="too_large")
+                parts.append(block)
+                buf = d.unconsumed_tail
+            parts.append(d.flush())
+            if not d.eof:
+                raise DataError(f"the gzip-compressed file is cut short; {advice}", file=label)
+            rest = d.unused_data
+            if not rest.strip(b"\x00"):  # padding after the last member
+                break
+    except zlib.error as e:
+        raise DataError(f"cannot unpack the gzip-compressed file ({e}); {advice}", file=label) from None
+    out = b"".join(parts)
+    if not out.strip():
+        raise DataError("the compressed file is empty inside; export the survey data again", file=label)
+    note = {"code": "unpacked", "message": (
+        f"the file was gzip-compressed: {len(data) / 1e6:.3g} MB unpacked to {len(out) / 1e6:.3g} MB")}
+    return out, [note]
+
+
+def _detect_unpacked(data: bytes, label: str) -> str:
+    # the name without ".gz" tells the format inside ("survey.csv.gz" -> .csv); messages keep
+    # the name the user gave
+    inner = label[:-3] if label.lower().endswith(".gz") else label
+    try:
+        return detect_format(data, inner)
+    except InputError as e:
+        e.file = label
+        if "looks like" in e.message:
+            e.message = e.message.replace("this file looks like", "this file unpacks to", 1)
+        raise
+
+
+def read_parquet(data: bytes, source: str) -> dict:
+    """A Parquet file (the Apache Parquet columnar format) read with pyarrow, as the parts of a
+    :class:`LoadedTable`: numeric columns stay numeric (as from .sav), text columns become
+    strings with blanks as missing, dictionary-encoded (categorical) columns their texts.
+    Rows are numbered from 1 (the file has no header row). Columns holding lists, structures
+    or maps, duplicate or empty column names, and damaged files are refused by name."""
+    advice = "check that it is complete, or export it again from where it came"
+    try:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+    except ImportError:  # pragma: no cover - pyarrow is a dependency
+        raise UnsupportedFormat("reading Parquet files needs the pyarrow package; export the "
+                                "data as .csv instead", file=source) from None
+    try:
+        pf = pq.ParquetFile(io.BytesIO(data))
+        schema = pf.schema_arrow
+    except Exception as e:  # pyarrow's errors for damaged files vary by release
+        raise DataError(f"cannot read the Parquet file ({_brief(e)}); {advice}", file=source) from None
+    names = [str(n) for n in schema.names]
+    if not names:
+        raise DataError("the Parquet file has no columns", file=source)
+    seen: dict[str, int] = {}
+    for j, name in enumerate(names, start=1):
+        if not name.strip():
+            raise DataError(f"column {j} of the Parquet file has no name; give it one", file=source,
+                            column=str(j))
+        if name in seen:
+            raise DataError(f"the column name '{name}' appears twice in the Parquet file (columns "
+                            f"{seen[name]} and {j}); give each column its own name", file=source,
+                            column=name)
+        seen[name] = j
+    for f in schema:
+        t = f.type
+        if pa.types.is_nested(t):
+            raise DataError(f"this column holds {t} values (lists or structures), not one answer per "
+                            "respondent; flatten it into one column per item", file=source,
+                            column=str(f.name))
+    try:
+        table = pf.read()
+    except Exception as e:
+        raise DataError(f"cannot read the Parquet file ({_brief(e)}); {advice}", file=source) from None
+    if table.num_rows == 0:
+        raise DataError("the Parquet file has columns but no rows", file=source)
+    columns = {}
+    for name, col in zip(names, table.columns, strict=True):
+        t = col.type
+        if pa.types.is_dictionary(t):
+            col, t = col.cast(t.value_type), t.value_type
+        if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t):
+            s = col.to_pandas()
+            columns[name] = s.astype(float) if pa.types.is_decimal(t) else s
+        elif pa.types.is_timestamp(t) or pa.types.is_date(t):
+            columns[name] = col.to_pandas()
+        else:  # text (and anything else) as Python objects, blanks missing
+            s = pd.Series(col.to_pylist(), dtype=object)
+            columns[name] = s.where(~s.map(_blank_cell), np.nan)
+    frame = pd.DataFrame({n: pd.Series(v).reset_index(drop=True) for n, v in columns.items()})
+    frame.columns = pd.Index(names, dtype=object)
+    return dict(frame=frame, row_numbers=np.arange(1, len(frame) + 1, dtype=np.int64))
 
 
 def text_answers(table: LoadedTable, columns: Sequence[str] | None = None, *,

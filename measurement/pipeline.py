@@ -29,6 +29,7 @@ from .report import finalize_report, finite_or_none
 from .review import review_section
 from .screening import screen_respondents
 from .teams_report import teams_section
+from .timings import StageClock
 
 Progress = Callable[[str, int, int], None]
 
@@ -63,7 +64,8 @@ def analyze(
     """Run the whole analysis. Raises :class:`~measurement.errors.InputError` for bad input."""
     opts = options if isinstance(options, AnalysisOptions) else AnalysisOptions.from_dict(options)
     dsg = design if isinstance(design, Design) else parse_design(design)
-    step = progress or (lambda stage, done, total: None)
+    clock = StageClock()  # report["timings"]
+    step = clock.timed(progress or (lambda stage, done, total: None))
     total = len(STAGES)
 
     step("load", 0, total)
@@ -121,6 +123,7 @@ def analyze(
     # Review before use (measurement/review.py): after every section it reads from.
     report.update(review_section(constructs, dsg, scale_source=prepared.scale_source))
     report = finalize_report(report, warnings=warnings, options=opts)
+    report["timings"] = clock.finish()
     step("report", total, total)
     return Analysis(report=report, prepared=prepared, plan=plan, fits=fits)
 

@@ -24,7 +24,7 @@ def _parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True)
 
     a = sub.add_parser("analyze", help="analyse a survey file with a design file; writes report.json")
-    a.add_argument("data", help="survey data: .csv, .tsv, .txt, .xlsx or .sav")
+    a.add_argument("data", help="survey data: .csv, .tsv, .txt, .xlsx, .sav, .parquet, or any of them gzip-compressed (.csv.gz)")
     a.add_argument("--design", required=True, help="the study design (JSON)")
     a.add_argument("--out", default="samesource-report", help="output folder (default ./samesource-report)")
     a.add_argument("--sheet", help="worksheet of an .xlsx file (default: the sheet with the most rows "

@@ -441,3 +441,105 @@ def test_percentile_interval_coverage_for_a_normal_mean():
     assert 0.87 <= hits_bca / 200 <= 0.99
     # on the same data sets the bootstrap tracks the large-sample interval it approximates
     assert abs(hits_pct - hits_z) <= 8 and abs(hits_bca - hits_z) <= 8
+
+
+# -- replicates from weighted cross-products (measurement/replicate_moments.py) -------------
+
+
+class MeanCovStat:
+    """Means and covariances (divisor n) of the rows: from the rows, or from their moments."""
+
+    def __call__(self, data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+        x = data[idx]
+        return np.concatenate([x.mean(axis=0), np.cov(x, rowvar=False, bias=True)[np.triu_indices(x.shape[1])]])
+
+    def from_moments(self, m) -> np.ndarray:
+        return np.concatenate([m.mean, m.cov[np.triu_indices(m.cov.shape[0])]])
+
+
+@pytest.fixture(scope="module")
+def items5() -> np.ndarray:
+    # simulated 5-point answers (large means, as survey items have), n not a multiple of a row block
+    rng = np.random.default_rng(515)
+    return np.clip(np.round(3 + rng.standard_normal((9001, 6)) @ np.triu(np.ones((6, 6))) / 3), 1, 5)
+
+
+def test_weighted_covariance_equals_numpy_cov_with_frequency_weights(items5):
+    # Reference: numpy's np.cov(..., fweights=..., bias=True) and np.average(..., weights=...)
+    from measurement.replicate_moments import BATCH, draw_counts, weighted_moments
+
+    n = len(items5)
+    count = BATCH + 5  # a whole batch and a part of one
+    W = draw_counts(lambda r: replicate_indices(9, r, n), range(count), n)
+    W[-1] = (np.arange(n) % 3 != 0)  # 0/1 weights, as a jackknife deletion
+    got = weighted_moments(items5, count, lambda a, b: W[a:b])
+    for r in (0, 17, count - 2, count - 1):
+        w = W[r].astype(np.int64)
+        want = np.cov(items5, rowvar=False, fweights=w, bias=True)
+        np.testing.assert_allclose(got[r].cov, want, rtol=1e-12, atol=1e-13)
+        np.testing.assert_allclose(got[r].mean, np.average(items5, axis=0, weights=w), rtol=1e-13)
+        assert got[r].n == w.sum()
+    # and the resampled rows themselves
+    idx = replicate_indices(9, 17, n)
+    np.testing.assert_allclose(got[17].cov, np.cov(items5[idx], rowvar=False, bias=True), rtol=1e-12, atol=1e-13)
+
+
+def test_weighted_replicates_equal_resampled_ones_and_do_not_depend_on_the_chunks(pool, items5):
+    stat = MeanCovStat()
+    rows = bootstrap(stat, items5, n_boot=70, seed=5, executor=SERIAL, scheme="rows", jackknife_groups=12)
+    runs = [bootstrap(stat, items5, n_boot=70, seed=5, executor=SERIAL, jackknife_groups=12),
+            bootstrap(stat, items5, n_boot=70, seed=5, executor=SERIAL, chunk_size=1, jackknife_groups=12),
+            bootstrap(stat, items5, n_boot=70, seed=5, executor=pool, jackknife_groups=12),
+            bootstrap(stat, items5, n_boot=70, seed=5, executor=pool, chunk_size=7, jackknife_groups=12)]
+    first = runs[0]
+    # the same draws: equal to the resampled rows up to rounding
+    np.testing.assert_allclose(first.replicates, rows.replicates, rtol=1e-11, atol=1e-12)
+    np.testing.assert_allclose(first.jackknife, rows.jackknife, rtol=1e-11, atol=1e-12)
+    for other in runs[1:]:  # bit for bit whatever the executor and the chunks
+        np.testing.assert_array_equal(other.replicates, first.replicates)
+        np.testing.assert_array_equal(other.jackknife, first.jackknife)
+        np.testing.assert_array_equal(other.ci_bca, first.ci_bca)
+    shorter = bootstrap(stat, items5, n_boot=40, seed=5, executor=SERIAL, jackknife_groups=12)
+    np.testing.assert_array_equal(shorter.replicates, first.replicates[:40])
+
+
+def test_rows_are_resampled_when_a_cell_is_missing(items5):
+    # FIML fits the raw rows; the fitting engine takes no row weights, so no moment form
+    from measurement.bootstrap import _moment_form
+
+    holed = items5.copy()
+    holed[3, 2] = np.nan
+    assert _moment_form(MeanCovStat(), items5, "auto") is not None
+    assert _moment_form(MeanCovStat(), holed, "auto") is None
+    assert _moment_form(MeanCovStat(), items5, "rows") is None
+    assert _moment_form(mean_stat, items5, "auto") is None  # a statistic without a moment form
+    with pytest.raises(ValueError, match="scheme"):
+        bootstrap(mean_stat, items5, n_boot=10, seed=1, executor=SERIAL, scheme="weights")
+
+
+def test_path_estimates_from_a_replicates_moments_equal_those_from_its_rows():
+    # The path estimator fed a replicate's moments (replicate_moments.MomentPathEstimator)
+    # against the same estimator on the resampled rows (simulated survey with known truth).
+    from measurement.design import parse_design
+    from measurement.paths import PathEstimator
+    from measurement.replicate_moments import draw_counts, moment_form, weighted_moments
+    from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+
+    spec = SurveySpec(constructs=[ConstructSpec("support", 4, 0.75, 0.3), ConstructSpec("engagement", 4, 0.7, 0.3),
+                                  ConstructSpec("weather", 3, 0.7, 0.3, role="marker", prefix="wth")],
+                      paths={"engagement": {"support": 0.4}}, n=400, seed=8)
+    df, _ = simulate_survey(spec)
+    design = parse_design(design_for(spec))
+    est = PathEstimator(design, use_method_factor="marker", method_loadings="equal", use_measured=False)
+    X = df[est.items].to_numpy(dtype=float)
+    full, extra = est.estimate(X, compute_se=True)
+    est.warm = dict(extra["fits"])
+    form = moment_form(est)
+    assert form is not None and form is not est
+    W = draw_counts(lambda r: replicate_indices(3, r, len(X)), range(3), len(X))
+    moments = weighted_moments(X, 3, lambda a, b: W[a:b])
+    for r in range(3):
+        from_rows = est(X, replicate_indices(3, r, len(X)))
+        from_moments = form.from_moments(moments[r])
+        assert np.isfinite(from_rows).sum() == 7  # all but measured_method_adjusted (no method scale)
+        np.testing.assert_allclose(from_moments, from_rows, rtol=1e-5, atol=1e-6, equal_nan=True)

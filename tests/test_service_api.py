@@ -624,3 +624,48 @@ def test_tables_over_http_are_the_command_lines_files(app, client, svc_survey):
     assert "constructs" in sheets
     err = assert_error(client.get(f"/v1/analyses/{a['id']}/tables/constructz.csv", headers=h), 404)
     assert "did you mean 'constructs'" in err["message"]
+
+
+# -- big files: streamed uploads, compressed uploads ---------------------------------------
+
+
+def test_compressed_uploads_are_read(app, client, svc_survey):
+    import gzip
+
+    import pandas as pd
+
+    h = token_for(app, "packed")
+    data, _design = svc_survey
+    r = upload(client, h, gzip.compress(data), "survey.csv.gz")
+    assert r.status_code == 201, r.get_data(as_text=True)
+    ds = r.get_json()
+    assert ds["format"] == "csv" and ds["rows"] == 200
+    assert any(w["code"] == "unpacked" for w in ds["warnings"])
+    buf = io.BytesIO()
+    pd.read_csv(io.BytesIO(data)).to_parquet(buf, index=False)
+    r = upload(client, h, buf.getvalue(), "survey.parquet")
+    assert r.status_code == 201, r.get_data(as_text=True)
+    ds2 = r.get_json()
+    assert ds2["format"] == "parquet" and ds2["rows"] == 200
+    assert ds2["columns"] == ds["columns"] and ds2["sha256"] == hashlib.sha256(buf.getvalue()).hexdigest()
+
+
+def test_upload_stream_takes_the_file_field_among_others_and_refuses_broken_bodies(app, client):
+    h = token_for(app, "stream")
+    boundary = "XyZbound"
+    csv = b"id,sup1\nr1,3\nr2,4\nr3,5\n" * 10
+    body = (f"--{boundary}\r\nContent-Disposition: form-data; name=\"note\"\r\n\r\nhello\r\n"
+            f"--{boundary}\r\nContent-Disposition: form-data; name=\"file\"; filename=\"s.csv\"\r\n"
+            f"Content-Type: text/csv\r\n\r\n").encode() + csv + (
+            f"\r\n--{boundary}\r\nContent-Disposition: form-data; name=\"after\"\r\n\r\nx\r\n"
+            f"--{boundary}--\r\n").encode()
+    ct = f"multipart/form-data; boundary={boundary}"
+    r = client.post("/v1/datasets", headers=h, data=body, content_type=ct)
+    assert r.status_code == 201, r.get_data(as_text=True)
+    assert r.get_json()["name"] == "s.csv" and r.get_json()["sha256"] == hashlib.sha256(csv).hexdigest()
+    cut = body[: len(body) // 2]
+    assert_error(client.post("/v1/datasets", headers=h, data=cut, content_type=ct), 400, "bad_request", "file")
+    assert_error(client.post("/v1/datasets", headers=h, data=body, content_type="multipart/form-data"),
+                 400, "bad_request", "file")
+    cfg = app.extensions[EXTENSION].config
+    assert not [p for p in cfg.uploads_dir.rglob(".incoming-*")]  # nothing left behind

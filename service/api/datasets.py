@@ -14,7 +14,7 @@ from measurement.errors import InputError
 from measurement.loading import LoadedTable, load_table, text_answers
 from measurement.prepare import numeric_columns
 
-from .. import uploads
+from .. import upload_stream, uploads
 from ..context import services
 from ..errors import ApiError, echo, from_input_error
 from ..store import new_id
@@ -81,17 +81,7 @@ def upload() -> tuple[Response, int]:
         raise ApiError(415, "unsupported_media_type",
                        "send the survey file as multipart/form-data in the field 'file' "
                        f"(got Content-Type {request.mimetype or 'none'!r})", "file")
-    f = request.files.get("file")
-    if f is None:
-        raise ApiError(400, "missing_file", "the multipart body has no field 'file' holding the "
-                       "survey file", "file")
-    name = _file_name(f.filename)
-    try:
-        spooled = uploads.spool(f.stream, cfg.uploads_dir, max_bytes=cfg.max_upload_bytes)
-    except uploads.TooLarge:
-        raise ApiError(413, "too_large", f"the file is over the upload limit of "
-                       f"{cfg.max_upload_mb:g} MB; remove columns the analysis does not use, or "
-                       "split the file", "file") from None
+    spooled, name = _spool_file_field(cfg)
     existing = svc.store.find_dataset_by_sha256(tenant_id(), spooled.sha256)
     if existing is not None:  # the same bytes again: answer the dataset already stored
         spooled.discard()
@@ -99,7 +89,7 @@ def upload() -> tuple[Response, int]:
         return _reused(existing)
     try:
         try:
-            table = load_table(spooled.read_bytes(), name=name, max_bytes=cfg.max_upload_bytes)
+            table = load_table(spooled.path, name=name, max_bytes=cfg.max_upload_bytes)
             columns = [str(c) for c in table.frame.columns]
             numeric = numeric_columns(table)
             draft = _draft(table, columns, numeric)
@@ -135,6 +125,30 @@ def upload() -> tuple[Response, int]:
     resp = jsonify(public(ds))
     resp.headers["Location"] = f"/v1/datasets/{dataset_id}"
     return resp, 201
+
+
+def _spool_file_field(cfg) -> tuple[uploads.Spooled, str]:
+    """The multipart field 'file' streamed to a spool file as the body is read (never the
+    whole body in memory), and the file's name."""
+    boundary = request.mimetype_params.get("boundary")
+    if not boundary:
+        raise ApiError(400, "bad_request", "the multipart/form-data Content-Type has no boundary; "
+                       "let the HTTP client build the form", "file")
+    body = upload_stream.MultipartFileStream(request.stream, boundary)
+    try:
+        spooled = uploads.spool(body, cfg.uploads_dir, max_bytes=cfg.max_upload_bytes)
+    except uploads.TooLarge:
+        raise ApiError(413, "too_large", f"the file is over the upload limit of "
+                       f"{cfg.max_upload_mb:g} MB; remove columns the analysis does not use, "
+                       "compress it (.csv.gz or .parquet), or split the file", "file") from None
+    except upload_stream.MultipartError as e:
+        raise ApiError(400, "bad_request", f"{e}; send the survey file as multipart/form-data in "
+                       "the field 'file'", "file") from None
+    if not body.found:
+        spooled.discard()
+        raise ApiError(400, "missing_file", "the multipart body has no field 'file' holding the "
+                       "survey file", "file")
+    return spooled, _file_name(body.filename)
 
 
 def list_datasets() -> Response:

@@ -120,7 +120,7 @@ SCHEMAS: dict[str, Any] = {
             "columns": {"type": "array", "items": {"type": "string"}},
             "numeric_columns": {"type": "array", "items": {"type": "string"},
                                 "description": "columns whose cells all read as numbers"},
-            "format": {"enum": ["csv", "tsv", "txt", "xlsx", "sav"]},
+            "format": {"enum": ["csv", "tsv", "txt", "xlsx", "sav", "parquet"]},
             "sha256": {"type": "string", "pattern": "^[0-9a-f]{64}$",
                        "description": "SHA-256 of the file as uploaded (kept byte for byte)"},
             "size_bytes": {"type": "integer"},
@@ -263,7 +263,8 @@ def document() -> dict:
                 "requestBody": {"required": True, "content": {"multipart/form-data": {
                     "schema": {"type": "object", "required": ["file"], "properties": {
                         "file": {"type": "string", "contentMediaType": "application/octet-stream",
-                                 "description": ".csv, .tsv, .txt, .xlsx or .sav"}}}}}},
+                                 "description": ".csv, .tsv, .txt, .xlsx, .sav or .parquet, "
+                                                "each also gzip-compressed (.csv.gz)"}}}}}},
                 "responses": {
                     "200": _json(_ref("Dataset"), "The same tenant had uploaded these bytes "
                                  "already: that dataset (reused: true), no second copy stored"),

@@ -144,7 +144,12 @@ def main() -> None:
     lines += ["", "Replicates refit only the models behind the path estimates, from each replicate's "
               "covariance matrix, warm-started from the full-sample solution; the number of respondents "
               "enters only through resampling rows and forming that matrix."]
-    Path(args.out).write_text("\n".join(lines) + "\n", encoding="utf-8")
+    out = Path(args.out)
+    old = out.read_text(encoding="utf-8") if out.exists() else ""
+    begin, end = "<!-- scale: begin -->", "<!-- scale: end -->"
+    if begin in old and end in old:  # scale.py's block (the big files), measured apart: kept
+        lines += ["", old[old.index(begin):old.index(end) + len(end)]]
+    out.write_text("\n".join(lines) + "\n", encoding="utf-8")
     print(f"written {args.out}")
 
 

@@ -1,0 +1,196 @@
+"""Benchmarks at scale, run on demand (`make bench`); never part of the suite.
+
+1. The full report (no bootstrap) on 60-item surveys of 10,000 / 100,000 / 1,000,000 rows
+   against the floor measured in the same run: reading the same CSV file with pandas and
+   forming its covariance matrix. Each run is its own process, so its peak memory (getrusage)
+   is its own; the report's seconds per stage are report.json's `timings`.
+2. The bootstrap at 100,000 x 60 with 1,000 replicates (weighted cross-products), on the
+   local process pool; forming replicate covariance matrices by resampling rows versus by
+   weighted cross-products, timed alone; and the same bootstrap on a local Dask cluster of one
+   and of two workers (one thread each).
+
+Writes the block between the `scale` markers in docs/performance.md (run_all.py keeps it).
+
+    python tests/benchmarks/scale.py [--rows 10000,100000,1000000] [--replicates 1000]
+                                     [--skip-bootstrap] [--skip-dask] [--out docs/performance.md]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parents[1]
+sys.path.insert(0, str(HERE))
+sys.path.insert(0, str(ROOT))
+
+BEGIN, END = "<!-- scale: begin -->", "<!-- scale: end -->"
+ITEMS = 60
+
+
+def _peak_mb() -> float:
+    from measurement.timings import peak_memory_mb
+
+    return peak_memory_mb() or float("nan")
+
+
+def child_floor(path: str, items: list[str]) -> dict:
+    import pandas as pd
+
+    t0 = time.perf_counter()
+    df = pd.read_csv(path)
+    cov = df[items].cov().to_numpy()
+    return {"seconds": time.perf_counter() - t0, "peak_mb": _peak_mb(), "check": float(cov.trace())}
+
+
+def child_report(path: str, design: dict, options: dict, dask_workers: int = 0) -> dict:
+    from measurement.pipeline import analyze
+
+    executor, cluster, client = None, None, None
+    if dask_workers:
+        from distributed import Client, LocalCluster
+
+        from service.dask_backend import DaskExecutor
+
+        cluster = LocalCluster(n_workers=dask_workers, threads_per_worker=1, processes=True,
+                               dashboard_address=None, env={"OPENBLAS_NUM_THREADS": "1"})
+        client = Client(cluster)
+        executor = DaskExecutor(client)
+    try:
+        t0 = time.perf_counter()
+        report = analyze(path, design, options, executor=executor).report
+        wall = time.perf_counter() - t0
+    finally:
+        if client is not None:
+            client.close()
+            cluster.close()
+    failed = max((e["bootstrap"]["n_failed"] for p in report["paths"] for e in p["estimates"].values()
+                  if e and "bootstrap" in e), default=0)
+    return {"wall": wall, "timings": report["timings"], "peak_mb": _peak_mb(), "most_failed": failed}
+
+
+def child_covariances(path: str, items: list[str], replicates: int) -> dict:
+    import numpy as np
+    import pandas as pd
+
+    from measurement.bootstrap import replicate_indices
+    from measurement.replicate_moments import draw_counts, weighted_moments
+
+    X = pd.read_csv(path)[items].to_numpy(dtype=float)
+    n = len(X)
+    t0 = time.perf_counter()
+    k = 10
+    for r in range(k):
+        np.cov(X[replicate_indices(1, r, n)], rowvar=False, bias=True)
+    rows = (time.perf_counter() - t0) / k
+    t0 = time.perf_counter()
+    weighted_moments(X, replicates, lambda a, b: draw_counts(lambda r: replicate_indices(1, r, n),
+                                                             range(a, b), n))
+    weighted = (time.perf_counter() - t0) / replicates
+    return {"rows_ms": rows * 1000, "weighted_ms": weighted * 1000, "replicates": replicates}
+
+
+def run_child(kind: str, *args) -> dict:
+    """One measurement in a fresh process (its own peak memory)."""
+    code = ("import json, sys; sys.path.insert(0, sys.argv[1]); import scale; "
+            "print('RESULT ' + json.dumps(getattr(scale, sys.argv[2])(*json.loads(sys.argv[3]))))")
+    proc = subprocess.run([sys.executable, "-c", code, str(HERE), kind, json.dumps(list(args))],
+                          capture_output=True, text=True, cwd=ROOT)
+    for line in proc.stdout.splitlines():
+        if line.startswith("RESULT "):
+            return json.loads(line[7:])
+    raise RuntimeError(f"{kind} failed:\n{proc.stderr[-3000:]}")
+
+
+def write_survey(n: int, folder: str) -> tuple[str, dict, list[str]]:
+    from workload import survey
+
+    df, design, _ = survey(n, ITEMS)
+    path = os.path.join(folder, f"survey_{n}.csv")
+    df.to_csv(path, index=False)
+    items = [it for c in design["constructs"].values() for it in c["items"]]
+    return path, design, items
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--rows", default="10000,100000,1000000")
+    ap.add_argument("--replicates", type=int, default=1000)
+    ap.add_argument("--boot-rows", type=int, default=100_000)
+    ap.add_argument("--skip-bootstrap", action="store_true")
+    ap.add_argument("--skip-dask", action="store_true")
+    ap.add_argument("--out", default=str(ROOT / "docs" / "performance.md"))
+    args = ap.parse_args()
+    sizes = [int(s) for s in args.rows.split(",") if s]
+    lines = [BEGIN, "", "## At scale: the full report against the floor", "",
+             f"Measured by `tests/benchmarks/scale.py` on {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}. "
+             f"Synthetic surveys of {ITEMS} 5-point items (tests/benchmarks/workload.py), read from a CSV file. "
+             "Floor: reading the same file with pandas and forming its covariance matrix, in the same run. "
+             "Each measurement runs in its own process; peak memory is that process's (getrusage).", "",
+             "| rows | file MB | report s | floor s | ratio | report peak MB | floor peak MB | slowest stages |",
+             "| ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- |"]
+    with tempfile.TemporaryDirectory(prefix="samesource-bench-") as tmp:
+        for n in sizes:
+            path, design, items = write_survey(n, tmp)
+            mb = os.path.getsize(path) / 1e6
+            floor = run_child("child_floor", path, items)
+            rep = run_child("child_report", path, design, {})
+            t = rep["timings"]
+            stages = sorted(((k, v) for k, v in t.items() if k not in ("total", "peak_memory_mb")),
+                            key=lambda kv: -kv[1])[:3]
+            slow = ", ".join(f"{k} {v:.1f}" for k, v in stages)
+            lines.append(f"| {n:,} | {mb:.0f} | {rep['wall']:.1f} | {floor['seconds']:.2f} | "
+                         f"{rep['wall'] / floor['seconds']:.0f}x | {rep['peak_mb']:.0f} | {floor['peak_mb']:.0f} | {slow} |")
+            print(lines[-1], flush=True)
+            os.remove(path)
+
+        if not args.skip_bootstrap:
+            n, reps = args.boot_rows, args.replicates
+            path, design, items = write_survey(n, tmp)
+            opts = {"bootstrap": reps, "seed": 1}
+            cov = run_child("child_covariances", path, items, 256)
+            local = run_child("child_report", path, design, opts)
+            lines += ["", f"## At scale: {reps:,} bootstrap replicates at {n:,} x {ITEMS}", "",
+                      "Replicates from weighted cross-products (measurement/replicate_moments.py): one "
+                      "replicate's covariance matrix, timed alone (one process):", "",
+                      f"- by resampling rows and `np.cov` (the former scheme): {cov['rows_ms']:.1f} ms",
+                      f"- by weighted cross-products, in batches of 32 ({cov['replicates']} replicates): "
+                      f"{cov['weighted_ms']:.1f} ms", "",
+                      "| executor | whole report s | bootstrap stage s | per replicate | most failed replicates |",
+                      "| --- | ---: | ---: | ---: | ---: |",
+                      f"| local process pool (2 workers) | {local['wall']:.1f} | {local['timings']['bootstrap']:.1f} | "
+                      f"{local['timings']['bootstrap'] / reps * 1000:.0f} ms | {local['most_failed']} |"]
+            print(lines[-1], flush=True)
+            if not args.skip_dask:
+                dask = {}
+                for w in (1, 2):
+                    dask[w] = run_child("child_report", path, design, opts, w)
+                    d = dask[w]
+                    lines.append(f"| local Dask cluster, {w} worker{'s' if w > 1 else ''} | {d['wall']:.1f} | "
+                                 f"{d['timings']['bootstrap']:.1f} | {d['timings']['bootstrap'] / reps * 1000:.0f} ms | "
+                                 f"{d['most_failed']} |")
+                    print(lines[-1], flush=True)
+                speed = dask[1]["timings"]["bootstrap"] / dask[2]["timings"]["bootstrap"]
+                lines += ["", f"Speed-up of the bootstrap stage from one to two local Dask workers: {speed:.2f}x "
+                          "(two cores, so at most 2x; the data travel to the workers with each chunk)."]
+    lines += ["", END]
+    out = Path(args.out)
+    text = out.read_text(encoding="utf-8") if out.exists() else "# Performance\n"
+    block = "\n".join(lines)
+    if BEGIN in text and END in text:
+        text = text[:text.index(BEGIN)] + block + text[text.index(END) + len(END):]
+    else:
+        text = text.rstrip("\n") + "\n\n" + block + "\n"
+    out.write_text(text, encoding="utf-8")
+    print(f"written {out}")
+
+
+if __name__ == "__main__":
+    main()
