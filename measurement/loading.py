@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import DataError, UnsupportedFormat
+from .workbook_limits import check_workbook
 
 FORMATS = ("csv", "tsv", "txt", "xlsx", "sav")
 READABLE = ".csv, .tsv or .txt (delimited text), .xlsx or .sav"
@@ -573,6 +574,8 @@ def _brief(e: BaseException) -> str:
 
 def _read_xlsx(data: bytes, source: str, sheet: str | int | None) -> dict:
     import openpyxl
+
+    check_workbook(data, source)  # a decompression bomb is refused before it is parsed
 
     def open_book(data_only: bool):
         return openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=data_only)

@@ -21,6 +21,7 @@ from measurement.design import check_columns, parse_design
 from measurement.errors import InputError
 from measurement.options import AnalysisOptions
 
+from .. import quotas
 from ..context import services
 from ..errors import ApiError, echo, from_input_error
 from .auth import tenant_id
@@ -130,6 +131,7 @@ def create() -> tuple[Response, int]:
             check_columns(design, ds["columns"], file=ds["name"])
     except InputError as e:
         raise from_input_error(e, field_prefix="design") from None
+    quotas.check_new_analysis(svc.config, svc.store, tenant_id(), int(options.bootstrap or 0))
     a = svc.store.add_analysis(tenant_id(), dataset_id, body["design"], options.to_dict())
     if svc.runner is not None:
         svc.runner.notify()

@@ -9,13 +9,12 @@ import re
 from flask import Blueprint, Response, jsonify, request
 
 from measurement.design import draft_design
-from measurement.errors import InputError
-from measurement.loading import load_table
-from measurement.prepare import numeric_columns
 
 from .. import uploads
+from ..config import setting_name
 from ..context import services
-from ..errors import ApiError, echo, from_input_error
+from ..errors import ApiError, echo
+from ..faults import is_disk_full
 from ..store import new_id
 from .auth import tenant_id
 from .paging import page_args
@@ -56,15 +55,19 @@ def upload() -> tuple[Response, int]:
                        "split the file", "file") from None
     try:
         try:
-            table = load_table(spooled.read_bytes(), name=name, max_bytes=cfg.max_upload_bytes)
-            columns = [str(c) for c in table.frame.columns]
-            numeric = numeric_columns(table)
-        except InputError as e:
-            err = from_input_error(e)
+            parsed = uploads.parse_bounded(spooled.path, name, uploads.ParseLimits.from_config(cfg))
+        except uploads.OverLimit as e:
+            setting = setting_name(e.field)
+            log.info("upload refused: over %s (%d bytes)", setting, spooled.size)
+            raise ApiError(e.status, "over_limit", f"{e.message} ({setting}); remove what the "
+                           "analysis does not use, or split the file", "file",
+                           {"limit": setting, "limit_value": e.value}) from None
+        except ApiError as err:
             if err.field is None:
                 err.field = "file"
             log.info("upload refused: %s (%d bytes)", err.code, spooled.size)
-            raise err from None
+            raise
+        columns = parsed.columns
         dataset_id = new_id("ds")
         rel = uploads.stored_relpath(tenant_id(), dataset_id)
         uploads.keep(spooled, cfg.data_dir, rel)
@@ -73,15 +76,16 @@ def upload() -> tuple[Response, int]:
         raise
     try:
         ds = svc.store.add_dataset(
-            tenant_id(), dataset_id, name=name, format=table.format, sha256=spooled.sha256,
-            size_bytes=spooled.size, rows=int(len(table.frame)), columns=columns,
-            numeric_columns=numeric, draft_design=draft_design(columns, numeric=numeric),
-            warnings=list(table.warnings), stored_path=rel)
+            tenant_id(), dataset_id, name=name, format=parsed.format, sha256=spooled.sha256,
+            size_bytes=spooled.size, rows=parsed.rows, columns=columns,
+            numeric_columns=parsed.numeric_columns,
+            draft_design=draft_design(columns, numeric=parsed.numeric_columns),
+            warnings=list(parsed.warnings), stored_path=rel)
     except BaseException:
         uploads.remove(cfg.data_dir, rel)
         raise
     log.info("dataset %s stored: %d bytes, %d rows, %d columns, %s", dataset_id, spooled.size,
-             ds["rows"], len(columns), table.format)
+             ds["rows"], len(columns), parsed.format)
     resp = jsonify(public(ds))
     resp.headers["Location"] = f"/v1/datasets/{dataset_id}"
     return resp, 201
@@ -107,7 +111,19 @@ def get_dataset(dataset_id: str) -> Response:
 
 def delete_dataset(dataset_id: str) -> tuple[str, int]:
     svc = services()
-    gone = svc.store.delete_dataset(tenant_id(), dataset_id)
+    try:
+        gone = svc.store.delete_dataset(tenant_id(), dataset_id)
+    except Exception as e:
+        if not is_disk_full(e):
+            raise
+        # The disk is full and the database cannot write: free the dataset's own file and
+        # the space reserve, then delete again (deleting is how space is freed).
+        ds = svc.store.get_dataset(tenant_id(), dataset_id)
+        if ds is not None:
+            uploads.remove(svc.config.data_dir, ds["stored_path"])
+        uploads.release_reserve(svc.config.data_dir)
+        log.warning("disk full: dataset %s deleted with the space reserve given up", dataset_id)
+        gone = svc.store.delete_dataset(tenant_id(), dataset_id)
     if gone is None:
         raise ApiError(404, "not_found", f"no dataset {echo(dataset_id)}", "id")
     try:
