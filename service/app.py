@@ -10,7 +10,7 @@ from typing import Any
 from flask import Flask, Response, request
 
 from . import api, errors, pages, uploads
-from .config import MULTIPART_SLACK, ServiceConfig, load_config
+from .config import MULTIPART_SLACK, ConfigError, ServiceConfig, load_config
 from .context import EXTENSION, Services
 from .db import Database
 from .runner import JobRunner, make_backend
@@ -68,6 +68,11 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
     api.register(app)
 
     if cfg.run_jobs:  # the serving process, not a one-off command such as `token create`
+        try:
+            svc.lock_fd = uploads.lock_data_dir(cfg.data_dir)
+        except uploads.DataDirLocked as e:
+            db.dispose()
+            raise ConfigError(str(e)) from None
         _sweep_uploads(cfg, store)
         svc.runner = JobRunner(store, cfg, make_backend(cfg, store))
         svc.runner.start()

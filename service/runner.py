@@ -105,7 +105,16 @@ def _run_local(spec: JobSpec) -> Outcome:
         if not store.set_progress(claim, stage, done, total):
             raise Cancelled(spec.analysis_id)
 
-    return run_job(spec, progress, executor=None)  # bootstrap: measurement's default pool
+    def gone() -> bool:  # asked between bootstrap batches; storage down: keep going
+        try:
+            return not store.owns(claim)
+        except Exception:
+            return False
+
+    from measurement.executor import stop_when
+
+    with stop_when(gone):
+        return run_job(spec, progress, executor=None)  # bootstrap: measurement's default pool
 
 
 class LocalBackend:

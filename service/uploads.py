@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import BinaryIO
 
 CHUNK = 1 << 20
+SPOOL_PREFIX = ".incoming-"
 
 
 class TooLarge(Exception):
@@ -47,7 +48,8 @@ def spool(stream: BinaryIO, folder: Path, *, max_bytes: int) -> Spooled:
     """Copy ``stream`` into a temporary file under ``folder``, hashing it and stopping with
     :class:`TooLarge` as soon as it passes ``max_bytes``."""
     folder.mkdir(parents=True, exist_ok=True)
-    fd, name = tempfile.mkstemp(prefix=".incoming-", dir=folder)
+    # the pid in the name lets the start-up sweep remove a dead process's spool files at once
+    fd, name = tempfile.mkstemp(prefix=f"{SPOOL_PREFIX}{os.getpid()}-", dir=folder)
     digest = hashlib.sha256()
     size = 0
     try:
@@ -105,9 +107,11 @@ def sweep(data_dir: Path, known: set[str], *, older_than: float = SWEEP_AGE_SECO
         if not path.is_file() or path.is_symlink():
             continue
         rel = path.relative_to(data_dir).as_posix()
-        owned = rel in known and not path.name.startswith(".incoming-")
+        spool_file = path.name.startswith(SPOOL_PREFIX)
+        owned = rel in known and not spool_file
         try:
-            if owned or now - path.stat().st_mtime < older_than:
+            if owned or (now - path.stat().st_mtime < older_than
+                         and not (spool_file and _spooler_dead(path.name))):
                 continue
             path.unlink()
         except OSError:  # gone meanwhile, or not ours to remove: the next sweep tries again
@@ -144,6 +148,57 @@ def release_reserve(data_dir: Path) -> bool:
     existed = path.is_file()
     path.unlink(missing_ok=True)
     return existed
+
+
+def _spooler_dead(name: str) -> bool:
+    """True when a spool file's name carries the pid of a process that has ended."""
+    try:
+        pid = int(name[len(SPOOL_PREFIX):].split("-", 1)[0])
+    except ValueError:
+        return False
+    if pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:
+        return False
+    return False
+
+
+LOCK_NAME = ".lock"
+
+
+class DataDirLocked(Exception):
+    """Another running service holds the data folder."""
+
+
+def lock_data_dir(data_dir: Path) -> int:
+    """Take the data folder for this process (an exclusive lock the kernel drops when the
+    process ends, even by SIGKILL): two services on one folder would sweep each other's
+    uploads. Returns the lock's file descriptor; :func:`unlock_data_dir` gives it back."""
+    import fcntl
+
+    fd = os.open(data_dir / LOCK_NAME, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        holder = os.read(fd, 64).decode("ascii", "replace").strip() or "another process"
+        os.close(fd)
+        raise DataDirLocked(f"the data folder {data_dir} is in use by another samesource "
+                            f"service (pid {holder}); stop it, or give this one its own "
+                            "--data folder") from None
+    os.ftruncate(fd, 0)
+    os.write(fd, str(os.getpid()).encode())
+    return fd
+
+
+def unlock_data_dir(fd: int) -> None:
+    try:
+        os.close(fd)
+    except OSError:
+        pass
 
 
 def _fsync_dir(folder: Path) -> None:

@@ -490,3 +490,54 @@ def test_an_older_token_table_gets_the_new_columns(tmp_path):
     cols = {c["name"] for c in inspect(db.engine).get_columns("api_tokens")}
     assert {"expires_at", "revoked_at", "last_used_at"} <= cols
     db.dispose()
+
+
+# ---------------------------------------------------------------------- leftovers
+
+
+def test_the_data_folder_is_locked_and_a_dead_process_spool_is_swept_at_start(tmp_path):
+    from service.config import ConfigError
+
+    data_dir = tmp_path / "d"
+    (data_dir / "uploads").mkdir(parents=True)
+    dead = subprocess.Popen(["true"])
+    dead.wait()
+    leftover = data_dir / "uploads" / f".incoming-{dead.pid}-abcd"  # young, but its writer is gone
+    leftover.write_bytes(b"a,b\n1,2\n")
+    app = make_app(data_dir)
+    try:
+        assert not leftover.exists()
+        with pytest.raises(ConfigError, match="in use by another samesource service"):
+            make_app(data_dir)
+    finally:
+        closing(app)
+    again = make_app(data_dir)  # given back at close
+    closing(again)
+
+
+# ---------------------------------------------------------------------- prompt stop
+
+
+@pytest.mark.skipif((os.cpu_count() or 1) < 2, reason="the bootstrap's pool needs two cores")
+def test_deleting_a_dataset_stops_its_bootstrap_between_batches(tmp_path):
+    app = make_app(tmp_path / "d")
+    c, h = app.test_client(), headers(app)
+    try:
+        data, design = small_survey(n=150)
+        ds = upload(c, h, data).get_json()
+        other = upload(c, h, data, "other.csv").get_json()
+        aid = start(c, h, ds["id"], design, {"bootstrap": 20_000}).get_json()["id"]
+        wait_for(lambda: (c.get(f"/v1/analyses/{aid}", headers=h).get_json()["progress"]["stage"]
+                          == "bootstrap"), timeout=120, what="the bootstrap to start")
+        time.sleep(1.0)  # inside a batch
+        assert c.delete(f"/v1/datasets/{ds['id']}", headers=h).status_code == 204
+        t0 = time.monotonic()
+        # the one job worker is free again once the bootstrap stopped: the next analysis runs
+        nxt = start(c, h, other["id"], design).get_json()["id"]
+        wait_for(lambda: c.get(f"/v1/analyses/{nxt}", headers=h).get_json()["status"] != "queued",
+                 timeout=30, every=0.1, what="the worker to be free")
+        took = time.monotonic() - t0
+        assert took < 15, f"the deleted analysis's bootstrap held the worker for {took:.1f} s"
+        assert finished(c, h, nxt)["status"] == "succeeded"
+    finally:
+        closing(app)
