@@ -14,6 +14,7 @@ from __future__ import annotations
 import logging
 import queue
 import threading
+import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import Future
 from dataclasses import replace
@@ -76,20 +77,20 @@ def _threads(client: Any) -> int:
 
 
 def _gather(client: Any, fn: Callable[[Any], Any], items: list[Any]) -> list[Any]:
-    from distributed import KilledWorker, wait
+    from distributed import KilledWorker
 
     from measurement.executor import STOP_POLL_SECONDS, StopRequested, stop_requested
 
     futures = client.map(fn, items, pure=False)
     try:
-        while True:  # the stop flag is asked while a batch runs, not only between batches
-            try:
-                wait(futures, timeout=STOP_POLL_SECONDS)
-            except TimeoutError:
+        last = time.monotonic()
+        # the stop flag is asked while a batch runs, not only between batches
+        while not all(f.done() for f in futures):
+            time.sleep(0.2)
+            if time.monotonic() - last >= STOP_POLL_SECONDS:
+                last = time.monotonic()
                 if stop_requested():
-                    raise StopRequested("the work was told to stop") from None
-                continue
-            break
+                    raise StopRequested("the work was told to stop")
         return client.gather(futures)
     except KilledWorker as e:
         raise RuntimeError(f"a Dask worker died running these tasks repeatedly ({e})") from e

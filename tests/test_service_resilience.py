@@ -541,3 +541,32 @@ def test_deleting_a_dataset_stops_its_bootstrap_between_batches(tmp_path):
         assert finished(c, h, nxt)["status"] == "succeeded"
     finally:
         closing(app)
+
+
+# ---------------------------------------------------------------------- chaos, short
+
+
+def test_short_chaos_kill_9_loop_generated_requests_and_concurrent_clients(tmp_path):
+    """The long versions: tests/benchmarks/chaos.py (figures in docs/reliability.md)."""
+    from tests.benchmarks.chaos import (
+        ServerProcess,
+        concurrent_clients,
+        generated_requests,
+        kill9_loop,
+    )
+
+    out = kill9_loop(tmp_path / "kill", rounds=2, seed=1, bootstrap=0)
+    assert out["uploads_identical"] == out["uploads_accepted"] >= 1, out
+    assert out["stuck"] == 0 and out["succeeded"] == out["analyses"], out
+    data_dir = tmp_path / "load"
+    from tests.conftest import new_token
+
+    token = new_token(data_dir, "load")
+    srv = ServerProcess(data_dir, env={"SAMESOURCE_JOB_WORKERS": "1"}).start()
+    try:
+        gen = generated_requests(srv.base, token, 60, seed=3)
+        assert gen["5xx"] == 0, gen
+        load = concurrent_clients(srv.base, token, clients=4, seconds=3.0)
+        assert load["errors"] == 0 and load["round_trips"] > 0, load
+    finally:
+        srv.stop()
