@@ -24,12 +24,13 @@ second when the process that owns the pool dies, even by SIGKILL.
 from __future__ import annotations
 
 import atexit
+import contextlib
 import multiprocessing
 import os
 import threading
 import time
-from collections.abc import Callable, Sequence
-from concurrent.futures import ProcessPoolExecutor
+from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import FIRST_EXCEPTION, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any, Protocol, runtime_checkable
 
@@ -51,6 +52,35 @@ class Executor(Protocol):
 
     @property
     def workers(self) -> int: ...
+
+
+# ---------------------------------------------------------------------- stopping between batches
+
+STOP_POLL_SECONDS = 0.5  # how often a waiting map asks whether to stop
+_STOP_CHECKS: list[Callable[[], bool]] = []
+
+
+class StopRequested(Exception):
+    """The work was told to stop (its owner no longer wants the results)."""
+
+
+@contextlib.contextmanager
+def stop_when(check: Callable[[], bool]) -> Iterator[None]:
+    """While the block runs, an executor waiting for a batch asks ``check()`` every
+    :data:`STOP_POLL_SECONDS`; when it answers True the batch's workers are stopped and
+    :class:`StopRequested` is raised. The service uses it so that deleting a dataset stops
+    its bootstrap within a second, not at the end of a long batch. Process-wide: a job
+    worker runs one job at a time."""
+    _STOP_CHECKS.append(check)
+    try:
+        yield
+    finally:
+        _STOP_CHECKS.remove(check)
+
+
+def stop_requested() -> bool:
+    """True when a check registered with :func:`stop_when` asks to stop."""
+    return any(check() for check in list(_STOP_CHECKS))
 
 
 class SerialExecutor:
@@ -173,6 +203,14 @@ class LocalExecutor:
         futures = []
         try:
             futures = [pool.submit(fn, item) for item in items]
+            while _STOP_CHECKS:
+                done, pending = wait(futures, timeout=STOP_POLL_SECONDS,
+                                     return_when=FIRST_EXCEPTION)
+                if not pending or any(f.exception() is not None for f in done):
+                    break
+                if stop_requested():
+                    self._terminate(pool)
+                    raise StopRequested("the work was told to stop")
             return [f.result() for f in futures]
         except BrokenProcessPool as exc:
             self._discard(pool)
@@ -246,4 +284,5 @@ def default_executor(n_tasks: int) -> Executor:
     return _shared_local_executor()
 
 
-__all__ = ["Executor", "LocalExecutor", "SerialExecutor", "default_executor", "SERIAL_MAX_TASKS"]
+__all__ = ["Executor", "LocalExecutor", "SerialExecutor", "default_executor", "SERIAL_MAX_TASKS",
+           "StopRequested", "stop_requested", "stop_when"]

@@ -32,6 +32,7 @@ import pandas as pd
 
 from .design import did_you_mean, item_stem
 from .errors import DataError, InputError, UnsupportedFormat
+from .workbook_limits import check_workbook
 
 FORMATS = ("csv", "tsv", "txt", "xlsx", "sav", "parquet")
 READABLE = (".csv, .tsv or .txt (delimited text), .xlsx, .sav or .parquet (any of them also "
@@ -611,6 +612,8 @@ def _brief(e: BaseException) -> str:
 
 def _read_xlsx(data: bytes, source: str, sheet: str | int | None) -> dict:
     import openpyxl
+
+    check_workbook(data, source)  # a decompression bomb is refused before it is parsed
 
     def open_book(data_only: bool):
         return openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=data_only)

@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 import logging
+import shutil
 from collections.abc import Mapping
 from typing import Any
 
-from flask import Flask, request
+from flask import Flask, Response, request
 
 from . import api, errors, pages, uploads
-from .config import MULTIPART_SLACK, ServiceConfig, load_config
+from .config import MULTIPART_SLACK, ConfigError, ServiceConfig, load_config
 from .context import EXTENSION, Services
 from .db import Database
 from .runner import JobRunner, make_backend
@@ -25,6 +26,7 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
     cfg = config if isinstance(config, ServiceConfig) else load_config(config)
     cfg.data_dir.mkdir(parents=True, exist_ok=True)
     cfg.uploads_dir.mkdir(parents=True, exist_ok=True)
+    uploads.ensure_reserve(cfg.data_dir)
     db = Database(cfg.sqlalchemy_url)
     db.create_schema()
     store = Store(db)
@@ -45,15 +47,52 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
                                   f"bytes) is over the upload limit of {cfg.max_upload_mb:g} MB",
                                   "file" if request.path == "/v1/datasets" else None)
 
+    @app.before_request
+    def _refuse_uploads_on_a_full_disk() -> None:
+        # 507 before the body is read when the upload could not be stored anyway.
+        if request.method == "POST" and request.path == "/v1/datasets":
+            try:
+                free = shutil.disk_usage(cfg.data_dir).free
+            except OSError:
+                return
+            if free - (request.content_length or 0) < cfg.min_free_bytes:
+                raise errors.ApiError(507, "insufficient_storage", (
+                    f"the service's disk has {free / 1e6:.1f} MB free, too little to store this "
+                    f"upload and keep {cfg.min_free_mb:g} MB (SAMESOURCE_MIN_FREE_MB) in reserve; "
+                    "delete datasets that are no longer needed, or ask the operator to free "
+                    "space"), "file")
+
+    app.after_request(security_headers)
     errors.register(app)
     pages.register(app)
     api.register(app)
 
     if cfg.run_jobs:  # the serving process, not a one-off command such as `token create`
+        try:
+            svc.lock_fd = uploads.lock_data_dir(cfg.data_dir)
+        except uploads.DataDirLocked as e:
+            db.dispose()
+            raise ConfigError(str(e)) from None
         _sweep_uploads(cfg, store)
         svc.runner = JobRunner(store, cfg, make_backend(cfg, store))
         svc.runner.start()
     return app
+
+
+# report.html has no scripts at all, only its own inline style and inline images.
+HTML_POLICY = ("default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
+               "frame-ancestors 'none'; base-uri 'none'; form-action 'none'")
+
+
+def security_headers(resp: Response) -> Response:
+    """On every answer: no content sniffing, no referrer; on HTML answers a content security
+    policy (the page at / sets its own, allowing its inlined script) and no framing."""
+    resp.headers.setdefault("X-Content-Type-Options", "nosniff")
+    resp.headers.setdefault("Referrer-Policy", "no-referrer")
+    if resp.mimetype == "text/html":
+        resp.headers.setdefault("Content-Security-Policy", HTML_POLICY)
+        resp.headers.setdefault("X-Frame-Options", "DENY")
+    return resp
 
 
 def _sweep_uploads(cfg: ServiceConfig, store: Store) -> None:

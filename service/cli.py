@@ -65,7 +65,17 @@ def _parser() -> argparse.ArgumentParser:
     tsub = t.add_subparsers(dest="token_command", required=True)
     tc = tsub.add_parser("create", help="print a new API token for a tenant (created if needed)")
     tc.add_argument("--tenant", required=True, help="tenant name")
+    tc.add_argument("--expires-days", type=float, metavar="N",
+                    help="the token stops working N days from now (default: until revoked)")
     tc.add_argument("--data", metavar="DIR", help="data folder (as for serve)")
+    tl = tsub.add_parser("list", help="a tenant's tokens: key id, created, last used, expiry "
+                                      "(never the secret)")
+    tl.add_argument("--tenant", required=True, help="tenant name")
+    tl.add_argument("--data", metavar="DIR", help="data folder (as for serve)")
+    tr = tsub.add_parser("revoke", help="revoke a token from the next request on")
+    tr.add_argument("key_id", metavar="KEY_ID",
+                    help="the token's key id (the part after ss1_, as token list shows it)")
+    tr.add_argument("--data", metavar="DIR", help="data folder (as for serve)")
     return p
 
 
@@ -263,16 +273,41 @@ def _serve(args: argparse.Namespace) -> int:
 def _token(args: argparse.Namespace) -> int:
     from .db import Database
     from .store import Store
+    from .tokens import key_id_of
 
-    tenant = args.tenant.strip()
-    if not tenant or len(tenant) > 200:
+    tenant = (getattr(args, "tenant", None) or "").strip()
+    if args.token_command in ("create", "list") and (not tenant or len(tenant) > 200):
         raise InputError("--tenant must be a name of 1 to 200 characters", code="bad_option")
+    days = getattr(args, "expires_days", None)
+    if days is not None and not 0 < days <= 36500:
+        raise InputError("--expires-days must be a number of days above 0 (at most 36500)",
+                         code="bad_option")
     cfg = _service_config(args, run_jobs=False)
     cfg.data_dir.mkdir(parents=True, exist_ok=True)
     db = Database(cfg.sqlalchemy_url)
     try:
         db.create_schema()
-        print(Store(db).create_token(tenant))
+        store = Store(db)
+        if args.token_command == "create":
+            print(store.create_token(tenant, expires_days=days))
+        elif args.token_command == "list":
+            rows = store.list_tokens(tenant)
+            if rows is None:
+                raise InputError(f"no tenant named {tenant!r}", code="not_found")
+            for t in rows:
+                state = "revoked " + t["revoked_at"] if t["revoked_at"] else "active"
+                print(f"{t['key_id']}  created {t['created_at']}  last used "
+                      f"{t['last_used_at'] or 'never'}  expires {t['expires_at'] or 'never'}  "
+                      f"{state}")
+        else:
+            key_id = args.key_id.strip()
+            if key_id.startswith("ss1_"):  # a whole token pasted: its key id
+                key_id = key_id_of(key_id) or key_id.split("_")[1]
+            done = store.revoke_token(key_id)
+            if done is None:
+                raise InputError(f"no token has the key id {key_id[:40]!r}; see: samesource "
+                                 "token list --tenant NAME", code="not_found")
+            print(f"token {key_id} {'revoked' if done else 'was already revoked'}")
     finally:
         db.dispose()
     return 0

@@ -32,6 +32,24 @@ class ServiceConfig:
     lease_seconds: float = 30.0  # a running analysis whose heartbeat is older is orphaned
     max_attempts: int = 3  # interrupted this many times: failed, not re-queued
     run_jobs: bool = True  # False: accept analyses but leave them queued (another process runs them)
+    # Supervision (docs/reliability.md): how long the runner retries a storage step before it
+    # hands the job back to the queue, and the free space under which writes answer 507.
+    storage_retry_seconds: float = 120.0
+    min_free_mb: float = 20.0
+    # Fairness between tenants (docs/http-api.md, "Limits"): 0 running means half the workers.
+    tenant_max_running: int = 0
+    tenant_max_queued: int = 50
+    max_bootstrap: int = 20_000  # replicates one analysis may ask for
+    tenant_max_replicates: int = 50_000  # replicates of a tenant's queued and running analyses
+    # Bounded parsing of uploads (service/uploads.py, docs/http-api.md "Limits").
+    parse_memory_mb: float = 2048.0
+    parse_seconds: float = 60.0
+    max_rows: int = 1_000_000
+    max_columns: int = 2_000
+    max_cells: int = 20_000_000
+    max_cell_chars: int = 32_767  # Excel's own limit on the text of one cell
+    max_column_name_chars: int = 256
+    max_unpacked_mb: float = 500.0  # an .xlsx's parts, decompressed
 
     @property
     def max_upload_bytes(self) -> int:
@@ -59,6 +77,15 @@ class ServiceConfig:
     def workers(self) -> int:
         return self.job_workers or max(1, os.cpu_count() or 1)
 
+    @property
+    def running_per_tenant(self) -> int:
+        """Analyses of one tenant that may run at once."""
+        return self.tenant_max_running or max(1, self.workers // 2)
+
+    @property
+    def min_free_bytes(self) -> int:
+        return int(self.min_free_mb * 1024 * 1024)
+
     def validate(self) -> ServiceConfig:
         if not (0 < self.max_upload_mb <= 100_000):
             raise ConfigError(f"SAMESOURCE_MAX_UPLOAD_MB must be a number of megabytes above 0, "
@@ -72,7 +99,20 @@ class ServiceConfig:
         if self.job_workers < 0 or self.max_attempts < 1 or self.lease_seconds <= 0:
             raise ConfigError("SAMESOURCE_JOB_WORKERS must be 0 or more, SAMESOURCE_MAX_ATTEMPTS "
                               "1 or more and SAMESOURCE_JOB_LEASE_SECONDS above 0")
+        for name, value, low in _limits(self):
+            if not value >= low:
+                raise ConfigError(f"{name} must be a number of at least {low:g}, got {value!r}")
         return self
+
+
+def _limits(cfg: ServiceConfig) -> list[tuple[str, float, float]]:
+    """(variable, value, smallest allowed) of every limit, for validation."""
+    lows = {"storage_retry_seconds": 0, "min_free_mb": 0, "tenant_max_running": 0,
+            "tenant_max_queued": 1, "max_bootstrap": 0, "tenant_max_replicates": 0,
+            "parse_memory_mb": 64, "parse_seconds": 1, "max_rows": 1, "max_columns": 1,
+            "max_cells": 1, "max_cell_chars": 1, "max_column_name_chars": 1,
+            "max_unpacked_mb": 1}
+    return [(setting_name(f), getattr(cfg, f), low) for f, low in lows.items()]
 
 
 # environment variable -> (field, parser)
@@ -84,7 +124,26 @@ _ENV: dict[str, tuple[str, Any]] = {
     "SAMESOURCE_JOB_WORKERS": ("job_workers", int),
     "SAMESOURCE_JOB_LEASE_SECONDS": ("lease_seconds", float),
     "SAMESOURCE_MAX_ATTEMPTS": ("max_attempts", int),
+    "SAMESOURCE_STORAGE_RETRY_SECONDS": ("storage_retry_seconds", float),
+    "SAMESOURCE_MIN_FREE_MB": ("min_free_mb", float),
+    "SAMESOURCE_TENANT_MAX_RUNNING": ("tenant_max_running", int),
+    "SAMESOURCE_TENANT_MAX_QUEUED": ("tenant_max_queued", int),
+    "SAMESOURCE_MAX_BOOTSTRAP": ("max_bootstrap", int),
+    "SAMESOURCE_TENANT_MAX_REPLICATES": ("tenant_max_replicates", int),
+    "SAMESOURCE_PARSE_MEMORY_MB": ("parse_memory_mb", float),
+    "SAMESOURCE_PARSE_SECONDS": ("parse_seconds", float),
+    "SAMESOURCE_MAX_ROWS": ("max_rows", int),
+    "SAMESOURCE_MAX_COLUMNS": ("max_columns", int),
+    "SAMESOURCE_MAX_CELLS": ("max_cells", int),
+    "SAMESOURCE_MAX_CELL_CHARS": ("max_cell_chars", int),
+    "SAMESOURCE_MAX_COLUMN_NAME_CHARS": ("max_column_name_chars", int),
+    "SAMESOURCE_MAX_UNPACKED_MB": ("max_unpacked_mb", float),
 }
+
+
+def setting_name(field_name: str) -> str:
+    """The environment variable of a setting (for messages that name a limit)."""
+    return next(var for var, (f, _parse) in _ENV.items() if f == field_name)
 
 
 def load_config(overrides: Mapping[str, Any] | None = None,

@@ -18,12 +18,19 @@ class Services:
     config: ServiceConfig
     store: Store
     runner: JobRunner | None = None
+    lock_fd: int | None = None  # the data folder's lock, held while the service runs
 
     def close(self) -> None:
-        """Stop the job runner (running analyses go back to the queue) and the database."""
+        """Stop the job runner (running analyses go back to the queue), the database, and
+        give the data folder back."""
         if self.runner is not None:
             self.runner.stop()
         self.store.db.dispose()
+        if self.lock_fd is not None:
+            from .uploads import unlock_data_dir
+
+            unlock_data_dir(self.lock_fd)
+            self.lock_fd = None
 
 
 def services() -> Services:

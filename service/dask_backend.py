@@ -14,6 +14,7 @@ from __future__ import annotations
 import logging
 import queue
 import threading
+import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import Future
 from dataclasses import replace
@@ -78,8 +79,18 @@ def _threads(client: Any) -> int:
 def _gather(client: Any, fn: Callable[[Any], Any], items: list[Any]) -> list[Any]:
     from distributed import KilledWorker
 
+    from measurement.executor import STOP_POLL_SECONDS, StopRequested, stop_requested
+
     futures = client.map(fn, items, pure=False)
     try:
+        last = time.monotonic()
+        # the stop flag is asked while a batch runs, not only between batches
+        while not all(f.done() for f in futures):
+            time.sleep(0.2)
+            if time.monotonic() - last >= STOP_POLL_SECONDS:
+                last = time.monotonic()
+                if stop_requested():
+                    raise StopRequested("the work was told to stop")
         return client.gather(futures)
     except KilledWorker as e:
         raise RuntimeError(f"a Dask worker died running these tasks repeatedly ({e})") from e
@@ -104,7 +115,10 @@ def _run_on_cluster(spec: JobSpec) -> Outcome:
         if stop.is_set():
             raise Cancelled(spec.analysis_id)
 
-    return run_job(spec, progress, executor=DaskExecutor())
+    from measurement.executor import stop_when
+
+    with stop_when(stop.is_set):
+        return run_job(spec, progress, executor=DaskExecutor())
 
 
 class DaskBackend:
@@ -119,20 +133,35 @@ class DaskBackend:
         self._store = store
         self._client = Client(address, timeout=timeout, set_as_default=False)
         self._events: queue.Queue = queue.Queue()
+        self._futures: dict[str, Any] = {}
+        self._claims: dict[str, Claim] = {}
+        self._stopped: set[tuple[str, int]] = set()
+        self._lock = threading.Lock()
         self._closed = threading.Event()
         self._writer = threading.Thread(target=self._write_progress, daemon=True,
                                         name="samesource-dask-progress")
         self._writer.start()
         self._client.subscribe_topic(PROGRESS_TOPIC, self._on_event)
-        self._futures: dict[str, Any] = {}
-        self._lock = threading.Lock()
 
     def _on_event(self, event: tuple) -> None:
         # In the client's event loop: hand over, never block it with a database write.
         self._events.put(event[1])
 
+    def _stop_deleted(self) -> None:
+        """Set the stop flag of every job on the cluster whose analysis is no longer its run's
+        (deleted, re-queued), without waiting for its next progress event."""
+        with self._lock:
+            claims = list(self._claims.values())
+        for c in claims:
+            try:
+                if not self._store.owns(c):
+                    self._stop(c.analysis_id, c.attempt)
+            except Exception:  # storage down: ask again at the next round
+                continue
+
     def _write_progress(self) -> None:
         while not self._closed.is_set():
+            self._stop_deleted()
             try:
                 msg = self._events.get(timeout=0.5)
             except queue.Empty:
@@ -160,6 +189,9 @@ class DaskBackend:
         with self._lock:
             if analysis_id not in self._futures:  # a late event of a job that has ended
                 return
+            if (analysis_id, attempt) in self._stopped:
+                return
+            self._stopped.add((analysis_id, attempt))
         log.info("analysis %s (attempt %d) no longer belongs to this run: stopping it on the "
                  "cluster", analysis_id, attempt)
         Event(stop_event_name(analysis_id, attempt), client=self._client).set()
@@ -181,6 +213,7 @@ class DaskBackend:
                                    key=f"samesource-analysis-{spec.analysis_id}-{spec.attempt}")
         with self._lock:
             self._futures[spec.analysis_id] = dfut
+            self._claims[spec.analysis_id] = Claim(spec.analysis_id, spec.attempt, spec.runner)
         outer: Future = Future()
 
         def _wait() -> None:
@@ -197,6 +230,8 @@ class DaskBackend:
             finally:
                 with self._lock:
                     self._futures.pop(spec.analysis_id, None)
+                    self._claims.pop(spec.analysis_id, None)
+                    self._stopped.discard((spec.analysis_id, spec.attempt))
                 if not self._closed.is_set():
                     self._forget_stop(spec.analysis_id, spec.attempt)
 

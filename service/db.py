@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 from contextlib import contextmanager
 
-from sqlalchemy import create_engine, event, text
+from sqlalchemy import create_engine, event, inspect, text
 from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -60,23 +60,25 @@ class Database:
 
     def create_schema(self) -> None:
         Base.metadata.create_all(self.engine)
-        self._add_new_columns()
+        self._add_missing_columns()
 
-    def _add_new_columns(self) -> None:
-        """Nullable columns added to a model after its table was created: ALTER TABLE ADD
-        COLUMN, so that a data folder from an earlier version keeps working."""
-        from sqlalchemy import inspect
-
-        insp = inspect(self.engine)
+    def _add_missing_columns(self) -> None:
+        """Columns a later version added (always nullable) to tables an earlier one created:
+        create_all makes missing tables only."""
+        have = inspect(self.engine)
         for table in Base.metadata.sorted_tables:
-            if not insp.has_table(table.name):
-                continue
-            have = {c["name"] for c in insp.get_columns(table.name)}
+            present = {c["name"] for c in have.get_columns(table.name)}
             for col in table.columns:
-                if col.name not in have and col.nullable:
-                    kind = col.type.compile(dialect=self.engine.dialect)
-                    with self.engine.begin() as conn:
-                        conn.exec_driver_sql(f'ALTER TABLE {table.name} ADD COLUMN {col.name} {kind}')
+                if col.name in present or not col.nullable:
+                    continue
+                kind = col.type.compile(dialect=self.engine.dialect)
+                try:
+                    with self.engine.begin() as c:
+                        c.exec_driver_sql(f"ALTER TABLE {table.name} ADD COLUMN {col.name} {kind}")
+                except Exception:  # another process added it at the same moment
+                    if col.name not in {c["name"] for c in inspect(self.engine)
+                                        .get_columns(table.name)}:
+                        raise
 
     @contextmanager
     def reading(self) -> Iterator[Session]:

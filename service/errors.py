@@ -24,13 +24,14 @@ class ApiError(Exception):
     """An error answer with its status, code, message and the request field it concerns."""
 
     def __init__(self, status: int, code: str, message: str, field: str | None = None,
-                 extra: dict | None = None) -> None:
+                 extra: dict | None = None, *, headers: dict | None = None) -> None:
         super().__init__(message)
         self.status = status
         self.code = code
         self.message = message
         self.field = field
         self.extra = dict(extra or {})
+        self.headers = dict(headers or {})  # e.g. Retry-After on 429 and 503
 
     def body(self) -> dict:
         err = {"code": self.code, "message": self.message, "field": self.field}
@@ -73,6 +74,29 @@ def from_input_error(e: InputError, *, field_prefix: str | None = None) -> ApiEr
     return ApiError(input_error_status(e), err["code"], err["message"], err["field"], extra)
 
 
+STORAGE_RETRY_AFTER = 5  # seconds a client should wait after a 503 for unreachable storage
+
+
+def storage_error(e: BaseException) -> ApiError | None:
+    """The answer for a condition of the machine rather than of the request: 507 when the
+    disk is full (deletes still work and free space), 503 when the database does not answer;
+    None for anything else."""
+    from .faults import is_disk_full, is_transient
+
+    if is_disk_full(e):
+        log.error("request refused: the disk is full (%s %s)", request.method, request.path)
+        return ApiError(507, "insufficient_storage",
+                        "the service's disk is full, so nothing new can be stored; delete "
+                        "datasets that are no longer needed (DELETE /v1/datasets/ID still works) "
+                        "or ask the operator to free space, then try again")
+    if is_transient(e):
+        log.error("request refused: storage unavailable: %s", safe_trace(e))
+        return ApiError(503, "storage_unavailable",
+                        "the service's database does not answer at the moment; try again in a "
+                        "few seconds", headers={"Retry-After": str(STORAGE_RETRY_AFTER)})
+    return None
+
+
 def safe_trace(exc: BaseException) -> str:
     """The exception's type and where it was raised, without its message."""
     frames = traceback.extract_tb(exc.__traceback__)
@@ -107,7 +131,9 @@ def register(app: Flask) -> None:
 
     @app.errorhandler(ApiError)
     def _api_error(e: ApiError) -> Response:
-        return json_error(e.status, e.code, e.message, e.field, e.extra)
+        resp = json_error(e.status, e.code, e.message, e.field, e.extra)
+        resp.headers.update(e.headers)
+        return resp
 
     @app.errorhandler(InputError)
     def _input_error(e: InputError) -> Response:
@@ -127,6 +153,9 @@ def register(app: Flask) -> None:
 
     @app.errorhandler(Exception)
     def _unexpected(e: Exception) -> Response:
+        storage = storage_error(e)
+        if storage is not None:
+            return _api_error(storage)
         incident = secrets.token_hex(6)
         log.error("internal error %s on %s %s: %s", incident, request.method,
                   request.url_rule.rule if request.url_rule else "?", safe_trace(e))

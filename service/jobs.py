@@ -74,6 +74,7 @@ class Throttle:
 def run_job(spec: JobSpec, progress: Callable[[str, int, int], None], executor: Any = None
             ) -> Outcome:
     from measurement.errors import InputError
+    from measurement.executor import StopRequested
     from measurement.pipeline import analyze
     from measurement.report import dumps
 
@@ -83,7 +84,7 @@ def run_job(spec: JobSpec, progress: Callable[[str, int, int], None], executor: 
         result = analyze(source, spec.design, spec.options, name=spec.name,
                          progress=Throttle(progress, spec.analysis_id), executor=executor)
         text = dumps(result.report)
-    except Cancelled:
+    except (Cancelled, StopRequested):
         log.info("analysis %s stopped: it no longer belongs to this run", spec.analysis_id)
         return Outcome(spec.analysis_id, cancelled=True)
     except InputError as e:

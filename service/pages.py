@@ -8,7 +8,6 @@ sessionStorage and calls the /v1 API with it.
 from __future__ import annotations
 
 import functools
-import logging
 from pathlib import Path
 
 from flask import Blueprint, Flask, Response, jsonify
@@ -16,9 +15,6 @@ from flask import Blueprint, Flask, Response, jsonify
 from measurement import __version__
 
 from .context import services
-from .errors import safe_trace
-
-log = logging.getLogger("samesource.service")
 
 STATIC_DIR = Path(__file__).resolve().parent / "static"
 
@@ -53,16 +49,10 @@ def page() -> Response:
 
 
 def healthz() -> tuple[Response, int]:
-    svc = services()
-    body = {"status": "ok", "database": svc.store.db.dialect, "version": __version__,
-            "executor": svc.config.executor}
-    try:
-        svc.store.db.ping()
-    except Exception as e:
-        log.error("health check: database unavailable: %s", safe_trace(e))
-        body["status"] = "unavailable"
-        return jsonify(body), 503
-    return jsonify(body), 200
+    from .health import health
+
+    body, ok = health(services())
+    return jsonify(body), 200 if ok else 503
 
 
 def register(app: Flask) -> None:

@@ -61,29 +61,72 @@ class Store:
 
     # ------------------------------------------------------------------ tenants and tokens
 
-    def create_token(self, tenant_name: str) -> str:
-        """A new token for the tenant (created if it does not exist). The token is returned
-        once and never stored."""
+    def create_token(self, tenant_name: str, *, expires_days: float | None = None) -> str:
+        """A new token for the tenant (created if it does not exist), valid for
+        ``expires_days`` days (None: until revoked). The token is returned once and never
+        stored."""
         token, key_id = tokens.new_token()
+        now = utcnow()
+        expires = None if expires_days is None else now + timedelta(days=expires_days)
         with self.db.writing() as s:
             tenant = s.scalar(select(Tenant).where(Tenant.name == tenant_name))
             if tenant is None:
                 tenant = Tenant(id=new_id("tn"), name=tenant_name)
                 s.add(tenant)
                 s.flush()
-            s.add(ApiToken(key_id=key_id, tenant_id=tenant.id, token_sha256=tokens.token_hash(token)))
+            s.add(ApiToken(key_id=key_id, tenant_id=tenant.id, token_sha256=tokens.token_hash(token),
+                           created_at=now, expires_at=expires))
         return token
+
+    def list_tokens(self, tenant_name: str) -> list[dict] | None:
+        """The tenant's tokens, oldest first, without anything secret (None: no such
+        tenant)."""
+        with self.db.reading() as s:
+            tenant = s.scalar(select(Tenant.id).where(Tenant.name == tenant_name))
+            if tenant is None:
+                return None
+            rows = s.scalars(select(ApiToken).where(ApiToken.tenant_id == tenant)
+                             .order_by(ApiToken.created_at, ApiToken.key_id)).all()
+            return [{"key_id": t.key_id, "created_at": iso(t.created_at),
+                     "last_used_at": iso(t.last_used_at), "expires_at": iso(t.expires_at),
+                     "revoked_at": iso(t.revoked_at)} for t in rows]
+
+    def revoke_token(self, key_id: str) -> bool | None:
+        """Revoke a token from the next request on. True: revoked now; False: it already
+        was; None: no token has that key id."""
+        with self.db.writing() as s:
+            t = s.get(ApiToken, key_id)
+            if t is None:
+                return None
+            if t.revoked_at is not None:
+                return False
+            t.revoked_at = utcnow()
+            return True
+
+    LAST_USED_EVERY = timedelta(seconds=60)  # a write per request would be a write per request
 
     def tenant_for_token(self, token: str) -> dict | None:
         key_id = tokens.key_id_of(token)
         if key_id is None:
             return None
         with self.db.reading() as s:
-            row = s.execute(select(ApiToken.token_sha256, Tenant.id, Tenant.name)
+            row = s.execute(select(ApiToken.token_sha256, Tenant.id, Tenant.name,
+                                   ApiToken.revoked_at, ApiToken.expires_at, ApiToken.last_used_at)
                             .join(Tenant, Tenant.id == ApiToken.tenant_id)
                             .where(ApiToken.key_id == key_id)).first()
         if row is None or not tokens.matches(token, row[0]):
             return None
+        now = utcnow()
+        if row[3] is not None or (row[4] is not None and _aware(row[4]) <= now):
+            return None
+        last = _aware(row[5])
+        if last is None or now - last >= self.LAST_USED_EVERY:
+            try:
+                with self.db.writing() as s:
+                    s.execute(update(ApiToken).where(ApiToken.key_id == key_id)
+                              .values(last_used_at=now))
+            except Exception:  # bookkeeping only: a full disk must not lock clients out
+                pass
         return {"id": row[1], "name": row[2]}
 
     # ------------------------------------------------------------------ datasets
@@ -180,15 +223,22 @@ class Store:
 
     # ------------------------------------------------------------------ the job queue
 
-    def claim_next(self, runner: str) -> Claim | None:
-        """Take the oldest queued analysis for ``runner`` (atomic: two runners never get the
-        same one)."""
+    def claim_next(self, runner: str, *, max_running_per_tenant: int | None = None
+                   ) -> Claim | None:
+        """Take the next queued analysis for ``runner`` (atomic: two runners never get the
+        same one), round-robin across tenants: the tenant with the fewest analyses running,
+        then the one whose last analysis started longest ago, then its oldest queued
+        analysis. Tenants with ``max_running_per_tenant`` running wait."""
         for _ in range(5):  # another runner may win the row between select and update
             with self.db.writing() as s:
-                aid = s.scalar(select(Analysis.id).where(Analysis.status == "queued")
+                tenant = self._next_tenant(s, max_running_per_tenant)
+                if tenant is None:
+                    return None
+                aid = s.scalar(select(Analysis.id).where(Analysis.status == "queued",
+                                                         Analysis.tenant_id == tenant)
                                .order_by(Analysis.created_at, Analysis.id).limit(1))
                 if aid is None:
-                    return None
+                    continue
                 now = utcnow()
                 n = s.execute(update(Analysis)
                               .where(Analysis.id == aid, Analysis.status == "queued")
@@ -200,6 +250,47 @@ class Store:
                     attempt = s.scalar(select(Analysis.attempts).where(Analysis.id == aid))
                     return Claim(aid, int(attempt), runner)
         return None
+
+    @staticmethod
+    def _next_tenant(s, max_running: int | None) -> str | None:
+        queued = s.execute(select(Analysis.tenant_id, func.min(Analysis.created_at))
+                           .where(Analysis.status == "queued").group_by(Analysis.tenant_id)).all()
+        if not queued:
+            return None
+        running = dict(s.execute(select(Analysis.tenant_id, func.count())
+                                 .where(Analysis.status == "running")
+                                 .group_by(Analysis.tenant_id)).all())
+        started = dict(s.execute(select(Analysis.tenant_id, func.max(Analysis.started_at))
+                                 .where(Analysis.tenant_id.in_([t for t, _ in queued]))
+                                 .group_by(Analysis.tenant_id)).all())
+        never = datetime.min.replace(tzinfo=UTC)
+        order = sorted((int(running.get(t, 0)), _aware(started.get(t)) or never,
+                        _aware(oldest) or never, t) for t, oldest in queued
+                       if max_running is None or running.get(t, 0) < max_running)
+        return order[0][3] if order else None
+
+    def tenant_load(self, tenant_id: str) -> dict[str, int]:
+        """The tenant's queued and running analyses and the bootstrap replicates they ask for."""
+        with self.db.reading() as s:
+            rows = s.execute(select(Analysis.status, Analysis.options)
+                             .where(Analysis.tenant_id == tenant_id,
+                                    Analysis.status.in_(("queued", "running")))).all()
+        out = {"queued": 0, "running": 0, "replicates": 0}
+        for status, options in rows:
+            out[status] += 1
+            out["replicates"] += int((options or {}).get("bootstrap") or 0)
+        return out
+
+    def oldest_queued_at(self) -> datetime | None:
+        with self.db.reading() as s:
+            return _aware(s.scalar(select(func.min(Analysis.created_at))
+                                   .where(Analysis.status == "queued")))
+
+    def owns(self, claim: Claim) -> bool:
+        """True while this run still owns its analysis (not deleted, re-queued or finished)."""
+        with self.db.reading() as s:
+            return s.scalar(select(func.count()).select_from(Analysis)
+                            .where(*self._mine(claim))) == 1
 
     def job_inputs(self, analysis_id: str) -> dict | None:
         """What a job needs: the dataset's stored file and name, the design and options."""

@@ -14,9 +14,13 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import BinaryIO
+from typing import TYPE_CHECKING, BinaryIO
+
+if TYPE_CHECKING:
+    from .upload_summary import UploadSummary
 
 CHUNK = 1 << 20
+SPOOL_PREFIX = ".incoming-"
 
 
 class TooLarge(Exception):
@@ -47,7 +51,8 @@ def spool(stream: BinaryIO, folder: Path, *, max_bytes: int) -> Spooled:
     """Copy ``stream`` into a temporary file under ``folder``, hashing it and stopping with
     :class:`TooLarge` as soon as it passes ``max_bytes``."""
     folder.mkdir(parents=True, exist_ok=True)
-    fd, name = tempfile.mkstemp(prefix=".incoming-", dir=folder)
+    # the pid in the name lets the start-up sweep remove a dead process's spool files at once
+    fd, name = tempfile.mkstemp(prefix=f"{SPOOL_PREFIX}{os.getpid()}-", dir=folder)
     digest = hashlib.sha256()
     size = 0
     try:
@@ -105,15 +110,98 @@ def sweep(data_dir: Path, known: set[str], *, older_than: float = SWEEP_AGE_SECO
         if not path.is_file() or path.is_symlink():
             continue
         rel = path.relative_to(data_dir).as_posix()
-        owned = rel in known and not path.name.startswith(".incoming-")
+        spool_file = path.name.startswith(SPOOL_PREFIX)
+        owned = rel in known and not spool_file
         try:
-            if owned or now - path.stat().st_mtime < older_than:
+            if owned or (now - path.stat().st_mtime < older_than
+                         and not (spool_file and _spooler_dead(path.name))):
                 continue
             path.unlink()
         except OSError:  # gone meanwhile, or not ours to remove: the next sweep tries again
             continue
         removed.append(rel)
     return removed
+
+
+# A few megabytes kept in reserve in the data folder: on a full disk, deleting a dataset
+# needs the database to write (SQLite's log), and the reserve is given up to let it.
+RESERVE_NAME = ".space-reserve"
+RESERVE_BYTES = 4 << 20
+
+
+def ensure_reserve(data_dir: Path, size: int = RESERVE_BYTES) -> bool:
+    """Write the reserve file when it is missing and the disk has room; True if it exists."""
+    path = data_dir / RESERVE_NAME
+    if path.is_file() and path.stat().st_size >= size:
+        return True
+    try:
+        with open(path, "wb") as fh:
+            fh.write(b"\0" * size)
+            fh.flush()
+            os.fsync(fh.fileno())
+        return True
+    except OSError:
+        path.unlink(missing_ok=True)
+        return False
+
+
+def release_reserve(data_dir: Path) -> bool:
+    """Give the reserve up (the disk is full); True if there was one."""
+    path = data_dir / RESERVE_NAME
+    existed = path.is_file()
+    path.unlink(missing_ok=True)
+    return existed
+
+
+def _spooler_dead(name: str) -> bool:
+    """True when a spool file's name carries the pid of a process that has ended."""
+    try:
+        pid = int(name[len(SPOOL_PREFIX):].split("-", 1)[0])
+    except ValueError:
+        return False
+    if pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:
+        return False
+    return False
+
+
+LOCK_NAME = ".lock"
+
+
+class DataDirLocked(Exception):
+    """Another running service holds the data folder."""
+
+
+def lock_data_dir(data_dir: Path) -> int:
+    """Take the data folder for this process (an exclusive lock the kernel drops when the
+    process ends, even by SIGKILL): two services on one folder would sweep each other's
+    uploads. Returns the lock's file descriptor; :func:`unlock_data_dir` gives it back."""
+    import fcntl
+
+    fd = os.open(data_dir / LOCK_NAME, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        holder = os.read(fd, 64).decode("ascii", "replace").strip() or "another process"
+        os.close(fd)
+        raise DataDirLocked(f"the data folder {data_dir} is in use by another samesource "
+                            f"service (pid {holder}); stop it, or give this one its own "
+                            "--data folder") from None
+    os.ftruncate(fd, 0)
+    os.write(fd, str(os.getpid()).encode())
+    return fd
+
+
+def unlock_data_dir(fd: int) -> None:
+    try:
+        os.close(fd)
+    except OSError:
+        pass
 
 
 def _fsync_dir(folder: Path) -> None:
@@ -127,3 +215,176 @@ def _fsync_dir(folder: Path) -> None:
         pass
     finally:
         os.close(fd)
+
+
+# ---------------------------------------------------------------------- bounded parsing
+#
+# An upload is parsed in a child process, never in the web process: a file that needs
+# gigabytes to read (a decompression bomb, a huge text cell) would otherwise grow the
+# service and keep the memory. The child runs under an address-space limit and a time
+# limit, checks the table's size against the limits below and sends back only the summary
+# the dataset row needs. Every limit is a setting (docs/http-api.md, "Limits").
+
+
+@dataclass(frozen=True)
+class ParseLimits:
+    memory_mb: float = 2048.0
+    seconds: float = 60.0
+    max_rows: int = 1_000_000
+    max_columns: int = 2_000
+    max_cells: int = 20_000_000
+    max_cell_chars: int = 32_767
+    max_column_name_chars: int = 256
+    max_unpacked_mb: float = 500.0
+    max_bytes: int | None = None
+
+    @classmethod
+    def from_config(cls, cfg) -> ParseLimits:
+        return cls(memory_mb=cfg.parse_memory_mb, seconds=cfg.parse_seconds,
+                   max_rows=cfg.max_rows, max_columns=cfg.max_columns, max_cells=cfg.max_cells,
+                   max_cell_chars=cfg.max_cell_chars,
+                   max_column_name_chars=cfg.max_column_name_chars,
+                   max_unpacked_mb=cfg.max_unpacked_mb, max_bytes=cfg.max_upload_bytes)
+
+
+class OverLimit(Exception):
+    """The file is over one of the parsing limits: ``status`` 413 (size, memory) or 422."""
+
+    def __init__(self, status: int, field: str, value: float, message: str) -> None:
+        super().__init__(message)
+        self.status = status
+        self.field = field  # the ServiceConfig field of the limit
+        self.value = value
+        self.message = message
+
+
+def _vm_bytes() -> int:
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmSize:"):
+                return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 0
+
+
+def check_table_limits(frame, limits: ParseLimits) -> None:
+    """Rows, columns, cells, column-name length and cell length against the limits."""
+    rows, cols = frame.shape
+    if cols > limits.max_columns:
+        raise OverLimit(422, "max_columns", limits.max_columns,
+                        f"the file has {cols} columns, over the limit of {limits.max_columns}")
+    if rows > limits.max_rows:
+        raise OverLimit(422, "max_rows", limits.max_rows,
+                        f"the file has {rows} rows, over the limit of {limits.max_rows}")
+    if rows * cols > limits.max_cells:
+        raise OverLimit(422, "max_cells", limits.max_cells,
+                        f"the file has {rows * cols} cells ({rows} rows x {cols} columns), over "
+                        f"the limit of {limits.max_cells}")
+    for i, name in enumerate(frame.columns):
+        if len(str(name)) > limits.max_column_name_chars:
+            raise OverLimit(422, "max_column_name_chars", limits.max_column_name_chars,
+                            f"the name of column {i + 1} is {len(str(name))} characters long, "
+                            f"over the limit of {limits.max_column_name_chars}; shorten it")
+    for name in frame.columns:
+        col = frame[name]
+        if col.dtype != object:
+            continue
+        lengths = col.map(lambda v: len(v) if isinstance(v, str) else 0)
+        if len(lengths) and int(lengths.max()) > limits.max_cell_chars:
+            row = int(lengths.to_numpy().argmax())
+            raise OverLimit(422, "max_cell_chars", limits.max_cell_chars,
+                            f"a cell of column '{str(name)[:60]}' (data row {row + 1}) holds "
+                            f"{int(lengths.max())} characters, over the limit of "
+                            f"{limits.max_cell_chars}")
+
+
+def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
+    """In the child: limit memory, parse, check, send ("ok", UploadSummary) or the refusal."""
+    import resource
+
+    from measurement.errors import InputError
+    from measurement.loading import load_table
+
+    from .errors import from_input_error
+    from .upload_summary import summarize
+
+    try:
+        _soft, hard = resource.getrlimit(resource.RLIMIT_AS)
+        cap = _vm_bytes() + int(limits.memory_mb * 1024 * 1024)
+        resource.setrlimit(resource.RLIMIT_AS, (cap if hard == resource.RLIM_INFINITY
+                                                else min(cap, hard), hard))
+        table = load_table(path, name=name, max_bytes=limits.max_bytes)
+        check_table_limits(table.frame, limits)
+        out = ("ok", summarize(table))
+    except MemoryError:
+        out = ("memory", None)
+    except OverLimit as e:
+        out = ("limit", (e.status, e.field, e.value, e.message))
+    except InputError as e:
+        api = from_input_error(e)
+        out = ("input", (api.status, api.code, api.message, api.field, api.extra))
+    except Exception as e:
+        from .errors import safe_trace
+
+        out = ("error", safe_trace(e))
+    conn.send(out)
+    conn.close()
+
+
+_PRELOAD = ["measurement.loading", "measurement.prepare", "service.uploads", "service.upload_summary"]
+
+
+def parse_bounded(path: Path, name: str, limits: ParseLimits) -> UploadSummary:
+    """Parse the upload at ``path`` in a child process under ``limits``. Raises
+    :class:`OverLimit`, or an ApiError for a file that cannot be read (its 4xx)."""
+    import multiprocessing
+
+    from .errors import ApiError
+
+    with open(path, "rb") as fh:
+        head = fh.read(4)
+    if head == b"PK\x03\x04":  # a zip: an .xlsx is checked before parsing
+        from measurement.errors import DataError
+        from measurement.workbook_limits import check_workbook
+
+        try:
+            check_workbook(path, name,
+                           max_unpacked_bytes=int(limits.max_unpacked_mb * 1024 * 1024))
+        except DataError as e:
+            if e.code != "too_large":
+                raise
+            raise OverLimit(413, "max_unpacked_mb", limits.max_unpacked_mb, str(e)) from None
+    methods = multiprocessing.get_all_start_methods()
+    ctx = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
+    if ctx.get_start_method() == "forkserver":
+        ctx.set_forkserver_preload(_PRELOAD)  # no effect once the server runs; then only slower
+    receive, send = ctx.Pipe(duplex=False)
+    proc = ctx.Process(target=_parse_child, args=(send, str(path), name, limits), daemon=True,
+                       name="samesource-parse")
+    proc.start()
+    send.close()
+    try:
+        if not receive.poll(limits.seconds):
+            raise OverLimit(422, "parse_seconds", limits.seconds,
+                            f"reading the file took over {limits.seconds:g} s and was stopped")
+        try:
+            status, value = receive.recv()
+        except EOFError:  # the child died: over its memory (killed), or crashed in C code
+            status, value = "memory", None
+    finally:
+        receive.close()
+        if proc.is_alive():
+            proc.kill()
+        proc.join(5)
+    if status == "ok":
+        return value
+    if status == "memory":
+        raise OverLimit(413, "parse_memory_mb", limits.memory_mb,
+                        f"reading the file needs more than {limits.memory_mb:g} MB of memory")
+    if status == "limit":
+        raise OverLimit(*value)
+    if status == "input":
+        st, code, message, field, extra = value
+        raise ApiError(st, code, message, field, extra)
+    raise RuntimeError(f"parsing the upload failed in its child process: {value}")

@@ -22,6 +22,7 @@ from measurement.errors import DataError, InputError
 from measurement.loading import MISSING_WORDS
 from measurement.options import AnalysisOptions
 
+from .. import quotas
 from ..context import services
 from ..errors import ApiError, echo, from_input_error
 from .auth import tenant_id
@@ -135,6 +136,7 @@ def create() -> tuple[Response, int]:
                           other_sheets=others)
     except InputError as e:
         raise from_input_error(e, field_prefix="design") from None
+    quotas.check_new_analysis(svc.config, svc.store, tenant_id(), int(options.bootstrap or 0))
     if options.sheet is None or options.sheet == ds.get("sheet"):
         try:
             _check_texts(design, ds)

@@ -8,15 +8,11 @@ import re
 
 from flask import Blueprint, Response, jsonify, request
 
-from measurement.design import draft_design
-from measurement.drafting import Draft, draft_from_table
-from measurement.errors import InputError
-from measurement.loading import LoadedTable, load_table, text_answers
-from measurement.prepare import numeric_columns
-
 from .. import upload_stream, uploads
+from ..config import setting_name
 from ..context import services
-from ..errors import ApiError, echo, from_input_error
+from ..errors import ApiError, echo
+from ..faults import is_disk_full
 from ..store import new_id
 from .auth import tenant_id
 from .paging import page_args
@@ -35,35 +31,6 @@ def _file_name(raw: str | None) -> str:
     name = os.path.basename((raw or "").replace("\\", "/")).strip()
     name = _UNSAFE.sub("_", name)[:200]
     return name or "upload"
-
-
-def text_warnings(table: LoadedTable, mapped: set[str]) -> list[dict]:
-    """A ``text_answers`` warning per item-like column holding answer texts; ``mapped``
-    columns (the draft's answer_labels cover them) say so."""
-    out = []
-    for col, info in text_answers(table).items():
-        shown = ", ".join(repr(t) for t in info["texts"][:6]) + (", ..." if len(info["texts"]) > 6 else "")
-        if col in mapped:
-            advice = "the draft design maps them with answer_labels: check the numbers"
-        else:
-            advice = ("map them to numbers with answer_labels in the design before starting an "
-                      "analysis of this item")
-        out.append({"code": "text_answers", "column": col, "row": info["row"], "text": info["text"],
-                    "texts": info["texts"], "rows": info["rows"], "message": (
-                        f"column '{col}' holds answer texts ({shown}; first in {table.row_label} "
-                        f"{info['row']}), not numbers; {advice}")})
-    return out
-
-
-def _draft(table: LoadedTable, columns: list[str], numeric: list[str]) -> Draft:
-    """The draft from the answers; from the names alone should reading the answers fail
-    on something unforeseen (an upload is never refused for its draft)."""
-    try:
-        return draft_from_table(table)
-    except Exception as e:  # noqa: BLE001 - the draft is a convenience, the upload is what counts
-        log.warning("draft from the answers failed (%s); drafted from the names", e.__class__.__name__)
-        left: list[dict] = []
-        return Draft(design=draft_design(columns, numeric=numeric, left_out=left), left_out=left)
 
 
 def _reused(existing: dict) -> tuple[Response, int]:
@@ -89,39 +56,36 @@ def upload() -> tuple[Response, int]:
         return _reused(existing)
     try:
         try:
-            table = load_table(spooled.path, name=name, max_bytes=cfg.max_upload_bytes)
-            columns = [str(c) for c in table.frame.columns]
-            numeric = numeric_columns(table)
-            draft = _draft(table, columns, numeric)
-        except InputError as e:
-            err = from_input_error(e)
+            parsed = uploads.parse_bounded(spooled.path, name, uploads.ParseLimits.from_config(cfg))
+        except uploads.OverLimit as e:
+            setting = setting_name(e.field)
+            log.info("upload refused: over %s (%d bytes)", setting, spooled.size)
+            raise ApiError(e.status, "over_limit", f"{e.message} ({setting}); remove what the "
+                           "analysis does not use, or split the file", "file",
+                           {"limit": setting, "limit_value": e.value}) from None
+        except ApiError as err:
             if err.field is None:
                 err.field = "file"
             log.info("upload refused: %s (%d bytes)", err.code, spooled.size)
-            raise err from None
+            raise
+        columns = parsed.columns
         dataset_id = new_id("ds")
         rel = uploads.stored_relpath(tenant_id(), dataset_id)
         uploads.keep(spooled, cfg.data_dir, rel)
     except BaseException:
         spooled.discard()
         raise
-    mapped = {i for c in draft.design["constructs"].values() for i in c["items"]} \
-        if draft.design.get("answer_labels") else set()
-    sheets = [dict(d, chosen=d["name"] == table.sheet) for d in table.sheets]
-    details = {"sheet": table.sheet, "sheets": sheets, "draft_left_out": draft.left_out,
-               "draft_notes": draft.notes, "sheet_columns": table.sheet_columns}
     try:
         ds = svc.store.add_dataset(
-            tenant_id(), dataset_id, name=name, format=table.format, sha256=spooled.sha256,
-            size_bytes=spooled.size, rows=int(len(table.frame)), columns=columns,
-            numeric_columns=numeric, draft_design=draft.design,
-            warnings=list(table.warnings) + text_warnings(table, mapped), details=details,
-            stored_path=rel)
+            tenant_id(), dataset_id, name=name, format=parsed.format, sha256=spooled.sha256,
+            size_bytes=spooled.size, rows=parsed.rows, columns=columns,
+            numeric_columns=parsed.numeric_columns, draft_design=parsed.draft_design,
+            warnings=list(parsed.warnings), details=parsed.details, stored_path=rel)
     except BaseException:
         uploads.remove(cfg.data_dir, rel)
         raise
     log.info("dataset %s stored: %d bytes, %d rows, %d columns, %s", dataset_id, spooled.size,
-             ds["rows"], len(columns), table.format)
+             ds["rows"], len(columns), parsed.format)
     resp = jsonify(public(ds))
     resp.headers["Location"] = f"/v1/datasets/{dataset_id}"
     return resp, 201
@@ -171,7 +135,19 @@ def get_dataset(dataset_id: str) -> Response:
 
 def delete_dataset(dataset_id: str) -> tuple[str, int]:
     svc = services()
-    gone = svc.store.delete_dataset(tenant_id(), dataset_id)
+    try:
+        gone = svc.store.delete_dataset(tenant_id(), dataset_id)
+    except Exception as e:
+        if not is_disk_full(e):
+            raise
+        # The disk is full and the database cannot write: free the dataset's own file and
+        # the space reserve, then delete again (deleting is how space is freed).
+        ds = svc.store.get_dataset(tenant_id(), dataset_id)
+        if ds is not None:
+            uploads.remove(svc.config.data_dir, ds["stored_path"])
+        uploads.release_reserve(svc.config.data_dir)
+        log.warning("disk full: dataset %s deleted with the space reserve given up", dataset_id)
+        gone = svc.store.delete_dataset(tenant_id(), dataset_id)
     if gone is None:
         raise ApiError(404, "not_found", f"no dataset {echo(dataset_id)}", "id")
     try:

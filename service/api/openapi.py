@@ -55,6 +55,9 @@ SCHEMAS: dict[str, Any] = {
             "row": {"type": "integer", "description": "data row (the header is row 1), when known"},
             "column": {"type": "string", "description": "data column, when known"},
             "status": {"type": "string", "description": "the analysis's status (409 answers)"},
+            "limit": {"type": "string", "description": "the setting whose limit was passed "
+                      "(over_limit, 429 answers)"},
+            "limit_value": {"type": "number", "description": "that setting's value"},
         },
     },
     "Error": {
@@ -241,7 +244,16 @@ SCHEMAS: dict[str, Any] = {
         "required": ["status"],
         "properties": {"status": {"enum": ["ok", "unavailable"]},
                        "database": {"type": "string"}, "version": {"type": "string"},
-                       "executor": {"type": "string"}},
+                       "executor": {"type": "string"},
+                       "storage": {"enum": ["ok", "unavailable"]},
+                       "oldest_queued_seconds": {"type": ["number", "null"],
+                                                 "description": "age of the oldest queued analysis"},
+                       "disk": {"enum": ["ok", "full", "unavailable"],
+                                "description": "full: under SAMESOURCE_MIN_FREE_MB free"},
+                       "disk_free_bytes": {"type": "integer"},
+                       "runner": {"type": "object", "description": "the job runner: state, "
+                                  "workers, workers_alive, heartbeat_alive, running, restarts, "
+                                  "storage (ok, unavailable or disk_full at its last step)"}},
     },
 }
 
@@ -256,7 +268,8 @@ def document() -> dict:
         "/healthz": {"get": {
             "summary": "Liveness and database check", "security": [], "operationId": "healthz",
             "responses": {"200": _json(_ref("Health"), "The service and its database answer"),
-                          "503": _json(_ref("Health"), "The database does not answer")}}},
+                          "503": _json(_ref("Health"), "Work cannot run: the database does not "
+                                       "answer, the disk is full or no job worker is alive")}}},
         "/v1/datasets": {
             "post": {
                 "summary": "Upload a survey file", "operationId": "uploadDataset",
@@ -271,9 +284,16 @@ def document() -> dict:
                     "201": _json(_ref("Dataset"), "Stored; the summary of what was read"),
                     "400": _error("No field 'file' in the form"),
                     **_AUTH_ERRORS,
-                    "413": _error("Over the upload limit (SAMESOURCE_MAX_UPLOAD_MB)"),
+                    "413": _error("Over the upload limit (SAMESOURCE_MAX_UPLOAD_MB), or (code "
+                                  "over_limit) unpacking or reading it would pass "
+                                  "SAMESOURCE_MAX_UNPACKED_MB or SAMESOURCE_PARSE_MEMORY_MB; the "
+                                  "error's limit names the setting"),
                     "415": _error("Not multipart/form-data, or a file type samesource does not read"),
-                    "422": _error("The file cannot be read; the error names row and column"),
+                    "422": _error("The file cannot be read (the error names row and column), "
+                                  "or (code over_limit) it passes a limit on rows, columns, "
+                                  "cells, cell or column-name length, or parsing time"),
+                    "503": _error("The database does not answer (Retry-After)"),
+                    "507": _error("The service's disk is full (code insufficient_storage)"),
                 }},
             "get": {
                 "summary": "This tenant's datasets, newest first", "operationId": "listDatasets",
@@ -306,6 +326,12 @@ def document() -> dict:
                     "404": _error("No such dataset for this tenant (field dataset_id)"),
                     "413": _error("Body over the size limit"),
                     "415": _error("Not application/json"),
+                    "422": _error("More bootstrap replicates than one analysis may have (code "
+                                  "over_limit; SAMESOURCE_MAX_BOOTSTRAP)"),
+                    "429": _error("The tenant has too many analyses queued, or too many "
+                                  "bootstrap replicates in flight; wait Retry-After seconds"),
+                    "503": _error("The database does not answer (Retry-After)"),
+                    "507": _error("The service's disk is full (code insufficient_storage)"),
                 }},
             "get": {
                 "summary": "This tenant's analyses, newest first (without reports)",

@@ -1,0 +1,572 @@
+"""A service that keeps running: supervised jobs, bounded parsing, full disks, lost databases,
+fair queues, security headers and token management (docs/reliability.md).
+
+The chaos here is short (a few seconds each); the long versions are under tests/benchmarks.
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import resource
+import shutil
+import subprocess
+import time
+import zipfile
+from pathlib import Path
+
+import pytest
+from sqlalchemy.exc import OperationalError
+
+from service.app import create_app
+from service.context import EXTENSION
+from service.db import Database
+from service.models import Base
+from service.store import Store
+from tests.conftest import POSTGRES_URL, cli, small_survey, wait_for
+
+pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
+
+
+def make_app(data_dir: Path, **cfg):
+    return create_app({"data_dir": data_dir, "job_workers": 1, **cfg})
+
+
+def closing(app) -> None:
+    app.extensions[EXTENSION].close()
+
+
+def headers(app, tenant: str = "acme") -> dict:
+    token = app.extensions[EXTENSION].store.create_token(tenant)
+    return {"Authorization": f"Bearer {token}"}
+
+
+def upload(client, hdrs, data: bytes, name: str = "survey.csv"):
+    return client.post("/v1/datasets", headers=hdrs, data={"file": (io.BytesIO(data), name)},
+                       content_type="multipart/form-data")
+
+
+def start(client, hdrs, dataset_id: str, design: dict, options: dict | None = None):
+    return client.post("/v1/analyses", headers=hdrs,
+                       json={"dataset_id": dataset_id, "design": design, "options": options or {}})
+
+
+def finished(client, hdrs, analysis_id: str, timeout: float = 120) -> dict:
+    def done():
+        body = client.get(f"/v1/analyses/{analysis_id}", headers=hdrs).get_json()
+        return body if body.get("status") in ("succeeded", "failed") else None
+
+    return wait_for(done, timeout=timeout, what=f"analysis {analysis_id}")
+
+
+def transient() -> OperationalError:
+    return OperationalError("UPDATE analyses", {}, ConnectionError("server closed the connection"))
+
+
+# ---------------------------------------------------------------------- supervised work
+
+
+def test_a_result_that_cannot_be_saved_goes_back_to_the_queue_and_runs_again(tmp_path):
+    app = make_app(tmp_path / "d", storage_retry_seconds=1.0)
+    svc = app.extensions[EXTENSION]
+    real_finish = svc.store.finish
+    first_failure: list[float] = []
+
+    def finish(*a, **k):
+        # every save fails for 1.5 s from the first try: past the 1 s retry window
+        first_failure.append(first_failure[0] if first_failure else time.monotonic())
+        if time.monotonic() - first_failure[0] < 1.5:
+            raise transient()
+        return real_finish(*a, **k)
+
+    try:
+        svc.store.finish = finish
+        c, h = app.test_client(), headers(app)
+        data, design = small_survey(n=120)
+        ds = upload(c, h, data).get_json()
+        aid = start(c, h, ds["id"], design).get_json()["id"]
+        # the first run's save failed for good: re-queued, attempt counted, run again
+        body = finished(c, h, aid)
+        assert body["status"] == "succeeded", body["error"]
+        assert body["attempts"] == 2
+        health = c.get("/healthz").get_json()
+        assert health["runner"]["storage"] == "ok" and health["runner"]["workers_alive"] == 1
+    finally:
+        closing(app)
+
+
+@pytest.mark.filterwarnings("ignore::pytest.PytestUnhandledThreadExceptionWarning")
+def test_a_dispatch_thread_that_ends_is_started_again(tmp_path):
+    app = make_app(tmp_path / "d")
+    svc = app.extensions[EXTENSION]
+    runner = svc.runner
+    real_run = runner._run
+    calls = []
+
+    def run_once_then_die(claim):
+        calls.append(claim)
+        if len(calls) == 1:
+            real_run(claim)
+            raise SystemExit("a thread ended by something no except Exception catches")
+        real_run(claim)
+
+    try:
+        runner._run = run_once_then_die
+        c, h = app.test_client(), headers(app)
+        data, design = small_survey(n=120)
+        ds = upload(c, h, data).get_json()
+        first = start(c, h, ds["id"], design).get_json()["id"]
+        assert finished(c, h, first)["status"] == "succeeded"
+        wait_for(lambda: runner.restarts >= 1 or c.get("/healthz").get_json()["runner"]["restarts"],
+                 timeout=20, what="the supervisor to restart the thread")
+        second = start(c, h, ds["id"], design).get_json()["id"]
+        assert finished(c, h, second)["status"] == "succeeded"
+        health = c.get("/healthz")
+        assert health.status_code == 200 and health.get_json()["runner"]["workers_alive"] == 1
+    finally:
+        closing(app)
+
+
+def test_healthz_answers_503_when_no_work_can_run(tmp_path):
+    app = make_app(tmp_path / "d")
+    c = app.test_client()
+    ok = c.get("/healthz")
+    assert ok.status_code == 200
+    body = ok.get_json()
+    assert body["runner"]["state"] == "running" and body["oldest_queued_seconds"] is None
+    assert body["storage"] == "ok" and body["disk"] == "ok"
+    app.extensions[EXTENSION].runner.stop()
+    down = c.get("/healthz")
+    assert down.status_code == 503 and down.get_json()["status"] == "unavailable"
+    closing(app)
+
+
+def test_database_errors_in_a_request_are_503_with_retry_after(tmp_path, monkeypatch):
+    app = make_app(tmp_path / "d", run_jobs=False)
+    c, h = app.test_client(), headers(app)
+    store = app.extensions[EXTENSION].store
+
+    def down(*a, **k):
+        raise transient()
+
+    monkeypatch.setattr(store, "list_datasets", down)
+    r = c.get("/v1/datasets", headers=h)
+    assert r.status_code == 503 and r.headers["Retry-After"] == "5"
+    assert r.get_json()["error"]["code"] == "storage_unavailable"
+    closing(app)
+
+
+# ---------------------------------------------------------------------- PostgreSQL restart
+
+
+def _pg_cluster() -> list[str] | None:
+    if not POSTGRES_URL or os.geteuid() != 0 or not shutil.which("pg_lsclusters"):
+        return None
+    out = subprocess.run(["pg_lsclusters", "-h"], capture_output=True, text=True).stdout.split()
+    return out[:2] if len(out) >= 2 else None
+
+
+@pytest.mark.skipif(_pg_cluster() is None, reason="needs SAMESOURCE_TEST_POSTGRES_URL, root and "
+                    "Debian's pg_ctlcluster to stop and start the server")
+def test_analyses_survive_a_postgresql_restart(tmp_path):
+    version, name = _pg_cluster()
+    db = Database(POSTGRES_URL)
+    Base.metadata.drop_all(db.engine)
+    db.dispose()
+    app = make_app(tmp_path / "d", database_url=POSTGRES_URL, storage_retry_seconds=60.0)
+    c, h = app.test_client(), headers(app)
+    try:
+        data, design = small_survey(n=150)
+        ds = upload(c, h, data).get_json()
+        ids = [start(c, h, ds["id"], design, {"bootstrap": 40}).get_json()["id"] for _ in range(2)]
+        subprocess.run(["pg_ctlcluster", version, name, "stop", "-m", "fast"], check=True)
+        try:
+            time.sleep(4)
+            down = c.get("/healthz")
+            assert down.status_code == 503 and down.get_json()["storage"] == "unavailable"
+        finally:
+            subprocess.run(["pg_ctlcluster", version, name, "start"], check=True)
+        for aid in ids:
+            assert finished(c, h, aid, timeout=180)["status"] == "succeeded"
+        wait_for(lambda: c.get("/healthz").status_code == 200, timeout=30, what="healthz ok")
+    finally:
+        closing(app)
+        db = Database(POSTGRES_URL)
+        Base.metadata.drop_all(db.engine)
+        db.dispose()
+
+
+# ---------------------------------------------------------------------- bounded parsing
+
+
+def workbook_bomb(unpacked_mb: int) -> bytes:
+    """A minimal .xlsx whose header cell (an inline string) unpacks to ``unpacked_mb`` MB
+    while the file stays small: the shape of a decompression bomb."""
+    from openpyxl import Workbook
+
+    wb = Workbook()
+    wb.active.append(["placeholder"])
+    plain = io.BytesIO()
+    wb.save(plain)
+    out = io.BytesIO()
+    with zipfile.ZipFile(plain) as src, zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as dst:
+        for item in src.infolist():
+            if item.filename != "xl/worksheets/sheet1.xml":
+                dst.writestr(item, src.read(item))
+                continue
+            with dst.open(item.filename, "w") as part:
+                part.write(b'<?xml version="1.0"?><worksheet xmlns="http://schemas.openxmlformats'
+                           b'.org/spreadsheetml/2006/main"><sheetData><row r="1"><c r="A1" '
+                           b't="inlineStr"><is><t>')
+                block = b"A" * (1 << 20)
+                for _ in range(unpacked_mb):
+                    part.write(block)
+                part.write(b'</t></is></c></row><row r="2"><c r="A2"><v>1</v></c></row>'
+                           b"</sheetData></worksheet>")
+    return out.getvalue()
+
+
+@pytest.fixture(scope="module")
+def limited_app(tmp_path_factory):
+    app = make_app(tmp_path_factory.mktemp("limits"), run_jobs=False, max_unpacked_mb=16,
+                   max_columns=30, max_rows=500, max_column_name_chars=40, max_cell_chars=100,
+                   parse_memory_mb=256)
+    yield app
+    closing(app)
+
+
+def test_a_workbook_bomb_is_refused_quickly_without_growing_the_web_process(limited_app):
+    bomb = workbook_bomb(64)
+    assert len(bomb) < 1_000_000  # 64 MB of contents in a file under 1 MB
+    c, h = limited_app.test_client(), headers(limited_app)
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    t0 = time.monotonic()
+    r = upload(c, h, bomb, "bomb.xlsx")
+    elapsed = time.monotonic() - t0
+    err = r.get_json()["error"]
+    assert r.status_code == 413 and err["code"] == "over_limit", err
+    assert err["limit"] == "SAMESOURCE_MAX_UNPACKED_MB" and "16 MB" in err["message"]
+    assert elapsed < 30  # a bound on a hang, not a speed check: it took ~0.3 s here
+    grown_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - peak
+    assert grown_kb < 40_000, f"the web process's peak memory grew by {grown_kb} kB"
+    assert c.get("/v1/datasets", headers=h).get_json()["total"] == 0
+
+
+def test_measurement_refuses_a_workbook_bomb_before_parsing_it():
+    from measurement.errors import DataError
+    from measurement.workbook_limits import check_workbook
+
+    bomb = workbook_bomb(8)
+    with pytest.raises(DataError) as e:
+        check_workbook(bomb, "bomb.xlsx", max_unpacked_bytes=4 << 20)
+    assert e.value.code == "too_large" and "declares" in str(e.value)
+
+
+def csv_bytes(rows: list[list[str]]) -> bytes:
+    return "\n".join(",".join(r) for r in rows).encode()
+
+
+@pytest.mark.parametrize("data, limit", [
+    (csv_bytes([[f"c{i}" for i in range(31)], ["1"] * 31]), "SAMESOURCE_MAX_COLUMNS"),
+    (csv_bytes([["a", "b"]] + [["1", "2"]] * 501), "SAMESOURCE_MAX_ROWS"),
+    (csv_bytes([["a" * 41, "b"], ["1", "2"]]), "SAMESOURCE_MAX_COLUMN_NAME_CHARS"),
+    (csv_bytes([["a", "b"], ["1", "x" * 101]]), "SAMESOURCE_MAX_CELL_CHARS"),
+])
+def test_files_over_a_table_limit_are_422_naming_the_limit(limited_app, data, limit):
+    c, h = limited_app.test_client(), headers(limited_app)
+    r = upload(c, h, data)
+    err = r.get_json()["error"]
+    assert r.status_code == 422 and err["code"] == "over_limit" and err["limit"] == limit, err
+    assert limit in err["message"] and err["field"] == "file"
+
+
+def test_a_file_needing_more_memory_than_allowed_is_413(limited_app):
+    # 200 columns x 6000 rows of text (~35 MB as a file): far over 64 MB once read as
+    # Python strings, so the child reading it passes its address-space cap
+    app = make_app(limited_app.extensions[EXTENSION].config.data_dir.parent / "mem",
+                   run_jobs=False, parse_memory_mb=64, max_columns=10_000)
+    try:
+        c, h = app.test_client(), headers(app)
+        row = ",".join(f"answer number {i} with some text" for i in range(200))
+        data = ("\n".join([",".join(f"q{i}" for i in range(200))] + [row] * 6000)).encode()
+        r = upload(c, h, data)
+        err = r.get_json()["error"]
+        assert r.status_code == 413 and err["limit"] == "SAMESOURCE_PARSE_MEMORY_MB", err
+    finally:
+        closing(app)
+
+
+# ---------------------------------------------------------------------- full disk
+
+
+@pytest.fixture
+def small_disk(tmp_path):
+    """A 24 MB tmpfs (root only); skipped with the reason elsewhere."""
+    if os.geteuid() != 0 or not shutil.which("mount"):
+        pytest.skip("needs root to mount a small tmpfs for the full-disk test")
+    mnt = tmp_path / "disk"
+    mnt.mkdir()
+    res = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=24m", "tmpfs", str(mnt)],
+                         capture_output=True, text=True)
+    if res.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here: {res.stderr.strip()}")
+    yield mnt
+    subprocess.run(["umount", "-l", str(mnt)], check=False)
+
+
+def test_a_full_disk_answers_507_deletes_still_work_and_the_runner_resumes(small_disk):
+    app = make_app(small_disk / "data", min_free_mb=1, storage_retry_seconds=2.0)
+    c, h = app.test_client(), headers(app)
+    try:
+        data, design = small_survey(n=120)
+        ds = upload(c, h, data).get_json()
+        # fill the disk with something not ours, leaving ~2 MB
+        filler = small_disk / "filler"
+        free = shutil.disk_usage(small_disk).free
+        with open(filler, "wb") as fh:
+            fh.write(b"\0" * (free - (2 << 20)))
+        big = data + b"\n" * (3 << 20)  # 3 MB more: cannot be stored
+        r = upload(c, h, big)
+        assert r.status_code == 507 and r.get_json()["error"]["code"] == "insufficient_storage"
+        # fill to the last byte: the database itself cannot write
+        with open(small_disk / "filler2", "wb") as fh:
+            try:
+                while True:
+                    fh.write(b"\0" * 65536)
+                    fh.flush()
+            except OSError:
+                pass
+        r = upload(c, h, data)
+        assert r.status_code == 507, r.get_json()
+        assert c.get("/healthz").status_code == 503
+        d = c.delete(f"/v1/datasets/{ds['id']}", headers=h)
+        assert d.status_code == 204, d.get_json()
+        assert c.get(f"/v1/datasets/{ds['id']}", headers=h).status_code == 404
+        # space returns: uploads and analyses work again
+        (small_disk / "filler2").unlink()
+        filler.unlink()
+        ds2 = upload(c, h, data)
+        assert ds2.status_code == 201, ds2.get_json()
+        aid = start(c, h, ds2.get_json()["id"], design).get_json()["id"]
+        assert finished(c, h, aid)["status"] == "succeeded"
+        assert c.get("/healthz").status_code == 200
+    finally:
+        closing(app)
+
+
+# ---------------------------------------------------------------------- fairness and quotas
+
+
+BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.skipif(
+    not POSTGRES_URL, reason="set SAMESOURCE_TEST_POSTGRES_URL (make test-postgres)"))]
+
+
+@pytest.fixture(params=BACKENDS)
+def store(request, tmp_path):
+    db = Database(f"sqlite:///{tmp_path / 's.sqlite3'}" if request.param == "sqlite"
+                  else POSTGRES_URL)
+    Base.metadata.drop_all(db.engine)
+    db.create_schema()
+    yield Store(db)
+    Base.metadata.drop_all(db.engine)
+    db.dispose()
+
+
+def test_claims_go_round_robin_across_tenants_within_the_running_limit(store):
+    ids = {}
+    for name in ("big", "small"):
+        store.create_token(name)
+        with store.db.reading() as s:
+            from sqlalchemy import select
+
+            from service.models import Tenant
+            ids[name] = s.scalar(select(Tenant.id).where(Tenant.name == name))
+        store.add_dataset(ids[name], f"ds_{name}", name="s.csv", format="csv", sha256="0" * 64,
+                          size_bytes=1, rows=1, columns=["a"], numeric_columns=["a"],
+                          draft_design={}, warnings=[], stored_path=f"uploads/{name}")
+    big = [store.add_analysis(ids["big"], "ds_big", {}, {})["id"] for _ in range(4)]
+    time.sleep(0.01)
+    small = store.add_analysis(ids["small"], "ds_small", {}, {})["id"]
+    first = store.claim_next("r", max_running_per_tenant=1)
+    assert first.analysis_id == big[0]
+    # big has one running (its limit): small's analysis goes next though queued last
+    second = store.claim_next("r", max_running_per_tenant=1)
+    assert second.analysis_id == small
+    assert store.claim_next("r", max_running_per_tenant=1) is None  # both at their limit
+    store.finish(first, report="{}")
+    assert store.claim_next("r", max_running_per_tenant=1).analysis_id == big[1]
+
+
+def test_queued_and_replicate_limits_answer_429_with_retry_after(tmp_path):
+    app = make_app(tmp_path / "d", run_jobs=False, tenant_max_queued=2, max_bootstrap=500,
+                   tenant_max_replicates=600)
+    c, h = app.test_client(), headers(app)
+    try:
+        data, design = small_survey(n=120)
+        ds = upload(c, h, data).get_json()
+        assert start(c, h, ds["id"], design, {"bootstrap": 400}).status_code == 202
+        over = start(c, h, ds["id"], design, {"bootstrap": 400})
+        assert over.status_code == 429 and int(over.headers["Retry-After"]) > 0
+        assert over.get_json()["error"]["limit"] == "SAMESOURCE_TENANT_MAX_REPLICATES"
+        too_many = start(c, h, ds["id"], design, {"bootstrap": 501})
+        assert too_many.status_code == 422
+        assert too_many.get_json()["error"]["field"] == "options.bootstrap"
+        assert start(c, h, ds["id"], design).status_code == 202
+        full = start(c, h, ds["id"], design)
+        assert full.status_code == 429 and full.headers["Retry-After"]
+        assert full.get_json()["error"]["limit"] == "SAMESOURCE_TENANT_MAX_QUEUED"
+        # another tenant is not held back by the first one's queue
+        assert start(c, headers(app, "other"), ds["id"], design).status_code == 404
+    finally:
+        closing(app)
+
+
+# ---------------------------------------------------------------------- headers
+
+
+def test_security_headers_on_html_and_json(tmp_path):
+    app = make_app(tmp_path / "d", run_jobs=False)
+    c = app.test_client()
+    try:
+        page = c.get("/")
+        assert page.headers["X-Content-Type-Options"] == "nosniff"
+        assert "frame-ancestors 'none'" in page.headers["Content-Security-Policy"]
+        assert page.headers["Referrer-Policy"] == "no-referrer"
+        for r in (c.get("/healthz"), c.get("/v1/datasets"), c.get("/nothing")):
+            assert r.headers["X-Content-Type-Options"] == "nosniff"
+            assert r.headers["Referrer-Policy"] == "no-referrer"
+        from service.app import HTML_POLICY
+
+        assert "script-src" not in HTML_POLICY and "default-src 'none'" in HTML_POLICY
+        assert "frame-ancestors 'none'" in HTML_POLICY
+    finally:
+        closing(app)
+
+
+# ---------------------------------------------------------------------- tokens
+
+
+def test_tokens_are_listed_revoked_at_once_and_expire(tmp_path):
+    data_dir = tmp_path / "d"
+    made = cli("token", "create", "--tenant", "acme", "--data", data_dir)
+    assert made.returncode == 0, made.stderr
+    token = made.stdout.strip()
+    key_id = token.split("_")[1]
+    short = cli("token", "create", "--tenant", "acme", "--expires-days", "1", "--data", data_dir)
+    assert short.returncode == 0, short.stderr
+    listed = cli("token", "list", "--tenant", "acme", "--data", data_dir)
+    assert listed.returncode == 0, listed.stderr
+    lines = listed.stdout.strip().splitlines()
+    assert len(lines) == 2 and lines[0].startswith(key_id)
+    assert "expires never" in lines[0] and "expires 20" in lines[1]
+    assert token not in listed.stdout and token.split("_")[2] not in listed.stdout
+    app = make_app(data_dir, run_jobs=False)
+    c = app.test_client()
+    try:
+        assert c.get("/v1/datasets", headers={"Authorization": f"Bearer {token}"}).status_code == 200
+        revoked = cli("token", "revoke", key_id, "--data", data_dir)
+        assert revoked.returncode == 0 and "revoked" in revoked.stdout
+        assert c.get("/v1/datasets", headers={"Authorization": f"Bearer {token}"}).status_code == 401
+        assert "revoked" in cli("token", "list", "--tenant", "acme", "--data", data_dir).stdout
+        unknown = cli("token", "revoke", "0123456789abcdef", "--data", data_dir)
+        assert unknown.returncode == 2 and "no token" in unknown.stderr
+        store = app.extensions[EXTENSION].store
+        expired = store.create_token("acme", expires_days=-1)
+        assert store.tenant_for_token(expired) is None
+        assert cli("token", "list", "--tenant", "nobody", "--data", data_dir).returncode == 2
+    finally:
+        closing(app)
+
+
+def test_an_older_token_table_gets_the_new_columns(tmp_path):
+    url = f"sqlite:///{tmp_path / 'old.sqlite3'}"
+    db = Database(url)
+    with db.engine.begin() as c:
+        c.exec_driver_sql("CREATE TABLE api_tokens (key_id VARCHAR(40) PRIMARY KEY, tenant_id "
+                          "VARCHAR(40), token_sha256 VARCHAR(64), created_at DATETIME)")
+    db.create_schema()
+    from sqlalchemy import inspect
+
+    cols = {c["name"] for c in inspect(db.engine).get_columns("api_tokens")}
+    assert {"expires_at", "revoked_at", "last_used_at"} <= cols
+    db.dispose()
+
+
+# ---------------------------------------------------------------------- leftovers
+
+
+def test_the_data_folder_is_locked_and_a_dead_process_spool_is_swept_at_start(tmp_path):
+    from service.config import ConfigError
+
+    data_dir = tmp_path / "d"
+    (data_dir / "uploads").mkdir(parents=True)
+    dead = subprocess.Popen(["true"])
+    dead.wait()
+    leftover = data_dir / "uploads" / f".incoming-{dead.pid}-abcd"  # young, but its writer is gone
+    leftover.write_bytes(b"a,b\n1,2\n")
+    app = make_app(data_dir)
+    try:
+        assert not leftover.exists()
+        with pytest.raises(ConfigError, match="in use by another samesource service"):
+            make_app(data_dir)
+    finally:
+        closing(app)
+    again = make_app(data_dir)  # given back at close
+    closing(again)
+
+
+# ---------------------------------------------------------------------- prompt stop
+
+
+@pytest.mark.skipif((os.cpu_count() or 1) < 2, reason="the bootstrap's pool needs two cores")
+def test_deleting_a_dataset_stops_its_bootstrap_between_batches(tmp_path):
+    app = make_app(tmp_path / "d")
+    c, h = app.test_client(), headers(app)
+    try:
+        data, design = small_survey(n=150)
+        ds = upload(c, h, data).get_json()
+        other = upload(c, h, data, "other.csv").get_json()
+        aid = start(c, h, ds["id"], design, {"bootstrap": 20_000}).get_json()["id"]
+        wait_for(lambda: (c.get(f"/v1/analyses/{aid}", headers=h).get_json()["progress"]["stage"]
+                          == "bootstrap"), timeout=120, what="the bootstrap to start")
+        time.sleep(1.0)  # inside a batch
+        assert c.delete(f"/v1/datasets/{ds['id']}", headers=h).status_code == 204
+        t0 = time.monotonic()
+        # the one job worker is free again once the bootstrap stopped: the next analysis runs
+        nxt = start(c, h, other["id"], design).get_json()["id"]
+        wait_for(lambda: c.get(f"/v1/analyses/{nxt}", headers=h).get_json()["status"] != "queued",
+                 timeout=30, every=0.1, what="the worker to be free")
+        took = time.monotonic() - t0
+        assert took < 15, f"the deleted analysis's bootstrap held the worker for {took:.1f} s"
+        assert finished(c, h, nxt)["status"] == "succeeded"
+    finally:
+        closing(app)
+
+
+# ---------------------------------------------------------------------- chaos, short
+
+
+def test_short_chaos_kill_9_loop_generated_requests_and_concurrent_clients(tmp_path):
+    """The long versions: tests/benchmarks/chaos.py (figures in docs/reliability.md)."""
+    from tests.benchmarks.chaos import (
+        ServerProcess,
+        concurrent_clients,
+        generated_requests,
+        kill9_loop,
+    )
+
+    out = kill9_loop(tmp_path / "kill", rounds=2, seed=1, bootstrap=0)
+    assert out["uploads_identical"] == out["uploads_accepted"] >= 1, out
+    assert out["stuck"] == 0 and out["succeeded"] == out["analyses"], out
+    data_dir = tmp_path / "load"
+    from tests.conftest import new_token
+
+    token = new_token(data_dir, "load")
+    srv = ServerProcess(data_dir, env={"SAMESOURCE_JOB_WORKERS": "1"}).start()
+    try:
+        gen = generated_requests(srv.base, token, 60, seed=3)
+        assert gen["5xx"] == 0, gen
+        load = concurrent_clients(srv.base, token, clients=4, seconds=3.0)
+        assert load["errors"] == 0 and load["round_trips"] > 0, load
+    finally:
+        srv.stop()
