@@ -73,6 +73,9 @@ def test_analyze_small_file_writes_report(tmp_path):
     assert "Report:" in res.stdout
     html = (out / "report.html").read_text(encoding="utf-8")
     assert "<html" in html and "NaN" not in html
+    # the one-page brief beside it: dated, with the data's fingerprint
+    brief = (out / "brief.html").read_text(encoding="utf-8")
+    assert "<html" in brief and report["data"]["sha256"] in brief and "produced 20" in brief
     assert (out / "tables" / "paths.csv").exists() and (out / "tables.xlsx").stat().st_size > 0
 
 

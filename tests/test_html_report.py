@@ -194,6 +194,12 @@ def svgs(markup: str) -> list[ET.Element]:
     return [ET.fromstring(m) for m in re.findall(r"<svg\b.*?</svg>", markup, flags=re.S)]
 
 
+def decision_blocks(markup: str) -> list[str]:
+    """The plain text of each decision card on the first screen (its numbers line ends it)."""
+    return [plain(b) for b in re.findall(r'<div class="answer-path decision"[^>]*>(.*?<p class="sub numbers">.*?</p>)',
+                                         markup, flags=re.S)]
+
+
 def plain(fragment: str) -> str:
     return " ".join(html.unescape(re.sub(r"<[^>]+>", " ", fragment)).split())
 
@@ -235,9 +241,9 @@ def test_page_parses_and_holds_every_section(reports, name):
     n_paths = len(report["paths"] or [])
     assert sum(i.startswith("forest-") and not i.endswith(("-svg", "-title", "-desc")) for i in ids) == n_paths
     assert sum(re.fullmatch(r"sensitivity-\d+", i) is not None for i in ids) == n_paths
-    assert "reliability-figure" in ids and "loadings-figure" in ids
-    # every SVG figure is well-formed XML
-    assert len(svgs(markup)) == 2 * n_paths + 4 + 1  # forest + sensitivity per path, 4 reliability panels, heat map
+    assert "loadings-figure" in ids
+    # every SVG figure is well-formed XML (the scale cards replaced the four reliability panels)
+    assert len(svgs(markup)) == 2 * n_paths + 1  # forest + sensitivity per path, heat map
 
 
 def test_headings_in_order_and_landmarks(sample):
@@ -261,10 +267,21 @@ def test_nothing_is_loaded_from_elsewhere(reports, name):
         assert tag not in ("script", "link", "img", "iframe", "object", "embed", "base"), tag
         for key in ("src", "href", "xlink:href", "action", "srcset", "poster", "data"):
             v = attrs.get(key)
-            if v is not None:
-                assert v.startswith("#"), (tag, key, v)  # only links within the page
+            if v is None:
+                continue
+            # links within the page, the chart downloads carried in the page itself (data: links
+            # with a download name), and the files written beside report.html (followed only
+            # when clicked: nothing is fetched to show the page)
+            if v.startswith("data:"):
+                assert tag == "a" and attrs.get("download"), (tag, key, v[:40])
+                assert v.startswith(("data:image/svg+xml;base64,", "data:image/png;base64,")), v[:40]
+            else:
+                assert v.startswith("#") or v in SIBLINGS, (tag, key, v)
     assert "http://" not in markup and "https://" not in markup
     assert "@import" not in page.css and not re.search(r"url\(", page.css)
+
+
+SIBLINGS = {"tables.xlsx", "brief.html", "report.html"}
 
 
 # Words that would mean a missing value leaked into the page. "None of ..." is English (a fit
@@ -323,15 +340,17 @@ def test_path_numbers_equal_the_report(reports, name):
     report = reports[name]
     markup = render_html(report)
     page = Page(markup)
-    blocks = [plain(b) for b in re.findall(r'<div class="answer-path">(.*?)</div>', markup, flags=re.S)]
+    blocks = decision_blocks(markup)
     assert len(blocks) == len(report["paths"])
     for p, block in zip(report["paths"], blocks, strict=True):
         pref = p["estimates"][p["preferred"]]
         obs = p["estimates"]["observed"]
         title = f"{p['predictor']} \u2192 {p['outcome']}"
         assert block.startswith(title)
-        assert f"Preferred estimate: {fmt(pref['estimate'])} {interval(pref['ci'])}" in block
-        assert f"{fmt(obs['estimate'])} {interval(obs['ci'])} (observed" in block
+        assert f"Best estimate: {fmt(pref['estimate'])} {interval(pref['ci'])}" in block
+        # the sentence rounds the same two numbers to two decimals
+        assert f"about {fmt(pref['estimate'], 2)} on a {MINUS}1 to 1 scale" in block
+        assert f"the raw survey number, {fmt(obs['estimate'], 2)}," in block
         # the estimates table: every available estimate with its interval, SE and p
         caption = f"Estimates of {title}"
         for m, e in p["estimates"].items():
@@ -366,17 +385,20 @@ def test_bootstrap_intervals_shown(boot_teams):
 def test_reliability_fit_and_method_numbers_equal_the_report(sample):
     markup = render_html(sample)
     page = Page(markup)
+    cards = dict(re.findall(r'<div class="card[^"]*" data-scale="([^"]+)">(.*?)</div>', markup, flags=re.S))
+    assert list(cards) == list(sample["constructs"])
     for name, c in sample["constructs"].items():
-        row = page.row("Reliability per construct", name)
-        assert row[4].startswith(fmt(c["alpha"])) and interval(c["alpha_ci"]) in row[4]
-        assert row[5].startswith(fmt(c["omega"])) and row[6].startswith(fmt(c["composite_reliability"]))
-        assert row[7].startswith(fmt(c["ave"]))
-        for item, s in c["item_stats"].items():
+        card = plain(cards[name])
+        assert f"alpha {fmt(c['alpha'])} {interval(c['alpha_ci'])}" in card
+        assert f"omega {fmt(c['omega'])}" in card and f"CR {fmt(c['composite_reliability'])}" in card
+        assert f"AVE {fmt(c['ave'])}" in card
+        for item, st in c["item_stats"].items():
             irow = page.row("Item statistics", item)
-            assert irow[3].startswith(fmt(s["loading"])) and irow[4] == fmt(s["item_rest_r"])
+            assert irow[3].startswith(fmt(st["loading"])) and irow[4] == fmt(st["item_rest_r"])
     # AVE of the method scale is below .50 in the sample survey: marked by a cross, not colour alone
-    ave_row = page.row("Reliability per construct", "impression")
-    assert sample["constructs"]["impression"]["ave"] < 0.5 and "\u2717" in ave_row[7]
+    assert sample["constructs"]["impression"]["ave"] < 0.5
+    assert re.search(f"AVE {re.escape(fmt(sample['constructs']['impression']['ave']))} \\(\u2265 0.50\\) \u2717",
+                     plain(cards["impression"]))
     fit = sample["measurement_model"]["fit"]
     assert page.row("Fit of the measurement model", "CFI")[1] == fmt(fit["cfi"])
     rmsea = page.row("Fit of the measurement model", "RMSEA")[1]
@@ -388,10 +410,10 @@ def test_reliability_fit_and_method_numbers_equal_the_report(sample):
     reason = next(r for r in mv["verdict"]["reasons"] if re.match(r"\[\w+\] method factor", r))
     assert pct(mv["method_factor"]["method_share"]) in mf_row[2]
     assert mf_row[5].endswith(reason[1:reason.index("]")])
-    names = list(sample["constructs"])
-    for k, v in sample["measurement_model"]["htmt"].items():
-        a, b = k.split("|")
-        assert page.row("Heterotrait-monotrait", b)[1 + names.index(a)] == fmt(v)
+    # discriminant validity: every pair, ranked from the closest to overlapping, with its HTMT
+    ranked = sorted(sample["measurement_model"]["htmt"].items(), key=lambda kv: -kv[1])
+    listed = re.findall(r"<li><strong>(.*?) and (.*?)</strong>: HTMT ([^,]+),", markup)
+    assert [(html.unescape(a) + "|" + html.unescape(b), v) for a, b, v in listed] == [(k, fmt(v)) for k, v in ranked]
     # the sensitivity markers carry the report's shares
     s = sample["paths"][0]["sensitivity"]
     sens = [x for x in svgs(markup) if (x.findtext("title") or "").startswith("Sensitivity of")][0]
@@ -401,21 +423,24 @@ def test_reliability_fit_and_method_numbers_equal_the_report(sample):
     assert f"interval reaches 0 at {pct(s['ci_covers_zero_at'])}" in labels
 
 
-def test_answer_names_the_bias_that_dominated(sample, full):
+def test_answer_says_which_way_the_raw_number_errs(sample, full):
     for report in (sample, full):
-        markup = render_html(report)
-        blocks = [plain(b) for b in re.findall(r'<div class="answer-path">(.*?)</div>', markup, flags=re.S)]
-        for p, block in zip(report["paths"], blocks, strict=True):
+        for p, block in zip(report["paths"], decision_blocks(render_html(report)), strict=True):
             e = p["estimates"]
-            o, la, pr = (round(e[k]["estimate"], 3) for k in ("observed", "latent", p["preferred"]))
-            if p["preferred"] == "latent":
-                assert "corrects unreliability only" in block
-                continue
-            expected = "Shared method dominated" if abs(pr - la) > abs(la - o) else "Unreliability dominated"
-            assert expected in block
-            # the differences printed are those of the printed numbers
-            gap = fmt(la - o)
-            assert f"({gap if gap.startswith(MINUS) or gap == fmt(0) else '+' + gap}, latent model)" in block
+            o, pr = round(e["observed"]["estimate"], 2), round(e[p["preferred"]]["estimate"], 2)
+            if o * pr < 0:
+                assert "points the other way" in block
+            elif abs(pr) < abs(o):
+                assert f"the raw survey number, {fmt(o, 2)}, overstates it" in block
+            elif abs(pr) > abs(o):
+                assert f"the raw survey number, {fmt(o, 2)}, understates it" in block
+            # a negative corrected path says why the shared answering style hid part of it
+            corrected = p["preferred"].endswith("_adjusted")
+            assert ("makes a negative link look weaker" in block) == (corrected and e[p["preferred"]]["estimate"] < 0)
+    # the sample survey has a negative path (workload -> engagement) that the raw number understates
+    neg = [b for p, b in zip(sample["paths"], decision_blocks(render_html(sample)), strict=True)
+           if p["predictor"] == "workload"]
+    assert neg and "understates it" in neg[0] and "more workload goes with less engagement" in neg[0]
 
 
 def test_missing_corrections_say_why(hostile):
