@@ -8,7 +8,7 @@ import json
 import signal
 import sys
 from collections.abc import Iterator
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from measurement import __version__
@@ -175,7 +175,7 @@ def write_outputs(report: dict, out: Path) -> None:
     from measurement.tables import report_tables, tables_csv, tables_xlsx
 
     out.mkdir(parents=True, exist_ok=True)
-    when = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
     (out / "report.json").write_text(dumps(report), encoding="utf-8")
     (out / "report.html").write_text(render_html(report, when=when), encoding="utf-8")
     (out / "brief.html").write_text(render_brief(report, when=when), encoding="utf-8")
