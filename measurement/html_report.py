@@ -117,7 +117,7 @@ def est_ci(e: dict | None) -> str:
 def threshold_text(th: dict | None, d: int = 2) -> str:
     if not th or not _finite(th.get("value")):
         return ""
-    return f"{DIRECTION.get(th.get('direction', '>='), th.get('direction', ''))} {num(th['value'], d)}"
+    return escape(f"{DIRECTION.get(th.get('direction', '>='), th.get('direction', ''))} {num(th['value'], d)}")
 
 
 def mark(ok: bool | None, fail_word: str = "below threshold", ok_word: str = "meets threshold") -> str:

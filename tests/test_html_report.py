@@ -16,8 +16,10 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 import pytest
+from report_fields import with_new_fields
 
 from measurement import svg
+from measurement.brief import render_brief
 from measurement.executor import SerialExecutor
 from measurement.html_report import render_html
 from measurement.pipeline import analyze
@@ -568,3 +570,160 @@ def test_render_is_pure(sample):
     before = json.dumps(sample, sort_keys=True)
     assert render_html(sample) == render_html(sample)
     assert json.dumps(sample, sort_keys=True) == before  # the report is not changed
+
+
+# --------------------------------------------------------------------------- the first screen and new fields
+
+def _card_blocks(markup: str) -> list[str]:
+    return re.findall(r'<div class="answer-path decision"[^>]*>.*?<p class="sub numbers">.*?</p>', markup, flags=re.S)
+
+
+def test_review_checks_and_trust_lead_the_page(sample):
+
+    r = with_new_fields(sample)
+    markup = render_html(r)
+    page = Page(markup)
+    assert page.errors == [] and _leaks(markup) == []
+    # "review before use" at the very top, naming the items and the fix
+    review = markup.index('id="review"')
+    assert review < markup.index('id="answer"') < markup.index('id="cautions"')
+    block = plain(markup[review:markup.index("</section>", review)])
+    assert "Review before use" in block and "wld2, wld4" in block and 'mark wld2 and wld4 as "reverse"' in block
+    # the assumption checks come before any estimate: status and message in view, the rest as detail
+    strip = markup.index('id="assumptions"')
+    assert strip < markup.index('id="decision-1"') < markup.index('id="paths"')
+    labels = {"holds": "holds", "doubtful": "doubtful", "fails": "fails", "untestable": "cannot be tested"}
+    items = re.findall(r"<li><details><summary>(.*?)</summary>(.*?)</details></li>",
+                       markup[strip:markup.index('id="decision-1"')], flags=re.S)
+    assert len(items) == len(r["assumptions"])
+    for a, (summary, detail) in zip(r["assumptions"], items, strict=True):
+        assert plain(summary).endswith(f"{labels[a['status']]} {a['message']}")
+        d = plain(detail)
+        assert all(e in d for e in a["evidence"]) and a["rule"] in d and a["source"] in d
+        assert "Marker-adjusted" in d and "Method-factor adjusted" in d  # the estimates resting on it, by name
+    # one card per path: the trust light in words and in filled notches (readable without colour)
+    for p, card in zip(r["paths"], _card_blocks(markup), strict=True):
+        level = p["trust"]["level"]
+        assert f"Trust: {level}" in plain(card)
+        assert f'aria-label="How far the answer can be trusted: {level}"' in card
+        assert card.count('class="notch on"') == {"high": 3, "medium": 2, "low": 1}[level]
+        text = plain(card)
+        b = p["bounds"]
+        assert f"between {fmt(b['low'], 2)} and {fmt(b['high'], 2)}" in text
+        assert ("This survey cannot pin the answer down: " + p["cannot_pin_down"] in text) == p["bounds_wide"]
+    # HTMT2 and the variant beside HTMT
+    mm = r["measurement_model"]
+    assert f"HTMT variant: {mm['htmt_variant']}." in plain(markup)
+    k, v = next(iter(mm["htmt2"].items()))
+    assert f"HTMT2 {fmt(v)}" in plain(markup)
+    # the sensitivity figure marks the published range and the estimated share's interval
+    sens = [x for x in svgs(markup) if (x.findtext("title") or "").startswith("Sensitivity of")][0]
+    assert "published range" in ["".join(t.itertext()) for t in sens.iter("text")]
+    assert f"{pct(0.0)} to {pct(0.3)}" in plain(markup) and f"{pct(0.08)} to {pct(0.16)}" in plain(markup)
+
+
+def test_new_fields_missing_or_partial_do_not_break(sample):
+
+    r = with_new_fields(sample)
+    r["assumptions"] = [{"id": "odd"}, {"status": "nonsense", "message": None}, None, "text"]
+    r["review_reasons"] = None
+    for p in r["paths"]:
+        p["trust"], p["bounds"] = {"level": "sky-high"}, {"low": None}
+        p["sensitivity"]["marks"] = {"published_range": None}
+    r["paths"][0].pop("trust")
+    markup = render_html(r)
+    page = Page(markup)
+    assert page.errors == [] and _leaks(markup) == []
+    assert all("Trust: not rated" in plain(c) for c in _card_blocks(markup))
+    assert "Review before use" in plain(markup)  # review_needed without reasons still asks for review
+
+
+def test_undetermined_verdict(sample):
+    r = copy.deepcopy(sample)
+    r["method_variance"]["verdict"]["level"] = "undetermined"
+    page = Page(render_html(r))
+    assert "Common-method variance: UNDETERMINED" in [t for _, t in page.headings]
+
+
+def test_every_chart_downloads_as_svg_and_png(sample):
+    import base64
+
+    markup = render_html(sample)
+    n_charts = len(svgs(markup))
+    links = re.findall(r'<a download="([^"]+)" href="data:image/(svg\+xml|png);base64,([^"]+)">', markup)
+    svg_links = [(n, b) for n, kind, b in links if kind == "svg+xml"]
+    png_links = [(n, b) for n, kind, b in links if kind == "png"]
+    assert len(svg_links) == len(png_links) == n_charts
+    for name, b64 in svg_links:
+        root = ET.fromstring(base64.b64decode(b64))
+        assert name.endswith(".svg") and root.tag == "{http://www.w3.org/2000/svg}svg"
+    for name, b64 in png_links:
+        assert name.endswith(".png") and base64.b64decode(b64)[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature
+
+
+def test_teams_say_why_a_value_is_missing_and_mark_imprecise_intervals(sample):
+    page = Page(render_html(sample))
+    rows = page.table("Key paths within and between groups")[1:]
+    for p, row in zip(sample["teams"]["paths"], rows, strict=True):
+        same, split = row[4], row[5]
+        if p["same_source_team"]["estimate"] is None:
+            assert same.startswith("not available: ") and len(same) > 30
+        ci = p["split_source"]["ci"]
+        if ci and ci[1] - ci[0] > 1.0:
+            assert split.startswith("too imprecise to read") and interval(ci) in split
+        elif p["split_source"]["estimate"] is None:
+            assert split.startswith("not available: ")
+    assert any("too imprecise to read" in r[5] for r in rows)  # the sample's split estimates are
+
+
+def test_fit_reads_as_a_sentence():
+    from measurement.html_report import fit_sentence
+
+    # thresholds as the report carries them (Hu & Bentler 1999 cut-offs, common practice)
+    th = {"cfi": {"value": 0.95, "direction": ">="}, "tli": {"value": 0.95, "direction": ">="},
+          "rmsea": {"value": 0.06, "direction": "<="}, "srmr": {"value": 0.08, "direction": "<="}}
+    good = {"cfi": 0.98, "tli": 0.97, "rmsea": 0.03, "srmr": 0.04}
+    assert fit_sentence(good, th) == "The measurement model fits well by all four usual checks."
+    assert fit_sentence({**good, "rmsea": 0.09}, th) == ("The measurement model fits well by three of the 4 usual "
+                                                         "checks; RMSEA falls short.")
+    assert "misses every one" in fit_sentence({"cfi": 0.5, "tli": 0.5, "rmsea": 0.2, "srmr": 0.2}, th)
+    assert "could not be judged" in fit_sentence({}, th)
+
+
+def test_decision_sentences():
+    from measurement.decision import DIRECTION_NOTE, sentence
+
+    def path(obs, pref, ci, key="method_factor_adjusted"):
+        return {"predictor": "workload", "outcome": "engagement", "preferred": key,
+                "estimates": {"observed": {"estimate": obs}, key: {"estimate": pref, "ci": ci}}}
+
+    s, note = sentence(path(-0.01, -0.193, [-0.255, -0.131]))
+    assert s.startswith("Workload matters a little for engagement (more workload goes with less engagement): "
+                        f"about {MINUS}0.19 on a {MINUS}1 to 1 scale once the shared answering style")
+    assert s.endswith(f"the raw survey number, {MINUS}0.01, understates it.") and note == DIRECTION_NOTE
+    s, note = sentence(path(0.40, 0.05, [-0.02, 0.12]))
+    assert s.startswith("Workload may not matter for engagement") and "overstates it" in s and note is None
+    s, _ = sentence(path(0.40, 0.45, [0.4, 0.5], key="latent"))
+    assert "could not be removed and may remain" in s and "understates it" in s
+    s, _ = sentence(path(0.2, -0.2, [-0.3, -0.1]))
+    assert "points the other way" in s
+    s, note = sentence(path(0.2, None, None))
+    assert s.startswith("No estimate could be computed") and note is None
+
+
+def test_brief_is_one_page_of_the_decision(sample):
+
+    r = with_new_fields(sample)
+    markup = render_brief(r, when="2026-01-01 10:00 UTC")
+    page = Page(markup)
+    assert page.errors == [] and _leaks(markup) == []
+    text = plain(markup)
+    assert "produced 2026-01-01 10:00 UTC" in text and r["data"]["sha256"] in text
+    assert markup.index('id="review"') < markup.index('id="answer"')
+    assert len(_card_blocks(markup)) == len(r["paths"])
+    for c in r["cautions"][:3]:  # the three that matter most, in full
+        assert html.escape(c, quote=True) in markup
+    assert f"{len(r['cautions']) - 3} more cautions in the full report" in text
+    assert "http://" not in markup and "https://" not in markup
+    for tag, _ in page.tags:
+        assert tag not in ("script", "link", "img", "iframe")
