@@ -720,13 +720,24 @@ def _fit_summary(fit: dict | None) -> str:
             f"RMSEA {num(fit.get('rmsea'))}, SRMR {num(fit.get('srmr'))}")
 
 
+# The method-factor models by what they assume (descriptive names of ours; the sequence of
+# models is that of Williams, Hartman & Cavazotte 2010 and Podsakoff et al. 2003).
+MODEL_NAMES = {"measurement": "measurement model", "without_method": "no shared method",
+               "baseline": "no shared method", "equal": "equal shared method", "free": "free shared method",
+               "equal_held": "equal shared method, correlations held", "free_held": "free shared method, correlations held"}
+
+
+def model_name(key: str | None) -> str | None:
+    return MODEL_NAMES.get(key, key.replace("_", " ")) if key else None
+
+
 def _models_table(models: dict, caption: str) -> str:
     rows = []
     for k, m in models.items():
         if not isinstance(m, dict):
             continue
         f = m.get("fit") or {}
-        rows.append([h(k.replace("_", " ")), h(m.get("description")), h(m.get("status")), num(f.get("chi2"), 2),
+        rows.append([h(model_name(k)), h(m.get("description")), h(m.get("status")), num(f.get("chi2"), 2),
                      count(f.get("df")), num(f.get("cfi")), num(f.get("rmsea")), num(f.get("srmr"))])
     return table(["Model", "Description", "Status", "Chi-square", "df", "CFI", "RMSEA", "SRMR"], rows,
                  caption=caption, numeric=(3, 4, 5, 6, 7))
@@ -737,7 +748,8 @@ def _tests_table(tests: dict, caption: str) -> str:
     for k, t in tests.items():
         if not isinstance(t, dict):
             continue
-        rows.append([h(t.get("question") or k.replace("_", " ")), h(t.get("restricted")), h(t.get("general")),
+        rows.append([h(t.get("question") or k.replace("_", " ")), h(model_name(t.get("restricted"))),
+                     h(model_name(t.get("general"))),
                      num(t.get("chi2_diff"), 2), count(t.get("df_diff")), pval(t.get("p"))])
     return table(["Test", "Restricted model", "General model", "Chi-square difference", "df", "p"], rows,
                  caption=caption, numeric=(3, 4, 5))
@@ -807,7 +819,7 @@ def _marker_detail(report: dict, s: dict) -> str:
 
 
 def _cfa_detail(report: dict, s: dict) -> str:
-    out = dl([("Model chosen", h(s.get("chosen"))),
+    out = dl([("Model chosen", h(model_name(s.get("chosen")))),
               ("Method share of item variance (overall)", pct(s.get("method_share_overall")))])
     if isinstance(s.get("models"), dict):
         out += _models_table(s["models"], "CFA marker technique: models")

@@ -11,6 +11,7 @@ threshold is a hollow triangle and carries a cross.
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 from html import escape
@@ -110,7 +111,9 @@ def to_png(svg_file: str, scale: float = 2.0) -> bytes | None:
         import cairosvg
     except (ImportError, OSError):  # the cairo library is missing on this machine
         return None
-    return cairosvg.svg2png(bytestring=svg_file.encode("utf-8"), scale=scale)
+    # cairosvg ignores paint-order, so a text's white halo would be painted over its letters
+    flat = re.sub(r' stroke="[^"]*" stroke-width="4" paint-order="stroke"( stroke-linejoin="round")?', "", svg_file)
+    return cairosvg.svg2png(bytestring=flat.encode("utf-8"), scale=scale)
 
 
 # --------------------------------------------------------------------------- scales and colour
@@ -233,7 +236,7 @@ def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
     body.append(line(sx(0.0), 4, sx(0.0), plot_bottom, stroke=INK, stroke_width=1.5, stroke_dasharray="5 4"))
     for r, top, _h, label_lines, note_lines in layout:
         halo = HIGHLIGHT_BG if r.preferred else "#ffffff"
-        cy = top + 6 + 17.0 * (len(label_lines) - 1) / 2 + 8.5  # the middle of the label's lines
+        cy = top + 14.0  # level with the label's first line (its baseline is 5 px below)
         for i, ln in enumerate(label_lines):
             body.append(text(pad, top + 19 + 17 * i, ln, font_size=14, font_weight="700" if r.preferred else None))
         if note_lines:
@@ -318,7 +321,7 @@ def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, fl
         body.append(el("pattern", line(0, 0, 0, 8, stroke="#b9c3cf", stroke_width=3), id=f"{ident}-hatch",
                        width=8, height=8, patternUnits="userSpaceOnUse", patternTransform="rotate(45)"))
         body.append(rect(p0, top, p1 - p0, ph, fill=f"url(#{ident}-hatch)", opacity="0.6"))
-        body.append(text((p0 + p1) / 2, top + ph - 8, "published range", font_size=12.5, text_anchor="middle",
+        body.append(text(p0 + 5, top + 16, "published range", font_size=12.5, text_anchor="start",
                          fill=INK, stroke="#ffffff", stroke_width=4, paint_order="stroke"))
     for t in yt:
         body.append(line(left, sy(t), W - right, sy(t), stroke=GRID))

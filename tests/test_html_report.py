@@ -727,3 +727,26 @@ def test_brief_is_one_page_of_the_decision(sample):
     assert "http://" not in markup and "https://" not in markup
     for tag, _ in page.tags:
         assert tag not in ("script", "link", "img", "iframe")
+
+
+def test_first_screen_speaks_plainly(sample):
+    # the first screen (up to the list of detail sections) carries none of the trade shorthand
+    # the detail sections use, and no model name
+    markup = render_html(with_new_fields(sample, review=False))
+    first = plain(markup[markup.index('id="answer"'):markup.index('class="toc"')])
+    for jargon in ("BCa", "r_M", "test p", "standardized coefficient", "latent model", "Wald", "disattenuated"):
+        assert jargon not in first, jargon
+    assert first.count("on a \u22121 to 1 scale") == len(sample["paths"])
+
+
+def test_forest_labels_are_level_with_their_points(sample):
+    for s in svgs(render_html(sample)):
+        if not (s.findtext("title") or "").startswith("Every estimate of"):
+            continue
+        marks = [(float(c.get("cy")), "circle") for c in s.iter("circle")]
+        marks += [(sum(float(pt.split(",")[1]) for pt in p.get("points").split()) / 4, "diamond")
+                  for p in s.iter("polygon")]
+        labels = [float(t.get("y")) for t in s.iter("text") if float(t.get("x")) < 20]
+        assert marks and labels
+        for cy, _ in marks:  # some label line sits on the point's line (text baseline about 5 px below centre)
+            assert min(abs(y - 5 - cy) for y in labels) < 6, cy
