@@ -37,7 +37,9 @@ def finite(v: Any) -> bool:
 
 
 def num(v: Any, d: int = 3) -> str:
-    """A number with ``d`` decimals and a true minus sign; a dash when there is none."""
+    """A number with ``d`` decimals and a true minus sign; a dash when there is none (no "-0.000").
+
+    The one number format of report.html and brief.html."""
     if not finite(v):
         return "\u2014"
     s = f"{v:.{d}f}"
@@ -161,4 +163,4 @@ def decision(p: dict, *, labels: dict[str, str] | None = None) -> Decision:
 
 
 __all__ = ["Decision", "Trust", "decision", "sentence", "trust_of", "too_imprecise", "DIRECTION_NOTE",
-           "STATUS_LABELS", "STATUS_SYMBOLS", "IMPRECISE_WIDTH"]
+           "STATUS_LABELS", "STATUS_SYMBOLS", "IMPRECISE_WIDTH", "finite", "num", "ci_pair"]

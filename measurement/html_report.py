@@ -12,7 +12,6 @@ Every string from the report is HTML-escaped: construct and item names come from
 from __future__ import annotations
 
 import base64
-import math
 import re
 from collections.abc import Iterable, Sequence
 from functools import lru_cache
@@ -30,8 +29,10 @@ from .decision import (
     STATUS_SYMBOLS,
     Decision,
     decision,
+    num,
     too_imprecise,
 )
+from .decision import finite as _finite
 from .tables import (
     CHECK_LABELS,
     METHOD_LABELS,
@@ -63,20 +64,6 @@ def h(s: Any) -> str:
     if isinstance(s, float):
         return num(s)
     return escape(str(s), quote=True)
-
-
-def _finite(v: Any) -> bool:
-    return isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v)
-
-
-def num(v: Any, d: int = 3) -> str:
-    """A number with ``d`` decimals and a true minus sign; a dash when there is none."""
-    if not _finite(v):
-        return DASH
-    s = f"{v:.{d}f}"
-    if float(s) == 0:
-        s = s.lstrip("-")  # no "-0.000"
-    return s.replace("-", MINUS)
 
 
 def signed(v: Any, d: int = 3) -> str:

@@ -293,7 +293,8 @@ LEAK = re.compile(r"\b(NaN|nan|None|null|undefined|inf|Infinity|-inf)\b(?! of\b)
 
 def _leaks(markup: str) -> list[str]:
     page = Page(markup)
-    chunks = page.texts + [v for _, a in page.tags for v in a.values() if v]
+    # attribute values too, except the chart downloads (base64 data: links, whose letters may spell anything)
+    chunks = page.texts + [v for _, a in page.tags for v in a.values() if v and not v.startswith("data:")]
     return [m.group(0) for c in chunks for m in LEAK.finditer(c)]
 
 
