@@ -336,6 +336,9 @@ def paths_section(report: dict, figs: Figures | None = None) -> str:
         if len(preds) > 1:
             out.append(f'<p class="sub">Estimated in the equation of {h(p.get("outcome"))} with all its predictors: '
                        f'{", ".join(h(x) for x in preds)}.</p>')
+        if p.get("preferred_reason"):
+            out.append(f'<p class="why">Why {h(method_label(str(p.get("preferred") or "")))} leads: '
+                       f'{h(p["preferred_reason"])}.</p>')
         out.append(figure(chart, cap, ident) + "</div>")
         out.append(_estimates_table(report, p, common))
     return section("paths", "Key paths under every correction", "".join(out))

@@ -751,3 +751,9 @@ def test_forest_labels_are_level_with_their_points(sample):
         assert marks and labels
         for cy, _ in marks:  # some label line sits on the point's line (text baseline about 5 px below centre)
             assert min(abs(y - 5 - cy) for y in labels) < 6, cy
+
+
+def test_why_the_preferred_estimate_leads_is_kept(sample):
+    text = plain(render_html(sample))
+    for p in sample["paths"]:
+        assert f"Why {method_label(p['preferred'])} leads: {p['preferred_reason']}." in text
