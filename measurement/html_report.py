@@ -276,7 +276,7 @@ def checks_strip(report: dict) -> str:
         if a.get("source"):
             detail.append(f"Source: {h(a['source'])}")
         body = "".join(f"<p>{x}</p>" for x in detail)
-        rows.append(f'<li><details><summary>{badge} {h(a.get("message") or a.get("id"))}</summary>'
+        rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.get("message") or a.get("id"))}</span></summary>'
                     f'<div class="detail">{body or "<p>No further detail.</p>"}</div></details></li>')
     return ('<div class="checks-strip" id="assumptions"><h3>What the answer rests on: the assumption checks</h3>'
             f'<ul>{"".join(rows)}</ul></div>')

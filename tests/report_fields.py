@@ -20,7 +20,8 @@ def with_new_fields(report: dict, *, wide: bool = True, review: bool = True) -> 
     r["assumptions"] = [
         {"id": i, "status": st, "evidence": [f"evidence one for {i}", f"evidence two for {i}"],
          "affects": ["marker_adjusted", "method_factor_adjusted"],
-         "message": f"Plain sentence about {i.replace('_', ' ')}.", "rule": f"The rule for {i}.",
+         "message": f"Plain sentence about {i.replace('_', ' ')}, as long as a real one: the check found what it found "
+                    "and says what follows for the estimates.", "rule": f"The rule for {i}.",
          "source": f"Source for {i} (2001)"} for i, st in zip(ASSUMPTION_IDS, STATUSES, strict=True)]
     levels = ("high", "medium", "low")
     for k, p in enumerate(r.get("paths") or []):
