@@ -37,6 +37,7 @@ from __future__ import annotations
 import contextlib
 import math
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -993,6 +994,9 @@ class FitResult:
     baseline_df: int
     fmin: float
     param_cov: np.ndarray | None = field(default=None, repr=False)
+    # inverse information of every estimated quantity: the model parameters and, for FIML,
+    # the saturated means after them (the robust sandwich needs the whole of it)
+    param_cov_all: np.ndarray | None = field(default=None, repr=False)
     _structure: _Structure | None = field(default=None, repr=False, compare=False)
 
     # -- lookups -------------------------------------------------------------------------
@@ -1281,6 +1285,7 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
     std_se = np.full(len(vals), np.nan)
     info = None
     param_cov = None
+    param_cov_all = None
     info_failed: list[str] = []
     se_failed: list[str] = []
     if fiml and compute_se and not capped:
@@ -1313,6 +1318,7 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
                     info_failed.append("the information matrix is not positive definite")
                 else:
                     param_cov = (cov_t + cov_t.T) / 2.0
+                    param_cov_all = (cov_all + cov_all.T) / 2.0
                     se_free = np.sqrt(d)
             except np.linalg.LinAlgError:
                 info_failed.append("the information matrix cannot be inverted")
@@ -1441,7 +1447,27 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         p=p_val, cfi=cfi_v, tli=tli_v, rmsea=rm, rmsea_ci=rm_ci, srmr=srmr,
         loglik=float(ll), aic=float(aic), bic=float(bic),
         baseline_chi2=None if base_chi2 is None else float(base_chi2),
-        baseline_df=int(base_df), fmin=float(best.f), param_cov=param_cov, _structure=st)
+        baseline_df=int(base_df), fmin=float(best.f), param_cov=param_cov,
+        param_cov_all=param_cov_all, _structure=st)
 
 
-__all__ = ["Moments", "RawData", "FitResult", "fit_model", "refit", "Param"]
+def delta_method(fit: FitResult, fun: Callable[[np.ndarray], float],
+                 cov: np.ndarray | None = None, *, time_limit: float = 10.0) -> tuple[float, float | None]:
+    """A function of the completely standardized parameter values (the ``std`` column, in
+    spec order) with its delta-method standard error: sqrt(J V J'), J the central-difference
+    gradient of ``fun`` over the free parameters and V their covariance (``fit.param_cov``
+    unless another, e.g. a robust one, is given). SE None without a covariance."""
+    st = fit._structure or _Structure(fit.spec)
+    value = float(fun(st.standardized(fit.x)))
+    V = fit.param_cov if cov is None else cov
+    if V is None:
+        return value, None
+    try:
+        J = _num_jacobian(lambda x: np.atleast_1d(fun(st.standardized(x))), fit.x, _Deadline(time_limit))
+    except (_TimeUp, _Infeasible):
+        return value, None
+    var = float(J[0] @ V @ J[0])
+    return value, (math.sqrt(var) if var >= 0 and math.isfinite(var) else None)
+
+
+__all__ = ["Moments", "RawData", "FitResult", "fit_model", "refit", "delta_method", "Param"]

@@ -13,7 +13,7 @@ from .missing import MissingPlan
 from .models import measurement_model
 from .options import AnalysisOptions
 from .reliability import average_variance_extracted, composite_reliability
-from .validity import fornell_larcker, htmt
+from .validity import HTMT_VARIANT, fornell_larcker, htmt, htmt2
 
 
 def item_correlations(plan: MissingPlan, items: list[str]) -> pd.DataFrame:
@@ -46,7 +46,9 @@ def measurement_model_section(design: Design, plan: MissingPlan, opts: AnalysisO
         for b in names[i + 1:]:
             corr[(a, b)] = fit.std("cov", a, b)
     blocks = {c.name: list(c.items) for c in design.constructs.values()}
-    ht = htmt(item_correlations(plan, design.items), blocks)
+    icorr = item_correlations(plan, design.items)
+    ht = htmt(icorr, blocks)
+    ht2 = htmt2(icorr, blocks)
     fl = fornell_larcker(ave, corr)
 
     return {
@@ -56,5 +58,7 @@ def measurement_model_section(design: Design, plan: MissingPlan, opts: AnalysisO
         "warnings": list(fit.warnings),
         "factor_correlations": {f"{a}|{b}": r for (a, b), r in corr.items()},
         "htmt": {f"{a}|{b}": v for (a, b), v in ht.items()},
+        "htmt2": {f"{a}|{b}": v for (a, b), v in ht2.items()},
+        "htmt_variant": HTMT_VARIANT,
         "fornell_larcker": {f"{a}|{b}": v for (a, b), v in fl.items()},
     }

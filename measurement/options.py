@@ -19,7 +19,7 @@ class AnalysisOptions:
     fit_time_limit: float = 60.0     # seconds, per model fit
     n_starts: int = 4                # starting points per model fit
     confidence: float = 0.95
-    bootstrap: int = 0
+    bootstrap: int | None = None     # None: the default (a bootstrap only for small samples)
     seed: int = 0
     min_group_size: int = 5          # common practice
     sheet: str | None = None         # worksheet of an .xlsx file
@@ -54,6 +54,8 @@ class AnalysisOptions:
         for name, lo, hi in (("n_starts", 1, 50), ("bootstrap", 0, 100_000), ("seed", 0, 2**32 - 1),
                              ("min_group_size", 2, 1000)):
             v = getattr(self, name)
+            if name == "bootstrap" and v is None:
+                continue
             if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
                 raise bad(name, f"must be a whole number from {lo} to {hi}, got {v!r}")
         if self.sheet is not None and not isinstance(self.sheet, str):

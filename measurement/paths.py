@@ -29,6 +29,7 @@ from .models import (
     single_indicator_model,
 )
 from .reliability import alpha_from_cov, omega_total
+from .robust_se import robust_se
 
 METHODS = ("observed", "disattenuated", "disattenuated_omega", "errors_in_variables", "latent",
            "marker_adjusted", "method_factor_adjusted", "measured_method_adjusted")
@@ -86,6 +87,7 @@ class Estimate:
     se: float | None = None
     note: str = ""
     status: str = "ok"
+    se_robust: float | None = None   # sandwich SE (full sample only; None where no rows back the model)
 
 
 class PathEstimator:
@@ -143,12 +145,17 @@ class PathEstimator:
             data = Moments(names=tuple(self.items), cov=cov, n=X.shape[0])
         return data, cov
 
-    def _scores(self, X: np.ndarray) -> tuple[np.ndarray, int]:
+    def _scores(self, X: np.ndarray) -> tuple[np.ndarray, int, np.ndarray]:
         cols = [[self.col[i] for i in self.design.constructs[c].items] for c in self.score_names]
         with np.errstate(invalid="ignore"):
             s = np.column_stack([np.nanmean(X[:, c], axis=1) for c in cols])
         s = s[~np.isnan(s).any(axis=1)]
-        return np.cov(s, rowvar=False, bias=True), s.shape[0]
+        return np.cov(s, rowvar=False, bias=True), s.shape[0], s
+
+    @staticmethod
+    def _rows_for(fit: FitResult, names: list[str], rows: np.ndarray) -> np.ndarray:
+        pos = {n: i for i, n in enumerate(names)}
+        return rows[:, [pos[n] for n in fit.spec.observed]]
 
     # -- the estimates ------------------------------------------------------------------------
     def estimate(self, X: np.ndarray, *, compute_se: bool = True) -> tuple[dict[Key, Estimate], dict]:
@@ -156,7 +163,8 @@ class PathEstimator:
         fits: dict[str, FitResult] = {}
         extra: dict[str, Any] = {"fits": fits}
         data, icov = self._item_data(X)
-        scov, n_s = self._scores(X)
+        scov, n_s, srows = self._scores(X)
+        score_cols = [score_name(c) for c in self.score_names]
         sd = np.sqrt(np.diag(scov))
         scorr = scov / np.outer(sd, sd)
         sidx = {c: i for i, c in enumerate(self.score_names)}
@@ -191,17 +199,32 @@ class PathEstimator:
             fits[spec.name] = f
             return f
 
-        def from_fit(method: str, f: FitResult, eq: Path, formula: dict[str, float] | None = None):
+        robust_cache: dict[str, Any] = {}
+
+        def robust(f: FitResult, rows: np.ndarray | None, names: list[str]):
+            # the sandwich needs the rows the model was fitted to (not e.g. marker-adjusted moments)
+            if rows is None or f.spec.name in robust_cache:
+                return robust_cache.get(f.spec.name)
+            robust_cache[f.spec.name] = r = robust_se(f, self._rows_for(f, names, rows))
+            return r
+
+        def from_fit(method: str, f: FitResult, eq: Path, formula: dict[str, float] | None = None,
+                     rows: tuple[np.ndarray, list[str]] | None = None):
             for x in eq.predictors:
                 if f.status not in ("ok",) and formula is None:
                     out[(method, eq.outcome, x)] = Estimate(None, note=f"model status {f.status}", status=f.status)
                     continue
                 est = formula[x] if formula is not None else f.std("reg", eq.outcome, x)
                 se = f.std_se("reg", eq.outcome, x) if compute_se and f.status == "ok" else None
-                out[(method, eq.outcome, x)] = Estimate(est, se, status=f.status)
+                se_r = None
+                if se is not None and rows is not None:
+                    r = robust(f, *rows)
+                    se_r = None if r is None else r.std_se_of("reg", eq.outcome, x)
+                    se_r = se_r if se_r is not None and math.isfinite(se_r) else None
+                out[(method, eq.outcome, x)] = Estimate(est, se, status=f.status, se_robust=se_r)
 
         def spearman(method: str, corr: np.ndarray, rel: dict[str, float | None], moments: Moments,
-                     errors_scale: dict[str, float]):
+                     errors_scale: dict[str, float], rows: tuple[np.ndarray, list[str]] | None = None):
             if any(rel[c] is None or rel[c] <= 0 for c in pn):
                 for eq in self.paths:
                     for x in eq.predictors:
@@ -227,24 +250,26 @@ class PathEstimator:
                     for x in eq.predictors:
                         out[(method, eq.outcome, x)] = Estimate(formula[x])
                 else:
-                    from_fit(method, f, eq, formula)
+                    from_fit(method, f, eq, formula, rows)
 
+        score_rows = (srows, score_cols)
+        item_rows = (X, self.items)
         # observed: each equation by OLS on the scale scores (single indicators without error)
         for k, eq in enumerate(self.paths):
             f = single(f"observed:{k}", {c: 0.0 for c in pn}, [eq], score_moments)
-            from_fit("observed", f, eq)
+            from_fit("observed", f, eq, rows=score_rows)
 
-        spearman("disattenuated", scorr, alpha, score_moments, var)
-        spearman("disattenuated_omega", scorr, omega, score_moments, var)
+        spearman("disattenuated", scorr, alpha, score_moments, var, score_rows)
+        spearman("disattenuated_omega", scorr, omega, score_moments, var, score_rows)
 
         f = single("errors_in_variables", {c: (1 - omega[c]) * var[c] for c in pn}, None, score_moments)
         for eq in self.paths:
-            from_fit("errors_in_variables", f, eq)
+            from_fit("errors_in_variables", f, eq, rows=score_rows)
 
         f = self._fit(latent_path_model(self.reduced), data, compute_se)
         fits[f.spec.name] = f
         for eq in self.paths:
-            from_fit("latent", f, eq)
+            from_fit("latent", f, eq, rows=item_rows)
 
         # marker-adjusted: r_M from the marker's correlations with every substantive scale
         if self.design.marker is not None:
@@ -265,7 +290,7 @@ class PathEstimator:
             fits[f.spec.name] = f
             extra["method_factor_fit"] = f
             for eq in self.paths:
-                from_fit("method_factor_adjusted", f, eq)
+                from_fit("method_factor_adjusted", f, eq, rows=item_rows)
         else:
             self._absent(out, "method_factor_adjusted", "no method factor passed its identification checks")
 
@@ -275,7 +300,7 @@ class PathEstimator:
             fits[f.spec.name] = f
             extra["measured_method_fit"] = f
             for eq in self.paths:
-                from_fit("measured_method_adjusted", f, eq)
+                from_fit("measured_method_adjusted", f, eq, rows=item_rows)
         else:
             why = "the design has no method construct" if self.design.method is None else \
                 "the measured-method model did not fit cleanly"

@@ -7,6 +7,8 @@ from typing import Any
 
 import numpy as np
 
+from .assumptions import Assumption, estimate_stable, find
+from .bounds import PUBLISHED_SHARES, path_bounds, plausible_shares
 from .design import Design
 from .fitting import Moments
 from .missing import MissingPlan
@@ -14,7 +16,13 @@ from .models import path_constructs
 from .options import AnalysisOptions
 from .paths import METHODS, NOTES, PathEstimator, wald
 from .report import finite_or_none
+from .robust_se import se_ratio
 from .sensitivity import sensitivity_curves
+
+# Below this many rows analysed, Wald intervals under-cover (docs/coverage.md: 90-91% at
+# n = 300): unless the user chose, the bootstrap runs by default with this many replicates.
+SMALL_SAMPLE = 200
+AUTO_BOOTSTRAP = 300
 
 # Which estimate the report leads with: the best-identified correction that passed its checks.
 PREFERENCE = [
@@ -31,9 +39,18 @@ PREFERENCE = [
 ]
 
 
+def bootstrap_replicates(opts: AnalysisOptions, rows: int) -> int:
+    """The user's choice, else the small-sample default."""
+    if opts.bootstrap is not None:
+        return opts.bootstrap
+    return AUTO_BOOTSTRAP if rows < SMALL_SAMPLE else 0
+
+
 def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits: dict[str, Any],
-                  mv: dict, warnings: list[dict], *, executor=None,
+                  mv: dict, warnings: list[dict], assumptions: list[Assumption], *, executor=None,
                   progress: Callable[[int, int], None] | None = None) -> list[dict]:
+    """Every key path's estimates, the preferred one and its bounds. Appends the
+    ``estimate_stable`` check to ``assumptions``."""
     if not design.paths:
         return []
     mf = mv["method_factor"]
@@ -51,12 +68,18 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
     warnings += [{"code": "paths", "message": n} for n in estimator.notes]
 
     boot = None
-    if opts.bootstrap:
+    n_boot = bootstrap_replicates(opts, plan.rows_analyzed)
+    if n_boot and opts.bootstrap is None:
+        warnings.append({"code": "bootstrap_default",
+                         "message": f"With {plan.rows_analyzed} rows analysed (under {SMALL_SAMPLE}), analytic "
+                                    f"intervals are too narrow; {n_boot} bootstrap replicates were run by default "
+                                    "(set the bootstrap option to choose another number, or 0 for none)."})
+    if n_boot:
         from .bootstrap import bootstrap
         from .executor import default_executor
 
-        ex = executor or default_executor(opts.bootstrap)
-        boot = bootstrap(estimator, X, n_boot=opts.bootstrap, seed=opts.seed, confidence=opts.confidence,
+        ex = executor or default_executor(n_boot)
+        boot = bootstrap(estimator, X, n_boot=n_boot, seed=opts.seed, confidence=opts.confidence,
                          executor=ex, progress=progress, estimate=estimator.vector(full),
                          names=[f"{m} estimate of {o} on {x}" for m, o, x in estimator.keys])
         warnings += [{"code": "bootstrap", "message": n} for n in boot.notes]
@@ -68,7 +91,8 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
     sens = sensitivity_curves(_reduced(estimator), Moments(names=names, cov=np.asarray(cov), n=latent.n),
                               confidence=opts.confidence, time_limit=opts.fit_time_limit)
 
-    method_share = mf.get("method_share") if use_mf else (mm or {}).get("method_share")
+    continuous = find(assumptions, "items_continuous")
+    robust_wanted = continuous is not None and continuous.status != "holds"
     out = []
     for p in design.paths:
         for x in p.predictors:
@@ -78,9 +102,15 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
                 if e.status == "absent":
                     estimates[m] = None
                     continue
-                ci, pval = wald(e.estimate, e.se, opts.confidence)
-                entry: dict[str, Any] = {"estimate": e.estimate, "se": e.se, "ci": ci, "p": pval,
+                ratio = se_ratio(e.se_robust, e.se)
+                use_robust = e.se_robust is not None and (
+                    robust_wanted or (ratio is not None and not 1 / 1.5 <= ratio <= 1.5))
+                se = e.se_robust if use_robust else e.se
+                ci, pval = wald(e.estimate, se, opts.confidence)
+                entry: dict[str, Any] = {"estimate": e.estimate, "se": se, "ci": ci, "p": pval,
                                          "ci_method": "wald" if ci else None,
+                                         "se_method": ("robust" if use_robust else "information") if se else None,
+                                         "se_information": e.se, "se_robust": e.se_robust, "se_ratio": ratio,
                                          "note": NOTES[m] + (f" ({e.note})" if e.note else ""),
                                          "status": e.status}
                 if boot is not None:
@@ -97,15 +127,28 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
                     }
                     if e.estimate is not None and np.all(np.isfinite(pct)):
                         entry["se"] = float(boot.se[k])
+                        entry["se_method"] = "bootstrap"
                         entry["ci"] = entry["bootstrap"]["ci_bca"] or entry["bootstrap"]["ci_percentile"]
                         entry["ci_method"] = "bca" if entry["bootstrap"]["ci_bca"] else "percentile"
                 estimates[m] = entry
-            preferred, reason = _preferred(estimates, use_mf)
-            s = sens[(p.outcome, x)]
-            s["estimated_method_share"] = method_share
             out.append({"outcome": p.outcome, "predictor": x, "predictors": list(p.predictors),
-                        "estimates": estimates, "preferred": preferred, "preferred_reason": reason,
-                        "sensitivity": s})
+                        "estimates": estimates, "sensitivity": sens[(p.outcome, x)]})
+
+    assumptions.append(estimate_stable(out))
+    shares = plausible_shares(mv, assumptions)
+    for path in out:
+        preferred, reason, rests_on = _preferred(path["estimates"], use_mf, assumptions)
+        path["preferred"], path["preferred_reason"] = preferred, reason
+        path["preferred_rests_on"] = rests_on
+        s = path["sensitivity"]
+        s["estimated_method_share"] = shares.estimated_share
+        s["marks"] = {"estimated_share": shares.estimated_share, "estimated_share_ci": shares.estimated_ci,
+                      "estimated_by": shares.estimated_by, "published_range": list(PUBLISHED_SHARES.range)}
+        b = path_bounds(s, shares, path["estimates"].get(preferred))
+        path["bounds"] = b.to_dict()
+        path["bounds_wide"] = b.wide
+        path["cannot_pin_down"] = b.cannot_pin_down
+        path["trust"] = _trust(path, assumptions, b)
     return out
 
 
@@ -113,15 +156,82 @@ def _reduced(estimator: PathEstimator) -> Design:
     return estimator.reduced
 
 
-def _preferred(estimates: dict[str, dict | None], use_mf: str | None) -> tuple[str, str]:
+def _preferred(estimates: dict[str, dict | None], use_mf: str | None,
+               assumptions: list[Assumption]) -> tuple[str, str, list[str]]:
+    """The first estimate in PREFERENCE order that was computed cleanly and that no
+    assumption check keeps out (fails, or doubtful without a remedy); it names the
+    untestable assumptions it rests on. If every candidate is kept out, the first computed
+    one leads, saying so."""
+    fallback = None
     for method, kind, why in PREFERENCE:
         e = estimates.get(method)
         if e is None or e.get("estimate") is None or e.get("status") != "ok":
             continue
         if kind is not None and kind != use_mf:
             continue
-        return method, why
-    return "observed", PREFERENCE[-1][2]
+        blocking = [a for a in assumptions if a.blocks(method)]
+        if blocking:
+            fallback = fallback or (method, blocking)
+            continue
+        demoted = _demoted_before(estimates, use_mf, assumptions, method)
+        rests = [a.id for a in assumptions if a.status == "untestable" and method in a.affects]
+        text = why + (f". Not preferred: {demoted}" if demoted else "")
+        if rests:
+            text += (". It rests on assumptions this survey cannot test (" + ", ".join(rests)
+                     + "): see the bounds")
+        return method, text, rests
+    if fallback is not None:
+        method, blocking = fallback
+        return method, ("every estimate rests on an assumption check that failed or is in doubt ("
+                        + ", ".join(a.id for a in blocking) + "); this one is shown first but should not be "
+                        "relied on"), [a.id for a in blocking]
+    return "observed", PREFERENCE[-1][2], []
+
+
+def _demoted_before(estimates, use_mf, assumptions, chosen: str) -> str:
+    """Plain words for the candidates ranked above ``chosen`` that a check kept out."""
+    out = []
+    for method, kind, _ in PREFERENCE:
+        if method == chosen:
+            break
+        e = estimates.get(method)
+        if e is None or e.get("estimate") is None or (kind is not None and kind != use_mf):
+            continue
+        ids = [a.id for a in assumptions if a.blocks(method)]
+        if ids:
+            out.append(f"{method} ({', '.join(ids)})")
+    return "; ".join(out)
+
+
+def _trust(path: dict, assumptions: list[Assumption], bounds) -> dict:
+    """How far the headline number can be trusted, from the checks behind it:
+    low when a check behind it failed or the bounds are wide; medium when it rests on an
+    untestable or doubtful-but-remedied assumption (beyond method orthogonality, which
+    every correction assumes); high otherwise."""
+    m = path["preferred"]
+    reasons: list[str] = []
+    level = "high"
+    for a in assumptions:
+        status = a.by_estimate.get(m) if a.by_estimate is not None else (a.status if m in a.affects else None)
+        if status is None or status == "holds":
+            continue
+        if a.blocks(m):
+            level = "low"
+            reasons.append(f"{a.id}: {a.message}")
+        elif a.id != "method_orthogonal":
+            level = "medium" if level == "high" else level
+            reasons.append(f"{a.id}: {a.message}")
+    if bounds.wide:
+        level = "low"
+        reasons.append(bounds.cannot_pin_down)
+    if m in ("latent", "errors_in_variables", "observed", "disattenuated", "disattenuated_omega"):
+        if level == "high":
+            level = "medium"
+        reasons.append("the headline number corrects unreliability but not shared method")
+    if not reasons:
+        reasons.append("every check behind this estimate holds; like every correction it assumes the answering "
+                       "style is unrelated to the attitudes (see the bounds)")
+    return {"level": level, "reasons": reasons}
 
 
 __all__ = ["paths_section", "path_constructs"]

@@ -19,7 +19,7 @@ from .design import Design, parse_design
 from .errors import DataError
 from .loading import LoadedTable, load_table
 from .measurement_report import measurement_model_section
-from .method_variance import method_variance_section
+from .method_variance import method_variance_section, method_variance_verdict
 from .missing import MissingPlan, plan_missing
 from .options import AnalysisOptions
 from .paths_report import paths_section
@@ -93,9 +93,10 @@ def analyze(
 
     step("method_variance", 4, total)
     mv = method_variance_section(dsg, plan, opts, fits, fits["measurement_model"])
+    assumptions = method_variance_verdict(dsg, plan, mv)
 
     step("paths", 5, total)
-    paths = paths_section(dsg, plan, opts, fits, mv, warnings, executor=executor,
+    paths = paths_section(dsg, plan, opts, fits, mv, warnings, assumptions, executor=executor,
                           progress=lambda done, n: step("bootstrap", done, n))
 
     step("teams", 6, total)
@@ -105,6 +106,7 @@ def analyze(
     report: dict[str, Any] = {
         "schema": "samesource.report/1",
         "tool": {"name": "samesource", "version": __version__},
+        "assumptions": [a.to_dict() for a in assumptions],
         "data": _data_section(table, prepared, plan),
         "screening": _screening_section(screening, plan),
         "constructs": constructs,

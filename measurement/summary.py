@@ -7,6 +7,19 @@ def _num(v, fmt: str = ".2f") -> str:
     return "—" if v is None else format(v, fmt)
 
 
+STATUS_MARK = {"holds": "ok", "doubtful": "??", "fails": "!!", "untestable": "--"}
+
+
+def assumption_lines(report: dict) -> list[str]:
+    """The assumption checks, before any estimate: they say how far the numbers can be read."""
+    if not report.get("assumptions"):
+        return []
+    out = ["", "  checks behind the corrections (ok holds, ?? doubtful, !! fails, -- cannot be tested here):"]
+    out += [f"  [{STATUS_MARK.get(a['status'], a['status'])}] {a['id']}: {a['message']}"
+            for a in report["assumptions"]]
+    return out
+
+
 def text_summary(report: dict) -> str:
     d = report["data"]
     lines = [
@@ -14,6 +27,7 @@ def text_summary(report: dict) -> str:
         f"  rows read {d['rows']}, analysed {d['rows_analyzed']} "
         f"({d['missing_handling']['description']}), items {d['items']}",
         f"  screening flagged {report['screening']['n_flagged']} row(s) for review",
+        *assumption_lines(report),
         "",
         f"  {'construct':<18}{'role':<13}{'alpha':>7}{'omega':>7}{'CR':>7}{'AVE':>7}",
     ]
@@ -47,6 +61,13 @@ def text_summary(report: dict) -> str:
             be = p["sensitivity"].get("break_even_method_share")
             lines.append("    method share that would explain it away: "
                          + (f"{be:.0%}" if be is not None else "none within the range tested"))
+            b = p.get("bounds")
+            if b and b.get("low") is not None:
+                lines.append(f"    bounds over plausible method shares {b['plausible_share'][0]:.2f}-"
+                             f"{b['plausible_share'][1]:.2f} ({b['share_source']}): "
+                             f"[{b['low']:.3f}, {b['high']:.3f}]; trust {p['trust']['level']}")
+            if p.get("cannot_pin_down"):
+                lines.append(f"    {p['cannot_pin_down']}")
     if report.get("warnings"):
         lines += ["", f"  {len(report['warnings'])} warning(s):"]
         lines += [f"  - {w['message']}" for w in report["warnings"]]

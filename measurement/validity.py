@@ -33,8 +33,9 @@ def htmt(
 ) -> dict[tuple[str, str], float | None]:
     """Heterotrait-monotrait ratio of correlations for every pair of constructs.
 
-    HTMT(a, b) = mean |r| over the item pairs with one item in a and one in b
-    (heterotrait-heteromethod correlations), divided by the square root of the product of
+    HTMT(a, b) = |mean r| over the item pairs with one item in a and one in b
+    (heterotrait-heteromethod correlations, signed, as in the paper; the absolute value of
+    the ratio is taken at the end), divided by the square root of the product of
     the mean correlation among a's own items and the mean among b's own items
     (monotrait-heteromethod: the off-diagonal correlations within each block).
 
@@ -73,7 +74,51 @@ def htmt(
         if ma is None or mb is None or ma <= 0 or mb <= 0 or not np.all(np.isfinite(hetero)):
             out[(a, b)] = None
             continue
-        out[(a, b)] = float(np.abs(hetero).mean() / np.sqrt(ma * mb))
+        # the published formula on signed correlations; the ratio's sign (the direction of
+        # the association) is dropped, as discriminant validity concerns its size only
+        out[(a, b)] = float(abs(hetero.mean()) / np.sqrt(ma * mb))
+    return out
+
+
+HTMT_VARIANT = ("HTMT as published (Henseler, Ringle & Sarstedt 2015): arithmetic means of the signed item "
+                "correlations (reverse-keyed items recoded first), the absolute value of the ratio reported; "
+                "HTMT2 (Roemer, Schuberth & Henseler 2021): geometric means, defined only when every "
+                "heterotrait correlation has the same sign and every monotrait correlation is positive")
+
+
+def htmt2(
+    corr: pd.DataFrame, blocks: Mapping[str, Sequence[str]]
+) -> dict[tuple[str, str], float | None]:
+    """HTMT2: the heterotrait-monotrait ratio with geometric instead of arithmetic means.
+
+    HTMT2(a, b) = geometric mean of |r| over the heterotrait item pairs, divided by the
+    square root of the product of the geometric means of each construct's monotrait
+    correlations. Geometric means need positive values: the value is ``None`` when a
+    monotrait correlation is not positive, when the heterotrait correlations differ in sign
+    (or one is zero), and when a construct has fewer than two items.
+
+    References
+    ----------
+    Roemer, E., Schuberth, F., & Henseler, J. (2021). HTMT2 - an improved criterion for
+    assessing discriminant validity in structural equation modeling. Industrial Management
+    & Data Systems, 121(12), 2637-2650.
+    """
+    def geo(v: np.ndarray) -> float | None:
+        if v.size == 0 or not np.all(np.isfinite(v)) or np.any(v <= 0):
+            return None
+        return float(np.exp(np.mean(np.log(v))))
+
+    mono = {}
+    for name, items in blocks.items():
+        sub = corr.loc[list(items), list(items)].to_numpy(dtype=float)
+        mono[name] = geo(sub[np.triu_indices(len(items), k=1)]) if len(items) >= 2 else None
+    out: dict[tuple[str, str], float | None] = {}
+    for a, b in combinations(blocks, 2):
+        hetero = corr.loc[list(blocks[a]), list(blocks[b])].to_numpy(dtype=float).ravel()
+        same_sign = bool(np.all(hetero > 0) or np.all(hetero < 0))
+        h = geo(np.abs(hetero)) if same_sign else None
+        ma, mb = mono[a], mono[b]
+        out[(a, b)] = None if h is None or ma is None or mb is None else float(h / np.sqrt(ma * mb))
     return out
 
 

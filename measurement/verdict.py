@@ -9,6 +9,8 @@ states them with their reasons.
 from __future__ import annotations
 
 LEVELS = ("none", "minor", "substantial")
+# "undetermined" stands beside them: no check whose assumptions hold could look
+VERDICT_LEVELS = ("none", "minor", "substantial", "undetermined")
 
 # Share of substantive item variance due to method (squared standardized method loading).
 SHARE_MINOR = 0.03
@@ -30,8 +32,12 @@ RULES = [
     "Harman's test flagged (one factor, or a first factor above 50% of variance): minor at most, as the "
     "test is insensitive and also flags strongly related constructs.",
     "Full-collinearity VIF above 3.3 (Kock 2015): minor at most, as collinearity has other causes.",
-    "The verdict is the highest level any signal reaches; 'none' means no check found method variance "
-    "of a size worth naming, not that there is none.",
+    "Each method factor is tested with the model actually used (free or equal loadings) against no method "
+    "factor.",
+    "The verdict is the highest level any signal reaches. 'none' is said only when a check whose "
+    "assumptions hold (a marker that could be vouched for, a measured method scale, an identified method "
+    "factor without the marker) found nothing; otherwise 'undetermined'. Harman's test, the VIF and a marker "
+    "that could not be vouched for can raise a level but never vouch for 'none'.",
 ]
 
 
@@ -49,34 +55,56 @@ def _sig(test: dict | None) -> bool:
     return bool(test and test.get("p") is not None and test["p"] < 0.05)
 
 
-def verdict(mv: dict) -> dict:
-    """Weigh the method-variance sections (``report["method_variance"]`` without a verdict)."""
-    signals: list[tuple[str, str]] = []  # (level, reason)
+def verdict(mv: dict, assumptions: list | None = None) -> dict:
+    """Weigh the method-variance sections (``report["method_variance"]`` without a verdict).
+
+    ``assumptions``: the :class:`~measurement.assumptions.Assumption` list, which says
+    which checks can vouch for "nothing found"."""
+    by_id = {a.id: a for a in (assumptions or [])}
+    marker_ok = by_id["marker_carries_method"].status == "holds" if "marker_carries_method" in by_id else False
+    cfa_ok = by_id["marker_pure_method"].status != "fails" if "marker_pure_method" in by_id else True
+    signals: list[tuple[str, str, bool]] = []  # (level, reason, can vouch for "none")
 
     mf = mv.get("method_factor")
     if mf and mf.get("usable_as_correction"):
-        lvl = _share_level(mf.get("method_share"), _sig(mf["tests"]["method_vs_none"]))
-        signals.append((lvl, f"method factor ({mf['identified_by']}): method share of item variance "
-                             f"{_fmt(mf.get('method_share'))}, test p {_fmt(mf['tests']['method_vs_none']['p'], 3)}"))
+        test = mf["tests"].get("used_vs_none") or mf["tests"]["method_vs_none"]
+        lvl = _share_level(mf.get("method_share"), _sig(test))
+        vouch = marker_ok if mf["identified_by"] == "marker" else True
+        signals.append((lvl, f"method factor ({mf['identified_by']}, {mf['loadings']} loadings): method share of "
+                             f"item variance {_fmt(mf.get('method_share'))}, test p {_fmt(test['p'], 3)}"
+                             + ("" if vouch or lvl != "none" else "; the marker could not be vouched for, so "
+                                "this is no evidence of absence"), vouch))
     elif mf:
         signals.append(("none", "method factor: not usable here (" + "; ".join(mf.get("warnings") or ["checks failed"])
-                        + ")"))
+                        + ")", False))
+    plain = (mf or {}).get("without_marker")
+    if plain and plain.get("informative"):
+        # identified by the loading pattern alone: it counts only when clear either way
+        lvl = _share_level(plain.get("method_share"), plain.get("found_method", False))
+        signals.append((lvl, f"method factor without the marker: method share {_fmt(plain.get('method_share'))}, "
+                             f"test p {_fmt((plain.get('test') or {}).get('p'), 3)}",
+                        bool(plain.get("shows_absence"))))
 
     mm = mv.get("measured_method")
     if mm:
+        ok = mm.get("status") == "ok"
         lvl = _share_level(mm.get("method_share"), _sig(mm["tests"]["method_vs_none"]))
         signals.append((lvl, f"measured method '{mm['method_construct']}': method share "
-                             f"{_fmt(mm.get('method_share'))}, test p {_fmt(mm['tests']['method_vs_none']['p'], 3)}"))
+                             f"{_fmt(mm.get('method_share'))}, test p {_fmt(mm['tests']['method_vs_none']['p'], 3)}",
+                        ok))
 
     cm = mv.get("cfa_marker")
     if cm and cm.get("tests"):
         lvl = _share_level(cm.get("method_share_overall"), _sig(cm["tests"].get("baseline_vs_equal")))
+        vouch = marker_ok and cfa_ok
         signals.append((lvl, f"CFA marker technique: method share {_fmt(cm.get('method_share_overall'))}, "
-                             f"test p {_fmt((cm['tests'].get('baseline_vs_equal') or {}).get('p'), 3)}"))
+                             f"test p {_fmt((cm['tests'].get('baseline_vs_equal') or {}).get('p'), 3)}"
+                             + ("" if cfa_ok else "; the marker has a trait of its own, so this share is a lower "
+                                "bound and no evidence of absence"), vouch))
         held = next((v for k, v in cm["tests"].items() if k.endswith("_vs_held")), None)
         if _sig(held) and lvl != "none":
             signals.append(("minor", "CFA marker technique: the substantive correlations change when "
-                                     "method variance is allowed for"))
+                                     "method variance is allowed for", False))
 
     mk = mv.get("marker")
     if mk:
@@ -86,21 +114,24 @@ def verdict(mv: dict) -> dict:
             lvl = "substantial"
         elif sig and r_m >= R_M_MINOR:
             lvl = "minor"
-        signals.append((lvl, f"marker '{mk['marker']}': r_M {_fmt(r_m)} (p {_fmt(mk['r_m_p'], 3)})"))
+        signals.append((lvl, f"marker '{mk['marker']}': r_M {_fmt(r_m)} (p {_fmt(mk['r_m_p'], 3)})", marker_ok))
 
     h = mv.get("harman")
     if h:
         signals.append(("minor" if h["flag"] else "none",
                         f"Harman: first factor {h['first_factor_share']:.0%} of variance, "
-                        f"{h['factors_eigen_gt_1']} eigenvalue(s) above 1"))
+                        f"{h['factors_eigen_gt_1']} eigenvalue(s) above 1", False))
 
     v = mv.get("collinearity_vif")
     if v and v.get("values"):
         top = max(v["values"].items(), key=lambda kv: kv[1])
-        signals.append(("minor" if v["flag"] else "none", f"full-collinearity VIF: highest {top[0]} {top[1]:.2f}"))
+        signals.append(("minor" if v["flag"] else "none", f"full-collinearity VIF: highest {top[0]} {top[1]:.2f}",
+                        False))
 
     level = max((s[0] for s in signals), key=LEVELS.index, default="none")
-    raised = [r for lv, r in signals if lv == level and lv != "none"]
+    if level == "none" and not any(vouch for lv, _, vouch in signals if lv == "none"):
+        level = "undetermined"
+    raised = [r for lv, r, _ in signals if lv == level and lv != "none"]
     summary = {
         "none": "No check found common-method variance of a size worth naming. A pass bounds the bias; "
                 "it does not prove its absence.",
@@ -109,15 +140,24 @@ def verdict(mv: dict) -> dict:
         "substantial": "Common-method variance is substantial: same-source associations are inflated. "
                        "Lead with the corrected estimates, and prefer separating sources or times of "
                        "measurement next time.",
+        "undetermined": "This survey cannot tell whether shared answering style inflates its associations: no "
+                        "check that could detect it was available or could be trusted here. The bounds beside "
+                        "each key path show how far the answer could move.",
     }[level]
-    if level == "none" and not mv.get("marker") and not mv.get("measured_method"):
-        summary += (" This design has neither a marker nor a measured method scale, so only the weak checks "
-                    "could run: add one to the questionnaire to test for method variance properly.")
+    if level == "undetermined":
+        if mv.get("marker") and not mv.get("measured_method"):
+            summary += (" The marker found nothing, but nothing else in the survey can show that the marker "
+                        "carries the shared method. A short measured method scale (for example a few "
+                        "social-desirability items) or a second source would settle it.")
+        elif not mv.get("marker") and not mv.get("measured_method"):
+            summary += (" This design has neither a marker nor a measured method scale, so only the weak checks "
+                        "could run: add one to the questionnaire to test for method variance properly.")
     return {
         "level": level,
         "summary": summary,
-        "reasons": [f"[{lv}] {r}" for lv, r in signals],
+        "reasons": [f"[{lv}] {r}" for lv, r, _ in signals],
         "raised_by": raised,
+        "vouching_checks": [r for lv, r, vouch in signals if vouch],
         "rules": RULES,
     }
 

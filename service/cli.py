@@ -35,8 +35,9 @@ def _parser() -> argparse.ArgumentParser:
                    help="drop rows that screening flags (by default they are reported and kept)")
     a.add_argument("--fit-time-limit", type=float, default=60.0, metavar="SECONDS",
                    help="time cap for each model fit (default 60)")
-    a.add_argument("--bootstrap", type=int, default=0, metavar="N",
-                   help="bootstrap replicates for percentile and BCa intervals (default 0: analytic intervals)")
+    a.add_argument("--bootstrap", type=int, default=None, metavar="N",
+                   help="bootstrap replicates for percentile and BCa intervals (default: analytic intervals, "
+                        "and 300 replicates when fewer than 200 rows are analysed; 0 for none)")
     a.add_argument("--seed", type=int, default=0, help="seed for the bootstrap and random starting values")
     a.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL",
                    help="confidence level of every interval, 0.5 to 0.999 (default 0.95)")

@@ -97,7 +97,7 @@ def test_confidence_option_sets_every_wald_interval(tmp_path):
 
     out = tmp_path / "out"
     res = run("analyze", small_csv(tmp_path), "--design", small_design(tmp_path), "--out", out,
-              "--confidence", "0.9", "--quiet")
+              "--confidence", "0.9", "--bootstrap", "0", "--quiet")
     assert res.returncode == 0, res.stderr
     report = json.loads((out / "report.json").read_text(encoding="utf-8"))
     assert report["options"]["confidence"] == 0.9

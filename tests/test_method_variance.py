@@ -55,11 +55,21 @@ def test_measured_method_scale_recovers_share():
     assert mv["measured_method"]["flag"]
 
 
-def test_verdict_none_without_method_variance_in_95_percent_of_seeds():
-    # 20 seeds, no method variance at all: "none" in at least 19 (95%). Observed: see the
-    # assertion message when it fails; in development every seed gave "none".
+def test_no_false_alarm_without_method_variance_in_95_percent_of_seeds():
+    # 20 seeds, no method variance at all: a false alarm (minor or substantial) in at most 1
+    # (5%, the target). With only a marker to go by, a marker that finds nothing
+    # cannot vouch for itself, so the verdict is "undetermined" rather than "none"
+    # (observed in development: 19 undetermined or none, 1 minor from free loadings at p .044).
     levels = [run(survey(0.0, seed, n=500, scale_points=5))["verdict"]["level"] for seed in range(20)]
-    assert levels.count("none") >= 19, levels
+    assert sum(lv in ("minor", "substantial") for lv in levels) <= 1, levels
+    assert all(lv in ("none", "undetermined", "minor") for lv in levels), levels
+
+
+def test_verdict_none_when_a_measured_method_scale_also_finds_nothing():
+    # Known truth: no method variance; the measured method scale's factor is then a check
+    # whose assumptions hold and that finds nothing, so "none" may be said.
+    levels = [run(survey(0.0, seed, n=600, measured=True))["verdict"]["level"] for seed in range(3)]
+    assert levels.count("none") >= 2, levels
 
 
 def test_degenerate_free_loadings_are_detected_and_not_used():
@@ -102,7 +112,9 @@ def test_plain_method_factor_without_marker_is_not_a_correction_when_unidentifie
     assert mf["identified_by"].startswith("loading pattern")
     assert not mf["usable_as_correction"] or (mf["method_share"] or 0) < 0.03
     assert mv["marker"] is None and mv["cfa_marker"] is None
-    assert mv["verdict"]["level"] == "none"
+    # no marker, no method scale, an unidentified factor: nothing can vouch for "none"
+    assert mv["verdict"]["level"] == "undetermined"
+    assert "neither a marker nor a measured method scale" in mv["verdict"]["summary"]
 
 
 def test_harman_flags_a_single_dominant_factor():

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from measurement.validity import HTMT_LIBERAL, HTMT_STRICT, fornell_larcker, htmt
+from measurement.validity import HTMT_LIBERAL, HTMT_STRICT, fornell_larcker, htmt, htmt2
 
 
 def _corr(names: list[str], pairs: dict[tuple[str, str], float]) -> pd.DataFrame:
@@ -42,12 +42,12 @@ BLOCKS = {"A": ["a1", "a2"], "B": ["b1", "b2", "b3"], "C": ["c1", "c2"]}
 
 def test_htmt_hand_worked(small_corr):
     # Henseler, Ringle & Sarstedt (2015) formula, worked by hand:
-    # A-B: heterotrait |r| = .3 .2 .1 .2 .3 .1 -> mean 1.2 / 6 = .2;
-    #      monotrait A = .6, B = (.5 + .4 + .6) / 3 = .5 -> .2 / sqrt(.6 * .5).
+    # A-B: heterotrait r = .3 -.2 .1 .2 .3 .1 (signed, as in the paper) -> mean .8 / 6;
+    #      monotrait A = .6, B = (.5 + .4 + .6) / 3 = .5 -> (.8 / 6) / sqrt(.6 * .5).
     # A-C: .5 / sqrt(.6 * .8).   B-C: .4 / sqrt(.5 * .8).
     res = htmt(small_corr, BLOCKS)
     assert list(res) == [("A", "B"), ("A", "C"), ("B", "C")]
-    assert res[("A", "B")] == pytest.approx(0.2 / math.sqrt(0.30), abs=1e-12)
+    assert res[("A", "B")] == pytest.approx((0.8 / 6) / math.sqrt(0.30), abs=1e-12)
     assert res[("A", "C")] == pytest.approx(0.5 / math.sqrt(0.48), abs=1e-12)
     assert res[("B", "C")] == pytest.approx(0.4 / math.sqrt(0.40), abs=1e-12)
 
@@ -72,7 +72,7 @@ def test_htmt_undefined_pairs_are_none(small_corr):
     bad.loc["c1", "c2"] = bad.loc["c2", "c1"] = -0.2  # monotrait mean of C <= 0
     res = htmt(bad, BLOCKS)
     assert res[("A", "C")] is None and res[("B", "C")] is None
-    assert res[("A", "B")] == pytest.approx(0.2 / math.sqrt(0.30), abs=1e-12)
+    assert res[("A", "B")] == pytest.approx((0.8 / 6) / math.sqrt(0.30), abs=1e-12)
     # A single-item construct has no monotrait correlation.
     single = htmt(small_corr, {"A": ["a1", "a2"], "D": ["c1"]})
     assert single[("A", "D")] is None
@@ -107,3 +107,23 @@ def test_fornell_larcker_hand_worked():
     assert res[("A", "C")]["holds"] is None and res[("A", "C")]["ave_b"] is None
     assert res[("B", "D")]["holds"] is None and res[("B", "D")]["r_squared"] is None
     assert res[("B", "A2")]["holds"] is True
+
+
+def test_htmt_sign_of_the_association_is_dropped(small_corr):
+    # A negative association (every heterotrait correlation reversed) gives the same HTMT.
+    neg = small_corr.copy()
+    for a in BLOCKS["A"]:
+        for c in BLOCKS["C"]:
+            neg.loc[a, c] = neg.loc[c, a] = -neg.loc[a, c]
+    assert htmt(neg, BLOCKS)[("A", "C")] == pytest.approx(htmt(small_corr, BLOCKS)[("A", "C")])
+
+
+def test_htmt2_hand_worked(small_corr):
+    # Roemer, Schuberth & Henseler (2021) formula, worked by hand with geometric means:
+    # A-C: every heterotrait r .5 -> .5 / sqrt(.6 * .8) (= HTMT when all correlations are equal);
+    # B-C: .4 / sqrt(geomean(.5, .4, .6) * .8); A-B has heterotrait correlations of both signs: None.
+    res = htmt2(small_corr, BLOCKS)
+    assert res[("A", "C")] == pytest.approx(0.5 / math.sqrt(0.6 * 0.8), abs=1e-12)
+    gb = (0.5 * 0.4 * 0.6) ** (1 / 3)
+    assert res[("B", "C")] == pytest.approx(0.4 / math.sqrt(gb * 0.8), abs=1e-12)
+    assert res[("A", "B")] is None

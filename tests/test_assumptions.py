@@ -1,0 +1,148 @@
+"""The assumption checks behind the corrections (measurement.assumptions), each rule on
+simulated surveys whose truth is known by construction (measurement.simulate), and the
+choice of the preferred estimate and its bounds that follow from them.
+
+The rules' sources: the marker's role as method proxy (Lindell & Whitney 2001; Williams,
+Hartman & Cavazotte 2010) and its failure when the marker does not carry the method
+(Richardson, Simmering & Sturman 2009); answer categories (Rhemtulla, Brosseau-Liard &
+Savalei 2012) and skew/kurtosis (Curran, West & Finch 1996) for items_continuous; the
+rest are our own stated rules (docs/methods.md, "Assumption checks").
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from measurement.assumptions import Assumption, checks_agree, estimate_stable
+from measurement.method_variance import concentration
+from measurement.pipeline import analyze
+from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+
+TRUE_SUP = 0.30  # eng on sup in every survey below
+
+
+def survey(*, marker_method: float, method: float = 0.35, measured: bool = False, n: int = 1000,
+           seed: int = 0, scale_points: int | None = 7, loading: float = 0.7) -> SurveySpec:
+    cons = [ConstructSpec("sup", 4, loading, method), ConstructSpec("eng", 4, loading, method),
+            ConstructSpec("stay", 3, loading, method, prefix="sty"),
+            ConstructSpec("wth", 3, 0.7, marker_method, role="marker")]
+    if measured:
+        cons.append(ConstructSpec("imp", 4, 0.65, role="method"))
+    return SurveySpec(constructs=cons, paths={"eng": {"sup": TRUE_SUP}, "stay": {"eng": 0.45}}, n=n,
+                      scale_points=scale_points, seed=seed)
+
+
+def report_of(spec: SurveySpec, **options) -> dict:
+    df, _ = simulate_survey(spec)
+    opts = {"bootstrap": 0, **options}
+    return analyze(df.to_csv(index=False).encode(), design_for(spec), opts, name="sim.csv").report
+
+
+def status(report: dict, id_: str) -> str:
+    return next(a for a in report["assumptions"] if a["id"] == id_)["status"]
+
+
+def path(report: dict, outcome: str, predictor: str) -> dict:
+    return next(p for p in report["paths"] if p["outcome"] == outcome and p["predictor"] == predictor)
+
+
+@pytest.fixture(scope="module")
+def marker_without_method_measured():
+    # Truth: every substantive item 0.70 trait + 0.35 method (share .1225); the marker none;
+    # a measured method scale loads .65 on the method.
+    return report_of(survey(marker_method=0.0, measured=True, seed=3))
+
+
+@pytest.fixture(scope="module")
+def marker_without_method_alone():
+    return report_of(survey(marker_method=0.0, seed=4))
+
+
+def test_marker_without_the_method_fails_when_a_method_scale_finds_it(marker_without_method_measured):
+    r = marker_without_method_measured
+    assert status(r, "marker_carries_method") == "fails"
+    assert r["method_variance"]["verdict"]["level"] == "substantial"   # from the method scale
+    p = path(r, "eng", "sup")
+    assert p["preferred"] == "measured_method_adjusted"                 # marker-based ones are kept out
+    assert p["estimates"]["measured_method_adjusted"]["estimate"] == pytest.approx(TRUE_SUP, abs=0.06)
+    assert p["bounds"]["share_source"] == "estimated"
+    assert p["bounds"]["low"] <= TRUE_SUP <= p["bounds"]["high"]
+
+
+def test_marker_that_finds_nothing_alone_is_untestable_not_a_pass(marker_without_method_alone):
+    r = marker_without_method_alone
+    assert status(r, "marker_carries_method") == "untestable"
+    assert r["method_variance"]["verdict"]["level"] in ("undetermined", "minor", "substantial")
+    assert r["method_variance"]["verdict"]["level"] != "none"
+    p = path(r, "eng", "sup")
+    # the published range of method shares bounds the path, and the truth lies inside
+    assert p["bounds"]["share_source"] == "published"
+    assert p["bounds"]["low"] <= TRUE_SUP <= p["bounds"]["high"]
+    assert p["trust"]["level"] in ("medium", "low")
+
+
+def test_marker_carrying_the_method_holds_and_recovers_the_truth():
+    r = report_of(survey(marker_method=0.35, measured=True, seed=5))
+    assert status(r, "marker_carries_method") == "holds"
+    p = path(r, "eng", "sup")
+    assert p["preferred"] == "method_factor_adjusted"
+    assert p["estimates"]["method_factor_adjusted"]["estimate"] == pytest.approx(TRUE_SUP, abs=0.06)
+    assert p["bounds"]["low"] <= TRUE_SUP <= p["bounds"]["high"]
+
+
+def test_method_orthogonal_is_never_said_to_hold(marker_without_method_alone):
+    assert status(marker_without_method_alone, "method_orthogonal") == "untestable"
+
+
+def test_skewed_few_category_items_are_doubtful_and_use_robust_standard_errors():
+    # 3-point answers of skewed items (few categories: Rhemtulla et al. 2012)
+    spec = survey(marker_method=0.35, scale_points=3, n=800, seed=6)
+    r = report_of(spec)
+    a = next(a for a in r["assumptions"] if a["id"] == "items_continuous")
+    assert a["status"] in ("doubtful", "fails")
+    e = path(r, "eng", "sup")["estimates"]["latent"]
+    assert e["se_robust"] is not None and e["se_method"] == "robust"
+    assert e["se"] == e["se_robust"]
+
+
+def test_continuous_items_hold():
+    r = report_of(survey(marker_method=0.35, scale_points=None, n=600, seed=8))
+    assert status(r, "items_continuous") == "holds"
+
+
+def test_concentration_rule():
+    # our rule: a construct with under a tenth of the most affected construct's share
+    assert concentration({"a": 0.30, "b": 0.25, "c": 0.01})["concentrated"]
+    assert not concentration({"a": 0.20, "b": 0.08, "c": 0.05})["concentrated"]
+
+
+def _mv(mf_share: float | None, mm_share: float | None) -> dict:
+    mv = {"method_factor": {"usable_as_correction": mf_share is not None, "method_share": mf_share,
+                            "identified_by": "marker"}, "cfa_marker": None}
+    mv["measured_method"] = (None if mm_share is None else
+                             {"status": "ok", "method_share": mm_share, "method_construct": "imp"})
+    return mv
+
+
+def test_checks_agree_rule():
+    assert checks_agree(_mv(0.12, 0.11), "holds").status == "holds"
+    assert checks_agree(_mv(0.02, 0.15), "holds").status == "doubtful"     # .15 vs .02
+    assert checks_agree(_mv(0.12, None), "holds").status == "untestable"   # one check only
+    # a marker that could not be vouched for does not take part
+    assert checks_agree(_mv(0.01, 0.12), "untestable").status == "untestable"
+
+
+def test_estimate_stable_demotes_an_estimate_whose_bootstrap_fails_often():
+    paths = [{"outcome": "eng", "predictor": "sup", "estimates": {
+        "method_factor_adjusted": {"status": "ok", "bootstrap": {"n_boot": 300, "n_failed": 99}},
+        "latent": {"status": "ok", "bootstrap": {"n_boot": 300, "n_failed": 2}, "se_ratio": 1.05},
+    }}]
+    a = estimate_stable(paths)
+    assert a.by_estimate == {"method_factor_adjusted": "fails", "latent": "holds"}
+    assert a.blocks("method_factor_adjusted") and not a.blocks("latent")
+
+
+def test_doubtful_with_a_remedy_does_not_block():
+    a = Assumption("items_continuous", "doubtful", "m", [], ["latent"], "r", "s", remedy="robust SEs")
+    b = Assumption("method_loadings", "doubtful", "m", [], ["method_factor_adjusted"], "r", "s")
+    assert not a.blocks("latent") and b.blocks("method_factor_adjusted") and not b.blocks("latent")
