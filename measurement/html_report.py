@@ -275,6 +275,8 @@ def checks_strip(report: dict) -> str:
             detail.append(f"Rule: {h(a['rule'])}")
         if a.get("source"):
             detail.append(f"Source: {h(a['source'])}")
+        if a.get("remedy"):
+            detail.append(f"What would settle it: {h(a['remedy'])}")
         body = "".join(f"<p>{x}</p>" for x in detail)
         rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.get("message") or a.get("id"))}</span></summary>'
                     f'<div class="detail">{body or "<p>No further detail.</p>"}</div></details></li>')
@@ -336,6 +338,10 @@ def paths_section(report: dict, figs: Figures | None = None) -> str:
         if len(preds) > 1:
             out.append(f'<p class="sub">Estimated in the equation of {h(p.get("outcome"))} with all its predictors: '
                        f'{", ".join(h(x) for x in preds)}.</p>')
+        if _get(p, "bounds", "basis"):
+            b = p["bounds"]
+            out.append(f'<p class="sub">Range over the plausible amounts of shared method: {num(b.get("low"))} to '
+                       f'{num(b.get("high"))} ({h(b["basis"])}).</p>')
         if p.get("preferred_reason"):
             out.append(f'<p class="why">Why {h(method_label(str(p.get("preferred") or "")))} leads: '
                        f'{h(p["preferred_reason"])}.</p>')
