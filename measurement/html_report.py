@@ -11,14 +11,31 @@ Every string from the report is HTML-escaped: construct and item names come from
 
 from __future__ import annotations
 
-import math
+import base64
+import re
 from collections.abc import Iterable, Sequence
+from functools import lru_cache
 from html import escape
+from pathlib import Path
 from typing import Any
 
+import jinja2
+from markupsafe import Markup
+
 from . import svg
+from .decision import (
+    IMPRECISE_WIDTH,
+    STATUS_LABELS,
+    STATUS_SYMBOLS,
+    Decision,
+    decision,
+    num,
+    too_imprecise,
+)
+from .decision import finite as _finite
 from .tables import (
     CHECK_LABELS,
+    METHOD_LABELS,
     absent_reason,
     meets,
     method_check_rows,
@@ -47,20 +64,6 @@ def h(s: Any) -> str:
     if isinstance(s, float):
         return num(s)
     return escape(str(s), quote=True)
-
-
-def _finite(v: Any) -> bool:
-    return isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v)
-
-
-def num(v: Any, d: int = 3) -> str:
-    """A number with ``d`` decimals and a true minus sign; a dash when there is none."""
-    if not _finite(v):
-        return DASH
-    s = f"{v:.{d}f}"
-    if float(s) == 0:
-        s = s.lstrip("-")  # no "-0.000"
-    return s.replace("-", MINUS)
 
 
 def signed(v: Any, d: int = 3) -> str:
@@ -101,7 +104,7 @@ def est_ci(e: dict | None) -> str:
 def threshold_text(th: dict | None, d: int = 2) -> str:
     if not th or not _finite(th.get("value")):
         return ""
-    return f"{DIRECTION.get(th.get('direction', '>='), th.get('direction', ''))} {num(th['value'], d)}"
+    return escape(f"{DIRECTION.get(th.get('direction', '>='), th.get('direction', ''))} {num(th['value'], d)}")
 
 
 def mark(ok: bool | None, fail_word: str = "below threshold", ok_word: str = "meets threshold") -> str:
@@ -167,16 +170,47 @@ class Figures:
 
 
 def figure(svg_markup: str, caption: str, ident: str) -> str:
-    return f'<figure id="{ident}">{svg_markup}<figcaption>{caption}</figcaption></figure>'
+    """A figure with its caption and, for each chart in it, downloads as SVG and PNG (no script)."""
+    return (f'<figure id="{ident}">{svg_markup}<figcaption>{caption}'
+            f'{downloads(svg_markup, ident)}</figcaption></figure>')
+
+
+def downloads(svg_markup: str, ident: str) -> str:
+    """data: links that save each chart as a file: the SVG itself, and a PNG drawn here.
+
+    The page runs no script (its content security policy forbids it), so both files travel in
+    the page: the SVG as base64 text, the PNG rasterised at render time (cairosvg, twice the
+    chart's size for print).
+    """
+    charts = re.findall(r"<svg\b.*?</svg>", svg_markup, flags=re.S)
+    links = []
+    for i, chart in enumerate(charts):
+        name = ident if len(charts) == 1 else f"{ident}-{i + 1}"
+        standalone = svg.standalone(chart)
+        part = f" (panel {i + 1})" if len(charts) > 1 else ""
+        links.append(f'<a download="{name}.svg" href="data:image/svg+xml;base64,'
+                     f'{base64.b64encode(standalone.encode()).decode()}">SVG{part}</a>')
+        png = svg.to_png(standalone)
+        if png is not None:
+            links.append(f'<a download="{name}.png" href="data:image/png;base64,{base64.b64encode(png).decode()}">'
+                         f'PNG{part}</a>')
+        else:
+            links.append(f"PNG{part} not available (the cairo library is missing where this page was made)")
+    if not links:
+        return ""
+    return '<span class="downloads">Download this chart: ' + SEP.join(links) + "</span>"
 
 
 def dl(items: Iterable[tuple[str, str]]) -> str:
     return '<dl class="facts">' + "".join(f"<dt>{k}</dt><dd>{v}</dd>" for k, v in items) + "</dl>"
 
 
-def section(ident: str, title: str, body: str, *, major: bool = True) -> str:
+def section(ident: str, title: str, body: str, *, major: bool = True, hint: str = "", open_: bool = False) -> str:
+    """A named section of detail, collapsed behind its title (``<details>``: no script needed)."""
     cls = ' class="major"' if major else ""
-    return f'<section id="{ident}"{cls} aria-labelledby="{ident}-h"><h2 id="{ident}-h">{title}</h2>{body}</section>'
+    hint_html = f'<span class="hint">{hint}</span>' if hint else ""
+    return (f'<section id="{ident}"{cls} aria-labelledby="{ident}-h"><details{" open" if open_ else ""}>'
+            f'<summary><h2 id="{ident}-h">{title}</h2>{hint_html}</summary>{body}</details></section>')
 
 
 def path_title(p: dict) -> str:
@@ -188,65 +222,6 @@ def _path_plain(p: dict) -> str:
 
 
 # --------------------------------------------------------------------------- the answer
-
-def _answer_for_path(report: dict, p: dict) -> str:
-    est = p.get("estimates") or {}
-    pref_key = p.get("preferred")
-    pref = est.get(pref_key) if pref_key else None
-    obs, lat = est.get("observed"), est.get("latent")
-    conf = _conf(report)
-    o = obs.get("estimate") if obs else None
-    la = lat.get("estimate") if lat else None
-    pr = pref.get("estimate") if pref else None
-
-    lead = (f'<p class="lead-number">Preferred estimate: <strong class="big">{num(pr)}</strong> '
-            f'{interval((pref or {}).get("ci"))} <span class="sub">({h(method_label(pref_key or ""))}; '
-            f'{conf} interval, {h(CI_METHOD.get((pref or {}).get("ci_method"), (pref or {}).get("ci_method")))})'
-            f'</span></p>') if _finite(pr) else '<p class="lead-number">No estimate could be computed for this path.</p>'
-
-    s: list[str] = []
-    if _finite(o):
-        s.append(f"Taken at face value the survey gives <strong>{est_ci(obs)}</strong> (observed, scale means).")
-    if pref_key in ("observed", None) or not _finite(pr):
-        s.append("No corrected estimate could be computed, so neither bias has been removed.")
-    elif pref_key == "latent" or not _finite(la):
-        if _finite(la) and _finite(o):
-            s.append(f"Correcting for unreliability moves it to {num(la)} ({signed(round(la, 3) - round(o, 3))}, "
-                     f"latent model).")
-        s.append("No shared-method correction passed its checks, so the preferred estimate corrects unreliability "
-                 "only: shared method, if present, is still in it, and whether it outweighs unreliability here is "
-                 "not known.")
-    else:
-        # differences of the printed (rounded) numbers, so the sentence adds up as read
-        gap_u = round(la, 3) - round(o, 3) if _finite(o) else None
-        gap_m = round(pr, 3) - round(la, 3)
-        if gap_u is not None:
-            s.append(f"Correcting for unreliability alone moves it to {num(la)} ({signed(gap_u)}, latent model); "
-                     f"correcting also for shared method moves it to {num(pr)} ({signed(gap_m)}).")
-            if abs(gap_m) > abs(gap_u):
-                driver = "Shared method dominated: its correction is larger than the unreliability correction"
-            else:
-                driver = "Unreliability dominated: its correction is larger than the shared-method correction"
-            if _finite(o) and pr * o < 0 and abs(o) > 0.005:
-                net = "the corrected estimate has the opposite sign of the observed one"
-            elif abs(pr) < abs(o):
-                net = "the observed estimate overstates the association"
-            elif abs(pr) > abs(o):
-                net = "the observed estimate understates the association"
-            else:
-                net = "the two biases about cancel out in the observed estimate"
-            s.append(f"{driver}, so {net}.")
-        else:
-            s.append(f"Correcting for shared method moves the latent estimate {num(la)} to {num(pr)} ({signed(gap_m)}).")
-    ci = (pref or {}).get("ci")
-    if isinstance(ci, list) and len(ci) == 2 and all(_finite(x) for x in ci):
-        s.append("The interval includes zero: the data are also consistent with no association."
-                 if ci[0] <= 0 <= ci[1] else "The interval excludes zero.")
-    s.append(_sensitivity_sentence(p.get("sensitivity") or {}))
-    why = p.get("preferred_reason")
-    return (f'<div class="answer-path"><h3>{path_title(p)}</h3>{lead}<p>{" ".join(x for x in s if x)}</p>'
-            + (f'<p class="why">Why this estimate leads: {h(why)}.</p>' if why else "") + "</div>")
-
 
 def _sensitivity_sentence(s: dict) -> str:
     be, cz = s.get("break_even_method_share"), s.get("ci_covers_zero_at")
@@ -272,28 +247,45 @@ def _verdict_box(report: dict) -> str:
         return ('<div class="verdict level-unknown"><h3 class="verdict-title">Common-method variance: '
                 'not assessed</h3><p>The report has no method-variance verdict.</p></div>')
     level = str(v.get("level") or "unknown")
-    raised = v.get("raised_by") or []
-    extra = ("<p>Raised by:</p><ul>" + "".join(f"<li>{h(r)}</li>" for r in raised) + "</ul>") if raised else ""
     return (f'<div class="verdict level-{h(level)}"><h3 class="verdict-title">Common-method variance: '
-            f'<span class="level-word">{h(level.upper())}</span></h3><p>{h(v.get("summary"))}</p>{extra}'
-            f'<p class="sub">The rules behind the verdict are in <a href="#method-variance">the common-method '
-            f'checks</a>.</p></div>')
+            f'<span class="level-word">{h(level.upper())}</span></h3><p>{h(v.get("summary"))}'
+            f' <span class="sub">What raised it, and the rules: <a href="#method-variance">the common-method '
+            f'checks</a>.</span></p></div>')
 
 
-def answer_section(report: dict) -> str:
-    paths = report.get("paths") or []
-    intro = ('<p>Two biases pull an association between scales answered by the same people in one '
-             'questionnaire in opposite directions: measurement error (unreliability) shrinks it, and shared '
-             'method (same person, same moment, same response style) inflates it. Each key path below is shown '
-             'as observed and with both corrected. Estimates are standardized coefficients.</p>')
-    if paths:
-        body = "".join(_answer_for_path(report, p) for p in paths)
-    else:
-        intro = ""
-        body = ('<p class="note">The design declares no key paths, so there are no path estimates; the '
-                'reliability, validity and common-method checks follow.</p>')
-    return (f'<section id="answer" aria-labelledby="answer-h"><h2 id="answer-h">The answer in brief</h2>{intro}'
-            f'{_verdict_box(report)}{body}</section>')
+def checks_strip(report: dict) -> str:
+    """The assumption checks, before any estimate: status and one plain sentence each; evidence,
+    rule and source one click below."""
+    checks = [a for a in report.get("assumptions") or [] if isinstance(a, dict)]
+    if not checks:
+        return ""
+    rows = []
+    for a in checks:
+        st = str(a.get("status") or "")
+        badge = (f'<span class="st st-{h(st)}"><span aria-hidden="true">{h(STATUS_SYMBOLS.get(st, ""))}</span> '
+                 f'{h(STATUS_LABELS.get(st, st or "not stated"))}</span>')
+        detail = []
+        ev = [e for e in a.get("evidence") or [] if e]
+        if ev:
+            detail.append("Evidence: " + "; ".join(h(e) for e in ev) + ".")
+        aff = [method_label(str(m)) for m in a.get("affects") or [] if m]
+        if aff:
+            detail.append("Estimates resting on it: " + ", ".join(h(m) for m in aff) + ".")
+        if a.get("rule"):
+            detail.append(f"Rule: {h(a['rule'])}")
+        if a.get("source"):
+            detail.append(f"Source: {h(a['source'])}")
+        if a.get("remedy"):
+            detail.append(f"What would settle it: {h(a['remedy'])}")
+        body = "".join(f"<p>{x}</p>" for x in detail)
+        rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.get("message") or a.get("id"))}</span></summary>'
+                    f'<div class="detail">{body or "<p>No further detail.</p>"}</div></details></li>')
+    return ('<div class="checks-strip" id="assumptions"><h3>What the answer rests on: the assumption checks</h3>'
+            f'<ul>{"".join(rows)}</ul></div>')
+
+
+def decisions_of(report: dict) -> list[Decision]:
+    return [decision(p, labels=METHOD_LABELS) for p in report.get("paths") or [] if isinstance(p, dict)]
 
 
 def cautions_section(report: dict, ident: str, title: str) -> str:
@@ -346,6 +338,13 @@ def paths_section(report: dict, figs: Figures | None = None) -> str:
         if len(preds) > 1:
             out.append(f'<p class="sub">Estimated in the equation of {h(p.get("outcome"))} with all its predictors: '
                        f'{", ".join(h(x) for x in preds)}.</p>')
+        if _get(p, "bounds", "basis"):
+            b = p["bounds"]
+            out.append(f'<p class="sub">Range over the plausible amounts of shared method: {num(b.get("low"))} to '
+                       f'{num(b.get("high"))} ({h(b["basis"])}).</p>')
+        if p.get("preferred_reason"):
+            out.append(f'<p class="why">Why {h(method_label(str(p.get("preferred") or "")))} leads: '
+                       f'{h(p["preferred_reason"])}.</p>')
         out.append(figure(chart, cap, ident) + "</div>")
         out.append(_estimates_table(report, p, common))
     return section("paths", "Key paths under every correction", "".join(out))
@@ -438,7 +437,8 @@ def sensitivity_section(report: dict, figs: Figures | None = None) -> str:
         if _finite(be):
             markers.append(svg.Marker(be, f"break-even {pct(be)}", "break_even"))
         ident = f"sensitivity-{i + 1}"
-        out.append(f'<div class="keep"><h3 id="sensitivity-path-{i + 1}">{path_title(p)}</h3>')
+        out.append(f'<div class="keep"><h3 id="sensitivity-path-{i + 1}">{path_title(p)}</h3>'
+                   f'<p>{h(_sensitivity_sentence(s))}</p>')
         facts = [("Break-even method share", pct(be) if _finite(be) else "none within the range the model can hold"),
                  ("Interval first covers zero at", pct(cz) if _finite(cz) else "not within the range tested"),
                  ("Method share the checks estimated", pct(est) if _finite(est) else
@@ -450,15 +450,27 @@ def sensitivity_section(report: dict, figs: Figures | None = None) -> str:
             continue
         desc = (f"Estimate from {num(curve[0][1])} at 0% to {num(curve[-1][1])} at {pct(curve[-1][0])}. "
                 + "; ".join(f"{k}: {v}" for k, v in facts))
+        marks = s.get("marks") if isinstance(s.get("marks"), dict) else {}
+        published = _pair_or_none(marks.get("published_range"))
+        est_ci = _pair_or_none(marks.get("estimated_share_ci"))
+        published = published if published[0] is not None else None
+        est_ci = est_ci if est_ci[0] is not None else None
+        if published:
+            facts.append(("Method shares published reviews report", f"{pct(published[0])} to {pct(published[1])}"))
+        if est_ci:
+            facts.append(("Interval of the estimated share", f"{pct(est_ci[0])} to {pct(est_ci[1])}"))
         chart = svg.sensitivity_plot(curve, markers=markers, holds_up_to=holds if _finite(holds) else None,
                                      ident=f"{ident}-svg", title=f"Sensitivity of {_path_plain(p)} to shared method",
-                                     desc=desc)
+                                     desc=desc, published=published, estimated_ci=est_ci)
         cap = (f"<strong>Figure {figs.next()}.</strong> {path_title(p)}: the estimate (line) and its "
                f"{_conf(report)} interval (band) for each assumed method share. What to look for: the share the "
                f"checks estimated (solid orange line) well left of the break-even share (dashed line, where the "
                f"estimate reaches zero) means shared method of the size found cannot explain the association away. "
                f"Dotted line: where the interval first covers zero. Grey area: more method variance than the model "
-               f"can hold." + (f" {h(s.get('meaning'))}" if s.get("meaning") and s.get("meaning") != shared else ""))
+               f"can hold." + (" Hatched: the range of method shares published reviews report, for when the survey's own "
+                                 "estimate cannot be vouched for; the orange bar on the axis: the estimated share's "
+                                 "interval." if published or est_ci else "")
+               + (f" {h(s.get('meaning'))}" if s.get("meaning") and s.get("meaning") != shared else ""))
         out.append(figure(chart, cap, ident))
         out.append(dl(facts) + "</div>")
         pts = [[pct(c[0]), num(c[1]), interval([c[2], c[3]])] for c in curve]
@@ -477,64 +489,80 @@ def _pair_or_none(ci: Any) -> tuple[float | None, float | None]:
 
 # --------------------------------------------------------------------------- reliability and loadings
 
-RELIABILITY = (("alpha", "Cronbach's alpha"), ("omega", "Omega"), ("composite_reliability", "Composite reliability"),
-               ("ave", "AVE"))
+RELIABILITY = (("alpha", "alpha"), ("omega", "omega"), ("composite_reliability", "CR"), ("ave", "AVE"))
+ROLE_WORDS = {"marker": "marker scale", "method": "method scale"}
+
+
+def _closest(name: str, names: list[str], htmt: dict) -> tuple[str, float] | None:
+    found = [(o, pair(htmt, name, o)) for o in names if o != name]
+    found = [(o, v) for o, v in found if _finite(v)]
+    return max(found, key=lambda t: t[1]) if found else None
+
+
+def _scale_card(name: str, c: dict, names: list[str], report: dict) -> str:
+    th = report.get("thresholds") or {}
+    mm = report.get("measurement_model") or {}
+    alpha, ave = c.get("alpha"), c.get("ave")
+    ok_a, ok_ave = meets(alpha, th.get("alpha")), meets(ave, th.get("ave"))
+    if ok_a is None:
+        consistency = "Consistency could not be computed."
+    elif ok_a:
+        consistency = "Its answers hang together well enough to be added into one score."
+    else:
+        consistency = "Its answers do not hang together well enough to be read as one score."
+    if ok_ave is False:
+        consistency += " Its items carry more error than shared signal."
+    close = _closest(name, names, mm.get("htmt") or {})
+    if close is None:
+        distinct = "How distinct it is from the other scales could not be computed."
+    else:
+        other, v = close
+        strict, liberal = meets(v, th.get("htmt_strict")), meets(v, th.get("htmt_liberal"))
+        if strict is not False:
+            distinct = f"Clearly distinct from the other scales; the closest is {h(other)}."
+        elif liberal is not False:
+            distinct = f"Close to {h(other)}: distinct by the liberal threshold only."
+        else:
+            distinct = f"Too close to {h(other)} to be told apart."
+    stats = []
+    for key, label in RELIABILITY:
+        v = c.get(key)
+        t = th.get(key)
+        val = num(v) + (" " + interval(c.get("alpha_ci")) if key == "alpha" and interval(c.get("alpha_ci")) != DASH
+                        else "")
+        if key == "omega" and not _finite(v):
+            val += " (needs 3 items)" if len(c.get("items") or []) < 3 else " (not available)"
+        ok = meets(v, t) if _finite(v) else None
+        stats.append(f"{label} {val}" + (f" ({threshold_text(t)})" if t else "")
+                     + mark(ok, f"below {threshold_text(t)}"))
+    if close is not None:
+        stats.append(f"highest HTMT {num(close[1])} with {h(close[0])} ({threshold_text(th.get('htmt_strict'))})")
+    stats.append(f"{count(len(c.get('items') or []))} items, n {count(c.get('n'))}")
+    weak = ok_a is False or (close is not None and meets(close[1], th.get("htmt_liberal")) is False)
+    role = ROLE_WORDS.get(str(c.get("role") or ""), "")
+    return (f'<div class="card{" weak" if weak else ""}" data-scale="{h(name)}"><h3>{h(name)}'
+            + (f' <span class="sub">({h(role)})</span>' if role else "") + "</h3>"
+            f"<p>{consistency}</p><p>{distinct}</p><p class=\"stats\">{SEP.join(stats)}</p></div>")
 
 
 def reliability_section(report: dict, figs: Figures | None = None) -> str:
-    figs = figs or Figures()
     constructs = report.get("constructs") or {}
     th = report.get("thresholds") or {}
+    title = "How well each scale measures"
     if not constructs:
-        return section("reliability", "Reliability and validity of each scale",
-                       '<p class="note">The report has no construct results.</p>')
+        return section("reliability", title, '<p class="note">The report has no construct results.</p>')
     names = list(constructs)
-    panels = []
-    for key, title in RELIABILITY:
-        vals = [c.get(key) if _finite(c.get(key)) else None for c in constructs.values()]
-        passes = [meets(v, th.get(key)) for v in vals]
-        texts = [(num(v) + (f" {PASS}" if ok else f" {FAIL}" if ok is False else "")) if v is not None else DASH
-                 for v, ok in zip(vals, passes, strict=True)]
-        intervals = [_pair_or_none(c.get("alpha_ci")) if key == "alpha" else (None, None) for c in constructs.values()]
-        intervals = [iv if iv[0] is not None else None for iv in intervals]
-        t = th.get(key)
-        panels.append(svg.Panel(f"{title} ({threshold_text(t)})" if t else title,
-                                t.get("value") if t else None, num(t.get("value"), 2) if t else "",
-                                vals, texts, passes, intervals))
-    charts = []
-    for k, panel in enumerate(panels):
-        desc = "; ".join(f"{n}: {tx}" + (" (meets the threshold)" if ok else " (below the threshold)" if ok is False
-                                          else "") for n, tx, ok in zip(names, panel.texts, panel.passes, strict=True))
-        charts.append(svg.reliability_panel(names, panel, ident=f"reliability-{k + 1}-svg", desc=desc))
-    chart = '<div class="panels">' + "".join(charts) + "</div>"
-    cap = (f"<strong>Figure {figs.next()}.</strong> Reliability of each scale, one panel per measure. What to look for: "
-           "every dot right of the dashed "
-           f"threshold line. A filled dot and {PASS} meet the threshold; a hollow triangle and {FAIL} fall below it. "
-           "The line through the alpha dot is its interval (Feldt). Thresholds: "
-           + "; ".join(f"{t} {threshold_text(th.get(k))}, {h(_get(th, k, 'source'))}" for k, t in RELIABILITY if th.get(k))
-           + ".")
-    rows = []
-    for n, c in constructs.items():
-        cells = [h(n), h(c.get("role")), count(len(c.get("items") or [])), count(c.get("n"))]
-        for key, _ in RELIABILITY:
-            v = c.get(key)
-            cell = num(v) + (mark(meets(v, th.get(key)), f"below {threshold_text(th.get(key))}") if _finite(v) else "")
-            if key == "alpha" and interval(c.get("alpha_ci")) != DASH:
-                cell += f' <span class="sub">{interval(c.get("alpha_ci"))}</span>'
-            if key == "omega" and not _finite(v):
-                cell = DASH + ' <span class="sub">(not available: needs 3 items)</span>' if len(c.get("items") or []) < 3 \
-                    else DASH + ' <span class="sub">(not available)</span>'
-            cells.append(cell)
-        rows.append(cells)
-    short = {"alpha": "Alpha", "omega": "Omega", "composite_reliability": "CR", "ave": "AVE"}
-    head = ["Construct", "Role", "Items", "n"] + [
-        f'{short[k]}<br><span class="sub">{threshold_text(th.get(k))}</span>' if th.get(k) else short[k]
-        for k, _ in RELIABILITY]
-    tbl = table(head, rows, caption=f"Reliability per construct (n: complete answers; CR: composite reliability; {PASS} meets the "
-                        f"threshold, {FAIL} below it; alpha's interval in brackets)",
-                numeric=(2, 3, 4, 5, 6, 7), cls="reliability")
-    return section("reliability", "Reliability and validity of each scale",
-                   figure(chart, cap, "reliability-figure") + tbl)
+    cards = "".join(_scale_card(n, c, names, report) for n, c in constructs.items() if isinstance(c, dict))
+    sources = "; ".join(f"{label} {threshold_text(th.get(k))}: {h(_get(th, k, 'source'))}"
+                        for k, label in RELIABILITY + (("htmt_strict", "HTMT"),) if th.get(k))
+    body = ('<p>One card per scale: whether its answers hang together (consistency) and whether it measures '
+            'something the other scales do not (distinctness). The statistics and their thresholds are in small '
+            f'print: {PASS} meets the threshold, {FAIL} falls below it.</p>'
+            f'<div class="cards">{cards}</div>'
+            f'<p class="sub">alpha: Cronbach\'s alpha with its interval (Feldt); omega: McDonald\'s omega; CR: '
+            f'composite reliability; AVE: average variance extracted; HTMT: heterotrait-monotrait ratio. '
+            f'Thresholds: {sources}.</p>')
+    return section("reliability", title, body, hint="consistency and distinctness, one card per scale")
 
 
 def _item_method_loadings(report: dict) -> list[tuple[str, dict]]:
@@ -688,13 +716,24 @@ def _fit_summary(fit: dict | None) -> str:
             f"RMSEA {num(fit.get('rmsea'))}, SRMR {num(fit.get('srmr'))}")
 
 
+# The method-factor models by what they assume (descriptive names of ours; the sequence of
+# models is that of Williams, Hartman & Cavazotte 2010 and Podsakoff et al. 2003).
+MODEL_NAMES = {"measurement": "measurement model", "without_method": "no shared method",
+               "baseline": "no shared method", "equal": "equal shared method", "free": "free shared method",
+               "equal_held": "equal shared method, correlations held", "free_held": "free shared method, correlations held"}
+
+
+def model_name(key: str | None) -> str | None:
+    return MODEL_NAMES.get(key, key.replace("_", " ")) if key else None
+
+
 def _models_table(models: dict, caption: str) -> str:
     rows = []
     for k, m in models.items():
         if not isinstance(m, dict):
             continue
         f = m.get("fit") or {}
-        rows.append([h(k.replace("_", " ")), h(m.get("description")), h(m.get("status")), num(f.get("chi2"), 2),
+        rows.append([h(model_name(k)), h(m.get("description")), h(m.get("status")), num(f.get("chi2"), 2),
                      count(f.get("df")), num(f.get("cfi")), num(f.get("rmsea")), num(f.get("srmr"))])
     return table(["Model", "Description", "Status", "Chi-square", "df", "CFI", "RMSEA", "SRMR"], rows,
                  caption=caption, numeric=(3, 4, 5, 6, 7))
@@ -705,7 +744,8 @@ def _tests_table(tests: dict, caption: str) -> str:
     for k, t in tests.items():
         if not isinstance(t, dict):
             continue
-        rows.append([h(t.get("question") or k.replace("_", " ")), h(t.get("restricted")), h(t.get("general")),
+        rows.append([h(t.get("question") or k.replace("_", " ")), h(model_name(t.get("restricted"))),
+                     h(model_name(t.get("general"))),
                      num(t.get("chi2_diff"), 2), count(t.get("df_diff")), pval(t.get("p"))])
     return table(["Test", "Restricted model", "General model", "Chi-square difference", "df", "p"], rows,
                  caption=caption, numeric=(3, 4, 5))
@@ -775,7 +815,7 @@ def _marker_detail(report: dict, s: dict) -> str:
 
 
 def _cfa_detail(report: dict, s: dict) -> str:
-    out = dl([("Model chosen", h(s.get("chosen"))),
+    out = dl([("Model chosen", h(model_name(s.get("chosen")))),
               ("Method share of item variance (overall)", pct(s.get("method_share_overall")))])
     if isinstance(s.get("models"), dict):
         out += _models_table(s["models"], "CFA marker technique: models")
@@ -820,11 +860,29 @@ def _vif_detail(report: dict, s: dict) -> str:
 # --------------------------------------------------------------------------- measurement model
 
 FIT_ROWS = (("cfi", "CFI"), ("tli", "TLI"), ("rmsea", "RMSEA"), ("srmr", "SRMR"))
+COUNT_WORDS = {0: "none", 1: "one", 2: "two", 3: "three", 4: "all four"}
+
+
+def fit_sentence(fit: dict, th: dict) -> str:
+    """The fit in one sentence: how many of the four usual indices meet their thresholds."""
+    judged = [(label, meets(fit.get(k), th.get(k))) for k, label in FIT_ROWS]
+    judged = [(label, ok) for label, ok in judged if ok is not None]
+    if not judged:
+        return "How well the measurement model fits could not be judged."
+    good = [label for label, ok in judged if ok]
+    bad = [label for label, ok in judged if not ok]
+    n = len(judged)
+    if not bad:
+        return f"The measurement model fits well by {'all four' if n == 4 else COUNT_WORDS.get(n, n)} usual checks."
+    if not good:
+        return f"The measurement model fits poorly: it misses every one of the {n} usual checks."
+    return (f"The measurement model fits well by {COUNT_WORDS.get(len(good), len(good))} of the {n} usual checks; "
+            f"{', '.join(bad)} falls short.")
 
 
 def fit_section(report: dict) -> str:
     mm = report.get("measurement_model")
-    title = "Measurement model: fit and discriminant validity"
+    title = "Measurement model: fit and overlap between scales"
     if not isinstance(mm, dict):
         return section("fit", title, '<p class="note">The report has no measurement model.</p>')
     th = report.get("thresholds") or {}
@@ -835,8 +893,8 @@ def fit_section(report: dict) -> str:
         out.append(f'<p class="alert">The measurement model ended with status <strong>{h(status)}</strong>: read '
                    f'its fit and everything built on it with care.</p>')
     out.append(_warnings_list(mm.get("warnings")))
-    rows = [["Chi-square", f"{num(f.get('chi2'), 2)} on {count(f.get('df'))} df, p {pval(f.get('p'))}", DASH, DASH,
-             DASH]]
+    out.append(f'<p class="fit-sentence">{h(fit_sentence(f, th))}</p>')
+    rows = []
     for key, label in FIT_ROWS:
         v = f.get(key)
         t = th.get(key)
@@ -845,50 +903,59 @@ def fit_section(report: dict) -> str:
         verdict = DASH if ok is None else (f'<span class="mark ok" aria-hidden="true">{PASS}</span> meets' if ok
                                            else f'<span class="mark bad" aria-hidden="true">{FAIL}</span> does not meet')
         rows.append([label, val, threshold_text(t, 2) if t else DASH, verdict, h(_get(t, "source"))])
+    rows.append(["Chi-square", f"{num(f.get('chi2'), 2)} on {count(f.get('df'))} df, p {pval(f.get('p'))}", DASH,
+                 DASH, DASH])
     rows.append(["N", count(f.get("n")), DASH, DASH, DASH])
-    out.append(dl([("Estimator", h(str(mm.get("estimator") or "").upper() or None)), ("Status", h(status))]))
     out.append(table(["Index", "Value", "Threshold", "Against the threshold", "Source"], rows,
-                     caption="Fit of the measurement model (every construct a factor of its own items)",
+                     caption=f"Fit of the measurement model (every scale a factor of its own items; estimator "
+                             f"{h(str(mm.get('estimator') or '').upper() or None)}, status {h(status)})",
                      numeric=(1,), cls="fit"))
-    names = list((report.get("constructs") or {}).keys())
-    out.append("<h3>Factor correlations</h3>")
-    out.append(_matrix(names, mm.get("factor_correlations") or {}, "Correlations between the constructs' factors"))
-    out.append("<h3>HTMT</h3>")
+    out.append(_overlap_list(report))
+    return section("fit", title, "".join(out), hint="fit in one sentence; the scale pairs closest to overlapping")
+
+
+def _overlap_list(report: dict) -> str:
+    """Discriminant validity as a ranked list: the scale pairs closest to overlapping first."""
+    mm = report.get("measurement_model") or {}
+    th = report.get("thresholds") or {}
+    htmt, htmt2 = mm.get("htmt") or {}, mm.get("htmt2") or {}
+    fl, fc = mm.get("fornell_larcker") or {}, mm.get("factor_correlations") or {}
+    ranked = sorted(((k, v) for k, v in htmt.items() if _finite(v)), key=lambda kv: -kv[1])
+    if not ranked:
+        return '<h3>Overlap between scales</h3><p class="note">Not available.</p>'
     strict, liberal = th.get("htmt_strict"), th.get("htmt_liberal")
-    out.append(_matrix(names, mm.get("htmt") or {}, "Heterotrait-monotrait ratio (HTMT) for each pair",
-                       flag=lambda v: ("" if meets(v, strict) is not False else
-                                       (f" {FAIL}{FAIL}" if meets(v, liberal) is False else f" {FAIL}"))))
-    out.append(f'<p class="sub">Discriminant validity holds when HTMT is {threshold_text(strict)} (strict) or '
-               f'{threshold_text(liberal)} (liberal; {h(_get(strict, "source"))}). {FAIL}: not below the strict '
-               f'threshold; {FAIL}{FAIL}: not below the liberal one either.</p>')
-    out.append("<h3>Fornell\u2013Larcker criterion</h3>")
-    fl = mm.get("fornell_larcker") or {}
-    rows = [[h(k.replace("|", " \u00d7 ")), num(v.get("r_squared")), num(v.get("ave_a")), num(v.get("ave_b")),
-             (f'<span class="mark ok" aria-hidden="true">{PASS}</span> holds' if v.get("holds") else
-              f'<span class="mark bad" aria-hidden="true">{FAIL}</span> does not hold' if v.get("holds") is False
-              else DASH)] for k, v in fl.items() if isinstance(v, dict)]
-    out.append(table(["Pair", "Squared correlation", "AVE (first)", "AVE (second)", "Criterion"], rows,
-                     caption="Fornell\u2013Larcker: each AVE should exceed the pair's squared correlation",
-                     numeric=(1, 2, 3)))
-    return section("fit", title, "".join(out))
-
-
-def _matrix(names: list[str], values: dict, caption: str, flag=None) -> str:
-    if not values:
-        return '<p class="note">Not available.</p>'
-    rows = []
-    for i, a in enumerate(names[1:], 1):
-        cells = [h(a)]
-        for b in names[:-1]:
-            j = names.index(b)
-            if j >= i:
-                cells.append("")
-                continue
-            v = pair(values, b, a)
-            cells.append(num(v) + (flag(v) if flag and _finite(v) else ""))
-        rows.append(cells)
-    return table([""] + [h(n) for n in names[:-1]], rows, caption=caption,
-                 numeric=tuple(range(1, len(names))), cls="matrix")
+    items = []
+    for k, v in ranked:
+        a, _, b = k.partition("|")
+        if meets(v, strict) is not False:
+            word = "distinct"
+        elif meets(v, liberal) is not False:
+            word = f"{FAIL} distinct by the liberal threshold only"
+        else:
+            word = f"{FAIL}{FAIL} too close to tell apart"
+        extra = []
+        if _finite(pair(htmt2, a, b)):
+            extra.append(f"HTMT2 {num(pair(htmt2, a, b))}")
+        if _finite(pair(fc, a, b)):
+            extra.append(f"factor correlation {num(pair(fc, a, b))}")
+        flv = pair(fl, a, b)
+        if isinstance(flv, dict) and flv.get("holds") is False:
+            extra.append(f"{FAIL} Fornell\u2013Larcker does not hold")
+        items.append(f"<li><strong>{h(a)} and {h(b)}</strong>: HTMT {num(v)}, {word}"
+                     + (f' <span class="sub">({"; ".join(extra)})</span>' if extra else "") + "</li>")
+    top, rest = items[:5], items[5:]
+    variant = mm.get("htmt_variant")
+    out = ("<h3>Overlap between scales</h3><p>The pairs of scales closest to measuring the same thing, closest "
+           f"first. A pair is distinct when its HTMT is {threshold_text(strict)} (strict) or "
+           f"{threshold_text(liberal)} (liberal; {h(_get(strict, 'source'))})."
+           + (f" HTMT variant: {h(variant)}." if variant else "") + "</p>"
+           f'<ol class="pairs">{"".join(top)}</ol>')
+    if rest:
+        out += (f"<details><summary>The other {count(len(rest))} pairs</summary>"
+                f'<ol class="pairs" start="6">{"".join(rest)}</ol></details>')
+    out += ('<p class="sub">The full matrices (HTMT, factor correlations, Fornell\u2013Larcker) are in the tables: '
+            '<a href="tables.xlsx">tables.xlsx</a>.</p>')
+    return out
 
 
 # --------------------------------------------------------------------------- teams (when present)
@@ -923,20 +990,28 @@ def teams_section(report: dict) -> str:
             split = p.get("split_source") or {}
             test = p.get("within_between_test") or {}
             between = p.get("between") or {}
-            split_txt = num(split.get("estimate")) + (f" {interval(split.get('ci'))}" if split.get("ci") else "")
+            if too_imprecise(split.get("ci")):
+                split_txt = (f'<span class="imprecise">too imprecise to read</span> <span class="sub">'
+                             f'({num(split.get("estimate"))} {interval(split.get("ci"))}: the interval is wider '
+                             f'than half the {MINUS}1 to 1 range)</span>')
+            elif not _finite(split.get("estimate")):
+                split_txt = f'<span class="na">not available: {h(split.get("note") or "the split-group estimate could not be computed")}</span>'
+            else:
+                split_txt = num(split.get("estimate")) + (f" {interval(split.get('ci'))}" if split.get("ci") else "")
             if split.get("splits") is not None:
                 split_txt += (f' <span class="sub">({count(split.get("splits"))} splits, '
                               f'{count(split.get("teams_used"))} groups)</span>')
-            if split.get("note"):
+            if split.get("note") and _finite(split.get("estimate")):
                 split_txt += f' <span class="sub">{h(split["note"])}</span>'
             rows.append([path_title(p), num(_get(p, "within", "estimate")),
                          num(between.get("estimate")) + (f' <span class="sub">({count(between.get("teams"))} '
                                                           f'groups)</span>' if between.get("teams") else ""),
                          pval(test.get("p")) + (" (differ)" if test.get("differ") else ""),
-                         num(_get(p, "same_source_team", "estimate")), split_txt])
+                         _same_source_cell(teams, p), split_txt])
         out.append(table(["Path", "Within groups", "Between groups", "Within vs between, p",
                           "Same-source group means", "Split-group estimate"], rows,
-                         caption="Key paths within and between groups (standardized)", numeric=(1, 2, 3, 4),
+                         caption="Key paths within and between groups (standardized; a split-group interval wider than "
+                                 f"{num(IMPRECISE_WIDTH, 1)} is too imprecise to read)", numeric=(1, 2, 3),
                          cls="teampaths"))
     notes = [n for n in teams.get("notes") or [] if n]
     if notes:
@@ -951,6 +1026,26 @@ def teams_section(report: dict) -> str:
     else:
         out.append('<p class="note">No group is large enough to show.</p>')
     return section("teams", "Teams", "".join(out))
+
+
+def _same_source_cell(teams: dict, p: dict) -> str:
+    """The same-source team estimate, or why there is none (derived from the report's ICC(2) values)."""
+    v = _get(p, "same_source_team", "estimate")
+    if _finite(v):
+        return num(v)
+    reason = _get(p, "same_source_team", "reason")
+    if not reason:
+        cons = teams.get("constructs") or {}
+        names = [p.get("outcome"), *(p.get("predictors") or [p.get("predictor")])]
+        low = [f"{n} ({num(_get(cons, n, 'icc2'))})" for n in dict.fromkeys(names)
+               if _finite(_get(cons, n, "icc2")) and _get(cons, n, "icc2") <= 0]
+        if low:
+            reason = ("the team means of " + ", ".join(low) + " are not reliable (ICC(2) at or below zero), so "
+                      "they cannot be corrected for their unreliability")
+        else:
+            reason = ("corrected for the low reliability of team means (ICC(2)), the team-level correlations "
+                      "exceed what correlations can be, so no estimate is defined")
+    return f'<span class="na">not available: {h(reason)}</span>'
 
 
 def _cell(v: Any) -> str:
@@ -1037,159 +1132,86 @@ def data_section(report: dict) -> str:
 
 # --------------------------------------------------------------------------- page
 
-CSS = """
-:root{--ink:#1f2933;--muted:#4a5866;--line:#d9e2ec;--accent:#1d4e89;--hl:#a2430f;--hl-bg:#fbeadc;
---ok:#1e6b3a;--bad:#a61b1b;--caution-bg:#fff6e0;--caution-line:#9a6200;--panel:#f5f7fa}
-*{box-sizing:border-box}
-html{-webkit-text-size-adjust:100%}
-body{margin:0;color:var(--ink);background:#fff;font-family:system-ui,-apple-system,"Segoe UI",Roboto,
-"Helvetica Neue",Arial,sans-serif;font-size:1rem;line-height:1.55}
-.wrap{max-width:62rem;margin:0 auto;padding:0 1.25rem 3rem}
-a{color:var(--accent)}
-.skip{position:absolute;left:-10000px;top:0;background:var(--accent);color:#fff;padding:.6rem 1rem;z-index:5}
-.skip:focus{left:.5rem;top:.5rem}
-.sr-only{position:absolute;width:1px;height:1px;padding:0;margin:-1px;overflow:hidden;clip:rect(0 0 0 0);
-white-space:nowrap;border:0}
-header.top{border-bottom:3px solid var(--accent);padding:1.5rem 0 1rem;margin-bottom:1rem}
-#answer>h2{border-top:0;margin-top:1.5rem}
-.kicker{margin:0;color:var(--muted);font-size:.95rem;letter-spacing:.02em}
-h1{font-size:1.9rem;line-height:1.2;margin:.25rem 0 .5rem;overflow-wrap:anywhere}
-h2{font-size:1.4rem;line-height:1.25;margin:2.75rem 0 .75rem;padding-top:.75rem;border-top:1px solid var(--line)}
-h3{font-size:1.12rem;line-height:1.3;margin:1.75rem 0 .5rem;overflow-wrap:anywhere}
-p{margin:.5rem 0 .85rem}
-.sub{color:var(--muted);font-size:.93rem}
-.note{color:var(--muted);font-style:italic}
-.alert{border-left:5px solid var(--bad);background:#fdeeee;padding:.6rem .9rem}
-.meta{color:var(--muted);margin:0;font-size:.95rem}
-.verdict{border:1px solid var(--line);border-left:8px solid var(--muted);border-radius:6px;padding:.85rem 1.1rem;
-margin:.75rem 0 1.25rem;background:var(--panel)}
-.verdict-title{font-weight:700;font-size:1.15rem;margin:.2rem 0 .4rem}
-.verdict ul{margin:.25rem 0 .5rem 1.25rem;padding:0}
-.level-substantial{border-left-color:var(--bad)} .level-substantial .level-word{color:var(--bad)}
-.level-minor{border-left-color:var(--caution-line)} .level-minor .level-word{color:#7a4d00}
-.level-none{border-left-color:var(--ok)} .level-none .level-word{color:var(--ok)}
-.answer-path{border:1px solid var(--line);border-radius:6px;padding:.25rem 1.1rem .5rem;margin:1rem 0}
-.answer-path h3{margin-top:.9rem}
-.lead-number{font-size:1.05rem;margin:.25rem 0 .5rem}
-.big{font-size:1.6rem;color:var(--hl)}
-.why{color:var(--muted);font-size:.93rem}
-.cautions{background:var(--caution-bg);border:2px solid var(--caution-line);border-left-width:10px;
-border-radius:6px;padding:.25rem 1.25rem .75rem;margin:1.5rem 0}
-.cautions h2{border-top:0;margin:.75rem 0 .5rem;padding-top:0;color:#5c3a00}
-.cautions ol{margin:0;padding-left:1.4rem}
-.cautions li{margin:.45rem 0}
-nav.toc{background:var(--panel);border-radius:6px;padding:.5rem 1.1rem;margin:1.5rem 0}
-nav.toc h2{font-size:1.05rem;border:0;margin:.5rem 0;padding:0}
-nav.toc ol{margin:0 0 .5rem;padding-left:1.4rem;columns:2 16rem}
-figure{margin:1.25rem 0 1.5rem;padding:0}
-figure svg{display:block;width:100%;height:auto}
-.panels{display:grid;grid-template-columns:repeat(auto-fill,minmax(17rem,1fr));gap:1rem;max-width:46rem}
-figcaption{color:var(--muted);font-size:.93rem;margin-top:.6rem;max-width:46rem}
-.table-wrap{overflow-x:auto;-webkit-overflow-scrolling:touch;margin:.75rem 0 1.25rem;max-width:100%}
-table{border-collapse:collapse;width:100%;font-size:.93rem;font-variant-numeric:tabular-nums}
-caption{text-align:left;font-weight:700;padding:.2rem 0 .45rem;caption-side:top}
-th,td{padding:.4rem .6rem;border-bottom:1px solid var(--line);text-align:left;vertical-align:top}
-thead th{border-bottom:2px solid var(--ink);font-weight:700;vertical-align:bottom}
-tbody th{font-weight:600}
-.num{text-align:right;white-space:nowrap}
-tr.preferred th,tr.preferred td{background:var(--hl-bg)}
-table.checks td:nth-child(2){min-width:14rem} table.checks td:nth-child(5){min-width:16rem;font-size:.88rem}
-table.matrix td:empty{background:var(--panel)}
-table.teampaths td:last-child{min-width:16rem}
-table.matrix,table.narrow{width:auto;min-width:min(100%,24rem)}
-.tag{display:inline-block;font-size:.78rem;font-weight:700;color:#fff;background:var(--hl);border-radius:3px;
-padding:0 .35rem;margin-left:.25rem;vertical-align:.1em}
-.mark{font-weight:700} .mark.ok{color:var(--ok)} .mark.bad{color:var(--bad)}
-.lvl{white-space:nowrap;font-weight:600} .lvl-substantial{color:var(--bad)} .lvl-minor{color:#7a4d00}
-.lvl-none{color:var(--ok)}
-dl.facts{display:grid;grid-template-columns:minmax(10rem,max-content) 1fr;gap:.3rem 1rem;margin:.75rem 0 1rem}
-dl.facts dt{color:var(--muted)} dl.facts dd{margin:0;overflow-wrap:anywhere}
-code{font-family:ui-monospace,SFMono-Regular,Menlo,Consolas,monospace;font-size:.88em}
-.hash{overflow-wrap:anywhere;word-break:break-all}
-ul.warn li{margin:.3rem 0}
-.long-table .table-wrap{max-height:32rem;overflow:auto}
-details{margin:.5rem 0 1.25rem} summary{cursor:pointer;color:var(--accent);font-weight:600}
-.na{color:var(--muted);font-style:italic}
-.glossary dl.facts{font-size:.93rem}
-footer{margin-top:3rem;padding-top:1rem;border-top:1px solid var(--line);color:var(--muted);font-size:.9rem}
-@media (max-width:40rem){
- .wrap{padding:0 .8rem 2rem} h1{font-size:1.5rem} h2{font-size:1.25rem}
- dl.facts{grid-template-columns:1fr} dl.facts dd{margin-bottom:.4rem}
- table{font-size:.86rem} th,td{padding:.35rem .45rem} .big{font-size:1.4rem}
-}
-@media print{
- @page{margin:15mm 14mm}
- html{font-size:10pt} body{font-size:1rem} .wrap{max-width:none;padding:0}
- .skip,nav.toc{display:none}
- section.major{break-before:page}
- h2,h3{break-after:avoid}
- figure,.cautions,.verdict,.answer-path,.keep,tr{break-inside:avoid}
- figure svg{max-width:100%}
- .table-wrap,.long-table .table-wrap{overflow:visible;max-height:none}
- table{font-size:8.5pt}
- a{color:inherit;text-decoration:none}
- details>summary{display:none}
- *{-webkit-print-color-adjust:exact;print-color-adjust:exact}
-}
-"""
+
+
+TEMPLATES = Path(__file__).with_name("templates")
+
+
+@lru_cache(maxsize=1)
+def environment() -> jinja2.Environment:
+    """The templates of the report and the brief, autoescaped (names and items come from users)."""
+    return jinja2.Environment(loader=jinja2.FileSystemLoader(TEMPLATES), autoescape=True,
+                              undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
+
+
+@lru_cache(maxsize=4)
+def stylesheet(name: str) -> Markup:
+    """A stylesheet of ours, inlined into the page at render time."""
+    return Markup((TEMPLATES / name).read_text(encoding="utf-8"))
+
+
+SECTIONS = (("paths", "Every estimate of each path"),
+            ("sensitivity", "How much shared method would explain each path away"),
+            ("reliability", "How well each scale measures"), ("loadings", "Item loadings"),
+            ("method-variance", "Common-method checks"),
+            ("fit", "Measurement model: fit and overlap between scales"),
+            ("teams", "Teams"), ("data", "Data, screening and warnings"), ("cautions-again", "Cautions (repeated)"))
 
 
 def _toc(report: dict) -> str:
-    entries = [("paths", "Key paths under every correction"),
-               ("sensitivity", "How much shared method would explain each path away"),
-               ("reliability", "Reliability and validity of each scale"), ("loadings", "Item loadings"),
-               ("method-variance", "Common-method checks"),
-               ("fit", "Measurement model: fit and discriminant validity")]
-    if isinstance(report.get("teams"), dict):
-        entries.append(("teams", "Teams"))
-    entries += [("data", "Data, screening and warnings"), ("cautions-again", "Cautions (repeated)")]
-    return ('<nav class="toc" aria-labelledby="toc-h"><h2 id="toc-h">The evidence</h2><ol>'
-            + "".join(f'<li><a href="#{i}">{t}</a></li>' for i, t in entries) + "</ol></nav>")
+    entries = [(i, t) for i, t in SECTIONS if i != "teams" or isinstance(report.get("teams"), dict)]
+    return ('<nav class="toc" aria-labelledby="toc-h"><h2 id="toc-h">The detail behind the answer '
+            '<span class="sub">(each section opens when clicked)</span></h2><ol>'
+            + "".join(f'<li><a href="#{i}">{t}</a></li>' for i, t in entries)
+            + '</ol><p class="sub">Every table as a spreadsheet: <a href="tables.xlsx">tables.xlsx</a>; the one-page '
+              'brief: <a href="brief.html">brief.html</a>.</p></nav>')
 
 
-def _header(report: dict) -> str:
+def header_facts(report: dict, when: str | None = None) -> list[str]:
     d = report.get("data") or {}
     tool = report.get("tool") or {}
-    when = next((report.get(k) for k in ("created_at", "generated_at", "date") if report.get(k)), None)
+    when = when or next((report.get(k) for k in ("created_at", "generated_at", "date") if report.get(k)), None)
     facts = [f"{count(d.get('rows'))} rows read, {count(d.get('rows_analyzed'))} analysed",
-             f"{count(d.get('items'))} items", f"{len(report.get('constructs') or {})} constructs"]
+             f"{count(d.get('items'))} items", f"{len(report.get('constructs') or {})} scales",
+             f"made by {tool.get('name') or 'samesource'} {tool.get('version') or ''}".strip()]
     if when:
-        facts.insert(0, f"produced {h(when)}")
-    return (f'<header class="top"><p class="kicker">Survey measurement and common-method report</p>'
-            f'<h1>{h(d.get("file") or "Survey data")}</h1><p class="meta">{SEP.join(facts)}</p>'
-            f'<p class="meta">Made by {h(tool.get("name") or "samesource")} {h(tool.get("version") or "")}</p></header>')
+        facts.insert(0, f"produced {when}")
+    return facts
 
 
-def render_html(report: dict) -> str:
-    """The whole report as one self-contained HTML5 page (a string)."""
+def review_reasons(report: dict) -> list[dict]:
+    """The "review before use" reasons, when the report asks for review (missing fields tolerated)."""
+    if not report.get("review_needed"):
+        return []
+    out = []
+    for r in report.get("review_reasons") or []:
+        if isinstance(r, dict):
+            out.append({"message": str(r.get("message") or r.get("code") or "review needed"),
+                        "names": [str(i) for i in r.get("items") or []], "fix": str(r.get("fix") or "")})
+    return out or [{"message": "The analysis asks for a review before its results are used.", "names": [], "fix": ""}]
+
+
+def render_html(report: dict, *, when: str | None = None) -> str:
+    """The whole report as one self-contained HTML5 page (a string); ``when``: the date it was made."""
     d = report.get("data") or {}
-    title = f"Survey measurement report: {d.get('file') or 'survey data'}"
     figs = Figures()
-    parts = [
-        _header(report),
-        '<main id="main">',
-        answer_section(report),
-        cautions_section(report, "cautions", "Cautions: read these before using any result"),
-        _toc(report),
-        paths_section(report, figs),
-        sensitivity_section(report, figs),
-        reliability_section(report, figs),
-        loadings_section(report, figs),
-        method_section(report),
-        fit_section(report),
-        teams_section(report),
-        data_section(report),
-        cautions_section(report, "cautions-again", "Cautions (repeated)"),
-        "</main>",
-        f'<footer><p>Report schema {h(report.get("schema"))}; made by {h(_get(report, "tool", "name"))} '
-        f'{h(_get(report, "tool", "version"))} from {h(d.get("file"))} (SHA-256 '
-        f'<code class="hash">{h(d.get("sha256"))}</code>).</p></footer>',
-    ]
-    return ('<!doctype html>\n<html lang="en">\n<head>\n<meta charset="utf-8">\n'
-            '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
-            f"<title>{h(title)}</title>\n<style>{CSS}</style>\n</head>\n<body>\n"
-            '<a class="skip" href="#main">Skip to the results</a>\n<div class="wrap">\n'
-            + "\n".join(p for p in parts if p) + "\n</div>\n</body>\n</html>\n")
+    sections = [paths_section(report, figs), sensitivity_section(report, figs), reliability_section(report, figs),
+                loadings_section(report, figs), method_section(report), fit_section(report), teams_section(report),
+                data_section(report)]
+    footer = (f'Report schema {h(report.get("schema"))}; made by {h(_get(report, "tool", "name"))} '
+              f'{h(_get(report, "tool", "version"))} from {h(d.get("file"))} (SHA-256 '
+              f'<code class="hash">{h(d.get("sha256"))}</code>).')
+    return environment().get_template("report.html.j2").render(
+        title=f"Survey report: {d.get('file') or 'survey data'}", css=stylesheet("report.css"),
+        file=d.get("file") or "Survey data", facts=header_facts(report, when), review=review_reasons(report),
+        checks=Markup(checks_strip(report)), decisions=decisions_of(report), verdict=Markup(_verdict_box(report)),
+        cautions=Markup(cautions_section(report, "cautions", "Cautions: read these before using any result")),
+        toc=Markup(_toc(report)), sections=[Markup(x) for x in sections if x],
+        cautions_again=Markup(section("cautions-again", "Cautions (repeated)",
+                                      cautions_section(report, "cautions-list", "Every caution, in full")
+                                      .replace('<h2 id="cautions-list-h">', '<h3 id="cautions-list-h">')
+                                      .replace("</h2>", "</h3>", 1))),
+        footer=Markup(footer)) + "\n"
 
 
-__all__ = ["render_html", "num", "pct", "pval", "interval", "est_ci"]
+__all__ = ["render_html", "environment", "stylesheet", "header_facts", "review_reasons", "num", "pct", "pval", "interval", "est_ci"]

@@ -11,8 +11,9 @@ threshold is a hollow triangle and carries a cross.
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from html import escape
 
 # Palette: every text colour reaches WCAG AA (4.5:1) on white and on the light fills used.
@@ -93,6 +94,26 @@ def wrap(s: str, width: int) -> list[str]:
     if cur:
         lines.append(cur)
     return lines or [""]
+
+
+def standalone(chart: str) -> str:
+    """An inline chart as an SVG file of its own (the namespace a file needs, a white ground)."""
+    if "xmlns=" not in chart[:400]:
+        chart = chart.replace("<svg ", '<svg xmlns="http://www.w3.org/2000/svg" ', 1)
+    head_end = chart.index(">") + 1
+    return ('<?xml version="1.0" encoding="UTF-8"?>\n' + chart[:head_end]
+            + '<rect width="100%" height="100%" fill="#ffffff"/>' + chart[head_end:])
+
+
+def to_png(svg_file: str, scale: float = 2.0) -> bytes | None:
+    """The chart as PNG bytes (cairosvg, drawing with the system's cairo library); None if unavailable."""
+    try:
+        import cairosvg
+    except (ImportError, OSError):  # the cairo library is missing on this machine
+        return None
+    # cairosvg ignores paint-order, so a text's white halo would be painted over its letters
+    flat = re.sub(r' stroke="[^"]*" stroke-width="4" paint-order="stroke"( stroke-linejoin="round")?', "", svg_file)
+    return cairosvg.svg2png(bytestring=flat.encode("utf-8"), scale=scale)
 
 
 # --------------------------------------------------------------------------- scales and colour
@@ -181,11 +202,11 @@ def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
                 axis_label: str = "standardized estimate") -> str:
     """Every estimate of one path as a point with its interval; zero line; preferred highlighted.
 
-    Each row: the label on top, the interval below it, the numbers in a column of their own at
-    the right, so no grid line ever crosses a number.
+    One line per estimate: its label at the left, level with its point and interval in the
+    middle, the numbers in a column of their own at the right, so no grid line crosses a number.
     """
-    W, pad, val_w = 560.0, 14.0, 172.0
-    x0, x1 = pad + 6, W - pad - val_w
+    W, pad, lab_w, val_w = 760.0, 12.0, 236.0, 176.0
+    x0, x1 = lab_w + 10, W - pad - val_w - 8
     vals = [0.0]
     for r in rows:
         vals += [v for v in (r.estimate, r.lo, r.hi) if v is not None and math.isfinite(v)]
@@ -196,32 +217,33 @@ def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
 
     body: list[str] = []
     y = 6.0
-    layout: list[tuple[ForestRow, float, float, list[str]]] = []
+    layout: list[tuple[ForestRow, float, float, list[str], list[str]]] = []
     for r in rows:
-        note_lines = wrap(r.unavailable, 66) if r.unavailable else []
-        h = 42.0 if not note_lines else 24.0 + 16.0 * len(note_lines)
-        layout.append((r, y, h, note_lines))
+        label = r.label + (" (preferred)" if r.preferred else "")
+        label_lines = wrap(label, 30)
+        note_lines = wrap(r.unavailable, 60) if r.unavailable else []
+        h = 12.0 + 17.0 * max(len(label_lines), len(note_lines), 1)
+        layout.append((r, y, h, label_lines, note_lines))
         y += h
     plot_bottom = y + 4
     H = plot_bottom + 44
 
-    for r, top, h, _ in layout:
+    for r, top, h, _, _ in layout:
         if r.preferred:
             body.append(rect(2, top, W - 4, h, fill=HIGHLIGHT_BG, rx=4))
     for t in ticks:  # grid under the data
         body.append(line(sx(t), 4, sx(t), plot_bottom, stroke=GRID, stroke_width=1))
     body.append(line(sx(0.0), 4, sx(0.0), plot_bottom, stroke=INK, stroke_width=1.5, stroke_dasharray="5 4"))
-    for r, top, _h, note_lines in layout:
+    for r, top, _h, label_lines, note_lines in layout:
         halo = HIGHLIGHT_BG if r.preferred else "#ffffff"
-        label = r.label + ("  (preferred)" if r.preferred else "")
-        body.append(text(pad, top + 16, label, font_size=14, font_weight="700" if r.preferred else None,
-                         stroke=halo, stroke_width=4, paint_order="stroke", stroke_linejoin="round"))
+        cy = top + 14.0  # level with the label's first line (its baseline is 5 px below)
+        for i, ln in enumerate(label_lines):
+            body.append(text(pad, top + 19 + 17 * i, ln, font_size=14, font_weight="700" if r.preferred else None))
         if note_lines:
             for i, ln in enumerate(note_lines):
-                body.append(text(pad, top + 34 + 16 * i, ln, font_size=13, fill=MUTED, font_style="italic",
+                body.append(text(x0, top + 19 + 17 * i, ln, font_size=13, fill=MUTED, font_style="italic",
                                  stroke=halo, stroke_width=4, paint_order="stroke", stroke_linejoin="round"))
             continue
-        cy = top + 31
         body.append(text(W - pad, cy + 5, r.value_text, font_size=14, text_anchor="end",
                          font_weight="700" if r.preferred else None))
         colour = HIGHLIGHT if r.preferred else ACCENT
@@ -264,8 +286,14 @@ class Marker:
 
 def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, float | None]], *,
                      markers: Sequence[Marker], holds_up_to: float | None, ident: str, title: str,
-                     desc: str, x_max: float = 0.5, band_label: str = "interval") -> str:
-    """Estimate (line) and interval (band) against the assumed method share, with markers."""
+                     desc: str, x_max: float = 0.5, band_label: str = "interval",
+                     published: tuple[float, float] | None = None,
+                     estimated_ci: tuple[float, float] | None = None) -> str:
+    """Estimate (line) and interval (band) against the assumed method share, with markers.
+
+    ``published``: the range of method shares published reviews report, hatched across the plot;
+    ``estimated_ci``: the interval of the estimated share, a bracket on the x axis.
+    """
     W = 560.0
     label_rows = max(len(markers), 1)
     top = 14.0 + 18.0 * label_rows
@@ -288,6 +316,13 @@ def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, fl
         for i, ln in enumerate(lines):
             body.append(text((xs + W - right) / 2, top + 18 + 15 * i, ln, font_size=12.5,
                              text_anchor="middle", fill=MUTED))
+    if published is not None:
+        p0, p1 = (sx(min(max(v, 0.0), x_max)) for v in published)
+        body.append(el("pattern", line(0, 0, 0, 8, stroke="#b9c3cf", stroke_width=3), id=f"{ident}-hatch",
+                       width=8, height=8, patternUnits="userSpaceOnUse", patternTransform="rotate(45)"))
+        body.append(rect(p0, top, p1 - p0, ph, fill=f"url(#{ident}-hatch)", opacity="0.6"))
+        body.append(text(p0 + 5, top + 16, "published range", font_size=12.5, text_anchor="start",
+                         fill=INK, stroke="#ffffff", stroke_width=4, paint_order="stroke"))
     for t in yt:
         body.append(line(left, sy(t), W - right, sy(t), stroke=GRID))
         body.append(text(left - 8, sy(t) + 4.5, fmt_tick(t), font_size=13, text_anchor="end", fill=MUTED))
@@ -314,6 +349,12 @@ def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, fl
     styles = {"estimated": dict(stroke=HIGHLIGHT, stroke_width=2.5),
               "break_even": dict(stroke=INK, stroke_width=2, stroke_dasharray="7 4"),
               "ci_zero": dict(stroke=INK, stroke_width=2, stroke_dasharray="2 3")}
+    if estimated_ci is not None:
+        c0, c1 = (sx(min(max(v, 0.0), x_max)) for v in estimated_ci)
+        yb = top + ph - 3
+        body.append(line(c0, yb, c1, yb, stroke=HIGHLIGHT, stroke_width=5, stroke_linecap="butt"))
+        for c in (c0, c1):
+            body.append(line(c, yb - 7, c, yb + 3, stroke=HIGHLIGHT, stroke_width=2))
     for i, m in enumerate(markers):
         x = sx(min(max(m.share, 0.0), x_max))
         ly = 14.0 + 18.0 * i
@@ -325,67 +366,6 @@ def sensitivity_plot(curve: Sequence[tuple[float, float | None, float | None, fl
                          fill=HIGHLIGHT if m.style == "estimated" else INK, font_weight="600",
                          stroke="#ffffff", stroke_width=4, paint_order="stroke", stroke_linejoin="round"))
     return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
-
-
-# --------------------------------------------------------------------------- reliability panels
-
-@dataclass
-class Panel:
-    title: str
-    threshold: float | None
-    threshold_text: str
-    values: list[float | None]
-    texts: list[str]  # value as printed, with its pass/fail word or symbol
-    passes: list[bool | None]
-    intervals: list[tuple[float, float] | None] = field(default_factory=list)
-
-
-def reliability_panel(labels: Sequence[str], p: Panel, *, ident: str, desc: str) -> str:
-    """One measure: a dot per construct on a 0-1 axis, the threshold dashed, the value at the right.
-
-    One SVG per measure, so the page can set them two abreast on a laptop and one under the
-    other on a phone.
-    """
-    pw, lab_w, val_w = 340.0, 104.0, 72.0
-    row_h, head, foot = 28.0, 46.0, 30.0
-    H = head + row_h * len(labels) + foot
-    px0, px1 = lab_w, pw - val_w
-    sx = Linear(0.0, 1.0, px0, px1)
-    body = [rect(0.5, 0.5, pw - 1, H - 1, fill="#ffffff", stroke=GRID, rx=4),
-            text(10, 20, p.title, font_size=15, font_weight="700")]
-    plot_top, plot_bot = head - 6, head + row_h * len(labels)
-    for t in (0.0, 0.5, 1.0):
-        body.append(line(sx(t), plot_top, sx(t), plot_bot, stroke=GRID))
-        body.append(text(sx(t), plot_bot + 18, fmt_tick(t), font_size=13, text_anchor="middle", fill=MUTED))
-    if p.threshold is not None:
-        tx = sx(p.threshold)
-        body.append(line(tx, plot_top, tx, plot_bot, stroke=INK, stroke_width=1.5, stroke_dasharray="5 3"))
-        body.append(text(tx, plot_top - 4, p.threshold_text, font_size=13, text_anchor="middle", fill=INK))
-    for i, lab in enumerate(labels):
-        cy = head + row_h * i + row_h / 2
-        body.append(text(10, cy + 5, _clip(lab, 12), font_size=14))
-        v = p.values[i] if i < len(p.values) else None
-        ci = p.intervals[i] if i < len(p.intervals) else None
-        passed = p.passes[i] if i < len(p.passes) else None
-        if ci is not None:
-            body.append(line(sx(_unit(ci[0])), cy, sx(_unit(ci[1])), cy, stroke=ACCENT, stroke_width=2))
-        if v is None:
-            body.append(text((px0 + px1) / 2, cy + 5, "not available", font_size=13, text_anchor="middle",
-                             fill=MUTED, font_style="italic"))
-        elif passed is False:
-            cx, d = sx(_unit(v)), 7.0
-            body.append(el("polygon", points=points([(cx - d, cy - d + 1), (cx + d, cy - d + 1), (cx, cy + d)]),
-                           fill="#ffffff", stroke=FAIL, stroke_width=2))
-        else:
-            body.append(el("circle", cx=sx(_unit(v)), cy=cy, r=6, fill=ACCENT))
-        t = p.texts[i] if i < len(p.texts) else ""
-        body.append(text(pw - 8, cy + 5, t, font_size=14, text_anchor="end",
-                         fill=FAIL if passed is False else INK, font_weight="700" if passed is False else None))
-    return svg_figure("".join(body), pw, H, ident=ident, title=p.title, desc=desc)
-
-
-def _unit(v: float) -> float:
-    return min(max(v, 0.0), 1.0)
 
 
 def _clip(s: str, n: int) -> str:
@@ -472,6 +452,6 @@ def _cell(x: float, y: float, w: float, h: float, v: float | None, t: str, c: He
     return out
 
 
-__all__ = ["ForestRow", "HeatColumn", "HeatGroup", "Linear", "Marker", "Panel", "contrast", "forest_plot",
-           "heat_fill", "heat_map", "mix", "nice_ticks", "reliability_panel", "sensitivity_plot", "svg_figure", "text_on",
+__all__ = ["standalone", "to_png", "ForestRow", "HeatColumn", "HeatGroup", "Linear", "Marker", "contrast", "forest_plot",
+           "heat_fill", "heat_map", "mix", "nice_ticks", "sensitivity_plot", "svg_figure", "text_on",
            "wrap"]

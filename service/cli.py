@@ -8,6 +8,7 @@ import json
 import signal
 import sys
 from collections.abc import Iterator
+from datetime import UTC, datetime
 from pathlib import Path
 
 from measurement import __version__
@@ -214,14 +215,17 @@ def _analyze(args: argparse.Namespace) -> int:
 
 
 def write_outputs(report: dict, out: Path) -> None:
-    """report.json, report.html and the tables (CSV per table, and one workbook) in ``out``."""
+    """report.json, report.html, brief.html and the tables (CSV per table, and one workbook) in ``out``."""
+    from measurement.brief import render_brief
     from measurement.html_report import render_html
     from measurement.report import dumps
     from measurement.tables import report_tables, tables_csv, tables_xlsx
 
     out.mkdir(parents=True, exist_ok=True)
+    when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
     (out / "report.json").write_text(dumps(report), encoding="utf-8")
-    (out / "report.html").write_text(render_html(report), encoding="utf-8")
+    (out / "report.html").write_text(render_html(report, when=when), encoding="utf-8")
+    (out / "brief.html").write_text(render_brief(report, when=when), encoding="utf-8")
     tables = report_tables(report)
     folder = out / "tables"
     folder.mkdir(exist_ok=True)

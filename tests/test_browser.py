@@ -1,6 +1,9 @@
 """The service's page at / driven in headless Chromium, from token to report and back to the
 earlier work after a reload, against the real server (`samesource serve` as a subprocess).
 
+report.html and brief.html (written by the renderers) are also opened at phone and desktop widths:
+screenshots, the first screen's content, the page height, and the brief printed on one page.
+
 Needs Debian's chromium (/usr/bin/chromium) and the Python `playwright` package (its bundled
 driver only; no downloaded browsers). Without either the test is skipped. `make test-browser`
 runs this file alone. Screenshots of every step go to tests/artifacts/.
@@ -10,6 +13,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import time
 from pathlib import Path
 
@@ -436,3 +440,87 @@ def test_page_offers_sheets_answer_texts_every_option_and_design_files(server_fa
         shot(page, "11-every-option")
         browser.close()
     assert not problems, problems
+
+
+# ------------------------------------------------------------------ report.html and brief.html
+
+def _rendered_pages(tmp_path: Path) -> dict[str, Path]:
+    """report.html and brief.html of the sample survey, as written, and with the fields of the
+    assumption checks and the input review laid over (report_fields.py)."""
+    from report_fields import with_new_fields
+
+    from measurement.brief import render_brief
+    from measurement.html_report import render_html
+    from measurement.pipeline import analyze
+
+    report = analyze(SURVEY, DESIGN).report
+    pages = {}
+    for name, r in (("plain", report), ("checked", with_new_fields(report))):
+        for kind, render in (("report", render_html), ("brief", render_brief)):
+            path = tmp_path / f"{kind}-{name}.html"
+            path.write_text(render(r, when="2026-01-01 09:00 UTC"), encoding="utf-8")
+            pages[f"{kind}-{name}"] = path
+    return pages
+
+
+def _box(page, selector: str) -> dict:
+    return page.locator(selector).first.evaluate(
+        "e => { const r = e.getBoundingClientRect(); return {top: r.top + scrollY, bottom: r.bottom + scrollY}; }")
+
+
+def test_report_and_brief_first_screen_and_height(tmp_path):
+    pages = _rendered_pages(tmp_path)
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    with sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
+        try:
+            for width, height in ((1280, 900), (390, 844)):
+                page = browser.new_page(viewport={"width": width, "height": height})
+                errors: list[str] = []
+                page.on("console", lambda m, errors=errors: errors.append(m.text) if m.type == "error" else None)
+                for name, path in pages.items():
+                    page.goto(path.as_uri())
+                    page.screenshot(path=str(ARTIFACTS / f"{name}-{width}.png"), full_page=True)
+                    page.screenshot(path=str(ARTIFACTS / f"{name}-{width}-first-screen.png"))
+                    total = page.evaluate("document.documentElement.scrollHeight")
+                    # nothing wider than the screen
+                    assert page.evaluate("document.documentElement.scrollWidth") <= width, (name, width)
+                    cards = page.locator(".decision")
+                    assert cards.count() == 3, name  # one card per key path of the sample survey
+                    for i in range(cards.count()):
+                        text = cards.nth(i).inner_text()
+                        assert "on a \u22121 to 1 scale" in text and "Trust: " in text, name
+                    if name.startswith("report"):
+                        # the target at 1,280 px: decision and cautions in the first 1,500 px; the
+                        # whole page, detail collapsed, under 12,000 px
+                        if width == 1280:
+                            assert _box(page, "#cautions")["bottom"] <= 1500, name
+                            assert _box(page, ".decision:last-of-type")["bottom"] <= 1500, name
+                            assert total < 12000, (name, total)
+                        else:
+                            assert total < 20000, (name, total)
+                        # the detail is collapsed: no estimates table shows until its section opens
+                        assert not page.locator("table.estimates").first.is_visible()
+                        page.locator("#paths > details > summary").click()
+                        assert page.locator("table.estimates").first.is_visible()
+                    if name.endswith("checked"):
+                        assert _box(page, "#review")["top"] < _box(page, "#answer")["top"], name
+                        assert page.locator("#review").inner_text().count("wld2, wld4") == 1
+                        if name.startswith("report"):
+                            assert _box(page, "#assumptions")["bottom"] <= _box(page, ".decision")["top"]
+                            first = page.locator("#assumptions li").first
+                            assert first.is_visible() and not first.locator(".detail").is_visible()
+                        assert "This survey cannot pin the answer down" in page.locator(".decision").first.inner_text()
+                assert errors == [], errors
+                page.close()
+            # the brief prints on one page, A4 and Letter
+            page = browser.new_page()
+            for name in ("brief-plain", "brief-checked"):
+                page.goto(pages[name].as_uri())
+                for fmt in ("A4", "Letter"):
+                    pdf = page.pdf(format=fmt, print_background=True)
+                    (ARTIFACTS / f"{name}-{fmt}.pdf").write_bytes(pdf)
+                    assert len(re.findall(rb"/Type\s*/Page(?![s\w])", pdf)) == 1, (name, fmt)  # page objects
+            page.close()
+        finally:
+            browser.close()

@@ -1,6 +1,7 @@
 """The command line as an analyst uses it: exit codes, messages, files written."""
 
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -72,7 +73,11 @@ def test_analyze_small_file_writes_report(tmp_path):
     assert set(report["constructs"]) == {"sup", "eng"}
     assert "Report:" in res.stdout
     html = (out / "report.html").read_text(encoding="utf-8")
-    assert "<html" in html and "NaN" not in html
+    # (the chart downloads are base64 data: links, whose letters may spell anything)
+    assert "<html" in html and "NaN" not in re.sub(r'href="data:[^"]*"', "", html)
+    # the one-page brief beside it: dated, with the data's fingerprint
+    brief = (out / "brief.html").read_text(encoding="utf-8")
+    assert "<html" in brief and report["data"]["sha256"] in brief and "produced 20" in brief
     assert (out / "tables" / "paths.csv").exists() and (out / "tables.xlsx").stat().st_size > 0
 
 

@@ -16,8 +16,10 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 import pytest
+from report_fields import with_new_fields
 
 from measurement import svg
+from measurement.brief import render_brief
 from measurement.executor import SerialExecutor
 from measurement.html_report import render_html
 from measurement.pipeline import analyze
@@ -194,6 +196,12 @@ def svgs(markup: str) -> list[ET.Element]:
     return [ET.fromstring(m) for m in re.findall(r"<svg\b.*?</svg>", markup, flags=re.S)]
 
 
+def decision_blocks(markup: str) -> list[str]:
+    """The plain text of each decision card on the first screen (its numbers line ends it)."""
+    return [plain(b) for b in re.findall(r'<div class="answer-path decision"[^>]*>(.*?<p class="sub numbers">.*?</p>)',
+                                         markup, flags=re.S)]
+
+
 def plain(fragment: str) -> str:
     return " ".join(html.unescape(re.sub(r"<[^>]+>", " ", fragment)).split())
 
@@ -235,9 +243,9 @@ def test_page_parses_and_holds_every_section(reports, name):
     n_paths = len(report["paths"] or [])
     assert sum(i.startswith("forest-") and not i.endswith(("-svg", "-title", "-desc")) for i in ids) == n_paths
     assert sum(re.fullmatch(r"sensitivity-\d+", i) is not None for i in ids) == n_paths
-    assert "reliability-figure" in ids and "loadings-figure" in ids
-    # every SVG figure is well-formed XML
-    assert len(svgs(markup)) == 2 * n_paths + 4 + 1  # forest + sensitivity per path, 4 reliability panels, heat map
+    assert "loadings-figure" in ids
+    # every SVG figure is well-formed XML (the scale cards replaced the four reliability panels)
+    assert len(svgs(markup)) == 2 * n_paths + 1  # forest + sensitivity per path, heat map
 
 
 def test_headings_in_order_and_landmarks(sample):
@@ -261,10 +269,21 @@ def test_nothing_is_loaded_from_elsewhere(reports, name):
         assert tag not in ("script", "link", "img", "iframe", "object", "embed", "base"), tag
         for key in ("src", "href", "xlink:href", "action", "srcset", "poster", "data"):
             v = attrs.get(key)
-            if v is not None:
-                assert v.startswith("#"), (tag, key, v)  # only links within the page
+            if v is None:
+                continue
+            # links within the page, the chart downloads carried in the page itself (data: links
+            # with a download name), and the files written beside report.html (followed only
+            # when clicked: nothing is fetched to show the page)
+            if v.startswith("data:"):
+                assert tag == "a" and attrs.get("download"), (tag, key, v[:40])
+                assert v.startswith(("data:image/svg+xml;base64,", "data:image/png;base64,")), v[:40]
+            else:
+                assert v.startswith("#") or v in SIBLINGS, (tag, key, v)
     assert "http://" not in markup and "https://" not in markup
     assert "@import" not in page.css and not re.search(r"url\(", page.css)
+
+
+SIBLINGS = {"tables.xlsx", "brief.html", "report.html"}
 
 
 # Words that would mean a missing value leaked into the page. "None of ..." is English (a fit
@@ -274,7 +293,8 @@ LEAK = re.compile(r"\b(NaN|nan|None|null|undefined|inf|Infinity|-inf)\b(?! of\b)
 
 def _leaks(markup: str) -> list[str]:
     page = Page(markup)
-    chunks = page.texts + [v for _, a in page.tags for v in a.values() if v]
+    # attribute values too, except the chart downloads (base64 data: links, whose letters may spell anything)
+    chunks = page.texts + [v for _, a in page.tags for v in a.values() if v and not v.startswith("data:")]
     return [m.group(0) for c in chunks for m in LEAK.finditer(c)]
 
 
@@ -323,15 +343,17 @@ def test_path_numbers_equal_the_report(reports, name):
     report = reports[name]
     markup = render_html(report)
     page = Page(markup)
-    blocks = [plain(b) for b in re.findall(r'<div class="answer-path">(.*?)</div>', markup, flags=re.S)]
+    blocks = decision_blocks(markup)
     assert len(blocks) == len(report["paths"])
     for p, block in zip(report["paths"], blocks, strict=True):
         pref = p["estimates"][p["preferred"]]
         obs = p["estimates"]["observed"]
         title = f"{p['predictor']} \u2192 {p['outcome']}"
         assert block.startswith(title)
-        assert f"Preferred estimate: {fmt(pref['estimate'])} {interval(pref['ci'])}" in block
-        assert f"{fmt(obs['estimate'])} {interval(obs['ci'])} (observed" in block
+        assert f"Best estimate: {fmt(pref['estimate'])} {interval(pref['ci'])}" in block
+        # the sentence rounds the same two numbers to two decimals
+        assert f"about {fmt(pref['estimate'], 2)} on a {MINUS}1 to 1 scale" in block
+        assert f"the raw survey number, {fmt(obs['estimate'], 2)}," in block
         # the estimates table: every available estimate with its interval, SE and p
         caption = f"Estimates of {title}"
         for m, e in p["estimates"].items():
@@ -366,17 +388,20 @@ def test_bootstrap_intervals_shown(boot_teams):
 def test_reliability_fit_and_method_numbers_equal_the_report(sample):
     markup = render_html(sample)
     page = Page(markup)
+    cards = dict(re.findall(r'<div class="card[^"]*" data-scale="([^"]+)">(.*?)</div>', markup, flags=re.S))
+    assert list(cards) == list(sample["constructs"])
     for name, c in sample["constructs"].items():
-        row = page.row("Reliability per construct", name)
-        assert row[4].startswith(fmt(c["alpha"])) and interval(c["alpha_ci"]) in row[4]
-        assert row[5].startswith(fmt(c["omega"])) and row[6].startswith(fmt(c["composite_reliability"]))
-        assert row[7].startswith(fmt(c["ave"]))
-        for item, s in c["item_stats"].items():
+        card = plain(cards[name])
+        assert f"alpha {fmt(c['alpha'])} {interval(c['alpha_ci'])}" in card
+        assert f"omega {fmt(c['omega'])}" in card and f"CR {fmt(c['composite_reliability'])}" in card
+        assert f"AVE {fmt(c['ave'])}" in card
+        for item, st in c["item_stats"].items():
             irow = page.row("Item statistics", item)
-            assert irow[3].startswith(fmt(s["loading"])) and irow[4] == fmt(s["item_rest_r"])
+            assert irow[3].startswith(fmt(st["loading"])) and irow[4] == fmt(st["item_rest_r"])
     # AVE of the method scale is below .50 in the sample survey: marked by a cross, not colour alone
-    ave_row = page.row("Reliability per construct", "impression")
-    assert sample["constructs"]["impression"]["ave"] < 0.5 and "\u2717" in ave_row[7]
+    assert sample["constructs"]["impression"]["ave"] < 0.5
+    assert re.search(f"AVE {re.escape(fmt(sample['constructs']['impression']['ave']))} \\(\u2265 0.50\\) \u2717",
+                     plain(cards["impression"]))
     fit = sample["measurement_model"]["fit"]
     assert page.row("Fit of the measurement model", "CFI")[1] == fmt(fit["cfi"])
     rmsea = page.row("Fit of the measurement model", "RMSEA")[1]
@@ -388,10 +413,10 @@ def test_reliability_fit_and_method_numbers_equal_the_report(sample):
     reason = next(r for r in mv["verdict"]["reasons"] if re.match(r"\[\w+\] method factor", r))
     assert pct(mv["method_factor"]["method_share"]) in mf_row[2]
     assert mf_row[5].endswith(reason[1:reason.index("]")])
-    names = list(sample["constructs"])
-    for k, v in sample["measurement_model"]["htmt"].items():
-        a, b = k.split("|")
-        assert page.row("Heterotrait-monotrait", b)[1 + names.index(a)] == fmt(v)
+    # discriminant validity: every pair, ranked from the closest to overlapping, with its HTMT
+    ranked = sorted(sample["measurement_model"]["htmt"].items(), key=lambda kv: -kv[1])
+    listed = re.findall(r"<li><strong>(.*?) and (.*?)</strong>: HTMT ([^,]+),", markup)
+    assert [(html.unescape(a) + "|" + html.unescape(b), v) for a, b, v in listed] == [(k, fmt(v)) for k, v in ranked]
     # the sensitivity markers carry the report's shares
     s = sample["paths"][0]["sensitivity"]
     sens = [x for x in svgs(markup) if (x.findtext("title") or "").startswith("Sensitivity of")][0]
@@ -401,21 +426,24 @@ def test_reliability_fit_and_method_numbers_equal_the_report(sample):
     assert f"interval reaches 0 at {pct(s['ci_covers_zero_at'])}" in labels
 
 
-def test_answer_names_the_bias_that_dominated(sample, full):
+def test_answer_says_which_way_the_raw_number_errs(sample, full):
     for report in (sample, full):
-        markup = render_html(report)
-        blocks = [plain(b) for b in re.findall(r'<div class="answer-path">(.*?)</div>', markup, flags=re.S)]
-        for p, block in zip(report["paths"], blocks, strict=True):
+        for p, block in zip(report["paths"], decision_blocks(render_html(report)), strict=True):
             e = p["estimates"]
-            o, la, pr = (round(e[k]["estimate"], 3) for k in ("observed", "latent", p["preferred"]))
-            if p["preferred"] == "latent":
-                assert "corrects unreliability only" in block
-                continue
-            expected = "Shared method dominated" if abs(pr - la) > abs(la - o) else "Unreliability dominated"
-            assert expected in block
-            # the differences printed are those of the printed numbers
-            gap = fmt(la - o)
-            assert f"({gap if gap.startswith(MINUS) or gap == fmt(0) else '+' + gap}, latent model)" in block
+            o, pr = round(e["observed"]["estimate"], 2), round(e[p["preferred"]]["estimate"], 2)
+            if o * pr < 0:
+                assert "points the other way" in block
+            elif abs(pr) < abs(o):
+                assert f"the raw survey number, {fmt(o, 2)}, overstates it" in block
+            elif abs(pr) > abs(o):
+                assert f"the raw survey number, {fmt(o, 2)}, understates it" in block
+            # a negative corrected path says why the shared answering style hid part of it
+            corrected = p["preferred"].endswith("_adjusted")
+            assert ("makes a negative link look weaker" in block) == (corrected and e[p["preferred"]]["estimate"] < 0)
+    # the sample survey has a negative path (workload -> engagement) that the raw number understates
+    neg = [b for p, b in zip(sample["paths"], decision_blocks(render_html(sample)), strict=True)
+           if p["predictor"] == "workload"]
+    assert neg and "understates it" in neg[0] and "more workload goes with less engagement" in neg[0]
 
 
 def test_missing_corrections_say_why(hostile):
@@ -543,3 +571,189 @@ def test_render_is_pure(sample):
     before = json.dumps(sample, sort_keys=True)
     assert render_html(sample) == render_html(sample)
     assert json.dumps(sample, sort_keys=True) == before  # the report is not changed
+
+
+# --------------------------------------------------------------------------- the first screen and new fields
+
+def _card_blocks(markup: str) -> list[str]:
+    return re.findall(r'<div class="answer-path decision"[^>]*>.*?<p class="sub numbers">.*?</p>', markup, flags=re.S)
+
+
+def test_review_checks_and_trust_lead_the_page(sample):
+
+    r = with_new_fields(sample)
+    markup = render_html(r)
+    page = Page(markup)
+    assert page.errors == [] and _leaks(markup) == []
+    # "review before use" at the very top, naming the items and the fix
+    review = markup.index('id="review"')
+    assert review < markup.index('id="answer"') < markup.index('id="cautions"')
+    block = plain(markup[review:markup.index("</section>", review)])
+    assert "Review before use" in block and "wld2, wld4" in block and 'mark wld2 and wld4 as "reverse"' in block
+    # the assumption checks come before any estimate: status and message in view, the rest as detail
+    strip = markup.index('id="assumptions"')
+    assert strip < markup.index('id="decision-1"') < markup.index('id="paths"')
+    labels = {"holds": "holds", "doubtful": "doubtful", "fails": "fails", "untestable": "cannot be tested"}
+    items = re.findall(r"<li><details><summary>(.*?)</summary>(.*?)</details></li>",
+                       markup[strip:markup.index('id="decision-1"')], flags=re.S)
+    assert len(items) == len(r["assumptions"])
+    for a, (summary, detail) in zip(r["assumptions"], items, strict=True):
+        assert plain(summary).endswith(f"{labels[a['status']]} {a['message']}")
+        d = plain(detail)
+        assert all(e in d for e in a["evidence"]) and a["rule"] in d and a["source"] in d
+        assert "Marker-adjusted" in d and "Method-factor adjusted" in d  # the estimates resting on it, by name
+    # one card per path: the trust light in words and in filled notches (readable without colour)
+    for p, card in zip(r["paths"], _card_blocks(markup), strict=True):
+        level = p["trust"]["level"]
+        assert f"Trust: {level}" in plain(card)
+        assert f'aria-label="How far the answer can be trusted: {level}"' in card
+        assert card.count('class="notch on"') == {"high": 3, "medium": 2, "low": 1}[level]
+        text = plain(card)
+        b = p["bounds"]
+        assert f"between {fmt(b['low'], 2)} and {fmt(b['high'], 2)}" in text
+        assert ("This survey cannot pin the answer down: " + p["cannot_pin_down"] in text) == p["bounds_wide"]
+    # HTMT2 and the variant beside HTMT
+    mm = r["measurement_model"]
+    assert f"HTMT variant: {mm['htmt_variant']}." in plain(markup)
+    k, v = next(iter(mm["htmt2"].items()))
+    assert f"HTMT2 {fmt(v)}" in plain(markup)
+    # the sensitivity figure marks the published range and the estimated share's interval
+    sens = [x for x in svgs(markup) if (x.findtext("title") or "").startswith("Sensitivity of")][0]
+    assert "published range" in ["".join(t.itertext()) for t in sens.iter("text")]
+    assert f"{pct(0.0)} to {pct(0.3)}" in plain(markup) and f"{pct(0.08)} to {pct(0.16)}" in plain(markup)
+
+
+def test_new_fields_missing_or_partial_do_not_break(sample):
+
+    r = with_new_fields(sample)
+    r["assumptions"] = [{"id": "odd"}, {"status": "nonsense", "message": None}, None, "text"]
+    r["review_reasons"] = None
+    for p in r["paths"]:
+        p["trust"], p["bounds"] = {"level": "sky-high"}, {"low": None}
+        p["sensitivity"]["marks"] = {"published_range": None}
+    r["paths"][0].pop("trust")
+    markup = render_html(r)
+    page = Page(markup)
+    assert page.errors == [] and _leaks(markup) == []
+    assert all("Trust: not rated" in plain(c) for c in _card_blocks(markup))
+    assert "Review before use" in plain(markup)  # review_needed without reasons still asks for review
+
+
+def test_undetermined_verdict(sample):
+    r = copy.deepcopy(sample)
+    r["method_variance"]["verdict"]["level"] = "undetermined"
+    page = Page(render_html(r))
+    assert "Common-method variance: UNDETERMINED" in [t for _, t in page.headings]
+
+
+def test_every_chart_downloads_as_svg_and_png(sample):
+    import base64
+
+    markup = render_html(sample)
+    n_charts = len(svgs(markup))
+    links = re.findall(r'<a download="([^"]+)" href="data:image/(svg\+xml|png);base64,([^"]+)">', markup)
+    svg_links = [(n, b) for n, kind, b in links if kind == "svg+xml"]
+    png_links = [(n, b) for n, kind, b in links if kind == "png"]
+    assert len(svg_links) == len(png_links) == n_charts
+    for name, b64 in svg_links:
+        root = ET.fromstring(base64.b64decode(b64))
+        assert name.endswith(".svg") and root.tag == "{http://www.w3.org/2000/svg}svg"
+    for name, b64 in png_links:
+        assert name.endswith(".png") and base64.b64decode(b64)[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature
+
+
+def test_teams_say_why_a_value_is_missing_and_mark_imprecise_intervals(sample):
+    page = Page(render_html(sample))
+    rows = page.table("Key paths within and between groups")[1:]
+    for p, row in zip(sample["teams"]["paths"], rows, strict=True):
+        same, split = row[4], row[5]
+        if p["same_source_team"]["estimate"] is None:
+            assert same.startswith("not available: ") and len(same) > 30
+        ci = p["split_source"]["ci"]
+        if ci and ci[1] - ci[0] > 1.0:
+            assert split.startswith("too imprecise to read") and interval(ci) in split
+        elif p["split_source"]["estimate"] is None:
+            assert split.startswith("not available: ")
+    assert any("too imprecise to read" in r[5] for r in rows)  # the sample's split estimates are
+
+
+def test_fit_reads_as_a_sentence():
+    from measurement.html_report import fit_sentence
+
+    # thresholds as the report carries them (Hu & Bentler 1999 cut-offs, common practice)
+    th = {"cfi": {"value": 0.95, "direction": ">="}, "tli": {"value": 0.95, "direction": ">="},
+          "rmsea": {"value": 0.06, "direction": "<="}, "srmr": {"value": 0.08, "direction": "<="}}
+    good = {"cfi": 0.98, "tli": 0.97, "rmsea": 0.03, "srmr": 0.04}
+    assert fit_sentence(good, th) == "The measurement model fits well by all four usual checks."
+    assert fit_sentence({**good, "rmsea": 0.09}, th) == ("The measurement model fits well by three of the 4 usual "
+                                                         "checks; RMSEA falls short.")
+    assert "misses every one" in fit_sentence({"cfi": 0.5, "tli": 0.5, "rmsea": 0.2, "srmr": 0.2}, th)
+    assert "could not be judged" in fit_sentence({}, th)
+
+
+def test_decision_sentences():
+    from measurement.decision import DIRECTION_NOTE, sentence
+
+    def path(obs, pref, ci, key="method_factor_adjusted"):
+        return {"predictor": "workload", "outcome": "engagement", "preferred": key,
+                "estimates": {"observed": {"estimate": obs}, key: {"estimate": pref, "ci": ci}}}
+
+    s, note = sentence(path(-0.01, -0.193, [-0.255, -0.131]))
+    assert s.startswith("Workload matters a little for engagement (more workload goes with less engagement): "
+                        f"about {MINUS}0.19 on a {MINUS}1 to 1 scale once the shared answering style")
+    assert s.endswith(f"the raw survey number, {MINUS}0.01, understates it.") and note == DIRECTION_NOTE
+    s, note = sentence(path(0.40, 0.05, [-0.02, 0.12]))
+    assert s.startswith("Workload may not matter for engagement") and "overstates it" in s and note is None
+    s, _ = sentence(path(0.40, 0.45, [0.4, 0.5], key="latent"))
+    assert "could not be removed and may remain" in s and "understates it" in s
+    s, _ = sentence(path(0.2, -0.2, [-0.3, -0.1]))
+    assert "points the other way" in s
+    s, note = sentence(path(0.2, None, None))
+    assert s.startswith("No estimate could be computed") and note is None
+
+
+def test_brief_is_one_page_of_the_decision(sample):
+
+    r = with_new_fields(sample)
+    markup = render_brief(r, when="2026-01-01 10:00 UTC")
+    page = Page(markup)
+    assert page.errors == [] and _leaks(markup) == []
+    text = plain(markup)
+    assert "produced 2026-01-01 10:00 UTC" in text and r["data"]["sha256"] in text
+    assert markup.index('id="review"') < markup.index('id="answer"')
+    assert len(_card_blocks(markup)) == len(r["paths"])
+    for c in r["cautions"][:3]:  # the three that matter most, in full
+        assert html.escape(c, quote=True) in markup
+    assert f"{len(r['cautions']) - 3} more cautions in the full report" in text
+    assert "http://" not in markup and "https://" not in markup
+    for tag, _ in page.tags:
+        assert tag not in ("script", "link", "img", "iframe")
+
+
+def test_first_screen_speaks_plainly(sample):
+    # the first screen (up to the list of detail sections) carries none of the trade shorthand
+    # the detail sections use, and no model name
+    markup = render_html(with_new_fields(sample, review=False))
+    first = plain(markup[markup.index('id="answer"'):markup.index('class="toc"')])
+    for jargon in ("BCa", "r_M", "test p", "standardized coefficient", "latent model", "Wald", "disattenuated"):
+        assert jargon not in first, jargon
+    assert first.count("on a \u22121 to 1 scale") == len(sample["paths"])
+
+
+def test_forest_labels_are_level_with_their_points(sample):
+    for s in svgs(render_html(sample)):
+        if not (s.findtext("title") or "").startswith("Every estimate of"):
+            continue
+        marks = [(float(c.get("cy")), "circle") for c in s.iter("circle")]
+        marks += [(sum(float(pt.split(",")[1]) for pt in p.get("points").split()) / 4, "diamond")
+                  for p in s.iter("polygon")]
+        labels = [float(t.get("y")) for t in s.iter("text") if float(t.get("x")) < 20]
+        assert marks and labels
+        for cy, _ in marks:  # some label line sits on the point's line (text baseline about 5 px below centre)
+            assert min(abs(y - 5 - cy) for y in labels) < 6, cy
+
+
+def test_why_the_preferred_estimate_leads_is_kept(sample):
+    text = plain(render_html(sample))
+    for p in sample["paths"]:
+        assert f"Why {method_label(p['preferred'])} leads: {p['preferred_reason']}." in text

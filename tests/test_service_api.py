@@ -191,6 +191,14 @@ def test_analysis_runs_in_the_background_and_reports(app, client, svc_survey):
         assert_error(html, 404, "not_available")
     else:
         assert html.status_code == 200 and html.mimetype == "text/html"
+    brief = client.get(f"/v1/analyses/{acc['id']}/brief.html", headers=h)
+    if html_renderer("render_brief") is None:
+        assert_error(brief, 404, "not_available")
+    else:
+        # the one-page brief: the decision per path and the data's fingerprint, dated
+        text = brief.get_data(as_text=True)
+        assert brief.status_code == 200 and brief.mimetype == "text/html"
+        assert "support \u2192 engagement" in text and report["data"]["sha256"] in text and "produced 20" in text
 
 
 def test_data_problems_found_while_running_fail_the_analysis_naming_row_and_column(app, client):
@@ -287,6 +295,9 @@ def test_another_tenants_ids_answer_404_on_every_object_route(app, client, svc_s
                      ("/v1/analyses/<analysis_id>/report.html", "GET"),
                      ("/v1/analyses/<analysis_id>/tables.xlsx", "GET"),
                      ("/v1/analyses/<analysis_id>/tables/<name>.csv", "GET")}
+
+
+                     ("/v1/analyses/<analysis_id>/brief.html", "GET")}
     # an object named in a body is checked too
     assert_error(start(client, intruder, ds["id"], design), 404, "not_found", "dataset_id")
     # lists show only one's own

@@ -166,6 +166,10 @@ def test_real_responses_validate_against_the_documented_schemas(app, headers, do
           c.get(f"/v1/analyses/{aid}/tables/constructs.csv", headers=headers))
     check("/v1/analyses/{id}/tables/{name}.csv", "get",
           c.get(f"/v1/analyses/{aid}/tables/nosuch.csv", headers=headers))
+    check("/v1/analyses/{id}/brief.html", "get",
+          c.get(f"/v1/analyses/{aid}/brief.html", headers=headers))
+    check("/v1/analyses/{id}/brief.html", "get",
+          c.get("/v1/analyses/an_none/brief.html", headers=headers))
     check("/v1/datasets/{id}", "delete", c.delete(f"/v1/datasets/{ds['id']}", headers=headers))
     check("/v1/datasets/{id}", "delete", c.delete(f"/v1/datasets/{ds['id']}", headers=headers))
 

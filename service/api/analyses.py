@@ -14,6 +14,7 @@ import importlib.util
 import json
 import logging
 import re
+from datetime import datetime
 
 from flask import Blueprint, Response, jsonify, request
 
@@ -228,24 +229,42 @@ def report_json(analysis_id: str) -> Response:
     return Response(text, status=200, mimetype="application/json")
 
 
-def html_renderer():
-    """measurement.html_report.render_html when that module exists, else None."""
+def html_renderer(name: str = "render_html"):
+    """A renderer of measurement.html_report (render_html) or measurement.brief (render_brief)
+    when that module exists in this version, else None."""
+    module = HTML_MODULE if name == "render_html" else "measurement.brief"
     try:
-        if importlib.util.find_spec(HTML_MODULE) is None:
+        if importlib.util.find_spec(module) is None:
             return None
     except ModuleNotFoundError:
         return None
-    return importlib.import_module(HTML_MODULE).render_html
+    return getattr(importlib.import_module(module), name)
+
+
+def _made_when(a: dict) -> str | None:
+    """The time the analysis finished, as the report and the brief print it."""
+    t = a.get("finished_at")
+    if isinstance(t, datetime):
+        return t.strftime("%Y-%m-%d %H:%M UTC")
+    return str(t)[:16].replace("T", " ") + " UTC" if t else None
+
+
+def _page(analysis_id: str, name: str, what: str) -> Response:
+    a = _found(analysis_id, with_report=True)
+    render = html_renderer(name)
+    if render is None:
+        raise ApiError(404, "not_available", f"the {what} is not available in this version "
+                       "of samesource; read report.json", None)
+    text = _finished(a)
+    return Response(render(json.loads(text), when=_made_when(a)), status=200, mimetype="text/html")
 
 
 def report_html(analysis_id: str) -> Response:
-    a = _found(analysis_id, with_report=True)
-    render = html_renderer()
-    if render is None:
-        raise ApiError(404, "not_available", "the HTML report is not available in this version "
-                       "of samesource; read report.json", None)
-    text = _finished(a)
-    return Response(render(json.loads(text)), status=200, mimetype="text/html")
+    return _page(analysis_id, "render_html", "HTML report")
+
+
+def brief_html(analysis_id: str) -> Response:
+    return _page(analysis_id, "render_brief", "one-page brief")
 
 
 XLSX = "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"
@@ -290,4 +309,6 @@ def add_routes(bp: Blueprint) -> None:
     bp.add_url_rule("/analyses/<analysis_id>/report.json", "report_json", report_json,
                     methods=["GET"])
     bp.add_url_rule("/analyses/<analysis_id>/report.html", "report_html", report_html,
+                    methods=["GET"])
+    bp.add_url_rule("/analyses/<analysis_id>/brief.html", "brief_html", brief_html,
                     methods=["GET"])

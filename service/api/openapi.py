@@ -388,6 +388,18 @@ def document() -> dict:
                                   "404": _error("No such analysis, or no such table (the message lists them)"),
                                   "409": _error("Not finished yet, or failed")}},
         },
+        "/v1/analyses/{id}/brief.html": {
+            "parameters": [_ID],
+            "get": {"summary": "The one-page brief (print-ready): the decision per key path, "
+                               "how far to trust it, the cautions that matter most",
+                    "operationId": "getBriefHtml",
+                    "responses": {"200": {"description": "The brief page",
+                                          "content": {"text/html": {"schema": {"type": "string"}}}},
+                                  **_AUTH_ERRORS,
+                                  "404": _error("No such analysis, or (code not_available) no "
+                                                "brief in this version"),
+                                  "409": _error("Not finished yet, or failed")}},
+        },
         "/v1/openapi.json": {
             "get": {"summary": "This document", "operationId": "openapi",
                     "responses": {"200": {"description": "OpenAPI 3.1 document",
