@@ -294,9 +294,7 @@ def test_another_tenants_ids_answer_404_on_every_object_route(app, client, svc_s
                      ("/v1/analyses/<analysis_id>/report.json", "GET"),
                      ("/v1/analyses/<analysis_id>/report.html", "GET"),
                      ("/v1/analyses/<analysis_id>/tables.xlsx", "GET"),
-                     ("/v1/analyses/<analysis_id>/tables/<name>.csv", "GET")}
-
-
+                     ("/v1/analyses/<analysis_id>/tables/<name>.csv", "GET"),
                      ("/v1/analyses/<analysis_id>/brief.html", "GET")}
     # an object named in a body is checked too
     assert_error(start(client, intruder, ds["id"], design), 404, "not_found", "dataset_id")
