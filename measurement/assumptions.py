@@ -312,7 +312,9 @@ def estimate_stable(paths: list[dict]) -> Assumption:
             if e is None:
                 continue
             st = "holds"
-            if e.get("status") != "ok":
+            # "undefined" is a formula that does not apply (a corrected correlation above 1),
+            # said in the estimate's note; a model that did not fit cleanly is instability
+            if e.get("status") not in ("ok", "undefined"):
                 st = "fails"
                 evidence.append(f"{m} ({p['outcome']} on {p['predictor']}): model status {e.get('status')}")
             b = e.get("bootstrap")
