@@ -7,7 +7,7 @@ from typing import Any
 
 import numpy as np
 
-from .assumptions import Assumption, estimate_stable, find
+from .assumptions import SE_RATIO_LIMIT, Assumption, estimate_stable, find
 from .bounds import PUBLISHED_SHARES, path_bounds, plausible_shares
 from .design import Design
 from .fitting import Moments
@@ -104,7 +104,7 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
                     continue
                 ratio = se_ratio(e.se_robust, e.se)
                 use_robust = e.se_robust is not None and (
-                    robust_wanted or (ratio is not None and not 1 / 1.5 <= ratio <= 1.5))
+                    robust_wanted or (ratio is not None and not 1 / SE_RATIO_LIMIT <= ratio <= SE_RATIO_LIMIT))
                 se = e.se_robust if use_robust else e.se
                 ci, pval = wald(e.estimate, se, opts.confidence)
                 entry: dict[str, Any] = {"estimate": e.estimate, "se": se, "ci": ci, "p": pval,
