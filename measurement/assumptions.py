@@ -154,7 +154,8 @@ def marker_carries_method(design: Design, mv: dict) -> Assumption | None:
         checks=["marker", "cfa_marker", "method_factor"],
         rule="fails when the marker finds no method (share below 0.03 or r_M not significant) while a measured "
              "method scale or a method factor identified without the marker finds some (share at least 0.03, "
-             f"p < .05); doubtful when another check finds over {AGREE_FACTOR:g} times the marker's share; "
+             "p < .05; the factor without the marker counts only where the items' loadings differ within a "
+             f"scale, as it is not identified otherwise); doubtful when another check finds over {AGREE_FACTOR:g} times the marker's share; "
              "untestable when no other check is informative (our rules)",
         source="Lindell & Whitney (2001) and Williams, Hartman & Cavazotte (2010) assume the marker shares the "
                "method; Richardson, Simmering & Sturman (2009) show the techniques fail when it does not")

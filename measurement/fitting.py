@@ -1171,9 +1171,11 @@ def fit_model(spec: ModelSpec, data: Moments | RawData, *, time_limit: float = 6
 
 
 def refit(previous: FitResult, data: Moments | RawData, *, time_limit: float = 60.0,
-          compute_se: bool = False) -> FitResult:
+          compute_se: bool = False, max_iter: int = 1000) -> FitResult:
     """Refit the same model to new data from the previous estimates, one start (for the
-    bootstrap: data are typically a resampled covariance matrix)."""
+    bootstrap: data are typically a resampled covariance matrix). ``max_iter`` caps the
+    scoring steps: a cap in steps, unlike one in seconds, gives the same result however
+    busy the machine is."""
     deadline = _Deadline(time_limit)
     st = previous._structure or _Structure(previous.spec)
     warm = np.array(previous.x, dtype=float)
@@ -1181,11 +1183,12 @@ def refit(previous: FitResult, data: Moments | RawData, *, time_limit: float = 6
         warm = np.concatenate([warm, previous.means.to_numpy(dtype=float)])
     with _single_threaded_blas():
         return _fit(st, data, deadline, n_starts=1, start=None, seed=0,
-                    compute_se=compute_se, warm_x=warm)
+                    compute_se=compute_se, warm_x=warm, max_iter=max_iter)
 
 
 def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_starts: int,
-         start: Any, seed: int, compute_se: bool, warm_x: np.ndarray | None) -> FitResult:
+         start: Any, seed: int, compute_se: bool, warm_x: np.ndarray | None,
+         max_iter: int = 1000) -> FitResult:
     obj = _objective_for(st, data)
     fiml = isinstance(obj, _FIMLObjective)
     warnings: list[str] = []
@@ -1244,7 +1247,7 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
             continue
         # Even past the deadline the first start is evaluated, so there is a point to report.
         # A warm start is near a solution: begin with almost undamped scoring steps.
-        run = _optimize(obj, xs, deadline, lam0=1e-6 if warm_x is not None else 1e-3)
+        run = _optimize(obj, xs, deadline, max_iter=max_iter, lam0=1e-6 if warm_x is not None else 1e-3)
         if run is None:
             continue
         runs.append((run, _check_proper(st, run.x[: st.q], S_ref)))

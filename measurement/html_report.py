@@ -278,7 +278,11 @@ def checks_strip(report: dict) -> str:
         if a.get("remedy"):
             detail.append(f"What would settle it: {h(a['remedy'])}")
         body = "".join(f"<p>{x}</p>" for x in detail)
-        rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.get("message") or a.get("id"))}</span></summary>'
+        # a failed check that no estimate rests on must not read like a flaw in the answer
+        scope = ("" if aff else ' <span class="sub">No key-path estimate rests on this; it concerns '
+                 + h(", ".join(CHECK_LABELS.get(c, c) for c in a.get("checks") or []) or "one method check")
+                 + " only.</span>")
+        rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.get("message") or a.get("id"))}</span>{scope}</summary>'
                     f'<div class="detail">{body or "<p>No further detail.</p>"}</div></details></li>')
     return ('<div class="checks-strip" id="assumptions"><h3>What the answer rests on: the assumption checks</h3>'
             f'<ul>{"".join(rows)}</ul></div>')

@@ -11,6 +11,7 @@ are on the standardized-factor scale and latent covariances are correlations.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import replace
 
 from .design import Construct, Design
 from .modelspec import ModelSpec, Param
@@ -45,6 +46,10 @@ def single_factor_model(construct: Construct) -> ModelSpec:
 def measurement_model(design: Design, constructs: Sequence[Construct] | None = None) -> ModelSpec:
     """Confirmatory factor model: each construct a factor, factors freely correlated."""
     cons = list(constructs) if constructs is not None else list(design.constructs.values())
+    return _congeneric(cons, "measurement_model")
+
+
+def _congeneric(cons: Sequence[Construct], name: str) -> ModelSpec:
     items = [it for c in cons for it in c.items]
     params: list[Param] = []
     for c in cons:
@@ -52,12 +57,34 @@ def measurement_model(design: Design, constructs: Sequence[Construct] | None = N
     params += _errors(items)
     params += _correlate([c.name for c in cons])
     return ModelSpec(
-        name="measurement_model",
+        name=name,
         observed=tuple(items),
         latent=tuple(c.name for c in cons),
         params=tuple(params),
         description="every construct a factor of its own items, factors freely correlated",
     )
+
+
+def tau_equivalent_model(constructs: Sequence[Construct]) -> ModelSpec:
+    """Essentially tau-equivalent measurement model (Lord & Novick 1968): within each construct
+    every loading fixed at 1, factor variances and covariances free, error variances free.
+    Nested in the congeneric :func:`substantive_measurement_model`."""
+    cons = list(constructs)
+    items = [it for c in cons for it in c.items]
+    params: list[Param] = []
+    for c in cons:
+        params += [Param("load", c.name, it, free=False, value=1.0) for it in c.items]
+        params.append(Param("cov", c.name, c.name, value=0.5))
+    params += _errors(items) + _correlate([c.name for c in cons])
+    return ModelSpec(name="tau_equivalent:" + "+".join(c.name for c in cons), observed=tuple(items),
+                     latent=tuple(c.name for c in cons), params=tuple(params),
+                     description="equal loadings within each construct, factors freely correlated")
+
+
+def substantive_measurement_model(constructs: Sequence[Construct]) -> ModelSpec:
+    """The congeneric measurement model of the given constructs alone (named apart from the
+    design's full measurement model)."""
+    return _congeneric(list(constructs), "congeneric:" + "+".join(c.name for c in constructs))
 
 
 def one_factor_model(items: Sequence[str], name: str = "common") -> ModelSpec:
@@ -302,3 +329,20 @@ def assumed_method_model(design: Design, item_variances: dict[str, float], share
     return ModelSpec(name=f"assumed_method:{share:.3f}", observed=base.observed,
                      latent=base.latent + (METHOD,), params=tuple(params),
                      description=f"latent path model with {share:.0%} of every item's variance fixed as method")
+
+
+def without_method_factor(spec: ModelSpec) -> ModelSpec:
+    """The same model without its method factor. For an equal-loading model (loadings fixed
+    at 1, variance free) this is the boundary of its parameter space, method variance 0."""
+    return replace(spec, name=spec.name + ":without", description="no method factor",
+                   latent=tuple(v for v in spec.latent if v != METHOD),
+                   params=tuple(p for p in spec.params if METHOD not in (p.lhs, p.rhs)))
+
+
+def only_method_variance_negative(fit) -> bool:
+    """True when the method variance is negative and every other variance positive: the
+    Heywood case sampling error gives when the true method variance is zero."""
+    t = fit.params
+    var = t[(t["op"] == "cov") & (t["lhs"] == t["rhs"])]
+    method = var[var["lhs"] == METHOD]
+    return bool(len(method) and (method["estimate"] < 0).all() and (var[var["lhs"] != METHOD]["estimate"] > 0).all())

@@ -19,14 +19,17 @@ from .design import Design, Path
 from .fitting import FitResult, Moments, RawData, fit_model, refit
 from .marker import choose_r_m, r_m_source
 from .models import (
+    METHOD,
     latent_path_model,
     measured_method_model,
     method_factor_model,
     method_path_model,
+    only_method_variance_negative,
     path_constructs,
     score_name,
     single_factor_model,
     single_indicator_model,
+    without_method_factor,
 )
 from .reliability import alpha_from_cov, omega_total
 from .robust_se import robust_se
@@ -129,11 +132,17 @@ class PathEstimator:
                              compute_se=compute_se, start=prev)
         if prev.status != "ok":
             return prev  # not used on the full sample, so not in the replicates either
-        # A replicate is refitted once from the full-sample solution, within a time budget
-        # scaled to that fit; one that does not come back proper counts as failed (fragile
-        # free method loadings, say) rather than being chased through more starts.
-        budget = min(self.time_limit, max(0.25, 3 * prev.elapsed))
-        return refit(prev, data, time_limit=budget)
+        # A replicate is refitted once from the full-sample solution, within a budget scaled
+        # to that fit; one that does not come back proper counts as failed (fragile free
+        # method loadings, say) rather than being chased through more starts.
+        return refit(prev, data, **self._budget(prev))
+
+    def _budget(self, prev: FitResult) -> dict:
+        # The budget is counted in scoring steps, so a replicate's result does not depend on
+        # how busy the machine is (seconds did: a seeded bootstrap differed between a quiet
+        # and a loaded run); the time limit stays, far looser, only as a guard against hangs.
+        return {"max_iter": max(50, 3 * prev.iterations),
+                "time_limit": min(self.time_limit, max(5.0, 30 * prev.elapsed))}
 
     def _item_data(self, X: np.ndarray) -> tuple[Moments | RawData, np.ndarray]:
         """Model input for the items, and the item covariance for closed-form statistics."""
@@ -313,7 +322,22 @@ class PathEstimator:
                 self.reduced, use_marker=self.use_method_factor == "marker",
                 equal_loadings=loadings == "equal"))
 
-        f = self._fit(spec(self.method_loadings), data, compute_se)
+        s = spec(self.method_loadings)
+        at_zero = self.warm.get(without_method_factor(s).name)
+        if not compute_se and s.name not in self.warm and at_zero is not None:
+            # the full sample's method variance sat at its boundary: re-estimate it from there
+            start = {(p.op, p.lhs, p.rhs): float(v) for p, v in zip(at_zero.spec.params, at_zero.params["estimate"],
+                                                                    strict=True) if p.free}
+            start[("cov", METHOD, METHOD)] = 0.0
+            f = fit_model(s, data, time_limit=self._budget(at_zero)["time_limit"], n_starts=1, compute_se=False,
+                          start=start)
+        else:
+            f = self._fit(s, data, compute_se)
+        if f.status == "improper" and only_method_variance_negative(f):
+            # A negative method variance is what sampling error gives when the true one is zero;
+            # the ML estimate within the parameter space is then its boundary, variance 0: the
+            # same model without the method factor (Self & Liang 1987 on estimates at a boundary).
+            return self._boundary_fit(f, data, compute_se)
         if compute_se and f.status != "ok" and self.method_loadings == "free":
             # Free loadings that were proper in the measurement part can turn improper once
             # the paths replace the trait correlations: fall back to equal loadings.
@@ -324,6 +348,23 @@ class PathEstimator:
                                   "equal-loading method factor was used for the corrected paths.")
                 return g
         return f
+
+    def _boundary_fit(self, f: FitResult, data, compute_se: bool) -> FitResult:
+        """``f`` refitted with its method variance fixed at zero, started from ``f``."""
+        spec = without_method_factor(f.spec)
+        prev = self.warm.get(spec.name)
+        if not compute_se and prev is not None and prev.status == "ok":
+            return refit(prev, data, **self._budget(prev))
+        start = {(p.op, p.lhs, p.rhs): float(v) for p, v in zip(f.spec.params, f.params["estimate"], strict=True)
+                 if p.free and not (p.op == "cov" and p.lhs == METHOD)}
+        g = fit_model(spec, data, time_limit=self.time_limit if compute_se else self._budget(f)["time_limit"],
+                      n_starts=self.n_starts if compute_se else 1,
+                      seed=self.seed, compute_se=compute_se, start=start)
+        if compute_se and g.status == "ok":
+            self.notes.append("The method variance was estimated below zero, which is what sampling error gives "
+                              "when there is none; the method-factor estimate is taken at its lower limit, zero "
+                              "(the same model without the method factor).")
+        return g
 
     def _absent(self, out: dict, method: str, why: str) -> None:
         for eq in self.paths:

@@ -1,8 +1,8 @@
 """One verdict on common-method variance, from stated rules over every check's signal.
 
-Each signal needs both statistical significance (p < .05) and a size worth naming, so
-that large samples do not turn trivial method variance into a flag and several tests do
-not add up to a false alarm. Thresholds are ours and common practice; docs/method-variance.md
+Each signal needs both statistical significance (p < .05 after Holm's adjustment over
+every test that can raise the level) and a size worth naming, so that large samples do not
+turn trivial method variance into a flag and several tests do not add up to a false alarm. Thresholds are ours and common practice; docs/method-variance.md
 states them with their reasons.
 """
 
@@ -34,6 +34,10 @@ RULES = [
     "Full-collinearity VIF above 3.3 (Kock 2015): minor at most, as collinearity has other causes.",
     "Each method factor is tested with the model actually used (free or equal loadings) against no method "
     "factor.",
+    "The tests that can raise the level (method factor, method factor without the marker, measured method, "
+    "CFA marker technique, r_M) are one family: their p-values are Holm-adjusted (Holm 1979) before they are "
+    "compared with .05 (.01 for the method factor without the marker), so that a survey without method "
+    "variance raises a false alarm at most 5% of the time however many checks its design allows.",
     "The verdict is the highest level any signal reaches. 'none' is said only when a check whose "
     "assumptions hold (a marker that could be vouched for, a measured method scale, an identified method "
     "factor without the marker) found nothing; otherwise 'undetermined'. Harman's test, the VIF and a marker "
@@ -51,8 +55,19 @@ def _share_level(share: float | None, significant: bool) -> str:
     return "none"
 
 
-def _sig(test: dict | None) -> bool:
-    return bool(test and test.get("p") is not None and test["p"] < 0.05)
+def holm(pvalues: dict[str, float | None]) -> dict[str, float | None]:
+    """Holm's (1979) step-down adjusted p-values: the family-wise error rate stays at the
+    chosen level under any dependence between the tests. ``None`` (no test) is left out."""
+    named = sorted(((p, k) for k, p in pvalues.items() if p is not None), key=lambda t: t[0])
+    m, running, out = len(named), 0.0, dict.fromkeys(pvalues)
+    for i, (p, k) in enumerate(named):
+        running = max(running, min(1.0, (m - i) * p))
+        out[k] = running
+    return out
+
+
+def _p(test: dict | None) -> float | None:
+    return test.get("p") if test else None
 
 
 def verdict(mv: dict, assumptions: list | None = None) -> dict:
@@ -66,9 +81,28 @@ def verdict(mv: dict, assumptions: list | None = None) -> dict:
     signals: list[tuple[str, str, bool]] = []  # (level, reason, can vouch for "none")
 
     mf = mv.get("method_factor")
+    plain = (mf or {}).get("without_marker")
+    mm = mv.get("measured_method")
+    cm = mv.get("cfa_marker")
+    mk = mv.get("marker")
+    # Every test that can raise the level is one family: Holm-adjusted, so a clean survey
+    # raises a false alarm at most 5% of the time however many checks its design allows.
+    family = {
+        "method_factor": _p(mf["tests"].get("used_vs_none") or mf["tests"]["method_vs_none"])
+        if mf and mf.get("usable_as_correction") else None,
+        "without_marker": _p(plain.get("test")) if plain and plain.get("informative") else None,
+        "measured_method": _p(mm["tests"]["method_vs_none"]) if mm else None,
+        "cfa_marker": _p(cm["tests"].get("baseline_vs_equal")) if cm and cm.get("tests") else None,
+        "marker": mk.get("r_m_p") if mk else None,
+    }
+    adj = holm(family)
+
+    def sig(name: str, level: float = 0.05) -> bool:
+        return adj.get(name) is not None and adj[name] < level
+
     if mf and mf.get("usable_as_correction"):
         test = mf["tests"].get("used_vs_none") or mf["tests"]["method_vs_none"]
-        lvl = _share_level(mf.get("method_share"), _sig(test))
+        lvl = _share_level(mf.get("method_share"), sig("method_factor"))
         vouch = marker_ok if mf["identified_by"] == "marker" else True
         signals.append((lvl, f"method factor ({mf['identified_by']}, {mf['loadings']} loadings): method share of "
                              f"item variance {_fmt(mf.get('method_share'))}, test p {_fmt(test['p'], 3)}"
@@ -77,42 +111,39 @@ def verdict(mv: dict, assumptions: list | None = None) -> dict:
     elif mf:
         signals.append(("none", "method factor: not usable here (" + "; ".join(mf.get("warnings") or ["checks failed"])
                         + ")", False))
-    plain = (mf or {}).get("without_marker")
     if plain and plain.get("informative"):
         # identified by the loading pattern alone: it counts only when clear either way
-        lvl = _share_level(plain.get("method_share"), plain.get("found_method", False))
+        lvl = _share_level(plain.get("method_share"), plain.get("found_method", False)
+                           and sig("without_marker", 0.01))
         signals.append((lvl, f"method factor without the marker: method share {_fmt(plain.get('method_share'))}, "
                              f"test p {_fmt((plain.get('test') or {}).get('p'), 3)}",
                         bool(plain.get("shows_absence"))))
 
-    mm = mv.get("measured_method")
     if mm:
         ok = mm.get("status") == "ok"
-        lvl = _share_level(mm.get("method_share"), _sig(mm["tests"]["method_vs_none"]))
+        lvl = _share_level(mm.get("method_share"), sig("measured_method"))
         signals.append((lvl, f"measured method '{mm['method_construct']}': method share "
                              f"{_fmt(mm.get('method_share'))}, test p {_fmt(mm['tests']['method_vs_none']['p'], 3)}",
                         ok))
 
-    cm = mv.get("cfa_marker")
     if cm and cm.get("tests"):
-        lvl = _share_level(cm.get("method_share_overall"), _sig(cm["tests"].get("baseline_vs_equal")))
+        lvl = _share_level(cm.get("method_share_overall"), sig("cfa_marker"))
         vouch = marker_ok and cfa_ok
         signals.append((lvl, f"CFA marker technique: method share {_fmt(cm.get('method_share_overall'))}, "
                              f"test p {_fmt((cm['tests'].get('baseline_vs_equal') or {}).get('p'), 3)}"
                              + ("" if cfa_ok else "; the marker has a trait of its own, so this share is a lower "
                                 "bound and no evidence of absence"), vouch))
         held = next((v for k, v in cm["tests"].items() if k.endswith("_vs_held")), None)
-        if _sig(held) and lvl != "none":
+        if held and held.get("p") is not None and held["p"] < 0.05 and lvl != "none":
             signals.append(("minor", "CFA marker technique: the substantive correlations change when "
                                      "method variance is allowed for", False))
 
-    mk = mv.get("marker")
     if mk:
-        r_m, sig = mk["r_m"], mk["r_m_p"] is not None and mk["r_m_p"] < 0.05
+        r_m, r_sig = mk["r_m"], sig("marker")
         lvl = "none"
-        if sig and r_m >= R_M_SUBSTANTIAL:
+        if r_sig and r_m >= R_M_SUBSTANTIAL:
             lvl = "substantial"
-        elif sig and r_m >= R_M_MINOR:
+        elif r_sig and r_m >= R_M_MINOR:
             lvl = "minor"
         signals.append((lvl, f"marker '{mk['marker']}': r_M {_fmt(r_m)} (p {_fmt(mk['r_m_p'], 3)})", marker_ok))
 
@@ -158,6 +189,7 @@ def verdict(mv: dict, assumptions: list | None = None) -> dict:
         "reasons": [f"[{lv}] {r}" for lv, r, _ in signals],
         "raised_by": raised,
         "vouching_checks": [r for lv, r, vouch in signals if vouch],
+        "tests_holm_adjusted": {k: v for k, v in adj.items() if v is not None},
         "rules": RULES,
     }
 
