@@ -312,6 +312,8 @@ def _forest_rows(report: dict, p: dict) -> list[svg.ForestRow]:
 
 
 def paths_section(report: dict, figs: Figures | None = None) -> str:
+    from .sources_html import path_sources_line
+
     figs = figs or Figures()
     paths = report.get("paths") or []
     if not paths:
@@ -334,6 +336,7 @@ def paths_section(report: dict, figs: Figures | None = None) -> str:
                f"preferred estimate (diamond, highlighted) sits from the observed one (top row), and whether its "
                f"interval crosses zero (dashed line). Rows marked not available name the reason.")
         out.append(f'<div class="keep"><h3 id="path-{i + 1}">{path_title(p)}</h3>')
+        out.append(path_sources_line(p))
         preds = p.get("predictors") or []
         if len(preds) > 1:
             out.append(f'<p class="sub">Estimated in the equation of {h(p.get("outcome"))} with all its predictors: '
@@ -1061,6 +1064,8 @@ def _cell(v: Any) -> str:
 # --------------------------------------------------------------------------- data, screening, warnings
 
 def data_section(report: dict) -> str:
+    from .sources_html import sources_block
+
     d = report.get("data") or {}
     mh = d.get("missing_handling") or {}
     rs = d.get("response_scale") or {}
@@ -1075,6 +1080,7 @@ def data_section(report: dict) -> str:
         ("Response scale", f"{num(rs.get('min'), 0)} to {num(rs.get('max'), 0)} (from the {h(rs.get('source'))})"
          if rs else DASH),
         ("Missing answers", f"{count(d.get('missing_cells'))} cells ({pct(d.get('missing_share'))})")])]
+    out.append(sources_block(report))
     out.append("<h3>Missing answers</h3>")
     out.append(dl([("Handling", h(mh.get("description") or mh.get("method"))),
                    ("Rows with a missing answer", count(mh.get("rows_with_missing"))),
@@ -1151,6 +1157,7 @@ def stylesheet(name: str) -> Markup:
 
 
 SECTIONS = (("paths", "Every estimate of each path"),
+            ("cross-source", "Same-source paths beside their cross-source counterparts"),
             ("sensitivity", "How much shared method would explain each path away"),
             ("reliability", "How well each scale measures"), ("loadings", "Item loadings"),
             ("method-variance", "Common-method checks"),
@@ -1159,7 +1166,9 @@ SECTIONS = (("paths", "Every estimate of each path"),
 
 
 def _toc(report: dict) -> str:
-    entries = [(i, t) for i, t in SECTIONS if i != "teams" or isinstance(report.get("teams"), dict)]
+    entries = [(i, t) for i, t in SECTIONS if (i != "teams" or isinstance(report.get("teams"), dict))
+               and (i != "cross-source" or any(isinstance(p, dict) and p.get("cross_source_check")
+                                               for p in report.get("paths") or []))]
     return ('<nav class="toc" aria-labelledby="toc-h"><h2 id="toc-h">The detail behind the answer '
             '<span class="sub">(each section opens when clicked)</span></h2><ol>'
             + "".join(f'<li><a href="#{i}">{t}</a></li>' for i, t in entries)
@@ -1195,7 +1204,10 @@ def render_html(report: dict, *, when: str | None = None) -> str:
     """The whole report as one self-contained HTML5 page (a string); ``when``: the date it was made."""
     d = report.get("data") or {}
     figs = Figures()
-    sections = [paths_section(report, figs), sensitivity_section(report, figs), reliability_section(report, figs),
+    from .sources_html import cross_source_section
+
+    sections = [paths_section(report, figs), cross_source_section(report, figs), sensitivity_section(report, figs),
+                reliability_section(report, figs),
                 loadings_section(report, figs), method_section(report), fit_section(report), teams_section(report),
                 data_section(report)]
     footer = (f'Report schema {h(report.get("schema"))}; made by {h(_get(report, "tool", "name"))} '

@@ -44,6 +44,9 @@ def _parser() -> argparse.ArgumentParser:
                    help="confidence level of every interval, 0.5 to 0.999 (default 0.95)")
     a.add_argument("--min-group-size", type=int, default=5, metavar="N",
                    help="no group's numbers are shown for groups smaller than this (default 5)")
+    a.add_argument("--source", action="append", default=[], metavar="NAME=PATH",
+                   help="the file of a second source the design names under 'sources' (manager "
+                        "ratings, a later wave, records), joined on ids; repeat for each source")
     a.add_argument("--quiet", action="store_true",
                    help="print only where the report is (no summary, no progress lines)")
 
@@ -186,9 +189,10 @@ def _analyze(args: argparse.Namespace) -> int:
         "bootstrap": args.bootstrap, "min_group_size": args.min_group_size,
         "confidence": args.confidence,
     })
+    sources = _source_files(args.source)
     shown = None if args.quiet else _TerminalProgress() if sys.stderr.isatty() else _LineProgress()
     try:
-        result = analyze(args.data, design, opts, progress=shown)
+        result = analyze(args.data, design, opts, progress=shown, sources=sources)
     finally:
         if shown is not None:
             shown.clear()
@@ -212,6 +216,22 @@ def _analyze(args: argparse.Namespace) -> int:
     if review_last_line(result.report):  # the last line says so (exit 0 all the same)
         print(review_last_line(result.report))
     return 0
+
+
+def _source_files(given: list[str]) -> dict[str, str]:
+    """--source NAME=PATH, each name once."""
+    out: dict[str, str] = {}
+    for text in given:
+        name, eq, path = text.partition("=")
+        name, path = name.strip(), path.strip()
+        if not eq or not name or not path:
+            raise InputError(f"--source {text!r}: write it as NAME=PATH, the source's name in the design's "
+                             "'sources' and its file, e.g. --source manager=manager_ratings.csv",
+                             code="bad_option")
+        if name in out:
+            raise InputError(f"--source {name}=... is given twice; give each source once", code="bad_option")
+        out[name] = path
+    return out
 
 
 def write_outputs(report: dict, out: Path) -> None:
