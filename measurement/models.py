@@ -317,6 +317,34 @@ def method_path_model(design: Design, method_spec: ModelSpec) -> ModelSpec:
     return with_paths(method_spec, design, name=f"{method_spec.name}+paths")
 
 
+def population_model(design: Design, *, method: bool) -> ModelSpec:
+    """The correction check's generating model (measurement/correction_check.py): every
+    construct of the design with the declared paths; with ``method``, one method factor with
+    equal loadings on the main file's substantive and marker items (the marker's trait
+    orthogonal to the substantive traits), on which a method construct's items load freely
+    (they measure it). Without ``method``: every construct a factor, no shared method."""
+    if not method:
+        return with_paths(measurement_model(design), design, name="population:no_method",
+                          description="every construct a factor of its items, the declared paths, no shared method")
+    marker = design.marker
+    cons = list(design.substantive) + ([marker] if marker else [])
+    items = [it for c in cons for it in c.items]
+    params = _trait_params(cons, orthogonal_to=[marker.name] if marker else [])
+    params += _errors(items)
+    params += [Param("load", METHOD, it, free=False, value=1.0) for it in same_source_items(cons)]
+    params.append(Param("cov", METHOD, METHOD, value=0.1))
+    observed = list(items)
+    if design.method is not None:
+        observed += list(design.method.items)
+        params += [Param("load", METHOD, it, value=0.3) for it in design.method.items]
+        params += _errors(design.method.items)
+    spec = ModelSpec(name="population:method", observed=tuple(observed),
+                     latent=tuple(c.name for c in cons) + (METHOD,), params=tuple(params),
+                     description="every construct a factor of its items, one shared method with equal loadings "
+                                 "on the main file's items")
+    return with_paths(spec, design, name="population:method")
+
+
 def assumed_method_model(design: Design, item_variances: dict[str, float], share: float) -> ModelSpec:
     """The latent path model with a method factor whose loadings are FIXED so that ``share``
     of every item's variance is method (loading sqrt(share * var(item)), factor variance 1,

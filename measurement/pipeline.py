@@ -114,6 +114,16 @@ def analyze(
     step("teams", 6, total)
     teams = teams_section(dsg, prepared, plan, opts, warnings)
 
+    check = next_time = None
+    if opts.check_corrections:  # measurement/correction_check.py, then the planning advice from it
+        from .correction_check import correction_check
+        from .planning import next_time_section
+
+        check, population = correction_check(dsg, prepared, plan, mv, paths, opts, n=opts.check_corrections,
+                                             executor=executor,
+                                             progress=lambda done, n: step("check_corrections", done, n))
+        next_time = next_time_section(dsg, population, plan, opts)
+
     step("report", 7, total)
     report: dict[str, Any] = {
         "schema": "samesource.report/1",
@@ -128,6 +138,8 @@ def analyze(
         "teams": teams,
         "options": opts.to_dict(),
         "design": dsg.to_dict(),
+        **({"correction_check": check} if check is not None else {}),
+        **({"next_time": next_time} if next_time is not None else {}),
     }
     # Review before use (measurement/review.py): after every section it reads from.
     report.update(review_section(constructs, dsg, scale_source=prepared.scale_source))

@@ -487,12 +487,14 @@ def test_page_adds_a_second_source_and_sends_it_with_the_analysis(server_factory
         assert sent["sources"] == two["sources"]
         assert sent["constructs"] == two["constructs"]
         shot(page, "12-second-source")
+        page.locator("#check_corrections").fill("2")
         with page.expect_request(lambda r: r.url.endswith("/v1/analyses") and r.method == "POST") as req:
             page.locator("#run-btn").click()
         body = json.loads(req.value.post_data)
         expect(page.locator("#progress-box")).to_be_visible()
         datasets = requests.get(f"{server.base}/v1/datasets", headers={"Authorization": f"Bearer {token}"},
                                 timeout=30).json()["datasets"]
+        assert body["options"]["check_corrections"] == 2
         assert body["sources"] == {"manager": next(d["id"] for d in datasets if d["name"] == "manager_ratings.csv")}
         browser.close()
     assert not problems, problems

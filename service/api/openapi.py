@@ -125,6 +125,9 @@ SCHEMAS: dict[str, Any] = {
             "seed": {"type": "integer", "minimum": 0, "maximum": 4294967295, "default": 0},
             "min_group_size": {"type": "integer", "minimum": 2, "maximum": 1000, "default": 5},
             "sheet": {"type": ["string", "null"], "default": None},
+            "check_corrections": {"type": "integer", "minimum": 0, "maximum": 1000, "default": 0,
+                                  "description": "simulated surveys per scenario of the correction check "
+                                                 "(report.correction_check and report.next_time); 0: none"},
         },
     },
     "Dataset": {
@@ -194,7 +197,7 @@ SCHEMAS: dict[str, Any] = {
         "properties": {
             "stage": {"type": ["string", "null"],
                       "description": "starting, load, screen, reliability, measurement_model, "
-                                     "method_variance, paths, bootstrap, report, done"},
+                                     "method_variance, paths, bootstrap, teams, check_corrections, report, done"},
             "done": {"type": "integer"},
             "total": {"type": "integer"},
         },

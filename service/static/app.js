@@ -846,7 +846,7 @@
 
   function readOptions() {
     const opts = { missing: document.querySelector("input[name='missing']:checked").value };
-    for (const name of ["bootstrap", "seed"]) {
+    for (const name of ["bootstrap", "seed", "check_corrections"]) {
       const t = $(name).value.trim();
       if (t === "") continue;
       const n = Number(t);
@@ -928,7 +928,8 @@
     waiting: "waiting to start", starting: "starting", load: "reading the data",
     screen: "screening answers", reliability: "reliability", measurement_model: "measurement model",
     method_variance: "common-method checks", paths: "key paths", bootstrap: "bootstrap",
-    teams: "teams", report: "writing the report", done: "done",
+    teams: "teams", check_corrections: "checking the corrections on simulated surveys",
+    report: "writing the report", done: "done",
   };
 
   function showProgress(a) {
