@@ -18,6 +18,7 @@ file's. The rules (docs/design-file.md, "Second sources"):
 from __future__ import annotations
 
 import dataclasses
+import os
 import re
 from collections import Counter
 from collections.abc import Mapping
@@ -164,13 +165,14 @@ def _join(name: str, design: Design, src: LoadedTable, main_ids: list[str | None
     joined[take >= 0] = values[take[take >= 0]]
     frame = pd.DataFrame(joined, index=main_index, columns=prepared.items.columns)
 
-    notes = [{"code": w["code"], "message": f"source '{name}' ({src.source}): {w['message']}"}
+    label = os.path.basename(src.source)  # the report names files without their folders
+    notes = [{"code": w["code"], "message": f"source '{name}' ({label}): {w['message']}"}
              for w in prepared.warnings]
     unmatched = len(main_unmatched) + without_id
     if unmatched:
         notes.append({"code": "source_unmatched_rows", "message": (
             f"{unmatched} of {len(main_ids)} rows of the main file have no row in source '{name}' "
-            f"({src.source})" + (f", {without_id} of them without an id" if without_id else "")
+            f"({label})" + (f", {without_id} of them without an id" if without_id else "")
             + (f"; for example {_examples(main_unmatched)}" if main_unmatched else "")
             + f": their {name} items are missing (listwise deletion leaves these rows out of every "
               "model; full-information ML keeps them with those items missing)"
@@ -178,11 +180,11 @@ def _join(name: str, design: Design, src: LoadedTable, main_ids: list[str | None
     unused = len(source_unmatched) + sum(v is None for v in ids)
     if unused:
         notes.append({"code": "source_unused_rows", "message": (
-            f"{unused} of {len(ids)} rows of source '{name}' ({src.source}) have "
+            f"{unused} of {len(ids)} rows of source '{name}' ({label}) have "
             + (f"an id the main file does not have (for example {_examples(source_unmatched)})"
                if source_unmatched else "no id") + ": they cannot be joined and are not used")})
     link = SourceLink(
-        name=name, kind=spec.kind, file=src.source, format=src.format, sha256=src.sha256,
+        name=name, kind=spec.kind, file=label, format=src.format, sha256=src.sha256,
         id_column=spec.id_column, main_id_column=design.id_column or "",
         constructs=[c for c in design.constructs if design.source_of(c) == name],
         items=values.shape[1], rows=len(ids), matched=matched, main_rows=len(main_ids),
