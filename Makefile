@@ -15,7 +15,7 @@ $(STAMP): pyproject.toml
 install: $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/samesource analyze sample_surveys/staff_survey.csv --design sample_surveys/staff_survey_design.json --missing fiml --out samesource-report
+	$(BIN)/samesource analyze sample_surveys/staff_survey.csv --design sample_surveys/staff_survey_two_sources_design.json --source manager=sample_surveys/manager_ratings.csv --missing fiml --out samesource-report
 	$(BIN)/python -m service.demo_client
 
 test: $(STAMP)

@@ -112,6 +112,10 @@ def sentence(p: dict) -> tuple[str, str | None]:
     removed = ("once the shared answering style and measurement error are removed" if corrected else
                "once measurement error is removed (a shared answering style could not be removed and may remain)"
                if key != "observed" else "taken at face value")
+    if (p.get("sources") or {}).get("free_of_same_rater_bias"):  # measurement/source_paths.py
+        removed = ("with measurement error removed and no shared rater behind it (predictor and outcome "
+                   "come from different sources)" if key != "observed" else
+                   "taken at face value, with no shared rater behind it (different sources)")
     ci = ci_pair((pref or {}).get("ci"))
     if ci is not None and ci[0] <= 0 <= ci[1]:
         head = f"{_cap(x)} may not matter for {y}: about {num(pr, 2)} on a {MINUS}1 to 1 scale {removed}, and no link at all is also consistent with the data"

@@ -8,6 +8,7 @@ object and returns a :class:`Design`; every error names the offending field and 
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import pathlib
@@ -21,6 +22,8 @@ from .errors import DesignError
 ROLES = ("substantive", "marker", "method")
 MIN_ITEMS = 2
 MIN_ITEMS_OMEGA = 3
+MAIN = "main"  # what the report calls the main data file among the sources
+SOURCE_KINDS = ("other_rater", "later_wave", "records")
 
 
 @dataclass(frozen=True)
@@ -30,6 +33,22 @@ class Construct:
     reverse: tuple[str, ...] = ()
     role: str = "substantive"
     answer_labels: dict[str, float | None] | None = None  # this construct's own, if any
+    source: str = MAIN             # the file its items come from (a name in Design.sources)
+    same_as: str | None = None     # the construct of another source that it measures again
+
+
+@dataclass(frozen=True)
+class Source:
+    """A second data file (manager ratings, a later wave, records) joined to the main file's
+    rows on ids. Its own missing codes, answer range and answer texts may differ."""
+
+    name: str
+    id_column: str
+    kind: str = "other_rater"      # one of SOURCE_KINDS
+    scale_min: float | None = None
+    scale_max: float | None = None
+    missing_codes: tuple[float, ...] = ()
+    answer_labels: dict[str, float | None] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -50,6 +69,7 @@ class Design:
     id_column: str | None = None
     group_column: str | None = None
     answer_labels: dict[str, float | None] = field(default_factory=dict)
+    sources: dict[str, Source] = field(default_factory=dict)
     raw: dict = field(default_factory=dict, compare=False, repr=False)
 
     # Constructs by role, in design order.
@@ -83,6 +103,30 @@ class Design:
                 return {answer_key(k): v for k, v in c.answer_labels.items()}
         return {answer_key(k): v for k, v in self.answer_labels.items()}
 
+    def source_of(self, construct: str) -> str:
+        """The source a construct's items come from: MAIN or a name in ``sources``."""
+        return self.constructs[construct].source
+
+    def main_part(self) -> Design:
+        """The design of the main file alone: its constructs, the paths among them, no
+        sources. Without sources this is the design itself."""
+        if not self.sources:
+            return self
+        cons = {k: c for k, c in self.constructs.items() if c.source == MAIN}
+        paths = tuple(p for p in self.paths
+                      if p.outcome in cons and all(x in cons for x in p.predictors))
+        return dataclasses.replace(self, constructs=cons, paths=paths, sources={})
+
+    def source_part(self, name: str) -> Design:
+        """The design a source's file is read with: its constructs (as main-file constructs),
+        its id column, missing codes, answer range and answer texts."""
+        src = self.sources[name]
+        cons = {k: dataclasses.replace(c, source=MAIN, same_as=None)
+                for k, c in self.constructs.items() if c.source == name}
+        return Design(constructs=cons, paths=(), scale_min=src.scale_min, scale_max=src.scale_max,
+                      missing_codes=src.missing_codes, id_column=src.id_column,
+                      answer_labels=src.answer_labels or dict(self.answer_labels))
+
     def construct_of(self, item: str) -> str:
         for c in self.constructs.values():
             if item in c.items:
@@ -105,6 +149,10 @@ class Design:
                 entry["role"] = c.role
             if c.answer_labels is not None:
                 entry["answer_labels"] = dict(c.answer_labels)
+            if c.source != MAIN:
+                entry["source"] = c.source
+            if c.same_as:
+                entry["same_as"] = c.same_as
             out["constructs"][c.name] = entry
         out["paths"] = [{"outcome": p.outcome, "predictors": list(p.predictors)} for p in self.paths]
         if self.scale_min is not None:
@@ -117,12 +165,24 @@ class Design:
             out["group_column"] = self.group_column
         if self.answer_labels:
             out["answer_labels"] = dict(self.answer_labels)
+        if self.sources:
+            out["sources"] = {}
+            for src in self.sources.values():
+                entry = {"id_column": src.id_column, "kind": src.kind}
+                if src.scale_min is not None:
+                    entry["response_scale"] = {"min": src.scale_min, "max": src.scale_max}
+                if src.missing_codes:
+                    entry["missing_codes"] = list(src.missing_codes)
+                if src.answer_labels:
+                    entry["answer_labels"] = dict(src.answer_labels)
+                out["sources"][src.name] = entry
         return out
 
 
 _TOP_FIELDS = {"constructs", "paths", "response_scale", "missing_codes", "id_column", "group_column",
-               "answer_labels"}
-_CONSTRUCT_FIELDS = {"items", "reverse", "role", "answer_labels"}
+               "answer_labels", "sources"}
+_CONSTRUCT_FIELDS = {"items", "reverse", "role", "answer_labels", "source", "same_as"}
+_SOURCE_FIELDS = {"id_column", "kind", "response_scale", "missing_codes", "answer_labels"}
 
 
 def answer_key(text: str) -> str:
@@ -217,10 +277,7 @@ def parse_design(obj: Any) -> Design:
                               f"got {_shown(name)}", field=where)
         if not isinstance(spec, Mapping):
             raise DesignError("must be an object with 'items'", field=where)
-        bad = sorted(set(spec) - _CONSTRUCT_FIELDS)
-        if bad:
-            raise DesignError(f"unknown field '{bad[0]}'{did_you_mean(bad[0], _CONSTRUCT_FIELDS)}; "
-                              f"allowed: {', '.join(sorted(_CONSTRUCT_FIELDS))}", field=f"{where}.{bad[0]}")
+        _refuse_unknown(spec, _CONSTRUCT_FIELDS, where)
         if "items" not in spec:
             raise DesignError("is missing; list the construct's item columns", field=f"{where}.items")
         items = _str_list(spec["items"], f"{where}.items")
@@ -240,13 +297,20 @@ def parse_design(obj: Any) -> Design:
                               f"{', '.join(ROLES)}", field=f"{where}.role")
         own_labels = (_parse_labels(spec["answer_labels"], f"{where}.answer_labels")
                       if spec.get("answer_labels") is not None else None)
+        links = {}
+        for key in ("source", "same_as"):
+            v = spec.get(key)
+            if v is not None and not _is_text(v):
+                raise DesignError(f"must be a name (a non-empty string), got {_shown(v)}", field=f"{where}.{key}")
+            links[key] = v
         for it in items:
             if it in owner:
                 raise DesignError(f"item '{it}' is in construct '{owner[it]}' and in '{name}'; an item belongs to one "
                                   "construct", field=f"{where}.items")
             owner[it] = name
         constructs[name] = Construct(name=name, items=items, reverse=reverse, role=role,
-                                     answer_labels=own_labels)
+                                     answer_labels=own_labels, source=links["source"] or MAIN,
+                                     same_as=links["same_as"])
 
     clash = sorted(set(constructs) & set(owner))
     if clash:
@@ -263,22 +327,8 @@ def parse_design(obj: Any) -> Design:
 
     paths = _parse_paths(obj.get("paths", []), constructs)
 
-    scale_min = scale_max = None
-    if obj.get("response_scale") is not None:
-        rs = obj["response_scale"]
-        if not isinstance(rs, Mapping) or set(rs) - {"min", "max"} or not {"min", "max"} <= set(rs):
-            raise DesignError("must be an object {\"min\": number, \"max\": number}", field="response_scale")
-        if not (_is_number(rs["min"]) and _is_number(rs["max"])):
-            raise DesignError(f"min and max must be finite numbers, got {_shown(rs)}",
-                              field="response_scale")
-        if rs["min"] >= rs["max"]:
-            raise DesignError(f"min ({rs['min']}) must be below max ({rs['max']})", field="response_scale")
-        scale_min, scale_max = float(rs["min"]), float(rs["max"])
-
-    codes = obj.get("missing_codes", [])
-    if not isinstance(codes, list) or not all(_is_number(c) for c in codes):
-        raise DesignError(f"must be a list of finite numbers, got {_shown(codes)}",
-                          field="missing_codes")
+    scale_min, scale_max = _parse_scale(obj.get("response_scale"), "response_scale")
+    codes = _parse_codes(obj.get("missing_codes", []), "missing_codes")
 
     cols = {}
     for key in ("id_column", "group_column"):
@@ -293,9 +343,116 @@ def parse_design(obj: Any) -> Design:
 
     labels = (_parse_labels(obj["answer_labels"], "answer_labels")
               if obj.get("answer_labels") is not None else {})
+    sources = _parse_sources(obj.get("sources"), constructs, owner, cols["id_column"])
     return Design(constructs=constructs, paths=paths, scale_min=scale_min, scale_max=scale_max,
-                  missing_codes=tuple(float(c) for c in codes), id_column=cols["id_column"],
-                  group_column=cols["group_column"], answer_labels=labels, raw=dict(obj))
+                  missing_codes=codes, id_column=cols["id_column"],
+                  group_column=cols["group_column"], answer_labels=labels, sources=sources,
+                  raw=dict(obj))
+
+
+def _refuse_unknown(spec: Mapping, allowed: set[str], where: str) -> None:
+    bad = sorted(set(spec) - allowed)
+    if bad:
+        raise DesignError(f"unknown field '{bad[0]}'{did_you_mean(bad[0], allowed)}; "
+                          f"allowed: {', '.join(sorted(allowed))}", field=f"{where}.{bad[0]}")
+
+
+def _parse_scale(rs: Any, where: str) -> tuple[float | None, float | None]:
+    if rs is None:
+        return None, None
+    if not isinstance(rs, Mapping) or set(rs) - {"min", "max"} or not {"min", "max"} <= set(rs):
+        raise DesignError("must be an object {\"min\": number, \"max\": number}", field=where)
+    if not (_is_number(rs["min"]) and _is_number(rs["max"])):
+        raise DesignError(f"min and max must be finite numbers, got {_shown(rs)}", field=where)
+    if rs["min"] >= rs["max"]:
+        raise DesignError(f"min ({rs['min']}) must be below max ({rs['max']})", field=where)
+    return float(rs["min"]), float(rs["max"])
+
+
+def _parse_codes(codes: Any, where: str) -> tuple[float, ...]:
+    if not isinstance(codes, list) or not all(_is_number(c) for c in codes):
+        raise DesignError(f"must be a list of finite numbers, got {_shown(codes)}", field=where)
+    return tuple(float(c) for c in codes)
+
+
+def _parse_sources(value: Any, constructs: dict[str, Construct], owner: Mapping[str, str],
+                   id_column: str | None) -> dict[str, Source]:
+    """``sources`` and the constructs' ``source`` and ``same_as`` fields (docs/design-file.md,
+    "Second sources")."""
+    named = {c.source for c in constructs.values() if c.source != MAIN}
+    if value is None:
+        if named:
+            first = next(c for c in constructs.values() if c.source != MAIN)
+            raise DesignError(f"names the source '{first.source}', but the design has no 'sources'; add "
+                              f"\"sources\": {{\"{first.source}\": {{\"id_column\": COLUMN}}}}",
+                              field=f"constructs.{first.name}.source")
+        _check_same_as(constructs)
+        return {}
+    if not isinstance(value, Mapping) or not value:
+        raise DesignError("must be an object naming each second source and its id column, such as "
+                          "{\"manager\": {\"id_column\": \"employee\"}}", field="sources")
+    out: dict[str, Source] = {}
+    for name, spec in value.items():
+        where = f"sources.{name}"
+        if not _is_text(name) or name == MAIN:
+            raise DesignError(f"a source name must be a non-empty string other than '{MAIN}' (the main "
+                              f"file's name in the report), got {_shown(name)}", field=where)
+        if not isinstance(spec, Mapping):
+            raise DesignError("must be an object with 'id_column'", field=where)
+        _refuse_unknown(spec, _SOURCE_FIELDS, where)
+        idc = spec.get("id_column")
+        if not _is_text(idc):
+            raise DesignError("is missing: name the column of this source's file that holds the ids "
+                              "its rows are joined on", field=f"{where}.id_column")
+        if idc in owner:
+            raise DesignError(f"'{idc}' is also an item of construct '{owner[idc]}'", field=f"{where}.id_column")
+        kind = spec.get("kind", "other_rater")
+        if kind not in SOURCE_KINDS:
+            raise DesignError(f"unknown kind {_shown(kind)}{did_you_mean(kind, SOURCE_KINDS)}; use one of "
+                              f"{', '.join(SOURCE_KINDS)}", field=f"{where}.kind")
+        lo, hi = _parse_scale(spec.get("response_scale"), f"{where}.response_scale")
+        codes = _parse_codes(spec.get("missing_codes", []), f"{where}.missing_codes")
+        labels = (_parse_labels(spec["answer_labels"], f"{where}.answer_labels")
+                  if spec.get("answer_labels") is not None else {})
+        out[name] = Source(name=name, id_column=idc, kind=kind, scale_min=lo, scale_max=hi,
+                           missing_codes=codes, answer_labels=labels)
+    for c in constructs.values():
+        if c.source != MAIN and c.source not in out:
+            raise DesignError(f"unknown source {_shown(c.source)}{did_you_mean(c.source, out)}; the design's "
+                              f"sources are {', '.join(out)}", field=f"constructs.{c.name}.source")
+        if c.source != MAIN and c.role != "substantive":
+            raise DesignError(f"a {c.role} construct must come from the main file: it describes how the "
+                              "main file's respondents answer", field=f"constructs.{c.name}.source")
+    unused = [n for n in out if n not in named]
+    if unused:
+        raise DesignError(f"no construct comes from source '{unused[0]}': give a construct "
+                          f"\"source\": \"{unused[0]}\", or drop the source", field=f"sources.{unused[0]}")
+    if not id_column:
+        raise DesignError("the design has sources, so it needs the main file's id column: the ids "
+                          "that the sources' rows are joined on", field="id_column")
+    if not any(c.source == MAIN and c.role == "substantive" for c in constructs.values()):
+        raise DesignError("needs at least one substantive construct from the main file", field="constructs")
+    _check_same_as(constructs)
+    return out
+
+
+def _check_same_as(constructs: dict[str, Construct]) -> None:
+    for c in constructs.values():
+        if c.same_as is None:
+            continue
+        where = f"constructs.{c.name}.same_as"
+        if c.same_as not in constructs:
+            raise DesignError(f"unknown construct {_shown(c.same_as)}{did_you_mean(c.same_as, constructs)}",
+                              field=where)
+        other = constructs[c.same_as]
+        if other.source == c.source:
+            raise DesignError(f"'{c.same_as}' comes from the same source as '{c.name}'; same_as links a "
+                              "construct to the same thing measured from another source or wave", field=where)
+        if c.role != "substantive" or other.role != "substantive":
+            raise DesignError("links substantive constructs only", field=where)
+        if other.same_as is not None:
+            raise DesignError(f"'{c.same_as}' has a same_as of its own; name the first measurement in "
+                              "every same_as", field=where)
 
 
 def _parse_labels(value: Any, where: str) -> dict[str, float | None]:
@@ -402,6 +559,8 @@ def check_columns(design: Design, columns: Iterable[str], *, file: str | None = 
         return ""
 
     for c in design.constructs.values():
+        if c.source != MAIN:  # checked against its source's file (sources.check_source_columns)
+            continue
         for i, it in enumerate(c.items):
             if it not in cols:
                 hint = elsewhere(it) or did_you_mean(it, cols)

@@ -316,6 +316,9 @@ def _forest_rows(report: dict, p: dict) -> list[svg.ForestRow]:
 
 
 def paths_section(report: dict, figs: Figures | None = None) -> str:
+    from .check_html import lean_on_line
+    from .sources_html import path_sources_line
+
     figs = figs or Figures()
     paths = report.get("paths") or []
     if not paths:
@@ -338,6 +341,8 @@ def paths_section(report: dict, figs: Figures | None = None) -> str:
                f"preferred estimate (diamond, highlighted) sits from the observed one (top row), and whether its "
                f"interval crosses zero (dashed line). Rows marked not available name the reason.")
         out.append(f'<div class="keep"><h3 id="path-{i + 1}">{path_title(p)}</h3>')
+        out.append(path_sources_line(p))
+        out.append(lean_on_line(report, p))
         preds = p.get("predictors") or []
         if len(preds) > 1:
             out.append(f'<p class="sub">Estimated in the equation of {h(p.get("outcome"))} with all its predictors: '
@@ -1065,6 +1070,8 @@ def _cell(v: Any) -> str:
 # --------------------------------------------------------------------------- data, screening, warnings
 
 def data_section(report: dict) -> str:
+    from .sources_html import sources_block
+
     d = report.get("data") or {}
     mh = d.get("missing_handling") or {}
     rs = d.get("response_scale") or {}
@@ -1079,6 +1086,7 @@ def data_section(report: dict) -> str:
         ("Response scale", f"{num(rs.get('min'), 0)} to {num(rs.get('max'), 0)} (from the {h(rs.get('source'))})"
          if rs else DASH),
         ("Missing answers", f"{count(d.get('missing_cells'))} cells ({pct(d.get('missing_share'))})")])]
+    out.append(sources_block(report))
     out.append("<h3>Missing answers</h3>")
     out.append(dl([("Handling", h(mh.get("description") or mh.get("method"))),
                    ("Rows with a missing answer", count(mh.get("rows_with_missing"))),
@@ -1129,6 +1137,8 @@ def data_section(report: dict) -> str:
     out.append(dl([("Missing answers", h(o.get("missing"))), ("Flagged rows dropped", h(o.get("drop_flagged"))),
                    ("Bootstrap replicates", count(o.get("bootstrap")) if o.get("bootstrap") else "none (analytic intervals)"),
                    ("Seed", count(o.get("seed"))), ("Confidence", pct(o.get("confidence"), 0)),
+                   ("Correction check", f"{count(o.get('check_corrections'))} simulated surveys per scenario"
+                    if o.get("check_corrections") else "not run"),
                    ("Minimum group size", count(o.get("min_group_size"))),
                    ("Time limit per model fit", f"{num(o.get('fit_time_limit'), 0)} s" if _finite(o.get("fit_time_limit")) else DASH)]))
     return section("data", "Data, screening and warnings", "".join(out))
@@ -1155,15 +1165,22 @@ def stylesheet(name: str) -> Markup:
 
 
 SECTIONS = (("paths", "Every estimate of each path"),
+            ("cross-source", "Same-source paths beside their cross-source counterparts"),
+            ("correction-check", "How well each correction works on data like these"),
             ("sensitivity", "How much shared method would explain each path away"),
             ("reliability", "How well each scale measures"), ("loadings", "Item loadings"),
             ("method-variance", "Common-method checks"),
             ("fit", "Measurement model: fit and overlap between scales"),
-            ("teams", "Teams"), ("data", "Data, screening and warnings"), ("cautions-again", "Cautions (repeated)"))
+            ("teams", "Teams"), ("next-time", "Next time: testing for a shared answering style"),
+            ("data", "Data, screening and warnings"), ("cautions-again", "Cautions (repeated)"))
 
 
 def _toc(report: dict) -> str:
-    entries = [(i, t) for i, t in SECTIONS if i != "teams" or isinstance(report.get("teams"), dict)]
+    entries = [(i, t) for i, t in SECTIONS if (i != "teams" or isinstance(report.get("teams"), dict))
+               and (i != "cross-source" or any(isinstance(p, dict) and p.get("cross_source_check")
+                                               for p in report.get("paths") or []))
+               and (i != "correction-check" or isinstance(report.get("correction_check"), dict))
+               and (i != "next-time" or isinstance(report.get("next_time"), dict))]
     return ('<nav class="toc" aria-labelledby="toc-h"><h2 id="toc-h">The detail behind the answer '
             '<span class="sub">(each section opens when clicked)</span></h2><ol>'
             + "".join(f'<li><a href="#{i}">{t}</a></li>' for i, t in entries)
@@ -1199,9 +1216,13 @@ def render_html(report: dict, *, when: str | None = None) -> str:
     """The whole report as one self-contained HTML5 page (a string); ``when``: the date it was made."""
     d = report.get("data") or {}
     figs = Figures()
-    sections = [paths_section(report, figs), sensitivity_section(report, figs), reliability_section(report, figs),
+    from .check_html import correction_check_section, next_time_section
+    from .sources_html import cross_source_section
+
+    sections = [paths_section(report, figs), cross_source_section(report, figs), correction_check_section(report),
+                sensitivity_section(report, figs), reliability_section(report, figs),
                 loadings_section(report, figs), method_section(report), fit_section(report), teams_section(report),
-                data_section(report)]
+                next_time_section(report), data_section(report)]
     footer = (f'Report schema {h(report.get("schema"))}; made by {h(_get(report, "tool", "name"))} '
               f'{h(_get(report, "tool", "version"))} from {h(d.get("file"))} (SHA-256 '
               f'<code class="hash">{h(d.get("sha256"))}</code>).')

@@ -13,7 +13,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import replace
 
-from .design import Construct, Design
+from .design import MAIN, Construct, Design
 from .modelspec import ModelSpec, Param
 
 
@@ -103,6 +103,12 @@ def one_factor_model(items: Sequence[str], name: str = "common") -> ModelSpec:
 METHOD = "method_factor"  # name of the latent method factor in every method model
 
 
+def same_source_items(cons) -> list[str]:
+    """The items of the constructs (among ``cons``) answered in the main file: the ones a
+    shared method of its respondents reaches."""
+    return [it for c in cons if c.source == MAIN for it in c.items]
+
+
 def _trait_params(cons: Sequence[Construct], orthogonal_to: Sequence[str] = ()) -> list[Param]:
     """Trait factors with their loadings and unit variances; pairs are correlated except
     pairs that involve a construct in ``orthogonal_to`` (the marker in marker models)."""
@@ -128,6 +134,10 @@ def method_factor_model(design: Design, *, use_marker: bool, equal_loadings: boo
 
     ``equal_loadings``: every method loading fixed at 1 with the factor's variance free (one
     parameter: the method variance); otherwise free loadings with the variance fixed at 1.
+
+    The factor loads on the main file's items only: a second source's items (another rater,
+    a later wave, records) share no method with them, so their constructs enter as traits and
+    the sources' methods are orthogonal (measurement/sources.py).
     """
     cons = list(design.substantive)
     marker = design.marker if use_marker else None
@@ -136,13 +146,14 @@ def method_factor_model(design: Design, *, use_marker: bool, equal_loadings: boo
     if marker is not None:
         cons.append(marker)
     items = [it for c in cons for it in c.items]
+    shared = same_source_items(cons)
     params = _trait_params(cons, orthogonal_to=[marker.name] if marker else [])
     params += _errors(items)
     if equal_loadings:
-        params += [Param("load", METHOD, it, free=False, value=1.0) for it in items]
+        params += [Param("load", METHOD, it, free=False, value=1.0) for it in shared]
         params.append(Param("cov", METHOD, METHOD, value=0.1))
     else:
-        params += [Param("load", METHOD, it, value=0.3) for it in items]
+        params += [Param("load", METHOD, it, value=0.3) for it in shared]
         params.append(Param("cov", METHOD, METHOD, free=False, value=1.0))
     kind = "marker-identified" if marker else "plain latent"
     loads = "equal" if equal_loadings else "free"
@@ -165,7 +176,7 @@ def measured_method_model(design: Design) -> ModelSpec:
     subst_items = [it for c in cons for it in c.items]
     params = _trait_params(cons) + _factor(method.name, method.items)
     params += _errors(subst_items + list(method.items))
-    params += [Param("load", method.name, it, value=0.1) for it in subst_items]
+    params += [Param("load", method.name, it, value=0.1) for it in same_source_items(cons)]
     return ModelSpec(
         name="measured_method",
         observed=tuple(subst_items + list(method.items)),
@@ -269,8 +280,24 @@ def with_paths(spec: ModelSpec, design: Design, *, name: str | None = None,
         params.append(p)
     for path in design.paths:
         params += [Param("reg", path.outcome, x, value=0.0) for x in path.predictors]
+    params += _linked_residuals(design, outcomes & set(spec.latent))
     return spec.with_params(params, name=name or f"{spec.name}+paths",
                             description=description or f"{spec.description}; with the declared paths")
+
+
+def _linked_residuals(design: Design, outcomes: set[str]) -> list[Param]:
+    """Residual covariances between outcomes that share more than their predictors explain:
+    an outcome and its measurement by another source (``same_as``: two views of one thing),
+    and two outcomes rated in the same second source (that rater's own method, at the level
+    of constructs; the main file's method has its factor). Without sources: none."""
+    pairs: list[tuple[str, str]] = []
+    names = [n for n in design.constructs if n in outcomes]
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            ca, cb = design.constructs[a], design.constructs[b]
+            if ca.same_as == b or cb.same_as == a or (ca.source == cb.source != MAIN):
+                pairs.append((a, b))
+    return [Param("cov", a, b, value=0.0) for a, b in pairs]
 
 
 def latent_path_model(design: Design) -> ModelSpec:
@@ -306,6 +333,7 @@ def single_indicator_model(design: Design, error_variances: dict[str, float], *,
     params += _correlate(exo)
     for p in paths:
         params += [Param("reg", p.outcome, x, value=0.0) for x in p.predictors]
+    params += _linked_residuals(design, outcomes)
     return ModelSpec(name=name, observed=tuple(score_name(n) for n in names), latent=tuple(names),
                      params=tuple(params),
                      description="scale scores as single indicators with error variances fixed from reliability")
@@ -316,12 +344,41 @@ def method_path_model(design: Design, method_spec: ModelSpec) -> ModelSpec:
     return with_paths(method_spec, design, name=f"{method_spec.name}+paths")
 
 
+def population_model(design: Design, *, method: bool) -> ModelSpec:
+    """The correction check's generating model (measurement/correction_check.py): every
+    construct of the design with the declared paths; with ``method``, one method factor with
+    equal loadings on the main file's substantive and marker items (the marker's trait
+    orthogonal to the substantive traits), on which a method construct's items load freely
+    (they measure it). Without ``method``: every construct a factor, no shared method."""
+    if not method:
+        return with_paths(measurement_model(design), design, name="population:no_method",
+                          description="every construct a factor of its items, the declared paths, no shared method")
+    marker = design.marker
+    cons = list(design.substantive) + ([marker] if marker else [])
+    items = [it for c in cons for it in c.items]
+    params = _trait_params(cons, orthogonal_to=[marker.name] if marker else [])
+    params += _errors(items)
+    params += [Param("load", METHOD, it, free=False, value=1.0) for it in same_source_items(cons)]
+    params.append(Param("cov", METHOD, METHOD, value=0.1))
+    observed = list(items)
+    if design.method is not None:
+        observed += list(design.method.items)
+        params += [Param("load", METHOD, it, value=0.3) for it in design.method.items]
+        params += _errors(design.method.items)
+    spec = ModelSpec(name="population:method", observed=tuple(observed),
+                     latent=tuple(c.name for c in cons) + (METHOD,), params=tuple(params),
+                     description="every construct a factor of its items, one shared method with equal loadings "
+                                 "on the main file's items")
+    return with_paths(spec, design, name="population:method")
+
+
 def assumed_method_model(design: Design, item_variances: dict[str, float], share: float) -> ModelSpec:
     """The latent path model with a method factor whose loadings are FIXED so that ``share``
     of every item's variance is method (loading sqrt(share * var(item)), factor variance 1,
     orthogonal to the traits): the sensitivity curve's model."""
     base = latent_path_model(design)
-    items = list(base.observed)
+    main = set(same_source_items(design.constructs.values()))
+    items = [it for it in base.observed if it in main]
     params = list(base.params)
     params += [Param("load", METHOD, it, free=False, value=float((share * item_variances[it]) ** 0.5))
                for it in items]

@@ -11,6 +11,7 @@ from .errors import InputError
 
 MISSING_METHODS = ("listwise", "fiml")
 LISTWISE_DROP_LIMIT = 0.05  # above this share of rows dropped, the report recommends FIML
+CHECK_MAX = 1000  # simulated surveys per scenario: each is a whole analysis (five scenarios)
 
 
 @dataclass(frozen=True)
@@ -24,6 +25,7 @@ class AnalysisOptions:
     seed: int = 0
     min_group_size: int = 5          # common practice
     sheet: str | None = None         # worksheet of an .xlsx file
+    check_corrections: int = 0       # simulated surveys per scenario of the correction check (0: none)
 
     @classmethod
     def from_dict(cls, obj: Mapping[str, Any] | None) -> AnalysisOptions:
@@ -58,7 +60,7 @@ class AnalysisOptions:
             if isinstance(v, bool) or not isinstance(v, int | float) or not lo <= v <= hi:
                 raise bad(name, f"must be a number from {lo} to {hi}, got {v!r}")
         for name, lo, hi in (("n_starts", 1, 50), ("bootstrap", 0, 100_000), ("seed", 0, 2**32 - 1),
-                             ("min_group_size", 2, 1000)):
+                             ("min_group_size", 2, 1000), ("check_corrections", 0, CHECK_MAX)):
             v = getattr(self, name)
             if name == "bootstrap" and v is None:
                 continue
@@ -68,4 +70,7 @@ class AnalysisOptions:
             raise bad("sheet", "must be a worksheet name")
 
     def to_dict(self) -> dict:
-        return asdict(self)
+        d = asdict(self)
+        if not d["check_corrections"]:  # added later: shown when asked for, so earlier reports keep their keys
+            del d["check_corrections"]
+        return d

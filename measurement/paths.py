@@ -10,12 +10,13 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import warnings
 from typing import Any
 
 import numpy as np
 from scipy import stats
 
-from .design import Design, Path
+from .design import MAIN, Design, Path
 from .fitting import FitResult, Moments, RawData, fit_model, refit
 from .marker import choose_r_m, r_m_source
 from .models import (
@@ -73,9 +74,12 @@ def disattenuate(corr: np.ndarray, reliability: np.ndarray) -> np.ndarray:
     return out
 
 
-def marker_adjust(corr: np.ndarray, r_m: float) -> np.ndarray:
-    """Lindell & Whitney (2001): (r - r_M) / (1 - r_M) off the diagonal."""
+def marker_adjust(corr: np.ndarray, r_m: float, same: np.ndarray | None = None) -> np.ndarray:
+    """Lindell & Whitney (2001): (r - r_M) / (1 - r_M) off the diagonal; with ``same`` (a
+    boolean matrix), only where it is True: pairs from different sources share no method."""
     out = (corr - r_m) / (1.0 - r_m)
+    if same is not None:
+        out = np.where(same, out, corr)
     np.fill_diagonal(out, 1.0)
     return out
 
@@ -156,7 +160,9 @@ class PathEstimator:
 
     def _scores(self, X: np.ndarray) -> tuple[np.ndarray, int, np.ndarray]:
         cols = [[self.col[i] for i in self.design.constructs[c].items] for c in self.score_names]
-        with np.errstate(invalid="ignore"):
+        with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            # a row without any answer to a scale (a second source without a row for it) has no score
+            warnings.simplefilter("ignore", RuntimeWarning)
             s = np.column_stack([np.nanmean(X[:, c], axis=1) for c in cols])
         s = s[~np.isnan(s).any(axis=1)]
         return np.cov(s, rowvar=False, bias=True), s.shape[0], s
@@ -283,12 +289,15 @@ class PathEstimator:
         # marker-adjusted: r_M from the marker's correlations with every substantive scale
         if self.design.marker is not None:
             m = sidx[self.design.marker.name]
-            rs = [scorr[m, sidx[c]] for c in self.score_names if c != self.design.marker.name]
+            # the marker shares the main file's method only: r_M from the main file's scales
+            rs = [scorr[m, sidx[c]] for c in self.score_names
+                  if c != self.design.marker.name and self.design.source_of(c) == MAIN]
             if compute_se or self.r_m_index is None:  # the full sample chooses the source scale
                 self.r_m_index = r_m_source(rs, self.r_m_rule)
             r_m = choose_r_m(rs, n_s, self.r_m_rule, index=self.r_m_index)
             extra["r_m"] = r_m
-            adj = marker_adjust(scorr, r_m)
+            src = np.array([self.design.source_of(c) for c in self.score_names])
+            adj = marker_adjust(scorr, r_m, src[:, None] == src[None, :])
             spearman("marker_adjusted", adj, alpha,
                      Moments(names=score_moments.names, cov=adj, n=n_s), {c: 1.0 for c in pn})
         else:

@@ -7,7 +7,7 @@ The command line and the HTTP service both call :func:`analyze`; nothing else in
 from __future__ import annotations
 
 import os
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -23,11 +23,13 @@ from .method_variance import method_variance_section, method_variance_verdict
 from .missing import MissingPlan, plan_missing
 from .options import AnalysisOptions
 from .paths_report import paths_section
-from .prepare import PreparedData, prepare
+from .prepare import PreparedData
 from .reliability_report import construct_reliability
 from .report import finalize_report, finite_or_none
 from .review import review_section
 from .screening import screen_respondents
+from .source_paths import annotate_sources
+from .sources import load_sources, prepare_with_sources
 from .teams_report import teams_section
 from .timings import StageClock
 
@@ -60,8 +62,12 @@ def analyze(
     name: str | None = None,
     progress: Progress | None = None,
     executor=None,
+    sources: Mapping[str, Any] | None = None,
 ) -> Analysis:
-    """Run the whole analysis. Raises :class:`~measurement.errors.InputError` for bad input."""
+    """Run the whole analysis. Raises :class:`~measurement.errors.InputError` for bad input.
+
+    ``sources``: the design's second sources, NAME -> a LoadedTable, a path, bytes, or a
+    ``(path or bytes, file name)`` pair (measurement/sources.py)."""
     opts = options if isinstance(options, AnalysisOptions) else AnalysisOptions.from_dict(options)
     dsg = design if isinstance(design, Design) else parse_design(design)
     clock = StageClock()  # report["timings"]
@@ -70,11 +76,12 @@ def analyze(
 
     step("load", 0, total)
     table = data if isinstance(data, LoadedTable) else load_table(data, name=name, sheet=opts.sheet)
-    prepared = prepare(table, dsg)
+    prepared = prepare_with_sources(table, dsg, load_sources(sources))
+    same = dsg.main_part()  # the main file's constructs: the same-source checks look at these
 
     step("screen", 1, total)
-    screening = screen_respondents(prepared.items, scale_min=prepared.scale_min,
-                                   scale_max=prepared.scale_max, raw_items=_raw_answers(prepared, dsg))
+    screening = screen_respondents(prepared.items[same.items], scale_min=prepared.scale_min,
+                                   scale_max=prepared.scale_max, raw_items=_raw_answers(prepared, same))
     plan = plan_missing(prepared, opts, flagged=screening.flagged_rows)
     if plan.rows_analyzed < _min_rows(dsg):
         raise DataError(
@@ -95,15 +102,27 @@ def analyze(
     mm = measurement_model_section(dsg, plan, opts, fits, constructs, warnings)
 
     step("method_variance", 4, total)
-    mv = method_variance_section(dsg, plan, opts, fits, fits["measurement_model"])
-    assumptions = method_variance_verdict(dsg, plan, mv)
+    mv = method_variance_section(same, plan, opts, fits, fits["measurement_model"])
+    assumptions = method_variance_verdict(same, plan, mv)
 
     step("paths", 5, total)
     paths = paths_section(dsg, plan, opts, fits, mv, warnings, assumptions, executor=executor,
                           progress=lambda done, n: step("bootstrap", done, n))
+    if dsg.sources:
+        paths = annotate_sources(dsg, paths)
 
     step("teams", 6, total)
     teams = teams_section(dsg, prepared, plan, opts, warnings)
+
+    check = next_time = None
+    if opts.check_corrections:  # measurement/correction_check.py, then the planning advice from it
+        from .correction_check import correction_check
+        from .planning import next_time_section
+
+        check, population = correction_check(dsg, prepared, plan, mv, paths, opts, n=opts.check_corrections,
+                                             executor=executor,
+                                             progress=lambda done, n: step("check_corrections", done, n))
+        next_time = next_time_section(dsg, population, plan, opts)
 
     step("report", 7, total)
     report: dict[str, Any] = {
@@ -119,6 +138,8 @@ def analyze(
         "teams": teams,
         "options": opts.to_dict(),
         "design": dsg.to_dict(),
+        **({"correction_check": check} if check is not None else {}),
+        **({"next_time": next_time} if next_time is not None else {}),
     }
     # Review before use (measurement/review.py): after every section it reads from.
     report.update(review_section(constructs, dsg, scale_source=prepared.scale_source))
@@ -175,6 +196,7 @@ def _data_section(table: LoadedTable, prepared: PreparedData, plan: MissingPlan)
         "response_scale": {"min": prepared.scale_min, "max": prepared.scale_max,
                            "source": prepared.scale_source},
         "missing_handling": plan.to_dict(),
+        **({"sources": {link.name: link.to_dict() for link in prepared.links}} if prepared.links else {}),
     }
 
 

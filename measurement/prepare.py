@@ -40,6 +40,7 @@ class PreparedData:
     missing_cells: int
     warnings: list[dict]  # {"code", "message"}: the loader's and this step's
     table: LoadedTable  # where the data came from (format, encoding, ...)
+    links: tuple = ()  # sources.SourceLink per second source joined on ids (measurement/sources.py)
 
 
 def _num(v: float) -> str:

@@ -86,6 +86,14 @@ def text_summary(report: dict) -> str:
                              f"[{b['low']:.3f}, {b['high']:.3f}]; trust {p['trust']['level']}")
             if p.get("cannot_pin_down"):
                 lines.append(f"    {p['cannot_pin_down']}")
+            if (p.get("sources") or {}).get("kind") == "cross_source":
+                lines.append(f"    {p['sources']['note']}")
+            check = next((c for c in (report.get("correction_check") or {}).get("paths") or []
+                          if (c["outcome"], c["predictor"]) == (p["outcome"], p["predictor"])), None)
+            if check is not None:
+                lines.append(f"    correction check: {check['lean_on_reason']}")
+    for advice in (report.get("next_time") or {}).get("advice") or []:
+        lines.append(f"  next time: {advice}")
     if report.get("warnings"):
         lines += ["", f"  {len(report['warnings'])} warning(s):"]
         lines += [f"  - {w['message']}" for w in report["warnings"]]

@@ -27,6 +27,8 @@ HIGHLIGHT = "#a2430f"
 HIGHLIGHT_BG = "#fbeadc"
 FAIL = "#a61b1b"
 SHADE = "#eceff3"
+REFERENCE = "#2f6b3a"     # a benchmark line (the cross-source estimate)
+REFERENCE_BG = "#d8eddc"  # its interval
 FONT = "system-ui, -apple-system, 'Segoe UI', Roboto, 'Helvetica Neue', Arial, sans-serif"
 
 
@@ -196,20 +198,34 @@ class ForestRow:
     hi: float | None = None
     preferred: bool = False
     unavailable: str | None = None  # "not available: <why>" when there is no estimate
+    highlight_word: str = "preferred"  # what the highlighted row is called in its label
+
+
+@dataclass
+class Reference:
+    """A benchmark drawn behind every row: its value as a solid line, its interval as a band."""
+
+    label: str
+    estimate: float
+    lo: float | None = None
+    hi: float | None = None
 
 
 def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
-                axis_label: str = "standardized estimate") -> str:
+                axis_label: str = "standardized estimate", reference: Reference | None = None) -> str:
     """Every estimate of one path as a point with its interval; zero line; preferred highlighted.
 
     One line per estimate: its label at the left, level with its point and interval in the
     middle, the numbers in a column of their own at the right, so no grid line crosses a number.
+    ``reference``: a benchmark (the cross-source estimate, say) as a band behind the rows.
     """
     W, pad, lab_w, val_w = 760.0, 12.0, 236.0, 176.0
     x0, x1 = lab_w + 10, W - pad - val_w - 8
     vals = [0.0]
     for r in rows:
         vals += [v for v in (r.estimate, r.lo, r.hi) if v is not None and math.isfinite(v)]
+    if reference is not None:
+        vals += [v for v in (reference.estimate, reference.lo, reference.hi) if v is not None and math.isfinite(v)]
     lo, hi = min(vals), max(vals)
     span = max(hi - lo, 0.1)
     ticks = nice_ticks(lo - 0.04 * span, hi + 0.04 * span, 5)
@@ -219,14 +235,14 @@ def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
     y = 6.0
     layout: list[tuple[ForestRow, float, float, list[str], list[str]]] = []
     for r in rows:
-        label = r.label + (" (preferred)" if r.preferred else "")
+        label = r.label + (f" ({r.highlight_word})" if r.preferred else "")
         label_lines = wrap(label, 30)
         note_lines = wrap(r.unavailable, 60) if r.unavailable else []
         h = 12.0 + 17.0 * max(len(label_lines), len(note_lines), 1)
         layout.append((r, y, h, label_lines, note_lines))
         y += h
     plot_bottom = y + 4
-    H = plot_bottom + 44
+    H = plot_bottom + 44 + (20 if reference is not None else 0)
 
     for r, top, h, _, _ in layout:
         if r.preferred:
@@ -234,6 +250,12 @@ def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
     for t in ticks:  # grid under the data
         body.append(line(sx(t), 4, sx(t), plot_bottom, stroke=GRID, stroke_width=1))
     body.append(line(sx(0.0), 4, sx(0.0), plot_bottom, stroke=INK, stroke_width=1.5, stroke_dasharray="5 4"))
+    if reference is not None:
+        if reference.lo is not None and reference.hi is not None:
+            body.append(rect(sx(reference.lo), 4, max(sx(reference.hi) - sx(reference.lo), 1.0), plot_bottom - 4,
+                             fill=REFERENCE_BG))
+        body.append(line(sx(reference.estimate), 4, sx(reference.estimate), plot_bottom, stroke=REFERENCE,
+                         stroke_width=2.5))
     for r, top, _h, label_lines, note_lines in layout:
         halo = HIGHLIGHT_BG if r.preferred else "#ffffff"
         cy = top + 14.0  # level with the label's first line (its baseline is 5 px below)
@@ -265,6 +287,9 @@ def forest_plot(rows: Sequence[ForestRow], *, ident: str, title: str, desc: str,
         body.append(text(sx(t), plot_bottom + 20, fmt_tick(t), font_size=13, text_anchor="middle", fill=MUTED))
     body.append(text((x0 + x1) / 2, plot_bottom + 38, axis_label, font_size=13, text_anchor="middle", fill=MUTED))
     body.append(text(W - pad, plot_bottom + 20, "estimate [interval]", font_size=13, text_anchor="end", fill=MUTED))
+    if reference is not None:
+        body.append(rect(x0, plot_bottom + 48, 14, 10, fill=REFERENCE_BG, stroke=REFERENCE, stroke_width=1.5))
+        body.append(text(x0 + 20, plot_bottom + 57, reference.label, font_size=13, fill=INK))
     return svg_figure("".join(body), W, H, ident=ident, title=title, desc=desc)
 
 

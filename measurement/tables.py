@@ -282,6 +282,8 @@ def report_tables(report: dict) -> dict[str, pd.DataFrame]:
     t["warnings"] = _frame([{"code": w.get("code"), "message": w.get("message")}
                             for w in report.get("warnings") or []], ["code", "message"])
 
+    _source_tables(report, t)
+
     teams = report.get("teams")
     if isinstance(teams, dict):
         groups = visible_groups(teams)
@@ -292,6 +294,37 @@ def report_tables(report: dict) -> dict[str, pd.DataFrame]:
             ["construct", "icc1", "icc2", "rwg_j_median"])
         t["team_paths"] = _frame([flatten(tp) for tp in teams.get("paths") or []], ["outcome", "predictor"])
     return t
+
+
+def _source_tables(report: dict, t: dict[str, pd.DataFrame]) -> None:
+    """The second sources' joins, the cross-source comparisons and the correction check, when
+    the report has them (measurement/sources.py, source_paths.py, correction_check.py)."""
+    sources = (report.get("data") or {}).get("sources")
+    if sources:
+        t["sources"] = _frame([{k: v for k, v in flatten(s).items() if not k.startswith("examples")}
+                               for s in sources.values()], ["name", "file", "rows", "matched"])
+    rows = []
+    for p in report.get("paths") or []:
+        c = p.get("cross_source_check")
+        if not c:
+            continue
+        b = c.get("benchmark") or {}
+        for m, e in (c.get("by_estimate") or {}).items():
+            rows.append({"outcome": p["outcome"], "predictor": p["predictor"],
+                         "counterpart_outcome": c["counterpart"]["outcome"],
+                         "counterpart_predictor": c["counterpart"]["predictor"], "method": m,
+                         "estimate": e.get("estimate"), "benchmark_method": b.get("method"),
+                         "benchmark": b.get("estimate"), "difference": e.get("difference"),
+                         "within_benchmark_ci": e.get("within_benchmark_ci"), "closest": m == c.get("closest")})
+    if rows:
+        t["cross_source"] = _frame(rows, list(rows[0]))
+    check = report.get("correction_check") or {}
+    rows = [{"outcome": p["outcome"], "predictor": p["predictor"], "truth": p["truth"], "scenario": sid, "method": m,
+             **e, "lean_on": m == p.get("lean_on")}
+            for p in check.get("paths") or [] for sid, per in (p.get("scenarios") or {}).items()
+            for m, e in per.items()]
+    if rows:
+        t["correction_check"] = _frame(rows, list(rows[0]))
 
 
 def flatten(d: dict, prefix: str = "") -> dict:

@@ -40,12 +40,16 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
     sizes = groups.value_counts()
     min_size = opts.min_group_size
     n_options = int(round(prepared.scale_max - prepared.scale_min)) + 1
+    # a second source's constructs have that source's answer range (measurement/sources.py)
+    source_options = {link.name: int(round(link.response_scale["max"] - link.response_scale["min"])) + 1
+                      for link in prepared.links}
 
     constructs = {}
     for c in design.substantive:
         icc = icc_oneway(scores[c.name].to_numpy(), groups.to_numpy())
         items = frame[list(c.items)]
-        rwgs = [rwg_j(items[groups == gname].to_numpy(dtype=float), n_options)
+        options = source_options.get(c.source, n_options)
+        rwgs = [rwg_j(items[groups == gname].to_numpy(dtype=float), options)
                 for gname in sizes.index if sizes[gname] >= 2]
         rwgs = [r for r in rwgs if r is not None]
         constructs[c.name] = {"icc1": icc.icc1, "icc2": icc.icc2,

@@ -3,7 +3,9 @@
     python sample_surveys/generate.py [--out DIR]
 
 Writes staff_survey.csv, staff_survey_design.json and staff_survey_truth.json to DIR
-(default: this folder). Fixed seed: the same bytes on every run.
+(default: this folder), and the second source: the shift managers' ratings of their staff
+(manager_ratings.csv), the design that joins it (staff_survey_two_sources_design.json) and
+its truth (manager_ratings_truth.json). Fixed seeds: the same bytes on every run.
 """
 
 from __future__ import annotations
@@ -27,6 +29,7 @@ from measurement.simulate import (  # noqa: E402
     TEAM_COLUMN,
     ConstructSpec,
     SurveySpec,
+    likert_thresholds,
     simulate_survey,
 )
 
@@ -170,10 +173,141 @@ def _rounded(obj: Any) -> Any:
     return obj
 
 
+# --- The second source: shift managers rate their staff ----------------------------------
+# Every crew has one shift manager, who rated the crew's staff on a 5-point scale two months
+# after the survey. Manager-rated engagement is the manager's view of the same engagement
+# (correlation 0.9 with the staff member's own engagement trait); performance depends on
+# engagement (standardized path 0.40). A manager's leniency (one value per manager, loading
+# 0.25 on every rating) is the managers' own method: it never touches the staff's answers.
+MANAGER_SEED = [SEED, 2]
+MANAGER_ID = "employee"
+MANAGER_MISSING_CODE = 0  # "not observed"
+MANAGER_POINTS = 5
+MANAGER_LABELS = {1: "Far below expectations", 2: "Below expectations", 3: "Meets expectations",
+                  4: "Above expectations", 5: "Far above expectations"}
+VIEW_CORR = 0.90          # manager-seen engagement with the staff member's engagement
+PERFORMANCE_PATH = 0.40   # performance on engagement
+LENIENCY_LOADING = 0.25
+NOT_RATED_SHARE = 0.06    # staff whose manager returned no rating
+RATED_NOT_SURVEYED = 40   # ratings of staff who did not answer the survey
+NOT_OBSERVED_RATE = 0.01  # item cells coded 0
+MANAGER_SCALES: list[dict[str, Any]] = [
+    {
+        "name": "performance", "label": "Job performance (manager-rated)", "prefix": "perf",
+        "loadings": [0.76, 0.72, 0.70, 0.68], "reverse": [4],
+        "wording": [
+            "Keeps to the bake schedule without reminders.",
+            "Turns out work of a quality customers remark on.",
+            "Handles a rush at the counter calmly and accurately.",
+            "Needs to be reminded of the hygiene routine.",
+        ],
+    },
+    {
+        "name": "engagement_seen", "label": "Work engagement as the manager sees it", "prefix": "seen",
+        "loadings": [0.74, 0.70, 0.72], "reverse": [], "same_as": "engagement",
+        "wording": [
+            "Starts the shift with energy.",
+            "Takes visible pride in what leaves the ovens.",
+            "Offers to help without being asked.",
+        ],
+    },
+]
+MANAGER_PATHS = {"engagement_seen": {"support": VIEW_CORR * PATHS["engagement"]["support"],
+                                     "workload": VIEW_CORR * PATHS["engagement"]["workload"]},
+                 "performance": {"engagement": PERFORMANCE_PATH}}
+
+
+def manager_ratings(df: pd.DataFrame, latent: pd.DataFrame) -> tuple[pd.DataFrame, dict]:
+    """The managers' ratings file (rows in the order the managers sent them) and its truth."""
+    rng = np.random.default_rng(MANAGER_SEED)
+    n = len(df)
+    eng = latent["engagement"].to_numpy()
+    traits = {
+        "engagement_seen": VIEW_CORR * eng + np.sqrt(1 - VIEW_CORR ** 2) * rng.standard_normal(n),
+        "performance": PERFORMANCE_PATH * eng + np.sqrt(1 - PERFORMANCE_PATH ** 2) * rng.standard_normal(n),
+    }
+    teams = sorted(df[TEAM_COLUMN].unique())
+    leniency = dict(zip(teams, rng.standard_normal(len(teams)), strict=True))
+    lenient = df[TEAM_COLUMN].map(leniency).to_numpy()
+    tau = likert_thresholds(MANAGER_POINTS)
+    out: dict[str, Any] = {MANAGER_ID: df[ID_COLUMN].tolist(),
+                           "manager": [f"M{t[1:]}" for t in df[TEAM_COLUMN]]}
+    for sc in MANAGER_SCALES:
+        for i, lam in enumerate(sc["loadings"], 1):
+            err = np.sqrt(1 - lam ** 2 - LENIENCY_LOADING ** 2)
+            x = lam * traits[sc["name"]] + LENIENCY_LOADING * lenient + err * rng.standard_normal(n)
+            v = np.searchsorted(tau, x, side="right") + 1
+            if i in sc["reverse"]:
+                v = MANAGER_POINTS + 1 - v
+            v[rng.random(n) < NOT_OBSERVED_RATE] = MANAGER_MISSING_CODE
+            out[f"{sc['prefix']}{i}"] = v.astype(np.int64)
+    ratings = pd.DataFrame(out)
+    rated = rng.random(n) >= NOT_RATED_SHARE
+    not_rated = ratings.loc[~rated, MANAGER_ID].tolist()
+    ratings = ratings[rated]
+    # staff who left before the survey or did not answer it, rated all the same
+    extra = ratings.sample(RATED_NOT_SURVEYED, random_state=rng.integers(2**31)).copy()
+    extra[MANAGER_ID] = [f"R{n + 1 + i:05d}" for i in range(RATED_NOT_SURVEYED)]
+    ratings = pd.concat([ratings, extra]).sample(frac=1.0, random_state=rng.integers(2**31))
+    truth = {
+        "scenario": {
+            "company": COMPANY, "fictional": True,
+            "description": "Shift managers' ratings of their crews' staff, two months after the survey; "
+                           "invented like the survey itself.",
+            "response_scale": {str(k): v for k, v in MANAGER_LABELS.items()},
+            "missing_code": {str(MANAGER_MISSING_CODE): "not observed"},
+            "items": {f"{sc['prefix']}{i}": w for sc in MANAGER_SCALES
+                      for i, w in enumerate(sc["wording"], 1)},
+        },
+        "generator": {"script": "sample_surveys/generate.py", "seed": MANAGER_SEED},
+        "population": {
+            "paths": MANAGER_PATHS,
+            "engagement_seen_corr_with_engagement": VIEW_CORR,
+            "loadings": {sc["name"]: sc["loadings"] for sc in MANAGER_SCALES},
+            "leniency_loading": LENIENCY_LOADING,
+            "leniency_share": LENIENCY_LOADING ** 2,
+            "notes": ["Leniency is one value per manager (crew): the managers' method, shared by the "
+                      "ratings of one manager and by nothing in the staff's answers.",
+                      "engagement_seen measures the staff member's engagement through the manager's eyes; "
+                      "its paths are 0.9 times those of engagement."],
+        },
+        "sample": {
+            "rows": len(ratings),
+            "staff_not_rated": len(not_rated),
+            "ratings_of_staff_not_surveyed": RATED_NOT_SURVEYED,
+            "not_observed_cells": int((ratings.drop(columns=[MANAGER_ID, "manager"])
+                                       == MANAGER_MISSING_CODE).to_numpy().sum()),
+        },
+    }
+    return ratings, truth
+
+
+def two_source_design() -> dict:
+    des = design()
+    for sc in MANAGER_SCALES:
+        items = [f"{sc['prefix']}{i}" for i in range(1, len(sc["wording"]) + 1)]
+        entry: dict[str, Any] = {"items": items, "source": "manager"}
+        if sc["reverse"]:
+            entry["reverse"] = [items[r - 1] for r in sc["reverse"]]
+        if sc.get("same_as"):
+            entry["same_as"] = sc["same_as"]
+        des["constructs"][sc["name"]] = entry
+    des["paths"] += [{"outcome": y, "predictors": list(p)} for y, p in MANAGER_PATHS.items()]
+    des["sources"] = {"manager": {"id_column": MANAGER_ID, "kind": "other_rater",
+                                  "response_scale": {"min": 1, "max": MANAGER_POINTS},
+                                  "missing_codes": [MANAGER_MISSING_CODE]}}
+    return des
+
+
 def build() -> tuple[pd.DataFrame, dict, dict]:
     """The survey data, its design and its truth."""
+    df, des, truth, _ = build_with_latent()
+    return df, des, truth
+
+
+def build_with_latent() -> tuple[pd.DataFrame, dict, dict, pd.DataFrame]:
     spec = survey_spec()
-    df, sim_truth = simulate_survey(spec)
+    df, sim_truth, latent = simulate_survey(spec, return_latent=True)
     items = [c for c in df.columns if c not in (ID_COLUMN, TEAM_COLUMN)]
     # Separate stream for the planted problems, so the simulated answers do not depend on them.
     rng = np.random.default_rng([SEED, 1])
@@ -233,19 +367,27 @@ def build() -> tuple[pd.DataFrame, dict, dict]:
             ],
         },
     }
-    return df, design(), _rounded(truth)
+    return df, design(), _rounded(truth), latent
 
 
 def write(out: Path) -> list[Path]:
-    df, des, truth = build()
+    df, des, truth, latent = build_with_latent()
     parsed = parse_design(des)
     check_columns(parsed, df.columns)
+    ratings, manager_truth = manager_ratings(df, latent)
+    two = two_source_design()
+    parse_design(two)
     out.mkdir(parents=True, exist_ok=True)
     paths = [out / "staff_survey.csv", out / "staff_survey_design.json",
-             out / "staff_survey_truth.json"]
+             out / "staff_survey_truth.json", out / "manager_ratings.csv",
+             out / "staff_survey_two_sources_design.json", out / "manager_ratings_truth.json"]
     df.to_csv(paths[0], index=False, lineterminator="\n")
     paths[1].write_text(json.dumps(des, indent=2) + "\n", encoding="utf-8")
     paths[2].write_text(json.dumps(truth, indent=2, allow_nan=False) + "\n", encoding="utf-8")
+    ratings.to_csv(paths[3], index=False, lineterminator="\n")
+    paths[4].write_text(json.dumps(two, indent=2) + "\n", encoding="utf-8")
+    paths[5].write_text(json.dumps(_rounded(manager_truth), indent=2, allow_nan=False) + "\n",
+                        encoding="utf-8")
     return paths
 
 

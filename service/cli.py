@@ -44,6 +44,12 @@ def _parser() -> argparse.ArgumentParser:
                    help="confidence level of every interval, 0.5 to 0.999 (default 0.95)")
     a.add_argument("--min-group-size", type=int, default=5, metavar="N",
                    help="no group's numbers are shown for groups smaller than this (default 5)")
+    a.add_argument("--source", action="append", default=[], metavar="NAME=PATH",
+                   help="the file of a second source the design names under 'sources' (manager "
+                        "ratings, a later wave, records), joined on ids; repeat for each source")
+    a.add_argument("--check-corrections", type=int, default=0, metavar="N",
+                   help="check every correction on N simulated surveys like this one per scenario (the fitted "
+                        "model and four departures from it; each is a whole analysis: minutes)")
     a.add_argument("--quiet", action="store_true",
                    help="print only where the report is (no summary, no progress lines)")
 
@@ -124,6 +130,10 @@ def _uninterrupted(note: list[int]) -> Iterator[None]:
             signal.signal(sig, handler)
 
 
+# stages whose progress counts work done (done of total), not stages
+COUNTED = {"bootstrap": ("bootstrap", "replicates"), "check_corrections": ("correction check", "simulated surveys")}
+
+
 class _TerminalProgress:
     """One line on stderr, rewritten in place as the stages pass; only on a terminal, so logs
     and pipes get nothing but the summary."""
@@ -133,7 +143,7 @@ class _TerminalProgress:
         self.width = 0
 
     def __call__(self, stage: str, done: int, total: int) -> None:
-        text = f"  {stage.replace('_', ' ')} {done}/{total}" if stage == "bootstrap" else \
+        text = f"  {stage.replace('_', ' ')} {done}/{total}" if stage in COUNTED else \
             f"  {stage.replace('_', ' ')} (step {done + 1} of {total})"
         self.stream.write("\r" + text.ljust(self.width))
         self.stream.flush()
@@ -156,12 +166,13 @@ class _LineProgress:
         self.last: tuple[str, int] | None = None
 
     def __call__(self, stage: str, done: int, total: int) -> None:
-        if stage == "bootstrap":
+        if stage in COUNTED:
             tenth = (10 * done) // total if total else 10
-            if self.last == ("bootstrap", tenth) or (done and tenth == 0):
+            if self.last == (stage, tenth) or (done and tenth == 0):
                 return
-            self.last = ("bootstrap", tenth)
-            text = f"samesource: bootstrap {done}/{total} replicates ({10 * tenth}%)"
+            self.last = (stage, tenth)
+            what, unit = COUNTED[stage]
+            text = f"samesource: {what} {done}/{total} {unit} ({10 * tenth}%)"
         else:
             if (self.last is not None and self.last[0] == stage) or stage == "load":
                 return
@@ -184,11 +195,12 @@ def _analyze(args: argparse.Namespace) -> int:
         "missing": args.missing, "drop_flagged": args.drop_flagged,
         "fit_time_limit": args.fit_time_limit, "seed": args.seed, "sheet": args.sheet,
         "bootstrap": args.bootstrap, "min_group_size": args.min_group_size,
-        "confidence": args.confidence,
+        "confidence": args.confidence, "check_corrections": args.check_corrections,
     })
+    sources = _source_files(args.source)
     shown = None if args.quiet else _TerminalProgress() if sys.stderr.isatty() else _LineProgress()
     try:
-        result = analyze(args.data, design, opts, progress=shown)
+        result = analyze(args.data, design, opts, progress=shown, sources=sources)
     finally:
         if shown is not None:
             shown.clear()
@@ -212,6 +224,22 @@ def _analyze(args: argparse.Namespace) -> int:
     if review_last_line(result.report):  # the last line says so (exit 0 all the same)
         print(review_last_line(result.report))
     return 0
+
+
+def _source_files(given: list[str]) -> dict[str, str]:
+    """--source NAME=PATH, each name once."""
+    out: dict[str, str] = {}
+    for text in given:
+        name, eq, path = text.partition("=")
+        name, path = name.strip(), path.strip()
+        if not eq or not name or not path:
+            raise InputError(f"--source {text!r}: write it as NAME=PATH, the source's name in the design's "
+                             "'sources' and its file, e.g. --source manager=manager_ratings.csv",
+                             code="bad_option")
+        if name in out:
+            raise InputError(f"--source {name}=... is given twice; give each source once", code="bad_option")
+        out[name] = path
+    return out
 
 
 def write_outputs(report: dict, out: Path) -> None:

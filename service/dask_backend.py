@@ -208,7 +208,9 @@ class DaskBackend:
         from .runner import WorkerLost
 
         data = Path(spec.path).read_bytes() if spec.path else spec.data
-        remote = replace(spec, path=None, data=data)
+        sources = {name: (Path(v).read_bytes() if isinstance(v, str) else v, label)
+                   for name, (v, label) in spec.sources.items()}
+        remote = replace(spec, path=None, data=data, sources=sources)
         dfut = self._client.submit(_run_on_cluster, remote, pure=False,
                                    key=f"samesource-analysis-{spec.analysis_id}-{spec.attempt}")
         with self._lock:

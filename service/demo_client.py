@@ -1,7 +1,8 @@
 """`make demo`, second step: the HTTP service as a client uses it (standard library only).
 
 Starts `samesource serve` on a free loopback port with its embedded defaults in a temporary
-data folder, makes a token, uploads the sample survey, starts an analysis, polls it, prints
+data folder, makes a token, uploads the sample survey and the managers' ratings of the same
+staff (a second source), starts an analysis of both, polls it, prints
 the preferred estimate of every key path, saves the report, and stops the service.
 
     python -m service.demo_client [--keep]   # --keep: leave the service running, print how to stop it
@@ -26,7 +27,8 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 SURVEY = ROOT / "sample_surveys" / "staff_survey.csv"
-DESIGN = ROOT / "sample_surveys" / "staff_survey_design.json"
+DESIGN = ROOT / "sample_surveys" / "staff_survey_two_sources_design.json"
+MANAGERS = ROOT / "sample_surveys" / "manager_ratings.csv"
 OPTIONS = {"missing": "fiml"}
 SAVED = ROOT / "samesource-report" / "report-http.json"
 
@@ -62,8 +64,9 @@ class Client:
             raise SystemExit(f"upload refused ({status}): {out['error']['message']}")
         return out
 
-    def analyse(self, dataset_id: str, design: dict, options: dict) -> str:
-        body = json.dumps({"dataset_id": dataset_id, "design": design, "options": options})
+    def analyse(self, dataset_id: str, design: dict, options: dict, sources: dict | None = None) -> str:
+        body = json.dumps({"dataset_id": dataset_id, "design": design, "options": options,
+                           "sources": sources or {}})
         status, out = self.call("POST", "/v1/analyses", body.encode(), "application/json")
         if status != 202:
             raise SystemExit(f"analysis refused ({status}): {out['error']['message']}")
@@ -92,8 +95,9 @@ def print_paths(report: dict) -> None:
         e = p["estimates"][method]
         ci = e.get("ci") or [None, None]
         ci_text = f"[{ci[0]:.3f}, {ci[1]:.3f}]" if None not in ci else "[no interval]"
-        print(f"  {p['predictor']:>12} -> {p['outcome']:<12} {e['estimate']:+.3f} {ci_text}"
-              f"  ({method})")
+        kind = " cross-source" if (p.get("sources") or {}).get("kind") == "cross_source" else ""
+        print(f"  {p['predictor']:>12} -> {p['outcome']:<15} {e['estimate']:+.3f} {ci_text}"
+              f"  ({method}){kind}")
 
 
 # ---------------------------------------------------------------------- the service
@@ -133,7 +137,10 @@ def main(argv: list[str] | None = None) -> int:
         ds = client.upload(SURVEY)
         print(f"Uploaded {ds['name']}: {ds['rows']} rows, {len(ds['columns'])} columns "
               f"({ds['id']})")
-        aid = client.analyse(ds["id"], json.loads(DESIGN.read_text(encoding="utf-8")), OPTIONS)
+        managers = client.upload(MANAGERS)
+        print(f"Uploaded {managers['name']}: {managers['rows']} rows (second source 'manager', {managers['id']})")
+        aid = client.analyse(ds["id"], json.loads(DESIGN.read_text(encoding="utf-8")), OPTIONS,
+                             {"manager": managers["id"]})
         print(f"Analysis {aid} queued; polling:")
         a = client.wait(aid)
         if a["status"] != "succeeded":

@@ -34,6 +34,8 @@ class JobSpec:
     options: dict
     path: str | None = None
     data: bytes | None = field(default=None, repr=False)
+    # second sources: NAME -> (local path or the file's bytes, file name for messages)
+    sources: dict[str, tuple[Any, str]] = field(default_factory=dict, repr=False)
 
 
 @dataclass
@@ -82,7 +84,8 @@ def run_job(spec: JobSpec, progress: Callable[[str, int, int], None], executor: 
     source: Any = spec.data if spec.data is not None else spec.path
     try:
         result = analyze(source, spec.design, spec.options, name=spec.name,
-                         progress=Throttle(progress, spec.analysis_id), executor=executor)
+                         progress=Throttle(progress, spec.analysis_id), executor=executor,
+                         sources=spec.sources)
         text = dumps(result.report)
     except (Cancelled, StopRequested):
         log.info("analysis %s stopped: it no longer belongs to this run", spec.analysis_id)

@@ -91,3 +91,5 @@ class Analysis(Base):
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     started_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True), nullable=True)
     finished_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True), nullable=True)
+    # second sources {NAME: dataset_id} (added later: nullable, see db.create_schema)
+    sources: Mapped[dict | None] = mapped_column(JSON, nullable=True)

@@ -413,9 +413,20 @@ class JobRunner:
                 "message": "the dataset's stored file is missing from the service's data folder; "
                            "upload the file again and start a new analysis", "field": None})
             return
+        sources = {}
+        for name, src in (inputs.get("sources") or {}).items():
+            src_path = Path(self.config.data_dir) / src["stored_path"] if src else None
+            if src_path is None or not src_path.is_file():
+                log.error("analysis %s: the dataset of its source %r is missing", aid, name)
+                self._save(claim, error={
+                    "code": "dataset_unavailable",
+                    "message": f"the dataset of source '{name}' is no longer stored; upload it again and "
+                               "start a new analysis", "field": f"sources.{name}"})
+                return
+            sources[name] = (str(src_path.resolve()), src["name"])
         spec = JobSpec(analysis_id=aid, attempt=claim.attempt, runner=claim.runner,
                        name=inputs["name"], design=inputs["design"], options=inputs["options"],
-                       path=str(path.resolve()))
+                       path=str(path.resolve()), sources=sources)
         t0 = time.monotonic()
         log.info("analysis %s started (attempt %d)", aid, claim.attempt)
         try:

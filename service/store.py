@@ -173,8 +173,12 @@ class Store:
                 return None
             out = _dataset(ds)
             # explicit, not only ON DELETE CASCADE: SQLite enforces it only with the pragma on
-            ids = s.scalars(select(Analysis.id).where(Analysis.dataset_id == dataset_id)).all()
-            s.execute(delete(Analysis).where(Analysis.dataset_id == dataset_id))
+            ids = list(s.scalars(select(Analysis.id).where(Analysis.dataset_id == dataset_id)).all())
+            # and the analyses that join it as a second source
+            ids += [a.id for a in s.scalars(select(Analysis).where(Analysis.tenant_id == tenant_id,
+                                                                   Analysis.sources.is_not(None))).all()
+                    if dataset_id in (a.sources or {}).values()]
+            s.execute(delete(Analysis).where(Analysis.id.in_(ids)))
             s.delete(ds)
             out["analysis_ids"] = list(ids)
             return out
@@ -190,11 +194,12 @@ class Store:
 
     # ------------------------------------------------------------------ analyses
 
-    def add_analysis(self, tenant_id: str, dataset_id: str, design: dict, options: dict) -> dict:
+    def add_analysis(self, tenant_id: str, dataset_id: str, design: dict, options: dict,
+                     sources: dict[str, str] | None = None) -> dict:
         with self.db.writing() as s:
             a = Analysis(id=new_id("an"), tenant_id=tenant_id, dataset_id=dataset_id,
                          design=design, options=options, status="queued", stage=None, done=0,
-                         total=0, attempts=0, created_at=utcnow())
+                         total=0, attempts=0, created_at=utcnow(), sources=sources or None)
             s.add(a)
             s.flush()
             return _analysis(a)
@@ -296,13 +301,17 @@ class Store:
         """What a job needs: the dataset's stored file and name, the design and options."""
         with self.db.reading() as s:
             row = s.execute(select(Analysis.design, Analysis.options, Dataset.stored_path,
-                                   Dataset.name, Dataset.sha256)
+                                   Dataset.name, Dataset.sha256, Analysis.sources, Analysis.tenant_id)
                             .join(Dataset, Dataset.id == Analysis.dataset_id)
                             .where(Analysis.id == analysis_id)).first()
-        if row is None:
-            return None
+            if row is None:
+                return None
+            sources = {}
+            for name, ds_id in (row[5] or {}).items():
+                ds = s.scalar(select(Dataset).where(Dataset.id == ds_id, Dataset.tenant_id == row[6]))
+                sources[name] = None if ds is None else {"stored_path": ds.stored_path, "name": ds.name}
         return {"design": row[0], "options": row[1], "stored_path": row[2], "name": row[3],
-                "sha256": row[4]}
+                "sha256": row[4], "sources": sources}
 
     def _mine(self, claim: Claim):
         return (Analysis.id == claim.analysis_id, Analysis.runner == claim.runner,
@@ -426,6 +435,7 @@ def _analysis(a: Analysis, *, with_report: bool = False) -> dict:
         "error": a.error,
         "design": a.design,
         "options": a.options,
+        "sources": dict(a.sources or {}),
         "attempts": a.attempts,
         "created_at": iso(a.created_at),
         "started_at": iso(a.started_at),

@@ -442,6 +442,64 @@ def test_page_offers_sheets_answer_texts_every_option_and_design_files(server_fa
     assert not problems, problems
 
 
+def test_page_adds_a_second_source_and_sends_it_with_the_analysis(server_factory, tmp_path):
+    """A design with a second source loaded into the form waits for the source's file; adding
+    it fills the source's settings and item choices from the design, and the analysis request
+    carries the source's dataset (issue 17)."""
+    two = json.loads((ROOT / "sample_surveys" / "staff_survey_two_sources_design.json").read_text())
+    server = server_factory(tmp_path / "data")
+    token = new_token(tmp_path / "data", "t")
+    problems: list[str] = []
+    with sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
+        page = browser.new_context(viewport={"width": 1280, "height": 900}).new_page()
+        page.on("pageerror", lambda e: problems.append(f"page error: {e}"))
+        page.goto(server.base + "/")
+        page.locator("#token").fill(token)
+        page.locator("#token-form button[type='submit']").click()
+        page.locator("#file").set_input_files(str(SURVEY))
+        page.locator("#upload-btn").click()
+        expect(page.locator("#design-step")).to_be_visible(timeout=30_000)
+        # the constructs' source selects appear only once the design has sources
+        expect(construct(page, "sup").locator("[data-role='links']")).to_be_hidden()
+        page.locator("#json-view > summary").click()
+        page.locator("#design-json").fill(json.dumps(two))
+        page.locator("#json-load").click()
+        perf = construct(page, "performance")
+        expect(perf.locator("select[data-role='source']")).to_have_value("manager")
+        expect(perf.locator("select[data-role='source'] option:checked")).to_contain_text("not uploaded yet")
+        # a source needs a name and a file
+        page.locator("#add-source").click()
+        expect(page.locator("#alert")).to_contain_text("Give the source a name")
+        page.locator("#source-name").fill("manager")
+        page.locator("#source-file").set_input_files(str(ROOT / "sample_surveys" / "manager_ratings.csv"))
+        page.locator("#add-source").click()
+        box = page.locator("#sources .source[data-name='manager']")
+        expect(box).to_be_visible(timeout=30_000)
+        expect(box.locator("select[data-role='id']")).to_have_value("employee")
+        expect(box.locator("input[data-role='codes']")).to_have_value("0")
+        checked = perf.locator("[data-role='items'] input:checked")
+        assert [checked.nth(i).get_attribute("value") for i in range(checked.count())] == two[
+            "constructs"]["performance"]["items"]
+        seen = construct(page, "engagement_seen")
+        assert seen.locator("select[data-role='same-as']").input_value() == "engagement"
+        sent = design_json(page)
+        assert sent["sources"] == two["sources"]
+        assert sent["constructs"] == two["constructs"]
+        shot(page, "12-second-source")
+        page.locator("#check_corrections").fill("2")
+        with page.expect_request(lambda r: r.url.endswith("/v1/analyses") and r.method == "POST") as req:
+            page.locator("#run-btn").click()
+        body = json.loads(req.value.post_data)
+        expect(page.locator("#progress-box")).to_be_visible()
+        datasets = requests.get(f"{server.base}/v1/datasets", headers={"Authorization": f"Bearer {token}"},
+                                timeout=30).json()["datasets"]
+        assert body["options"]["check_corrections"] == 2
+        assert body["sources"] == {"manager": next(d["id"] for d in datasets if d["name"] == "manager_ratings.csv")}
+        browser.close()
+    assert not problems, problems
+
+
 # ------------------------------------------------------------------ report.html and brief.html
 
 def _rendered_pages(tmp_path: Path) -> dict[str, Path]:

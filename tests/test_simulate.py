@@ -275,7 +275,8 @@ def test_generator_reproduces_committed_files(tmp_path):
     run = subprocess.run([sys.executable, str(SAMPLES / "generate.py"), "--out", str(tmp_path)],
                          capture_output=True, text=True, timeout=60)
     assert run.returncode == 0, run.stderr
-    for name in ("staff_survey.csv", "staff_survey_design.json", "staff_survey_truth.json"):
+    for name in ("staff_survey.csv", "staff_survey_design.json", "staff_survey_truth.json", "manager_ratings.csv",
+                 "staff_survey_two_sources_design.json", "manager_ratings_truth.json"):
         assert (tmp_path / name).read_bytes() == (SAMPLES / name).read_bytes(), name
 
 
@@ -329,6 +330,9 @@ def test_codebook_lists_every_item_with_its_wording():
     for item, wording in gen.item_wording().items():
         assert f"`{item}`" in codebook and wording in codebook, item
     assert gen.COMPANY in codebook and "-99" in codebook
+    for sc in gen.MANAGER_SCALES:  # the managers' file too
+        for i, wording in enumerate(sc["wording"], 1):
+            assert f"`{sc['prefix']}{i}`" in codebook and wording in codebook
 
 
 # ---- named scenarios: their truth against a direct computation -------------------------------

@@ -194,3 +194,23 @@ def test_missing_sections_give_empty_tables_of_the_same_shape(sample):
             assert len(df) == 0, name
     csv = tables_csv(empty)
     assert pd.read_csv(io.StringIO(csv["paths.csv"])).shape == (0, len(full["paths"].columns))
+
+
+def test_second_sources_and_the_correction_check_get_tables_of_their_own():
+    """Hand-made report fragments: one row per source, per compared estimate, per check cell."""
+    report = {"cautions": [], "data": {"sources": {"boss": {"name": "boss", "file": "b.csv", "rows": 3, "matched": 2,
+                                                            "response_scale": {"min": 1, "max": 5},
+                                                            "examples": {"main_without_match": ["E1"]}}}},
+              "paths": [{"outcome": "y", "predictor": "x", "estimates": {}, "sensitivity": {"curve": []},
+                         "cross_source_check": {"counterpart": {"outcome": "y2", "predictor": "x"},
+                                                "benchmark": {"method": "latent", "estimate": 0.2},
+                                                "by_estimate": {"observed": {"estimate": 0.3, "difference": 0.1},
+                                                                "latent": {"estimate": 0.25, "difference": 0.05}},
+                                                "closest": "latent"}}],
+              "correction_check": {"paths": [{"outcome": "y", "predictor": "x", "truth": 0.2, "lean_on": "latent",
+                                              "scenarios": {"fitted": {"latent": {"n": 5, "bias": 0.01}}}}]}}
+    t = report_tables(report)
+    assert t["sources"].loc[0, "response_scale_max"] == 5 and "examples_main_without_match" not in t["sources"]
+    assert t["cross_source"]["closest"].tolist() == [False, True]
+    assert t["correction_check"].loc[0, ["scenario", "method", "bias", "lean_on"]].tolist() == [
+        "fitted", "latent", 0.01, True]

@@ -32,7 +32,7 @@ from .paging import page_args
 log = logging.getLogger("samesource.service")
 
 HTML_MODULE = "measurement.html_report"
-_BODY_FIELDS = ("dataset_id", "design", "options")
+_BODY_FIELDS = ("dataset_id", "design", "options", "sources")
 
 
 def public(a: dict, *, report: dict | None = None, include_report: bool = True) -> dict:
@@ -137,13 +137,14 @@ def create() -> tuple[Response, int]:
                           other_sheets=others)
     except InputError as e:
         raise from_input_error(e, field_prefix="design") from None
+    sources = _sources(svc, design, body.get("sources"))
     quotas.check_new_analysis(svc.config, svc.store, tenant_id(), int(options.bootstrap or 0))
     if options.sheet is None or options.sheet == ds.get("sheet"):
         try:
             _check_texts(design, ds)
         except InputError as e:
             raise from_input_error(e) from None
-    a = svc.store.add_analysis(tenant_id(), dataset_id, body["design"], options.to_dict())
+    a = svc.store.add_analysis(tenant_id(), dataset_id, body["design"], options.to_dict(), sources=sources)
     if svc.runner is not None:
         svc.runner.notify()
     log.info("analysis %s queued for dataset %s", a["id"], dataset_id)
@@ -151,6 +152,35 @@ def create() -> tuple[Response, int]:
                     "created_at": a["created_at"]})
     resp.headers["Location"] = f"/v1/analyses/{a['id']}"
     return resp, 202
+
+
+def _sources(svc, design: Design, given: object) -> dict[str, str]:
+    """``sources`` {NAME: dataset_id}: each a dataset of this tenant (404 otherwise), one per
+    source the design names (400 otherwise), holding that source's columns (400)."""
+    from measurement.sources import check_source_columns
+
+    if given is None:
+        given = {}
+    if not isinstance(given, dict) or not all(isinstance(v, str) and v for v in given.values()):
+        raise ApiError(400, "bad_request", "must be an object {NAME: dataset_id} naming the dataset of each "
+                       "source in the design's 'sources'", "sources")
+    for name in design.sources:
+        if name not in given:
+            raise ApiError(400, "bad_request", f"the design's source '{name}' has no dataset: add "
+                           f"\"{name}\": DATASET_ID (upload its file with POST /v1/datasets)", f"sources.{name}")
+    for name, ds_id in given.items():
+        if name not in design.sources:
+            known = ", ".join(design.sources) or "none"
+            raise ApiError(400, "bad_request", f"the design names no source {echo(name)}"
+                           f"{did_you_mean(name, design.sources)} (its sources: {known})", f"sources.{name}")
+        ds = svc.store.get_dataset(tenant_id(), ds_id)
+        if ds is None:
+            raise ApiError(404, "not_found", f"no dataset {echo(ds_id)}", f"sources.{name}")
+        try:
+            check_source_columns(design, name, ds["columns"], file=ds["name"])
+        except InputError as e:
+            raise from_input_error(e, field_prefix="design") from None
+    return dict(given)
 
 
 def _sheet_columns(ds: dict, sheet: str | None) -> list[str] | None:

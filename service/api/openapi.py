@@ -82,6 +82,10 @@ SCHEMAS: dict[str, Any] = {
                     "reverse": {"type": "array", "items": {"type": "string"}},
                     "role": {"enum": ["substantive", "marker", "method"]},
                     "answer_labels": _LABELS,
+                    "source": {"type": "string", "description": "a name in sources: the items come from "
+                                                                 "that source's file"},
+                    "same_as": {"type": "string", "description": "the construct of another source that "
+                                                                  "this one measures again"},
                 }}},
             "paths": {"type": "array", "items": {
                 "type": "object", "required": ["outcome", "predictors"],
@@ -93,6 +97,17 @@ SCHEMAS: dict[str, Any] = {
             "id_column": {"type": "string"},
             "group_column": {"type": "string"},
             "answer_labels": _LABELS,
+            "sources": {"type": "object", "description": "second sources joined on ids (docs/design-file.md)",
+                        "additionalProperties": {
+                            "type": "object", "required": ["id_column"],
+                            "properties": {
+                                "id_column": {"type": "string"},
+                                "kind": {"enum": ["other_rater", "later_wave", "records"]},
+                                "response_scale": {"type": "object", "required": ["min", "max"],
+                                                   "properties": {"min": {"type": "number"},
+                                                                  "max": {"type": "number"}}},
+                                "missing_codes": {"type": "array", "items": {"type": "number"}},
+                                "answer_labels": _LABELS}}},
         },
     },
     "Options": {
@@ -110,6 +125,9 @@ SCHEMAS: dict[str, Any] = {
             "seed": {"type": "integer", "minimum": 0, "maximum": 4294967295, "default": 0},
             "min_group_size": {"type": "integer", "minimum": 2, "maximum": 1000, "default": 5},
             "sheet": {"type": ["string", "null"], "default": None},
+            "check_corrections": {"type": "integer", "minimum": 0, "maximum": 1000, "default": 0,
+                                  "description": "simulated surveys per scenario of the correction check "
+                                                 "(report.correction_check and report.next_time); 0: none"},
         },
     },
     "Dataset": {
@@ -162,7 +180,9 @@ SCHEMAS: dict[str, Any] = {
         "required": ["dataset_id", "design"],
         "additionalProperties": False,
         "properties": {"dataset_id": {"type": "string"}, "design": _ref("Design"),
-                       "options": _ref("Options")},
+                       "options": _ref("Options"),
+                       "sources": {"type": "object", "additionalProperties": {"type": "string"},
+                                   "description": "the dataset id of each source the design names"}},
     },
     "AnalysisAccepted": {
         "type": "object",
@@ -177,7 +197,7 @@ SCHEMAS: dict[str, Any] = {
         "properties": {
             "stage": {"type": ["string", "null"],
                       "description": "starting, load, screen, reliability, measurement_model, "
-                                     "method_variance, paths, bootstrap, report, done"},
+                                     "method_variance, paths, bootstrap, teams, check_corrections, report, done"},
             "done": {"type": "integer"},
             "total": {"type": "integer"},
         },
@@ -193,6 +213,8 @@ SCHEMAS: dict[str, Any] = {
             "error": _nullable(_ref("ErrorObject")),
             "design": {"type": "object"},
             "options": {"type": "object"},
+            "sources": {"type": "object", "additionalProperties": {"type": "string"},
+                        "description": "the dataset id of each second source"},
             "attempts": {"type": "integer", "description": "runs started (a restart re-runs)"},
             "created_at": {"type": "string", "format": "date-time"},
             "started_at": {"type": ["string", "null"], "format": "date-time"},

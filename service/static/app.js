@@ -14,7 +14,12 @@
     reportUrl: null,
     jsonUrl: null,
     nextKey: 1,
+    sources: new Map(),   // second sources: name -> {dataset, box}
+    pendingSources: {},   // a loaded design's settings for sources not uploaded yet
   };
+  const MAIN_SOURCE = "";  // a construct's source select: "" is the survey file itself
+  const SOURCE_KINDS = [["other_rater", "Another rater (a manager, a colleague)"],
+                        ["later_wave", "A later wave of the same people"], ["records", "Records"]];
 
   // ---- messages --------------------------------------------------------------------------
 
@@ -198,6 +203,8 @@
     (ds.draft_notes || []).forEach((n) => notes.appendChild(el("li", { text: "Drafted " + n })));
     (ds.draft_left_out || []).forEach((d) => notes.appendChild(el("li", { text: "Left out " + d.column + ": " + d.reason })));
     notes.hidden = !notes.children.length;
+    state.sources.clear();  // a new survey file: its sources are added again
+    $("sources").textContent = "";
     loadDesign(ds.draft_design || { constructs: {}, paths: [] });
     $("design-step").hidden = false;
     $("run-step").hidden = false;
@@ -225,8 +232,8 @@
 
   // columns that can be items: those holding numbers, and those holding answer texts (which
   // answer_labels map to numbers)
-  function numericColumns() {
-    const ds = state.dataset;
+  function numericColumns(ds) {
+    ds = ds || state.dataset;
     if (!ds) return [];
     const usable = new Set(ds.numeric_columns || ds.columns);
     (ds.warnings || []).forEach((w) => { if (w.code === "text_answers") usable.add(w.column); });
@@ -274,14 +281,27 @@
         el("div", { class: "field" }, el("label", { for: key + "-name", text: "Name" }), nameInput),
         el("div", { class: "field" }, el("label", { for: key + "-role", text: "Role" }), roleSelect),
         remove));
+    box.dataset.source = spec.source || MAIN_SOURCE;
+    box.dataset.sameAs = spec.same_as || "";
+    const sourceSelect = el("select", { id: key + "-source", "data-role": "source" });
+    const sameSelect = el("select", { id: key + "-same-as", "data-role": "same-as" });
+    const links = el("div", { class: "links", "data-role": "links" },
+      el("div", { class: "field" }, el("label", { for: key + "-source", text: "Items from" }), sourceSelect),
+      el("div", { class: "field", "data-role": "same-as-field" },
+         el("label", { for: key + "-same-as", text: "Measures again (the same thing, from the survey or another source)" }),
+         sameSelect));
+    box.append(links);
+    sourceSelect.addEventListener("change", () => {
+      box.dataset.source = sourceSelect.value;
+      renderItems(box);
+      renderLinks(box);
+      markTaken();
+    });
+    sameSelect.addEventListener("change", () => { box.dataset.sameAs = sameSelect.value; });
 
-    const items = new Set(spec.items || []);
     const itemsSet = el("fieldset", { class: "checks", "data-role": "items" },
                         el("legend", { text: "Items" }));
     const list = el("div", { class: "check-list" });
-    const cols = numericColumns().slice();
-    (spec.items || []).forEach((c) => { if (!cols.includes(c)) cols.push(c); });
-    cols.forEach((c) => list.appendChild(checkbox(key + "-item", c, c, items.has(c))));
     itemsSet.appendChild(list);
     const showAll = el("input", { type: "checkbox", id: key + "-show-all", "data-role": "show-all" });
     itemsSet.appendChild(el("div", { class: "choice show-all" }, showAll,
@@ -292,6 +312,8 @@
                       el("legend", { text: "Reverse-keyed items" }));
     box.append(itemsSet, revSet);
     $("constructs").appendChild(box);
+    renderItems(box, new Set(spec.items || []));
+    renderLinks(box);
     renderReverse(box, new Set(spec.reverse || []));
     updateLegend(box);
 
@@ -310,6 +332,47 @@
     if (focus) nameInput.focus();
     return box;
   }
+
+  // the item choices of a construct: the columns of the file its items come from
+  function renderItems(box, keep) {
+    const list = box.querySelector("[data-role='items'] .check-list");
+    const chosen = keep || new Set(checkedValues(list));
+    const src = state.sources.get(box.dataset.source);
+    const cols = box.dataset.source && src ? numericColumns(src.dataset).slice() :
+      box.dataset.source ? [] : numericColumns().slice();
+    chosen.forEach((c) => { if (!cols.includes(c)) cols.push(c); });
+    list.textContent = "";
+    cols.forEach((c) => list.appendChild(checkbox(box.dataset.key + "-item", c, c, chosen.has(c))));
+    renderReverse(box);
+  }
+
+  // the construct's source (the survey or a second source) and what it measures again
+  function renderLinks(box) {
+    const sourceSelect = box.querySelector("select[data-role='source']");
+    const names = Array.from(state.sources.keys());
+    if (box.dataset.source && !names.includes(box.dataset.source)) names.push(box.dataset.source);
+    sourceSelect.textContent = "";
+    sourceSelect.appendChild(el("option", { value: MAIN_SOURCE, text: "The survey file" }));
+    names.forEach((n) => sourceSelect.appendChild(el("option", {
+      value: n, text: "Source “" + n + "”" + (state.sources.has(n) ? "" : " (file not uploaded yet)") })));
+    sourceSelect.value = box.dataset.source;
+    box.querySelector("[data-role='links']").hidden = !names.length;
+    const sameSelect = box.querySelector("select[data-role='same-as']");
+    sameSelect.textContent = "";
+    sameSelect.appendChild(el("option", { value: "", text: "Nothing (a construct of its own)" }));
+    constructBoxes().filter((b) => b !== box && (b.dataset.source || MAIN_SOURCE) !== box.dataset.source)
+      .forEach((b) => {
+        const n = b.querySelector("input[data-role='name']").value.trim();
+        if (n) sameSelect.appendChild(el("option", { value: n, text: n }));
+      });
+    if (box.dataset.sameAs && !Array.from(sameSelect.options).some((o) => o.value === box.dataset.sameAs)) {
+      sameSelect.appendChild(el("option", { value: box.dataset.sameAs, text: box.dataset.sameAs }));
+    }
+    sameSelect.value = box.dataset.sameAs;
+    box.querySelector("[data-role='same-as-field']").hidden = !box.dataset.source && !box.dataset.sameAs;
+  }
+
+  function refreshLinks() { constructBoxes().forEach(renderLinks); }
 
   function updateLegend(box) {
     const name = box.querySelector("input[data-role='name']").value.trim();
@@ -435,7 +498,7 @@
     predSet.appendChild(list);
   }
 
-  function refreshPaths() { pathBoxes().forEach(renderPath); }
+  function refreshPaths() { pathBoxes().forEach(renderPath); refreshLinks(); }
 
   function fillColumnSelect(select, value) {
     select.textContent = "";
@@ -453,6 +516,12 @@
   function loadDesign(d) {
     $("constructs").textContent = "";
     $("paths").textContent = "";
+    state.pendingSources = {};
+    Object.entries(d.sources || {}).forEach(([name, spec]) => {
+      const src = state.sources.get(name);
+      if (src) fillSource(src.box, spec || {});
+      else state.pendingSources[name] = spec || {};
+    });
     Object.entries(d.constructs || {}).forEach(([name, spec]) => addConstruct(name, spec || {}, false));
     markTaken();
     (d.paths || []).forEach((p) => {
@@ -465,6 +534,7 @@
     $("answer-labels").value = d.answer_labels ? JSON.stringify(d.answer_labels, null, 1) : "";
     fillColumnSelect($("id-column"), d.id_column);
     fillColumnSelect($("group-column"), d.group_column);
+    refreshLinks();
     if ($("json-view").open) $("design-json").value = JSON.stringify(d, null, 2);
   }
 
@@ -486,6 +556,8 @@
       const role = b.querySelector("select[data-role='role']").value;
       if (role !== "substantive") spec.role = role;
       if (b.dataset.labels) spec.answer_labels = JSON.parse(b.dataset.labels);
+      if (b.dataset.source) spec.source = b.dataset.source;
+      if (b.dataset.sameAs) spec.same_as = b.dataset.sameAs;
       constructs[name] = spec;
       names.set(b.dataset.key, name);
     });
@@ -525,8 +597,134 @@
     }
     if ($("id-column").value) design.id_column = $("id-column").value;
     if ($("group-column").value) design.group_column = $("group-column").value;
+    const sources = readSources();
+    if (Object.keys(sources).length) design.sources = sources;
     return design;
   }
+
+  // ---- second sources: files joined to the survey's rows on ids ---------------------------
+
+  function readSources() {
+    const out = {};
+    state.sources.forEach((src, name) => {
+      const b = src.box;
+      const spec = { id_column: b.querySelector("select[data-role='id']").value,
+                     kind: b.querySelector("select[data-role='kind']").value };
+      if (!spec.id_column) {
+        throw new FormProblem("Choose the column of “" + src.dataset.name + "” that holds the ids its rows are " +
+                              "joined on.", "sources." + name + ".id_column", b.querySelector("select[data-role='id']"));
+      }
+      const lo = b.querySelector("input[data-role='min']").value.trim();
+      const hi = b.querySelector("input[data-role='max']").value.trim();
+      if (lo !== "" && hi !== "") spec.response_scale = { min: Number(lo), max: Number(hi) };
+      const codes = b.querySelector("input[data-role='codes']").value.trim();
+      if (codes) {
+        spec.missing_codes = codes.split(/[,;\s]+/).filter(Boolean).map((t) => {
+          const n = Number(t);
+          if (!Number.isFinite(n)) {
+            throw new FormProblem("“" + t + "” is not a number.", "sources." + name + ".missing_codes",
+                                  b.querySelector("input[data-role='codes']"));
+          }
+          return n;
+        });
+      }
+      out[name] = spec;
+    });
+    return out;
+  }
+
+  function fillSource(box, spec) {
+    const idSel = box.querySelector("select[data-role='id']");
+    if (spec.id_column) {
+      if (!Array.from(idSel.options).some((o) => o.value === spec.id_column)) {
+        idSel.appendChild(el("option", { value: spec.id_column, text: spec.id_column }));
+      }
+      idSel.value = spec.id_column;
+    }
+    if (spec.kind) box.querySelector("select[data-role='kind']").value = spec.kind;
+    const rs = spec.response_scale || {};
+    if (rs.min !== undefined) box.querySelector("input[data-role='min']").value = rs.min;
+    if (rs.max !== undefined) box.querySelector("input[data-role='max']").value = rs.max;
+    if (spec.missing_codes) box.querySelector("input[data-role='codes']").value = spec.missing_codes.join(", ");
+  }
+
+  function addSourceBox(name, ds) {
+    const key = "s" + state.nextKey++;
+    const box = el("fieldset", { class: "source", "data-name": name });
+    const idSel = el("select", { id: key + "-id", "data-role": "id" });
+    idSel.appendChild(el("option", { value: "", text: "Choose the id column" }));
+    ds.columns.forEach((c) => idSel.appendChild(el("option", { value: c, text: c })));
+    const kindSel = el("select", { id: key + "-kind", "data-role": "kind" });
+    SOURCE_KINDS.forEach(([v, t]) => kindSel.appendChild(el("option", { value: v, text: t })));
+    const field = (id, label, input) => el("div", { class: "field" }, el("label", { for: id, text: label }), input);
+    const lo = el("input", { id: key + "-min", type: "number", step: "any", "data-role": "min" });
+    const hi = el("input", { id: key + "-max", type: "number", step: "any", "data-role": "max" });
+    const codes = el("input", { id: key + "-codes", type: "text", "data-role": "codes", placeholder: "e.g. 0" });
+    const remove = el("button", { type: "button", class: "remove" }, "Remove source");
+    box.append(el("legend", { text: "Source “" + name + "”: " + ds.name + " (" + ds.rows + " rows)" }),
+      el("div", { class: "head" }, field(key + "-id", "Its id column", idSel), field(key + "-kind", "What it is", kindSel),
+         field(key + "-min", "Lowest answer", lo), field(key + "-max", "Highest answer", hi),
+         field(key + "-codes", "Codes meaning “no answer”", codes), remove));
+    $("sources").appendChild(box);
+    const draft = ds.draft_design || {};
+    fillSource(box, { id_column: draft.id_column, response_scale: draft.response_scale,
+                      missing_codes: draft.missing_codes });
+    state.sources.set(name, { dataset: ds, box });
+    remove.addEventListener("click", () => {
+      state.sources.delete(name);
+      box.remove();
+      constructBoxes().filter((b) => b.dataset.source === name).forEach((b) => { b.dataset.source = MAIN_SOURCE; renderItems(b); });
+      refreshLinks();
+      say("Removed source " + name + "; its constructs now take their items from the survey file.");
+      $("source-name").focus();
+    });
+    return box;
+  }
+
+  $("add-source").addEventListener("click", async () => {
+    clearError();
+    const name = $("source-name").value.trim();
+    const f = $("source-file").files[0];
+    if (!state.dataset) { showError("Upload the survey file first (step 2).", "file", $("file")); return; }
+    if (!name || name === "main") {
+      showError("Give the source a name (such as manager), other than “main”.", "sources", $("source-name"));
+      return;
+    }
+    if (state.sources.has(name)) { showError("A source called “" + name + "” is added already.", "sources", $("source-name")); return; }
+    if (!f) { showError("Choose the source's file.", "sources", $("source-file")); return; }
+    const fd = new FormData();
+    fd.append("file", f, f.name);
+    $("add-source").disabled = true;
+    say("Uploading " + f.name + "…");
+    try {
+      const ds = await api("POST", "/v1/datasets", fd);
+      addSourceBox(name, ds);
+      const taken = new Set(constructBoxes().map((b) => b.querySelector("input[data-role='name']").value.trim()));
+      const pending = state.pendingSources[name];
+      const waiting = constructBoxes().filter((b) => b.dataset.source === name);
+      if (pending) { fillSource(state.sources.get(name).box, pending); delete state.pendingSources[name]; }
+      let added = 0;
+      if (!waiting.length) {  // its drafted constructs, their items from this file
+        Object.entries((ds.draft_design || {}).constructs || {}).forEach(([cname, spec]) => {
+          const n = taken.has(cname) ? name + "_" + cname : cname;
+          addConstruct(n, Object.assign({}, spec, { source: name }), false);
+          added++;
+        });
+      }
+      waiting.forEach((b) => renderItems(b));
+      refreshPaths();
+      markTaken();
+      $("source-name").value = "";
+      $("source-file").value = "";
+      say("Added source " + name + " (" + ds.name + ", " + ds.rows + " rows)" +
+          (added ? "; " + added + " drafted construct(s) from it are in the list above." : "."));
+      refreshHistory();
+    } catch (e) {
+      reportFailure(e, "sources");
+    } finally {
+      $("add-source").disabled = false;
+    }
+  });
 
   // find the form control an API error field points at, e.g. design.constructs.support.items[2]
   function elementForField(field) {
@@ -542,6 +740,8 @@
       if (/\.reverse/.test(f)) return box.querySelector("[data-role='reverse']");
       if (/\.items/.test(f)) return box.querySelector("[data-role='items']");
       if (/\.role/.test(f)) return box.querySelector("select[data-role='role']");
+      if (/\.source/.test(f)) return box.querySelector("select[data-role='source']");
+      if (/\.same_as/.test(f)) return box.querySelector("select[data-role='same-as']");
       return box.querySelector("input[data-role='name']");
     }
     m = f.match(/^paths\[(\d+)\]/);
@@ -552,6 +752,14 @@
     if (f.startsWith("response_scale")) return $("scale-min");
     if (f.startsWith("missing_codes")) return $("missing-codes");
     if (f.startsWith("answer_labels")) return $("answer-labels");
+    m = f.match(/^sources\.([^.]+)(?:\.(\w+))?/);
+    if (m) {
+      const src = state.sources.get(m[1]);
+      if (!src) return $("source-name");
+      const role = { id_column: "id", kind: "kind", response_scale: "min", missing_codes: "codes" }[m[2]];
+      return (role && src.box.querySelector("[data-role='" + role + "']")) || src.box.querySelector("select");
+    }
+    if (f === "sources") return $("source-name");
     if (f === "id_column") return $("id-column");
     if (f === "group_column") return $("group-column");
     m = f.match(/^options\.(\w+)/);
@@ -638,7 +846,7 @@
 
   function readOptions() {
     const opts = { missing: document.querySelector("input[name='missing']:checked").value };
-    for (const name of ["bootstrap", "seed"]) {
+    for (const name of ["bootstrap", "seed", "check_corrections"]) {
       const t = $(name).value.trim();
       if (t === "") continue;
       const n = Number(t);
@@ -699,7 +907,12 @@
     resetProgress();
     $("run-btn").disabled = true;
     try {
-      const a = await api("POST", "/v1/analyses", { dataset_id: state.dataset.id, design, options });
+      const body = { dataset_id: state.dataset.id, design, options };
+      if (state.sources.size) {
+        body.sources = {};
+        state.sources.forEach((src, name) => { body.sources[name] = src.dataset.id; });
+      }
+      const a = await api("POST", "/v1/analyses", body);
       state.analysisId = a.id;
       $("progress-box").hidden = false;
       showProgress({ status: a.status, progress: { stage: "waiting", done: 0, total: 0 } });
@@ -715,7 +928,8 @@
     waiting: "waiting to start", starting: "starting", load: "reading the data",
     screen: "screening answers", reliability: "reliability", measurement_model: "measurement model",
     method_variance: "common-method checks", paths: "key paths", bootstrap: "bootstrap",
-    teams: "teams", report: "writing the report", done: "done",
+    teams: "teams", check_corrections: "checking the corrections on simulated surveys",
+    report: "writing the report", done: "done",
   };
 
   function showProgress(a) {
