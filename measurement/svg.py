@@ -76,9 +76,11 @@ def points(pts: Sequence[tuple[float, float]]) -> str:
 
 
 def svg_figure(body: str, width: float, height: float, *, ident: str, title: str, desc: str) -> str:
-    """The outer ``<svg>``: scalable (viewBox), labelled for assistive technology."""
+    """The outer ``<svg>``: scalable (viewBox), labelled for assistive technology. No style
+    attribute: the report's content security policy allows its one stylesheet only, so the
+    chart's size on screen is set there (report.css: at most its own width)."""
     return (f'<svg viewBox="0 0 {_n(width)} {_n(height)}" width="{_n(width)}" height="{_n(height)}" '
-            f'style="max-width:{_n(width * 1.1)}px" role="img" aria-labelledby="{escape(ident)}-title {escape(ident)}-desc" '
+            f'role="img" aria-labelledby="{escape(ident)}-title {escape(ident)}-desc" '
             f'class="chart" font-family="{escape(FONT, quote=True)}">'
             f'<title id="{escape(ident)}-title">{escape(title)}</title>'
             f'<desc id="{escape(ident)}-desc">{escape(desc)}</desc>{body}</svg>')

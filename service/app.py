@@ -7,13 +7,14 @@ import shutil
 from collections.abc import Mapping
 from typing import Any
 
-from flask import Flask, Response, request
+from flask import Flask, request
 
 from . import api, errors, pages, uploads
 from .config import MULTIPART_SLACK, ConfigError, ServiceConfig, load_config
 from .context import EXTENSION, Services
 from .db import Database
 from .runner import JobRunner, make_backend
+from .security import security_headers
 from .store import Store
 
 log = logging.getLogger("samesource.service")
@@ -77,22 +78,6 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
         svc.runner = JobRunner(store, cfg, make_backend(cfg, store))
         svc.runner.start()
     return app
-
-
-# report.html has no scripts at all, only its own inline style and inline images.
-HTML_POLICY = ("default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
-               "frame-ancestors 'none'; base-uri 'none'; form-action 'none'")
-
-
-def security_headers(resp: Response) -> Response:
-    """On every answer: no content sniffing, no referrer; on HTML answers a content security
-    policy (the page at / sets its own, allowing its inlined script) and no framing."""
-    resp.headers.setdefault("X-Content-Type-Options", "nosniff")
-    resp.headers.setdefault("Referrer-Policy", "no-referrer")
-    if resp.mimetype == "text/html":
-        resp.headers.setdefault("Content-Security-Policy", HTML_POLICY)
-        resp.headers.setdefault("X-Frame-Options", "DENY")
-    return resp
 
 
 def _sweep_uploads(cfg: ServiceConfig, store: Store) -> None:

@@ -15,6 +15,7 @@ from flask import Blueprint, Flask, Response, jsonify
 from measurement import __version__
 
 from .context import services
+from .security import page_policy
 
 STATIC_DIR = Path(__file__).resolve().parent / "static"
 
@@ -25,17 +26,14 @@ def _read(name: str) -> str:
 
 @functools.lru_cache(maxsize=1)
 def _page() -> tuple[str, str]:
-    """The page with its style and script inlined, and its content security policy."""
+    """The page with its style and script inlined, and its content security policy, which
+    allows those two by hash and nothing else inline (service/security.py)."""
     style, script = _read("app.css"), _read("app.js")
     if "</" + "script" in script.lower() or "</" + "style" in style.lower():
         raise RuntimeError("service/static: app.js or app.css closes its own tag")
     html = (_read("index.html").replace("{version}", __version__)
             .replace("{style}", style).replace("{script}", script))
-    # Nothing from other origins. Inline code is allowed (rather than hashes of ours) because
-    # the report opened from a blob: URL inherits this policy and has its own inline style.
-    csp = ("default-src 'self' 'unsafe-inline' data: blob:; connect-src 'self'; "
-           "frame-ancestors 'none'; base-uri 'none'; form-action 'none'")
-    return html, csp
+    return html, page_policy(script, style)
 
 
 def page() -> Response:
@@ -43,8 +41,6 @@ def page() -> Response:
     resp = Response(html, mimetype="text/html")
     resp.headers["Content-Security-Policy"] = csp
     resp.headers["Cache-Control"] = "no-cache"
-    resp.headers["Referrer-Policy"] = "no-referrer"
-    resp.headers["X-Content-Type-Options"] = "nosniff"
     return resp
 
 

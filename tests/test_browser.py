@@ -35,6 +35,21 @@ TINY_DESIGN = {"constructs": {"support": {"items": ["sup1", "sup2", "sup3", "sup
                "missing_codes": [-99]}
 CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run"]
+# Every document of a context records what its content security policy refused (the
+# browser's securitypolicyviolation event). Chromium's own console line for a violation does
+# not always reach Playwright (never from a blob: tab here), so each page is also asked.
+WATCH_CSP = """window.__csp = [];
+document.addEventListener("securitypolicyviolation", (e) => {
+  const what = "CSP violation: " + e.violatedDirective + " blocked " + (e.blockedURI || "inline")
+               + (e.sample ? " (" + e.sample + ")" : "");
+  window.__csp.push(what);
+  console.error(what);
+});"""
+
+
+def csp_violations(page) -> list[str]:
+    """What the page's content security policy refused so far (WATCH_CSP)."""
+    return page.evaluate("window.__csp || ['WATCH_CSP did not run in ' + location.href]")
 
 try:
     from playwright.sync_api import expect, sync_playwright
@@ -84,6 +99,7 @@ def test_page_from_token_to_report(server_factory, tmp_path):
     with sync_playwright() as pw:
         browser = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
         context = browser.new_context(viewport={"width": 1280, "height": 900}, accept_downloads=True)
+        context.add_init_script(WATCH_CSP)
 
         def watch(p):
             p.on("console", lambda m: problems.append(f"console {m.type}: {m.text}")
@@ -239,7 +255,14 @@ def test_page_from_token_to_report(server_factory, tmp_path):
         expect(rep.locator("#paths h3")).to_have_count(3)
         shot(rep, "08-report")
         report_title = rep.title()
+        # the report in a blob: tab keeps the page's policy: its stylesheet is allowed, and
+        # the charts keep their size without inline styles
+        assert csp_violations(rep) == []
+        rep.locator("#paths > details > summary").click()
+        chart = rep.locator("#paths figure svg").first
+        assert 200 < chart.evaluate("s => s.getBoundingClientRect().width") <= float(chart.get_attribute("width"))
         rep.close()
+        assert csp_violations(page) == []
 
         earlier_work(page, context, server.base, token, report_title)
 
@@ -331,6 +354,7 @@ def earlier_work(page, context, base: str, token: str, report_title: str) -> Non
     rep.wait_for_load_state()
     assert rep.url.startswith("blob:") and rep.title() == report_title
     expect(page.locator("#alert")).to_be_hidden()
+    assert csp_violations(rep) == []
     rep.close()
     with page.expect_download() as dl:
         done.get_by_role("button", name="Download report.json").click()
@@ -385,6 +409,7 @@ def test_page_offers_sheets_answer_texts_every_option_and_design_files(server_fa
     with sync_playwright() as pw:
         browser = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
         context = browser.new_context(viewport={"width": 1280, "height": 900}, accept_downloads=True)
+        context.add_init_script(WATCH_CSP)
         page = context.new_page()
         page.on("pageerror", lambda e: problems.append(f"page error: {e}"))
         page.goto(server.base + "/")
@@ -438,6 +463,7 @@ def test_page_offers_sheets_answer_texts_every_option_and_design_files(server_fa
         sheets = openpyxl.load_workbook(io.BytesIO(Path(tables.value.path()).read_bytes())).sheetnames
         assert "constructs" in sheets
         shot(page, "11-every-option")
+        assert csp_violations(page) == []
         browser.close()
     assert not problems, problems
 
@@ -521,6 +547,24 @@ def _rendered_pages(tmp_path: Path) -> dict[str, Path]:
     return pages
 
 
+SERVED = "http://report.test/"
+
+
+def serve_as_the_service_does(page, pages: dict[str, Path]) -> None:
+    """The rendered files answered at SERVED + NAME with the policy the service sends with
+    report.html and brief.html, so that whatever the policy refuses is seen here."""
+    from service.security import document_policy
+
+    def answer(route):
+        name = route.request.url.removeprefix(SERVED)
+        route.fulfill(status=200, content_type="text/html; charset=utf-8",
+                      headers={"Content-Security-Policy": document_policy()},
+                      body=pages[name].read_text(encoding="utf-8"))
+
+    page.add_init_script(WATCH_CSP)
+    page.route(SERVED + "*", answer)
+
+
 def _box(page, selector: str) -> dict:
     return page.locator(selector).first.evaluate(
         "e => { const r = e.getBoundingClientRect(); return {top: r.top + scrollY, bottom: r.bottom + scrollY}; }")
@@ -534,10 +578,12 @@ def test_report_and_brief_first_screen_and_height(tmp_path):
         try:
             for width, height in ((1280, 900), (390, 844)):
                 page = browser.new_page(viewport={"width": width, "height": height})
+                serve_as_the_service_does(page, pages)
                 errors: list[str] = []
                 page.on("console", lambda m, errors=errors: errors.append(m.text) if m.type == "error" else None)
-                for name, path in pages.items():
-                    page.goto(path.as_uri())
+                for name in pages:
+                    page.goto(SERVED + name)
+                    assert csp_violations(page) == [], name
                     page.screenshot(path=str(ARTIFACTS / f"{name}-{width}.png"), full_page=True)
                     page.screenshot(path=str(ARTIFACTS / f"{name}-{width}-first-screen.png"))
                     total = page.evaluate("document.documentElement.scrollHeight")
@@ -573,8 +619,9 @@ def test_report_and_brief_first_screen_and_height(tmp_path):
                 page.close()
             # the brief prints on one page, A4 and Letter
             page = browser.new_page()
+            serve_as_the_service_does(page, pages)
             for name in ("brief-plain", "brief-checked"):
-                page.goto(pages[name].as_uri())
+                page.goto(SERVED + name)
                 for fmt in ("A4", "Letter"):
                     pdf = page.pdf(format=fmt, print_background=True)
                     (ARTIFACTS / f"{name}-{fmt}.pdf").write_bytes(pdf)

@@ -421,26 +421,7 @@ def test_queued_and_replicate_limits_answer_429_with_retry_after(tmp_path):
         closing(app)
 
 
-# ---------------------------------------------------------------------- headers
-
-
-def test_security_headers_on_html_and_json(tmp_path):
-    app = make_app(tmp_path / "d", run_jobs=False)
-    c = app.test_client()
-    try:
-        page = c.get("/")
-        assert page.headers["X-Content-Type-Options"] == "nosniff"
-        assert "frame-ancestors 'none'" in page.headers["Content-Security-Policy"]
-        assert page.headers["Referrer-Policy"] == "no-referrer"
-        for r in (c.get("/healthz"), c.get("/v1/datasets"), c.get("/nothing")):
-            assert r.headers["X-Content-Type-Options"] == "nosniff"
-            assert r.headers["Referrer-Policy"] == "no-referrer"
-        from service.app import HTML_POLICY
-
-        assert "script-src" not in HTML_POLICY and "default-src 'none'" in HTML_POLICY
-        assert "frame-ancestors 'none'" in HTML_POLICY
-    finally:
-        closing(app)
+# headers and content security policies: tests/test_service_headers.py
 
 
 # ---------------------------------------------------------------------- tokens
