@@ -16,7 +16,7 @@ install: $(STAMP)
 
 demo: $(STAMP)
 	$(BIN)/samesource analyze sample_surveys/staff_survey.csv --design sample_surveys/staff_survey_two_sources_design.json --source manager=sample_surveys/manager_ratings.csv --missing fiml --out samesource-report
-	$(BIN)/python -m service.demo_client
+	$(BIN)/python -m samesource.service.demo_client
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q --durations=10

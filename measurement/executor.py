@@ -37,7 +37,7 @@ from typing import Any, Protocol, runtime_checkable
 # Up to this many tasks the default is serial. Start-up is each worker importing the main
 # module and the task's modules: on the two-core development machine a pool of two took
 # 0.2-0.3 s with a main module importing numpy, 1.1-1.3 s (up to 2.5 s on a busy machine)
-# with one importing measurement.pipeline as the command line does. Python 3.11's forkserver
+# with one importing samesource.pipeline as the command line does. Python 3.11's forkserver
 # does not preload the main module, so "spawn" cost the same.
 SERIAL_MAX_TASKS = 16
 

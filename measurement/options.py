@@ -6,8 +6,8 @@ from collections.abc import Mapping
 from dataclasses import asdict, dataclass, fields
 from typing import Any
 
-from .design import did_you_mean
-from .errors import InputError
+from samesource.errors import InputError
+from samesource.input.design import did_you_mean
 
 MISSING_METHODS = ("listwise", "fiml")
 LISTWISE_DROP_LIMIT = 0.05  # above this share of rows dropped, the report recommends FIML

@@ -14,24 +14,27 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .design import Design, parse_design
-from .errors import DataError
-from .loading import LoadedTable, load_table
-from .measurement_report import measurement_model_section
-from .method_variance import method_variance_section, method_variance_verdict
-from .missing import MissingPlan, plan_missing
-from .options import AnalysisOptions
-from .paths_report import paths_section
-from .prepare import PreparedData
-from .reliability_report import construct_reliability
-from .report import finalize_report, finite_or_none
-from .review import review_section
-from .screening import screen_respondents
-from .source_paths import annotate_sources
-from .sources import load_sources, prepare_with_sources
-from .teams_report import teams_section
-from .timings import StageClock
+from samesource import __version__
+from samesource.corrections.paths_stage import paths_section
+from samesource.corrections.source_paths import annotate_sources
+from samesource.errors import DataError
+from samesource.input.design import Design, parse_design
+from samesource.input.loading import LoadedTable, load_table
+from samesource.input.missing import MissingPlan, plan_missing
+from samesource.input.prepare import PreparedData
+from samesource.input.review import review_section
+from samesource.input.screening import screen_respondents
+from samesource.input.sources import load_sources, prepare_with_sources
+from samesource.method_checks.method_variance import (
+    method_variance_section,
+    method_variance_verdict,
+)
+from samesource.options import AnalysisOptions
+from samesource.output.report_json import finalize_report, finite_or_none
+from samesource.statistics.measurement_stage import measurement_model_section
+from samesource.statistics.reliability_stage import construct_reliability
+from samesource.statistics.teams_stage import teams_section
+from samesource.timings import StageClock
 
 Progress = Callable[[str, int, int], None]
 
@@ -49,7 +52,7 @@ class Analysis:
     fits: dict[str, Any] = field(default_factory=dict)
 
     def summary(self) -> str:
-        from .summary import text_summary
+        from samesource.output.summary import text_summary
 
         return text_summary(self.report)
 
@@ -64,10 +67,10 @@ def analyze(
     executor=None,
     sources: Mapping[str, Any] | None = None,
 ) -> Analysis:
-    """Run the whole analysis. Raises :class:`~measurement.errors.InputError` for bad input.
+    """Run the whole analysis. Raises :class:`~samesource.errors.InputError` for bad input.
 
     ``sources``: the design's second sources, NAME -> a LoadedTable, a path, bytes, or a
-    ``(path or bytes, file name)`` pair (measurement/sources.py)."""
+    ``(path or bytes, file name)`` pair (measurement/input/sources.py)."""
     opts = options if isinstance(options, AnalysisOptions) else AnalysisOptions.from_dict(options)
     dsg = design if isinstance(design, Design) else parse_design(design)
     clock = StageClock()  # report["timings"]
@@ -115,9 +118,9 @@ def analyze(
     teams = teams_section(dsg, prepared, plan, opts, warnings)
 
     check = next_time = None
-    if opts.check_corrections:  # measurement/correction_check.py, then the planning advice from it
-        from .correction_check import correction_check
-        from .planning import next_time_section
+    if opts.check_corrections:  # measurement/corrections/correction_check.py, then the planning advice from it
+        from samesource.corrections.correction_check import correction_check
+        from samesource.method_checks.planning import next_time_section
 
         check, population = correction_check(dsg, prepared, plan, mv, paths, opts, n=opts.check_corrections,
                                              executor=executor,
@@ -141,7 +144,7 @@ def analyze(
         **({"correction_check": check} if check is not None else {}),
         **({"next_time": next_time} if next_time is not None else {}),
     }
-    # Review before use (measurement/review.py): after every section it reads from.
+    # Review before use (measurement/input/review.py): after every section it reads from.
     report.update(review_section(constructs, dsg, scale_source=prepared.scale_source))
     report = finalize_report(report, warnings=warnings, options=opts)
     report["timings"] = clock.finish()

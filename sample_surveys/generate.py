@@ -19,12 +19,12 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-ROOT = Path(__file__).resolve().parents[1]
-if str(ROOT) not in sys.path:  # runnable from a checkout without installing the package
-    sys.path.insert(0, str(ROOT))
+HERE = Path(__file__).resolve().parent
+if str(HERE) not in sys.path:  # the simulator beside this file, also when loaded by path
+    sys.path.insert(0, str(HERE))
 
-from measurement.design import check_columns, parse_design  # noqa: E402
-from measurement.simulate import (  # noqa: E402
+from samesource.input.design import check_columns, parse_design  # noqa: E402
+from simulate import (  # noqa: E402
     ID_COLUMN,
     TEAM_COLUMN,
     ConstructSpec,

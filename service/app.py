@@ -32,7 +32,7 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
     db.create_schema()
     store = Store(db)
 
-    app = Flask("service", static_folder=None)
+    app = Flask("samesource.service", static_folder=None)
     app.config["MAX_CONTENT_LENGTH"] = cfg.max_upload_bytes + MULTIPART_SLACK
     app.config["SAMESOURCE_MAX_UPLOAD_MB"] = cfg.max_upload_mb
     app.json.sort_keys = False  # fields in the documented order

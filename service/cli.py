@@ -1,4 +1,4 @@
-"""The `samesource` command line. It does I/O only; the work is measurement.pipeline.analyze."""
+"""The `samesource` command line. It does I/O only; the work is samesource.pipeline.analyze."""
 
 from __future__ import annotations
 
@@ -11,8 +11,8 @@ from collections.abc import Iterator
 from datetime import UTC, datetime
 from pathlib import Path
 
-from measurement import __version__
-from measurement.errors import InputError
+from samesource import __version__
+from samesource.errors import InputError
 
 EXIT_BAD_INPUT = 2
 
@@ -186,9 +186,9 @@ class _LineProgress:
 
 
 def _analyze(args: argparse.Namespace) -> int:
-    from measurement.design import load_design
-    from measurement.options import AnalysisOptions
-    from measurement.pipeline import analyze
+    from samesource.input.design import load_design
+    from samesource.options import AnalysisOptions
+    from samesource.pipeline import analyze
 
     design = load_design(args.design)
     opts = AnalysisOptions.from_dict({
@@ -219,7 +219,7 @@ def _analyze(args: argparse.Namespace) -> int:
         print(result.summary())
         print()
     print(f"Report: {out / 'report.html'} (data: report.json; tables: tables/ and tables.xlsx)")
-    from measurement.summary import review_last_line
+    from samesource.output.summary import review_last_line
 
     if review_last_line(result.report):  # the last line says so (exit 0 all the same)
         print(review_last_line(result.report))
@@ -244,10 +244,10 @@ def _source_files(given: list[str]) -> dict[str, str]:
 
 def write_outputs(report: dict, out: Path) -> None:
     """report.json, report.html, brief.html and the tables (CSV per table, and one workbook) in ``out``."""
-    from measurement.brief import render_brief
-    from measurement.html_report import render_html
-    from measurement.report import dumps
-    from measurement.tables import report_tables, tables_csv, tables_xlsx
+    from samesource.output.brief import render_brief
+    from samesource.output.report_html import render_html
+    from samesource.output.report_json import dumps
+    from samesource.output.tables import report_tables, tables_csv, tables_xlsx
 
     out.mkdir(parents=True, exist_ok=True)
     when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
@@ -263,8 +263,8 @@ def write_outputs(report: dict, out: Path) -> None:
 
 
 def _draft(args: argparse.Namespace) -> int:
-    from measurement.drafting import draft_from_table
-    from measurement.loading import load_table
+    from samesource.input.drafting import draft_from_table
+    from samesource.input.loading import load_table
 
     table = load_table(args.data, sheet=args.sheet)
     draft = draft_from_table(table)

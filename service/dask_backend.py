@@ -1,7 +1,7 @@
 """Analyses on a Dask distributed cluster (SAMESOURCE_EXECUTOR=dask://HOST:PORT).
 
 The job runs as one task on the cluster. Its bootstrap replicates fan out across the
-cluster's workers through :class:`DaskExecutor`, measurement.executor's Executor protocol
+cluster's workers through :class:`DaskExecutor`, samesource.executor's Executor protocol
 over Dask. The task gets the file's bytes (cluster workers need not share the service's
 disk or database) and sends its progress back as cluster events on one topic, which the
 service writes to the database. When that write finds the analysis deleted or re-queued, the
@@ -36,7 +36,7 @@ def stop_event_name(analysis_id: str, attempt: int) -> str:
 
 
 class DaskExecutor:
-    """measurement.executor's Executor over a Dask cluster: ``map(fn, items)`` runs each call
+    """samesource.executor's Executor over a Dask cluster: ``map(fn, items)`` runs each call
     as a task and returns the results in order.
 
     With a ``client`` it submits through that client; without one it must be used inside a
@@ -79,7 +79,7 @@ def _threads(client: Any) -> int:
 def _gather(client: Any, fn: Callable[[Any], Any], items: list[Any]) -> list[Any]:
     from distributed import KilledWorker
 
-    from measurement.executor import STOP_POLL_SECONDS, StopRequested, stop_requested
+    from samesource.executor import STOP_POLL_SECONDS, StopRequested, stop_requested
 
     futures = client.map(fn, items, pure=False)
     try:
@@ -115,7 +115,7 @@ def _run_on_cluster(spec: JobSpec) -> Outcome:
         if stop.is_set():
             raise Cancelled(spec.analysis_id)
 
-    from measurement.executor import stop_when
+    from samesource.executor import stop_when
 
     with stop_when(stop.is_set):
         return run_job(spec, progress, executor=DaskExecutor())

@@ -5,7 +5,7 @@ data folder, makes a token, uploads the sample survey and the managers' ratings 
 staff (a second source), starts an analysis of both, polls it, prints
 the preferred estimate of every key path, saves the report, and stops the service.
 
-    python -m service.demo_client [--keep]   # --keep: leave the service running, print how to stop it
+    python -m samesource.service.demo_client [--keep]   # --keep: leave the service running, print how to stop it
 """
 
 from __future__ import annotations
@@ -105,7 +105,7 @@ def print_paths(report: dict) -> None:
 
 def start_service(data_dir: Path) -> tuple[subprocess.Popen, str]:
     proc = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", "0",
+        [sys.executable, "-m", "samesource.service.cli", "serve", "--host", "127.0.0.1", "--port", "0",
          "--data", str(data_dir)],
         stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
     line = proc.stdout.readline()
@@ -117,14 +117,14 @@ def start_service(data_dir: Path) -> tuple[subprocess.Popen, str]:
 
 
 def make_token(data_dir: Path, tenant: str) -> str:
-    res = subprocess.run([sys.executable, "-m", "service.cli", "token", "create", "--tenant", tenant,
+    res = subprocess.run([sys.executable, "-m", "samesource.service.cli", "token", "create", "--tenant", tenant,
                           "--data", str(data_dir)], capture_output=True, text=True, cwd=ROOT,
                          check=True)
     return res.stdout.strip()
 
 
 def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(prog="python -m service.demo_client")
+    ap = argparse.ArgumentParser(prog="python -m samesource.service.demo_client")
     ap.add_argument("--keep", action="store_true", help="leave the service running afterwards")
     args = ap.parse_args(argv)
 

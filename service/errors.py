@@ -15,7 +15,7 @@ import traceback
 from flask import Flask, Response, jsonify, request
 from werkzeug.exceptions import HTTPException
 
-from measurement.errors import DataError, DesignError, InputError, UnsupportedFormat
+from samesource.errors import DataError, DesignError, InputError, UnsupportedFormat
 
 log = logging.getLogger("samesource.service")
 

@@ -6,7 +6,7 @@ from __future__ import annotations
 import logging
 import shutil
 
-from measurement import __version__
+from samesource import __version__
 
 from . import uploads
 from .context import Services

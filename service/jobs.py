@@ -1,6 +1,6 @@
 """One analysis job, as it runs in a worker (a local pool process or a Dask worker).
 
-The job calls measurement.pipeline.analyze and returns a small, picklable outcome: the
+The job calls samesource.pipeline.analyze and returns a small, picklable outcome: the
 report.json text, or the error to store. It never raises for bad data or a bad design
 (those are the analysis's error); anything else is logged with the analysis id and the code
 locations only, and the stored error says "internal error".
@@ -75,10 +75,10 @@ class Throttle:
 
 def run_job(spec: JobSpec, progress: Callable[[str, int, int], None], executor: Any = None
             ) -> Outcome:
-    from measurement.errors import InputError
-    from measurement.executor import StopRequested
-    from measurement.pipeline import analyze
-    from measurement.report import dumps
+    from samesource.errors import InputError
+    from samesource.executor import StopRequested
+    from samesource.output.report_json import dumps
+    from samesource.pipeline import analyze
 
     t0 = time.monotonic()
     source: Any = spec.data if spec.data is not None else spec.path

@@ -12,7 +12,7 @@ from pathlib import Path
 
 from flask import Blueprint, Flask, Response, jsonify
 
-from measurement import __version__
+from samesource import __version__
 
 from .context import services
 from .security import page_policy

@@ -7,7 +7,7 @@ same one), hand it to a backend and wait for its outcome:
 
 * :class:`LocalBackend`: a pool of local worker processes; the worker writes progress to the
   database itself (it has the database URL);
-* :class:`service.dask_backend.DaskBackend`: the job runs on a Dask cluster and sends
+* :class:`samesource.service.dask_backend.DaskBackend`: the job runs on a Dask cluster and sends
   progress back as cluster events, which this process writes.
 
 Every write for a run is conditioned on (analysis id, runner, attempt, status running), so a
@@ -111,7 +111,7 @@ def _run_local(spec: JobSpec) -> Outcome:
         except Exception:
             return False
 
-    from measurement.executor import stop_when
+    from samesource.executor import stop_when
 
     with stop_when(gone):
         return run_job(spec, progress, executor=None)  # bootstrap: measurement's default pool
@@ -222,7 +222,7 @@ class JobRunner:
     """Dispatcher threads that take queued analyses and hand them to a backend, supervised.
 
     Every step that touches storage is retried with backoff while the error is transient
-    (:mod:`service.faults`); a result that cannot be saved within
+    (:mod:`samesource.service.faults`); a result that cannot be saved within
     ``storage_retry_seconds`` goes back to the queue with its attempt counted, and a
     dispatcher or the heartbeat thread that ends anyway is started again by the other
     thread (and by each health check). :meth:`state` is what /healthz reports.

@@ -37,7 +37,7 @@ def report_stylesheets() -> tuple[str, ...]:
     """The stylesheets the report and brief renderers inline (empty when this version has no
     renderer: those routes then answer 404)."""
     try:
-        from measurement.html_report import stylesheet
+        from samesource.output.report_html import stylesheet
     except ImportError:  # pragma: no cover - depends on the version installed
         return ()
     return tuple(str(stylesheet(name)) for name in ("report.css", "brief.css"))

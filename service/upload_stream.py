@@ -2,7 +2,7 @@
 
 Flask's ``request.files`` parses the whole body first (large parts into a temporary file of its
 own) before the route runs; here the body is parsed as it is read, and the bytes of the field
-``file`` go straight to :func:`service.uploads.spool` (hashed and size-checked on the way), so
+``file`` go straight to :func:`samesource.service.uploads.spool` (hashed and size-checked on the way), so
 neither the body nor the file is ever held in memory: at most a block or two (``BLOCK``) are.
 waitress, in front, keeps a request body over its ``inbuf_overflow`` (512 kB) in a temporary
 file, not in memory, until the route reads it.

@@ -9,10 +9,10 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 
-from measurement.design import draft_design
-from measurement.drafting import Draft, draft_from_table
-from measurement.loading import LoadedTable, text_answers
-from measurement.prepare import numeric_columns
+from samesource.input.design import draft_design
+from samesource.input.drafting import Draft, draft_from_table
+from samesource.input.loading import LoadedTable, text_answers
+from samesource.input.prepare import numeric_columns
 
 log = logging.getLogger("samesource.service")
 

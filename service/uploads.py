@@ -303,8 +303,8 @@ def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
     """In the child: limit memory, parse, check, send ("ok", UploadSummary) or the refusal."""
     import resource
 
-    from measurement.errors import InputError
-    from measurement.loading import load_table
+    from samesource.errors import InputError
+    from samesource.input.loading import load_table
 
     from .errors import from_input_error
     from .upload_summary import summarize
@@ -332,7 +332,7 @@ def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
     conn.close()
 
 
-_PRELOAD = ["measurement.loading", "measurement.prepare", "service.uploads", "service.upload_summary"]
+_PRELOAD = ["samesource.input.loading", "samesource.input.prepare", "samesource.service.uploads", "samesource.service.upload_summary"]
 
 
 def parse_bounded(path: Path, name: str, limits: ParseLimits) -> UploadSummary:
@@ -345,8 +345,8 @@ def parse_bounded(path: Path, name: str, limits: ParseLimits) -> UploadSummary:
     with open(path, "rb") as fh:
         head = fh.read(4)
     if head == b"PK\x03\x04":  # a zip: an .xlsx is checked before parsing
-        from measurement.errors import DataError
-        from measurement.workbook_limits import check_workbook
+        from samesource.errors import DataError
+        from samesource.input.workbook_limits import check_workbook
 
         try:
             check_workbook(path, name,

@@ -22,7 +22,7 @@ POSTGRES_URL = os.environ.get("SAMESOURCE_TEST_POSTGRES_URL")
 def small_survey(n: int = 200, seed: int = 3) -> tuple[bytes, dict]:
     """A simulated survey (CSV bytes) and its design: 3 constructs (one a marker) of 3-4
     items, 200 respondents, so an analysis takes a couple of seconds."""
-    from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+    from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
     spec = SurveySpec(
         constructs=[ConstructSpec("support", 4, 0.75, 0.3, reverse=[4]),
@@ -53,7 +53,7 @@ def wait_for(predicate: Callable[[], object], *, timeout: float, every: float = 
 
 
 def cli(*args: str, env: dict | None = None, timeout: float = 600) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "service.cli", *map(str, args)],
+    return subprocess.run([sys.executable, "-m", "samesource.service.cli", *map(str, args)],
                           capture_output=True, text=True, cwd=ROOT, timeout=timeout,
                           env={**os.environ, **(env or {})})
 
@@ -72,7 +72,7 @@ class ServerProcess:
         self.log_path = self.data_dir.parent / f"{self.data_dir.name}-server-{time.time_ns()}.log"
         log = open(self.log_path, "w")
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", "0",
+            [sys.executable, "-m", "samesource.service.cli", "serve", "--host", "127.0.0.1", "--port", "0",
              "--data", str(self.data_dir)],
             stdout=subprocess.PIPE, stderr=log, text=True, cwd=ROOT, start_new_session=True,
             env={**os.environ, **self.env})

@@ -17,14 +17,14 @@ import pandas as pd
 import pyreadstat
 import pytest
 
-from measurement.design import answer_key, check_columns, draft_design, parse_design
-from measurement.drafting import draft_from_table, recognise_scale
-from measurement.errors import DesignError, InputError
-from measurement.loading import load_table, text_answers
-from measurement.options import AnalysisOptions
-from measurement.prepare import prepare, standing_apart
-from measurement.review import review_section
-from measurement.summary import text_summary
+from samesource.errors import DesignError, InputError
+from samesource.input.design import answer_key, check_columns, draft_design, parse_design
+from samesource.input.drafting import draft_from_table, recognise_scale
+from samesource.input.loading import load_table, text_answers
+from samesource.input.prepare import prepare, standing_apart
+from samesource.input.review import review_section
+from samesource.options import AnalysisOptions
+from samesource.output.summary import text_summary
 
 ROOT = Path(__file__).resolve().parents[1]
 AGREE = ["Strongly disagree", "Disagree", "Neither agree nor disagree", "Agree", "Strongly agree"]
@@ -258,7 +258,7 @@ def test_cli_exits_2_naming_the_codes(tmp_path):
     dp.write_text(json.dumps({"constructs": {"q3": {"items": ["Q3_1", "Q3_2", "Q3_3"]},
                                              "q4": {"items": ["Q4_1", "Q4_2", "Q4_3"]}},
                               "paths": [{"outcome": "q4", "predictors": ["q3"]}]}))
-    r = subprocess.run([sys.executable, "-m", "service.cli", "analyze", str(data), "--design",
+    r = subprocess.run([sys.executable, "-m", "samesource.service.cli", "analyze", str(data), "--design",
                         str(dp), "--out", str(tmp_path / "out")], capture_output=True, text=True,
                        cwd=ROOT, timeout=600)
     assert r.returncode == 2
@@ -305,7 +305,7 @@ def test_unknown_names_in_a_design_get_the_nearest_name():
 def test_unmarked_reverse_items_put_review_first(tmp_path):
     """Q4_2 and Q4_4 run the other way and the design does not say so: review_needed, naming
     them and the fix, at the top of the summary and on its last line."""
-    from measurement.pipeline import analyze
+    from samesource.pipeline import analyze
 
     t = load_table(write_r_style_csv(pulse(n=400), tmp_path / "pulse.csv"))
     design = {"constructs": {"q3": {"items": ["Q3_1", "Q3_2", "Q3_3", "Q3_4"]},
@@ -352,7 +352,7 @@ def test_review_from_report_sections():
 
 
 def cli(*args) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "service.cli", *map(str, args)],
+    return subprocess.run([sys.executable, "-m", "samesource.service.cli", *map(str, args)],
                           capture_output=True, text=True, cwd=ROOT, timeout=600)
 
 

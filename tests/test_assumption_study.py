@@ -1,7 +1,7 @@
 """Slow: one scenario of the assumption study (run with `pytest -m slow`; not in `make test`).
 
 A marker whose items carry none of the method the substantive items share (true method share
-of item variance .1225; measurement.simulate.make_scenario("marker_without_method")), 20
+of item variance .1225; simulate.make_scenario("marker_without_method")), 20
 samples of 600 analysed with the default options by tests/benchmarks/assumption_study.py.
 The targets of issue 11 the analysis must meet here: the verdict never says "none" (the true
 share is above .10 and the instrument fails its assumption), the marker's check does not pass

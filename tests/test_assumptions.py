@@ -1,5 +1,5 @@
-"""The assumption checks behind the corrections (measurement.assumptions), each rule on
-simulated surveys whose truth is known by construction (measurement.simulate), and the
+"""The assumption checks behind the corrections (samesource.method_checks.assumptions), each rule on
+simulated surveys whose truth is known by construction (sample_surveys/simulate.py), and the
 choice of the preferred estimate and its bounds that follow from them.
 
 The rules' sources: the marker's role as method proxy (Lindell & Whitney 2001; Williams,
@@ -13,10 +13,10 @@ from __future__ import annotations
 
 import pytest
 
-from measurement.assumptions import Assumption, checks_agree, estimate_stable
-from measurement.method_variance import concentration
-from measurement.pipeline import analyze
-from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+from samesource.method_checks.assumptions import Assumption, checks_agree, estimate_stable
+from samesource.method_checks.method_variance import concentration
+from samesource.pipeline import analyze
+from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
 TRUE_SUP = 0.30  # eng on sup in every survey below
 

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from measurement.bootstrap import (
+from samesource.corrections.bootstrap import (
     FAILED_SHARE_NOTE,
     MIN_SUCCESSFUL,
     BootstrapResult,
@@ -24,7 +24,7 @@ from measurement.bootstrap import (
     jackknife_groups_for,
     replicate_indices,
 )
-from measurement.executor import (
+from samesource.executor import (
     SERIAL_MAX_TASKS,
     Executor,
     LocalExecutor,
@@ -443,7 +443,7 @@ def test_percentile_interval_coverage_for_a_normal_mean():
     assert abs(hits_pct - hits_z) <= 8 and abs(hits_bca - hits_z) <= 8
 
 
-# -- replicates from weighted cross-products (measurement/replicate_moments.py) -------------
+# -- replicates from weighted cross-products (measurement/corrections/replicate_moments.py) -------------
 
 
 class MeanCovStat:
@@ -466,7 +466,7 @@ def items5() -> np.ndarray:
 
 def test_weighted_covariance_equals_numpy_cov_with_frequency_weights(items5):
     # Reference: numpy's np.cov(..., fweights=..., bias=True) and np.average(..., weights=...)
-    from measurement.replicate_moments import BATCH, draw_counts, weighted_moments
+    from samesource.corrections.replicate_moments import BATCH, draw_counts, weighted_moments
 
     n = len(items5)
     count = BATCH + 5  # a whole batch and a part of one
@@ -505,7 +505,7 @@ def test_weighted_replicates_equal_resampled_ones_and_do_not_depend_on_the_chunk
 
 def test_rows_are_resampled_when_a_cell_is_missing(items5):
     # FIML fits the raw rows; the fitting engine takes no row weights, so no moment form
-    from measurement.bootstrap import _moment_form
+    from samesource.corrections.bootstrap import _moment_form
 
     holed = items5.copy()
     holed[3, 2] = np.nan
@@ -520,10 +520,10 @@ def test_rows_are_resampled_when_a_cell_is_missing(items5):
 def test_path_estimates_from_a_replicates_moments_equal_those_from_its_rows():
     # The path estimator fed a replicate's moments (replicate_moments.MomentPathEstimator)
     # against the same estimator on the resampled rows (simulated survey with known truth).
-    from measurement.design import parse_design
-    from measurement.paths import PathEstimator
-    from measurement.replicate_moments import draw_counts, moment_form, weighted_moments
-    from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+    from samesource.corrections.paths import PathEstimator
+    from samesource.corrections.replicate_moments import draw_counts, moment_form, weighted_moments
+    from samesource.input.design import parse_design
+    from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
     spec = SurveySpec(constructs=[ConstructSpec("support", 4, 0.75, 0.3), ConstructSpec("engagement", 4, 0.7, 0.3),
                                   ConstructSpec("weather", 3, 0.7, 0.3, role="marker", prefix="wth")],

@@ -533,9 +533,9 @@ def _rendered_pages(tmp_path: Path) -> dict[str, Path]:
     assumption checks and the input review laid over (report_fields.py)."""
     from report_fields import with_new_fields
 
-    from measurement.brief import render_brief
-    from measurement.html_report import render_html
-    from measurement.pipeline import analyze
+    from samesource.output.brief import render_brief
+    from samesource.output.report_html import render_html
+    from samesource.pipeline import analyze
 
     report = analyze(SURVEY, DESIGN).report
     pages = {}
@@ -553,7 +553,7 @@ SERVED = "http://report.test/"
 def serve_as_the_service_does(page, pages: dict[str, Path]) -> None:
     """The rendered files answered at SERVED + NAME with the policy the service sends with
     report.html and brief.html, so that whatever the policy refuses is seen here."""
-    from service.security import document_policy
+    from samesource.service.security import document_policy
 
     def answer(route):
         name = route.request.url.removeprefix(SERVED)

@@ -14,7 +14,7 @@ DESIGN = ROOT / "sample_surveys" / "staff_survey_design.json"
 
 
 def run(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "service.cli", *map(str, args)],
+    return subprocess.run([sys.executable, "-m", "samesource.service.cli", *map(str, args)],
                           capture_output=True, text=True, cwd=cwd or ROOT, timeout=600)
 
 
@@ -165,7 +165,7 @@ def test_draft_design_prints_a_valid_design(tmp_path):
     res = run("draft-design", SAMPLE)
     assert res.returncode == 0, res.stderr
     draft = json.loads(res.stdout)
-    from measurement.design import parse_design
+    from samesource.input.design import parse_design
 
     d = parse_design(draft)
     assert {"sup", "eng"} <= set(d.constructs)
@@ -198,7 +198,7 @@ def test_progress_line_on_a_terminal_only(tmp_path):
     reader = threading.Thread(target=drain, daemon=True)
     reader.start()
     try:
-        proc = subprocess.run([sys.executable, "-m", "service.cli", *map(str, args)],
+        proc = subprocess.run([sys.executable, "-m", "samesource.service.cli", *map(str, args)],
                               stdout=subprocess.PIPE, stderr=follower, cwd=ROOT, timeout=600)
     finally:
         os.close(follower)

@@ -1,7 +1,7 @@
-"""The correction check (measurement/correction_check.py) and the planning advice
-(measurement/planning.py).
+"""The correction check (measurement/corrections/correction_check.py) and the planning advice
+(measurement/method_checks/planning.py).
 
-Outside references: the simulator of measurement/simulate.py (its Likert item correlations
+Outside references: the simulator of sample_surveys/simulate.py (its Likert item correlations
 come from Mehler's expansion, not from draws; its surveys are drawn by its own code) for the
 check's generator and for a direct simulation of the fitted scenario; scipy's noncentral
 chi-square and the textbook value that a 1-df test at the .05 level has 80% power at
@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 from conftest import small_survey
 
-from measurement.correction_check import (
+from samesource.corrections.correction_check import (
     Population,
     dependable,
     draw_survey,
@@ -30,12 +30,12 @@ from measurement.correction_check import (
     summarize,
     with_method_shares,
 )
-from measurement.design import parse_design
-from measurement.fitting import Moments, fit_model
-from measurement.method_variance import _without_method
-from measurement.models import method_factor_model
-from measurement.planning import power_at, smallest_n
-from measurement.simulate import (
+from samesource.engine.builders import method_factor_model
+from samesource.engine.fitting import Moments, fit_model
+from samesource.input.design import parse_design
+from samesource.method_checks.method_variance import _without_method
+from samesource.method_checks.planning import power_at, smallest_n
+from simulate import (
     ConstructSpec,
     SurveySpec,
     design_for,
@@ -149,7 +149,7 @@ def test_summary_and_rules_on_hand_worked_numbers():
            "published_upper_share": {m: {**good, "bias": 0.2} for m in ("observed", "latent")}}
     per["fitted"]["method_factor_adjusted"]["rmse"] = 0.06
     per["published_upper_share"]["method_factor_adjusted"] = good
-    from measurement.paths import METHODS
+    from samesource.corrections.paths import METHODS
 
     for d in per.values():
         for m in METHODS:
@@ -182,7 +182,7 @@ def test_power_of_the_method_test_matches_the_textbook_value_and_a_direct_simula
 
 def test_the_command_line_runs_the_check_and_writes_it_into_every_output(tmp_path, capsys):
     """End to end, one simulated survey per scenario (about 10 s: six analyses)."""
-    from service.cli import main
+    from samesource.service.cli import main
 
     data, design = small_survey(200, 3)
     (tmp_path / "s.csv").write_bytes(data)

@@ -3,7 +3,7 @@
 One condition of tests/benchmarks/coverage_study.py (n = 600, 100 samples, two paths): the
 preferred estimate's 95% Wald interval must cover the true path at a rate consistent with 95%,
 its bias must be small, and the estimates that ignore shared method must show the inflation the
-product exists to correct. Truth: the simulation's population values (measurement.simulate).
+product exists to correct. Truth: the simulation's population values (sample_surveys/simulate.py).
 Binomial limits: scipy.stats.binom.
 """
 

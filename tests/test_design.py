@@ -4,8 +4,8 @@ import json
 
 import pytest
 
-from measurement.design import check_columns, draft_design, load_design, parse_design
-from measurement.errors import DesignError
+from samesource.errors import DesignError
+from samesource.input.design import check_columns, draft_design, load_design, parse_design
 
 
 def base() -> dict:

@@ -1,4 +1,4 @@
-"""Tests of the ML / FIML fitting engine (measurement.fitting).
+"""Tests of the ML / FIML fitting engine (samesource.engine.fitting).
 
 Every check of a computed value names its outside source: a published value (quoted from
 memory where marked), a data set shipped with semopy, or a general-purpose library (semopy
@@ -17,10 +17,10 @@ import pytest
 import semopy
 from semopy.examples import holzinger39, political_democracy
 
-from measurement import fit_indices as fx
-from measurement.errors import DataError
-from measurement.fitting import FitResult, Moments, RawData, fit_model, refit
-from measurement.modelspec import ModelSpec, Param
+from samesource.engine import fit_indices as fx
+from samesource.engine.fitting import FitResult, Moments, RawData, fit_model, refit
+from samesource.engine.modelspec import ModelSpec, Param
+from samesource.errors import DataError
 
 HS_ITEMS = [f"x{i}" for i in range(1, 10)]
 HS_FACTORS = {"visual": HS_ITEMS[:3], "textual": HS_ITEMS[3:6], "speed": HS_ITEMS[6:]}

@@ -24,15 +24,15 @@ from test_loading import make_sav, make_xlsx
 from test_service_api import assert_error, token_for, upload
 from test_service_storage import BACKENDS
 
-from measurement.design import check_columns, load_design, parse_design
-from measurement.errors import DesignError, InputError
-from measurement.loading import load_table
-from measurement.options import AnalysisOptions
-from measurement.prepare import numeric_columns, prepare
-from service.app import create_app
-from service.context import EXTENSION
-from service.db import Database
-from service.models import Base
+from samesource.errors import DesignError, InputError
+from samesource.input.design import check_columns, load_design, parse_design
+from samesource.input.loading import load_table
+from samesource.input.prepare import numeric_columns, prepare
+from samesource.options import AnalysisOptions
+from samesource.service.app import create_app
+from samesource.service.context import EXTENSION
+from samesource.service.db import Database
+from samesource.service.models import Base
 
 pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
 

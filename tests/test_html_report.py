@@ -1,7 +1,7 @@
 """The client's HTML report: self-contained, complete, faithful to report.json, escaped, accessible.
 
-Reports come from real analyses (measurement.pipeline.analyze) of simulated surveys with
-known structure (measurement.simulate) and of the bundled sample survey; the page is parsed
+Reports come from real analyses (samesource.pipeline.analyze) of simulated surveys with
+known structure (sample_surveys/simulate.py) and of the bundled sample survey; the page is parsed
 with the standard library (html.parser; xml.etree for each SVG figure).
 """
 
@@ -18,13 +18,13 @@ from pathlib import Path
 import pytest
 from report_fields import with_new_fields
 
-from measurement import svg
-from measurement.brief import render_brief
-from measurement.executor import SerialExecutor
-from measurement.html_report import render_html
-from measurement.pipeline import analyze
-from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
-from measurement.tables import method_label
+from samesource.executor import SerialExecutor
+from samesource.output import svg
+from samesource.output.brief import render_brief
+from samesource.output.report_html import render_html
+from samesource.output.tables import method_label
+from samesource.pipeline import analyze
+from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
 ROOT = Path(__file__).resolve().parents[1]
 MINUS = "\u2212"
@@ -678,7 +678,7 @@ def test_teams_say_why_a_value_is_missing_and_mark_imprecise_intervals(sample):
 
 
 def test_fit_reads_as_a_sentence():
-    from measurement.html_report import fit_sentence
+    from samesource.output.report_html import fit_sentence
 
     # thresholds as the report carries them (Hu & Bentler 1999 cut-offs, common practice)
     th = {"cfi": {"value": 0.95, "direction": ">="}, "tli": {"value": 0.95, "direction": ">="},
@@ -692,7 +692,7 @@ def test_fit_reads_as_a_sentence():
 
 
 def test_decision_sentences():
-    from measurement.decision import DIRECTION_NOTE, sentence
+    from samesource.output.decision import DIRECTION_NOTE, sentence
 
     def path(obs, pref, ci, key="method_factor_adjusted"):
         return {"predictor": "workload", "outcome": "engagement", "preferred": key,

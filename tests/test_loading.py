@@ -12,8 +12,8 @@ import pandas as pd
 import pyreadstat
 import pytest
 
-from measurement.errors import DataError, UnsupportedFormat
-from measurement.loading import detect_format, load_table, sniff_delimiter
+from samesource.errors import DataError, UnsupportedFormat
+from samesource.input.loading import detect_format, load_table, sniff_delimiter
 
 
 def write(tmp_path, name: str, content: bytes | str, encoding: str = "utf-8"):
@@ -546,8 +546,8 @@ def test_parquet_gives_the_same_prepared_items_as_the_csv():
     # equal those prepared from the CSV (same values, same missing cells, same row numbers).
     import json
 
-    from measurement.design import parse_design
-    from measurement.prepare import prepare
+    from samesource.input.design import parse_design
+    from samesource.input.prepare import prepare
 
     design = parse_design(json.loads(open(os.path.join(os.path.dirname(SAMPLE), "staff_survey_design.json"),
                                           encoding="utf-8").read()))

@@ -9,9 +9,14 @@ import statsmodels.api as sm
 from scipy import stats
 from statsmodels.multivariate.pca import PCA
 
-from measurement.collinearity import full_collinearity_vif
-from measurement.harman import harman_efa
-from measurement.marker import adjust_correlation, choose_r_m, marker_adjustment, r_m_source
+from samesource.method_checks.collinearity import full_collinearity_vif
+from samesource.method_checks.harman import harman_efa
+from samesource.method_checks.marker import (
+    adjust_correlation,
+    choose_r_m,
+    marker_adjustment,
+    r_m_source,
+)
 
 
 def test_lindell_whitney_adjustment_by_hand():

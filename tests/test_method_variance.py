@@ -1,20 +1,20 @@
 """Common-method checks end to end, on simulated surveys whose truth is known.
 
-Invented data with known truth (measurement.simulate): the method share of item variance is
+Invented data with known truth (sample_surveys/simulate.py): the method share of item variance is
 method_loading^2 by construction, and the verdict must say "none" when it is zero.
 """
 
 import numpy as np
 import pytest
 
-from measurement.design import parse_design
-from measurement.fitting import Moments, fit_model
-from measurement.method_variance import Fitter, _degenerate, method_factor_section
-from measurement.missing import plan_missing
-from measurement.models import METHOD, measurement_model, method_factor_model
-from measurement.options import AnalysisOptions
-from measurement.pipeline import analyze
-from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+from samesource.engine.builders import METHOD, measurement_model, method_factor_model
+from samesource.engine.fitting import Moments, fit_model
+from samesource.input.design import parse_design
+from samesource.input.missing import plan_missing
+from samesource.method_checks.method_variance import Fitter, _degenerate, method_factor_section
+from samesource.options import AnalysisOptions
+from samesource.pipeline import analyze
+from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
 
 def survey(method_loading: float, seed: int, *, n: int = 800, marker: bool = True,
@@ -91,8 +91,8 @@ def test_degenerate_free_loadings_are_detected_and_not_used():
     reasons = _degenerate(degenerate_fit, design, mm)
     assert reasons and any("far above" in r for r in reasons)
 
-    from measurement.loading import load_table
-    from measurement.prepare import prepare
+    from samesource.input.loading import load_table
+    from samesource.input.prepare import prepare
 
     prepared = prepare(load_table(df.to_csv(index=False).encode(), name="sim.csv"), design)
     opts = AnalysisOptions()
@@ -155,7 +155,7 @@ def test_holm_adjustment_equals_statsmodels():
     # Reference: statsmodels.stats.multitest.multipletests(method="holm") (Holm 1979).
     from statsmodels.stats.multitest import multipletests
 
-    from measurement.verdict import holm
+    from samesource.method_checks.verdict import holm
 
     ps = {"a": 0.010, "b": 0.040, "c": 0.030, "d": None, "e": 0.200}
     got = holm(ps)
@@ -168,13 +168,13 @@ def test_holm_adjustment_equals_statsmodels():
 def _plain(spec: SurveySpec) -> dict:
     df, _ = simulate_survey(spec)
     design = parse_design(design_for(spec))
-    from measurement.loading import load_table
-    from measurement.prepare import prepare
+    from samesource.input.loading import load_table
+    from samesource.input.prepare import prepare
 
     prepared = prepare(load_table(df.to_csv(index=False).encode(), name="sim.csv"), design)
     opts = AnalysisOptions()
     plan = plan_missing(prepared, opts)
-    from measurement.method_variance import plain_method_check
+    from samesource.method_checks.method_variance import plain_method_check
 
     return plain_method_check(design, Fitter(plan, opts, {}))
 

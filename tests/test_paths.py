@@ -5,9 +5,9 @@ import pytest
 import semopy
 from semopy.examples import political_democracy
 
-from measurement.paths import disattenuate, marker_adjust, standardized_coefficients
-from measurement.pipeline import analyze
-from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+from samesource.corrections.paths import disattenuate, marker_adjust, standardized_coefficients
+from samesource.pipeline import analyze
+from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
 
 def test_standardized_coefficients_from_a_correlation_matrix_by_hand():
@@ -131,7 +131,7 @@ def test_marker_adjusted_replicates_keep_the_full_sample_r_m_source():
 
 
 def test_bootstrap_is_reproducible_under_a_seed_and_differs_across_seeds():
-    from measurement.executor import LocalExecutor, SerialExecutor
+    from samesource.executor import LocalExecutor, SerialExecutor
 
     spec = _survey(7, n=300)
     df, _ = simulate_survey(spec)

@@ -10,8 +10,8 @@ import pytest
 import semopy
 from semopy.examples import holzinger39
 
-from measurement.pipeline import analyze
-from measurement.report import dumps
+from samesource.output.report_json import dumps
+from samesource.pipeline import analyze
 
 ROOT = __import__("pathlib").Path(__file__).resolve().parents[1]
 

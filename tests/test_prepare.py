@@ -8,10 +8,10 @@ import pandas as pd
 import pyreadstat
 import pytest
 
-from measurement.design import parse_design
-from measurement.errors import DataError, DesignError
-from measurement.loading import load_table
-from measurement.prepare import numeric_columns, prepare
+from samesource.errors import DataError, DesignError
+from samesource.input.design import parse_design
+from samesource.input.loading import load_table
+from samesource.input.prepare import numeric_columns, prepare
 
 
 def design(**extra) -> object:

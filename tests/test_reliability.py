@@ -10,7 +10,7 @@ import semopy
 from scipy import stats
 from semopy.examples import holzinger39
 
-from measurement.reliability import (
+from samesource.statistics.reliability import (
     AVE_THRESHOLD,
     LOADING_THRESHOLD,
     RELIABILITY_THRESHOLD,

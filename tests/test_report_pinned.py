@@ -39,8 +39,8 @@ EXCLUDED = {("timings",), ("tool", "version")}
 
 
 def _report(options: dict) -> dict:
-    from measurement.executor import SerialExecutor
-    from measurement.pipeline import analyze
+    from samesource.executor import SerialExecutor
+    from samesource.pipeline import analyze
 
     design = json.loads(DESIGN.read_text(encoding="utf-8"))
     analysis = analyze(str(SURVEY), design, options, executor=SerialExecutor())

@@ -1,4 +1,4 @@
-"""Robust (sandwich) standard errors (measurement.robust_se).
+"""Robust (sandwich) standard errors (samesource.engine.robust_se).
 
 Outside sources: statsmodels' heteroskedasticity-consistent HC0 covariance of an OLS slope
 (White 1980), which the ML sandwich of a just-identified regression reproduces exactly; a
@@ -15,9 +15,9 @@ import pytest
 import statsmodels.api as sm
 from semopy.examples import holzinger39
 
-from measurement.fitting import Moments, RawData, fit_model
-from measurement.modelspec import ModelSpec, Param
-from measurement.robust_se import casewise_scores, robust_se
+from samesource.engine.fitting import Moments, RawData, fit_model
+from samesource.engine.modelspec import ModelSpec, Param
+from samesource.engine.robust_se import casewise_scores, robust_se
 
 HS_ITEMS = [f"x{i}" for i in range(1, 10)]
 HS_FACTORS = {"visual": HS_ITEMS[:3], "textual": HS_ITEMS[3:6], "speed": HS_ITEMS[6:]}

@@ -11,8 +11,8 @@ from scipy import stats
 from scipy.spatial.distance import mahalanobis
 from semopy.examples import holzinger39
 
-from measurement.errors import DesignError
-from measurement.screening import ScreeningRules, screen_respondents
+from samesource.errors import DesignError
+from samesource.input.screening import ScreeningRules, screen_respondents
 
 NA = np.nan
 

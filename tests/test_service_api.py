@@ -12,10 +12,10 @@ import re
 import pytest
 from conftest import small_survey, wait_for
 
-from service.api.analyses import html_renderer
-from service.app import create_app
-from service.context import EXTENSION
-from service.store import Store
+from samesource.service.api.analyses import html_renderer
+from samesource.service.app import create_app
+from samesource.service.context import EXTENSION
+from samesource.service.store import Store
 
 pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
 
@@ -457,12 +457,12 @@ def test_unexpected_errors_are_a_bare_json_500_and_the_log_has_no_content(tmp_pa
 
 
 def test_a_bug_in_a_job_is_stored_as_internal_error_and_logged_without_content(monkeypatch, caplog):
-    from service import jobs
+    from samesource.service import jobs
 
     def broken(*a, **k):
         raise KeyError("respondent R00017 answered 'my manager is awful'")
 
-    monkeypatch.setattr("measurement.pipeline.analyze", broken)
+    monkeypatch.setattr("samesource.pipeline.analyze", broken)
     spec = jobs.JobSpec(analysis_id="an_test", attempt=1, runner="r", name="x.csv", design={},
                         options={}, data=b"a,b\n1,2\n")
     with caplog.at_level(logging.INFO, logger="samesource"):
@@ -613,7 +613,7 @@ def test_the_same_bytes_again_are_the_same_dataset(app, client, svc_survey):
 
 
 def test_tables_over_http_are_the_command_lines_files(app, client, svc_survey):
-    from measurement.tables import report_tables, tables_csv
+    from samesource.output.tables import report_tables, tables_csv
 
     h = token_for(app, "tables")
     data, design = svc_survey

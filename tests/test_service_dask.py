@@ -8,16 +8,16 @@ import io
 import pytest
 from conftest import small_survey, wait_for
 
-from service.app import create_app
-from service.context import EXTENSION
-from service.dask_backend import DaskExecutor
+from samesource.service.app import create_app
+from samesource.service.context import EXTENSION
+from samesource.service.dask_backend import DaskExecutor
 
 distributed = pytest.importorskip("distributed")
 
 
 @pytest.fixture(scope="module")
 def cluster():
-    # worker processes, as on a real cluster (they import measurement afresh, like the local pool)
+    # worker processes, as on a real cluster (they import samesource afresh, like the local pool)
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                                   protocol="tcp://", host="127.0.0.1",
                                   dashboard_address=None) as c:

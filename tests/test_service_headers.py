@@ -18,8 +18,8 @@ from pathlib import Path
 
 import pytest
 
-from service.app import create_app
-from service.context import EXTENSION
+from samesource.service.app import create_app
+from samesource.service.context import EXTENSION
 
 pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
 

@@ -81,7 +81,7 @@ def test_http_report_equals_the_command_line_report(server_factory, tmp_path):
     # the command line on the same file and design, meanwhile (two cores)
     out = tmp_path / "cli-report"
     cli_run = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "analyze", str(SAMPLE), "--design", str(SAMPLE_DESIGN),
+        [sys.executable, "-m", "samesource.service.cli", "analyze", str(SAMPLE), "--design", str(SAMPLE_DESIGN),
          "--missing", "fiml", "--out", str(out), "--quiet"],
         cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     a = poll(srv.base, token, aid, timeout=300)

@@ -15,9 +15,9 @@ from openapi_spec_validator import validate
 from referencing import Registry, Resource
 from referencing.jsonschema import DRAFT202012
 
-from measurement.options import AnalysisOptions
-from service.app import create_app
-from service.context import EXTENSION
+from samesource.options import AnalysisOptions
+from samesource.service.app import create_app
+from samesource.service.context import EXTENSION
 
 URI = "urn:samesource:openapi"
 

@@ -18,11 +18,11 @@ from pathlib import Path
 import pytest
 from sqlalchemy.exc import OperationalError
 
-from service.app import create_app
-from service.context import EXTENSION
-from service.db import Database
-from service.models import Base
-from service.store import Store
+from samesource.service.app import create_app
+from samesource.service.context import EXTENSION
+from samesource.service.db import Database
+from samesource.service.models import Base
+from samesource.service.store import Store
 from tests.conftest import POSTGRES_URL, cli, small_survey, wait_for
 
 pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
@@ -253,8 +253,8 @@ def test_a_workbook_bomb_is_refused_quickly_without_growing_the_web_process(limi
 
 
 def test_measurement_refuses_a_workbook_bomb_before_parsing_it():
-    from measurement.errors import DataError
-    from measurement.workbook_limits import check_workbook
+    from samesource.errors import DataError
+    from samesource.input.workbook_limits import check_workbook
 
     bomb = workbook_bomb(8)
     with pytest.raises(DataError) as e:
@@ -379,7 +379,7 @@ def test_claims_go_round_robin_across_tenants_within_the_running_limit(store):
         with store.db.reading() as s:
             from sqlalchemy import select
 
-            from service.models import Tenant
+            from samesource.service.models import Tenant
             ids[name] = s.scalar(select(Tenant.id).where(Tenant.name == name))
         store.add_dataset(ids[name], f"ds_{name}", name="s.csv", format="csv", sha256="0" * 64,
                           size_bytes=1, rows=1, columns=["a"], numeric_columns=["a"],
@@ -477,7 +477,7 @@ def test_an_older_token_table_gets_the_new_columns(tmp_path):
 
 
 def test_the_data_folder_is_locked_and_a_dead_process_spool_is_swept_at_start(tmp_path):
-    from service.config import ConfigError
+    from samesource.service.config import ConfigError
 
     data_dir = tmp_path / "d"
     (data_dir / "uploads").mkdir(parents=True)

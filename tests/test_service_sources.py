@@ -13,8 +13,8 @@ from conftest import wait_for
 from test_service_api import assert_error
 from two_sources import two_source_survey
 
-from service.app import create_app
-from service.context import EXTENSION
+from samesource.service.app import create_app
+from samesource.service.context import EXTENSION
 
 pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
 

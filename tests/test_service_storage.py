@@ -11,12 +11,12 @@ import pytest
 from conftest import POSTGRES_URL, small_survey, wait_for
 from sqlalchemy import select, text, update
 
-from service import tokens
-from service.app import create_app
-from service.context import EXTENSION
-from service.db import Database
-from service.models import Analysis, Base, utcnow
-from service.store import Claim, Store
+from samesource.service import tokens
+from samesource.service.app import create_app
+from samesource.service.context import EXTENSION
+from samesource.service.db import Database
+from samesource.service.models import Analysis, Base, utcnow
+from samesource.service.store import Claim, Store
 
 BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.skipif(
     not POSTGRES_URL, reason="set SAMESOURCE_TEST_POSTGRES_URL (make test-postgres)"))]
@@ -37,7 +37,7 @@ def store(request, tmp_path):
 
 
 def add_dataset(store: Store, tenant_id: str, name: str = "s.csv") -> dict:
-    from service.store import new_id
+    from samesource.service.store import new_id
 
     return store.add_dataset(tenant_id, new_id("ds"), name=name, format="csv", sha256="0" * 64,
                              size_bytes=10, rows=3, columns=["a", "b"], numeric_columns=["a"],

@@ -13,8 +13,8 @@ import pandas as pd
 import pytest
 from scipy.stats import multivariate_normal, norm
 
-from measurement.design import check_columns, load_design
-from measurement.simulate import (
+from samesource.input.design import check_columns, load_design
+from simulate import (
     METHOD_FACTOR,
     SCENARIOS,
     ConstructSpec,

@@ -3,7 +3,7 @@ line, and the cross-source estimate against known truth in simulated two-source 
 
 Id matching is checked on small files written out by hand here (what each row should join
 to is visible in the test); the estimates against the truth of tests/two_sources.py, which
-uses the simulator of measurement/simulate.py (invented data with known truth).
+uses the simulator of sample_surveys/simulate.py (invented data with known truth).
 """
 
 from __future__ import annotations
@@ -14,11 +14,11 @@ import numpy as np
 import pytest
 from two_sources import TRUTH, two_source_survey
 
-from measurement.design import MAIN, parse_design
-from measurement.errors import DataError, DesignError
-from measurement.loading import load_table
-from measurement.sources import prepare_with_sources
-from service.cli import main
+from samesource.errors import DataError, DesignError
+from samesource.input.design import MAIN, parse_design
+from samesource.input.loading import load_table
+from samesource.input.sources import prepare_with_sources
+from samesource.service.cli import main
 
 MAIN_CSV = """respondent,a1,a2,a3,b1,b2,b3
 E01,1,2,2,3,3,4

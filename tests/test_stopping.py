@@ -62,7 +62,7 @@ def kill_group(pgid: int) -> None:
 def test_sigterm_stops_the_command_line_and_its_workers(tmp_path):
     out = tmp_path / "report"
     proc = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "analyze", str(SAMPLE), "--design", str(DESIGN),
+        [sys.executable, "-m", "samesource.service.cli", "analyze", str(SAMPLE), "--design", str(DESIGN),
          "--bootstrap", "5000", "--out", str(out)],
         cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
     try:
@@ -82,7 +82,7 @@ def test_workers_leave_when_the_owner_is_killed(tmp_path):
     script = tmp_path / "owner.py"
     script.write_text(textwrap.dedent("""
         import time
-        from measurement.executor import LocalExecutor
+        from samesource.executor import LocalExecutor
 
         if __name__ == "__main__":  # workers import this file again
             LocalExecutor(2).map(time.sleep, [120] * 4)
@@ -93,7 +93,7 @@ def test_workers_leave_when_the_owner_is_killed(tmp_path):
         workers = group_members(proc.pid) - {proc.pid}
         proc.kill()  # SIGKILL: no handler, no atexit
         proc.wait(timeout=10)
-        # each worker polls its owner once a second (measurement.executor.OWNER_POLL_SECONDS)
+        # each worker polls its owner once a second (samesource.executor.OWNER_POLL_SECONDS)
         wait_for(lambda: not (group_members(proc.pid) & workers), 15, "the orphaned workers to leave")
     finally:
         kill_group(proc.pid)
@@ -104,8 +104,8 @@ def test_an_interrupted_map_kills_running_tasks_at_once(tmp_path):
     script.write_text(textwrap.dedent("""
         import sys
         import time
-        from measurement.executor import LocalExecutor
-        from service.cli import Stopped, stop_on_signals
+        from samesource.executor import LocalExecutor
+        from samesource.service.cli import Stopped, stop_on_signals
 
         if __name__ == "__main__":  # workers import this file again
             with stop_on_signals():

@@ -1,7 +1,7 @@
 """Tidy tables from a report (CSV and Excel): shapes, values and round trips.
 
-Reports come from measurement.pipeline.analyze on a simulated survey with known structure
-(measurement.simulate) and on the bundled sample survey; Excel files are read back with
+Reports come from samesource.pipeline.analyze on a simulated survey with known structure
+(sample_surveys/simulate.py) and on the bundled sample survey; Excel files are read back with
 openpyxl, CSV text with pandas.
 """
 
@@ -18,9 +18,9 @@ import openpyxl
 import pandas as pd
 import pytest
 
-from measurement.pipeline import analyze
-from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
-from measurement.tables import absent_reason, report_tables, tables_csv, tables_xlsx
+from samesource.output.tables import absent_reason, report_tables, tables_csv, tables_xlsx
+from samesource.pipeline import analyze
+from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
 ROOT = Path(__file__).resolve().parents[1]
 

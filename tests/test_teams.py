@@ -8,9 +8,9 @@ import pytest
 import statsmodels.api as sm
 import statsmodels.formula.api as smf
 
-from measurement.pipeline import analyze
-from measurement.report import dumps
-from measurement.teams import (
+from samesource.output.report_json import dumps
+from samesource.pipeline import analyze
+from samesource.statistics.teams import (
     _ols,
     icc_oneway,
     rwg_j,

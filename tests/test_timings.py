@@ -5,7 +5,7 @@ from __future__ import annotations
 import resource
 import sys
 
-from measurement.timings import StageClock, peak_memory_mb
+from samesource.timings import StageClock, peak_memory_mb
 
 
 class FakeClock:
@@ -47,7 +47,7 @@ def test_report_json_has_timings_for_every_stage(tmp_path):
     import json
     from pathlib import Path
 
-    from measurement.pipeline import STAGES, analyze
+    from samesource.pipeline import STAGES, analyze
 
     root = Path(__file__).resolve().parents[1] / "sample_surveys"
     report = analyze(str(root / "staff_survey.csv"),

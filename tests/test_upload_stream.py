@@ -14,8 +14,8 @@ import pytest
 from werkzeug.datastructures import FileStorage
 from werkzeug.test import encode_multipart
 
-from service import uploads
-from service.upload_stream import MultipartError, MultipartFileStream
+from samesource.service import uploads
+from samesource.service.upload_stream import MultipartError, MultipartFileStream
 
 
 def _body(content: bytes, name: str = "big.csv.gz") -> tuple[str, bytes]:

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from measurement.validity import HTMT_LIBERAL, HTMT_STRICT, fornell_larcker, htmt, htmt2
+from samesource.statistics.validity import HTMT_LIBERAL, HTMT_STRICT, fornell_larcker, htmt, htmt2
 
 
 def _corr(names: list[str], pairs: dict[tuple[str, str], float]) -> pd.DataFrame:

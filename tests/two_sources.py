@@ -1,7 +1,7 @@
 """Simulated two-source surveys with known truth, for the tests of second sources.
 
 The staff answer support, engagement and a marker (each item 0.70 on its trait and 0.35 on
-one shared method factor: the simulator of measurement/simulate.py); their managers rate,
+one shared method factor: the simulator of sample_surveys/simulate.py); their managers rate,
 on a 5-point scale, engagement as they see it (a view correlated VIEW with the staff
 member's engagement trait) and performance (PERFORMANCE on engagement). The managers' items
 carry none of the staff's method. True standardized paths: engagement on support SUPPORT
@@ -14,7 +14,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from measurement.simulate import (
+from simulate import (
     ConstructSpec,
     SurveySpec,
     design_for,

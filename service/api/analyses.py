@@ -18,10 +18,10 @@ from datetime import datetime
 
 from flask import Blueprint, Response, jsonify, request
 
-from measurement.design import Design, answer_key, check_columns, did_you_mean, parse_design
-from measurement.errors import DataError, InputError
-from measurement.loading import MISSING_WORDS
-from measurement.options import AnalysisOptions
+from samesource.errors import DataError, InputError
+from samesource.input.design import Design, answer_key, check_columns, did_you_mean, parse_design
+from samesource.input.loading import MISSING_WORDS
+from samesource.options import AnalysisOptions
 
 from .. import quotas
 from ..context import services
@@ -31,7 +31,7 @@ from .paging import page_args
 
 log = logging.getLogger("samesource.service")
 
-HTML_MODULE = "measurement.html_report"
+HTML_MODULE = "samesource.output.report_html"
 _BODY_FIELDS = ("dataset_id", "design", "options", "sources")
 
 
@@ -157,7 +157,7 @@ def create() -> tuple[Response, int]:
 def _sources(svc, design: Design, given: object) -> dict[str, str]:
     """``sources`` {NAME: dataset_id}: each a dataset of this tenant (404 otherwise), one per
     source the design names (400 otherwise), holding that source's columns (400)."""
-    from measurement.sources import check_source_columns
+    from samesource.input.sources import check_source_columns
 
     if given is None:
         given = {}
@@ -260,9 +260,9 @@ def report_json(analysis_id: str) -> Response:
 
 
 def html_renderer(name: str = "render_html"):
-    """A renderer of measurement.html_report (render_html) or measurement.brief (render_brief)
+    """A renderer of samesource.output.report_html (render_html) or samesource.output.brief (render_brief)
     when that module exists in this version, else None."""
-    module = HTML_MODULE if name == "render_html" else "measurement.brief"
+    module = HTML_MODULE if name == "render_html" else "samesource.output.brief"
     try:
         if importlib.util.find_spec(module) is None:
             return None
@@ -301,14 +301,14 @@ XLSX = "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"
 
 
 def _tables(analysis_id: str) -> dict:
-    from measurement.tables import report_tables
+    from samesource.output.tables import report_tables
 
     return report_tables(json.loads(_finished(_found(analysis_id, with_report=True))))
 
 
 def tables_xlsx(analysis_id: str) -> Response:
     """The report's tables as one workbook, the command line's tables.xlsx."""
-    from measurement.tables import tables_xlsx as workbook
+    from samesource.output.tables import tables_xlsx as workbook
 
     resp = Response(workbook(_tables(analysis_id)), status=200, mimetype=XLSX)
     resp.headers["Content-Disposition"] = f'attachment; filename="{analysis_id}-tables.xlsx"'
@@ -317,7 +317,7 @@ def tables_xlsx(analysis_id: str) -> Response:
 
 def table_csv(analysis_id: str, name: str) -> Response:
     """One table as CSV, as the command line writes it into tables/."""
-    from measurement.tables import tables_csv
+    from samesource.output.tables import tables_csv
 
     files = tables_csv(_tables(analysis_id))
     want = f"{name}.csv"

@@ -10,7 +10,7 @@ from typing import Any
 
 from flask import Blueprint, Response, jsonify
 
-from measurement import __version__
+from samesource import __version__
 
 REF = "#/components/schemas/"
 

@@ -1,9 +1,9 @@
 """Assumption study: each correction where its assumptions hold, fail, or cannot be checked.
 
-Scenarios of our own design with known truth (`measurement.simulate.SCENARIOS`: a clean survey,
+Scenarios of our own design with known truth (`simulate.SCENARIOS`: a clean survey,
 the assumptions holding, a marker without the method, congeneric method loadings, method
 correlated with a trait, skewed 5-point items, n = 150, a measured method scale, acquiescence
-with reverse-keyed items). Each sample is analysed by `measurement.pipeline.analyze` with the
+with reverse-keyed items). Each sample is analysed by `samesource.pipeline.analyze` with the
 default options, exactly as the command line would. Measured per scenario: the preferred
 estimate's bias, RMSE and 95% interval coverage; how often `paths[].bounds` hold the truth
 (overall, and where an assumption the preferred estimate rests on is `untestable` or
@@ -28,11 +28,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "sample_surveys"))  # the simulator (sample_surveys/simulate.py)
 
-from measurement.executor import LocalExecutor, SerialExecutor  # noqa: E402
-from measurement.pipeline import analyze  # noqa: E402
-from measurement.simulate import SCENARIOS, Scenario, make_scenario, simulate_survey  # noqa: E402
+from samesource.executor import LocalExecutor, SerialExecutor  # noqa: E402
+from samesource.pipeline import analyze  # noqa: E402
+from simulate import SCENARIOS, Scenario, make_scenario, simulate_survey  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from coverage_study import binomial_range  # noqa: E402
@@ -305,7 +305,7 @@ def markdown(summaries: dict[str, ScenarioSummary], seeds: int, seconds: float, 
         f" (up to {seeds} samples per scenario, {seconds / 60:.0f} min on two processes). "
         "The slow test `tests/test_assumption_study.py` reruns one scenario.",
         "",
-        "Every scenario is the survey of `measurement.simulate` (support 4 items, engagement 4, intent",
+        "Every scenario is the survey of `sample_surveys/simulate.py` (support 4 items, engagement 4, intent",
         "to stay 3, a marker with a trait of its own 3; trait loadings .70) with one departure. True",
         "standardized paths, solved from the generating model's trait covariance: engagement on",
         "support .30, intent on engagement .45, intent on support 0 (a true null). Each sample is",

@@ -27,6 +27,7 @@ import requests
 ROOT = Path(__file__).resolve().parents[2]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "sample_surveys"))  # the simulator, for tests.conftest
 
 from tests.conftest import ServerProcess, auth, new_token, small_survey  # noqa: E402
 

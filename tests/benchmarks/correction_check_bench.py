@@ -26,7 +26,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "sample_surveys"))  # the simulator (sample_surveys/simulate.py)
 
 SURVEY = ROOT / "sample_surveys" / "staff_survey.csv"
 DESIGN = ROOT / "sample_surveys" / "staff_survey_design.json"
@@ -35,7 +35,7 @@ WORKERS = 2
 
 
 def child(replicates: int, dask_workers: int) -> dict:
-    from measurement.pipeline import analyze
+    from samesource.pipeline import analyze
 
     design = json.loads(DESIGN.read_text())
     options = {"missing": "fiml", "check_corrections": replicates}
@@ -43,7 +43,7 @@ def child(replicates: int, dask_workers: int) -> dict:
     if dask_workers:
         from distributed import Client, LocalCluster
 
-        from service.dask_backend import DaskExecutor
+        from samesource.service.dask_backend import DaskExecutor
 
         cluster = LocalCluster(n_workers=dask_workers, threads_per_worker=1, processes=True,
                                dashboard_address=None, env={"OPENBLAS_NUM_THREADS": "1"})

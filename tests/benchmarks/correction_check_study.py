@@ -1,7 +1,7 @@
 """The correction check's figures against a direct simulation of the same scenarios (run on
 demand; the suite's short version is tests/test_correction_check.py).
 
-A survey is drawn by measurement/simulate.py (support and engagement, a marker, every item
+A survey is drawn by sample_surveys/simulate.py (support and engagement, a marker, every item
 0.70 on its trait and 0.35 on one method factor, 5-point answers, n = 500) and analysed with
 ``check_corrections = R``. For every scenario the check ran, the same population (its
 loadings, method loadings, method-trait correlation and true path) is written as a
@@ -26,14 +26,14 @@ import numpy as np
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "sample_surveys"))  # the simulator (sample_surveys/simulate.py)
 
 BEGIN, END = "<!-- correction check study: begin -->", "<!-- correction check study: end -->"
 SHOWN = ("observed", "latent", "marker_adjusted", "method_factor_adjusted")
 
 
 def spec_for(pop, n: int, seed: int):
-    from measurement.simulate import ConstructSpec, SurveySpec
+    from simulate import ConstructSpec, SurveySpec
 
     cons = []
     for t, name in enumerate(pop.traits):
@@ -49,10 +49,10 @@ def spec_for(pop, n: int, seed: int):
 
 
 def direct(pop, design: dict, opts: dict, reps: int, n: int, scenario: int) -> dict:
-    from measurement.correction_check import ESTIMATES, summarize
-    from measurement.executor import SerialExecutor
-    from measurement.pipeline import analyze
-    from measurement.simulate import simulate_survey
+    from samesource.corrections.correction_check import ESTIMATES, summarize
+    from samesource.executor import SerialExecutor
+    from samesource.pipeline import analyze
+    from simulate import simulate_survey
 
     vals = np.full((reps, len(ESTIMATES), 3), np.nan)
     for r in range(reps):
@@ -79,11 +79,11 @@ def main() -> None:
     ap.add_argument("--out", type=Path, default=ROOT / "docs" / "coverage.md")
     args = ap.parse_args()
 
-    from measurement.correction_check import correction_check
-    from measurement.design import parse_design
-    from measurement.options import AnalysisOptions
-    from measurement.pipeline import analyze
-    from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+    from samesource.corrections.correction_check import correction_check
+    from samesource.input.design import parse_design
+    from samesource.options import AnalysisOptions
+    from samesource.pipeline import analyze
+    from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
     client = SurveySpec(constructs=[ConstructSpec("support", 4, 0.70, 0.35), ConstructSpec("engagement", 4, 0.70, 0.35),
                                     ConstructSpec("weather", 3, 0.70, 0.35, role="marker", prefix="wth")],
@@ -95,13 +95,13 @@ def main() -> None:
     check, pop = correction_check(parse_design(design), a.prepared, a.plan, a.report["method_variance"],
                                   a.report["paths"], opts, n=args.replicates,
                                   progress=lambda d, t: print(f"check {d}/{t}", flush=True))
-    from measurement.correction_check import scenarios
+    from samesource.corrections.correction_check import scenarios
 
     scen = {s.id: s for s in scenarios(parse_design(design), pop)}
     row = check["paths"][0]
     lines = [BEGIN, "", "## The correction check against a direct simulation", "",
              f"Measured by `tests/benchmarks/correction_check_study.py` on {date.today().isoformat()}: a survey of "
-             f"{args.n} drawn by measurement/simulate.py (support and engagement, a marker; every item 0.70 on its "
+             f"{args.n} drawn by sample_surveys/simulate.py (support and engagement, a marker; every item 0.70 on its "
              "trait and 0.35 on the method; 5-point answers) analysed with the correction check at "
              f"N = {args.replicates}; for each scenario the same population drawn {args.replicates} times by "
              "simulate.py's own generator and analysed alike. Bias and coverage of the estimate of engagement on "

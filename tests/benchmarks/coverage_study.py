@@ -3,10 +3,10 @@
 Run on demand (it takes minutes); results go to docs/coverage.md. The slow test
 tests/test_coverage_study.py runs one condition of the same study and checks its numbers.
 
-The survey (measurement.simulate): traits sup, eng, sty and a marker wth with its own trait,
+The survey (sample_surveys/simulate.py): traits sup, eng, sty and a marker wth with its own trait,
 three or four continuous items per scale, every item 0.70 trait + 0.35 common method + error
 (method share of item variance 0.1225); true standardized paths eng on sup .30 and sty on eng
-.45. Each replicate is a fresh sample analysed by `measurement.pipeline.analyze` with the
+.45. Each replicate is a fresh sample analysed by `samesource.pipeline.analyze` with the
 default options (analytic Wald intervals), exactly as the command line would.
 
     python tests/benchmarks/coverage_study.py [--seeds 100] [--n 300 600 1500] [--out docs/coverage.md]
@@ -22,11 +22,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "sample_surveys"))  # the simulator (sample_surveys/simulate.py)
 
-from measurement.executor import LocalExecutor  # noqa: E402
-from measurement.pipeline import analyze  # noqa: E402
-from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey  # noqa: E402
+from samesource.executor import LocalExecutor  # noqa: E402
+from samesource.pipeline import analyze  # noqa: E402
+from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey  # noqa: E402
 
 TRUTH = {("eng", "sup"): 0.30, ("sty", "eng"): 0.45}
 METHOD_LOADING = 0.35
@@ -137,7 +137,7 @@ def markdown(cells: dict, seeds: int, sizes: list[int], seconds: float) -> str:
         f"({seeds} samples per size, {seconds / 60:.0f} min on two cores). The slow test "
         "`tests/test_coverage_study.py` (`pytest -m slow`) reruns one size and checks it.",
         "",
-        "Population (`measurement.simulate`, continuous items): support (4 items), engagement (4),",
+        "Population (`sample_surveys/simulate.py`, continuous items): support (4 items), engagement (4),",
         "intent to stay (3) and a marker with its own trait (3); every item loads 0.70 on its trait",
         f"and {METHOD_LOADING:.2f} on one common method factor (method share of item variance "
         f"{METHOD_LOADING ** 2:.4f}); true standardized paths engagement on support 0.30, intent",

@@ -26,8 +26,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from workload import survey  # noqa: E402
 
-from measurement.loading import load_table  # noqa: E402
-from measurement.pipeline import analyze  # noqa: E402
+from samesource.input.loading import load_table  # noqa: E402
+from samesource.pipeline import analyze  # noqa: E402
 
 TARGETS = [
     "10,000 x 60 without bootstrap: under 10 s.",

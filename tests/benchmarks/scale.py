@@ -29,14 +29,14 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
 sys.path.insert(0, str(HERE))
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "sample_surveys"))  # the simulator (sample_surveys/simulate.py)
 
 BEGIN, END = "<!-- scale: begin -->", "<!-- scale: end -->"
 ITEMS = 60
 
 
 def _peak_mb() -> float:
-    from measurement.timings import peak_memory_mb
+    from samesource.timings import peak_memory_mb
 
     return peak_memory_mb() or float("nan")
 
@@ -51,13 +51,13 @@ def child_floor(path: str, items: list[str]) -> dict:
 
 
 def child_report(path: str, design: dict, options: dict, dask_workers: int = 0) -> dict:
-    from measurement.pipeline import analyze
+    from samesource.pipeline import analyze
 
     executor, cluster, client = None, None, None
     if dask_workers:
         from distributed import Client, LocalCluster
 
-        from service.dask_backend import DaskExecutor
+        from samesource.service.dask_backend import DaskExecutor
 
         cluster = LocalCluster(n_workers=dask_workers, threads_per_worker=1, processes=True,
                                dashboard_address=None, env={"OPENBLAS_NUM_THREADS": "1"})
@@ -80,8 +80,8 @@ def child_covariances(path: str, items: list[str], replicates: int) -> dict:
     import numpy as np
     import pandas as pd
 
-    from measurement.bootstrap import replicate_indices
-    from measurement.replicate_moments import draw_counts, weighted_moments
+    from samesource.corrections.bootstrap import replicate_indices
+    from samesource.corrections.replicate_moments import draw_counts, weighted_moments
 
     X = pd.read_csv(path)[items].to_numpy(dtype=float)
     n = len(X)
@@ -158,7 +158,7 @@ def main() -> None:
             cov = run_child("child_covariances", path, items, 256)
             local = run_child("child_report", path, design, opts)
             lines += ["", f"## At scale: {reps:,} bootstrap replicates at {n:,} x {ITEMS}", "",
-                      "Replicates from weighted cross-products (measurement/replicate_moments.py): one "
+                      "Replicates from weighted cross-products (measurement/corrections/replicate_moments.py): one "
                       "replicate's covariance matrix, timed alone (one process):", "",
                       f"- by resampling rows and `np.cov` (the former scheme): {cov['rows_ms']:.1f} ms",
                       f"- by weighted cross-products, in batches of 32 ({cov['replicates']} replicates): "

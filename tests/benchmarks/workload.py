@@ -1,9 +1,14 @@
 """Synthetic workloads for the benchmarks: a survey of N respondents and K items with known
-truth (measurement.simulate), 5 items per construct, one marker and one measured method scale."""
+truth (sample_surveys/simulate.py), 5 items per construct, one marker and one measured method scale."""
 
 from __future__ import annotations
 
-from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "sample_surveys"))  # the simulator
+
+from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey  # noqa: E402
 
 
 def survey(n: int, n_items: int, seed: int = 0):

@@ -1,0 +1,1 @@
+"""The key paths re-estimated with the bias corrected or bounded, and their uncertainty."""

@@ -1,0 +1,396 @@
+"""Every key path re-estimated under each correction, side by side.
+
+Each estimate is the standardized coefficient of a predictor in its outcome's equation
+with all the outcome's declared predictors. One :class:`PathEstimator` computes every
+estimate from an item matrix, so the same code serves the full sample (with analytic
+standard errors) and each bootstrap replicate (warm-started refits, no standard errors).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import warnings
+from typing import Any
+
+import numpy as np
+from scipy import stats
+
+from samesource.engine.builders import (
+    METHOD,
+    latent_path_model,
+    measured_method_model,
+    method_factor_model,
+    method_path_model,
+    only_method_variance_negative,
+    path_constructs,
+    score_name,
+    single_factor_model,
+    single_indicator_model,
+    without_method_factor,
+)
+from samesource.engine.fitting import FitResult, Moments, RawData, fit_model, refit
+from samesource.engine.robust_se import robust_se
+from samesource.input.design import MAIN, Design, Path
+from samesource.method_checks.marker import choose_r_m, r_m_source
+from samesource.statistics.reliability import alpha_from_cov, omega_total
+
+METHODS = ("observed", "disattenuated", "disattenuated_omega", "errors_in_variables", "latent",
+           "marker_adjusted", "method_factor_adjusted", "measured_method_adjusted")
+
+NOTES = {
+    "observed": "OLS on scale means: shrunk by unreliability and inflated by shared method alike.",
+    "disattenuated": "Spearman's (1904) correction with alpha, then the coefficients solved from the "
+                     "corrected correlations: corrects unreliability only, treats alpha as the reliability.",
+    "disattenuated_omega": "Spearman's correction with omega (one-factor reliability) instead of alpha.",
+    "errors_in_variables": "All declared paths at once, each scale score a single indicator with its error "
+                           "variance fixed at (1 - omega) x its variance (Bollen 1989): corrects unreliability only.",
+    "latent": "Full structural model on the items: corrects unreliability, not shared method.",
+    "marker_adjusted": "Scale correlations adjusted by the marker's r_M (Lindell & Whitney 2001), then "
+                       "disattenuated with alpha: assumes method variance is equal for every scale and that "
+                       "the marker shares it. Its analytic interval treats r_M and alpha as known, so it "
+                       "is too narrow; the bootstrap interval is not.",
+    "method_factor_adjusted": "Structural model with a latent method factor on every item, orthogonal to the "
+                              "traits: corrects unreliability and the shared method the factor captures.",
+    "measured_method_adjusted": "Structural model with the measured method construct loading on every "
+                                "substantive item (Podsakoff et al. 2003): corrects the method it measures.",
+}
+
+Key = tuple[str, str, str]  # (method, outcome, predictor)
+
+
+def standardized_coefficients(corr: np.ndarray, outcome: int, predictors: list[int]) -> np.ndarray:
+    """Standardized regression coefficients from a correlation matrix: beta = R_xx^-1 r_xy."""
+    rxx = corr[np.ix_(predictors, predictors)]
+    rxy = corr[predictors, outcome]
+    return np.linalg.solve(rxx, rxy)
+
+
+def disattenuate(corr: np.ndarray, reliability: np.ndarray) -> np.ndarray:
+    """Spearman (1904): r_ij / sqrt(rel_i rel_j) off the diagonal, 1 on it."""
+    d = np.sqrt(np.asarray(reliability, dtype=float))
+    out = corr / np.outer(d, d)
+    np.fill_diagonal(out, 1.0)
+    return out
+
+
+def marker_adjust(corr: np.ndarray, r_m: float, same: np.ndarray | None = None) -> np.ndarray:
+    """Lindell & Whitney (2001): (r - r_M) / (1 - r_M) off the diagonal; with ``same`` (a
+    boolean matrix), only where it is True: pairs from different sources share no method."""
+    out = (corr - r_m) / (1.0 - r_m)
+    if same is not None:
+        out = np.where(same, out, corr)
+    np.fill_diagonal(out, 1.0)
+    return out
+
+
+def _pd(m: np.ndarray) -> bool:
+    return bool(np.all(np.linalg.eigvalsh(m) > 1e-10))
+
+
+@dataclasses.dataclass
+class Estimate:
+    estimate: float | None
+    se: float | None = None
+    note: str = ""
+    status: str = "ok"
+    se_robust: float | None = None   # sandwich SE (full sample only; None where no rows back the model)
+
+
+class PathEstimator:
+    """Computes every path estimate from an item matrix (columns = ``self.items``).
+
+    Picklable, so bootstrap replicates can run in other processes; it carries the
+    full-sample fits as warm starts.
+    """
+
+    def __init__(self, design: Design, *, use_method_factor: str | None, method_loadings: str,
+                 use_measured: bool, r_m_rule: str = "smallest", time_limit: float = 60.0,
+                 n_starts: int = 4, seed: int = 0):
+        self.design = design
+        self.paths: list[Path] = list(design.paths)
+        self.path_names = path_constructs(design)
+        subst = [c.name for c in design.substantive]
+        self.score_names = subst + ([design.marker.name] if design.marker else [])
+        keep = set(self.path_names) | ({design.marker.name} if design.marker else set()) | (
+            {design.method.name} if design.method else set())
+        self.reduced = dataclasses.replace(
+            design, constructs={k: v for k, v in design.constructs.items() if k in keep})
+        self.items = list(design.items)
+        self.col = {it: i for i, it in enumerate(self.items)}
+        self.use_method_factor = use_method_factor  # "marker" | "plain" | None
+        self.method_loadings = method_loadings
+        self.use_measured = use_measured
+        self.r_m_rule = r_m_rule
+        self.time_limit, self.n_starts, self.seed = time_limit, n_starts, seed
+        self.warm: dict[str, FitResult] = {}
+        self.r_m_index: int | None = None  # which marker correlation gave the full sample's r_M
+        self.notes: list[str] = []
+        self.keys: list[Key] = [(m, p.outcome, x) for m in METHODS for p in self.paths for x in p.predictors]
+
+    # -- building blocks ------------------------------------------------------------------
+    def _fit(self, spec, data, compute_se: bool) -> FitResult:
+        prev = self.warm.get(spec.name)
+        if compute_se or prev is None:  # the full sample: several starts, standard errors
+            return fit_model(spec, data, time_limit=self.time_limit, n_starts=self.n_starts, seed=self.seed,
+                             compute_se=compute_se, start=prev)
+        if prev.status != "ok":
+            return prev  # not used on the full sample, so not in the replicates either
+        # A replicate is refitted once from the full-sample solution, within a budget scaled
+        # to that fit; one that does not come back proper counts as failed (fragile free
+        # method loadings, say) rather than being chased through more starts.
+        return refit(prev, data, **self._budget(prev))
+
+    def _budget(self, prev: FitResult) -> dict:
+        # The budget is counted in scoring steps, so a replicate's result does not depend on
+        # how busy the machine is (seconds did: a seeded bootstrap differed between a quiet
+        # and a loaded run); the time limit stays, far looser, only as a guard against hangs.
+        return {"max_iter": max(50, 3 * prev.iterations),
+                "time_limit": min(self.time_limit, max(5.0, 30 * prev.elapsed))}
+
+    def _item_data(self, X: np.ndarray) -> tuple[Moments | RawData, np.ndarray]:
+        """Model input for the items, and the item covariance for closed-form statistics."""
+        if np.isnan(X).any():
+            data: Moments | RawData = RawData(names=tuple(self.items), X=X)
+            cov = np.ma.cov(np.ma.masked_invalid(X), rowvar=False, bias=True).filled(np.nan)
+        else:
+            cov = np.cov(X, rowvar=False, bias=True)
+            data = Moments(names=tuple(self.items), cov=cov, n=X.shape[0])
+        return data, cov
+
+    def _scores(self, X: np.ndarray) -> tuple[np.ndarray, int, np.ndarray]:
+        cols = [[self.col[i] for i in self.design.constructs[c].items] for c in self.score_names]
+        with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            # a row without any answer to a scale (a second source without a row for it) has no score
+            warnings.simplefilter("ignore", RuntimeWarning)
+            s = np.column_stack([np.nanmean(X[:, c], axis=1) for c in cols])
+        s = s[~np.isnan(s).any(axis=1)]
+        return np.cov(s, rowvar=False, bias=True), s.shape[0], s
+
+    @staticmethod
+    def _rows_for(fit: FitResult, names: list[str], rows: np.ndarray) -> np.ndarray:
+        pos = {n: i for i, n in enumerate(names)}
+        return rows[:, [pos[n] for n in fit.spec.observed]]
+
+    # -- the estimates ------------------------------------------------------------------------
+    def estimate(self, X: np.ndarray, *, compute_se: bool = True) -> tuple[dict[Key, Estimate], dict]:
+        out: dict[Key, Estimate] = {}
+        fits: dict[str, FitResult] = {}
+        extra: dict[str, Any] = {"fits": fits}
+        data, icov = self._item_data(X)
+        scov, n_s, srows = self._scores(X)
+        score_cols = [score_name(c) for c in self.score_names]
+        sd = np.sqrt(np.diag(scov))
+        scorr = scov / np.outer(sd, sd)
+        sidx = {c: i for i, c in enumerate(self.score_names)}
+
+        # reliabilities: alpha from the item covariance, omega from each one-factor model
+        alpha, omega = {}, {}
+        for c in self.path_names:
+            idx = [self.col[i] for i in self.design.constructs[c].items]
+            sub = icov[np.ix_(idx, idx)]
+            if np.isnan(sub).any():
+                rows = X[:, idx][~np.isnan(X[:, idx]).any(axis=1)]
+                sub = np.cov(rows, rowvar=False, bias=True)
+            alpha[c] = alpha_from_cov(sub)
+            con = self.design.constructs[c]
+            if len(con.items) >= 3:
+                f = self._fit(single_factor_model(con), data, compute_se=False)
+                fits[f.spec.name] = f
+                if f.status == "ok":
+                    omega[c] = omega_total([f.est("load", c, i) for i in con.items],
+                                           [f.est("cov", i, i) for i in con.items])
+            if omega.get(c) is None:
+                omega[c] = alpha[c]  # two items: omega is not identified alone
+        extra["alpha"], extra["omega"] = alpha, omega
+
+        pn = self.path_names
+        score_moments = Moments(names=tuple(score_name(c) for c in self.score_names), cov=scov, n=n_s)
+        var = {c: scov[sidx[c], sidx[c]] for c in self.score_names}
+
+        def single(name: str, errors: dict[str, float], eq: list[Path] | None, moments: Moments):
+            spec = single_indicator_model(self.reduced, errors, name=name, equations=eq)
+            f = self._fit(spec, moments, compute_se)
+            fits[spec.name] = f
+            return f
+
+        robust_cache: dict[str, Any] = {}
+
+        def robust(f: FitResult, rows: np.ndarray | None, names: list[str]):
+            # the sandwich needs the rows the model was fitted to (not e.g. marker-adjusted moments)
+            if rows is None or f.spec.name in robust_cache:
+                return robust_cache.get(f.spec.name)
+            robust_cache[f.spec.name] = r = robust_se(f, self._rows_for(f, names, rows))
+            return r
+
+        def from_fit(method: str, f: FitResult, eq: Path, formula: dict[str, float] | None = None,
+                     rows: tuple[np.ndarray, list[str]] | None = None):
+            for x in eq.predictors:
+                if f.status not in ("ok",) and formula is None:
+                    out[(method, eq.outcome, x)] = Estimate(None, note=f"model status {f.status}", status=f.status)
+                    continue
+                est = formula[x] if formula is not None else f.std("reg", eq.outcome, x)
+                se = f.std_se("reg", eq.outcome, x) if compute_se and f.status == "ok" else None
+                se_r = None
+                if se is not None and rows is not None:
+                    r = robust(f, *rows)
+                    se_r = None if r is None else r.std_se_of("reg", eq.outcome, x)
+                    se_r = se_r if se_r is not None and math.isfinite(se_r) else None
+                out[(method, eq.outcome, x)] = Estimate(est, se, status=f.status, se_robust=se_r)
+
+        def spearman(method: str, corr: np.ndarray, rel: dict[str, float | None], moments: Moments,
+                     errors_scale: dict[str, float], rows: tuple[np.ndarray, list[str]] | None = None):
+            if any(rel[c] is None or rel[c] <= 0 for c in pn):
+                for eq in self.paths:
+                    for x in eq.predictors:
+                        out[(method, eq.outcome, x)] = Estimate(None, note="reliability not available",
+                                                                status="undefined")
+                return
+            pos = [sidx[c] for c in pn]
+            rc = disattenuate(corr[np.ix_(pos, pos)], np.array([rel[c] for c in pn]))
+            local = {c: i for i, c in enumerate(pn)}
+            for k, eq in enumerate(self.paths):
+                sub = [local[eq.outcome]] + [local[x] for x in eq.predictors]
+                if not _pd(rc[np.ix_(sub, sub)]):
+                    for x in eq.predictors:
+                        out[(method, eq.outcome, x)] = Estimate(
+                            None, note="the corrected correlations are not a valid correlation matrix "
+                                       "(a corrected correlation above 1)", status="undefined")
+                    continue
+                beta = standardized_coefficients(rc, local[eq.outcome], [local[x] for x in eq.predictors])
+                formula = dict(zip(eq.predictors, map(float, beta), strict=True))
+                f = single(f"{method}:{k}", {c: (1 - rel[c]) * errors_scale[c] for c in pn}, [eq], moments) \
+                    if compute_se else None
+                if f is None:
+                    for x in eq.predictors:
+                        out[(method, eq.outcome, x)] = Estimate(formula[x])
+                else:
+                    from_fit(method, f, eq, formula, rows)
+
+        score_rows = (srows, score_cols)
+        item_rows = (X, self.items)
+        # observed: each equation by OLS on the scale scores (single indicators without error)
+        for k, eq in enumerate(self.paths):
+            f = single(f"observed:{k}", {c: 0.0 for c in pn}, [eq], score_moments)
+            from_fit("observed", f, eq, rows=score_rows)
+
+        spearman("disattenuated", scorr, alpha, score_moments, var, score_rows)
+        spearman("disattenuated_omega", scorr, omega, score_moments, var, score_rows)
+
+        f = single("errors_in_variables", {c: (1 - omega[c]) * var[c] for c in pn}, None, score_moments)
+        for eq in self.paths:
+            from_fit("errors_in_variables", f, eq, rows=score_rows)
+
+        f = self._fit(latent_path_model(self.reduced), data, compute_se)
+        fits[f.spec.name] = f
+        for eq in self.paths:
+            from_fit("latent", f, eq, rows=item_rows)
+
+        # marker-adjusted: r_M from the marker's correlations with every substantive scale
+        if self.design.marker is not None:
+            m = sidx[self.design.marker.name]
+            # the marker shares the main file's method only: r_M from the main file's scales
+            rs = [scorr[m, sidx[c]] for c in self.score_names
+                  if c != self.design.marker.name and self.design.source_of(c) == MAIN]
+            if compute_se or self.r_m_index is None:  # the full sample chooses the source scale
+                self.r_m_index = r_m_source(rs, self.r_m_rule)
+            r_m = choose_r_m(rs, n_s, self.r_m_rule, index=self.r_m_index)
+            extra["r_m"] = r_m
+            src = np.array([self.design.source_of(c) for c in self.score_names])
+            adj = marker_adjust(scorr, r_m, src[:, None] == src[None, :])
+            spearman("marker_adjusted", adj, alpha,
+                     Moments(names=score_moments.names, cov=adj, n=n_s), {c: 1.0 for c in pn})
+        else:
+            self._absent(out, "marker_adjusted", "the design has no marker construct")
+
+        if self.use_method_factor:
+            f = self._method_factor_fit(data, compute_se)
+            fits[f.spec.name] = f
+            extra["method_factor_fit"] = f
+            for eq in self.paths:
+                from_fit("method_factor_adjusted", f, eq, rows=item_rows)
+        else:
+            self._absent(out, "method_factor_adjusted", "no method factor passed its identification checks")
+
+        if self.use_measured:
+            spec = method_path_model(self.reduced, measured_method_model(self.reduced))
+            f = self._fit(spec, data, compute_se)
+            fits[f.spec.name] = f
+            extra["measured_method_fit"] = f
+            for eq in self.paths:
+                from_fit("measured_method_adjusted", f, eq, rows=item_rows)
+        else:
+            why = "the design has no method construct" if self.design.method is None else \
+                "the measured-method model did not fit cleanly"
+            self._absent(out, "measured_method_adjusted", why)
+        return out, extra
+
+    def _method_factor_fit(self, data, compute_se: bool) -> FitResult:
+        def spec(loadings: str):
+            return method_path_model(self.reduced, method_factor_model(
+                self.reduced, use_marker=self.use_method_factor == "marker",
+                equal_loadings=loadings == "equal"))
+
+        s = spec(self.method_loadings)
+        at_zero = self.warm.get(without_method_factor(s).name)
+        if not compute_se and s.name not in self.warm and at_zero is not None:
+            # the full sample's method variance sat at its boundary: re-estimate it from there
+            start = {(p.op, p.lhs, p.rhs): float(v) for p, v in zip(at_zero.spec.params, at_zero.params["estimate"],
+                                                                    strict=True) if p.free}
+            start[("cov", METHOD, METHOD)] = 0.0
+            f = fit_model(s, data, time_limit=self._budget(at_zero)["time_limit"], n_starts=1, compute_se=False,
+                          start=start)
+        else:
+            f = self._fit(s, data, compute_se)
+        if f.status == "improper" and only_method_variance_negative(f):
+            # A negative method variance is what sampling error gives when the true one is zero;
+            # the ML estimate within the parameter space is then its boundary, variance 0: the
+            # same model without the method factor (Self & Liang 1987 on estimates at a boundary).
+            return self._boundary_fit(f, data, compute_se)
+        if compute_se and f.status != "ok" and self.method_loadings == "free":
+            # Free loadings that were proper in the measurement part can turn improper once
+            # the paths replace the trait correlations: fall back to equal loadings.
+            g = self._fit(spec("equal"), data, compute_se)
+            if g.status == "ok":
+                self.method_loadings = "equal"
+                self.notes.append("The free-loading method factor was improper in the path model; the "
+                                  "equal-loading method factor was used for the corrected paths.")
+                return g
+        return f
+
+    def _boundary_fit(self, f: FitResult, data, compute_se: bool) -> FitResult:
+        """``f`` refitted with its method variance fixed at zero, started from ``f``."""
+        spec = without_method_factor(f.spec)
+        prev = self.warm.get(spec.name)
+        if not compute_se and prev is not None and prev.status == "ok":
+            return refit(prev, data, **self._budget(prev))
+        start = {(p.op, p.lhs, p.rhs): float(v) for p, v in zip(f.spec.params, f.params["estimate"], strict=True)
+                 if p.free and not (p.op == "cov" and p.lhs == METHOD)}
+        g = fit_model(spec, data, time_limit=self.time_limit if compute_se else self._budget(f)["time_limit"],
+                      n_starts=self.n_starts if compute_se else 1,
+                      seed=self.seed, compute_se=compute_se, start=start)
+        if compute_se and g.status == "ok":
+            self.notes.append("The method variance was estimated below zero, which is what sampling error gives "
+                              "when there is none; the method-factor estimate is taken at its lower limit, zero "
+                              "(the same model without the method factor).")
+        return g
+
+    def _absent(self, out: dict, method: str, why: str) -> None:
+        for eq in self.paths:
+            for x in eq.predictors:
+                out[(method, eq.outcome, x)] = Estimate(None, note=why, status="absent")
+
+    def vector(self, est: dict[Key, Estimate]) -> np.ndarray:
+        return np.array([np.nan if est[k].estimate is None else est[k].estimate for k in self.keys])
+
+    def __call__(self, data: np.ndarray, idx: np.ndarray) -> np.ndarray:
+        """Bootstrap statistic: every estimate on the rows ``data[idx]``."""
+        est, _ = self.estimate(data[idx], compute_se=False)
+        return self.vector(est)
+
+
+def wald(est: float | None, se: float | None, confidence: float) -> tuple[list | None, float | None]:
+    if est is None or se is None or not math.isfinite(se) or se <= 0:
+        return None, None
+    z = stats.norm.ppf(0.5 + confidence / 2)
+    return [est - z * se, est + z * se], float(2 * stats.norm.sf(abs(est / se)))

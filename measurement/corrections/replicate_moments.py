@@ -1,0 +1,157 @@
+"""Bootstrap and jackknife replicates as weighted cross-products instead of resampled rows.
+
+A case-resampling replicate draws n rows with replacement; its sample moments depend only on
+how often each row was drawn, its multinomial count vector ``w`` (sum n): the mean is
+``X'w / n`` and the covariance (divisor n) ``X' diag(w) X / n - mean mean'`` (Efron &
+Tibshirani 1993, *An Introduction to the Bootstrap*, ch. 6 and 21, resampling as reweighting).
+A jackknife deletion is the same with 0/1 weights. So a statistic that needs only the
+moments of complete rows is computed without materialising the resampled rows.
+
+For a batch of ``BATCH`` replicates the cross-products of every pair of columns are one
+matrix product ``W (b x n) @ F (n x (p + p(p+1)/2))``, F holding the centred columns and
+their pairwise products (the upper triangle; the covariance is symmetric), formed one block
+of ``ROW_BLOCK`` rows at a time so memory stays bounded. The columns are centred at the full
+sample's means first, so the products do not lose digits to large means (the covariance is
+shift-invariant).
+
+Reproducibility: batches are fixed runs of replicate numbers (``BATCH`` r apart; a short last
+batch is padded with zero weights, so every product has the same shape) and rows enter in
+fixed blocks, single-threaded, so a replicate's matrix is the same bit for bit whatever the
+chunk it is computed in, the executor, the number of workers or of replicates.
+
+Not for incomplete rows: FIML fits the raw rows, which weights would need the fitting
+engine to accept (it does not), so the bootstrap resamples rows whenever data have a missing
+cell.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+
+import numpy as np
+
+from samesource.corrections.paths import PathEstimator
+
+BATCH = 32  # replicates per matrix product (and the unit chunks are rounded to)
+ROW_BLOCK = 4096  # rows per block of pair products
+WEIGHT_BYTES = 256 * 2**20  # weights held at once; F is formed once per pass (at 100,000 rows: 320 replicates)
+
+
+@dataclass(frozen=True)
+class ReplicateMoments:
+    """The moments of one replicate: ``n`` rows (sum of its weights), means and covariance
+    with divisor n (as ``np.cov(..., bias=True)`` of the resampled rows)."""
+
+    n: int
+    mean: np.ndarray  # (p,)
+    cov: np.ndarray  # (p, p)
+
+
+def weighted_moments(X: np.ndarray, count: int,
+                     weights: Callable[[int, int], np.ndarray]) -> list[ReplicateMoments]:
+    """The moments of ``count`` weighted replicates of the complete rows ``X`` (n x p);
+    ``weights(first, stop)`` gives the weight rows of replicates first..stop-1 ((stop -
+    first) x n: draw counts, or 0/1 for deletions). Weights are asked for in passes of at
+    most :data:`WEIGHT_BYTES`; each pass forms the pair products once and multiplies them by
+    :data:`BATCH` weight rows at a time (see the module docstring)."""
+    X = np.asarray(X, dtype=float)
+    n, p = X.shape
+    center = X.mean(axis=0)
+    iu, ju = np.triu_indices(p)
+    sums = np.zeros((count, p + iu.size))
+    totals = np.zeros(count)
+    per_pass = max(BATCH, (WEIGHT_BYTES // (8 * max(n, 1))) // BATCH * BATCH)
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):  # the same sums in every process
+        for first in range(0, count, per_pass):
+            stop = min(first + per_pass, count)
+            W = np.asarray(weights(first, stop), dtype=float)
+            if W.shape != (stop - first, n):
+                raise ValueError(f"weights are {W.shape}, expected ({stop - first}, {n})")
+            totals[first:stop] = W.sum(axis=1)
+            for s, F in _pair_blocks(X, center, iu, ju):
+                for b in range(first, stop, BATCH):
+                    e = min(b + BATCH, stop)
+                    part = W[b - first:e - first, s:s + F.shape[0]]
+                    if e - b < BATCH:  # a short last batch, padded: the same product shape always
+                        part = np.vstack([part, np.zeros((BATCH - (e - b), part.shape[1]))])
+                    sums[b:e] += (part @ F)[:e - b]
+    out = []
+    for r in range(count):
+        total = float(totals[r])
+        m = sums[r, :p] / total
+        cross = np.empty((p, p))
+        cross[iu, ju] = sums[r, p:] / total
+        cross[ju, iu] = cross[iu, ju]
+        out.append(ReplicateMoments(n=int(round(total)), mean=center + m, cov=cross - np.outer(m, m)))
+    return out
+
+
+def _pair_blocks(X: np.ndarray, center: np.ndarray, iu: np.ndarray, ju: np.ndarray
+                 ) -> Iterator[tuple[int, np.ndarray]]:
+    p = X.shape[1]
+    for s in range(0, X.shape[0], ROW_BLOCK):
+        blk = X[s:s + ROW_BLOCK] - center
+        F = np.empty((blk.shape[0], p + iu.size))
+        F[:, :p] = blk
+        np.multiply(blk[:, iu], blk[:, ju], out=F[:, p:])
+        yield s, F
+
+
+def draw_counts(rows: Callable[[int], np.ndarray], replicates: range, n: int) -> np.ndarray:
+    """Multinomial draw counts of the given replicates (one row each): the rows replicate r
+    draws, ``rows(r)``, counted, so the weights stand for the very same resample."""
+    W = np.empty((len(replicates), n))
+    for i, r in enumerate(replicates):
+        W[i] = np.bincount(rows(r), minlength=n)
+    return W
+
+
+def moment_form(statistic):
+    """``statistic`` as an object with ``from_moments(ReplicateMoments)``, or None when it
+    needs the rows themselves. A statistic may offer ``from_moments`` itself; the path
+    estimator gets it here (it computes everything from the item covariance matrix and the
+    number of rows when no cell is missing)."""
+    if callable(getattr(statistic, "from_moments", None)):
+        return statistic
+    if type(statistic) is PathEstimator:
+        out = MomentPathEstimator.__new__(MomentPathEstimator)
+        out.__dict__.update(statistic.__dict__)
+        return out
+    return None
+
+
+class MomentPathEstimator(PathEstimator):
+    """The path estimator fed a replicate's moments instead of its rows.
+
+    Replaces only the two places where :class:`~samesource.corrections.paths.PathEstimator` reads its
+    item matrix (the model input with the item covariance, and the scale-score covariance);
+    a scale score is the mean of its items, so its covariance is ``A S A'`` with A the
+    averaging weights. tests/test_bootstrap.py checks it against the estimator on the
+    resampled rows."""
+
+    def _item_data(self, X):
+        if isinstance(X, ReplicateMoments):
+            from samesource.engine.fitting import Moments
+
+            return Moments(names=tuple(self.items), cov=X.cov, n=X.n), X.cov
+        return super()._item_data(X)
+
+    def _scores(self, X):
+        if isinstance(X, ReplicateMoments):
+            A = np.zeros((len(self.score_names), len(self.items)))
+            for k, c in enumerate(self.score_names):
+                cols = [self.col[i] for i in self.design.constructs[c].items]
+                A[k, cols] = 1.0 / len(cols)
+            return A @ X.cov @ A.T, X.n, None   # no rows: replicates need no robust SEs
+        return super()._scores(X)
+
+    def from_moments(self, m: ReplicateMoments) -> np.ndarray:
+        est, _ = self.estimate(m, compute_se=False)
+        return self.vector(est)
+
+
+__all__ = ["ReplicateMoments", "weighted_moments", "draw_counts", "moment_form",
+           "MomentPathEstimator", "BATCH", "ROW_BLOCK"]

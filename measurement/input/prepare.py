@@ -1,0 +1,442 @@
+"""Turning a loaded table into numeric item data, as the study design describes it.
+
+:func:`prepare` takes the design's item columns, reads every cell as a number (blank and
+missing-code cells become NaN), checks the answers against the response scale, refuses
+items that cannot be analysed (constant or empty), and recodes reverse-keyed items. Every
+refusal names the file, the row as the user sees it, and the column.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import numbers
+import re
+from collections import Counter
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from samesource.errors import DataError, DesignError
+from samesource.input.design import Design, answer_key, check_columns, did_you_mean
+from samesource.input.loading import (  # missing words: read as blank, with a warning
+    MISSING_WORDS,
+    LoadedTable,
+)
+
+_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
+_COMMA_NUMBER = re.compile(r"[+-]?\d*,\d+")
+
+
+@dataclass
+class PreparedData:
+    """Item answers ready for analysis, and what was done to get them."""
+
+    items: pd.DataFrame  # float64, design.items in design order, index = user row numbers
+    ids: pd.Series | None
+    groups: pd.Series | None  # group labels as strings (NaN where missing)
+    scale_min: float
+    scale_max: float
+    scale_source: str  # "design" or "data"
+    n_rows: int
+    missing_cells: int
+    warnings: list[dict]  # {"code", "message"}: the loader's and this step's
+    table: LoadedTable  # where the data came from (format, encoding, ...)
+    links: tuple = ()  # sources.SourceLink per second source joined on ids (measurement/input/sources.py)
+
+
+def _num(v: float) -> str:
+    v = float(v)
+    if v.is_integer() and abs(v) < 1e15:
+        return str(int(v))
+    return repr(v)
+
+
+def _show(v: Any) -> str:
+    s = str(v)
+    return repr(s if len(s) <= 40 else s[:37] + "...")
+
+
+def _rows_text(label: str, rows: list[int], limit: int = 5) -> str:
+    shown = [str(r) for r in rows[:limit]]
+    more = ", ..." if len(rows) > limit else ""
+    if len(rows) == 1:
+        return f"{label} {shown[0]}"
+    if len(rows) <= limit:
+        return f"{label}s " + ", ".join(shown[:-1]) + f" and {shown[-1]}"
+    return f"{label}s " + ", ".join(shown) + more
+
+
+def _read_column(s: pd.Series, labels: dict[str, float | None] | None = None
+                 ) -> tuple[np.ndarray, np.ndarray, Counter]:
+    """Numbers of one item column, a mask of cells that are not numbers, missing words.
+
+    ``labels`` (keys from :func:`~samesource.input.design.answer_key`) turn answer texts into
+    numbers; a text labelled None is a missing answer (counted with the missing words)."""
+    n = len(s)
+    words: Counter = Counter()
+    if pd.api.types.is_bool_dtype(s.dtype):
+        vals = np.full(n, np.nan)
+        return vals, s.notna().to_numpy(bool), words
+    if pd.api.types.is_numeric_dtype(s.dtype):
+        vals = s.to_numpy(dtype=float, na_value=np.nan)
+        return vals, np.isinf(vals), words
+    if pd.api.types.is_datetime64_any_dtype(s.dtype) or isinstance(s.dtype, pd.PeriodDtype):
+        return np.full(n, np.nan), s.notna().to_numpy(bool), words
+
+    vals = np.full(n, np.nan)
+    bad = np.zeros(n, dtype=bool)
+    for i, v in enumerate(s.to_numpy(dtype=object)):
+        if v is None:
+            continue
+        if isinstance(v, bool | np.bool_):
+            bad[i] = True
+        elif isinstance(v, numbers.Real):
+            f = float(v)
+            if f != f:
+                continue
+            if np.isinf(f):
+                bad[i] = True
+            else:
+                vals[i] = f
+        elif isinstance(v, str):
+            t = v.strip()
+            if not t:
+                continue
+            if _NUMBER.fullmatch(t):
+                f = float(t)
+                if np.isinf(f):
+                    bad[i] = True
+                else:
+                    vals[i] = f
+            elif labels and answer_key(t) in labels:
+                number = labels[answer_key(t)]
+                if number is None:
+                    words[t] += 1
+                else:
+                    vals[i] = number
+            elif t.lower() in MISSING_WORDS:
+                words[t] += 1
+            else:
+                bad[i] = True
+        elif v is pd.NaT or (not isinstance(v, _dt.date | _dt.time | _dt.timedelta)
+                             and _scalar_na(v)):
+            continue
+        else:
+            bad[i] = True  # dates, times and anything else a reader may hand over
+    return vals, bad, words
+
+
+def _scalar_na(v: Any) -> bool:
+    try:
+        return bool(pd.isna(v))
+    except (TypeError, ValueError):
+        return False
+
+
+def _what_is_wrong(v: Any) -> str:
+    if isinstance(v, bool | np.bool_):
+        return "is a TRUE/FALSE value, not a number"
+    if isinstance(v, _dt.date | _dt.time | _dt.timedelta | pd.Timestamp | np.datetime64):
+        return "is a date or time, not a number"
+    if isinstance(v, numbers.Real):
+        return "is not a finite number"
+    if isinstance(v, str):
+        t = v.strip()
+        if t.startswith("="):
+            return ("is a formula with no saved result (open and save the workbook in a "
+                    "spreadsheet program so that its results are stored)")
+        if _COMMA_NUMBER.fullmatch(t):
+            return "is written with a decimal comma; write it with a decimal point"
+        if _NUMBER.fullmatch(t):
+            return "is not a finite number"
+    return "is not a number"
+
+
+def _text_advice(s: pd.Series, bad: np.ndarray, labels: dict[str, float | None]) -> str | None:
+    """For a column whose bad cells are answer texts: how to map them with answer_labels."""
+    texts = [str(v).strip() for v in s[bad].to_numpy(dtype=object)
+             if isinstance(v, str) and not _NUMBER.fullmatch(v.strip())
+             and not _COMMA_NUMBER.fullmatch(v.strip()) and not v.strip().startswith("=")]
+    if not texts:
+        return None
+    distinct = list(dict.fromkeys(texts))
+    shown = ", ".join(_show(t) for t in distinct[:8]) + (", ..." if len(distinct) > 8 else "")
+    if labels:
+        hint = did_you_mean(answer_key(distinct[0]), list(labels))
+        return (f"The design's answer_labels do not map {shown}{hint}: add them to answer_labels "
+                "(a text meaning no answer may map to null, or to a number listed in missing_codes)")
+    return (f"The answers in this column are texts ({shown}): map them to numbers with "
+            "answer_labels in the design, for example {\"Strongly disagree\": 1, ..., "
+            "\"Strongly agree\": 5} (samesource draft-design proposes it for scales it "
+            "recognises); a text meaning no answer may map to null, or to a number listed in "
+            "missing_codes")
+
+
+def _non_numeric_error(table: LoadedTable, col: str, s: pd.Series, bad: np.ndarray,
+                       others: list[str], labels: dict[str, float | None] | None = None
+                       ) -> DataError:
+    idx = np.flatnonzero(bad)
+    first = idx[0]
+    rows = table.row_numbers
+    value = s.iloc[first]
+    label = table.row_label
+    rest = [int(rows[i]) for i in idx[1:]]
+    if rest:
+        more = (f" {len(rest)} other cell(s) in this column are not numbers either "
+                f"({_rows_text(label, rest)}).")
+    else:
+        more = " It is the only such cell in this column."
+    if others:
+        more += " Other items with cells that are not numbers: " + ", ".join(others[:5]) + (
+            ", ..." if len(others) > 5 else "") + "."
+    advice = _text_advice(s, bad, labels or {})
+    if advice:
+        return DataError(f"the value {_show(value)} {_what_is_wrong(value)}.{more} {advice}",
+                         file=table.source, row=int(rows[first]), column=col, code="text_answers")
+    return DataError(
+        f"the value {_show(value)} {_what_is_wrong(value)}.{more} Item answers "
+        "must be numbers: fix the value, or, if it stands for a missing answer, leave the "
+        "cell blank or use a numeric code and list that code in the design's missing_codes",
+        file=table.source, row=int(rows[first]), column=col)
+
+
+def _scale_error(table: LoadedTable, col: str, vals: np.ndarray, out: np.ndarray,
+                 lo: float, hi: float, others: list[str]) -> DataError:
+    idx = np.flatnonzero(out)
+    first = idx[0]
+    v = float(vals[first])
+    rows = table.row_numbers
+    counts = Counter(_num(x) for x in vals[idx])
+    listed = ", ".join(f"{k} ({c}x)" for k, c in counts.most_common(6))
+    msg = (f"the value {_num(v)} is outside the response scale {_num(lo)} to "
+           f"{_num(hi)} given in the design. ")
+    if len(idx) > 1:
+        msg += f"This column has {len(idx)} values outside the scale: {listed}. "
+    if others:
+        msg += "Other items with values outside it: " + ", ".join(others[:5]) + (
+            ", ..." if len(others) > 5 else "") + ". "
+    if v.is_integer():
+        msg += (f"If {_num(v)} is a code for a missing answer, add it to missing_codes in the "
+                "design; otherwise correct the value, or the design's response_scale")
+    else:
+        msg += "Correct the value, or the design's response_scale"
+    return DataError(msg, file=table.source, row=int(rows[first]), column=col)
+
+
+def _label(v: Any) -> str | None:
+    """A group or id value as text; None when missing."""
+    if v is None or _scalar_na(v):
+        return None
+    if isinstance(v, float | np.floating) and float(v).is_integer():
+        return str(int(v))
+    if isinstance(v, bool | np.bool_):
+        return "TRUE" if v else "FALSE"
+    t = str(v).strip()
+    return t or None
+
+
+def prepare(table: LoadedTable, design: Design) -> PreparedData:
+    """Numeric item data for ``design`` from ``table``; bad cells raise :class:`DataError`."""
+    check_columns(design, [str(c) for c in table.frame.columns], file=where_read(table),
+                  other_sheets={k: v for k, v in table.sheet_columns.items() if k != table.sheet})
+    frame = table.frame
+    items = design.items
+    n = len(frame)
+    index = pd.Index(np.asarray(table.row_numbers, dtype=np.int64), name=table.row_label)
+    notes: list[dict] = [dict(w) for w in table.warnings]
+
+    matrix = np.empty((n, len(items)), dtype=float)
+    bad_cols: list[tuple[str, np.ndarray]] = []
+    words: Counter = Counter()
+    for j, col in enumerate(items):
+        vals, bad, w = _read_column(frame[col], design.labels_for(col))
+        matrix[:, j] = vals
+        words.update(w)
+        if bad.any():
+            bad_cols.append((col, bad))
+    if bad_cols:
+        col, bad = bad_cols[0]
+        raise _non_numeric_error(table, col, frame[col], bad, [c for c, _ in bad_cols[1:]],
+                                 design.labels_for(col))
+    if words:
+        listed = ", ".join(f"'{k}' ({c}x)" for k, c in words.most_common())
+        notes.append({"code": "text_missing_markers", "message": (
+            f"item cells holding {listed} were read as missing answers")})
+
+    if design.missing_codes:
+        matrix[np.isin(matrix, np.asarray(design.missing_codes, dtype=float))] = np.nan
+
+    if design.scale_min is not None and design.scale_max is not None:
+        lo, hi = float(design.scale_min), float(design.scale_max)
+        with np.errstate(invalid="ignore"):
+            outside = (matrix < lo) | (matrix > hi)
+        if outside.any():
+            cols = [j for j in range(len(items)) if outside[:, j].any()]
+            j = cols[0]
+            raise _scale_error(table, items[j], matrix[:, j], outside[:, j], lo, hi,
+                               [items[k] for k in cols[1:]])
+        source = "design"
+    else:
+        _refuse_values_apart(table, items, matrix)
+        lo = hi = float("nan")
+        source = "data"
+
+    for j, col in enumerate(items):
+        present = matrix[:, j][~np.isnan(matrix[:, j])]
+        if present.size == 0:
+            raise DataError(
+                f"item '{col}' has no answers (every cell is blank or a missing code); drop it "
+                "from the design, or check that this is the right column",
+                file=table.source, column=col)
+        if np.all(present == present[0]):
+            some = " that has an answer" if present.size < n else ""
+            raise DataError(
+                f"item '{col}' has the same answer ({_num(present[0])}) in every "
+                f"{table.row_label}{some}, so it carries no information; drop it from the "
+                "design", file=table.source, column=col)
+
+    reverse = [i for c in design.constructs.values() for i in c.reverse]
+    if source == "data":
+        lo, hi = float(np.nanmin(matrix)), float(np.nanmax(matrix))
+        rev = (f" Reverse-keyed items ({', '.join(reverse)}) were recoded with it as "
+               f"{_num(lo + hi)} - x." if reverse else "")
+        notes.append({"code": "scale_inferred", "message": (
+            f"the design gives no response_scale, so the scale was taken from the data as "
+            f"{_num(lo)} to {_num(hi)} (the lowest and highest answers over all items).{rev} "
+            "Add response_scale to the design if the scale is wider than the answers given")})
+    for item in reverse:
+        j = items.index(item)
+        matrix[:, j] = lo + hi - matrix[:, j]
+
+    empty_rows = np.flatnonzero(np.isnan(matrix).all(axis=1)) if items else np.array([])
+    if len(empty_rows):
+        rows = [int(table.row_numbers[i]) for i in empty_rows]
+        notes.append({"code": "rows_without_answers", "message": (
+            f"{len(rows)} {table.row_label}(s) have no answer to any item "
+            f"({_rows_text(table.row_label, rows)}); they are kept, and handled with the other "
+            "missing data")})
+
+    ids = groups = None
+    if design.id_column:
+        ids = pd.Series(frame[design.id_column].to_numpy(dtype=object), index=index,
+                        name=design.id_column, dtype=object)
+        _check_ids(ids, table, design.id_column, notes)
+    if design.group_column:
+        labels = [_label(v) for v in frame[design.group_column].to_numpy(dtype=object)]
+        groups = pd.Series([np.nan if v is None else v for v in labels], index=index,
+                           name=design.group_column, dtype=object)
+        missing = sum(v is None for v in labels)
+        if missing:
+            rows = [int(r) for r, v in zip(table.row_numbers, labels, strict=True) if v is None]
+            notes.append({"code": "missing_groups", "message": (
+                f"{missing} {table.row_label}(s) have no value in the group column "
+                f"'{design.group_column}' ({_rows_text(table.row_label, rows)}); they cannot "
+                "be placed in a group")})
+
+    items_frame = pd.DataFrame(matrix, columns=pd.Index(items, dtype=object), index=index,
+                               dtype="float64")
+    return PreparedData(items=items_frame, ids=ids, groups=groups, scale_min=lo, scale_max=hi,
+                        scale_source=source, n_rows=n,
+                        missing_cells=int(np.isnan(matrix).sum()), warnings=notes, table=table)
+
+
+def where_read(table: LoadedTable) -> str:
+    """The file, and for a workbook the sheet read: "survey.xlsx (sheet 'Responses')"."""
+    return f"{table.source} (sheet '{table.sheet}')" if table.sheet else table.source
+
+
+def standing_apart(values: np.ndarray) -> tuple[list[float], tuple[float, float] | None]:
+    """Answer values that stand apart from the rest, as codes for "no answer" do, and the
+    range of the others (None when there are no answers).
+
+    Rules (common practice, see docs/design-file.md): beside answers of 1 or more, or more
+    than 2 below the lowest answer of 0 or more, negative values stand apart (-1, -9, -99;
+    not the -3 to 3 of a scale with a middle of 0); going up from the lowest answer, a value
+    more than 2 above the next lower one starts the values apart (9 beside 1 to 5); a value
+    written with nines alone (9, 99, 999) stands apart when the value one below it never
+    occurs (9 beside 1 to 7, not 9 on a 1 to 9 scale). Whole-number answers only, and at most
+    15 different answers besides those set apart: decimals or a wide range (a slider from 0
+    to 100) mean a scale of another kind, and nothing is set apart.
+    """
+    v = np.asarray(values, dtype=float)
+    v = v[~np.isnan(v)]
+    if v.size == 0:
+        return [], None
+    distinct = sorted(set(v.tolist()))
+    if not all(float(x).is_integer() for x in distinct):
+        return [], (distinct[0], distinct[-1])
+    apart: list[float] = []
+    core = distinct
+    low = [x for x in distinct if x < 0]
+    high = [x for x in distinct if x >= 0]
+    if low and high and (high[0] >= 1 or high[0] - low[-1] > 2):
+        apart += low
+        core = high
+    wide = [x for x in core if not (x >= 9 and set(str(int(x))) == {"9"})]
+    if len(wide) > 15:  # a wide scale (a slider): gaps are no sign of codes
+        return sorted(apart), (core[0], core[-1])
+    kept = [core[0]]
+    for x in core[1:]:
+        if x - kept[-1] > 2:
+            apart += [y for y in core if y >= x]
+            break
+        kept.append(x)
+    present = set(kept)
+    nines = [x for x in kept if x >= 9 and set(str(int(x))) == {"9"} and x - 1 not in present]
+    if nines and len(kept) > len(nines) + 1:
+        apart += nines
+        kept = [x for x in kept if x not in nines]
+    return sorted(set(apart)), (kept[0], kept[-1])
+
+
+def _refuse_values_apart(table: LoadedTable, items: list[str], matrix: np.ndarray) -> None:
+    """With no response_scale, codes such as 99 would become the top of the scale: refuse."""
+    apart, core = standing_apart(matrix.ravel())
+    if not apart or core is None:
+        return
+    counts = []
+    for code in apart[:6]:
+        cols = [items[j] for j in range(len(items)) if (matrix[:, j] == code).any()]
+        n = int((matrix == code).sum())
+        counts.append(f"{_num(code)} ({n}x, in {', '.join(cols[:3])}{', ...' if len(cols) > 3 else ''})")
+    codes = ", ".join(_num(c) for c in apart)
+    raise DesignError(
+        f"the design gives no response_scale, and the answers hold values that stand apart from "
+        f"the others ({_num(core[0])} to {_num(core[1])}): {'; '.join(counts)}. Taken as answers they "
+        f"would stretch the scale to {_num(min(apart + [core[0]]))} to {_num(max(apart + [core[1]]))}. "
+        f"If they are codes for no answer, add \"missing_codes\": [{codes}] to the design, and give "
+        f"the answer range, such as \"response_scale\": {{\"min\": {_num(core[0])}, \"max\": "
+        f"{_num(core[1])}}}", field="response_scale", file=table.source, code="values_apart")
+
+
+def _check_ids(ids: pd.Series, table: LoadedTable, col: str, notes: list[dict]) -> None:
+    labels = [_label(v) for v in ids.to_numpy(dtype=object)]
+    missing = sum(v is None for v in labels)
+    if missing:
+        notes.append({"code": "missing_ids", "message": (
+            f"{missing} {table.row_label}(s) have no value in the id column '{col}'")})
+    counts = Counter(v for v in labels if v is not None)
+    repeated = [v for v, c in counts.items() if c > 1]
+    if repeated:
+        first = repeated[0]
+        where = [int(r) for r, v in zip(table.row_numbers, labels, strict=True) if v == first]
+        n_rows = sum(counts[v] for v in repeated)
+        notes.append({"code": "duplicate_ids", "message": (
+            f"{len(repeated)} id value(s) in column '{col}' appear more than once ({n_rows} "
+            f"{table.row_label}s in all; for example {_show(first)} in "
+            f"{_rows_text(table.row_label, where)}); check for respondents entered twice")})
+
+
+def numeric_columns(table: LoadedTable) -> list[str]:
+    """Columns whose filled cells all read as numbers (by the item rules), in file order.
+
+    For drafting a design: these are the columns that could be items.
+    """
+    out = []
+    for col in table.frame.columns:
+        vals, bad, _ = _read_column(table.frame[col])
+        if not bad.any() and not np.isnan(vals).all():
+            out.append(str(col))
+    return out

@@ -1,0 +1,1 @@
+"""Every common-method check, the assumptions behind each correction, the one verdict."""

@@ -1,0 +1,1 @@
+"""report.json, the tables, report.html and brief.html (templates/), the text summary."""

@@ -1,0 +1,261 @@
+"""Team-nested surveys: agreement, within- and between-team paths, and a split-team
+cross-source estimate that individual-level common-method variance cannot produce.
+
+No group's numbers are ever returned for a group smaller than the minimum size; pooled
+statistics (ICCs, medians, team-level regressions) use every group.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from samesource.corrections.paths import disattenuate, standardized_coefficients
+
+# --- Agreement and reliability of team means ---------------------------------------------
+
+@dataclass(frozen=True)
+class ICCResult:
+    icc1: float | None
+    icc2: float | None
+    msb: float
+    msw: float
+    n_groups: int
+    n0: float  # the ANOVA's average group size for unequal groups
+
+
+def icc_oneway(values: np.ndarray, groups: np.ndarray) -> ICCResult:
+    """ICC(1) and ICC(2) from a one-way random-effects ANOVA (Bliese 2000; Shrout & Fleiss
+    1979). With unequal group sizes the group size in ICC(1) is the ANOVA's
+    n0 = (N - sum n_j^2 / N) / (J - 1).
+
+    ICC(1) = (MSB - MSW) / (MSB + (n0 - 1) MSW): the share of variance between groups.
+    ICC(2) = (MSB - MSW) / MSB: the reliability of the group means.
+    """
+    v = np.asarray(values, dtype=float)
+    g = np.asarray(groups)
+    ok = ~np.isnan(v)
+    v, g = v[ok], g[ok]
+    codes, inv = np.unique(g, return_inverse=True)
+    J, N = len(codes), len(v)
+    n_j = np.bincount(inv)
+    means = np.bincount(inv, weights=v) / n_j
+    grand = v.mean()
+    if J < 2 or N - J < 1:
+        return ICCResult(None, None, float("nan"), float("nan"), J, float("nan"))
+    msb = float(np.sum(n_j * (means - grand) ** 2) / (J - 1))
+    msw = float(np.sum((v - means[inv]) ** 2) / (N - J))
+    n0 = float((N - np.sum(n_j ** 2) / N) / (J - 1))
+    denom1 = msb + (n0 - 1) * msw
+    icc1 = (msb - msw) / denom1 if denom1 > 0 else None
+    icc2 = (msb - msw) / msb if msb > 0 else None
+    return ICCResult(icc1, icc2, msb, msw, J, n0)
+
+
+def spearman_brown(icc1: float, n: float) -> float:
+    """Reliability of a mean of n raters from ICC(1) (Spearman-Brown; Bliese 2000, eq. 5)."""
+    return n * icc1 / (1 + (n - 1) * icc1)
+
+
+def rwg_j(items: np.ndarray, n_options: int) -> float | None:
+    """Within-group agreement on a J-item scale against a uniform null (James, Demaree &
+    Wolf 1984): rwg(J) = J(1 - s2/e) / (J(1 - s2/e) + s2/e), with s2 the mean of the item
+    variances within the group and e = (A^2 - 1)/12 the variance of a uniform null over A
+    options. Values below 0 (more disagreement than the null) are set to 0, as LeBreton &
+    Senter (2008) recommend. None for fewer than 2 respondents."""
+    x = np.asarray(items, dtype=float)
+    x = x[~np.isnan(x).any(axis=1)]
+    if x.shape[0] < 2:
+        return None
+    J = x.shape[1]
+    s2 = float(np.mean(np.var(x, axis=0, ddof=1)))
+    e = (n_options ** 2 - 1) / 12.0
+    q = s2 / e
+    if q >= 1:
+        return 0.0
+    return float(J * (1 - q) / (J * (1 - q) + q))
+
+
+# --- Within and between ------------------------------------------------------------------
+
+def _ols(y: np.ndarray, X: np.ndarray, clusters: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """OLS coefficients and their covariance: classical, or cluster-robust (CR1: Liang & Zeger
+    1986, with the small-sample factor G/(G-1) (N-1)/(N-K) that statsmodels also uses)."""
+    XtX_inv = np.linalg.pinv(X.T @ X)
+    b = XtX_inv @ X.T @ y
+    e = y - X @ b
+    n, k = X.shape
+    if clusters is None:
+        return b, XtX_inv * float(e @ e) / (n - k)
+    codes, inv = np.unique(clusters, return_inverse=True)
+    G = len(codes)
+    scores = np.zeros((G, k))
+    np.add.at(scores, inv, X * e[:, None])
+    meat = scores.T @ scores
+    c = G / (G - 1) * (n - 1) / (n - k)
+    return b, c * XtX_inv @ meat @ XtX_inv
+
+
+def within_between(y: np.ndarray, X: np.ndarray, groups: np.ndarray) -> dict | None:
+    """Within- and between-team coefficients of y on the columns of X by group-mean centring,
+    and the test of whether they differ (Mundlak 1978): regress y on X and the team means of
+    X; the coefficients of the means are between minus within, tested with cluster-robust
+    standard errors. When they differ, the predictors correlate with team effects, and a
+    random-effects estimate that pools the two is biased. None with fewer than k + 3 teams of
+    two or more members."""
+    g = np.asarray(groups)
+    codes, inv = np.unique(g, return_inverse=True)
+    n_j = np.bincount(inv)
+
+    def gmean(a: np.ndarray) -> np.ndarray:
+        return np.stack([np.bincount(inv, weights=a[:, j]) / n_j for j in range(a.shape[1])], axis=1)
+
+    k = X.shape[1]
+    if int((n_j >= 2).sum()) < k + 3:
+        return None  # too few teams with two or more members for a between-team regression
+    Xm, ym = gmean(X), gmean(y[:, None])[:, 0]
+    Xw, yw = X - Xm[inv], y - ym[inv]
+    bw, vw = _ols(yw, Xw, clusters=g)
+    keep = n_j >= 2
+    Xb = np.column_stack([np.ones(keep.sum()), Xm[keep]])
+    bb, vb = _ols(ym[keep], Xb)
+    Z = np.column_stack([np.ones(len(y)), X, Xm[inv]])
+    bz, vz = _ols(y, Z, clusters=g)
+    d, vd = bz[1 + k:], vz[1 + k:, 1 + k:]
+    wald = float(d @ np.linalg.pinv(vd) @ d)
+    sw = Xw.std(axis=0, ddof=1) / yw.std(ddof=1)
+    sb = Xm[keep].std(axis=0, ddof=1) / ym[keep].std(ddof=1)
+    return {
+        "within": {"b": bw, "se": np.sqrt(np.diag(vw)), "std": bw * sw},
+        "between": {"b": bb[1:], "se": np.sqrt(np.diag(vb))[1:], "std": bb[1:] * sb,
+                    "teams": int(keep.sum())},
+        "difference": {"b": d, "se": np.sqrt(np.diag(vd)), "wald": wald, "df": k,
+                       "p": float(stats.chi2.sf(wald, k))},
+    }
+
+
+# --- Split-team cross-source estimate ----------------------------------------------------
+
+def _split_estimate(scores: np.ndarray, team: np.ndarray, n_teams: int, icc1: np.ndarray,
+                    rng: np.random.Generator) -> tuple[float, ...] | None:
+    """One random split: each construct's team mean from its own random part of each team.
+    Column 0 of ``scores`` is the outcome, the rest the predictors; ``team`` holds team codes
+    0..n_teams-1 for the rows of ``scores``."""
+    parts = scores.shape[1]
+    n = len(team)
+    order = np.lexsort((rng.random(n), team))  # rows shuffled within each team
+    t_sorted = team[order]
+    starts = np.r_[0, np.flatnonzero(np.diff(t_sorted)) + 1]
+    rank = np.arange(n) - np.repeat(starts, np.diff(np.r_[starts, n]))
+    size = np.bincount(team, minlength=n_teams)[t_sorted]
+    part = rank * parts // size  # contiguous, near-equal parts of every team
+    means = np.empty((n_teams, parts))
+    sizes = np.empty((n_teams, parts))
+    for j in range(parts):
+        rows, t = order[part == j], t_sorted[part == j]
+        v = scores[rows, j]
+        ok = ~np.isnan(v)
+        cnt = np.bincount(t[ok], minlength=n_teams)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            means[:, j] = np.bincount(t[ok], weights=v[ok], minlength=n_teams) / cnt
+        sizes[:, j] = cnt
+    ok = ~np.isnan(means).any(axis=1)
+    means, sizes = means[ok], sizes[ok]
+    if len(means) < parts + 3:
+        return None
+    corr = np.corrcoef(means, rowvar=False)
+    # reliability of each part's team means: Spearman-Brown at the harmonic-mean part size
+    h = len(sizes) / np.sum(1.0 / sizes, axis=0)
+    rel = np.array([spearman_brown(icc1[j], h[j]) for j in range(parts)])
+    if np.any(rel <= 0):
+        return None
+    rc = disattenuate(corr, rel)
+    if np.any(np.linalg.eigvalsh(rc) <= 1e-10):
+        return None
+    return tuple(standardized_coefficients(rc, 0, list(range(1, parts))))
+
+
+def split_team_estimate(scores: np.ndarray, groups: np.ndarray, *, splits: int = 200,
+                        n_boot: int = 200, seed: int = 0, confidence: float = 0.95) -> dict:
+    """Team-level standardized coefficients of the outcome (column 0) on the predictors, with
+    every construct's team mean taken from a different random part of each team's members,
+    so no respondent contributes to both sides and individual-level common-method variance
+    cannot produce the association. The team-level correlations are corrected for the
+    unreliability of part-team means (Spearman-Brown from each construct's ICC(1)).
+
+    The estimate is the average over ``splits`` random splits; its interval is the percentile
+    interval of a team bootstrap (teams resampled with replacement, ICC(1) re-estimated, one
+    random split per replicate). Teams need at least two members per part."""
+    g = np.asarray(groups)
+    codes, inv = np.unique(g, return_inverse=True)
+    parts = scores.shape[1]
+    n_j = np.bincount(inv)
+    eligible = np.flatnonzero(n_j >= 2 * parts)
+    out = {"splits": splits, "teams_used": int(len(eligible)), "min_team_size": 2 * parts,
+           "estimate": None, "ci": None, "n_boot": n_boot}
+    if len(eligible) < parts + 3:
+        out["note"] = (f"needs at least {parts + 3} teams with {2 * parts} or more members; "
+                       f"{len(eligible)} have that many")
+        return out
+    rows_of = [np.flatnonzero(inv == t) for t in eligible]
+    ss = np.random.SeedSequence(seed)
+    rng = np.random.default_rng(ss.spawn(1)[0])
+
+    def sample(picked: list[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        # teams drawn twice in a bootstrap sample count as two teams
+        idx = np.concatenate([rows_of[i] for i in picked])
+        team = np.concatenate([np.full(len(rows_of[i]), k) for k, i in enumerate(picked)])
+        icc = np.array([icc_oneway(scores[idx, j], team).icc1 or 0.0 for j in range(parts)])
+        return scores[idx], team, icc
+
+    data, team, icc1 = sample(list(range(len(rows_of))))
+    draws = [e for e in (_split_estimate(data, team, len(rows_of), icc1, rng) for _ in range(splits))
+             if e is not None]
+    if not draws:
+        out["note"] = "the team-level correlations could not be corrected (ICC(1) near zero)"
+        return out
+    out["estimate"] = [float(v) for v in np.mean(draws, axis=0)]
+    out["splits_used"] = len(draws)
+    boot = []
+    brng = np.random.default_rng(ss.spawn(2)[1])
+    for _ in range(n_boot):
+        d, t, icc = sample(list(brng.integers(0, len(rows_of), len(rows_of))))
+        b = _split_estimate(d, t, len(rows_of), icc, brng)
+        if b is not None:
+            boot.append(b)
+    if len(boot) >= 10:
+        a = (1 - confidence) / 2
+        q = np.quantile(np.array(boot), [a, 1 - a], axis=0)
+        out["ci"] = [[float(q[0, j]), float(q[1, j])] for j in range(parts - 1)]
+    out["n_boot_used"] = len(boot)
+    return out
+
+
+def same_source_team_estimate(scores: np.ndarray, groups: np.ndarray) -> list[float] | None:
+    """Team-level standardized coefficients from full-team means (the same people rate both
+    sides), corrected for the unreliability of team means by ICC(2): what a same-source team
+    analysis reports, common-method inflation included."""
+    g = np.asarray(groups)
+    df = pd.DataFrame(scores).assign(_g=g)
+    sizes = df.groupby("_g").size()
+    means = df.groupby("_g").mean()[sizes >= 2].dropna().to_numpy()
+    rel = [icc_oneway(scores[:, j], g).icc2 for j in range(scores.shape[1])]
+    if any(r is None or r <= 0 for r in rel):
+        return None
+    rc = disattenuate(np.corrcoef(means, rowvar=False), np.array(rel))
+    if np.any(np.linalg.eigvalsh(rc) <= 1e-10):
+        return None
+    return [float(v) for v in standardized_coefficients(rc, 0, list(range(1, scores.shape[1])))]
+
+
+def group_table(scores: pd.DataFrame, groups: pd.Series, min_size: int) -> tuple[list[dict], int]:
+    """Team means for teams of at least ``min_size`` respondents; and how many were withheld."""
+    df = scores.assign(_g=groups.values)
+    sizes = df.groupby("_g").size()
+    means = df.groupby("_g").mean()
+    rows = [{"group": str(gname), "n": int(sizes[gname]), **{c: float(means.loc[gname, c]) for c in scores.columns}}
+            for gname in sizes.index if sizes[gname] >= min_size]
+    return rows, int((sizes < min_size).sum())

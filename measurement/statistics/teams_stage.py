@@ -1,0 +1,128 @@
+"""report["teams"]: agreement, small-group protection, within/between and split-team paths."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from samesource.input.design import Design
+from samesource.input.missing import MissingPlan
+from samesource.input.prepare import PreparedData
+from samesource.options import AnalysisOptions
+from samesource.statistics.scores import scale_scores
+from samesource.statistics.teams import (
+    group_table,
+    icc_oneway,
+    rwg_j,
+    same_source_team_estimate,
+    split_team_estimate,
+    within_between,
+)
+
+MEANING = {
+    "icc1": "share of a construct's variance that lies between teams (Bliese 2000): above about .05 team "
+            "membership matters (common practice)",
+    "icc2": "reliability of the team means: below about .70 team means are too noisy to compare teams "
+            "(common practice)",
+    "rwg_j": "within-team agreement against random answering (James, Demaree & Wolf 1984): a median above "
+             ".70 is the common-practice bar for treating a team mean as a shared view",
+}
+
+
+def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
+                  opts: AnalysisOptions, warnings: list[dict]) -> dict | None:
+    if not design.group_column or prepared.groups is None:
+        return None
+    groups = prepared.groups.reindex(plan.frame.index)
+    keep = groups.notna()
+    frame, groups = plan.frame[keep], groups[keep].astype(str)
+    names = [c.name for c in design.substantive]
+    scores = scale_scores(frame, design, names)
+    sizes = groups.value_counts()
+    min_size = opts.min_group_size
+    n_options = int(round(prepared.scale_max - prepared.scale_min)) + 1
+    # a second source's constructs have that source's answer range (measurement/input/sources.py)
+    source_options = {link.name: int(round(link.response_scale["max"] - link.response_scale["min"])) + 1
+                      for link in prepared.links}
+
+    constructs = {}
+    for c in design.substantive:
+        icc = icc_oneway(scores[c.name].to_numpy(), groups.to_numpy())
+        items = frame[list(c.items)]
+        options = source_options.get(c.source, n_options)
+        rwgs = [rwg_j(items[groups == gname].to_numpy(dtype=float), options)
+                for gname in sizes.index if sizes[gname] >= 2]
+        rwgs = [r for r in rwgs if r is not None]
+        constructs[c.name] = {"icc1": icc.icc1, "icc2": icc.icc2,
+                              "rwg_j_median": float(np.median(rwgs)) if rwgs else None,
+                              "rwg_j_groups": len(rwgs)}
+
+    paths = []
+
+    for p in design.paths:
+        cols = [p.outcome] + list(p.predictors)
+        sub = scores[cols].dropna()
+        gg = groups.loc[sub.index].to_numpy()
+        y, X = sub[p.outcome].to_numpy(), sub[list(p.predictors)].to_numpy()
+        with np.errstate(all="ignore"):
+            wb = within_between(y, X, gg)
+        if wb is None:
+            warnings.append({"code": "too_few_teams",
+                             "message": f"Too few teams with two or more respondents to estimate the "
+                                        f"within- and between-team paths of {p.outcome}."})
+            continue
+        split = split_team_estimate(sub.to_numpy(), gg, seed=opts.seed, confidence=opts.confidence)
+        same = same_source_team_estimate(sub.to_numpy(), gg)
+        for j, x in enumerate(p.predictors):
+            paths.append({
+                "outcome": p.outcome, "predictor": x,
+                "within": {"estimate": float(wb["within"]["std"][j]), "b": float(wb["within"]["b"][j]),
+                           "se_b": float(wb["within"]["se"][j])},
+                "between": {"estimate": float(wb["between"]["std"][j]), "b": float(wb["between"]["b"][j]),
+                            "se_b": float(wb["between"]["se"][j]), "teams": wb["between"]["teams"]},
+                "within_between_test": {"difference_b": float(wb["difference"]["b"][j]),
+                                        "se": float(wb["difference"]["se"][j]),
+                                        "wald": wb["difference"]["wald"], "df": wb["difference"]["df"],
+                                        "p": wb["difference"]["p"],
+                                        "differ": bool(wb["difference"]["p"] < 0.05)},
+                "same_source_team": {"estimate": same[j] if same else None},
+                "split_source": {"estimate": split["estimate"][j] if split["estimate"] else None,
+                                 "ci": split["ci"][j] if split.get("ci") else None,
+                                 "splits": split["splits"], "teams_used": split["teams_used"],
+                                 "min_team_size": split["min_team_size"],
+                                 "note": split.get("note")},
+            })
+        if wb["difference"]["p"] < 0.05:
+            warnings.append({"code": "within_between_differ",
+                             "message": f"For {p.outcome}, the within-team and between-team paths differ "
+                                        f"(p = {wb['difference']['p']:.3f}): the predictors correlate with team "
+                                        "effects, so a single pooled (random-effects) estimate would be biased; "
+                                        "read the within-team path for individual-level questions."})
+
+    table, withheld = group_table(scores, groups, min_size)
+    if withheld:
+        warnings.append({"code": "small_groups_withheld",
+                         "message": f"{withheld} group(s) with fewer than {min_size} respondents are left out "
+                                    "of every group-level table; their members still count in pooled results."})
+    return {
+        "group_column": design.group_column,
+        "groups": int(len(sizes)),
+        "groups_reported": int((sizes >= min_size).sum()),
+        "groups_withheld": withheld,
+        "min_group_size": min_size,
+        "respondents_without_group": int((~keep).sum()),
+        "constructs": constructs,
+        "paths": paths,
+        "group_scores": table,
+        "meaning": MEANING,
+        "notes": [
+            "Within and between: group-mean centring; the test of their difference regresses on the "
+            "predictors and their team means with cluster-robust standard errors (Mundlak 1978).",
+            "Split-team estimate: each construct's team mean comes from a different random part of the "
+            "team, so no respondent rates both sides and individual-level common-method variance cannot "
+            "produce the association; team-level method variance (a shared team response style) could. "
+            "Corrected for the unreliability of part-team means by Spearman-Brown from ICC(1); the "
+            "interval is a team bootstrap.",
+        ],
+    }
+
+
