@@ -1,6 +1,7 @@
-"""The one entry point: data and design in, an analysis (report data and fits) out.
+"""The stages of an analysis, in order: data and design in, report.json's content and the fits out.
 
-The command line and the HTTP service both call :func:`analyze`; nothing else in
+Callers (the command line, the HTTP service, a notebook) use :func:`samesource.analyze`
+(:mod:`samesource.facade`), which runs :func:`analyze` here and returns a Report; nothing in
 ``service/`` reaches deeper into ``measurement/``.
 """
 
@@ -19,7 +20,8 @@ from samesource.corrections.paths_stage import paths_section
 from samesource.corrections.source_paths import annotate_sources
 from samesource.errors import DataError
 from samesource.input.design import Design, parse_design
-from samesource.input.loading import LoadedTable, load_table
+from samesource.input.frames import Data, read_data
+from samesource.input.loading import LoadedTable
 from samesource.input.missing import MissingPlan, plan_missing
 from samesource.input.prepare import PreparedData
 from samesource.input.review import review_section
@@ -58,7 +60,7 @@ class Analysis:
 
 
 def analyze(
-    data: LoadedTable | str | os.PathLike | bytes,
+    data: Data,
     design: Design | dict,
     options: AnalysisOptions | dict | None = None,
     *,
@@ -78,7 +80,7 @@ def analyze(
     total = len(STAGES)
 
     step("load", 0, total)
-    table = data if isinstance(data, LoadedTable) else load_table(data, name=name, sheet=opts.sheet)
+    table = read_data(data, name=name, sheet=opts.sheet)
     prepared = prepare_with_sources(table, dsg, load_sources(sources))
     same = dsg.main_part()  # the main file's constructs: the same-source checks look at these
 

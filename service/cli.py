@@ -8,7 +8,6 @@ import json
 import signal
 import sys
 from collections.abc import Iterator
-from datetime import UTC, datetime
 from pathlib import Path
 
 from samesource import __version__
@@ -186,9 +185,9 @@ class _LineProgress:
 
 
 def _analyze(args: argparse.Namespace) -> int:
+    from samesource import analyze
     from samesource.input.design import load_design
     from samesource.options import AnalysisOptions
-    from samesource.pipeline import analyze
 
     design = load_design(args.design)
     opts = AnalysisOptions.from_dict({
@@ -200,7 +199,7 @@ def _analyze(args: argparse.Namespace) -> int:
     sources = _source_files(args.source)
     shown = None if args.quiet else _TerminalProgress() if sys.stderr.isatty() else _LineProgress()
     try:
-        result = analyze(args.data, design, opts, progress=shown, sources=sources)
+        report = analyze(args.data, design, options=opts, progress=shown, sources=sources)
     finally:
         if shown is not None:
             shown.clear()
@@ -208,7 +207,7 @@ def _analyze(args: argparse.Namespace) -> int:
     held: list[int] = []
     try:
         with _uninterrupted(held):
-            write_outputs(result.report, out)
+            report.save(out)
     except OSError as e:
         raise InputError(f"cannot write the report there ({e.strerror})", code="bad_output",
                          file=str(out)) from None
@@ -216,13 +215,14 @@ def _analyze(args: argparse.Namespace) -> int:
         print(f"samesource: {signal.Signals(held[0]).name} arrived while the report was being "
               "written; the report is complete", file=sys.stderr)
     elif not args.quiet:
-        print(result.summary())
+        print(report.summary())
         print()
     print(f"Report: {out / 'report.html'} (data: report.json; tables: tables/ and tables.xlsx)")
     from samesource.output.summary import review_last_line
 
-    if review_last_line(result.report):  # the last line says so (exit 0 all the same)
-        print(review_last_line(result.report))
+    last = review_last_line(report.to_dict())
+    if last:  # the last line says so (exit 0 all the same)
+        print(last)
     return 0
 
 
@@ -240,26 +240,6 @@ def _source_files(given: list[str]) -> dict[str, str]:
             raise InputError(f"--source {name}=... is given twice; give each source once", code="bad_option")
         out[name] = path
     return out
-
-
-def write_outputs(report: dict, out: Path) -> None:
-    """report.json, report.html, brief.html and the tables (CSV per table, and one workbook) in ``out``."""
-    from samesource.output.brief import render_brief
-    from samesource.output.report_html import render_html
-    from samesource.output.report_json import dumps
-    from samesource.output.tables import report_tables, tables_csv, tables_xlsx
-
-    out.mkdir(parents=True, exist_ok=True)
-    when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
-    (out / "report.json").write_text(dumps(report), encoding="utf-8")
-    (out / "report.html").write_text(render_html(report, when=when), encoding="utf-8")
-    (out / "brief.html").write_text(render_brief(report, when=when), encoding="utf-8")
-    tables = report_tables(report)
-    folder = out / "tables"
-    folder.mkdir(exist_ok=True)
-    for name, text in tables_csv(tables).items():
-        (folder / name).write_text(text, encoding="utf-8")
-    (out / "tables.xlsx").write_bytes(tables_xlsx(tables))
 
 
 def _draft(args: argparse.Namespace) -> int:

@@ -1,6 +1,6 @@
 """One analysis job, as it runs in a worker (a local pool process or a Dask worker).
 
-The job calls samesource.pipeline.analyze and returns a small, picklable outcome: the
+The job calls samesource.analyze (as the command line does) and returns a small, picklable outcome: the
 report.json text, or the error to store. It never raises for bad data or a bad design
 (those are the analysis's error); anything else is logged with the analysis id and the code
 locations only, and the stored error says "internal error".
@@ -75,18 +75,17 @@ class Throttle:
 
 def run_job(spec: JobSpec, progress: Callable[[str, int, int], None], executor: Any = None
             ) -> Outcome:
+    from samesource import analyze
     from samesource.errors import InputError
     from samesource.executor import StopRequested
-    from samesource.output.report_json import dumps
-    from samesource.pipeline import analyze
 
     t0 = time.monotonic()
     source: Any = spec.data if spec.data is not None else spec.path
     try:
-        result = analyze(source, spec.design, spec.options, name=spec.name,
+        report = analyze(source, spec.design, options=spec.options, name=spec.name,
                          progress=Throttle(progress, spec.analysis_id), executor=executor,
                          sources=spec.sources)
-        text = dumps(result.report)
+        text = report.to_json()
     except (Cancelled, StopRequested):
         log.info("analysis %s stopped: it no longer belongs to this run", spec.analysis_id)
         return Outcome(spec.analysis_id, cancelled=True)

@@ -104,18 +104,16 @@ def prepare_with_sources(table: LoadedTable, design: Design,
 
 
 def load_sources(sources: Mapping[str, object] | None) -> dict[str, LoadedTable]:
-    """The sources' tables: each value a LoadedTable, a path, bytes, or a ``(path or bytes,
-    file name)`` pair (the name used in messages)."""
-    from samesource.input.loading import load_table
+    """The sources' tables: each value a LoadedTable, a DataFrame, a path, bytes, or a
+    ``(data, file name)`` pair (the name used in messages)."""
+    from samesource.input.frames import read_data
 
     out = {}
     for name, value in (sources or {}).items():
-        if isinstance(value, LoadedTable):
-            out[name] = value
-        elif isinstance(value, tuple):
-            out[name] = load_table(value[0], name=value[1])
+        if isinstance(value, tuple):
+            out[name] = read_data(value[0], name=value[1])
         else:
-            out[name] = load_table(value, name=None if not isinstance(value, bytes) else f"source {name}")
+            out[name] = read_data(value, name=None if isinstance(value, str | os.PathLike) else f"source {name}")
     return out
 
 
