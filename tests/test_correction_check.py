@@ -30,10 +30,9 @@ from samesource.corrections.correction_check import (
     summarize,
     with_method_shares,
 )
-from samesource.engine.builders import method_factor_model
+from samesource.engine.builders import method_factor_model, without_method_factor
 from samesource.engine.fitting import Moments, fit_model
 from samesource.input.design import parse_design
-from samesource.method_checks.method_variance import _without_method
 from samesource.method_checks.planning import power_at, smallest_n
 from simulate import (
     ConstructSpec,
@@ -164,7 +163,7 @@ def test_power_of_the_method_test_matches_the_textbook_value_and_a_direct_simula
     design = parse_design(design_for(SPEC))
     cov = pop.implied_corr()
     spec = method_factor_model(design, use_marker=True, equal_loadings=True)
-    without = _without_method(spec)
+    without = without_method_factor(spec)
     m = Moments(names=pop.items, cov=cov, n=1000)
     f0 = fit_model(without, m, time_limit=30).fmin - fit_model(spec, m, time_limit=30).fmin
     n = smallest_n(f0, 1)

@@ -24,12 +24,16 @@ import numpy as np
 from scipy import optimize, stats
 
 from samesource.corrections.correction_check import Population, with_method_shares
-from samesource.engine.builders import measured_method_model, method_factor_model
+from samesource.engine.builders import (
+    measured_method_model,
+    method_factor_model,
+    without_method_factor,
+)
 from samesource.engine.fitting import Moments, fit_model
 from samesource.engine.modelspec import ModelSpec
 from samesource.input.design import MAIN, Construct, Design
 from samesource.input.missing import MissingPlan
-from samesource.method_checks.method_variance import ALPHA, _without_method
+from samesource.method_checks.method_variance import ALPHA
 from samesource.options import AnalysisOptions
 
 POWER = 0.80
@@ -161,7 +165,7 @@ def _f0(full: ModelSpec, restricted: ModelSpec, moments: Moments, opts: Analysis
 
 def _marker_test(design: Design, moments: Moments, opts: AnalysisOptions, plain: bool = False) -> float | None:
     spec = method_factor_model(design, use_marker=not plain, equal_loadings=True)
-    return _f0(spec, _without_method(spec), moments, opts)
+    return _f0(spec, without_method_factor(spec), moments, opts)
 
 
 def _measured_test(design: Design, moments: Moments, opts: AnalysisOptions) -> tuple[float | None, int]:
