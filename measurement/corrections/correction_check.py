@@ -182,7 +182,7 @@ def fit_population(design: Design, prepared: PreparedData, plan: MissingPlan, mv
             m.append(_std_or_zero(fit, METHOD, it) if has_method else 0.0)
     cov = fit.all_cov.loc[list(traits), list(traits)].to_numpy(dtype=float)
     sd = np.sqrt(np.diag(cov))
-    corr = cov / np.outer(sd, sd)
+    corr = _positive_definite(cov / np.outer(sd, sd), notes)
     pop = Population(
         items=tuple(items), item_source=tuple(design.constructs[design.construct_of(it)].source for it in items),
         traits=traits, trait_of=tuple(trait_of), trait_corr=corr, loadings=np.array(lam), method=np.array(m),
@@ -198,6 +198,19 @@ def fit_population(design: Design, prepared: PreparedData, plan: MissingPlan, mv
 
 class _NoPopulation(Exception):
     pass
+
+
+def _positive_definite(corr: np.ndarray, notes: list[str]) -> np.ndarray:
+    """The traits' correlations, nudged to a positive definite matrix where the fit left them at
+    its edge (two views of one thing correlating almost 1, say), so surveys can be drawn."""
+    w, v = np.linalg.eigh(corr)
+    if w.min() > 1e-6:
+        return corr
+    fixed = (v * np.clip(w, 1e-6, None)) @ v.T
+    d = np.sqrt(np.diag(fixed))
+    notes.append(f"The fitted traits' correlations were at the edge of what is possible (smallest eigenvalue "
+                 f"{w.min():.2g}); the population uses the nearest positive definite matrix.")
+    return fixed / np.outer(d, d)
 
 
 def _std_or_zero(fit, latent: str, item: str) -> float:
@@ -377,11 +390,15 @@ def _run_chunk(chunk: _Chunk) -> _ChunkResult:
     failures: list[str] = []
     for i, r in enumerate(range(chunk.start, chunk.stop)):
         rng = replicate_rng(chunk.seed, chunk.scenario, r)
-        main, sources = draw_survey(chunk.population, design, rng)
         try:
+            main, sources = draw_survey(chunk.population, design, rng)
             report = analyze(main, design, chunk.options, executor=SerialExecutor(), sources=sources).report
         except InputError as e:  # a simulated survey the analysis refuses (an item with one answer, say)
             failures.append(e.message)
+            continue
+        except (ArithmeticError, ValueError, np.linalg.LinAlgError) as e:
+            # one simulated survey's numerical failure is that survey's, counted, not the check's
+            failures.append(f"{type(e).__name__}: {e}")
             continue
         verdict[i] = VERDICTS.index(report["method_variance"]["verdict"]["level"])
         by_key = {(p["outcome"], p["predictor"]): p for p in report["paths"]}
