@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import atexit
 import contextlib
+import math
 import multiprocessing
 import os
 import threading
@@ -57,30 +58,50 @@ class Executor(Protocol):
 # ---------------------------------------------------------------------- stopping between batches
 
 STOP_POLL_SECONDS = 0.5  # how often a waiting map asks whether to stop
-_STOP_CHECKS: list[Callable[[], bool]] = []
+_STOP = threading.local()  # .checks: the calling thread's checks (a Dask worker runs several runs' tasks)
 
 
 class StopRequested(Exception):
     """The work was told to stop (its owner no longer wants the results)."""
 
 
+def _checks() -> list[Callable[[], bool]]:
+    checks = getattr(_STOP, "checks", None)
+    if checks is None:
+        checks = _STOP.checks = []
+    return checks
+
+
 @contextlib.contextmanager
 def stop_when(check: Callable[[], bool]) -> Iterator[None]:
-    """While the block runs, an executor waiting for a batch asks ``check()`` every
-    :data:`STOP_POLL_SECONDS`; when it answers True the batch's workers are stopped and
-    :class:`StopRequested` is raised. The service uses it so that deleting a dataset stops
-    its bootstrap within a second, not at the end of a long batch. Process-wide: a job
-    worker runs one job at a time."""
-    _STOP_CHECKS.append(check)
+    """While the block runs in this thread, an executor waiting for a batch asks ``check()``
+    every :data:`STOP_POLL_SECONDS`, and the bootstrap asks it between replicates; when it
+    answers True the batch's workers are stopped and :class:`StopRequested` is raised. The
+    service uses it so that deleting a dataset stops its bootstrap within a second, not at the
+    end of a long batch. Per thread: a cluster worker runs tasks of several runs at once, each
+    with its own check. ``check`` itself is asked at most every STOP_POLL_SECONDS (it may be
+    a database query), and once it has said stop the answer stays."""
+    last = -math.inf
+    stop = False
+
+    def throttled() -> bool:
+        nonlocal last, stop
+        if not stop and time.monotonic() - last >= STOP_POLL_SECONDS:
+            last = time.monotonic()
+            stop = bool(check())
+        return stop
+
+    checks = _checks()
+    checks.append(throttled)
     try:
         yield
     finally:
-        _STOP_CHECKS.remove(check)
+        checks.remove(throttled)
 
 
 def stop_requested() -> bool:
-    """True when a check registered with :func:`stop_when` asks to stop."""
-    return any(check() for check in list(_STOP_CHECKS))
+    """True when a check registered with :func:`stop_when` in this thread asks to stop."""
+    return any(check() for check in list(_checks()))
 
 
 class SerialExecutor:
@@ -203,7 +224,7 @@ class LocalExecutor:
         futures = []
         try:
             futures = [pool.submit(fn, item) for item in items]
-            while _STOP_CHECKS:
+            while _checks():
                 done, pending = wait(futures, timeout=STOP_POLL_SECONDS,
                                      return_when=FIRST_EXCEPTION)
                 if not pending or any(f.exception() is not None for f in done):

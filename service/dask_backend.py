@@ -4,9 +4,11 @@ The job runs as one task on the cluster. Its bootstrap replicates fan out across
 cluster's workers through :class:`DaskExecutor`, samesource.executor's Executor protocol
 over Dask. The task gets the file's bytes (cluster workers need not share the service's
 disk or database) and sends its progress back as cluster events on one topic, which the
-service writes to the database. When that write finds the analysis deleted or re-queued, the
-service sets a cluster event that the task checks at its next progress call, and the task
-stops. The workers need samesource installed (same version).
+service writes to the database. When the analysis is deleted or re-queued (the service asks
+every 0.5 s for each run it has on the cluster), the service sets the run's cluster event;
+the job task asks it at each progress call and while it waits for a batch, and each batch
+task between replicates (:class:`StopsWhenFlagged`), so the whole run stops within about a
+second, its batches included. The workers need samesource installed (same version).
 """
 
 from __future__ import annotations
@@ -28,6 +30,10 @@ from .store import Claim, Store
 log = logging.getLogger("samesource.dask")
 
 PROGRESS_TOPIC = "samesource-progress"
+# A run's stop flag outlives the run by this long, so that its batch tasks, which ask the flag
+# between replicates (at most every 0.5 s; one replicate of a large model can take seconds),
+# see it after the job task itself has ended. A kept flag is a few bytes on the scheduler.
+FLAG_KEEP_SECONDS = 60.0
 
 
 def stop_event_name(analysis_id: str, attempt: int) -> str:
@@ -46,8 +52,9 @@ class DaskExecutor:
     raises RuntimeError, as the protocol says.
     """
 
-    def __init__(self, client: Any = None) -> None:
+    def __init__(self, client: Any = None, *, stop_flag: str | None = None) -> None:
         self._client = client
+        self._stop_flag = stop_flag  # the run's cluster event (stop_event_name), asked by each task
 
     @property
     def workers(self) -> int:
@@ -61,6 +68,8 @@ class DaskExecutor:
         items = list(items)
         if not items:
             return []
+        if self._stop_flag is not None:
+            fn = StopsWhenFlagged(fn, self._stop_flag)
         if self._client is not None:
             return _gather(self._client, fn, items)
         from distributed import worker_client
@@ -72,6 +81,31 @@ class DaskExecutor:
         return "DaskExecutor()" if self._client is None else f"DaskExecutor({self._client!r})"
 
 
+class StopsWhenFlagged:
+    """``fn`` as a cluster task that stops when its run's stop flag (a cluster event) is set:
+    the flag is asked between the task's steps (the bootstrap asks between replicates,
+    measurement.executor.stop_when), at most every STOP_POLL_SECONDS. A running Dask task
+    cannot be stopped from outside, so without this a deleted analysis's batches would keep
+    the cluster's threads until their end. A stopped task answers None (nobody gathers it)."""
+
+    def __init__(self, fn: Callable[[Any], Any], flag: str) -> None:
+        self.fn = fn
+        self.flag = flag
+        self.__name__ = getattr(fn, "__name__", "task")  # the tasks' keys name the work
+
+    def __call__(self, item: Any) -> Any:
+        from distributed import Event
+
+        from measurement.executor import StopRequested, stop_when
+
+        flag = Event(self.flag)
+        try:
+            with stop_when(flag.is_set):
+                return self.fn(item)
+        except StopRequested:
+            return None
+
+
 def _threads(client: Any) -> int:
     return max(1, sum(client.nthreads().values()))
 
@@ -79,18 +113,15 @@ def _threads(client: Any) -> int:
 def _gather(client: Any, fn: Callable[[Any], Any], items: list[Any]) -> list[Any]:
     from distributed import KilledWorker
 
-    from samesource.executor import STOP_POLL_SECONDS, StopRequested, stop_requested
+    from samesource.executor import StopRequested, stop_requested
 
     futures = client.map(fn, items, pure=False)
     try:
-        last = time.monotonic()
-        # the stop flag is asked while a batch runs, not only between batches
+        # the stop flag is asked while a batch runs (stop_requested asks it every 0.5 s at most)
         while not all(f.done() for f in futures):
-            time.sleep(0.2)
-            if time.monotonic() - last >= STOP_POLL_SECONDS:
-                last = time.monotonic()
-                if stop_requested():
-                    raise StopRequested("the work was told to stop")
+            time.sleep(0.1)
+            if stop_requested():
+                raise StopRequested("the work was told to stop")
         return client.gather(futures)
     except KilledWorker as e:
         raise RuntimeError(f"a Dask worker died running these tasks repeatedly ({e})") from e
@@ -118,7 +149,8 @@ def _run_on_cluster(spec: JobSpec) -> Outcome:
     from samesource.executor import stop_when
 
     with stop_when(stop.is_set):
-        return run_job(spec, progress, executor=DaskExecutor())
+        return run_job(spec, progress, executor=DaskExecutor(
+            stop_flag=stop_event_name(spec.analysis_id, spec.attempt)))
 
 
 class DaskBackend:
@@ -199,6 +231,8 @@ class DaskBackend:
     def _forget_stop(self, analysis_id: str, attempt: int) -> None:
         from distributed import Event
 
+        if self._closed.is_set():
+            return
         try:  # the scheduler keeps an event until it is cleared
             Event(stop_event_name(analysis_id, attempt), client=self._client).clear()
         except Exception as e:
@@ -233,8 +267,14 @@ class DaskBackend:
                 with self._lock:
                     self._futures.pop(spec.analysis_id, None)
                     self._claims.pop(spec.analysis_id, None)
+                    stopped = (spec.analysis_id, spec.attempt) in self._stopped
                     self._stopped.discard((spec.analysis_id, spec.attempt))
-                if not self._closed.is_set():
+                if stopped:  # its batch tasks may not have seen the flag yet
+                    timer = threading.Timer(FLAG_KEEP_SECONDS, self._forget_stop,
+                                            (spec.analysis_id, spec.attempt))
+                    timer.daemon = True
+                    timer.start()
+                else:
                     self._forget_stop(spec.analysis_id, spec.attempt)
 
         threading.Thread(target=_wait, daemon=True, name=f"samesource-dask-{spec.analysis_id}").start()

@@ -23,7 +23,7 @@ from samesource.service.context import EXTENSION
 from samesource.service.db import Database
 from samesource.service.models import Base
 from samesource.service.store import Store
-from tests.conftest import POSTGRES_URL, cli, small_survey, wait_for
+from tests.conftest import POSTGRES_URL, cli, wait_for
 
 pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
 
@@ -59,6 +59,19 @@ def finished(client, hdrs, analysis_id: str, timeout: float = 120) -> dict:
     return wait_for(done, timeout=timeout, what=f"analysis {analysis_id}")
 
 
+def quick_survey(n: int = 200) -> tuple[bytes, dict]:
+    """A simulated survey of two 3-item scales and its design: an analysis of it takes about
+    2 s here (no bootstrap: from 200 rows the default runs none), which is all these tests
+    need of one."""
+    from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+
+    spec = SurveySpec(constructs=[ConstructSpec("support", 3, 0.75, 0.3),
+                                  ConstructSpec("engagement", 3, 0.7, 0.3)],
+                      paths={"engagement": {"support": 0.4}}, n=n, seed=3)
+    df, _truth = simulate_survey(spec)
+    return df.to_csv(index=False).encode("utf-8"), design_for(spec)
+
+
 def transient() -> OperationalError:
     return OperationalError("UPDATE analyses", {}, ConnectionError("server closed the connection"))
 
@@ -82,7 +95,7 @@ def test_a_result_that_cannot_be_saved_goes_back_to_the_queue_and_runs_again(tmp
     try:
         svc.store.finish = finish
         c, h = app.test_client(), headers(app)
-        data, design = small_survey(n=120)
+        data, design = quick_survey()
         ds = upload(c, h, data).get_json()
         aid = start(c, h, ds["id"], design).get_json()["id"]
         # the first run's save failed for good: re-queued, attempt counted, run again
@@ -113,7 +126,7 @@ def test_a_dispatch_thread_that_ends_is_started_again(tmp_path):
     try:
         runner._run = run_once_then_die
         c, h = app.test_client(), headers(app)
-        data, design = small_survey(n=120)
+        data, design = quick_survey()
         ds = upload(c, h, data).get_json()
         first = start(c, h, ds["id"], design).get_json()["id"]
         assert finished(c, h, first)["status"] == "succeeded"
@@ -176,7 +189,7 @@ def test_analyses_survive_a_postgresql_restart(tmp_path):
     app = make_app(tmp_path / "d", database_url=POSTGRES_URL, storage_retry_seconds=60.0)
     c, h = app.test_client(), headers(app)
     try:
-        data, design = small_survey(n=150)
+        data, design = quick_survey()
         ds = upload(c, h, data).get_json()
         ids = [start(c, h, ds["id"], design, {"bootstrap": 40}).get_json()["id"] for _ in range(2)]
         subprocess.run(["pg_ctlcluster", version, name, "stop", "-m", "fast"], check=True)
@@ -318,7 +331,7 @@ def test_a_full_disk_answers_507_deletes_still_work_and_the_runner_resumes(small
     app = make_app(small_disk / "data", min_free_mb=1, storage_retry_seconds=2.0)
     c, h = app.test_client(), headers(app)
     try:
-        data, design = small_survey(n=120)
+        data, design = quick_survey()
         ds = upload(c, h, data).get_json()
         # fill the disk with something not ours, leaving ~2 MB
         filler = small_disk / "filler"
@@ -402,7 +415,7 @@ def test_queued_and_replicate_limits_answer_429_with_retry_after(tmp_path):
                    tenant_max_replicates=600)
     c, h = app.test_client(), headers(app)
     try:
-        data, design = small_survey(n=120)
+        data, design = quick_survey()
         ds = upload(c, h, data).get_json()
         assert start(c, h, ds["id"], design, {"bootstrap": 400}).status_code == 202
         over = start(c, h, ds["id"], design, {"bootstrap": 400})
@@ -499,27 +512,52 @@ def test_the_data_folder_is_locked_and_a_dead_process_spool_is_swept_at_start(tm
 # ---------------------------------------------------------------------- prompt stop
 
 
-@pytest.mark.skipif((os.cpu_count() or 1) < 2, reason="the bootstrap's pool needs two cores")
-def test_deleting_a_dataset_stops_its_bootstrap_between_batches(tmp_path):
+def pool_processes(pid: int) -> list[int]:
+    """Processes two levels under ``pid``: a job worker's bootstrap pool (its forkserver's
+    children). From /proc (Linux)."""
+    children: dict[int, list[int]] = {}
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        children.setdefault(int(fields[1]), []).append(int(stat.parent.name))
+    return [g for c in children.get(pid, []) for g in children.get(c, [])]
+
+
+STOP_SECONDS = 2.0  # the promise of docs/reliability.md, "Prompt stop"
+
+
+@pytest.mark.skipif((os.cpu_count() or 1) < 2 or not Path("/proc/self/stat").exists(),
+                    reason="the bootstrap's pool needs two cores, and the test reads /proc")
+def test_deleting_a_dataset_stops_its_bootstrap_within_two_seconds(tmp_path):
     app = make_app(tmp_path / "d")
     c, h = app.test_client(), headers(app)
+    runner = app.extensions[EXTENSION].runner
     try:
-        data, design = small_survey(n=150)
+        data, design = quick_survey()
         ds = upload(c, h, data).get_json()
         # other bytes (a trailing blank line): the same bytes would be the same dataset again
         other = upload(c, h, data + b"\n", "other.csv").get_json()
         aid = start(c, h, ds["id"], design, {"bootstrap": 20_000}).get_json()["id"]
         wait_for(lambda: (c.get(f"/v1/analyses/{aid}", headers=h).get_json()["progress"]["stage"]
-                          == "bootstrap"), timeout=120, what="the bootstrap to start")
-        time.sleep(1.0)  # inside a batch
-        assert c.delete(f"/v1/datasets/{ds['id']}", headers=h).status_code == 204
+                          == "bootstrap"), timeout=120, every=0.1, what="the bootstrap to start")
+        job_pid = runner.backend.worker_pids()[0]
+        wait_for(lambda: pool_processes(job_pid), timeout=30, every=0.1, what="the pool")
+        time.sleep(0.7)  # inside a batch: each takes minutes
         t0 = time.monotonic()
-        # the one job worker is free again once the bootstrap stopped: the next analysis runs
+        assert c.delete(f"/v1/datasets/{ds['id']}", headers=h).status_code == 204
         nxt = start(c, h, other["id"], design).get_json()["id"]
-        wait_for(lambda: c.get(f"/v1/analyses/{nxt}", headers=h).get_json()["status"] != "queued",
-                 timeout=30, every=0.1, what="the worker to be free")
+
+        def stopped():
+            # the bootstrap's processes are gone and the one job worker runs the next analysis
+            return not pool_processes(job_pid) and c.get(
+                f"/v1/analyses/{nxt}", headers=h).get_json()["status"] != "queued"
+
+        wait_for(stopped, timeout=30, every=0.05, what="the bootstrap to stop")
         took = time.monotonic() - t0
-        assert took < 15, f"the deleted analysis's bootstrap held the worker for {took:.1f} s"
+        print(f"bootstrap stopped {took:.2f} s after the delete")
+        assert took < STOP_SECONDS, f"the deleted analysis's bootstrap ran {took:.2f} s on"
         assert finished(c, h, nxt)["status"] == "succeeded"
     finally:
         closing(app)

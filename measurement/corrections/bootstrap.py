@@ -45,7 +45,7 @@ from typing import Any
 
 import numpy as np
 
-from samesource.executor import Executor, default_executor
+from samesource.executor import Executor, StopRequested, default_executor, stop_requested
 
 Statistic = Callable[[np.ndarray, np.ndarray], np.ndarray]
 """``statistic(data, idx)`` -> 1-D float vector of k estimates for the rows ``data[idx]``.
@@ -159,6 +159,8 @@ def _run_chunk(chunk: _Chunk) -> _ChunkResult:
     replicates = range(chunk.start, chunk.stop)
     moments = _chunk_moments(chunk, replicates) if chunk.moments is not None else None
     for i, r in enumerate(replicates):
+        if stop_requested():  # the owner stopped the run (a service task on a cluster worker)
+            raise StopRequested("the work was told to stop")
         try:
             if moments is not None:
                 out = chunk.moments.from_moments(moments[i])
