@@ -84,7 +84,7 @@ class DaskExecutor:
 class StopsWhenFlagged:
     """``fn`` as a cluster task that stops when its run's stop flag (a cluster event) is set:
     the flag is asked between the task's steps (the bootstrap asks between replicates,
-    measurement.executor.stop_when), at most every STOP_POLL_SECONDS. A running Dask task
+    samesource.executor.stop_when), at most every STOP_POLL_SECONDS. A running Dask task
     cannot be stopped from outside, so without this a deleted analysis's batches would keep
     the cluster's threads until their end. A stopped task answers None (nobody gathers it)."""
 
@@ -96,7 +96,7 @@ class StopsWhenFlagged:
     def __call__(self, item: Any) -> Any:
         from distributed import Event
 
-        from measurement.executor import StopRequested, stop_when
+        from samesource.executor import StopRequested, stop_when
 
         flag = Event(self.flag)
         try:

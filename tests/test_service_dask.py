@@ -82,7 +82,7 @@ def upload_and_start(app, data: bytes, design: dict, options: dict):
 
 def quick_survey() -> tuple[bytes, dict]:
     """Two 3-item scales, 200 rows: the analysis reaches its bootstrap within seconds."""
-    from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+    from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
     spec = SurveySpec(constructs=[ConstructSpec("support", 3, 0.75, 0.3),
                                   ConstructSpec("engagement", 3, 0.7, 0.3)],
@@ -142,7 +142,7 @@ def test_deleting_the_dataset_stops_its_analysis_on_the_cluster(cluster, client,
     # A bootstrap on the cluster (batches of minutes); the dataset is deleted inside a batch.
     # Cancelling a Dask future leaves a running task running: the job task and its batch
     # tasks must each see the run's stop flag, and the cluster be idle within 2 s.
-    from service import dask_backend
+    from samesource.service import dask_backend
 
     monkeypatch.setattr(dask_backend, "FLAG_KEEP_SECONDS", 2.0)  # 60 s in service
     data, design = quick_survey()

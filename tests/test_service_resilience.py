@@ -63,7 +63,7 @@ def quick_survey(n: int = 200) -> tuple[bytes, dict]:
     """A simulated survey of two 3-item scales and its design: an analysis of it takes about
     2 s here (no bootstrap: from 200 rows the default runs none), which is all these tests
     need of one."""
-    from measurement.simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
+    from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
     spec = SurveySpec(constructs=[ConstructSpec("support", 3, 0.75, 0.3),
                                   ConstructSpec("engagement", 3, 0.7, 0.3)],
