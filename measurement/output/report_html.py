@@ -271,6 +271,10 @@ def checks_strip(report: dict) -> str:
         aff = [method_label(str(m)) for m in a.get("affects") or [] if m]
         if aff:
             detail.append("Estimates resting on it: " + ", ".join(h(m) for m in aff) + ".")
+        else:  # a failed check that no estimate rests on must not read like a flaw in the answer
+            detail.append("No key-path estimate rests on this; it concerns "
+                          + h(", ".join(CHECK_LABELS.get(c, c) for c in a.get("checks") or []) or "one method check")
+                          + " only.")
         if a.get("rule"):
             detail.append(f"Rule: {h(a['rule'])}")
         if a.get("source"):
@@ -278,11 +282,7 @@ def checks_strip(report: dict) -> str:
         if a.get("remedy"):
             detail.append(f"What would settle it: {h(a['remedy'])}")
         body = "".join(f"<p>{x}</p>" for x in detail)
-        # a failed check that no estimate rests on must not read like a flaw in the answer
-        scope = ("" if aff else ' <span class="sub">No key-path estimate rests on this; it concerns '
-                 + h(", ".join(CHECK_LABELS.get(c, c) for c in a.get("checks") or []) or "one method check")
-                 + " only.</span>")
-        rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.get("message") or a.get("id"))}</span>{scope}</summary>'
+        rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.get("message") or a.get("id"))}</span></summary>'
                     f'<div class="detail">{body or "<p>No further detail.</p>"}</div></details></li>')
     return ('<div class="checks-strip" id="assumptions"><h3>What the answer rests on: the assumption checks</h3>'
             f'<ul>{"".join(rows)}</ul></div>')
