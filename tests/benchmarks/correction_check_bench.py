@@ -27,6 +27,8 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
 sys.path.insert(0, str(ROOT / "sample_surveys"))  # the simulator (sample_surveys/simulate.py)
+sys.path.insert(0, str(HERE))
+from scale import local_dask_executor  # noqa: E402
 
 SURVEY = ROOT / "sample_surveys" / "staff_survey.csv"
 DESIGN = ROOT / "sample_surveys" / "staff_survey_design.json"
@@ -39,24 +41,10 @@ def child(replicates: int, dask_workers: int) -> dict:
 
     design = json.loads(DESIGN.read_text())
     options = {"missing": "fiml", "check_corrections": replicates}
-    executor = cluster = client = None
-    if dask_workers:
-        from distributed import Client, LocalCluster
-
-        from samesource.service.dask_backend import DaskExecutor
-
-        cluster = LocalCluster(n_workers=dask_workers, threads_per_worker=1, processes=True,
-                               dashboard_address=None, env={"OPENBLAS_NUM_THREADS": "1"})
-        client = Client(cluster)
-        executor = DaskExecutor(client)
-    try:
+    with local_dask_executor(dask_workers) as executor:
         t0 = time.perf_counter()
         report = analyze(str(SURVEY), design, options, executor=executor).report
         wall = time.perf_counter() - t0
-    finally:
-        if client is not None:
-            client.close()
-            cluster.close()
     check = report.get("correction_check") or {}
     runs = sum(1 for s in check.get("scenarios", []) if s.get("run"))
     return {"wall": wall, "check": report["timings"].get("check_corrections"), "timings": report["timings"],

@@ -24,6 +24,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from contextlib import contextmanager
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
@@ -50,27 +51,29 @@ def child_floor(path: str, items: list[str]) -> dict:
     return {"seconds": time.perf_counter() - t0, "peak_mb": _peak_mb(), "check": float(cov.trace())}
 
 
+@contextmanager
+def local_dask_executor(workers: int):
+    """An executor for ``analyze``: None (the local pool) or a local Dask cluster of
+    ``workers`` single-threaded processes, closed afterwards."""
+    if not workers:
+        yield None
+        return
+    from distributed import Client, LocalCluster
+
+    from samesource.service.dask_backend import DaskExecutor
+
+    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None,
+                      env={"OPENBLAS_NUM_THREADS": "1"}) as cluster, Client(cluster) as client:
+        yield DaskExecutor(client)
+
+
 def child_report(path: str, design: dict, options: dict, dask_workers: int = 0) -> dict:
     from samesource.pipeline import analyze
 
-    executor, cluster, client = None, None, None
-    if dask_workers:
-        from distributed import Client, LocalCluster
-
-        from samesource.service.dask_backend import DaskExecutor
-
-        cluster = LocalCluster(n_workers=dask_workers, threads_per_worker=1, processes=True,
-                               dashboard_address=None, env={"OPENBLAS_NUM_THREADS": "1"})
-        client = Client(cluster)
-        executor = DaskExecutor(client)
-    try:
+    with local_dask_executor(dask_workers) as executor:
         t0 = time.perf_counter()
         report = analyze(path, design, options, executor=executor).report
         wall = time.perf_counter() - t0
-    finally:
-        if client is not None:
-            client.close()
-            cluster.close()
     failed = max((e["bootstrap"]["n_failed"] for p in report["paths"] for e in p["estimates"].values()
                   if e and "bootstrap" in e), default=0)
     return {"wall": wall, "timings": report["timings"], "peak_mb": _peak_mb(), "most_failed": failed}
