@@ -183,10 +183,13 @@ def test_method_factor_without_the_marker_is_no_evidence_when_items_are_tau_equi
     # Equal trait loadings (tau-equivalent items): equal method loadings then trade off exactly
     # against the trait loadings, so the check must not count either way (the verdict's false
     # alarms on clean data came from it: p < .01 in 8 of 60 surveys before this rule).
-    out = _plain(survey(0.0, 11, n=600))
-    assert out["loadings_differ"] is False or out["tau_equivalence_test"]["p"] < 0.05
-    if not out["loadings_differ"]:
-        assert not out["informative"] and not out["found_method"] and not out["shows_absence"]
+    # Truth: tau-equivalent items, so the .05 test of tau-equivalence rejects in about 1 in 20.
+    outs = [_plain(survey(0.0, seed, n=600)) for seed in range(11, 15)]
+    kept = [o for o in outs if not o["loadings_differ"]]
+    assert len(kept) >= 3, [o["tau_equivalence_test"]["p"] for o in outs]
+    for o in kept:
+        assert o["tau_equivalence_test"]["p"] >= 0.05
+        assert not o["informative"] and not o["found_method"] and not o["shows_absence"]
 
 
 def test_method_factor_without_the_marker_counts_when_loadings_differ():

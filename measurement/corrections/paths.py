@@ -17,7 +17,6 @@ import numpy as np
 from scipy import stats
 
 from samesource.engine.builders import (
-    METHOD,
     latent_path_model,
     measured_method_model,
     method_factor_model,
@@ -335,11 +334,8 @@ class PathEstimator:
         at_zero = self.warm.get(without_method_factor(s).name)
         if not compute_se and s.name not in self.warm and at_zero is not None:
             # the full sample's method variance sat at its boundary: re-estimate it from there
-            start = {(p.op, p.lhs, p.rhs): float(v) for p, v in zip(at_zero.spec.params, at_zero.params["estimate"],
-                                                                    strict=True) if p.free}
-            start[("cov", METHOD, METHOD)] = 0.0
             f = fit_model(s, data, time_limit=self._budget(at_zero)["time_limit"], n_starts=1, compute_se=False,
-                          start=start)
+                          start=at_zero)
         else:
             f = self._fit(s, data, compute_se)
         if f.status == "improper" and only_method_variance_negative(f):
@@ -359,16 +355,14 @@ class PathEstimator:
         return f
 
     def _boundary_fit(self, f: FitResult, data, compute_se: bool) -> FitResult:
-        """``f`` refitted with its method variance fixed at zero, started from ``f``."""
+        """``f`` refitted without its method factor (method variance zero), started from ``f``."""
         spec = without_method_factor(f.spec)
         prev = self.warm.get(spec.name)
         if not compute_se and prev is not None and prev.status == "ok":
             return refit(prev, data, **self._budget(prev))
-        start = {(p.op, p.lhs, p.rhs): float(v) for p, v in zip(f.spec.params, f.params["estimate"], strict=True)
-                 if p.free and not (p.op == "cov" and p.lhs == METHOD)}
         g = fit_model(spec, data, time_limit=self.time_limit if compute_se else self._budget(f)["time_limit"],
                       n_starts=self.n_starts if compute_se else 1,
-                      seed=self.seed, compute_se=compute_se, start=start)
+                      seed=self.seed, compute_se=compute_se, start=f)
         if compute_se and g.status == "ok":
             self.notes.append("The method variance was estimated below zero, which is what sampling error gives "
                               "when there is none; the method-factor estimate is taken at its lower limit, zero "
