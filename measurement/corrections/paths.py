@@ -50,7 +50,10 @@ NOTES = {
                        "the marker shares it. Its analytic interval treats r_M and alpha as known, so it "
                        "is too narrow; the bootstrap interval is not.",
     "method_factor_adjusted": "Structural model with a latent method factor on every item, orthogonal to the "
-                              "traits: corrects unreliability and the shared method the factor captures.",
+                              "traits: corrects unreliability and the shared method the factor captures. In "
+                              "our simulations where all its assumptions held (600 respondents), its 95% Wald "
+                              "interval covered the truth in about 88% of samples, so read it as somewhat "
+                              "narrow (docs/coverage.md).",
     "measured_method_adjusted": "Structural model with the measured method construct loading on every "
                                 "substantive item (Podsakoff et al. 2003): corrects the method it measures.",
 }
