@@ -831,7 +831,8 @@ class Scenario:
     whether the correction the report should lead with rests on assumptions that hold in this
     population; ``instrument_fails`` whether the design's method instrument (marker or method
     scale) fails to carry the shared method; ``expected`` gives, per assumption id of the
-    report, the statuses its check should give here.
+    report, the statuses its check should give here (``method_loadings/equal``: its statuses in
+    the samples where the equal-loading method factor was used).
     """
 
     name: str
@@ -984,9 +985,10 @@ def _scenario_table() -> dict[str, _Entry]:
             "loadings are +.35 on positively and -.35 on reverse-keyed items",
             lambda seed, n: _base(_equal(0.0), seed=seed, n=n, acquiescence=m,
                                   reverse={"sup": [2, 4], "eng": [2, 4], "sty": [3]}),
-            False, "the method loadings' sign follows the keying: equal loadings fail, and the marker "
-                   "(all positively keyed) carries the style with one sign only",
-            False, {"method_loadings": ("doubtful", "fails")}),
+            False, "the method loadings' sign follows the keying: equal loadings fail (a free-loading factor "
+                   "can follow the signs), and the marker (all positively keyed) carries the style with one "
+                   "sign only",
+            False, {"method_loadings/equal": ("doubtful", "fails")}),
     }
 
 

@@ -146,3 +146,54 @@ def test_doubtful_with_a_remedy_does_not_block():
     a = Assumption("items_continuous", "doubtful", "m", [], ["latent"], "r", "s", remedy="robust SEs")
     b = Assumption("method_loadings", "doubtful", "m", [], ["method_factor_adjusted"], "r", "s")
     assert not a.blocks("latent") and b.blocks("method_factor_adjusted") and not b.blocks("latent")
+
+
+def test_no_shared_method_follows_the_verdict():
+    # The latent model and disattenuation correct unreliability only: they assume no shared
+    # method variance (Podsakoff, MacKenzie, Lee & Podsakoff 2003 on the inflation), so the
+    # verdict decides their status (our rule, docs/methods.md).
+    from samesource.method_checks.assumptions import UNRELIABILITY_ONLY, no_shared_method
+
+    want = {"none": "holds", "minor": "doubtful", "substantial": "fails", "undetermined": "untestable"}
+    for level, st in want.items():
+        a = no_shared_method({"level": level})
+        assert a.status == st
+        assert a.blocks("latent") == (st in ("doubtful", "fails"))
+        assert not a.blocks("method_factor_adjusted")
+    assert set(UNRELIABILITY_ONLY) == {"observed", "disattenuated", "disattenuated_omega",
+                                       "errors_in_variables", "latent"}
+
+
+def test_method_factor_in_doubt_does_not_hand_the_headline_to_the_inflated_latent_model():
+    # Truth (simulate's "baseline": equal method loadings .35, share .1225): in this sample the
+    # free-vs-equal test rejects by chance (p < .05), so method_loadings is doubtful and the
+    # method-factor estimate is kept out; the latent model, which ignores the substantial
+    # method variance the checks found, read .44 for a true .30 (assumption study, seed 20005).
+    from simulate import make_scenario
+
+    sc = make_scenario("baseline", 20005)
+    df, _ = simulate_survey(sc.spec)
+    r = analyze(df.to_csv(index=False).encode(), sc.design(), {"bootstrap": 0}, name="sim.csv").report
+    assert status(r, "method_loadings") == "doubtful"
+    assert status(r, "no_shared_method") == "fails"
+    p = path(r, "eng", "sup")
+    assert p["preferred"] == "method_factor_adjusted"      # in doubt, but the only one allowing for method
+    assert "should not be relied on" in p["preferred_reason"]
+    assert p["trust"]["level"] == "low"
+    lo, hi = p["estimates"]["method_factor_adjusted"]["ci"]
+    assert lo <= sc.true_paths[("eng", "sup")] <= hi
+    assert not (p["estimates"]["latent"]["ci"][0] <= sc.true_paths[("eng", "sup")])  # the latent misses it
+
+
+def test_marker_finding_counts_only_if_the_verdict_counts_it():
+    # Truth (simulate's "marker_without_method", seed 20035): the marker's items carry no method,
+    # the substantive items share .1225. The marker-identified factor found .04 at p = .042,
+    # which the verdict's Holm-adjusted family does not count (Holm 1979): the marker must then
+    # not be vouched for, and the verdict must not say "none".
+    from simulate import make_scenario
+
+    sc = make_scenario("marker_without_method", 20035)
+    df, _ = simulate_survey(sc.spec)
+    r = analyze(df.to_csv(index=False).encode(), sc.design(), {"bootstrap": 0}, name="sim.csv").report
+    assert status(r, "marker_carries_method") == "untestable"
+    assert r["method_variance"]["verdict"]["level"] != "none"

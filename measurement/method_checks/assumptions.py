@@ -17,12 +17,15 @@ import pandas as pd
 from scipy import stats
 
 from samesource.input.design import Design
+from samesource.method_checks.verdict import adjusted_tests
 
 STATUSES = ("holds", "doubtful", "fails", "untestable")
 
 MF, MM, MA = "method_factor_adjusted", "measured_method_adjusted", "marker_adjusted"
 MODEL_BASED = ("disattenuated_omega", "errors_in_variables", "latent", MF, MM)
 METHOD_CORRECTIONS = (MA, MF, MM)
+# estimates that correct unreliability at most, so they assume no shared method variance
+UNRELIABILITY_ONLY = ("observed", "disattenuated", "disattenuated_omega", "errors_in_variables", "latent")
 
 SHARE_FOUND = 0.03           # the verdict's "minor" share: below it a check found nothing worth naming
 AGREE_FACTOR = 3.0           # checks_agree: shares that differ by more than this factor disagree
@@ -75,8 +78,9 @@ def _p(test: dict | None) -> float | None:
     return None if not test else test.get("p")
 
 
-def _found(share: float | None, test: dict | None) -> bool:
-    p = _p(test)
+def _found(share: float | None, p: float | None) -> bool:
+    """A share worth naming with a significant test (``p`` Holm-adjusted with the verdict's
+    family: an unadjusted p of .04 that the verdict does not count is no finding here either)."""
     return bool(share is not None and share >= SHARE_FOUND and p is not None and p < 0.05)
 
 
@@ -92,13 +96,15 @@ def marker_carries_method(design: Design, mv: dict) -> Assumption | None:
     mk, mf, mm = mv.get("marker") or {}, mv.get("method_factor") or {}, mv.get("measured_method")
     evidence: list[str] = []
     mf_share = mf.get("method_share") if mf.get("usable_as_correction") else None
-    mf_found = _found(mf_share, (mf.get("tests") or {}).get("used_vs_none"))
-    rm_found = bool(mk and mk.get("r_m_p") is not None and mk["r_m_p"] < 0.05 and mk["r_m"] >= 0.05)
+    adj = adjusted_tests(mv)
+    mf_found = _found(mf_share, adj["method_factor"])
+    rm_found = bool(mk and adj["marker"] is not None and adj["marker"] < 0.05 and mk["r_m"] >= 0.05)
     evidence.append(f"marker-identified method factor: share {_fmt(mf_share)}{_ci(mf.get('method_share_ci'))}, "
-                    f"test p {_fmt(_p((mf.get('tests') or {}).get('used_vs_none')), 3)}")
+                    f"test p {_fmt(_p((mf.get('tests') or {}).get('used_vs_none')), 3)} "
+                    f"(Holm-adjusted {_fmt(adj['method_factor'], 3)})")
     if mk:
         evidence.append(f"r_M (the marker's smallest correlation with a substantive scale) {_fmt(mk.get('r_m'))}, "
-                        f"p {_fmt(mk.get('r_m_p'), 3)}")
+                        f"p {_fmt(mk.get('r_m_p'), 3)} (Holm-adjusted {_fmt(adj['marker'], 3)})")
         small = mk.get("smallest_substantive_r")
         if small:
             evidence.append(f"smallest correlation between two substantive scales {small['abs_r']:.2f} ({small['pair']}): "
@@ -110,7 +116,7 @@ def marker_carries_method(design: Design, mv: dict) -> Assumption | None:
     if mm:
         ok = mm.get("status") == "ok"
         s = mm.get("method_share") if ok else None
-        f = _found(s, (mm.get("tests") or {}).get("method_vs_none"))
+        f = _found(s, adj["measured_method"])
         evidence.append(f"measured method scale '{mm['method_construct']}': share {_fmt(s)}{_ci(mm.get('method_share_ci'))}"
                         + ("" if ok else f" (model status {mm.get('status')}: no evidence)"))
         if ok:
@@ -154,7 +160,7 @@ def marker_carries_method(design: Design, mv: dict) -> Assumption | None:
         checks=["marker", "cfa_marker", "method_factor"],
         rule="fails when the marker finds no method (share below 0.03 or r_M not significant) while a measured "
              "method scale or a method factor identified without the marker finds some (share at least 0.03, "
-             "p < .05; the factor without the marker counts only where the items' loadings differ within a "
+             "p < .05, every p Holm-adjusted as in the verdict; the factor without the marker counts only where the items' loadings differ within a "
              f"scale, as it is not identified otherwise); doubtful when another check finds over {AGREE_FACTOR:g} times the marker's share; "
              "untestable when no other check is informative (our rules)",
         source="Lindell & Whitney (2001) and Williams, Hartman & Cavazotte (2010) assume the marker shares the "
@@ -352,6 +358,30 @@ def estimate_stable(paths: list[dict]) -> Assumption:
         source="Efron & Tibshirani (1993) on bootstrap failures; White (1982) on comparing information-matrix and "
                "sandwich variances", remedy="robust standard errors are used" if worst == "doubtful" else None,
         by_estimate=by)
+
+
+# --- no_shared_method -----------------------------------------------------------------
+
+def no_shared_method(verdict: dict) -> Assumption:
+    """The estimates that correct unreliability only (latent model, disattenuation) assume the
+    answers share no method variance; the verdict says whether the checks found some. Without
+    this, a method-factor estimate kept out by a doubt about its loadings handed the headline to
+    the latent model, which the checks had just shown to be inflated (docs/coverage.md)."""
+    level = verdict.get("level")
+    status, message = {
+        "none": ("holds", "No check whose own assumptions hold found shared method variance worth naming, so the "
+                          "estimates that correct unreliability only are not known to be inflated by it."),
+        "minor": ("doubtful", "The checks found modest shared method variance: estimates that correct "
+                              "unreliability only are somewhat inflated by it."),
+        "substantial": ("fails", "The checks found substantial shared method variance: estimates that correct "
+                                 "unreliability only are inflated by it and are not used as the headline number."),
+    }.get(level, ("untestable", "This survey cannot tell whether the answers share method variance, so estimates "
+                                "that correct unreliability only may be inflated by it: see the bounds."))
+    return Assumption(
+        "no_shared_method", status, message, [f"method-variance verdict: {level}"], list(UNRELIABILITY_ONLY),
+        rule="holds when the verdict is none, doubtful when minor, fails when substantial, untestable when "
+             "undetermined (the verdict's rules: docs/method-variance.md)",
+        source="Podsakoff, MacKenzie, Lee & Podsakoff (2003) on the inflation of same-source associations")
 
 
 def method_assumptions(design: Design, frame: pd.DataFrame, mv: dict) -> list[Assumption]:

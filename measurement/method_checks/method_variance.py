@@ -537,9 +537,10 @@ def method_variance_section(design: Design, plan: MissingPlan, opts: AnalysisOpt
 def method_variance_verdict(design: Design, plan: MissingPlan, mv: dict) -> list:
     """The assumption checks that need only the method-variance sections, and the verdict
     weighed with them (written into ``mv["verdict"]``). Returns the assumptions."""
-    from samesource.method_checks.assumptions import method_assumptions
+    from samesource.method_checks.assumptions import method_assumptions, no_shared_method
 
     items = [it for c in design.constructs.values() for it in c.items]
     assumptions = method_assumptions(design, plan.frame[items], mv)
     mv["verdict"] = verdict(mv, assumptions)
+    assumptions.append(no_shared_method(mv["verdict"]))
     return assumptions

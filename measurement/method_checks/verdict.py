@@ -70,6 +70,24 @@ def _p(test: dict | None) -> float | None:
     return test.get("p") if test else None
 
 
+def adjusted_tests(mv: dict) -> dict[str, float | None]:
+    """Every test that can raise the level, as one family: Holm-adjusted, so a clean survey
+    raises a false alarm at most 5% of the time however many checks its design allows. The
+    assumption checks read the same adjusted p-values, so a check they count as finding method
+    variance is one the verdict counts too."""
+    mf = mv.get("method_factor")
+    plain = (mf or {}).get("without_marker")
+    mm, cm, mk = mv.get("measured_method"), mv.get("cfa_marker"), mv.get("marker")
+    return holm({
+        "method_factor": _p(mf["tests"].get("used_vs_none") or mf["tests"]["method_vs_none"])
+        if mf and mf.get("usable_as_correction") else None,
+        "without_marker": _p(plain.get("test")) if plain and plain.get("informative") else None,
+        "measured_method": _p(mm["tests"]["method_vs_none"]) if mm else None,
+        "cfa_marker": _p(cm["tests"].get("baseline_vs_equal")) if cm and cm.get("tests") else None,
+        "marker": mk.get("r_m_p") if mk else None,
+    })
+
+
 def verdict(mv: dict, assumptions: list | None = None) -> dict:
     """Weigh the method-variance sections (``report["method_variance"]`` without a verdict).
 
@@ -85,17 +103,7 @@ def verdict(mv: dict, assumptions: list | None = None) -> dict:
     mm = mv.get("measured_method")
     cm = mv.get("cfa_marker")
     mk = mv.get("marker")
-    # Every test that can raise the level is one family: Holm-adjusted, so a clean survey
-    # raises a false alarm at most 5% of the time however many checks its design allows.
-    family = {
-        "method_factor": _p(mf["tests"].get("used_vs_none") or mf["tests"]["method_vs_none"])
-        if mf and mf.get("usable_as_correction") else None,
-        "without_marker": _p(plain.get("test")) if plain and plain.get("informative") else None,
-        "measured_method": _p(mm["tests"]["method_vs_none"]) if mm else None,
-        "cfa_marker": _p(cm["tests"].get("baseline_vs_equal")) if cm and cm.get("tests") else None,
-        "marker": mk.get("r_m_p") if mk else None,
-    }
-    adj = holm(family)
+    adj = adjusted_tests(mv)
 
     def sig(name: str, level: float = 0.05) -> bool:
         return adj.get(name) is not None and adj[name] < level

@@ -54,6 +54,7 @@ COVERAGE_TARGET = (0.93, 0.97)
 BOUNDS_TARGET = 0.95
 FALSE_ALARM_TARGET = 0.05
 SHARE_FOR_NONE = 0.10
+CHECK_TARGET = 0.95  # an assumption check's expected status, in at least this share of samples
 
 
 def one_sample(task: tuple[str, int]) -> dict:
@@ -187,6 +188,9 @@ def summarize(rows: list[dict]) -> dict[str, ScenarioSummary]:
         else:
             for a in assumptions:
                 s.statuses.setdefault(a["id"], Counter())[a["status"]] += 1
+                if a["id"] == "method_loadings" and ms["usable"]:
+                    # "method_loadings/equal": the check's status where the equal-loading factor was used
+                    s.statuses.setdefault(f"method_loadings/{ms['loadings']}", Counter())[a["status"]] += 1
             if any(a["id"] == "marker_carries_method" and a["status"] == "fails" for a in assumptions):
                 s.instrument_failed_check += 1
                 s.none_when_instrument_failed_check += r["verdict"] == "none"
@@ -282,7 +286,9 @@ def targets(s: ScenarioSummary) -> list[Target]:
             continue
         k = sum(counts[e] for e in expected)
         n = sum(counts.values())
-        out.append(Target(f"check '{aid}' says {' or '.join(expected)}", f"{k}/{n}", k == n))
+        # each check tests at the 5% level, so it may be wrong by chance in about 5% of samples
+        out.append(Target(f"check '{aid}' says {' or '.join(expected)} (>= {CHECK_TARGET:.0%})",
+                          f"{k}/{n}", k >= CHECK_TARGET * n))
     return out
 
 
