@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import atexit
 import contextlib
+import io
 import math
 import multiprocessing
 import os
@@ -33,6 +34,9 @@ import time
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import FIRST_EXCEPTION, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
+from multiprocessing import context as mp_context
+from multiprocessing import forkserver, popen_forkserver, reduction, spawn
+from multiprocessing import util as mp_util
 from typing import Any, Protocol, runtime_checkable
 
 # Up to this many tasks the default is serial. Start-up is each worker importing the main
@@ -146,11 +150,67 @@ def _init_worker(blas_threads: int | None, owner_pid: int | None = None) -> None
         return
     for var in _BLAS_ENV:  # read by BLAS when numpy is first imported in this process
         os.environ[var] = str(blas_threads)
-    try:  # libraries already loaded (the forkserver preloads the main module)
+    try:  # libraries already loaded (by the main module or a preloaded one)
         from threadpoolctl import threadpool_limits
     except ImportError:  # pragma: no cover - threadpoolctl is a dependency
         return
     threadpool_limits(limits=blas_threads)
+
+
+# ------------------------------------------------ workers that do not run the caller's script
+
+class _PopenWithoutMain(popen_forkserver.Popen):
+    """Starts a forkserver worker without the caller's main module.
+
+    The standard start sends the path of the script that runs (``__main__``) to every new
+    worker, which imports it again before its first task: a script or notebook cell that calls
+    :func:`samesource.analyze` at top level, without an ``if __name__ == "__main__":`` guard,
+    would start the analysis again in each worker, and the worker dies. A worker here runs
+    only module-level functions of samesource (the contract of :meth:`LocalExecutor.map`), so
+    it needs nothing from ``__main__``. This is the standard ``_launch`` (the same in Python
+    3.11 to 3.13) with the main module's entries left out of the preparation data."""
+
+    def _launch(self, process_obj: Any) -> None:
+        prep_data = {k: v for k, v in spawn.get_preparation_data(process_obj._name).items()
+                     if k not in _MAIN_KEYS}
+        buf = io.BytesIO()
+        mp_context.set_spawning_popen(self)
+        try:
+            reduction.dump(prep_data, buf)
+            reduction.dump(process_obj, buf)
+        finally:
+            mp_context.set_spawning_popen(None)
+        self.sentinel, w = forkserver.connect_to_new_process(self._fds)
+        parent_w = os.dup(w)  # the child watches this end to see its parent go
+        self.finalizer = mp_util.Finalize(self, mp_util.close_fds, (parent_w, self.sentinel))
+        with open(w, "wb", closefd=True) as f:
+            f.write(buf.getbuffer())
+        self.pid = forkserver.read_signed(self.sentinel)
+
+
+_MAIN_KEYS = ("init_main_from_name", "init_main_from_path")
+
+
+class _ProcessWithoutMain(mp_context.ForkServerProcess):
+    _start_method = "forkserver"
+
+    @staticmethod
+    def _Popen(process_obj: Any) -> _PopenWithoutMain:
+        return _PopenWithoutMain(process_obj)
+
+
+class _ForkServerWithoutMain(mp_context.ForkServerContext):
+    Process = _ProcessWithoutMain
+
+
+def _context(start_method: str, import_main: bool) -> Any:
+    """The multiprocessing context of a pool. Forkserver workers start without the caller's
+    main module unless ``import_main``, so scripts and notebooks need no ``__main__`` guard;
+    "spawn" (the only method on Windows) imports it, as Python's documentation describes, and
+    needs one."""
+    if start_method == "forkserver" and not import_main:
+        return _ForkServerWithoutMain()
+    return multiprocessing.get_context(start_method)
 
 
 class LocalExecutor:
@@ -168,10 +228,15 @@ class LocalExecutor:
         "forkserver" (default where available) or "spawn". "fork" is refused (see module).
     blas_threads:
         BLAS/OpenMP threads per worker (default 1); ``None`` leaves them alone.
+    import_main:
+        Whether each forkserver worker imports the caller's main module before its first task
+        (default False: a script or notebook that runs the analysis at top level needs no
+        ``if __name__ == "__main__":`` guard). True is needed only when ``fn`` is defined in the
+        main script itself, which must then have the guard; "spawn" always imports it.
     """
 
     def __init__(self, max_workers: int | None = None, *, start_method: str | None = None,
-                 blas_threads: int | None = 1) -> None:
+                 blas_threads: int | None = 1, import_main: bool = False) -> None:
         n = (os.cpu_count() or 1) if max_workers is None else int(max_workers)
         if n < 1:
             raise ValueError(f"max_workers must be at least 1, got {max_workers}")
@@ -189,7 +254,7 @@ class LocalExecutor:
         self._workers = n
         self._start_method = start_method
         self._blas_threads = blas_threads
-        self._context = multiprocessing.get_context(start_method)
+        self._context = _context(start_method, import_main)
         self._pool: ProcessPoolExecutor | None = None
         self._lock = threading.Lock()
 
