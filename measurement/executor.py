@@ -112,10 +112,12 @@ class SerialExecutor:
     """Runs every task in the calling process, one after another (no pickling)."""
 
     def map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
+        """``[fn(item) for item in items]``."""
         return [fn(item) for item in items]
 
     @property
     def workers(self) -> int:
+        """One: the calling process."""
         return 1
 
     def __repr__(self) -> str:
@@ -260,10 +262,12 @@ class LocalExecutor:
 
     @property
     def workers(self) -> int:
+        """The number of worker processes."""
         return self._workers
 
     @property
     def start_method(self) -> str:
+        """How workers start: "forkserver" or "spawn"."""
         return self._start_method
 
     def _get_pool(self) -> ProcessPoolExecutor:
@@ -282,6 +286,7 @@ class LocalExecutor:
         pool.shutdown(wait=False, cancel_futures=True)
 
     def map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
+        """``[fn(item) for item in items]``, run in the workers, in the order of ``items``."""
         items = list(items)
         if not items:
             return []
