@@ -355,6 +355,21 @@ class LocalExecutor:
 
 _SHARED: list[LocalExecutor] = []
 _SHARED_LOCK = threading.Lock()
+_LIMIT: list[int] = []  # limit_workers(n): the shared pool's size in this process
+
+
+def limit_workers(n: int) -> None:
+    """Cap the worker processes :func:`default_executor` starts in this process at ``n``
+    (1: every batch runs serially, no pool). The service calls it in each job process, with
+    its one cap on processes shared out among the jobs that run at once."""
+    if n < 1:
+        raise ValueError(f"the worker limit must be at least 1, got {n}")
+    with _SHARED_LOCK:
+        _LIMIT[:] = [int(n)]
+
+
+def _pool_size() -> int:
+    return min(_LIMIT[0], os.cpu_count() or 1) if _LIMIT else (os.cpu_count() or 1)
 
 
 def _shared_local_executor() -> LocalExecutor:
@@ -362,18 +377,19 @@ def _shared_local_executor() -> LocalExecutor:
     # pays worker start-up once rather than per analysis.
     with _SHARED_LOCK:
         if not _SHARED:
-            _SHARED.append(LocalExecutor())
+            _SHARED.append(LocalExecutor(_pool_size()))
             atexit.register(_SHARED[0].shutdown)
         return _SHARED[0]
 
 
 def default_executor(n_tasks: int) -> Executor:
-    """The executor for ``n_tasks`` tasks: serial for tiny jobs or a single core, otherwise
-    the process-wide shared :class:`LocalExecutor` (its caller need not shut it down)."""
-    if n_tasks <= SERIAL_MAX_TASKS or (os.cpu_count() or 1) < 2:
+    """The executor for ``n_tasks`` tasks: serial for tiny jobs, a single core or a limit of
+    one worker (:func:`limit_workers`), otherwise the process-wide shared
+    :class:`LocalExecutor` (its caller need not shut it down)."""
+    if n_tasks <= SERIAL_MAX_TASKS or _pool_size() < 2:
         return SerialExecutor()
     return _shared_local_executor()
 
 
-__all__ = ["Executor", "LocalExecutor", "SerialExecutor", "default_executor", "SERIAL_MAX_TASKS",
+__all__ = ["Executor", "LocalExecutor", "SerialExecutor", "default_executor", "limit_workers", "SERIAL_MAX_TASKS",
            "StopRequested", "stop_requested", "stop_when"]

@@ -64,14 +64,19 @@ class Backend(Protocol):
 _WORKER_STORE: Store | None = None
 
 
-def _init_local_worker(database_url: str, service_pid: int) -> None:
+def _init_local_worker(database_url: str, service_pid: int, bootstrap_workers: int = 0) -> None:
     """Runs once in each pool process: its own database connection for progress, its own
     process group (so that it and every process it starts, the bootstrap's pool included,
-    can be ended together), and a watchdog that ends that group when the service is gone,
-    so a killed service leaves no analysis running behind it."""
+    can be ended together), a watchdog that ends that group when the service is gone,
+    so a killed service leaves no analysis running behind it, and its share of the
+    service's cap on processes for its bootstrap pool (``bootstrap_workers``; 0: no cap)."""
     global _WORKER_STORE
+    from samesource.executor import limit_workers
+
     from .db import Database
 
+    if bootstrap_workers:
+        limit_workers(bootstrap_workers)
     os.setpgid(0, 0)
     _WORKER_STORE = Store(Database(database_url))
     threading.Thread(target=_watch_service, args=(service_pid, os.getppid()), daemon=True,
@@ -123,11 +128,12 @@ class LocalBackend:
 
     name = "local"
 
-    def __init__(self, workers: int, database_url: str) -> None:
+    def __init__(self, workers: int, database_url: str, bootstrap_workers: int = 0) -> None:
         methods = multiprocessing.get_all_start_methods()
         self._context = multiprocessing.get_context("forkserver" if "forkserver" in methods
                                                     else "spawn")
         self._workers = workers
+        self._bootstrap_workers = bootstrap_workers  # per job process (0: one per core)
         self._url = database_url
         self._lock = threading.Lock()
         self._pool: ProcessPoolExecutor | None = None
@@ -140,7 +146,8 @@ class LocalBackend:
             if self._pool is None:
                 self._pool = ProcessPoolExecutor(
                     max_workers=self._workers, mp_context=self._context,
-                    initializer=_init_local_worker, initargs=(self._url, os.getpid()))
+                    initializer=_init_local_worker,
+                    initargs=(self._url, os.getpid(), self._bootstrap_workers))
             return self._pool
 
     def submit(self, spec: JobSpec) -> Future:
@@ -509,4 +516,4 @@ def make_backend(config: ServiceConfig, store: Store) -> Backend:
         from .dask_backend import DaskBackend
 
         return DaskBackend(config.dask_address, store)
-    return LocalBackend(config.workers, config.sqlalchemy_url)
+    return LocalBackend(config.workers, config.sqlalchemy_url, config.bootstrap_workers)
