@@ -1215,8 +1215,8 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
     stats_ = _fit_statistics(st, obj, best, m, Sig, warnings)
     info_failed = se.info_failed
     identified = not info_failed and not se.se_failed
-    if stats_.df < 0:
-        info_failed.append(f"it has more free parameters ({st.q}) than the {stats_.moments_count} "
+    if stats_["df"] < 0:
+        info_failed.append(f"it has more free parameters ({st.q}) than the {st.p * (st.p + 1) // 2} "
                            "variances and covariances it explains")
         identified = False
     converged = best.success and not best.capped
@@ -1231,13 +1231,8 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         heywood=heywood, elapsed=deadline.elapsed(), starts_tried=tried,
         iterations=best.iterations, x=x.copy(), params=table,
         implied=Sig.copy(), all_cov=pd.DataFrame(Om, index=list(st.names), columns=list(st.names)),
-        sample_cov=np.array(m.S_ref), means=means,
-        chi2=None if stats_.chi2 is None else float(stats_.chi2), df=int(stats_.df),
-        p=stats_.p, cfi=stats_.cfi, tli=stats_.tli, rmsea=stats_.rmsea, rmsea_ci=stats_.rmsea_ci,
-        srmr=stats_.srmr, loglik=float(stats_.loglik), aic=float(stats_.aic), bic=float(stats_.bic),
-        baseline_chi2=None if stats_.baseline_chi2 is None else float(stats_.baseline_chi2),
-        baseline_df=int(stats_.baseline_df), fmin=float(best.f), param_cov=se.param_cov,
-        param_cov_all=se.param_cov_all, _structure=st)
+        sample_cov=np.array(m.S_ref), means=means, **stats_, fmin=float(best.f),
+        param_cov=se.param_cov, param_cov_all=se.param_cov_all, _structure=st)
 
 
 @dataclass
@@ -1451,27 +1446,10 @@ def _parameter_table(st: _Structure, vals: np.ndarray, std: np.ndarray, se_free:
     })
 
 
-@dataclass
-class _FitStatistics:
-    chi2: float | None
-    df: int
-    moments_count: int
-    p: float | None
-    cfi: float | None
-    tli: float | None
-    rmsea: float | None
-    rmsea_ci: list[float] | None
-    srmr: float | None
-    loglik: float
-    aic: float
-    bic: float
-    baseline_chi2: float | None
-    baseline_df: int
-
-
 def _fit_statistics(st: _Structure, obj: Any, best: _Run, m: _StartMoments, Sig: np.ndarray,
-                    warnings: list[str]) -> _FitStatistics:
-    """Chi-square against the saturated model, the fit indices, log-likelihood, AIC and BIC."""
+                    warnings: list[str]) -> dict[str, Any]:
+    """Chi-square against the saturated model, the fit indices, log-likelihood, AIC and BIC,
+    as FitResult's fields of those names."""
     n = obj.n
     p = st.p
     q = st.q
@@ -1505,8 +1483,10 @@ def _fit_statistics(st: _Structure, obj: Any, best: _Run, m: _StartMoments, Sig:
     srmr = fx.srmr(m.S_ref, Sig)
     aic = -2.0 * ll + 2.0 * k_total
     bic = -2.0 * ll + k_total * math.log(n)
-    return _FitStatistics(chi2, df, moments_count, p_val, cfi_v, tli_v, rm, rm_ci, srmr, ll, aic, bic,
-                          base_chi2, base_df)
+    return {"chi2": None if chi2 is None else float(chi2), "df": int(df), "p": p_val, "cfi": cfi_v,
+            "tli": tli_v, "rmsea": rm, "rmsea_ci": rm_ci, "srmr": srmr, "loglik": float(ll),
+            "aic": float(aic), "bic": float(bic),
+            "baseline_chi2": None if base_chi2 is None else float(base_chi2), "baseline_df": int(base_df)}
 
 
 def _status_and_warnings(best: _Run, heywood: list[str], warnings: list[str], deadline: _Deadline, *,
