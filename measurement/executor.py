@@ -127,18 +127,33 @@ class SerialExecutor:
 OWNER_POLL_SECONDS = 1.0
 
 
-def _exit_when_owner_gone(owner_pid: int) -> None:
-    # A pool worker blocks on a task queue whose write end every worker also holds, so it never
-    # sees end-of-file when the process that owns the pool is killed: it would sit idle (or
-    # finish a long task) for ever. Polling the owner is the one signal that always arrives.
-    while True:
-        time.sleep(OWNER_POLL_SECONDS)
-        try:
-            os.kill(owner_pid, 0)
-        except ProcessLookupError:
-            os._exit(1)
-        except PermissionError:  # exists, owned by someone else: cannot be ours, but is alive
-            pass
+def process_alive(pid: int) -> bool:
+    """Whether a process with this id exists (one owned by another user counts as alive)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, owned by someone else
+        return True
+    return True
+
+
+def watch_owner(owner_pid: int, on_gone: Callable[[], None], *, parent_pid: int | None = None,
+                name: str = "samesource-owner-watch") -> None:
+    """In a worker process: a daemon thread that calls ``on_gone()`` once the owner process is
+    gone (or, with ``parent_pid``, once this process's parent is no longer that one), asked
+    every OWNER_POLL_SECONDS. The one watchdog of every pool we start: the bootstrap's (the
+    worker leaves) and the service's job processes (the job's whole process group ends).
+
+    A pool worker blocks on a task queue whose write end every worker also holds, so it never
+    sees end-of-file when the process that owns the pool is killed: it would sit idle (or
+    finish a long task) for ever. Polling the owner is the one signal that always arrives."""
+    def watch() -> None:
+        while process_alive(owner_pid) and (parent_pid is None or os.getppid() == parent_pid):
+            time.sleep(OWNER_POLL_SECONDS)
+        on_gone()
+
+    threading.Thread(target=watch, daemon=True, name=name).start()
 
 
 def _init_worker(blas_threads: int | None, owner_pid: int | None = None) -> None:
@@ -146,8 +161,7 @@ def _init_worker(blas_threads: int | None, owner_pid: int | None = None) -> None
     process per core, each multi-threaded, would oversubscribe the cores: the fitting engine
     measured 10x slower fits that way)."""
     if owner_pid is not None:
-        threading.Thread(target=_exit_when_owner_gone, args=(owner_pid,), daemon=True,
-                         name="samesource-owner-watch").start()
+        watch_owner(owner_pid, lambda: os._exit(1))
     if blas_threads is None:
         return
     for var in _BLAS_ENV:  # read by BLAS when numpy is first imported in this process
@@ -205,6 +219,22 @@ class _ForkServerWithoutMain(mp_context.ForkServerContext):
     Process = _ProcessWithoutMain
 
 
+def pool_context(start_method: str | None = None, import_main: bool = False) -> Any:
+    """The multiprocessing context of every pool we start (the bootstrap's and the service's
+    job processes): "forkserver" where the platform has it, else "spawn"; never "fork" (a
+    threaded process, as the service is, can hand a held lock to a forked child)."""
+    available = multiprocessing.get_all_start_methods()
+    if start_method is None:
+        start_method = "forkserver" if "forkserver" in available else "spawn"
+    if start_method == "fork":
+        raise ValueError("the 'fork' start method is unsafe in a threaded process; "
+                         "use 'forkserver' or 'spawn'")
+    if start_method not in available:
+        raise ValueError(f"start method {start_method!r} is not available here "
+                         f"(available: {', '.join(available)})")
+    return _context(start_method, import_main)
+
+
 def _context(start_method: str, import_main: bool) -> Any:
     """The multiprocessing context of a pool. Forkserver workers start without the caller's
     main module unless ``import_main``, so scripts and notebooks need no ``__main__`` guard;
@@ -242,21 +272,13 @@ class LocalExecutor:
         n = (os.cpu_count() or 1) if max_workers is None else int(max_workers)
         if n < 1:
             raise ValueError(f"max_workers must be at least 1, got {max_workers}")
-        available = multiprocessing.get_all_start_methods()
-        if start_method is None:
-            start_method = "forkserver" if "forkserver" in available else "spawn"
-        if start_method == "fork":
-            raise ValueError("the 'fork' start method is unsafe in a threaded process; "
-                             "use 'forkserver' or 'spawn'")
-        if start_method not in available:
-            raise ValueError(f"start method {start_method!r} is not available here "
-                             f"(available: {', '.join(available)})")
+        context = pool_context(start_method, import_main)
         if blas_threads is not None and blas_threads < 1:
             raise ValueError(f"blas_threads must be at least 1 or None, got {blas_threads}")
         self._workers = n
-        self._start_method = start_method
+        self._start_method = context.get_start_method()
         self._blas_threads = blas_threads
-        self._context = _context(start_method, import_main)
+        self._context = context
         self._pool: ProcessPoolExecutor | None = None
         self._lock = threading.Lock()
 
