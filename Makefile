@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint install clean bench study postgres-up test-postgres test-browser
+.PHONY: demo test lint install clean bench study postgres-up test-postgres test-browser docs
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
@@ -41,7 +41,12 @@ test-postgres: $(STAMP) postgres-up
 	SAMESOURCE_TEST_POSTGRES_URL=$(PG_TEST_URL) $(BIN)/python -m pytest -q tests/test_service_storage.py
 
 lint: $(STAMP)
-	$(BIN)/ruff check measurement service tests sample_surveys
+	$(BIN)/ruff check measurement service tests sample_surveys docs
+
+# docs/api.md from the docstrings of samesource's public names (tests/test_api_reference.py
+# fails when it is out of date)
+docs: $(STAMP)
+	$(BIN)/python docs/make_api.py
 
 # The report and bootstrap grid, then the big files (10k/100k/1M rows against the floor, the
 # bootstrap at 100,000 x 60 on the local pool and on a local Dask cluster): about an hour alone.

@@ -30,6 +30,14 @@ _PUBLIC = {
     "DesignError": "samesource.errors",
     "LocalExecutor": "samesource.executor",
     "SerialExecutor": "samesource.executor",
+    # one function per published statistic: answers in, a tidy DataFrame out
+    "alpha": "samesource.tidy",
+    "item_stats": "samesource.tidy",
+    "omega": "samesource.tidy",
+    "htmt": "samesource.tidy",
+    "harman": "samesource.tidy",
+    "marker_adjusted": "samesource.tidy",
+    "vif": "samesource.tidy",
 }
 
 __all__ = ["__version__", *_PUBLIC]

@@ -33,6 +33,7 @@ class InputError(ValueError):
         self.field = field
 
     def where(self) -> str:
+        """Where the problem is, in words: file, row, column or design field."""
         parts = []
         if self.file:
             parts.append(self.file)
@@ -49,6 +50,7 @@ class InputError(ValueError):
         return f"{where}: {self.message}" if where else self.message
 
     def to_dict(self) -> dict:
+        """The error as the HTTP API returns it: code, message (with where) and field."""
         return {
             "code": self.code,
             "message": str(self),

@@ -16,6 +16,9 @@ CHECK_MAX = 1000  # simulated surveys per scenario: each is a whole analysis (fi
 
 @dataclass(frozen=True)
 class AnalysisOptions:
+    """The options of an analysis (keyword arguments of :func:`samesource.analyze`, the command
+    line's flags, the HTTP API's "options"), each checked for its type and range."""
+
     missing: str = "listwise"        # "listwise" or "fiml" (full-information ML)
     drop_flagged: bool = False       # drop rows flagged by screening before the analysis
     fit_time_limit: float = 60.0     # seconds, per model fit
@@ -29,6 +32,7 @@ class AnalysisOptions:
 
     @classmethod
     def from_dict(cls, obj: Mapping[str, Any] | None) -> AnalysisOptions:
+        """Options from {NAME: value}; an unknown name or a bad value raises InputError naming it."""
         if obj is None:
             return cls()
         if not isinstance(obj, Mapping):
@@ -47,6 +51,7 @@ class AnalysisOptions:
         return opts
 
     def validate(self) -> None:
+        """Raise InputError (field "options.NAME") for a value of the wrong type or range."""
         def bad(name: str, msg: str) -> InputError:
             return InputError(msg, code="bad_options", field=f"options.{name}")
 
@@ -70,6 +75,7 @@ class AnalysisOptions:
             raise bad("sheet", "must be a worksheet name")
 
     def to_dict(self) -> dict:
+        """The options as report.json's "options" shows them."""
         d = asdict(self)
         if not d["check_corrections"]:  # added later: shown when asked for, so earlier reports keep their keys
             del d["check_corrections"]

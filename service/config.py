@@ -29,6 +29,10 @@ class ServiceConfig:
     max_upload_mb: float = DEFAULT_MAX_UPLOAD_MB
     executor: str = "local"  # "local" or "dask://HOST:PORT"
     job_workers: int = 0  # analyses at once; 0: one per core (at least 1)
+    # The one cap on computing processes for the whole service: the analyses running at once
+    # share it for their bootstrap pools (each gets max_processes // workers, at least 1, and
+    # runs its replicates serially when that is 1). 0: one per core.
+    max_processes: int = 0
     lease_seconds: float = 30.0  # a running analysis whose heartbeat is older is orphaned
     max_attempts: int = 3  # interrupted this many times: failed, not re-queued
     run_jobs: bool = True  # False: accept analyses but leave them queued (another process runs them)
@@ -78,6 +82,13 @@ class ServiceConfig:
         return self.job_workers or max(1, os.cpu_count() or 1)
 
     @property
+    def bootstrap_workers(self) -> int:
+        """Worker processes each running analysis's bootstrap may use: the service's cap on
+        processes shared out among the analyses that run at once (at least 1: serial)."""
+        cap = self.max_processes or max(1, os.cpu_count() or 1)
+        return max(1, cap // self.workers)
+
+    @property
     def running_per_tenant(self) -> int:
         """Analyses of one tenant that may run at once."""
         return self.tenant_max_running or max(1, self.workers // 2)
@@ -99,6 +110,9 @@ class ServiceConfig:
         if self.job_workers < 0 or self.max_attempts < 1 or self.lease_seconds <= 0:
             raise ConfigError("SAMESOURCE_JOB_WORKERS must be 0 or more, SAMESOURCE_MAX_ATTEMPTS "
                               "1 or more and SAMESOURCE_JOB_LEASE_SECONDS above 0")
+        if self.max_processes < 0:
+            raise ConfigError(f"SAMESOURCE_MAX_PROCESSES must be 0 (one per core) or more, "
+                              f"got {self.max_processes!r}")
         for name, value, low in _limits(self):
             if not value >= low:
                 raise ConfigError(f"{name} must be a number of at least {low:g}, got {value!r}")
@@ -122,6 +136,7 @@ _ENV: dict[str, tuple[str, Any]] = {
     "SAMESOURCE_MAX_UPLOAD_MB": ("max_upload_mb", float),
     "SAMESOURCE_EXECUTOR": ("executor", str),
     "SAMESOURCE_JOB_WORKERS": ("job_workers", int),
+    "SAMESOURCE_MAX_PROCESSES": ("max_processes", int),
     "SAMESOURCE_JOB_LEASE_SECONDS": ("lease_seconds", float),
     "SAMESOURCE_MAX_ATTEMPTS": ("max_attempts", int),
     "SAMESOURCE_STORAGE_RETRY_SECONDS": ("storage_retry_seconds", float),

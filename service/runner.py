@@ -23,7 +23,6 @@ or fail with the reason once they were interrupted ``max_attempts`` times.
 from __future__ import annotations
 
 import logging
-import multiprocessing
 import os
 import secrets
 import signal
@@ -34,6 +33,8 @@ from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 from typing import Protocol
+
+from samesource.executor import process_alive
 
 from .config import ServiceConfig
 from .errors import safe_trace
@@ -64,34 +65,23 @@ class Backend(Protocol):
 _WORKER_STORE: Store | None = None
 
 
-def _init_local_worker(database_url: str, service_pid: int) -> None:
+def _init_local_worker(database_url: str, service_pid: int, bootstrap_workers: int = 0) -> None:
     """Runs once in each pool process: its own database connection for progress, its own
     process group (so that it and every process it starts, the bootstrap's pool included,
-    can be ended together), and a watchdog that ends that group when the service is gone,
-    so a killed service leaves no analysis running behind it."""
+    can be ended together), a watchdog that ends that group when the service is gone,
+    so a killed service leaves no analysis running behind it, and its share of the
+    service's cap on processes for its bootstrap pool (``bootstrap_workers``; 0: no cap)."""
     global _WORKER_STORE
+    from samesource.executor import limit_workers, watch_owner
+
     from .db import Database
 
+    if bootstrap_workers:
+        limit_workers(bootstrap_workers)
     os.setpgid(0, 0)
     _WORKER_STORE = Store(Database(database_url))
-    threading.Thread(target=_watch_service, args=(service_pid, os.getppid()), daemon=True,
-                     name="samesource-watchdog").start()
-
-
-def _watch_service(service_pid: int, parent_pid: int) -> None:
-    while _alive(service_pid) and os.getppid() == parent_pid:
-        time.sleep(1.0)
-    os.killpg(0, signal.SIGKILL)
-
-
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
+    watch_owner(service_pid, lambda: os.killpg(0, signal.SIGKILL), parent_pid=os.getppid(),
+                name="samesource-watchdog")
 
 
 def _run_local(spec: JobSpec) -> Outcome:
@@ -123,11 +113,14 @@ class LocalBackend:
 
     name = "local"
 
-    def __init__(self, workers: int, database_url: str) -> None:
-        methods = multiprocessing.get_all_start_methods()
-        self._context = multiprocessing.get_context("forkserver" if "forkserver" in methods
-                                                    else "spawn")
+    def __init__(self, workers: int, database_url: str, bootstrap_workers: int = 0) -> None:
+        from samesource.executor import pool_context
+
+        # the one way our pools start (never "fork"); a job needs nothing from the service's
+        # main script (the console script, or a test runner), so it is not imported again
+        self._context = pool_context()
         self._workers = workers
+        self._bootstrap_workers = bootstrap_workers  # per job process (0: one per core)
         self._url = database_url
         self._lock = threading.Lock()
         self._pool: ProcessPoolExecutor | None = None
@@ -140,7 +133,8 @@ class LocalBackend:
             if self._pool is None:
                 self._pool = ProcessPoolExecutor(
                     max_workers=self._workers, mp_context=self._context,
-                    initializer=_init_local_worker, initargs=(self._url, os.getpid()))
+                    initializer=_init_local_worker,
+                    initargs=(self._url, os.getpid(), self._bootstrap_workers))
             return self._pool
 
     def submit(self, spec: JobSpec) -> Future:
@@ -215,7 +209,7 @@ def runner_is_dead(runner: str) -> bool:
         return True
     if host != socket.gethostname() or pid_n == os.getpid():
         return False
-    return not _alive(pid_n)
+    return not process_alive(pid_n)
 
 
 class JobRunner:
@@ -509,4 +503,4 @@ def make_backend(config: ServiceConfig, store: Store) -> Backend:
         from .dask_backend import DaskBackend
 
         return DaskBackend(config.dask_address, store)
-    return LocalBackend(config.workers, config.sqlalchemy_url)
+    return LocalBackend(config.workers, config.sqlalchemy_url, config.bootstrap_workers)

@@ -402,6 +402,54 @@ def test_executors_and_default():
         assert isinstance(big, LocalExecutor) and big is default_executor(5000)  # shared
 
 
+def test_a_plain_script_needs_no_main_guard(tmp_path):
+    # Python's documentation (multiprocessing, "Safe importing of main module"): spawn and
+    # forkserver workers import the main script again, so a script without the guard would
+    # start its work again in each worker. Ours leave the main module out (import_main=False);
+    # with import_main=True the same script fails as the documentation says.
+    import subprocess
+    import sys
+    import textwrap
+
+    script = tmp_path / "plain.py"
+    script.write_text(textwrap.dedent("""
+        import sys
+        from samesource.executor import LocalExecutor
+        ex = LocalExecutor(2, import_main=sys.argv[1] == "main")
+        print(ex.map(abs, list(range(-6, 0))), flush=True)
+        ex.shutdown()
+    """), encoding="utf-8")
+    run = [sys.executable, str(script)]
+    done = subprocess.run([*run, "no-main"], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "[6, 5, 4, 3, 2, 1]"
+    guarded = subprocess.run([*run, "main"], capture_output=True, text=True, timeout=120)
+    assert guarded.returncode != 0 and "RuntimeError" in guarded.stderr
+
+
+def test_one_cap_on_processes_for_the_service():
+    # in a fresh process: limit_workers changes the process-wide default pool
+    import subprocess
+    import sys
+
+    code = """
+from samesource.executor import LocalExecutor, SerialExecutor, default_executor, limit_workers
+from samesource.service.config import ServiceConfig
+assert ServiceConfig(job_workers=2, max_processes=8).bootstrap_workers == 4
+assert ServiceConfig(job_workers=3, max_processes=2).bootstrap_workers == 1
+assert ServiceConfig(job_workers=1, max_processes=0).bootstrap_workers >= 1
+limit_workers(1)
+assert isinstance(default_executor(1000), SerialExecutor)  # a share of one: no pool at all
+limit_workers(2)
+big = default_executor(1000)
+import os
+assert (os.cpu_count() or 1) < 2 or (isinstance(big, LocalExecutor) and big.workers == 2)
+print("ok")
+"""
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0 and done.stdout.strip() == "ok", done.stderr
+
+
 def test_map_keeps_order_and_reraises_task_errors(pool):
     assert pool.map(abs, list(range(-20, 0))) == list(range(20, 0, -1))
     assert pool.map(abs, []) == []

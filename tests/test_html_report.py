@@ -228,6 +228,24 @@ SECTIONS = ["answer", "cautions", "paths", "sensitivity", "reliability", "loadin
             "data", "cautions-again"]
 
 
+@pytest.mark.parametrize("name", ["sample", "boot_teams"])
+def test_the_table_of_contents_is_the_section_registry(reports, name):
+    from samesource.output.sections import SECTIONS as REGISTRY
+    from samesource.output.tables import report_tables
+
+    report = reports[name]
+    page = Page(render_html(report))
+    toc = re.search(r'<nav class="toc".*?</nav>', render_html(report), re.S).group(0)
+    listed = re.findall(r'<li><a href="#([^"]+)">', toc)
+    shown = [s.id for s in REGISTRY if s.id in page.ids()]
+    assert listed == shown and set(SECTIONS) - {"answer", "cautions"} <= set(listed)
+    # every table the tables module writes belongs to exactly one section
+    owners = [t for s in REGISTRY for t in s.tables]
+    assert len(owners) == len(set(owners))
+    assert set(report_tables(report)) <= set(owners)
+    assert len({s.id for s in REGISTRY}) == len(REGISTRY)
+
+
 @pytest.mark.parametrize("name", ["sample", "full", "hostile", "no_paths", "boot_teams"])
 def test_page_parses_and_holds_every_section(reports, name):
     report = reports[name]

@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from samesource.corrections.bounds import PUBLISHED_SHARES, path_bounds, plausible_shares
-from samesource.corrections.paths import METHODS, NOTES, PathEstimator, wald
+from samesource.corrections.paths import METHODS, NOTES, PathEstimator, preference_order, wald
 from samesource.corrections.sensitivity import sensitivity_curves
 from samesource.engine.builders import path_constructs
 from samesource.engine.fitting import Moments
@@ -24,19 +24,9 @@ from samesource.output.report_json import finite_or_none
 SMALL_SAMPLE = 200
 AUTO_BOOTSTRAP = 300
 
-# Which estimate the report leads with: the best-identified correction that passed its checks.
-PREFERENCE = [
-    ("method_factor_adjusted", "marker", "the marker-identified method factor passed its checks: it corrects "
-                                         "unreliability and the shared method the marker identifies"),
-    ("measured_method_adjusted", None, "the measured method construct's model fitted cleanly: it corrects "
-                                       "unreliability and the method variance the method scale measures"),
-    ("method_factor_adjusted", "plain", "the plain method factor passed its identification checks"),
-    ("latent", None, "no method-variance correction passed its checks, so the latent model leads: it corrects "
-                     "unreliability but not shared method"),
-    ("errors_in_variables", None, "the latent model did not fit cleanly; the single-indicator model corrects "
-                                  "unreliability only"),
-    ("observed", None, "no corrected estimate could be computed"),
-]
+# Which estimate the report leads with: the best-identified correction that passed its checks
+# (each correction's ``preference`` in corrections/paths.py CORRECTIONS, by rank).
+PREFERENCE = preference_order()
 
 
 def bootstrap_replicates(opts: AnalysisOptions, rows: int) -> int:

@@ -1189,76 +1189,138 @@ def refit(previous: FitResult, data: Moments | RawData, *, time_limit: float = 6
 def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_starts: int,
          start: Any, seed: int, compute_se: bool, warm_x: np.ndarray | None,
          max_iter: int = 1000) -> FitResult:
+    """The fit in its phases: the moments to start from, the starting points, a run from
+    each, the best solution, its standard errors, the parameter table, the fit statistics
+    and the status flags."""
     obj = _objective_for(st, data)
     fiml = isinstance(obj, _FIMLObjective)
     warnings: list[str] = []
-    capped = False
-    sat = None
-    if fiml:
-        if obj.dropped:
-            warnings.append(f"{obj.dropped} rows with no answer on any of the model's "
-                            "variables were left out.")
-        sat = obj.saturated(deadline)
-        if sat is None:
-            capped = True
-            S_start = np.diag(obj.ac_var)
-        else:
-            S_start = sat[1]
-        S_ref = S_start
-    else:
-        S_start = obj.S
-        S_ref = obj.S
+    m = _start_moments(obj, deadline, warnings)
+    capped = m.capped
+    starts, warm_full = _candidate_starts(st, obj, m, start=start, seed=seed, n_starts=n_starts,
+                                          warm_x=warm_x)
+    runs, tried, capped = _run_starts(st, obj, m, starts, warm_full, deadline, capped=capped,
+                                      max_iter=max_iter, warm=warm_x is not None)
+    best, heywood = _best_run(st, obj, runs, warnings)
 
-    def with_means(x: np.ndarray) -> np.ndarray:
-        if not fiml:
+    x_all = best.x
+    x = x_all[: st.q]
+    E, Om = st.moments(x)
+    Sig = Om[: st.p, : st.p]
+    vals = st.values(x)
+    se = _standard_errors(st, obj, best, vals, st.param_unit(Om), deadline, compute_se=compute_se,
+                          capped=capped)
+    capped = se.capped
+    table = _parameter_table(st, vals, st.standardized(x), se.se_free, se.std_se)
+    stats_ = _fit_statistics(st, obj, best, m, Sig, warnings)
+    info_failed = se.info_failed
+    identified = not info_failed and not se.se_failed
+    if stats_["df"] < 0:
+        info_failed.append(f"it has more free parameters ({st.q}) than the {st.p * (st.p + 1) // 2} "
+                           "variances and covariances it explains")
+        identified = False
+    converged = best.success and not best.capped
+    status = _status_and_warnings(best, heywood, warnings, deadline, capped=capped, converged=converged,
+                                  identified=identified, tried=tried, n_starts=len(starts),
+                                  unidentified=info_failed + se.se_failed)
+
+    means = pd.Series(x_all[st.q:], index=list(st.observed), name="mean") if fiml else None
+    return FitResult(
+        spec=st.spec, estimator=obj.estimator, n=obj.n, converged=converged, proper=not heywood,
+        identified=identified, capped=capped, status=status, warnings=warnings,
+        heywood=heywood, elapsed=deadline.elapsed(), starts_tried=tried,
+        iterations=best.iterations, x=x.copy(), params=table,
+        implied=Sig.copy(), all_cov=pd.DataFrame(Om, index=list(st.names), columns=list(st.names)),
+        sample_cov=np.array(m.S_ref), means=means, **stats_, fmin=float(best.f),
+        param_cov=se.param_cov, param_cov_all=se.param_cov_all, _structure=st)
+
+
+@dataclass
+class _StartMoments:
+    """The covariance matrix the starts are made from and the one fit is judged against
+    (ML: the sample's; FIML: the saturated model's EM estimate), and FIML's saturated fit."""
+
+    fiml: bool
+    S_start: np.ndarray
+    S_ref: np.ndarray
+    sat: Any          # FIML: (means, covariance, log-likelihood) of the saturated model, or None
+    capped: bool      # the saturated model ran out of time
+
+    def with_means(self, obj: Any, x: np.ndarray) -> np.ndarray:
+        """A parameter vector with FIML's saturated means appended (ML: unchanged)."""
+        if not self.fiml:
             return x
-        mu = obj.ac_mean if sat is None else sat[0]
+        mu = obj.ac_mean if self.sat is None else self.sat[0]
         return np.concatenate([x, mu])
 
-    # Candidate starts.
-    safe = _safe_start(st, S_start)
+
+def _start_moments(obj: Any, deadline: _Deadline, warnings: list[str]) -> _StartMoments:
+    if not isinstance(obj, _FIMLObjective):
+        return _StartMoments(False, obj.S, obj.S, None, False)
+    if obj.dropped:
+        warnings.append(f"{obj.dropped} rows with no answer on any of the model's "
+                        "variables were left out.")
+    sat = obj.saturated(deadline)
+    S_start = np.diag(obj.ac_var) if sat is None else sat[1]
+    return _StartMoments(True, S_start, S_start, sat, sat is None)
+
+
+def _candidate_starts(st: _Structure, obj: Any, m: _StartMoments, *, start: Any, seed: int,
+                      n_starts: int, warm_x: np.ndarray | None) -> tuple[list[np.ndarray], np.ndarray | None]:
+    """The starting points: a warm start alone, or the given start, the data-driven rule and
+    random perturbations of it, ``n_starts`` in all; and FIML's full warm vector (with means)."""
     starts: list[np.ndarray] = []
     warm_full = None
     if warm_x is not None:
         starts.append(warm_x[: st.q])
-        if fiml and len(warm_x) == obj.nx:
+        if m.fiml and len(warm_x) == obj.nx:
             warm_full = warm_x
-    else:
-        rule = _rule_start(st, S_start)
-        if start is not None:
-            starts.append(_start_from(st, start, rule))
-        starts.append(rule)
-        rng = np.random.Generator(np.random.PCG64(seed))
-        while len(starts) < max(n_starts, 1):
-            starts.append(_perturb(st, rule, S_start, rng))
-        starts = starts[: max(n_starts, 1)]
+        return starts, warm_full
+    rule = _rule_start(st, m.S_start)
+    if start is not None:
+        starts.append(_start_from(st, start, rule))
+    starts.append(rule)
+    rng = np.random.Generator(np.random.PCG64(seed))
+    while len(starts) < max(n_starts, 1):
+        starts.append(_perturb(st, rule, m.S_start, rng))
+    return starts[: max(n_starts, 1)], warm_full
 
+
+def _run_starts(st: _Structure, obj: Any, m: _StartMoments, starts: list[np.ndarray],
+                warm_full: np.ndarray | None, deadline: _Deadline, *, capped: bool, max_iter: int,
+                warm: bool) -> tuple[list[tuple[_Run, list[str]]], int, bool]:
+    """A run of the optimizer from each start until the deadline: (run, its Heywood cases)
+    for each start that began inside the admissible region, the starts tried, and capped."""
     runs: list[tuple[_Run, list[str]]] = []
     tried = 0
-    safe_full = with_means(safe)
+    safe_full = m.with_means(obj, _safe_start(st, m.S_start))
     for k, x0 in enumerate(starts):
         if runs and (capped or deadline.over()):
             capped = True
             break
-        xs = warm_full if (k == 0 and warm_full is not None) else with_means(x0)
+        xs = warm_full if (k == 0 and warm_full is not None) else m.with_means(obj, x0)
         xs = _feasible(obj, xs, safe_full)
         tried += 1
         if xs is None:
             continue
         # Even past the deadline the first start is evaluated, so there is a point to report.
         # A warm start is near a solution: begin with almost undamped scoring steps.
-        run = _optimize(obj, xs, deadline, max_iter=max_iter, lam0=1e-6 if warm_x is not None else 1e-3)
+        run = _optimize(obj, xs, deadline, max_iter=max_iter, lam0=1e-6 if warm else 1e-3)
         if run is None:
             continue
-        runs.append((run, _check_proper(st, run.x[: st.q], S_ref)))
+        runs.append((run, _check_proper(st, run.x[: st.q], m.S_ref)))
         if run.capped:
             capped = True
             break
-
     if not runs:
         raise DataError(f"{st.spec.name}: no starting point gave a positive definite "
                         "model-implied covariance matrix; check the fixed values of the model")
+    return runs, tried, capped
 
+
+def _best_run(st: _Structure, obj: Any, runs: list[tuple[_Run, list[str]]],
+              warnings: list[str]) -> tuple[_Run, list[str]]:
+    """The proper run with the lowest discrepancy (any run when none is proper)."""
     proper_runs = [r for r in runs if not r[1]]
     pool = proper_runs or runs
     best, heywood = min(pool, key=lambda r: r[0].f)
@@ -1272,18 +1334,27 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         if spread > 0.01:
             warnings.append(f"Starting points reached different solutions (chi-square spread "
                             f"{spread:.3g}); the best one is reported.")
+    return best, heywood
 
-    x_all = best.x
-    x = x_all[: st.q]
+
+@dataclass
+class _StandardErrors:
+    se_free: np.ndarray          # per free parameter (NaN without compute_se)
+    std_se: np.ndarray           # per spec parameter, of the standardized value
+    param_cov: np.ndarray | None
+    param_cov_all: np.ndarray | None
+    info_failed: list[str]       # why the information matrix says unidentified
+    se_failed: list[str]         # standard errors that exploded
+    capped: bool
+
+
+def _standard_errors(st: _Structure, obj: Any, best: _Run, vals: np.ndarray, unit: np.ndarray,
+                     deadline: _Deadline, *, compute_se: bool, capped: bool) -> _StandardErrors:
+    """Standard errors from the information matrix (FIML: observed, by numerical
+    differentiation; ML: expected), and the identification checks made on them."""
     q = st.q
-    mo = st.moments(x)
-    E, Om = mo
-    Sig = Om[: st.p, : st.p]
-    vals = st.values(x)
-    std = st.standardized(x)
-    unit = st.param_unit(Om)
-
-    # Standard errors and identification.
+    x_all = best.x
+    x = x_all[:q]
     se_free = np.full(q, np.nan)
     std_se = np.full(len(vals), np.nan)
     info = None
@@ -1291,7 +1362,7 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
     param_cov_all = None
     info_failed: list[str] = []
     se_failed: list[str] = []
-    if fiml and compute_se and not capped:
+    if isinstance(obj, _FIMLObjective) and compute_se and not capped:
         try:
             obj.deadline = deadline
             H = _num_jacobian(obj.gradient, x_all, deadline)
@@ -1345,11 +1416,14 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
                                      f" is {std_se[j]:.3g}")
             except _TimeUp:
                 capped = True
-    identified = not info_failed and not se_failed
     if not compute_se:
         se_free = np.full(q, np.nan)
+    return _StandardErrors(se_free, std_se, param_cov, param_cov_all, info_failed, se_failed, capped)
 
-    # Table of parameters.
+
+def _parameter_table(st: _Structure, vals: np.ndarray, std: np.ndarray, se_free: np.ndarray,
+                     std_se: np.ndarray) -> pd.DataFrame:
+    """One row per spec parameter: estimate, SE, z, p, standardized value and its SE."""
     free = st.pidx >= 0
     se_col = np.full(len(vals), np.nan)
     se_col[free] = se_free[st.pidx[free]]
@@ -1357,7 +1431,7 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         z = np.where(free, vals / se_col, np.nan)
     pval = np.where(np.isfinite(z), 2.0 * stats.norm.sf(np.abs(z)), np.nan)
     spec = st.spec
-    table = pd.DataFrame({
+    return pd.DataFrame({
         "op": [p.op for p in spec.params],
         "lhs": [p.lhs for p in spec.params],
         "rhs": [p.rhs for p in spec.params],
@@ -1371,14 +1445,20 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         "std_se": std_se,
     })
 
-    # Fit statistics.
+
+def _fit_statistics(st: _Structure, obj: Any, best: _Run, m: _StartMoments, Sig: np.ndarray,
+                    warnings: list[str]) -> dict[str, Any]:
+    """Chi-square against the saturated model, the fit indices, log-likelihood, AIC and BIC,
+    as FitResult's fields of those names."""
     n = obj.n
     p = st.p
+    q = st.q
     moments_count = p * (p + 1) // 2
     df = moments_count - q
     base_df = p * (p - 1) // 2
     k_total = q + p  # means are estimated (saturated) in the log-likelihood
-    if fiml:
+    sat = m.sat
+    if m.fiml:
         ll = obj.loglik(best.f)
         if sat is not None:
             chi2 = max(-2.0 * (ll - sat[2]), 0.0)
@@ -1400,20 +1480,24 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         p_val = cfi_v = tli_v = rm = rm_ci = None
         warnings.append("The saturated model could not be fitted in time, so chi-square "
                         "based fit indices are not available.")
-    srmr = fx.srmr(S_ref, Sig)
+    srmr = fx.srmr(m.S_ref, Sig)
     aic = -2.0 * ll + 2.0 * k_total
     bic = -2.0 * ll + k_total * math.log(n)
-    if df < 0:
-        info_failed.append(f"it has more free parameters ({q}) than the {moments_count} "
-                           "variances and covariances it explains")
-        identified = False
+    return {"chi2": None if chi2 is None else float(chi2), "df": int(df), "p": p_val, "cfi": cfi_v,
+            "tli": tli_v, "rmsea": rm, "rmsea_ci": rm_ci, "srmr": srmr, "loglik": float(ll),
+            "aic": float(aic), "bic": float(bic),
+            "baseline_chi2": None if base_chi2 is None else float(base_chi2), "baseline_df": int(base_df)}
 
-    converged = best.success and not best.capped
-    proper = not heywood
+
+def _status_and_warnings(best: _Run, heywood: list[str], warnings: list[str], deadline: _Deadline, *,
+                         capped: bool, converged: bool, identified: bool, tried: int, n_starts: int,
+                         unidentified: list[str]) -> str:
+    """The fit's status (the first of capped, not_converged, unidentified, improper, else ok),
+    with a plain sentence in ``warnings`` for each flag that is raised."""
     if capped:
         limit = deadline.end - deadline.t0
         warnings.insert(0, f"The fit was stopped at its time limit of {limit:g} s after "
-                        f"{tried} of {len(starts)} starting points; the estimates are the best "
+                        f"{tried} of {n_starts} starting points; the estimates are the best "
                         "point reached and may not be a solution.")
     if not converged and not best.capped:
         ridge = (f"; the discrepancy improved by less than {STALL_CHI2:g} chi-square units in "
@@ -1424,34 +1508,17 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
                         f"iterations{ridge}).")
     if heywood:
         warnings.append("Improper solution (Heywood case): " + "; ".join(heywood) + ".")
-    if info_failed or se_failed:
-        warnings.append("The model looks unidentified: " + "; ".join(info_failed + se_failed)
-                        + ".")
+    if unidentified:
+        warnings.append("The model looks unidentified: " + "; ".join(unidentified) + ".")
     if capped:
-        status = "capped"
-    elif not converged:
-        status = "not_converged"
-    elif not identified:
-        status = "unidentified"
-    elif not proper:
-        status = "improper"
-    else:
-        status = "ok"
-
-    means = pd.Series(x_all[q:], index=list(st.observed), name="mean") if fiml else None
-    return FitResult(
-        spec=spec, estimator=obj.estimator, n=n, converged=converged, proper=proper,
-        identified=identified, capped=capped, status=status, warnings=warnings,
-        heywood=heywood, elapsed=deadline.elapsed(), starts_tried=tried,
-        iterations=best.iterations, x=x.copy(), params=table,
-        implied=Sig.copy(), all_cov=pd.DataFrame(Om, index=list(st.names), columns=list(st.names)),
-        sample_cov=np.array(S_ref), means=means,
-        chi2=None if chi2 is None else float(chi2), df=int(df),
-        p=p_val, cfi=cfi_v, tli=tli_v, rmsea=rm, rmsea_ci=rm_ci, srmr=srmr,
-        loglik=float(ll), aic=float(aic), bic=float(bic),
-        baseline_chi2=None if base_chi2 is None else float(base_chi2),
-        baseline_df=int(base_df), fmin=float(best.f), param_cov=param_cov,
-        param_cov_all=param_cov_all, _structure=st)
+        return "capped"
+    if not converged:
+        return "not_converged"
+    if not identified:
+        return "unidentified"
+    if heywood:
+        return "improper"
+    return "ok"
 
 
 def delta_method(fit: FitResult, fun: Callable[[np.ndarray], float],

@@ -61,6 +61,10 @@ class Path:
 
 @dataclass(frozen=True)
 class Design:
+    """A validated study design (docs/design-file.md): the constructs with their items,
+    reverse keys and roles, the key paths, the answer range, missing codes, id and group
+    columns, answer texts and second sources. Made by :func:`parse_design` or :func:`load_design`."""
+
     constructs: dict[str, Construct]
     paths: tuple[Path, ...] = ()
     scale_min: float | None = None
@@ -72,21 +76,24 @@ class Design:
     sources: dict[str, Source] = field(default_factory=dict)
     raw: dict = field(default_factory=dict, compare=False, repr=False)
 
-    # Constructs by role, in design order.
     def by_role(self, role: str) -> list[Construct]:
+        """The constructs of one role ("substantive", "marker", "method"), in design order."""
         return [c for c in self.constructs.values() if c.role == role]
 
     @property
     def substantive(self) -> list[Construct]:
+        """The substantive constructs, in design order."""
         return self.by_role("substantive")
 
     @property
     def marker(self) -> Construct | None:
+        """The marker construct (theoretically unrelated to the others), or None."""
         m = self.by_role("marker")
         return m[0] if m else None
 
     @property
     def method(self) -> Construct | None:
+        """The measured method construct, or None."""
         m = self.by_role("method")
         return m[0] if m else None
 
@@ -128,6 +135,7 @@ class Design:
                       answer_labels=src.answer_labels or dict(self.answer_labels))
 
     def construct_of(self, item: str) -> str:
+        """The name of the construct an item belongs to."""
         for c in self.constructs.values():
             if item in c.items:
                 return c.name
@@ -140,6 +148,7 @@ class Design:
         return f"{a}|{b}"
 
     def to_dict(self) -> dict:
+        """The design as JSON (as report.json's "design" shows it)."""
         out: dict[str, Any] = {"constructs": {}}
         for c in self.constructs.values():
             entry: dict[str, Any] = {"items": list(c.items)}

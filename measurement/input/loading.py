@@ -31,13 +31,13 @@ import numpy as np
 import pandas as pd
 
 from samesource.errors import DataError, InputError, UnsupportedFormat
+from samesource.input import formats
 from samesource.input.design import did_you_mean, item_stem
+from samesource.input.formats import FileFormat
 from samesource.input.workbook_limits import check_workbook
 
-FORMATS = ("csv", "tsv", "txt", "xlsx", "sav", "parquet")
-READABLE = (".csv, .tsv or .txt (delimited text), .xlsx, .sav or .parquet (any of them also "
-            "gzip-compressed, as .csv.gz)")
-TEXT_EXTENSIONS = {".csv": "csv", ".tsv": "tsv", ".txt": "txt"}
+# READERS, the registry of formats, and FORMATS, READABLE and TEXT_EXTENSIONS made from it
+# are at the end of this module, after the readers they name.
 DELIMITERS = (",", ";", "\t", "|")
 
 _SNIFF_CHARS = 65536
@@ -250,12 +250,9 @@ def detect_format(head: bytes, filename: str | None) -> str:
     ext = _extension(filename)
     if not head.strip():
         raise DataError("the file is empty; export the survey data again", file=filename)
-    if head.startswith(b"PK\x03\x04") or head.startswith(b"PK\x05\x06"):
-        return _zip_kind(head, ext, filename)
-    if head[:4] in (b"$FL2", b"$FL3"):
-        return "sav"
-    if head.startswith(PARQUET_MAGIC):
-        return "parquet"
+    for f in READERS:
+        if f.sniff is not None and f.sniff(head, ext, filename):
+            return f.name
     if head.startswith(GZIP_MAGIC):  # load_table unpacks once: here it was compressed twice
         raise _unsupported("a gzip-compressed file", filename,
                            "Decompress it until it is a data table (compressing that once is fine).")
@@ -886,16 +883,10 @@ def load_table(source: str | os.PathLike | bytes, *, name: str | None = None,
     if data.startswith(GZIP_MAGIC):
         data, unpack_notes = gunzip(data, label, max_bytes)
     fmt = _detect_unpacked(data, label) if unpack_notes else detect_format(data, label)
-    if fmt == "xlsx":
-        parts = _read_xlsx(data, label, sheet)
-    elif fmt == "sav":
-        parts = _read_sav(data, label)
-    elif fmt == "parquet":
-        parts = read_parquet(data, label)
-    else:
-        parts = _read_text(data, label, fmt)
+    reader = READER[fmt]
+    parts = reader.read(data, label, sheet)
     parts["warnings"] = unpack_notes + parts.get("warnings", [])
-    return LoadedTable(row_label="case" if fmt == "sav" else "row", format=fmt, source=label,
+    return LoadedTable(row_label=reader.row_label, format=fmt, source=label,
                        sha256=hashlib.sha256(packed).hexdigest(), size_bytes=len(packed), **parts)
 
 
@@ -1066,3 +1057,43 @@ def _too_large(size: int, limit: int, label: str) -> DataError:
     return DataError(f"the file is {size / 1e6:.1f} MB, over the limit of {limit / 1e6:.1f} MB; "
                      "remove columns the analysis does not use, or split the file",
                      file=label, code="too_large")
+
+
+# --------------------------------------------------------------------------- the formats we read
+
+ZIP_MAGIC = (b"PK\x03\x04", b"PK\x05\x06")
+SAV_MAGIC = (b"$FL2", b"$FL3")  # SPSS system files; $FL3: with zlib-compressed data
+
+
+def _text_reader(fmt: str) -> formats.ReadFunction:
+    def read(data: bytes, label: str, sheet: str | int | None) -> dict:
+        return _read_text(data, label, fmt)
+
+    return read
+
+
+def _is_xlsx(head: bytes, ext: str, filename: str | None) -> bool:
+    # a ZIP archive that is not a workbook raises UnsupportedFormat saying what it is
+    return head.startswith(ZIP_MAGIC) and _zip_kind(head, ext, filename) == "xlsx"
+
+
+# One object per format, in the order content sniffing tries them (and the API lists them).
+# Adding a format: DEVELOPERS.md "Adding a file format".
+READERS: tuple[FileFormat, ...] = (
+    FileFormat("csv", (".csv",), ("text/csv",), _text_reader("csv"), kind="delimited text"),
+    FileFormat("tsv", (".tsv",), ("text/tab-separated-values",), _text_reader("tsv"),
+               kind="delimited text"),
+    FileFormat("txt", (".txt",), ("text/plain",), _text_reader("txt"), kind="delimited text"),
+    FileFormat("xlsx", (".xlsx",), ("application/vnd.openxmlformats-officedocument.spreadsheetml.sheet",),
+               lambda data, label, sheet: _read_xlsx(data, label, sheet), sniff=_is_xlsx),
+    FileFormat("sav", (".sav",), ("application/x-spss-sav",),
+               lambda data, label, sheet: _read_sav(data, label),
+               sniff=lambda head, ext, filename: head[:4] in SAV_MAGIC, row_label="case"),
+    FileFormat("parquet", (".parquet",), ("application/vnd.apache.parquet",),
+               lambda data, label, sheet: read_parquet(data, label),
+               sniff=lambda head, ext, filename: head.startswith(PARQUET_MAGIC)),
+)
+READER = {f.name: f for f in READERS}
+FORMATS = formats.names(READERS)
+READABLE = formats.readable(READERS)
+TEXT_EXTENSIONS = formats.text_suffixes(READERS)

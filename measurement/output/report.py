@@ -200,6 +200,7 @@ class KeyPath:
 
     @property
     def preferred_estimate(self) -> Estimate | None:
+        """The estimate the report leads with (``preferred``), or None when none can be pinned down."""
         return self.estimates.get(self.preferred) if self.preferred else None
 
 

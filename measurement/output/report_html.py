@@ -1164,23 +1164,8 @@ def stylesheet(name: str) -> Markup:
     return Markup((TEMPLATES / name).read_text(encoding="utf-8"))
 
 
-SECTIONS = (("paths", "Every estimate of each path"),
-            ("cross-source", "Same-source paths beside their cross-source counterparts"),
-            ("correction-check", "How well each correction works on data like these"),
-            ("sensitivity", "How much shared method would explain each path away"),
-            ("reliability", "How well each scale measures"), ("loadings", "Item loadings"),
-            ("method-variance", "Common-method checks"),
-            ("fit", "Measurement model: fit and overlap between scales"),
-            ("teams", "Teams"), ("next-time", "Next time: testing for a shared answering style"),
-            ("data", "Data, screening and warnings"), ("cautions-again", "Cautions (repeated)"))
-
-
-def _toc(report: dict) -> str:
-    entries = [(i, t) for i, t in SECTIONS if (i != "teams" or isinstance(report.get("teams"), dict))
-               and (i != "cross-source" or any(isinstance(p, dict) and p.get("cross_source_check")
-                                               for p in report.get("paths") or []))
-               and (i != "correction-check" or isinstance(report.get("correction_check"), dict))
-               and (i != "next-time" or isinstance(report.get("next_time"), dict))]
+def _toc(entries: Iterable[tuple[str, str]]) -> str:
+    """The table of contents: (id, title) of each section the page shows (output/sections.py)."""
     return ('<nav class="toc" aria-labelledby="toc-h"><h2 id="toc-h">The detail behind the answer '
             '<span class="sub">(each section opens when clicked)</span></h2><ol>'
             + "".join(f'<li><a href="#{i}">{t}</a></li>' for i, t in entries)
@@ -1216,13 +1201,9 @@ def render_html(report: dict, *, when: str | None = None) -> str:
     """The whole report as one self-contained HTML5 page (a string); ``when``: the date it was made."""
     d = report.get("data") or {}
     figs = Figures()
-    from samesource.output.check_html import correction_check_section, next_time_section
-    from samesource.output.sources_html import cross_source_section
+    from samesource.output.sections import render_sections  # it imports this module's sections
 
-    sections = [paths_section(report, figs), cross_source_section(report, figs), correction_check_section(report),
-                sensitivity_section(report, figs), reliability_section(report, figs),
-                loadings_section(report, figs), method_section(report), fit_section(report), teams_section(report),
-                next_time_section(report), data_section(report)]
+    sections = render_sections(report, figs)
     footer = (f'Report schema {h(report.get("schema"))}; made by {h(_get(report, "tool", "name"))} '
               f'{h(_get(report, "tool", "version"))} from {h(d.get("file"))} (SHA-256 '
               f'<code class="hash">{h(d.get("sha256"))}</code>).')
@@ -1231,11 +1212,7 @@ def render_html(report: dict, *, when: str | None = None) -> str:
         file=d.get("file") or "Survey data", facts=header_facts(report, when), review=review_reasons(report),
         checks=Markup(checks_strip(report)), decisions=decisions_of(report), verdict=Markup(_verdict_box(report)),
         cautions=Markup(cautions_section(report, "cautions", "Cautions: read these before using any result")),
-        toc=Markup(_toc(report)), sections=[Markup(x) for x in sections if x],
-        cautions_again=Markup(section("cautions-again", "Cautions (repeated)",
-                                      cautions_section(report, "cautions-list", "Every caution, in full")
-                                      .replace('<h2 id="cautions-list-h">', '<h3 id="cautions-list-h">')
-                                      .replace("</h2>", "</h3>", 1))),
+        toc=Markup(_toc((s.id, s.title) for s, _ in sections)), sections=[Markup(x) for _, x in sections],
         footer=Markup(footer)) + "\n"
 
 

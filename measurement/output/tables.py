@@ -14,16 +14,9 @@ from typing import Any
 
 import pandas as pd
 
-METHOD_LABELS = {
-    "observed": "Observed (scale means)",
-    "disattenuated": "Disattenuated with alpha",
-    "disattenuated_omega": "Disattenuated with omega",
-    "errors_in_variables": "Errors-in-variables",
-    "latent": "Latent model",
-    "marker_adjusted": "Marker-adjusted",
-    "method_factor_adjusted": "Method-factor adjusted",
-    "measured_method_adjusted": "Measured-method adjusted",
-}
+from samesource.corrections.paths import LABELS
+
+METHOD_LABELS = LABELS  # each correction's label (corrections/paths.py CORRECTIONS)
 
 CHECK_LABELS = {
     "method_factor": "Latent method factor",

@@ -11,6 +11,7 @@ from typing import Any
 from flask import Blueprint, Response, jsonify
 
 from samesource import __version__
+from samesource.input.loading import FORMATS, READABLE, READER, READERS
 
 REF = "#/components/schemas/"
 
@@ -40,7 +41,7 @@ _PAGE = [
 ]
 _AUTH_ERRORS = {"401": _error("No API token, or not a valid one")}
 
-XLSX = "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"
+XLSX = READER["xlsx"].media_types[0]
 _LABELS = {"type": "object", "additionalProperties": {"type": ["number", "null"]}, "description": "answer texts to numbers (null: no answer), matched without regard to case and spaces"}
 
 SCHEMAS: dict[str, Any] = {
@@ -141,7 +142,7 @@ SCHEMAS: dict[str, Any] = {
             "columns": {"type": "array", "items": {"type": "string"}},
             "numeric_columns": {"type": "array", "items": {"type": "string"},
                                 "description": "columns whose cells all read as numbers"},
-            "format": {"enum": ["csv", "tsv", "txt", "xlsx", "sav", "parquet"]},
+            "format": {"enum": list(FORMATS)},  # the reader registry (samesource.input.loading.READERS)
             "sha256": {"type": "string", "pattern": "^[0-9a-f]{64}$",
                        "description": "SHA-256 of the file as uploaded (kept byte for byte)"},
             "size_bytes": {"type": "integer"},
@@ -298,8 +299,11 @@ def document() -> dict:
                 "requestBody": {"required": True, "content": {"multipart/form-data": {
                     "schema": {"type": "object", "required": ["file"], "properties": {
                         "file": {"type": "string", "contentMediaType": "application/octet-stream",
-                                 "description": ".csv, .tsv, .txt, .xlsx, .sav or .parquet, "
-                                                "each also gzip-compressed (.csv.gz)"}}}}}},
+                                 "description": READABLE + "; the format is recognised from the "
+                                                "contents and the name, whatever the part's type"}}},
+                    "encoding": {"file": {"contentType": ", ".join(
+                        ["application/octet-stream", "application/gzip",
+                         *(t for f in READERS for t in f.media_types)])}}}}},
                 "responses": {
                     "200": _json(_ref("Dataset"), "The same tenant had uploaded these bytes "
                                  "already: that dataset (reused: true), no second copy stored"),

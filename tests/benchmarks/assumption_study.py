@@ -101,7 +101,8 @@ def one_sample(task: tuple[str, int]) -> dict:
 def run(names: list[str], seeds: int, workers: int = 2, log=print, save=None) -> list[dict]:
     """Every scenario's samples; ``save(rows)`` after each scenario keeps partial results."""
     rows: list[dict] = []
-    ex = LocalExecutor(workers) if workers > 1 else SerialExecutor()
+    # import_main: one_sample is defined here, in __main__ when this file runs as a script
+    ex = LocalExecutor(workers, import_main=True) if workers > 1 else SerialExecutor()
     try:
         for name in names:
             t0 = time.monotonic()

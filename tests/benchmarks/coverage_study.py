@@ -112,7 +112,8 @@ def summarize(rows: list[dict]) -> dict[tuple[int, tuple[str, str], str], Cell]:
 def run(seeds: int, sizes: list[int], workers: int = 2) -> list[dict]:
     tasks = [(FIRST_SEED + i, n) for n in sizes for i in range(seeds)]
     if workers > 1:
-        with LocalExecutor(workers) as ex:
+        # import_main: one_replicate is defined here, in __main__ when this file runs as a script
+        with LocalExecutor(workers, import_main=True) as ex:
             chunks = ex.map(one_replicate, tasks)
     else:
         chunks = [one_replicate(t) for t in tasks]
