@@ -35,7 +35,7 @@ PINNED_PREFERENCE = [
     ("observed", None, "no corrected estimate could be computed"),
 ]
 ASSUMPTION_IDS = {"marker_carries_method", "method_loadings", "method_orthogonal", "items_continuous",
-                  "checks_agree", "estimate_stable", "marker_pure_method"}  # contract.md and assumptions.py
+                  "checks_agree", "estimate_stable", "marker_pure_method", "no_shared_method"}  # contract.md and assumptions.py
 
 
 def test_format_constants_are_made_from_the_registry():
@@ -79,6 +79,9 @@ def test_corrections_registry_makes_methods_notes_labels_and_the_preference():
     for c in paths.CORRECTIONS:
         assert set(c.assumptions) <= ASSUMPTION_IDS, c.name
         assert "estimate_stable" in c.assumptions  # every estimate's fit is checked
+    # the estimates that correct unreliability only are the ones that assume no shared method
+    from samesource.method_checks.assumptions import UNRELIABILITY_ONLY
+    assert {c.name for c in paths.CORRECTIONS if "no_shared_method" in c.assumptions} == set(UNRELIABILITY_ONLY)
 
 
 def test_every_estimate_is_written_by_its_correction():

@@ -439,24 +439,24 @@ def _measured_method_adjusted(est: PathEstimator, run: _Run) -> None:
 CORRECTIONS: tuple[Correction, ...] = (
     Correction("observed", "Observed (scale means)",
                "OLS on scale means: shrunk by unreliability and inflated by shared method alike.",
-               ("estimate_stable",), _observed,
+               ("estimate_stable", "no_shared_method"), _observed,
                ((6, None, "no corrected estimate could be computed"),)),
     Correction("disattenuated", "Disattenuated with alpha",
                "Spearman's (1904) correction with alpha, then the coefficients solved from the "
                "corrected correlations: corrects unreliability only, treats alpha as the reliability.",
-               ("estimate_stable",), _disattenuated),
+               ("estimate_stable", "no_shared_method"), _disattenuated),
     Correction("disattenuated_omega", "Disattenuated with omega",
                "Spearman's correction with omega (one-factor reliability) instead of alpha.",
-               ("estimate_stable", "items_continuous"), _disattenuated_omega),
+               ("estimate_stable", "no_shared_method", "items_continuous"), _disattenuated_omega),
     Correction("errors_in_variables", "Errors-in-variables",
                "All declared paths at once, each scale score a single indicator with its error "
                "variance fixed at (1 - omega) x its variance (Bollen 1989): corrects unreliability only.",
-               ("estimate_stable", "items_continuous"), _errors_in_variables,
+               ("estimate_stable", "no_shared_method", "items_continuous"), _errors_in_variables,
                ((5, None, "the latent model did not fit cleanly; the single-indicator model corrects "
                           "unreliability only"),)),
     Correction("latent", "Latent model",
                "Full structural model on the items: corrects unreliability, not shared method.",
-               ("estimate_stable", "items_continuous"), _latent,
+               ("estimate_stable", "no_shared_method", "items_continuous"), _latent,
                ((4, None, "no method-variance correction passed its checks, so the latent model leads: it "
                           "corrects unreliability but not shared method"),)),
     Correction("marker_adjusted", "Marker-adjusted",
