@@ -33,6 +33,7 @@ from samesource.engine.fitting import (  # the engine's own helpers
     _TimeUp,
     delta_method,
 )
+from samesource.engine.patterns import row_patterns, rows_by_pattern
 
 
 @dataclass(frozen=True)
@@ -73,10 +74,8 @@ def casewise_scores(fit: FitResult, X: np.ndarray) -> np.ndarray:
     n = X.shape[0]
     s_theta = np.zeros((n, Amat.shape[1]))
     s_mu = np.zeros((n, p))
-    pats, inv = np.unique(obs, axis=0, return_inverse=True)
-    inv = np.asarray(inv).reshape(-1)
-    for g, pat in enumerate(pats):
-        rows = np.flatnonzero(inv == g)
+    pats, inv = row_patterns(obs)
+    for pat, rows in zip(pats, rows_by_pattern(inv, len(pats)), strict=True):
         o = np.flatnonzero(pat)
         W = np.zeros((p, p))
         W[np.ix_(o, o)] = np.linalg.inv(Sig[np.ix_(o, o)])

@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from samesource.engine.patterns import row_patterns, rows_by_pattern
 from samesource.errors import DesignError
 
 RULE_NAMES = ("longstring", "irv", "mahalanobis", "missing", "out_of_range")
@@ -157,9 +158,8 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
     cov = np.atleast_2d(np.cov(complete, rowvar=False, ddof=1))
     singular_rows = 0
     # Rows that share a pattern of answered items share one sub-matrix: invert it once.
-    patterns, inverse = np.unique(answered, axis=0, return_inverse=True)
-    for g, pattern in enumerate(patterns):
-        rows = np.flatnonzero(inverse.ravel() == g)
+    patterns, inverse = row_patterns(answered)
+    for pattern, rows in zip(patterns, rows_by_pattern(inverse, len(patterns)), strict=True):
         if not pattern.any():
             continue
         sub = cov[np.ix_(pattern, pattern)]
