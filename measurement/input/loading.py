@@ -781,8 +781,9 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
 def _plain_cells(raw: np.ndarray) -> np.ndarray:
     """Each field's cell as the csv reader gives it (leading spaces dropped), blank ones NaN."""
     codes, uniques = pd.factorize(raw)
-    cells = np.array([np.nan if not u.lstrip(" ").strip() else u.lstrip(" ") for u in uniques] + [np.nan],
-                     dtype=object)
+    kept = pd.Series(uniques, dtype=object).str.lstrip(" ")
+    kept = kept.where(kept.str.strip() != "", np.nan)
+    cells = np.append(kept.to_numpy(dtype=object), np.nan)
     return cells[codes]  # code -1 (a missing field) takes the NaN at the end
 
 

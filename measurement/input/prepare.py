@@ -430,6 +430,11 @@ def _labels(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     each distinct value labelled once where values of one kind cannot be confused (True and 1
     are one key to a hash table, but not one label)."""
     cells = s.to_numpy(dtype=object)
+    if pd.api.types.infer_dtype(cells, skipna=True) in ("string", "empty"):
+        stripped = pd.Series(cells, dtype=object).str.strip().to_numpy(dtype=object, copy=True)
+        none = pd.isna(stripped) | np.equal(stripped, "")
+        stripped[none] = None
+        return stripped, none
     if pd.api.types.is_numeric_dtype(s.dtype) and not pd.api.types.is_bool_dtype(s.dtype) or \
             pd.api.types.infer_dtype(cells, skipna=True) in ("string", "empty", "integer", "floating"):
         codes, uniques = pd.factorize(cells)

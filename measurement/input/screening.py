@@ -114,7 +114,9 @@ def _intra_individual_variability(x: np.ndarray) -> np.ndarray:
     m = (~np.isnan(x)).sum(axis=1)
     out = np.full(x.shape[0], np.nan)
     ok = m >= 2
-    if ok.any():
+    if ok.all() and m.min() == x.shape[1]:  # every row complete: the same SDs without NaN handling
+        out[:] = np.std(x, axis=1, ddof=1)
+    elif ok.any():
         out[ok] = np.nanstd(x[ok], axis=1, ddof=1)
     return out
 
