@@ -425,3 +425,50 @@ if __name__ == "__main__":  # rewrite the fixtures and the pins from the code as
     report.pop("timings", None)
     PINNED_REPORT.write_text(json.dumps(report, indent=1, sort_keys=True) + "\n", encoding="utf-8")
     print("written", PINNED, PINNED_REPORT)
+
+
+# ------------------------------------------------------------------ the two text readers agree
+
+_TOKENS = ["1", "2", "3", "4", "5", "007", "+3", " 3", "3 ", "3.0", "-0", "1e0", "NA", "", " ", "abc",
+           "1,5", "2.5", "-99", "99999999999999999999", "True", "inf", "nan", "Agree", "10", "-7"]
+
+
+def _plain_file(rng: np.random.Generator, delim: str, crlf: bool) -> bytes:
+    """A quote-free table: some columns whole numbers only, others any of _TOKENS."""
+    n, k = int(rng.integers(3, 40)), int(rng.integers(2, 7))
+    names = [f"q{j}" for j in range(k)]
+    cols = []
+    for _ in range(k):
+        if rng.random() < 0.5:
+            cols.append([str(v) for v in rng.integers(-3, 12, size=n)])
+        else:
+            pool = [t for t in _TOKENS if delim not in t] + ["4"] * 8
+            cols.append([pool[i] for i in rng.integers(len(pool), size=n)])
+    lines = [delim.join(names)] + [delim.join(c[i] for c in cols) for i in range(n)]
+    end = "\r\n" if crlf else "\n"
+    return (end.join(lines) + end).encode("utf-8")
+
+
+@pytest.mark.parametrize("seed", range(40))
+def test_the_column_wise_reader_gives_what_the_record_reader_gives(seed, monkeypatch):
+    import samesource.input.loading as loading
+    from samesource.input.prepare import _label
+
+    rng = np.random.default_rng(seed)
+    delim = [",", ";", "\t", "|"][seed % 4]
+    data = _plain_file(rng, delim, crlf=bool(seed % 3 == 0))
+    k = data.split(b"\n", 1)[0].count(delim.encode()) + 1
+    design = {"constructs": {"a": {"items": [f"q{j}" for j in range(1, k)]}}, "response_scale": {"min": -99, "max": 99},
+              "missing_codes": [-99], "id_column": "q0", "group_column": "q0"}
+    name = {",": "s.csv", ";": "s.csv", "\t": "s.tsv", "|": "s.txt"}[delim]
+
+    def seen(result: dict) -> dict:
+        prepared = result.get("prepared")
+        if prepared and prepared["ids"] is not None:
+            prepared["ids"] = [_label(v) for v in prepared["ids"]]
+        return json.loads(json.dumps(result, default=str))
+
+    fast = seen(outcome(name, data, design))
+    monkeypatch.setattr(loading, "_read_text_plain", lambda text, delim: None)
+    exact = seen(outcome(name, data, design))
+    assert _diff(fast, exact) == []

@@ -391,7 +391,10 @@ def _read_text(data: bytes, source: str, fmt: str) -> dict:
         sample = _sample_lines(text)
         pref = _preference(fmt)
         delim = next((d for d in pref if d not in sample), pref[0])
-    plain = _read_text_plain(text, delim) if encoding in _PLAIN_ENCODINGS else None
+    try:
+        plain = _read_text_plain(text, delim) if encoding in _PLAIN_ENCODINGS else None
+    except (ValueError, TypeError, AttributeError, IndexError, OverflowError):
+        plain = None  # the record-by-record reader below is exact for every file
     if plain is not None:
         _note_encoding(text, encoding, notes)
         return dict(plain, encoding=encoding, delimiter=delim, warnings=notes, row_names=None)
@@ -622,7 +625,13 @@ def _canonical_lengths(values: np.ndarray) -> np.ndarray | None:
         ints, blank = v.astype(np.int64), None
     else:
         return None
-    digits = np.maximum(np.searchsorted(_POW10, np.abs(ints), side="right"), 1) + (ints < 0)
+    mag = np.abs(ints)
+    digits = np.ones(len(ints), dtype=np.int64) + (ints < 0)
+    top = int(mag.max()) if len(mag) else 0
+    for p in _POW10[1:]:  # one comparison per digit the largest value has beyond the first
+        if p > top:
+            break
+        digits += mag >= p
     return digits if blank is None else np.where(blank, 0, digits)
 
 
@@ -704,8 +713,12 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
         elif kinds <= {"i", "f"}:
             cols[j] = np.concatenate([p.to_numpy(dtype=float) for p in parts])
         elif all(p.dtype.kind in "OU" or isinstance(p.dtype, pd.StringDtype) for p in parts):
-            cols[j] = np.concatenate([p.to_numpy(dtype=object, na_value=np.nan) for p in parts])
-            text_cols.add(j)
+            v = np.concatenate([p.to_numpy(dtype=object, na_value=np.nan) for p in parts])
+            if pd.api.types.infer_dtype(v, skipna=True) in ("string", "empty"):
+                cols[j] = v
+                text_cols.add(j)
+            else:  # numbers past int64 and text mixed: read the fields as text
+                cols[j] = None
         else:
             cols[j] = None
     del chunks
@@ -772,8 +785,8 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
     frame = pd.DataFrame(frame_cols, copy=False)
     frame.columns = pd.Index(names, dtype=object)
     decimal = _plain_decimal(frame, [names[j] for j in sorted(text_cols)], delim)
-    blank_rows = frame.isna().all(axis=1).to_numpy()
-    if blank_rows.any():
+    gaps = [frame[c].isna().to_numpy() for c in frame.columns if frame[c].dtype.kind not in "iu"]
+    if len(gaps) == width and np.logical_and.reduce(gaps).any():
         return None  # a row of empty fields: the exact reader skips it and says so
     return dict(frame=frame, row_numbers=np.arange(2, n + 2, dtype=np.int64), decimal=decimal)
 

@@ -261,7 +261,7 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
     index = pd.Index(np.asarray(table.row_numbers, dtype=np.int64), name=table.row_label)
     notes: list[dict] = [dict(w) for w in table.warnings]
 
-    matrix = np.empty((n, len(items)), dtype=float)
+    matrix = np.empty((n, len(items)), dtype=float, order="F")  # filled and kept column by column
     bad_cols: list[tuple[str, np.ndarray]] = []
     words: Counter = Counter()
     for j, col in enumerate(items):
@@ -350,7 +350,7 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
                 "be placed in a group")})
 
     items_frame = pd.DataFrame(matrix, columns=pd.Index(items, dtype=object), index=index,
-                               dtype="float64")
+                               dtype="float64", copy=False)
     return PreparedData(items=items_frame, ids=ids, groups=groups, scale_min=lo, scale_max=hi,
                         scale_source=source, n_rows=n,
                         missing_cells=int(np.isnan(matrix).sum()), warnings=notes, table=table)
