@@ -695,25 +695,28 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
     if body.count(b"\r"):
         line_len = line_len - (arr[np.maximum(ends - 1, 0)] == 13)
     n = len(starts)
+    parts: list[list] = [[] for _ in range(width)]  # per column, each chunk's values
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            chunks = list(_read_plain(body, delim, width))
+            for chunk in _read_plain(body, delim, width):
+                for j in range(width):
+                    parts[j].append(_chunk_values(chunk[j]))
+                del chunk
     except (ValueError, pd.errors.ParserError, UnicodeDecodeError, MemoryError):
         return None
-    if sum(len(c) for c in chunks) != n:
+    if sum(len(p) for p in parts[0]) != n:
         return None
     cols: dict[int, np.ndarray] = {}
     text_cols: set[int] = set()
     for j in range(width):
-        parts = [c[j] for c in chunks]
-        kinds = {p.dtype.kind for p in parts}
+        kinds = {p.dtype.kind for p in parts[j]}
         if kinds <= {"i"}:
-            cols[j] = np.concatenate([p.to_numpy() for p in parts])
+            cols[j] = np.concatenate(parts[j])
         elif kinds <= {"i", "f"}:
-            cols[j] = np.concatenate([p.to_numpy(dtype=float) for p in parts])
-        elif all(p.dtype.kind in "OU" or isinstance(p.dtype, pd.StringDtype) for p in parts):
-            v = np.concatenate([p.to_numpy(dtype=object, na_value=np.nan) for p in parts])
+            cols[j] = np.concatenate([p.astype(float) for p in parts[j]])
+        elif kinds == {"O"}:
+            v = np.concatenate(parts[j])
             if pd.api.types.infer_dtype(v, skipna=True) in ("string", "empty"):
                 cols[j] = v
                 text_cols.add(j)
@@ -721,7 +724,7 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
                 cols[j] = None
         else:
             cols[j] = None
-    del chunks
+        parts[j] = []
     ascii_only = body.isascii()
     expected = np.full(n, width - 1, dtype=np.int64)
     lengths: dict[int, np.ndarray] = {}
@@ -789,6 +792,24 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
     if len(gaps) == width and np.logical_and.reduce(gaps).any():
         return None  # a row of empty fields: the exact reader skips it and says so
     return dict(frame=frame, row_numbers=np.arange(2, n + 2, dtype=np.int64), decimal=decimal)
+
+
+def _chunk_values(s: pd.Series) -> np.ndarray:
+    """A chunk's column as numbers (whole numbers in the smallest integer type that holds them
+    with room below: a type's lowest value is kept for "not written as an integer") or as
+    objects (text, NaN where missing); booleans and others keep their kind."""
+    if s.dtype.kind == "i":
+        v = s.to_numpy()
+        lo, hi = (int(v.min()), int(v.max())) if len(v) else (0, 0)
+        for t in (np.int8, np.int16, np.int32):
+            if np.iinfo(t).min < lo and hi <= np.iinfo(t).max:
+                return v.astype(t)
+        return v
+    if s.dtype.kind == "f":
+        return s.to_numpy()
+    if s.dtype.kind in "OU" or isinstance(s.dtype, pd.StringDtype):
+        return s.to_numpy(dtype=object, na_value=np.nan)
+    return s.to_numpy()
 
 
 def _plain_cells(raw: np.ndarray) -> np.ndarray:

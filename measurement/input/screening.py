@@ -169,7 +169,10 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
         if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
             singular_rows += rows.size
             continue
-        dev = x[np.ix_(rows, pattern)] - mean[pattern]
+        if rows.size == n and pattern.all():
+            dev = x - mean  # every row complete: no copy of the rows first
+        else:
+            dev = x[np.ix_(rows, pattern)] - mean[pattern]
         vals = np.einsum("ij,ij->i", dev @ np.linalg.inv(sub), dev)
         d2[rows] = vals
         p[rows] = stats.chi2.sf(vals, int(pattern.sum()))
