@@ -392,7 +392,7 @@ def _read_text(data: bytes, source: str, fmt: str) -> dict:
         pref = _preference(fmt)
         delim = next((d for d in pref if d not in sample), pref[0])
     try:
-        plain = _read_text_plain(text, delim) if encoding in _PLAIN_ENCODINGS else None
+        plain = _read_text_plain(text, delim)  # from the decoded text: any encoding
     except (ValueError, TypeError, AttributeError, IndexError, OverflowError):
         plain = None  # the record-by-record reader below is exact for every file
     if plain is not None:
@@ -600,7 +600,6 @@ def _show(v: Any) -> str:
 # Files with no quotes, one record per line and a header of distinct names are read column-wise
 # by pandas' C parser (the common case); anything else, or anything this reader is not sure of,
 # goes to the record-by-record reader above, which is exact for every file.
-_PLAIN_ENCODINGS = ("utf-8", "utf-8-sig", "cp1252", "latin-1")
 _PLAIN_CHUNK_ROWS = 200_000
 _PLAIN_CHECK_LINES = 2000  # lines looked at one by one when their lengths disagree
 _POW10 = 10 ** np.arange(19, dtype=np.int64)
