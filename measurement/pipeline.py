@@ -157,7 +157,7 @@ def analyze(
 def _check_redundant(plan: MissingPlan, design: Design, source: str) -> None:
     """Two items that carry the same information make every covariance matrix singular:
     name them before any model is fitted."""
-    corr = plan.frame[design.items].corr().to_numpy()
+    corr = plan.corr(design.items).to_numpy()
     iu = np.argwhere(np.triu(np.abs(corr) > 0.9999, k=1))
     if len(iu):
         a, b = design.items[iu[0][0]], design.items[iu[0][1]]

@@ -23,7 +23,14 @@ def write(tmp_path, name: str, content: bytes | str, encoding: str = "utf-8"):
 
 
 def cells(table) -> list[list]:
-    return [[None if (isinstance(v, float) and np.isnan(v)) else v for v in r]
+    """The cells as text, blanks None. A delimited file's column of whole numbers each written
+    as the integer itself is read as numbers (its text is then exactly that integer's)."""
+    def text(v, numeric: bool):
+        if v is None or (isinstance(v, float) and np.isnan(v)):
+            return None
+        return str(int(v)) if numeric and table.format in ("csv", "tsv", "txt") else v
+    kinds = [table.frame[c].dtype.kind in "iuf" for c in table.frame.columns]
+    return [[text(v, k) for v, k in zip(r, kinds, strict=True)]
             for r in table.frame.to_numpy(dtype=object).tolist()]
 
 

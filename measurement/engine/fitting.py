@@ -47,6 +47,7 @@ from scipy import linalg, stats
 
 from samesource.engine import fit_indices as fx
 from samesource.engine.modelspec import ModelSpec, Param
+from samesource.engine.patterns import row_patterns
 from samesource.errors import DataError
 
 ParamKey = tuple[str, str, str]
@@ -476,8 +477,7 @@ class _FIMLObjective:
         self.obs = obs
         self.Y0 = np.where(obs, X, 0.0)
         self.k_sum = float(obs.sum())
-        pats, inv = np.unique(obs, axis=0, return_inverse=True)
-        inv = np.asarray(inv).reshape(-1)
+        pats, inv = row_patterns(obs)
         self.n_patterns = len(pats)
         self.complete = bool(obs.all())
         by_m: dict[int, list[int]] = {}

@@ -33,6 +33,7 @@ from samesource.engine.fitting import (  # the engine's own helpers
     _TimeUp,
     delta_method,
 )
+from samesource.engine.patterns import row_patterns, rows_by_pattern
 
 
 @dataclass(frozen=True)
@@ -59,6 +60,15 @@ def casewise_scores(fit: FitResult, X: np.ndarray) -> np.ndarray:
     quantities: the free parameters, then (FIML) the saturated means. ``X`` has the rows the
     model was fitted to, columns in ``fit.spec.observed`` order, NaN for a missing answer.
     At the ML estimate they sum to (about) zero over respondents."""
+    return np.vstack(list(_score_blocks(fit, X)))
+
+
+# Rows per block of scores: a block's arrays stay a few tens of MB however many rows there are.
+SCORE_BLOCK_ROWS = 65_536
+
+
+def _score_blocks(fit: FitResult, X: np.ndarray, block: int = SCORE_BLOCK_ROWS):
+    """:func:`casewise_scores` a block of rows at a time (the same rows, in order)."""
     st = fit._structure or _Structure(fit.spec)
     X = np.asarray(X, dtype=float)
     obs = ~np.isnan(X)
@@ -70,23 +80,27 @@ def casewise_scores(fit: FitResult, X: np.ndarray) -> np.ndarray:
     Amat, Bmat = st.deriv_vectors(E, Om)
     fiml = fit.means is not None
     mu = fit.means.to_numpy(dtype=float) if fiml else X.mean(axis=0)
-    n = X.shape[0]
-    s_theta = np.zeros((n, Amat.shape[1]))
-    s_mu = np.zeros((n, p))
-    pats, inv = np.unique(obs, axis=0, return_inverse=True)
-    inv = np.asarray(inv).reshape(-1)
-    for g, pat in enumerate(pats):
-        rows = np.flatnonzero(inv == g)
-        o = np.flatnonzero(pat)
-        W = np.zeros((p, p))
-        W[np.ix_(o, o)] = np.linalg.inv(Sig[np.ix_(o, o)])
-        D = np.where(obs[rows], X[rows] - mu, 0.0)
-        U = D @ W
-        c = np.sum(Amat * (W @ Bmat), axis=0)
-        s_theta[rows] = (U @ Amat) * (U @ Bmat) - c
-        s_mu[rows] = U
-    scores = s_theta @ st.Z.T
-    return np.hstack([scores, s_mu]) if fiml else scores
+    weights: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}  # per pattern: W and its constant
+    for start in range(0, max(X.shape[0], 1), block):
+        Xb, ob = X[start:start + block], obs[start:start + block]
+        n = Xb.shape[0]
+        s_theta = np.zeros((n, Amat.shape[1]))
+        s_mu = np.zeros((n, p))
+        pats, inv = row_patterns(ob)
+        for pat, rows in zip(pats, rows_by_pattern(inv, len(pats)), strict=True):
+            key = pat.tobytes()
+            if key not in weights:
+                o = np.flatnonzero(pat)
+                W = np.zeros((p, p))
+                W[np.ix_(o, o)] = np.linalg.inv(Sig[np.ix_(o, o)])
+                weights[key] = (W, np.sum(Amat * (W @ Bmat), axis=0))
+            W, c = weights[key]
+            D = np.where(ob[rows], Xb[rows] - mu, 0.0)
+            U = D @ W
+            s_theta[rows] = (U @ Amat) * (U @ Bmat) - c
+            s_mu[rows] = U
+        scores = s_theta @ st.Z.T
+        yield np.hstack([scores, s_mu]) if fiml else scores
 
 
 def robust_se(fit: FitResult, X: np.ndarray, *, time_limit: float = 30.0) -> RobustSE | None:
@@ -98,10 +112,12 @@ def robust_se(fit: FitResult, X: np.ndarray, *, time_limit: float = 30.0) -> Rob
     A_inv = fit.param_cov_all if fit.param_cov_all is not None else fit.param_cov
     if A_inv is None:
         return None
-    S = casewise_scores(fit, X)
-    if S.shape[1] != A_inv.shape[0]:
-        return None   # an ML fit's inverse information covers the parameters only
-    V = A_inv @ (S.T @ S) @ A_inv
+    SS = None  # the scores' cross-products, summed block by block
+    for S in _score_blocks(fit, X):
+        if S.shape[1] != A_inv.shape[0]:
+            return None   # an ML fit's inverse information covers the parameters only
+        SS = S.T @ S if SS is None else SS + S.T @ S
+    V = A_inv @ SS @ A_inv
     q = fit.x.size
     cov = (V[:q, :q] + V[:q, :q].T) / 2.0
     st = fit._structure or _Structure(fit.spec)

@@ -389,6 +389,13 @@ def _read_text(data: bytes, source: str, fmt: str) -> dict:
         pref = _preference(fmt)
         delim = next((d for d in pref if d not in sample), pref[0])
     try:
+        plain = _read_text_plain(text, delim)  # from the decoded text: any encoding
+    except (ValueError, TypeError, AttributeError, IndexError, OverflowError):
+        plain = None  # the record-by-record reader below is exact for every file
+    if plain is not None:
+        _note_encoding(text, encoding, notes)
+        return dict(plain, encoding=encoding, delimiter=delim, warnings=notes, row_names=None)
+    try:
         records, multiline, _ = _parse_records(text, delim, source, strict=True)
     except csv.Error:
         # A quote in the middle of a value ("a"b): read it the forgiving way, and say so.
@@ -423,12 +430,16 @@ def _read_text(data: bytes, source: str, fmt: str) -> dict:
     decimal = _apply_decimal(body, delim)
     frame = _frame(columns, body)
     _note_blank_rows(blank_inside, notes)
+    _note_encoding(text, encoding, notes)
+    return dict(frame=frame, row_numbers=row_numbers, encoding=encoding, delimiter=delim,
+                decimal=decimal, warnings=notes, row_names=row_names)
+
+
+def _note_encoding(text: str, encoding: str, notes: list[dict]) -> None:
     if encoding not in ("utf-8", "utf-8-sig", "utf-16", "utf-32") and not text.isascii():
         notes.append({"code": "encoding_guessed", "message": (
             f"the file is not UTF-8; it was read as {_ENCODING_NAMES.get(encoding, encoding)} "
             "text. If accented letters look wrong, save the file as UTF-8")})
-    return dict(frame=frame, row_numbers=row_numbers, encoding=encoding, delimiter=delim,
-                decimal=decimal, warnings=notes, row_names=row_names)
 
 
 _ENCODING_NAMES = {"cp1252": "Windows-1252", "latin-1": "Latin-1", "utf-16": "UTF-16",
@@ -579,6 +590,258 @@ def _frame(columns: list[str], body: list[list[Any]]) -> pd.DataFrame:
 def _show(v: Any) -> str:
     s = str(v)
     return repr(s if len(s) <= 40 else s[:37] + "...")
+
+
+# --------------------------------------------------------------------------- plain text, column-wise
+
+# Files with no quotes, one record per line and a header of distinct names are read column-wise
+# by pandas' C parser (the common case); anything else, or anything this reader is not sure of,
+# goes to the record-by-record reader above, which is exact for every file.
+_PLAIN_CHUNK_ROWS = 200_000
+_PLAIN_CHECK_LINES = 2000  # lines looked at one by one when their lengths disagree
+_POW10 = 10 ** np.arange(19, dtype=np.int64)
+_EXACT_FLOAT = 2.0 ** 53
+
+
+def _canonical_lengths(values: np.ndarray) -> np.ndarray | None:
+    """Characters of each value written as the integer it is (0 for NaN): a numeric field
+    whose text is that long is exactly that text (any other form of the number is longer);
+    None when some value is not a whole number that is written so."""
+    v = np.asarray(values)
+    if v.dtype.kind == "f":
+        blank = np.isnan(v)
+        whole = v[~blank]
+        if whole.size and (not np.all(np.isfinite(whole)) or np.any(np.abs(whole) >= _EXACT_FLOAT)
+                           or np.any(whole != np.round(whole))):
+            return None
+        ints = np.where(blank, 0, v).astype(np.int64)
+    elif v.dtype.kind == "i":
+        if v.size and v.min() == np.iinfo(v.dtype).min:
+            return None
+        ints, blank = v.astype(np.int64), None
+    else:
+        return None
+    mag = np.abs(ints)
+    digits = np.ones(len(ints), dtype=np.int64) + (ints < 0)
+    top = int(mag.max()) if len(mag) else 0
+    for p in _POW10[1:]:  # one comparison per digit the largest value has beyond the first
+        if p > top:
+            break
+        digits += mag >= p
+    return digits if blank is None else np.where(blank, 0, digits)
+
+
+def _text_lengths(cells: np.ndarray, ascii_only: bool) -> np.ndarray:
+    s = pd.Series(cells, dtype=object)
+    lengths = s.str.len() if ascii_only else s.str.encode("utf-8").str.len()
+    return lengths.fillna(0).to_numpy(dtype=np.int64)
+
+
+def _plain_body(text: str, delim: str) -> tuple[list[str], bytes] | None:
+    body = text.encode("utf-8")
+    if b'"' in body or body.count(b"\r") != body.count(b"\r\n"):
+        return None
+    if delim != "\t" and b"\t" in body:  # the two readers skip different spaces at a field's start
+        return None
+    cut = body.find(b"\n")
+    if cut <= 0:
+        return None
+    header = body[:cut].rstrip(b"\r").decode("utf-8").split(delim)
+    names = [h.lstrip(" ").strip() for h in header]
+    if names:
+        names[0] = names[0].lstrip("\ufeff")
+    if any(not n for n in names) or len(set(names)) != len(names) or len(names) < 2:
+        return None
+    rest = body[cut + 1:].rstrip(b"\r\n")  # blank lines after the last row are no rows
+    if not rest.strip():
+        return None
+    return names, rest
+
+
+def _read_plain(body: bytes, delim: str, width: int, columns: list[int] | None = None,
+                as_text: bool = False):
+    """pandas' C parser over the body (no quotes in it): each field as it stands."""
+    import csv as _csv
+
+    return pd.read_csv(
+        io.BytesIO(body), sep=delim, header=None, names=list(range(width)), usecols=columns,
+        dtype=str if as_text else None, na_filter=not as_text, na_values=[""], keep_default_na=False,
+        skipinitialspace=False, quoting=_csv.QUOTE_NONE, skip_blank_lines=False, engine="c",
+        encoding="utf-8", chunksize=None if as_text else _PLAIN_CHUNK_ROWS)
+
+
+def _read_text_plain(text: str, delim: str) -> dict | None:
+    """The column-wise reading of a plain delimited file, or None when it is not plain.
+
+    Gives what the record-by-record reader gives: a column of whole numbers each written as
+    the integer itself becomes numeric (the same numbers and the same text for ids and groups),
+    every other column keeps each cell's text (leading spaces dropped, blank cells missing,
+    decimal commas rewritten). That a numeric column's every field is written as its integer
+    is checked by line lengths: each line's length is the sum of its fields' lengths."""
+    plain = _plain_body(text, delim)
+    if plain is None:
+        return None
+    names, body = plain
+    width = len(names)
+    arr = np.frombuffer(body, dtype=np.uint8)
+    ends = np.flatnonzero(arr == 10)
+    starts = np.concatenate(([0], ends + 1))
+    ends = np.concatenate((ends, [len(arr)]))
+    line_len = ends - starts
+    if body.count(b"\r"):
+        line_len = line_len - (arr[np.maximum(ends - 1, 0)] == 13)
+    n = len(starts)
+    parts: list[list] = [[] for _ in range(width)]  # per column, each chunk's values
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            for chunk in _read_plain(body, delim, width):
+                for j in range(width):
+                    parts[j].append(_chunk_values(chunk[j]))
+                del chunk
+    except (ValueError, pd.errors.ParserError, UnicodeDecodeError, MemoryError):
+        return None
+    if sum(len(p) for p in parts[0]) != n:
+        return None
+    cols: dict[int, np.ndarray] = {}
+    text_cols: set[int] = set()
+    for j in range(width):
+        kinds = {p.dtype.kind for p in parts[j]}
+        if kinds <= {"i"}:
+            cols[j] = np.concatenate(parts[j])
+        elif kinds <= {"i", "f"}:
+            cols[j] = np.concatenate([p.astype(float) for p in parts[j]])
+        elif kinds == {"O"}:
+            v = np.concatenate(parts[j])
+            if pd.api.types.infer_dtype(v, skipna=True) in ("string", "empty"):
+                cols[j] = v
+                text_cols.add(j)
+            else:  # numbers past int64 and text mixed: read the fields as text
+                cols[j] = None
+        else:
+            cols[j] = None
+        parts[j] = []
+    ascii_only = body.isascii()
+    expected = np.full(n, width - 1, dtype=np.int64)
+    lengths: dict[int, np.ndarray] = {}
+    for j, v in cols.items():
+        lj = _text_lengths(v, ascii_only) if j in text_cols else (None if v is None else _canonical_lengths(v))
+        if lj is None:
+            cols[j] = None
+        else:
+            lengths[j] = lj
+            expected += lj
+    limit = csv.field_size_limit()  # the record reader refuses longer values, naming the row
+    if any(j in text_cols and len(lj) and lj.max() > limit for j, lj in lengths.items()):
+        return None
+    while True:
+        need = [j for j, v in cols.items() if v is None]
+        if need:
+            raw = _read_plain(body, delim, width, need, as_text=True)
+            if len(raw) != n:
+                return None
+            for j in need:
+                v = raw[j].to_numpy(dtype=object)
+                if j in lengths:
+                    expected -= lengths[j]
+                cols[j], lengths[j] = v, _text_lengths(v, ascii_only)
+                expected += lengths[j]
+                text_cols.add(j)
+            del raw
+            if any(len(lengths[j]) and lengths[j].max() > limit for j in need):
+                return None
+        wrong = np.flatnonzero(expected != line_len)
+        if not len(wrong):
+            break
+        found = set()
+        for i in wrong[:_PLAIN_CHECK_LINES]:
+            fields = body[starts[i]:ends[i]].rstrip(b"\r").decode("utf-8").split(delim)
+            if len(fields) != width:
+                return None  # a short or long row, or a blank line: the exact reader says so
+            for j, f in enumerate(fields):
+                v = cols[j][i]
+                if j in text_cols:
+                    if ("" if v is np.nan else v) != f:
+                        return None
+                elif ("" if v != v else str(int(v))) != f:
+                    found.add(j)
+        if not found:
+            return None
+        for j in found:
+            cols[j] = None
+    frame_cols: dict[str, Any] = {}
+    for j, name in enumerate(names):
+        v = cols[j]
+        if j in text_cols:
+            frame_cols[name] = _plain_cells(v)
+        elif v.dtype.kind == "i":
+            lo, hi = (int(v.min()), int(v.max())) if v.size else (0, 0)
+            small = next(t for t in (np.int8, np.int16, np.int32, np.int64)
+                         if np.iinfo(t).min <= lo and hi <= np.iinfo(t).max)
+            frame_cols[name] = v.astype(small)
+        else:
+            frame_cols[name] = v
+    frame = pd.DataFrame(frame_cols, copy=False)
+    frame.columns = pd.Index(names, dtype=object)
+    decimal = _plain_decimal(frame, [names[j] for j in sorted(text_cols)], delim)
+    gaps = [frame[c].isna().to_numpy() for c in frame.columns if frame[c].dtype.kind not in "iu"]
+    if len(gaps) == width and np.logical_and.reduce(gaps).any():
+        return None  # a row of empty fields: the exact reader skips it and says so
+    return dict(frame=frame, row_numbers=np.arange(2, n + 2, dtype=np.int64), decimal=decimal)
+
+
+def _chunk_values(s: pd.Series) -> np.ndarray:
+    """A chunk's column as numbers (whole numbers in the smallest integer type that holds them
+    with room below: a type's lowest value is kept for "not written as an integer") or as
+    objects (text, NaN where missing); booleans and others keep their kind."""
+    if s.dtype.kind == "i":
+        v = s.to_numpy()
+        lo, hi = (int(v.min()), int(v.max())) if len(v) else (0, 0)
+        for t in (np.int8, np.int16, np.int32):
+            if np.iinfo(t).min < lo and hi <= np.iinfo(t).max:
+                return v.astype(t)
+        return v
+    if s.dtype.kind == "f":
+        return s.to_numpy()
+    if s.dtype.kind in "OU" or isinstance(s.dtype, pd.StringDtype):
+        return s.to_numpy(dtype=object, na_value=np.nan)
+    return s.to_numpy()
+
+
+def _plain_cells(raw: np.ndarray) -> np.ndarray:
+    """Each field's cell as the csv reader gives it (leading spaces dropped), blank ones NaN."""
+    codes, uniques = pd.factorize(raw)
+    kept = pd.Series(uniques, dtype=object).str.lstrip(" ")
+    kept = kept.where(kept.str.strip() != "", np.nan)
+    cells = np.append(kept.to_numpy(dtype=object), np.nan)
+    return cells[codes]  # code -1 (a missing field) takes the NaN at the end
+
+
+def _plain_decimal(frame: pd.DataFrame, text_columns: list[str], delim: str) -> str:
+    """_apply_decimal over the text columns, one distinct cell at a time."""
+    if delim == ",":
+        return "."
+    commas = points = 0
+    coded = {}
+    for col in text_columns:
+        codes, uniques = pd.factorize(frame[col].to_numpy(dtype=object))
+        counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+        coded[col] = (codes, uniques)
+        for u, k in zip(uniques, counts, strict=True):
+            if "," in u or "." in u:
+                s = u.strip()
+                if _COMMA_DECIMAL.fullmatch(s):
+                    commas += int(k)
+                elif _POINT_DECIMAL.fullmatch(s):
+                    points += int(k)
+    if commas == 0 or commas < points:
+        return "."
+    for col, (codes, uniques) in coded.items():
+        new = [u.strip().replace(",", ".") if "," in u and _COMMA_DECIMAL.fullmatch(u.strip()) else u
+               for u in uniques]
+        cells = np.array(new + [np.nan], dtype=object)
+        frame[col] = cells[codes]
+    return ","
 
 
 # --------------------------------------------------------------------------- xlsx

@@ -11,6 +11,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
+import numpy as np
 import pandas as pd
 
 from samesource.engine.fitting import Moments, RawData
@@ -28,6 +29,9 @@ class MissingPlan:
     dropped_flagged: int = 0
     excluded_by_reason: dict[str, int] = field(default_factory=dict)
     recommendation: str | None = None
+    # Moments of every item over the rows, formed once (listwise, complete rows): a model's
+    # covariance matrix is a block of it, not another pass over the rows.
+    _all_moments: Moments | None = field(default=None, init=False, repr=False, compare=False)
 
     @property
     def rows_analyzed(self) -> int:
@@ -39,11 +43,39 @@ class MissingPlan:
 
     def data_for(self, items: Sequence[str]) -> Moments | RawData:
         """The model input for these items: sample moments (listwise) or raw rows (FIML)."""
-        sub = self.frame[list(items)]
         if self.method == "fiml":
+            sub = self.frame[list(items)]
             sub = sub[sub.notna().any(axis=1)]
             return RawData(names=tuple(items), X=sub.to_numpy(dtype=float))
-        return Moments.from_data(sub.to_numpy(dtype=float), names=tuple(items))
+        full = self._moments()
+        if full is None:
+            return Moments.from_data(self.frame[list(items)].to_numpy(dtype=float), names=tuple(items))
+        idx = np.array([full.names.index(i) for i in items], dtype=np.intp)
+        return Moments(names=tuple(items), cov=full.cov[np.ix_(idx, idx)], n=full.n, mean=full.mean[idx])
+
+    def _moments(self) -> Moments | None:
+        """Moments of every column, when the rows are complete (else None)."""
+        if self._all_moments is None and self.method == "listwise" and len(self.frame) >= 2:
+            X = self.frame.to_numpy(dtype=float)
+            if not np.isnan(X).any():
+                self._all_moments = Moments.from_data(X, names=tuple(str(c) for c in self.frame.columns))
+        return self._all_moments
+
+    def corr(self, items: Sequence[str]) -> pd.DataFrame:
+        """Item correlations on the analysis rows, as ``DataFrame.corr`` gives them
+        (pairwise-complete where rows have gaps); from the moments when rows are complete."""
+        full = self._moments()
+        if full is None:
+            return self.frame[list(items)].corr()
+        idx = np.array([full.names.index(i) for i in items], dtype=np.intp)
+        cov = full.cov[np.ix_(idx, idx)]
+        sd = np.sqrt(np.diag(cov))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r = cov / np.outer(sd, sd)
+        r = np.clip(r, -1.0, 1.0)
+        np.fill_diagonal(r, np.where(sd > 0, 1.0, np.nan))
+        names = pd.Index(list(items), dtype=object)
+        return pd.DataFrame(r, index=names, columns=names)
 
     def complete(self, items: Iterable[str]) -> pd.DataFrame:
         """Rows complete on these items (for statistics that need complete data, e.g. alpha)."""

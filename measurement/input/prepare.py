@@ -85,47 +85,61 @@ def _read_column(s: pd.Series, labels: dict[str, float | None] | None = None
     if pd.api.types.is_datetime64_any_dtype(s.dtype) or isinstance(s.dtype, pd.PeriodDtype):
         return np.full(n, np.nan), s.notna().to_numpy(bool), words
 
+    cells = s.to_numpy(dtype=object)
+    if pd.api.types.infer_dtype(cells, skipna=True) in ("string", "empty"):
+        # Text cells (and missing ones): each distinct text read once, the answers spread back.
+        codes, uniques = pd.factorize(cells)
+        counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+        u_vals = np.full(len(uniques) + 1, np.nan)  # the last entry: missing cells (code -1)
+        u_bad = np.zeros(len(uniques) + 1, dtype=bool)
+        for k, v in enumerate(uniques):
+            u_vals[k], u_bad[k], word = _read_cell(v, labels)
+            if word is not None:
+                words[word] += int(counts[k])
+        return u_vals[codes], u_bad[codes], words
     vals = np.full(n, np.nan)
     bad = np.zeros(n, dtype=bool)
-    for i, v in enumerate(s.to_numpy(dtype=object)):
-        if v is None:
-            continue
-        if isinstance(v, bool | np.bool_):
-            bad[i] = True
-        elif isinstance(v, numbers.Real):
-            f = float(v)
-            if f != f:
-                continue
-            if np.isinf(f):
-                bad[i] = True
-            else:
-                vals[i] = f
-        elif isinstance(v, str):
-            t = v.strip()
-            if not t:
-                continue
-            if _NUMBER.fullmatch(t):
-                f = float(t)
-                if np.isinf(f):
-                    bad[i] = True
-                else:
-                    vals[i] = f
-            elif labels and answer_key(t) in labels:
-                number = labels[answer_key(t)]
-                if number is None:
-                    words[t] += 1
-                else:
-                    vals[i] = number
-            elif t.lower() in MISSING_WORDS:
-                words[t] += 1
-            else:
-                bad[i] = True
-        elif v is pd.NaT or (not isinstance(v, _dt.date | _dt.time | _dt.timedelta)
-                             and _scalar_na(v)):
-            continue
-        else:
-            bad[i] = True  # dates, times and anything else a reader may hand over
+    for i, v in enumerate(cells):
+        vals[i], bad[i], word = _read_cell(v, labels)
+        if word is not None:
+            words[word] += 1
     return vals, bad, words
+
+
+def _read_cell(v: Any, labels: dict[str, float | None] | None) -> tuple[float, bool, str | None]:
+    """One cell by the item rules: (number or NaN, whether it is bad, the missing word it is)."""
+    nan = float("nan")
+    if v is None:
+        return nan, False, None
+    if isinstance(v, bool | np.bool_):
+        return nan, True, None
+    if isinstance(v, numbers.Real):
+        f = float(v)
+        if f != f:
+            return nan, False, None
+        if np.isinf(f):
+            return nan, True, None
+        return f, False, None
+    if isinstance(v, str):
+        t = v.strip()
+        if not t:
+            return nan, False, None
+        if _NUMBER.fullmatch(t):
+            f = float(t)
+            if np.isinf(f):
+                return nan, True, None
+            return f, False, None
+        if labels and answer_key(t) in labels:
+            number = labels[answer_key(t)]
+            if number is None:
+                return nan, False, t
+            return number, False, None
+        if t.lower() in MISSING_WORDS:
+            return nan, False, t
+        return nan, True, None
+    if v is pd.NaT or (not isinstance(v, _dt.date | _dt.time | _dt.timedelta) and _scalar_na(v)):
+        return nan, False, None
+    return nan, True, None  # dates, times and anything else a reader may hand over
 
 
 def _scalar_na(v: Any) -> bool:
@@ -247,7 +261,7 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
     index = pd.Index(np.asarray(table.row_numbers, dtype=np.int64), name=table.row_label)
     notes: list[dict] = [dict(w) for w in table.warnings]
 
-    matrix = np.empty((n, len(items)), dtype=float)
+    matrix = np.empty((n, len(items)), dtype=float, order="F")  # filled and kept column by column
     bad_cols: list[tuple[str, np.ndarray]] = []
     words: Counter = Counter()
     for j, col in enumerate(items):
@@ -324,19 +338,19 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
                         name=design.id_column, dtype=object)
         _check_ids(ids, table, design.id_column, notes)
     if design.group_column:
-        labels = [_label(v) for v in frame[design.group_column].to_numpy(dtype=object)]
-        groups = pd.Series([np.nan if v is None else v for v in labels], index=index,
-                           name=design.group_column, dtype=object)
-        missing = sum(v is None for v in labels)
+        labels, none = _labels(frame[design.group_column])
+        groups = pd.Series(np.where(none, np.nan, labels), index=index, name=design.group_column,
+                           dtype=object)
+        missing = int(none.sum())
         if missing:
-            rows = [int(r) for r, v in zip(table.row_numbers, labels, strict=True) if v is None]
+            rows = [int(r) for r in np.asarray(table.row_numbers)[none]]
             notes.append({"code": "missing_groups", "message": (
                 f"{missing} {table.row_label}(s) have no value in the group column "
                 f"'{design.group_column}' ({_rows_text(table.row_label, rows)}); they cannot "
                 "be placed in a group")})
 
     items_frame = pd.DataFrame(matrix, columns=pd.Index(items, dtype=object), index=index,
-                               dtype="float64")
+                               dtype="float64", copy=False)
     return PreparedData(items=items_frame, ids=ids, groups=groups, scale_min=lo, scale_max=hi,
                         scale_source=source, n_rows=n,
                         missing_cells=int(np.isnan(matrix).sum()), warnings=notes, table=table)
@@ -411,18 +425,39 @@ def _refuse_values_apart(table: LoadedTable, items: list[str], matrix: np.ndarra
         f"{_num(core[1])}}}", field="response_scale", file=table.source, code="values_apart")
 
 
+def _labels(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_label` of every cell (object array, None where missing) and the missing mask;
+    each distinct value labelled once where values of one kind cannot be confused (True and 1
+    are one key to a hash table, but not one label)."""
+    cells = s.to_numpy(dtype=object)
+    if pd.api.types.infer_dtype(cells, skipna=True) in ("string", "empty"):
+        stripped = pd.Series(cells, dtype=object).str.strip().to_numpy(dtype=object, copy=True)
+        none = pd.isna(stripped) | np.equal(stripped, "")
+        stripped[none] = None
+        return stripped, none
+    if pd.api.types.is_numeric_dtype(s.dtype) and not pd.api.types.is_bool_dtype(s.dtype) or \
+            pd.api.types.infer_dtype(cells, skipna=True) in ("string", "empty", "integer", "floating"):
+        codes, uniques = pd.factorize(cells)
+        mapped = np.array([_label(u) for u in uniques] + [None], dtype=object)
+        labels = mapped[codes]
+    else:
+        labels = np.array([_label(v) for v in cells] + [None], dtype=object)[:-1]
+    return labels, np.equal(labels, None)
+
+
 def _check_ids(ids: pd.Series, table: LoadedTable, col: str, notes: list[dict]) -> None:
-    labels = [_label(v) for v in ids.to_numpy(dtype=object)]
-    missing = sum(v is None for v in labels)
+    labels, none = _labels(ids)
+    missing = int(none.sum())
     if missing:
         notes.append({"code": "missing_ids", "message": (
             f"{missing} {table.row_label}(s) have no value in the id column '{col}'")})
-    counts = Counter(v for v in labels if v is not None)
-    repeated = [v for v, c in counts.items() if c > 1]
+    codes, uniques = pd.factorize(labels[~none])  # in order of first appearance
+    counts = np.bincount(codes, minlength=len(uniques))
+    repeated = [uniques[k] for k in np.flatnonzero(counts > 1)]
     if repeated:
         first = repeated[0]
-        where = [int(r) for r, v in zip(table.row_numbers, labels, strict=True) if v == first]
-        n_rows = sum(counts[v] for v in repeated)
+        where = [int(r) for r in np.asarray(table.row_numbers)[np.equal(labels, first)]]
+        n_rows = int(counts[counts > 1].sum())
         notes.append({"code": "duplicate_ids", "message": (
             f"{len(repeated)} id value(s) in column '{col}' appear more than once ({n_rows} "
             f"{table.row_label}s in all; for example {_show(first)} in "

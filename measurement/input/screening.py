@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from samesource.engine.patterns import row_patterns, rows_by_pattern
 from samesource.errors import DesignError
 
 RULE_NAMES = ("longstring", "irv", "mahalanobis", "missing", "out_of_range")
@@ -113,7 +114,9 @@ def _intra_individual_variability(x: np.ndarray) -> np.ndarray:
     m = (~np.isnan(x)).sum(axis=1)
     out = np.full(x.shape[0], np.nan)
     ok = m >= 2
-    if ok.any():
+    if ok.all() and m.min() == x.shape[1]:  # every row complete: the same SDs without NaN handling
+        out[:] = np.std(x, axis=1, ddof=1)
+    elif ok.any():
         out[ok] = np.nanstd(x[ok], axis=1, ddof=1)
     return out
 
@@ -157,9 +160,8 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
     cov = np.atleast_2d(np.cov(complete, rowvar=False, ddof=1))
     singular_rows = 0
     # Rows that share a pattern of answered items share one sub-matrix: invert it once.
-    patterns, inverse = np.unique(answered, axis=0, return_inverse=True)
-    for g, pattern in enumerate(patterns):
-        rows = np.flatnonzero(inverse.ravel() == g)
+    patterns, inverse = row_patterns(answered)
+    for pattern, rows in zip(patterns, rows_by_pattern(inverse, len(patterns)), strict=True):
         if not pattern.any():
             continue
         sub = cov[np.ix_(pattern, pattern)]
@@ -167,7 +169,10 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
         if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
             singular_rows += rows.size
             continue
-        dev = x[np.ix_(rows, pattern)] - mean[pattern]
+        if rows.size == n and pattern.all():
+            dev = x - mean  # every row complete: no copy of the rows first
+        else:
+            dev = x[np.ix_(rows, pattern)] - mean[pattern]
         vals = np.einsum("ij,ij->i", dev @ np.linalg.inv(sub), dev)
         d2[rows] = vals
         p[rows] = stats.chi2.sf(vals, int(pattern.sum()))

@@ -264,7 +264,7 @@ def marker_own_trait(design: Design, plan: MissingPlan) -> dict:
     against their mean absolute correlation with the substantive items."""
     marker = design.marker
     subst = [it for c in design.substantive for it in c.items]
-    corr = plan.frame[list(marker.items) + subst].corr()
+    corr = plan.corr(list(marker.items) + subst)
     mk = list(marker.items)
     within = corr.loc[mk, mk].to_numpy()[np.triu_indices(len(mk), k=1)]
     between = np.abs(corr.loc[mk, subst].to_numpy()).ravel()

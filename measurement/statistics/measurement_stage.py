@@ -18,7 +18,7 @@ from samesource.statistics.validity import HTMT_VARIANT, fornell_larcker, htmt, 
 
 def item_correlations(plan: MissingPlan, items: list[str]) -> pd.DataFrame:
     """Item correlations on the analysis rows (pairwise-complete when rows have gaps)."""
-    return plan.frame[items].corr()
+    return plan.corr(items)
 
 
 def measurement_model_section(design: Design, plan: MissingPlan, opts: AnalysisOptions,
