@@ -17,12 +17,11 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
-from conftest import POSTGRES_URL
+from conftest import BACKENDS, POSTGRES_URL
 from hypothesis import HealthCheck, assume, event, given, settings
 from hypothesis import strategies as st
 from test_loading import make_sav, make_xlsx
 from test_service_api import assert_error, token_for, upload
-from test_service_storage import BACKENDS
 
 from samesource.errors import DesignError, InputError
 from samesource.input.design import check_columns, load_design, parse_design
