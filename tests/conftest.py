@@ -65,10 +65,10 @@ def svc_survey() -> tuple[bytes, dict]:
     return small_survey()
 
 
-def wait_for(predicate: Callable[[], object], *, timeout: float, every: float = 0.2,
+def wait_for(predicate: Callable[[], object], *, timeout: float, every: float = 0.05,
              what: str = "condition") -> object:
     """Poll until ``predicate()`` is truthy; fail the test after ``timeout`` seconds (a bound
-    on a wait, not a speed check)."""
+    on a wait, not a speed check). Every 0.05 s: a test waits no longer than what it waits for."""
     deadline = time.monotonic() + timeout
     while True:
         value = predicate()
