@@ -53,6 +53,11 @@ def csp_violations(page) -> list[str]:
 
 try:
     from playwright.sync_api import expect, sync_playwright
+
+    # A bound on each wait, not a speed check: playwright's 5 s default failed once on a
+    # shared machine (load 7 on two cores, the other xdist worker busy) for a button that
+    # showed a moment later.
+    expect.set_options(timeout=30_000)
 except ImportError:  # pragma: no cover - depends on the machine
     sync_playwright = None
 
