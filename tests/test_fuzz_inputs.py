@@ -8,7 +8,7 @@ example budget with derandomize=True, so a CI run is reproducible and short.
 The budgets written below are the full hunt; the suite runs a quarter of each (at least 10),
 which keeps `make test` inside its time budget. SAMESOURCE_FUZZ_SHARE sets the share:
 `SAMESOURCE_FUZZ_SHARE=1 pytest tests/test_fuzz_inputs.py` runs the written budgets (about
-three minutes here), 4 four times them.
+three minutes here); 4 runs four times them.
 """
 
 from __future__ import annotations
