@@ -18,8 +18,10 @@ demo: $(STAMP)
 	$(BIN)/samesource analyze sample_surveys/staff_survey.csv --design sample_surveys/staff_survey_two_sources_design.json --source manager=sample_surveys/manager_ratings.csv --missing fiml --out samesource-report
 	$(BIN)/python -m samesource.service.demo_client
 
+# Two workers (the CI machine has two cores); tests that share a server, a mount or a file
+# outside their tmp_path carry an xdist_group mark (tests/conftest.py) and run on one worker.
 test: $(STAMP)
-	$(BIN)/python -m pytest -q --durations=10
+	$(BIN)/python -m pytest -q -n 2 --dist loadgroup --durations=10
 
 # The page at / driven in headless Chromium (Debian's /usr/bin/chromium: apt-get install -y
 # chromium); skipped with a reason when Chromium or the playwright package is missing.

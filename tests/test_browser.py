@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 import requests
-from conftest import ROOT, new_token, wait_for
+from conftest import ROOT, SYSTEM, new_token, wait_for
 
 CHROMIUM = Path(os.environ.get("SAMESOURCE_TEST_CHROMIUM", "/usr/bin/chromium"))
 ARTIFACTS = ROOT / "tests" / "artifacts"
@@ -53,10 +53,16 @@ def csp_violations(page) -> list[str]:
 
 try:
     from playwright.sync_api import expect, sync_playwright
+
+    # A bound on each wait, not a speed check: playwright's 5 s default failed once on a
+    # shared machine (load 7 on two cores, the other xdist worker busy) for a button that
+    # showed a moment later.
+    expect.set_options(timeout=30_000)
 except ImportError:  # pragma: no cover - depends on the machine
     sync_playwright = None
 
 pytestmark = [
+    SYSTEM,  # each drives a Chromium and writes to tests/artifacts: one after another
     pytest.mark.skipif(sync_playwright is None,
                        reason="the Python package 'playwright' is not installed (pip install -e '.[test]')"),
     pytest.mark.skipif(not CHROMIUM.exists(),

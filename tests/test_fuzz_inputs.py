@@ -4,6 +4,11 @@ The rule under test: bad input always gets a clear error naming what is wrong an
 (an InputError with its field, file, row or column; over HTTP a JSON error body, never a
 5xx), and input that is accepted is kept whole. Inputs stay small and every test has a fixed
 example budget with derandomize=True, so a CI run is reproducible and short.
+
+The budgets written below are the full hunt; the suite runs a quarter of each (at least 10),
+which keeps `make test` inside its time budget. SAMESOURCE_FUZZ_SHARE sets the share:
+`SAMESOURCE_FUZZ_SHARE=1 pytest tests/test_fuzz_inputs.py` runs the written budgets (about
+three minutes here); 4 runs four times them.
 """
 
 from __future__ import annotations
@@ -12,17 +17,18 @@ import copy
 import hashlib
 import io
 import json
+import math
+import os
 import urllib.parse
 from pathlib import Path
 
 import pandas as pd
 import pytest
-from conftest import POSTGRES_URL
+from conftest import BACKENDS, POSTGRES_URL
 from hypothesis import HealthCheck, assume, event, given, settings
 from hypothesis import strategies as st
 from test_loading import make_sav, make_xlsx
 from test_service_api import assert_error, token_for, upload
-from test_service_storage import BACKENDS
 
 from samesource.errors import DesignError, InputError
 from samesource.input.design import check_columns, load_design, parse_design
@@ -46,6 +52,14 @@ SAMPLE_COLUMNS = SAMPLE_LINES[0].decode().strip().split(",")
 
 # Function-scoped fixtures (tmp_path) are fine here: each example writes only its own files.
 # No example database: derandomize alone decides the examples, and nothing is written here.
+FUZZ_SHARE = float(os.environ.get("SAMESOURCE_FUZZ_SHARE", "0.25"))
+
+
+def examples(full: int) -> int:
+    """The examples a test runs: ``full`` (its written budget) times SAMESOURCE_FUZZ_SHARE."""
+    return max(10, math.ceil(full * FUZZ_SHARE))
+
+
 FUZZ = settings(deadline=None, derandomize=True, database=None, print_blob=True,
                 suppress_health_check=[HealthCheck.function_scoped_fixture,
                                        HealthCheck.too_slow, HealthCheck.data_too_large])
@@ -124,7 +138,7 @@ def assert_input_error(e: BaseException, *, field_prefix: str | None = None) -> 
     json.dumps(e.to_dict(), allow_nan=False)
 
 
-@settings(FUZZ, max_examples=400)
+@settings(FUZZ, max_examples=examples(400))
 @given(DESIGNS)
 def test_any_design_is_accepted_or_refused_naming_its_field(obj):
     try:
@@ -143,7 +157,7 @@ def test_any_design_is_accepted_or_refused_naming_its_field(obj):
         assert e.file == "staff_survey.csv" and e.field
 
 
-@settings(FUZZ, max_examples=60)
+@settings(FUZZ, max_examples=examples(60))
 @given(st.binary(max_size=300) | mutated(SAMPLE_DESIGN).map(
     lambda d: json.dumps(d, ensure_ascii=False).encode("utf-8", "surrogatepass")))
 def test_any_design_file_is_read_or_refused_naming_the_file(tmp_path, raw):
@@ -170,7 +184,7 @@ OPTIONS = (st.fixed_dictionaries({}, optional={
     | JSON)
 
 
-@settings(FUZZ, max_examples=300)
+@settings(FUZZ, max_examples=examples(300))
 @given(OPTIONS)
 def test_any_options_are_accepted_or_refused_naming_the_option(obj):
     try:
@@ -218,13 +232,13 @@ NAMES = st.sampled_from(["survey.csv", "survey.tsv", "survey.txt", "survey.xlsx"
                          "survey", "survey.dat", None])
 
 
-@settings(FUZZ, max_examples=300)
+@settings(FUZZ, max_examples=examples(300))
 @given(st.binary(max_size=600), NAMES)
 def test_any_bytes_are_read_or_refused_naming_the_file(data, name):
     check_loaded(data, name)
 
 
-@settings(FUZZ, max_examples=150)
+@settings(FUZZ, max_examples=examples(150))
 @given(st.lists(st.sampled_from([b"PK\x03\x04", b"$FL2", b"\xef\xbb\xbf", b"\xff\xfe", b"\xfe\xff",
                                  b"\x00", b",", b";", b"\t", b"|", b'"', b"\r\n", b"\n", b"\r",
                                  b"=1+1", b"\x1a", b"\x81", b"\xe9", b"\xc3\xa9", b"1,5", b"a"]),
@@ -282,7 +296,7 @@ def mutated_csv(draw) -> bytes:
     return b"".join(lines)
 
 
-@settings(FUZZ, max_examples=250)
+@settings(FUZZ, max_examples=examples(250))
 @given(mutated_csv(), NAMES)
 def test_mutated_sample_csv_is_read_or_refused_naming_the_file(data, name):
     check_loaded(data, name)
@@ -295,7 +309,7 @@ def cells(t) -> list[list]:
 SAMPLE_CELLS = cells(load_table(SAMPLE_CSV, name="staff_survey.csv"))
 
 
-@settings(FUZZ, max_examples=60)
+@settings(FUZZ, max_examples=examples(60))
 @given(st.sampled_from([",", ";", "\t", "|"]), st.sampled_from(["\n", "\r\n"]),
        st.sampled_from(["utf-8", "utf-8-sig", "utf-16", "utf-16-le-bom", "utf-16-be-bom",
                         "utf-32", "utf-32-be-bom", "cp1252"]),
@@ -351,7 +365,7 @@ def corrupted(draw, data: bytes) -> bytes:
     return bytes(out)
 
 
-@settings(FUZZ, max_examples=120)
+@settings(FUZZ, max_examples=examples(120))
 @given(data=st.data(), name=st.sampled_from(["s.xlsx", "s.csv", "s"]),
        sheet=st.none() | st.sampled_from([0, 1, 7, "Answers", "Notes", "nope", ""]))
 def test_corrupted_workbooks_are_read_or_refused(xlsx_bytes, data, name, sheet):
@@ -359,7 +373,7 @@ def test_corrupted_workbooks_are_read_or_refused(xlsx_bytes, data, name, sheet):
 
 
 # Each .sav read starts a reader process (see loading._read_sav), hence the small budget.
-@settings(FUZZ, max_examples=30)
+@settings(FUZZ, max_examples=examples(30))
 @given(data=st.data(), name=st.sampled_from(["s.sav", "s.csv", "s"]))
 def test_corrupted_spss_files_are_read_or_refused(sav_bytes, data, name):
     check_loaded(data.draw(corrupted(sav_bytes)), name)
@@ -387,7 +401,7 @@ def rezipped(draw, data: bytes) -> bytes:
     return buf.getvalue()
 
 
-@settings(FUZZ, max_examples=80)
+@settings(FUZZ, max_examples=examples(80))
 @given(data=st.data())
 def test_workbooks_with_a_damaged_part_are_read_or_refused(xlsx_bytes, data):
     check_loaded(data.draw(rezipped(xlsx_bytes)), "s.xlsx")
@@ -467,7 +481,7 @@ CONTENT_TYPES = st.sampled_from([
 ])
 
 
-@settings(FUZZ, max_examples=150)
+@settings(FUZZ, max_examples=examples(150))
 @given(data=st.data())
 def test_any_analysis_request_answers_below_500(api, data):
     app, client, headers, ds = api
@@ -493,7 +507,7 @@ FILE_NAMES = (st.sampled_from(["survey.csv", "s.xlsx", "s.sav", "s.tsv", "../../
               | st.text(max_size=20))
 
 
-@settings(FUZZ, max_examples=100)
+@settings(FUZZ, max_examples=examples(100))
 @given(data=st.data())
 def test_any_upload_answers_below_500_and_keeps_what_it_accepts(api, data, xlsx_bytes, sav_bytes):
     app, client, headers, _ = api
@@ -543,7 +557,7 @@ def multipart_bodies(draw) -> tuple[bytes, str]:
     return b"".join(parts) + tail, ctype
 
 
-@settings(FUZZ, max_examples=100)
+@settings(FUZZ, max_examples=examples(100))
 @given(multipart_bodies())
 def test_malformed_multipart_bodies_answer_below_500(api, body_and_type):
     app, client, headers, _ = api
@@ -566,7 +580,7 @@ ROUTES = st.sampled_from([("GET", "/v1/datasets/{}"), ("DELETE", "/v1/datasets/{
                           ("POST", "/v1/analyses/{}")])
 
 
-@settings(FUZZ, max_examples=200)
+@settings(FUZZ, max_examples=examples(200))
 @given(ROUTES, IDS, st.booleans())
 def test_any_object_id_answers_below_500(api, route, object_id, quoted):
     app, client, headers, ds = api
@@ -587,7 +601,7 @@ QUERY_VALUES = (st.sampled_from(["", "0", "1", "1000", "1001", "-1", "1e3", "0x1
                 | st.text(max_size=12))
 
 
-@settings(FUZZ, max_examples=150)
+@settings(FUZZ, max_examples=examples(150))
 @given(st.sampled_from(["/v1/datasets", "/v1/analyses"]),
        st.dictionaries(st.sampled_from(["limit", "offset", "dataset_id", "LIMIT", "x"]),
                        QUERY_VALUES, max_size=3))
@@ -598,7 +612,7 @@ def test_any_list_query_answers_below_500(api, path, query):
     assert_answer(r)
 
 
-@settings(FUZZ, max_examples=80)
+@settings(FUZZ, max_examples=examples(80))
 @given(st.sampled_from(["", "Bearer", "Bearer ", "bearer x", "Basic x", "Bearer ss1_",
                         "Bearer ss1_0123456789abcdef_" + "A" * 43, "Bearer " + "x" * 5000])
        | st.text(alphabet=st.characters(min_codepoint=32, max_codepoint=255), max_size=60))

@@ -100,18 +100,36 @@ def test_preferred_estimate_recovers_truth_and_observed_is_biased():
         assert p["estimates"]["latent"]["estimate"] > truth + 0.08
 
 
-def test_preferred_interval_covers_truth_in_about_95_percent_of_seeds():
-    # Seeds 200-229, n = 600, two paths each: 60 Wald intervals of the preferred estimate.
-    # Observed in development: 54 of 60 (90%), consistent with 95% (binomial P(X <= 54) = .18).
-    # We accept 51 or more: P(X <= 50 | p = .95) is 0.07% (scipy.stats.binom).
-    cover = 0
-    total = 0
-    for seed in range(200, 230):
+def _coverage(seeds: range) -> tuple[int, int]:
+    """Intervals of the preferred estimate (n = 600, two paths per seed) that cover the truth."""
+    cover = total = 0
+    for seed in seeds:
         paths = _paths(seed)
         for key, truth in TRUTH.items():
             e = paths[key]["estimates"][paths[key]["preferred"]]
             total += 1
             cover += e["ci"][0] <= truth <= e["ci"][1]
+    return cover, total
+
+
+def test_preferred_interval_covers_truth_in_most_of_ten_seeds():
+    # The suite's short version of the 30-seed study below (marked slow: `pytest -m slow
+    # tests/test_paths.py`). Seeds 200-209 (the long version's first ten): 20 Wald intervals
+    # of the preferred estimate; observed: 16 of 20 (four of the long run's six misses fall
+    # here). We accept 16 or more: P(X <= 15 | n = 20, p = .95) is 0.26% (scipy.stats.binom).
+    # It catches gross under-coverage; the long version the finer one.
+    cover, total = _coverage(range(200, 210))
+    assert total == 20
+    assert cover >= 16, f"{cover}/{total} intervals covered the truth"
+
+
+@pytest.mark.slow
+def test_preferred_interval_covers_truth_in_about_95_percent_of_seeds():
+    # Seeds 200-229, n = 600, two paths each: 60 Wald intervals of the preferred estimate.
+    # Observed in development: 54 of 60 (90%), consistent with 95% (binomial P(X <= 54) = .18).
+    # We accept 51 or more: P(X <= 50 | p = .95) is 0.07% (scipy.stats.binom).
+    # Slow (about a minute): the suite runs the ten-seed version above.
+    cover, total = _coverage(range(200, 230))
     assert total == 60
     assert cover >= 51, f"{cover}/{total} intervals covered the truth"
 

@@ -183,6 +183,6 @@ def test_deleting_the_dataset_stops_its_analysis_on_the_cluster(cluster, client,
                                         if str(k).startswith("samesource-stop-")])
 
         # kept FLAG_KEEP_SECONDS for batch tasks that have not asked yet, then cleared
-        wait_for(flags_cleared, timeout=30, every=0.5, what="the stop flag to be cleared")
+        wait_for(flags_cleared, timeout=30, every=0.1, what="the stop flag to be cleared")
     finally:
         svc.close()

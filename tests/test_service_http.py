@@ -51,7 +51,7 @@ def poll(base: str, token: str, analysis_id: str, *, timeout: float) -> dict:
         a = r.json()
         return a if a["status"] in ("succeeded", "failed") else None
 
-    return wait_for(finished, timeout=timeout, every=0.5, what=f"analysis {analysis_id}")
+    return wait_for(finished, timeout=timeout, every=0.1, what=f"analysis {analysis_id}")
 
 
 def without(report: dict, paths: set[tuple[str, ...]]) -> dict:

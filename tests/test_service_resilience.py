@@ -23,7 +23,7 @@ from samesource.service.context import EXTENSION
 from samesource.service.db import Database
 from samesource.service.models import Base
 from samesource.service.store import Store
-from tests.conftest import POSTGRES_URL, cli, wait_for
+from tests.conftest import BACKENDS, POSTGRES, POSTGRES_URL, SYSTEM, cli, wait_for
 
 pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
 
@@ -179,6 +179,7 @@ def _pg_cluster() -> list[str] | None:
     return out[:2] if len(out) >= 2 else None
 
 
+@POSTGRES  # stops the server: nothing else may use it meanwhile
 @pytest.mark.skipif(_pg_cluster() is None, reason="needs SAMESOURCE_TEST_POSTGRES_URL, root and "
                     "Debian's pg_ctlcluster to stop and start the server")
 def test_analyses_survive_a_postgresql_restart(tmp_path):
@@ -327,6 +328,7 @@ def small_disk(tmp_path):
     subprocess.run(["umount", "-l", str(mnt)], check=False)
 
 
+@SYSTEM  # mounts a tmpfs
 def test_a_full_disk_answers_507_deletes_still_work_and_the_runner_resumes(small_disk):
     app = make_app(small_disk / "data", min_free_mb=1, storage_retry_seconds=2.0)
     c, h = app.test_client(), headers(app)
@@ -368,10 +370,6 @@ def test_a_full_disk_answers_507_deletes_still_work_and_the_runner_resumes(small
 
 
 # ---------------------------------------------------------------------- fairness and quotas
-
-
-BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.skipif(
-    not POSTGRES_URL, reason="set SAMESOURCE_TEST_POSTGRES_URL (make test-postgres)"))]
 
 
 @pytest.fixture(params=BACKENDS)

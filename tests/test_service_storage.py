@@ -8,7 +8,7 @@ import threading
 from datetime import timedelta
 
 import pytest
-from conftest import POSTGRES_URL, small_survey, wait_for
+from conftest import BACKENDS, POSTGRES_URL, small_survey, wait_for
 from sqlalchemy import select, text, update
 
 from samesource.service import tokens
@@ -17,9 +17,6 @@ from samesource.service.context import EXTENSION
 from samesource.service.db import Database
 from samesource.service.models import Analysis, Base, utcnow
 from samesource.service.store import Claim, Store
-
-BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.skipif(
-    not POSTGRES_URL, reason="set SAMESOURCE_TEST_POSTGRES_URL (make test-postgres)"))]
 
 
 @pytest.fixture(params=BACKENDS)
