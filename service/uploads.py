@@ -268,6 +268,12 @@ def _vm_bytes() -> int:
     return 0
 
 
+def _is_string_dtype(dtype) -> bool:
+    from pandas.api.types import is_string_dtype  # pandas loads only in the parsing child
+
+    return is_string_dtype(dtype)
+
+
 def check_table_limits(frame, limits: ParseLimits) -> None:
     """Rows, columns, cells, column-name length and cell length against the limits."""
     rows, cols = frame.shape
@@ -288,7 +294,8 @@ def check_table_limits(frame, limits: ParseLimits) -> None:
                             f"over the limit of {limits.max_column_name_chars}; shorten it")
     for name in frame.columns:
         col = frame[name]
-        if col.dtype != object:
+        # text columns are object or pandas' string dtype (the column-wise reader's text columns)
+        if col.dtype != object and not _is_string_dtype(col.dtype):
             continue
         lengths = col.map(lambda v: len(v) if isinstance(v, str) else 0)
         if len(lengths) and int(lengths.max()) > limits.max_cell_chars:
