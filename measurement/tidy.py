@@ -37,10 +37,17 @@ def _items(data: pd.DataFrame, constructs: Constructs) -> pd.DataFrame:
     if missing:
         raise DataError(f"no column named {', '.join(map(repr, missing))} in the data",
                         field="constructs")
-    try:
-        return data[items].apply(pd.to_numeric, errors="raise").astype(float)
-    except (TypeError, ValueError) as exc:
-        raise DataError(f"item columns must be numbers: {exc}", field="data") from None
+    out = {}
+    for it in dict.fromkeys(items):
+        col = pd.to_numeric(data[it], errors="coerce")
+        bad = col.isna() & data[it].notna()
+        if bad.any():
+            row = bad.to_numpy().argmax()
+            raise DataError(f"item column {it!r} must hold numbers: {data[it].iloc[row]!r} at row "
+                            f"{row + 1} (index {data.index[row]!r}) is not one; recode or blank it",
+                            field="data")
+        out[it] = col.astype(float)
+    return pd.DataFrame(out, index=data.index)
 
 
 def alpha(data: pd.DataFrame, constructs: Constructs, confidence: float = 0.95) -> pd.DataFrame:
