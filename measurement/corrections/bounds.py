@@ -55,7 +55,10 @@ def plausible_shares(mv: dict, assumptions: list[Assumption]) -> PlausibleShares
     mf, mm = mv.get("method_factor") or {}, mv.get("measured_method")
     marker = find(assumptions, "marker_carries_method")
     loadings = find(assumptions, "method_loadings")
-    loadings_ok = loadings is None or loadings.status == "holds"
+    # untestable equal loadings (no clean free-loading model) leave the equal-loading share as the
+    # only estimate; it is used and the basis says it rests on them
+    loadings_ok = loadings is None or loadings.status in ("holds", "untestable")
+    untested = loadings is not None and loadings.status == "untestable"
     found: list[tuple[str, float, list[float]]] = []
     if mf.get("usable_as_correction") and mf.get("method_share_ci") and loadings_ok:
         if mf.get("identified_by") != "marker" or (marker is not None and marker.status == "holds"):
@@ -82,7 +85,10 @@ def plausible_shares(mv: dict, assumptions: list[Assumption]) -> PlausibleShares
             names = " and ".join(n for n, _, _ in found)
         return PlausibleShares(lo, hi, "estimated",
                                f"method share {lo:.2f} to {hi:.2f}: the confidence interval of the share estimated by "
-                               f"{names}, whose assumptions hold", found[0][1], found[0][2], found[0][0])
+                               f"{names}, whose assumptions hold"
+                               + (" (equal method loadings, which this survey cannot test, included)"
+                                  if untested and "method factor" in names else ""),
+                               found[0][1], found[0][2], found[0][0])
     est = mf.get("method_share") if mf.get("usable_as_correction") else None
     lo, hi = PUBLISHED_SHARES.range
     return PlausibleShares(

@@ -395,6 +395,9 @@ def method_factor_section(design: Design, fitter: Fitter, mm: FitResult) -> dict
         "loadings": "free" if free_ok else "equal",
         "free_loadings_not_used_because": free_reasons if not free_ok else [],
         "free_loadings_concentration": conc,
+        # why the free-loading solution is not a clean one (status, degeneracy): its
+        # chi-square difference against equal loadings is then no test of them
+        "free_loadings_unclean": ([f"status '{free.status}'"] if free.status != "ok" else []) + degenerate,
         "method_share": shares["overall"],
         "method_share_ci": interval["ci"] if interval else None,
         "method_share_by_construct": shares["by_construct"],
