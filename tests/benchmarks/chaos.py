@@ -60,6 +60,7 @@ def kill9_loop(data_dir: Path, rounds: int, *, seed: int = 0, env: dict | None =
     data, design = small_survey(n=150)
     uploads: dict[str, str] = {}
     analyses: list[str] = []
+    refused: dict[int, int] = {}
     for r in range(rounds):
         srv = ServerProcess(data_dir, env=env).start()
         try:
@@ -73,6 +74,8 @@ def kill9_loop(data_dir: Path, rounds: int, *, seed: int = 0, env: dict | None =
                                         "options": {"bootstrap": bootstrap, "seed": r}})
                 if a.status_code == 202:
                     analyses.append(a.json()["id"])
+                else:  # e.g. 429: the tenant's queue is full (SAMESOURCE_TENANT_MAX_QUEUED)
+                    refused[a.status_code] = refused.get(a.status_code, 0) + 1
             time.sleep(rng.uniform(0.2, 2.5))
         finally:
             srv.kill9()
@@ -89,7 +92,7 @@ def kill9_loop(data_dir: Path, rounds: int, *, seed: int = 0, env: dict | None =
         identical = sum(_get(f"{srv.base}/v1/datasets/{d}", token).get("sha256") == sha
                         for d, sha in uploads.items())
         return {"rounds": rounds, "uploads_accepted": len(uploads), "uploads_identical": identical,
-                "analyses": len(analyses),
+                "analyses": len(analyses), "analyses_refused": refused,
                 "succeeded": sum(s["status"] == "succeeded" for s in statuses.values()),
                 "failed": sum(s["status"] == "failed" for s in statuses.values()),
                 "stuck": sum(s["status"] in ("queued", "running") for s in statuses.values()),
