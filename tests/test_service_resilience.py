@@ -432,6 +432,55 @@ def test_queued_and_replicate_limits_answer_429_with_retry_after(tmp_path):
         closing(app)
 
 
+def test_two_tenants_through_the_runner_take_turns_and_meet_their_limits(tmp_path):
+    # The case, small: tenant "big" queues four bootstrap analyses, tenant "small" one
+    # plain analysis after them, one job worker. First come, first served would run small's
+    # analysis last; round-robin runs it as soon as big's first one ends.
+    replicates = 10  # a second or two of bootstrap each (serial: max_processes 1, no pool to start)
+    app = make_app(tmp_path / "d", max_processes=1, tenant_max_queued=4,
+                   tenant_max_replicates=4 * replicates)
+    c = app.test_client()
+    big, small = headers(app, "big"), headers(app, "small")
+
+    def analysis(hdrs, aid):
+        return c.get(f"/v1/analyses/{aid}", headers=hdrs).get_json()
+
+    try:
+        data, design = quick_survey()
+        big_ds = upload(c, big, data).get_json()["id"]
+        small_ds = upload(c, small, data).get_json()["id"]
+        first = start(c, big, big_ds, design, {"bootstrap": replicates}).get_json()["id"]
+        wait_for(lambda: analysis(big, first)["status"] != "queued", timeout=30,
+                 what="big's first analysis to start")
+        assert analysis(big, first)["status"] == "running"  # the job process alone takes seconds to start
+        rest = [start(c, big, big_ds, design, {"bootstrap": replicates}) for _ in range(3)]
+        assert [r.status_code for r in rest] == [202] * 3, [r.get_json() for r in rest]
+        # past big's limits (its first analysis still runs: seconds of bootstrap): 429, Retry-After
+        over = start(c, big, big_ds, design, {"bootstrap": 1})
+        assert over.status_code == 429 and int(over.headers["Retry-After"]) > 0, over.get_json()
+        assert over.get_json()["error"]["limit"] == "SAMESOURCE_TENANT_MAX_REPLICATES"
+        rest.append(start(c, big, big_ds, design))  # no replicates: within both, the 4th queued
+        assert rest[-1].status_code == 202, rest[-1].get_json()
+        full = start(c, big, big_ds, design)
+        assert full.status_code == 429 and int(full.headers["Retry-After"]) > 0, full.get_json()
+        assert full.get_json()["error"]["limit"] == "SAMESOURCE_TENANT_MAX_QUEUED"
+        # small's analysis, queued last, is not held back by big's queue or big's limits
+        mine = start(c, small, small_ds, design)
+        assert mine.status_code == 202, mine.get_json()
+        mine_id = mine.get_json()["id"]
+        # the one worker frees when big's first ends, and takes small's analysis next
+        running = wait_for(lambda: (a := analysis(small, mine_id))["status"] != "queued" and a,
+                           timeout=60, what="small's analysis to start")
+        assert running["status"] in ("running", "succeeded"), running["error"]
+        bigs = [analysis(big, first)] + [analysis(big, r.get_json()["id"]) for r in rest]
+        assert bigs[0]["status"] == "succeeded", bigs[0]["error"]
+        # before any of big's queued four started (first come, first served: after all four)
+        assert all(b["status"] == "queued" or b["started_at"] > running["started_at"]
+                   for b in bigs[1:]), (running, bigs)
+    finally:
+        closing(app)
+
+
 # headers and content security policies: tests/test_service_headers.py
 
 
