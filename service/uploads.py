@@ -306,6 +306,19 @@ def check_table_limits(frame, limits: ParseLimits) -> None:
                             f"{limits.max_cell_chars}")
 
 
+def _ran_out_of_memory(e: BaseException) -> bool:
+    """Whether ``e`` was raised while handling a MemoryError: the workbook reader reports any
+    failure inside openpyxl as a workbook it cannot open (``raise ... from None`` still keeps
+    the MemoryError as the context), which under the child's memory cap is the cap."""
+    seen: set[int] = set()
+    while e is not None and id(e) not in seen:
+        if isinstance(e, MemoryError):
+            return True
+        seen.add(id(e))
+        e = e.__cause__ or e.__context__
+    return False
+
+
 def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
     """In the child: limit memory, parse, check, send ("ok", UploadSummary) or the refusal."""
     import resource
@@ -329,8 +342,11 @@ def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
     except OverLimit as e:
         out = ("limit", (e.status, e.field, e.value, e.message))
     except InputError as e:
-        api = from_input_error(e)
-        out = ("input", (api.status, api.code, api.message, api.field, api.extra))
+        if _ran_out_of_memory(e):  # a reader's "cannot open" over the cap is the cap
+            out = ("memory", None)
+        else:
+            api = from_input_error(e)
+            out = ("input", (api.status, api.code, api.message, api.field, api.extra))
     except Exception as e:
         from .errors import safe_trace
 
