@@ -90,6 +90,7 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
             db.dispose()
             raise ConfigError(str(e)) from None
         _sweep_uploads(cfg, store)
+        uploads.start_parsing_server()  # in the background: the first upload need not wait
         svc.runner = JobRunner(store, cfg, make_backend(cfg, store))
         svc.runner.start()
     return app
