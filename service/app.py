@@ -11,7 +11,7 @@ from flask import Flask, request
 
 from . import api, errors, pages, uploads
 from .config import MULTIPART_SLACK, ConfigError, ServiceConfig, load_config
-from .context import EXTENSION, Services
+from .context import EXTENSION, QUEUED_SECONDS, Services
 from .db import Database
 from .runner import JobRunner, make_backend
 from .security import security_headers
@@ -38,6 +38,21 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
     app.json.sort_keys = False  # fields in the documented order
     svc = Services(config=cfg, store=store)
     app.extensions[EXTENSION] = svc
+
+    @app.before_request
+    def _shed_requests_that_waited_too_long() -> None:
+        # First of all: a request that waited past the setting for a request thread (the
+        # server puts the wait in the environ) is answered at once rather than served late,
+        # so a deep queue drains in moments and clients get an answer, not a timeout.
+        waited = request.environ.get(QUEUED_SECONDS)
+        if waited is not None and waited > cfg.max_queue_seconds and request.path != "/healthz":
+            log.warning("overloaded: %s %s waited %.1f s for a request thread; answered 503",
+                        request.method, request.path, waited)
+            raise errors.ApiError(503, "overloaded", (
+                f"the service is overloaded: this request waited {waited:.1f} s for a request "
+                f"thread, over SAMESOURCE_MAX_QUEUE_SECONDS ({cfg.max_queue_seconds:g} s); "
+                f"try again in {errors.OVERLOAD_RETRY_AFTER} s"),
+                headers={"Retry-After": str(errors.OVERLOAD_RETRY_AFTER)})
 
     @app.before_request
     def _refuse_large_bodies_early() -> None:
@@ -75,6 +90,7 @@ def create_app(config: ServiceConfig | Mapping[str, Any] | None = None) -> Flask
             db.dispose()
             raise ConfigError(str(e)) from None
         _sweep_uploads(cfg, store)
+        uploads.start_parsing_server()  # in the background: the first upload need not wait
         svc.runner = JobRunner(store, cfg, make_backend(cfg, store))
         svc.runner.start()
     return app

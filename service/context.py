@@ -11,6 +11,9 @@ from .runner import JobRunner
 from .store import Store
 
 EXTENSION = "samesource"
+# The WSGI environ key in which the server (service/server.py) puts the seconds a request,
+# fully received, waited for a request thread; the app answers 503 past the setting.
+QUEUED_SECONDS = "samesource.queued_seconds"
 
 
 @dataclass

@@ -75,6 +75,7 @@ def from_input_error(e: InputError, *, field_prefix: str | None = None) -> ApiEr
 
 
 STORAGE_RETRY_AFTER = 5  # seconds a client should wait after a 503 for unreachable storage
+OVERLOAD_RETRY_AFTER = 2  # ... and after a 503 for an overloaded server (a queue drains fast)
 
 
 def storage_error(e: BaseException) -> ApiError | None:

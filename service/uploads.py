@@ -9,8 +9,10 @@ a dataset's name; :func:`sweep` (run when the service starts) removes what a cra
 from __future__ import annotations
 
 import hashlib
+import logging
 import os
 import tempfile
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -18,6 +20,8 @@ from typing import TYPE_CHECKING, BinaryIO
 
 if TYPE_CHECKING:
     from .upload_summary import UploadSummary
+
+log = logging.getLogger("samesource.service")
 
 CHUNK = 1 << 20
 SPOOL_PREFIX = ".incoming-"
@@ -306,6 +310,19 @@ def check_table_limits(frame, limits: ParseLimits) -> None:
                             f"{limits.max_cell_chars}")
 
 
+def _ran_out_of_memory(e: BaseException) -> bool:
+    """Whether ``e`` was raised while handling a MemoryError: the workbook reader reports any
+    failure inside openpyxl as a workbook it cannot open (``raise ... from None`` still keeps
+    the MemoryError as the context), which under the child's memory cap is the cap."""
+    seen: set[int] = set()
+    while e is not None and id(e) not in seen:
+        if isinstance(e, MemoryError):
+            return True
+        seen.add(id(e))
+        e = e.__cause__ or e.__context__
+    return False
+
+
 def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
     """In the child: limit memory, parse, check, send ("ok", UploadSummary) or the refusal."""
     import resource
@@ -329,8 +346,11 @@ def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
     except OverLimit as e:
         out = ("limit", (e.status, e.field, e.value, e.message))
     except InputError as e:
-        api = from_input_error(e)
-        out = ("input", (api.status, api.code, api.message, api.field, api.extra))
+        if _ran_out_of_memory(e):  # a reader's "cannot open" over the cap is the cap
+            out = ("memory", None)
+        else:
+            api = from_input_error(e)
+            out = ("input", (api.status, api.code, api.message, api.field, api.extra))
     except Exception as e:
         from .errors import safe_trace
 
@@ -342,11 +362,42 @@ def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
 _PRELOAD = ["samesource.input.loading", "samesource.input.prepare", "samesource.service.uploads", "samesource.service.upload_summary"]
 
 
+def _parse_context():
+    """Where parsing children start: our one way of starting processes
+    (``executor.pool_context``: the forkserver, never "fork", without the serving script's
+    main module), with the readers preloaded in the forkserver."""
+    from samesource.executor import pool_context
+
+    ctx = pool_context()
+    if ctx.get_start_method() == "forkserver":
+        ctx.set_forkserver_preload(_PRELOAD)  # no effect once the server runs; then only slower
+    return ctx
+
+
+def start_parsing_server() -> threading.Thread | None:
+    """Start the forkserver that parsing children are forked from now, in the background,
+    rather than at the first upload (which waited for it: seconds, importing the readers).
+    An upload that comes sooner waits for the start under way, as before; nothing else does.
+    The job processes fork from the same server (one per process), readers preloaded too."""
+    if _parse_context().get_start_method() != "forkserver":
+        return None
+
+    def start() -> None:
+        from multiprocessing import forkserver
+
+        try:
+            forkserver.ensure_running()
+        except Exception as e:  # the first upload tries again and reports what is wrong
+            log.warning("starting the parsing forkserver failed: %s", e.__class__.__name__)
+
+    thread = threading.Thread(target=start, name="samesource-parse-server", daemon=True)
+    thread.start()
+    return thread
+
+
 def parse_bounded(path: Path, name: str, limits: ParseLimits) -> UploadSummary:
     """Parse the upload at ``path`` in a child process under ``limits``. Raises
     :class:`OverLimit`, or an ApiError for a file that cannot be read (its 4xx)."""
-    import multiprocessing
-
     from .errors import ApiError
 
     with open(path, "rb") as fh:
@@ -362,10 +413,7 @@ def parse_bounded(path: Path, name: str, limits: ParseLimits) -> UploadSummary:
             if e.code != "too_large":
                 raise
             raise OverLimit(413, "max_unpacked_mb", limits.max_unpacked_mb, str(e)) from None
-    methods = multiprocessing.get_all_start_methods()
-    ctx = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
-    if ctx.get_start_method() == "forkserver":
-        ctx.set_forkserver_preload(_PRELOAD)  # no effect once the server runs; then only slower
+    ctx = _parse_context()
     receive, send = ctx.Pipe(duplex=False)
     proc = ctx.Process(target=_parse_child, args=(send, str(path), name, limits), daemon=True,
                        name="samesource-parse")

@@ -10,9 +10,11 @@ import io
 import os
 import resource
 import shutil
+import struct
 import subprocess
 import time
 import zipfile
+import zlib
 from pathlib import Path
 
 import pytest
@@ -213,31 +215,61 @@ def test_analyses_survive_a_postgresql_restart(tmp_path):
 # ---------------------------------------------------------------------- bounded parsing
 
 
+def _deflated(parts: list[bytes], repeat: int = 1) -> tuple[bytes, int, int]:
+    """Raw deflate of ``parts[0] + parts[1] * repeat + parts[2:]``, its CRC-32 and size,
+    compressing the repeated part once: after a full flush a chunk refers to nothing before
+    it, so the same bytes may follow one another. (A gigabyte is 1 kB and a second here.)"""
+    c = zlib.compressobj(9, zlib.DEFLATED, -15)
+    out, crc, size = [], 0, 0
+    for i, part in enumerate(parts):
+        chunk = c.compress(part) + c.flush(zlib.Z_FULL_FLUSH)
+        times = repeat if i == 1 else 1
+        out.append(chunk * times)
+        for _ in range(times):
+            crc = zlib.crc32(part, crc)
+        size += len(part) * times
+    out.append(c.flush())
+    return b"".join(out), crc, size
+
+
+def _zip(members: list[tuple[str, bytes, int, int]]) -> bytes:
+    """A zip archive of already deflated members (name, data, crc, size), written by hand:
+    zipfile itself would compress every byte."""
+    local, central = io.BytesIO(), io.BytesIO()
+    for name, data, crc, size in members:
+        offset, raw = local.tell(), name.encode()
+        local.write(struct.pack("<IHHHHHIIIHH", 0x04034B50, 20, 0, 8, 0, 0x21, crc, len(data),
+                                size, len(raw), 0) + raw + data)
+        central.write(struct.pack("<IHHHHHHIIIHHHHHII", 0x02014B50, 20, 20, 0, 8, 0, 0x21, crc,
+                                  len(data), size, len(raw), 0, 0, 0, 0, 0, offset) + raw)
+    end = struct.pack("<IHHHHIIH", 0x06054B50, 0, 0, len(members), len(members),
+                      central.tell(), local.tell(), 0)
+    return local.getvalue() + central.getvalue() + end
+
+
 def workbook_bomb(unpacked_mb: int) -> bytes:
     """A minimal .xlsx whose header cell (an inline string) unpacks to ``unpacked_mb`` MB
-    while the file stays small: the shape of a decompression bomb."""
+    while the file stays small: the shape of a decompression bomb. Its declared sizes are
+    true (zipfile reads a part no further than its declared size)."""
     from openpyxl import Workbook
 
     wb = Workbook()
     wb.active.append(["placeholder"])
     plain = io.BytesIO()
     wb.save(plain)
-    out = io.BytesIO()
-    with zipfile.ZipFile(plain) as src, zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as dst:
+    members = []
+    with zipfile.ZipFile(plain) as src:
         for item in src.infolist():
             if item.filename != "xl/worksheets/sheet1.xml":
-                dst.writestr(item, src.read(item))
+                members.append((item.filename, *_deflated([src.read(item)])))
                 continue
-            with dst.open(item.filename, "w") as part:
-                part.write(b'<?xml version="1.0"?><worksheet xmlns="http://schemas.openxmlformats'
-                           b'.org/spreadsheetml/2006/main"><sheetData><row r="1"><c r="A1" '
-                           b't="inlineStr"><is><t>')
-                block = b"A" * (1 << 20)
-                for _ in range(unpacked_mb):
-                    part.write(block)
-                part.write(b'</t></is></c></row><row r="2"><c r="A2"><v>1</v></c></row>'
-                           b"</sheetData></worksheet>")
-    return out.getvalue()
+            members.append((item.filename, *_deflated([
+                b'<?xml version="1.0"?><worksheet xmlns="http://schemas.openxmlformats'
+                b'.org/spreadsheetml/2006/main"><sheetData><row r="1"><c r="A1" '
+                b't="inlineStr"><is><t>', b"A" * (1 << 20),
+                b'</t></is></c></row><row r="2"><c r="A2"><v>1</v></c></row>'
+                b"</sheetData></worksheet>"], repeat=unpacked_mb)))
+    return _zip(members)
 
 
 @pytest.fixture(scope="module")
@@ -264,6 +296,80 @@ def test_a_workbook_bomb_is_refused_quickly_without_growing_the_web_process(limi
     grown_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - peak
     assert grown_kb < 40_000, f"the web process's peak memory grew by {grown_kb} kB"
     assert c.get("/v1/datasets", headers=h).get_json()["total"] == 0
+
+
+def children() -> dict[int, list[int]]:
+    """Each process's children, from /proc (Linux)."""
+    out: dict[int, list[int]] = {}
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        out.setdefault(int(fields[1]), []).append(int(stat.parent.name))
+    return out
+
+
+def forkserver_of(pid: int) -> list[int]:
+    """The multiprocessing forkserver among ``pid``'s children."""
+    def is_forkserver(child: int) -> bool:
+        try:
+            return b"multiprocessing.forkserver" in Path(f"/proc/{child}/cmdline").read_bytes()
+        except OSError:
+            return False
+
+    return [c for c in children().get(pid, []) if is_forkserver(c)]
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="the test reads /proc")
+def test_another_tenants_upload_is_answered_while_a_workbook_bomb_is_checked(server_factory,
+                                                                            tmp_path):
+    # The issue saw every other upload wait 55 s behind one workbook. Here, in `samesource
+    # serve`, a bomb under the default unpacked limit (500 MB): the web process streams all
+    # of it through the check, then its parsing child passes its memory cap reading it.
+    # Meanwhile another tenant uploads, one new file after another.
+    import threading
+
+    import requests
+
+    data_dir = tmp_path / "d"
+    db = Database(f"sqlite:///{data_dir / 'samesource.sqlite3'}")
+    data_dir.mkdir()
+    db.create_schema()
+    tokens = {t: {"Authorization": f"Bearer {Store(db).create_token(t)}"} for t in ("bomb", "other")}
+    db.dispose()
+    srv = server_factory(data_dir, SAMESOURCE_PARSE_MEMORY_MB="256")
+    data, _design = quick_survey()
+
+    def send(tenant: str, body: bytes, name: str) -> tuple[requests.Response, float, float]:
+        t0 = time.monotonic()
+        r = requests.post(f"{srv.base}/v1/datasets", headers=tokens[tenant],
+                          files={"file": (name, body)}, timeout=120)
+        return r, t0, time.monotonic()
+
+    # the parsing children's forkserver starts with the service, before any upload
+    wait_for(lambda: forkserver_of(srv.proc.pid), timeout=30, what="the parsing forkserver")
+    assert send("other", data, "first.csv")[0].status_code == 201
+    bomb = workbook_bomb(320)
+    answer: list = []
+    thread = threading.Thread(target=lambda: answer.append(send("bomb", bomb, "bomb.xlsx")))
+    thread.start()
+    others = []
+    while thread.is_alive() and len(others) < 40:
+        time.sleep(0.25)
+        # new bytes each time: the same bytes would only be looked up
+        others.append(send("other", data + b"\n" * (len(others) + 1), f"s{len(others)}.csv"))
+    thread.join(120)
+    refused, b0, b1 = answer[0]
+    waits = [round(t1 - t0, 2) for _r, t0, t1 in others]
+    print(f"bomb answered {refused.status_code} after {b1 - b0:.2f} s; other uploads meanwhile "
+          f"took {waits} s")
+    assert refused.status_code == 413, refused.text
+    assert refused.json()["error"]["limit"] == "SAMESOURCE_PARSE_MEMORY_MB", refused.text
+    during = [(r, t0, t1) for r, t0, t1 in others if t1 < b1]
+    assert len(during) >= 2 and all(r.status_code == 201 for r, _t0, _t1 in during), waits
+    # a bound on waiting, not a speed check (each took about 0.5 s here at load average 6)
+    assert max(t1 - t0 for _r, t0, t1 in during) < 5, waits
 
 
 def test_measurement_refuses_a_workbook_bomb_before_parsing_it():
@@ -432,6 +538,55 @@ def test_queued_and_replicate_limits_answer_429_with_retry_after(tmp_path):
         closing(app)
 
 
+def test_two_tenants_through_the_runner_take_turns_and_meet_their_limits(tmp_path):
+    # The issue's case, small: tenant "big" queues four bootstrap analyses, tenant "small" one
+    # plain analysis after them, one job worker. First come, first served would run small's
+    # analysis last; round-robin runs it as soon as big's first one ends.
+    replicates = 10  # a second or two of bootstrap each (serial: max_processes 1, no pool to start)
+    app = make_app(tmp_path / "d", max_processes=1, tenant_max_queued=4,
+                   tenant_max_replicates=4 * replicates)
+    c = app.test_client()
+    big, small = headers(app, "big"), headers(app, "small")
+
+    def analysis(hdrs, aid):
+        return c.get(f"/v1/analyses/{aid}", headers=hdrs).get_json()
+
+    try:
+        data, design = quick_survey()
+        big_ds = upload(c, big, data).get_json()["id"]
+        small_ds = upload(c, small, data).get_json()["id"]
+        first = start(c, big, big_ds, design, {"bootstrap": replicates}).get_json()["id"]
+        wait_for(lambda: analysis(big, first)["status"] != "queued", timeout=30,
+                 what="big's first analysis to start")
+        assert analysis(big, first)["status"] == "running"  # the job process alone takes seconds to start
+        rest = [start(c, big, big_ds, design, {"bootstrap": replicates}) for _ in range(3)]
+        assert [r.status_code for r in rest] == [202] * 3, [r.get_json() for r in rest]
+        # past big's limits (its first analysis still runs: seconds of bootstrap): 429, Retry-After
+        over = start(c, big, big_ds, design, {"bootstrap": 1})
+        assert over.status_code == 429 and int(over.headers["Retry-After"]) > 0, over.get_json()
+        assert over.get_json()["error"]["limit"] == "SAMESOURCE_TENANT_MAX_REPLICATES"
+        rest.append(start(c, big, big_ds, design))  # no replicates: within both, the 4th queued
+        assert rest[-1].status_code == 202, rest[-1].get_json()
+        full = start(c, big, big_ds, design)
+        assert full.status_code == 429 and int(full.headers["Retry-After"]) > 0, full.get_json()
+        assert full.get_json()["error"]["limit"] == "SAMESOURCE_TENANT_MAX_QUEUED"
+        # small's analysis, queued last, is not held back by big's queue or big's limits
+        mine = start(c, small, small_ds, design)
+        assert mine.status_code == 202, mine.get_json()
+        mine_id = mine.get_json()["id"]
+        # the one worker frees when big's first ends, and takes small's analysis next
+        running = wait_for(lambda: (a := analysis(small, mine_id))["status"] != "queued" and a,
+                           timeout=60, what="small's analysis to start")
+        assert running["status"] in ("running", "succeeded"), running["error"]
+        bigs = [analysis(big, first)] + [analysis(big, r.get_json()["id"]) for r in rest]
+        assert bigs[0]["status"] == "succeeded", bigs[0]["error"]
+        # before any of big's queued four started (first come, first served: after all four)
+        assert all(b["status"] == "queued" or b["started_at"] > running["started_at"]
+                   for b in bigs[1:]), (running, bigs)
+    finally:
+        closing(app)
+
+
 # headers and content security policies: tests/test_service_headers.py
 
 
@@ -512,15 +667,9 @@ def test_the_data_folder_is_locked_and_a_dead_process_spool_is_swept_at_start(tm
 
 def pool_processes(pid: int) -> list[int]:
     """Processes two levels under ``pid``: a job worker's bootstrap pool (its forkserver's
-    children). From /proc (Linux)."""
-    children: dict[int, list[int]] = {}
-    for stat in Path("/proc").glob("[0-9]*/stat"):
-        try:
-            fields = stat.read_text().rsplit(")", 1)[1].split()
-        except OSError:
-            continue
-        children.setdefault(int(fields[1]), []).append(int(stat.parent.name))
-    return [g for c in children.get(pid, []) for g in children.get(c, [])]
+    children)."""
+    tree = children()
+    return [g for c in tree.get(pid, []) for g in tree.get(c, [])]
 
 
 STOP_SECONDS = 2.0  # the promise of docs/reliability.md, "Prompt stop"

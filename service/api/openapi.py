@@ -318,7 +318,8 @@ def document() -> dict:
                     "422": _error("The file cannot be read (the error names row and column), "
                                   "or (code over_limit) it passes a limit on rows, columns, "
                                   "cells, cell or column-name length, or parsing time"),
-                    "503": _error("The database does not answer (Retry-After)"),
+                    "503": _error("The database does not answer, or the service is overloaded "
+                                   "(Retry-After)"),
                     "507": _error("The service's disk is full (code insufficient_storage)"),
                 }},
             "get": {
@@ -356,7 +357,8 @@ def document() -> dict:
                                   "over_limit; SAMESOURCE_MAX_BOOTSTRAP)"),
                     "429": _error("The tenant has too many analyses queued, or too many "
                                   "bootstrap replicates in flight; wait Retry-After seconds"),
-                    "503": _error("The database does not answer (Retry-After)"),
+                    "503": _error("The database does not answer, or the service is overloaded "
+                                   "(Retry-After)"),
                     "507": _error("The service's disk is full (code insufficient_storage)"),
                 }},
             "get": {

@@ -7,7 +7,9 @@
   runs everything left. Every accepted upload must read back byte for byte and every
   analysis must end (none left queued or running).
 * generated requests: random, often hostile, requests on every route; no answer may be 5xx.
-* concurrent clients: N threads uploading and reading at once; no errors.
+* concurrent clients: N threads uploading (each upload a different file: the rows shuffled)
+  and reading it back at once; every request answered within the client's timeout, a 503
+  `overloaded` (with Retry-After, which the client honours) counted apart from errors.
 
 The suite runs a short version of each (tests/test_service_resilience.py).
 """
@@ -38,6 +40,17 @@ def _get(url: str, token: str) -> dict:
     return requests.get(url, headers=auth(token), timeout=TIMEOUT).json()
 
 
+def variant(csv: bytes, k: int) -> bytes:
+    """The same survey with its data rows in the ``k``-th shuffled order (``k`` = 0: as is):
+    other bytes, so the service stores and parses it anew instead of answering the dataset
+    it already has for those bytes."""
+    if k == 0:
+        return csv
+    header, *rows = csv.rstrip(b"\n").split(b"\n")
+    random.Random(k).shuffle(rows)
+    return b"\n".join([header, *rows]) + b"\n"
+
+
 def kill9_loop(data_dir: Path, rounds: int, *, seed: int = 0, env: dict | None = None,
                bootstrap: int = 60) -> dict:
     """``rounds`` kill -9 restarts under load; the figures of the run."""
@@ -47,10 +60,11 @@ def kill9_loop(data_dir: Path, rounds: int, *, seed: int = 0, env: dict | None =
     data, design = small_survey(n=150)
     uploads: dict[str, str] = {}
     analyses: list[str] = []
+    refused: dict[int, int] = {}
     for r in range(rounds):
         srv = ServerProcess(data_dir, env=env).start()
         try:
-            body = data
+            body = variant(data, r)  # a new file each round (the same bytes would be re-used)
             resp = requests.post(f"{srv.base}/v1/datasets", headers=auth(token), timeout=TIMEOUT,
                                  files={"file": (f"round{r}.csv", body)})
             if resp.status_code == 201:
@@ -60,6 +74,8 @@ def kill9_loop(data_dir: Path, rounds: int, *, seed: int = 0, env: dict | None =
                                         "options": {"bootstrap": bootstrap, "seed": r}})
                 if a.status_code == 202:
                     analyses.append(a.json()["id"])
+                else:  # e.g. 429: the tenant's queue is full (SAMESOURCE_TENANT_MAX_QUEUED)
+                    refused[a.status_code] = refused.get(a.status_code, 0) + 1
             time.sleep(rng.uniform(0.2, 2.5))
         finally:
             srv.kill9()
@@ -76,7 +92,7 @@ def kill9_loop(data_dir: Path, rounds: int, *, seed: int = 0, env: dict | None =
         identical = sum(_get(f"{srv.base}/v1/datasets/{d}", token).get("sha256") == sha
                         for d, sha in uploads.items())
         return {"rounds": rounds, "uploads_accepted": len(uploads), "uploads_identical": identical,
-                "analyses": len(analyses),
+                "analyses": len(analyses), "analyses_refused": refused,
                 "succeeded": sum(s["status"] == "succeeded" for s in statuses.values()),
                 "failed": sum(s["status"] == "failed" for s in statuses.values()),
                 "stuck": sum(s["status"] in ("queued", "running") for s in statuses.values()),
@@ -116,26 +132,51 @@ def generated_requests(base: str, token: str, n: int, *, seed: int = 0) -> dict:
             "statuses": dict(sorted(counts.items()))}
 
 
+class Overloaded(Exception):
+    """A 503 with Retry-After: a prompt refusal, not an error."""
+
+    def __init__(self, retry_after: float) -> None:
+        self.retry_after = retry_after
+
+
 def concurrent_clients(base: str, token: str, clients: int, seconds: float) -> dict:
-    data, _design = small_survey(n=100)
+    base_data, _design = small_survey(n=100)
     errors: list[str] = []
     done = [0]
+    overloaded = [0]
+    slowest = [0.0]
+    counter = iter(range(1, 10**9))
     lock = threading.Lock()
     stop = time.monotonic() + seconds
 
+    def timed(method: str, url: str, **kw) -> requests.Response:
+        t0 = time.monotonic()
+        try:
+            r = requests.request(method, url, headers=auth(token), timeout=TIMEOUT, **kw)
+        finally:
+            with lock:
+                slowest[0] = max(slowest[0], time.monotonic() - t0)
+        if r.status_code == 503 and r.headers.get("Retry-After"):
+            raise Overloaded(float(r.headers["Retry-After"]))
+        return r
+
     def client(i: int) -> None:
         while time.monotonic() < stop:
+            with lock:
+                data = variant(base_data, next(counter))
             try:
-                r = requests.post(f"{base}/v1/datasets", headers=auth(token), timeout=TIMEOUT,
-                                  files={"file": (f"c{i}.csv", data)})
+                r = timed("POST", f"{base}/v1/datasets", files={"file": (f"c{i}.csv", data)})
                 if r.status_code not in (200, 201):  # 200: the same bytes again, re-used
                     raise RuntimeError(f"upload {r.status_code}")
-                g = requests.get(f"{base}/v1/datasets/{r.json()['id']}", headers=auth(token),
-                                 timeout=TIMEOUT)
+                g = timed("GET", f"{base}/v1/datasets/{r.json()['id']}")
                 if g.status_code != 200 or g.json()["sha256"] != hashlib.sha256(data).hexdigest():
                     raise RuntimeError(f"read back {g.status_code}")
                 with lock:
                     done[0] += 1
+            except Overloaded as o:  # what a client should do: wait as asked, then again
+                with lock:
+                    overloaded[0] += 1
+                time.sleep(o.retry_after)
             except Exception as e:  # counted, not raised: the figure is the count
                 with lock:
                     errors.append(str(e)[:80])
@@ -145,8 +186,17 @@ def concurrent_clients(base: str, token: str, clients: int, seconds: float) -> d
         t.start()
     for t in threads:
         t.join()
-    return {"clients": clients, "seconds": seconds, "round_trips": done[0], "errors": len(errors),
+    return {"clients": clients, "seconds": seconds, "round_trips": done[0],
+            "overloaded_503": overloaded[0], "errors": len(errors),
+            "slowest_answer_seconds": round(slowest[0], 1),
             "first_error": errors[0] if errors else None}
+
+
+def _load() -> str:
+    """The machine's load averages, printed beside every figure (the machine is shared)."""
+    import os
+
+    return "load {:.2f} {:.2f} {:.2f}".format(*os.getloadavg())
 
 
 def main() -> int:
@@ -158,19 +208,26 @@ def main() -> int:
     p.add_argument("--clients", type=int, default=50)
     p.add_argument("--seconds", type=float, default=30.0)
     args = p.parse_args()
+    print(f"start: {_load()}", flush=True)
     with tempfile.TemporaryDirectory() as tmp:
         t0 = time.monotonic()
-        print("kill -9 loop:", kill9_loop(Path(tmp) / "kill", args.kills),
-              f"({time.monotonic() - t0:.0f} s)", flush=True)
+        if args.kills:
+            print("kill -9 loop:", kill9_loop(Path(tmp) / "kill", args.kills),
+                  f"({time.monotonic() - t0:.0f} s; {_load()})", flush=True)
+        if not (args.requests or args.clients):
+            return 0
         data_dir = Path(tmp) / "load"
         token = new_token(data_dir, "load")
         srv = ServerProcess(data_dir, env={"SAMESOURCE_JOB_WORKERS": "1"}).start()
         try:
             t0 = time.monotonic()
-            print("generated requests:", generated_requests(srv.base, token, args.requests),
-                  f"({time.monotonic() - t0:.0f} s)", flush=True)
-            print("concurrent clients:", concurrent_clients(srv.base, token, args.clients,
-                                                            args.seconds), flush=True)
+            if args.requests:
+                print("generated requests:", generated_requests(srv.base, token, args.requests),
+                      f"({time.monotonic() - t0:.0f} s; {_load()})", flush=True)
+            if args.clients:
+                print("concurrent clients:", concurrent_clients(srv.base, token, args.clients,
+                                                                args.seconds), f"({_load()})",
+                      flush=True)
         finally:
             srv.stop()
     return 0
