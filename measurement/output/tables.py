@@ -15,6 +15,7 @@ from typing import Any
 import pandas as pd
 
 from samesource.corrections.paths import LABELS
+from samesource.output.report import method_label
 
 METHOD_LABELS = LABELS  # each correction's label (corrections/paths.py CORRECTIONS)
 
@@ -30,10 +31,6 @@ CHECK_LABELS = {
 LEVELS = ("none", "minor", "substantial")
 
 SMALL_GROUP_RULE = "groups with fewer respondents than min_group_size are never shown"
-
-
-def method_label(key: str) -> str:
-    return METHOD_LABELS.get(key, key.replace("_", " ").capitalize())
 
 
 def pair(report_pairs: dict | None, a: str, b: str) -> Any:
