@@ -8,18 +8,21 @@ measurement/method_checks/planning.py).
 from __future__ import annotations
 
 from samesource.corrections.correction_check import dependable
+from samesource.output.report import KeyPath, Report
 from samesource.output.report_html import count, h, num, pct, section, signed, table
 from samesource.output.tables import method_label
 
 PASS, FAIL = "\u2713", "\u2717"
 
 
-def lean_on_line(report: dict, p: dict) -> str:
+def lean_on_line(report: Report, p: KeyPath) -> str:
     """One line under a path's title: what the check says to lean on."""
-    row = _check_row(report, p)
+    check = report.record.get("correction_check") or {}
+    row = next((r for r in check.get("paths") or []
+                if r.get("outcome") == p.outcome and r.get("predictor") == p.predictor), None)
     if row is None:
         return ""
-    return (f'<p class="why">Correction check: {_lean_sentence(report.get("correction_check") or {}, row)} '
+    return (f'<p class="why">Correction check: {_lean_sentence(check, row)} '
             '<a href="#correction-check">The check in detail</a>.</p>')
 
 
@@ -36,14 +39,6 @@ def _lean_sentence(c: dict, row: dict) -> str:
     text = (f"lean on {h(method_label(lean))}: dependable in data like these and in "
             f"{len([i for i in departures if i in held])} of {len(departures)} departures")
     return text + (f"; not with {h('; '.join(failed))}." if failed else ".")
-
-
-def _check_row(report: dict, p: dict) -> dict | None:
-    c = report.get("correction_check") or {}
-    for row in c.get("paths") or []:
-        if row.get("outcome") == p.get("outcome") and row.get("predictor") == p.get("predictor"):
-            return row
-    return None
 
 
 def correction_check_section(report: dict) -> str:

@@ -181,6 +181,9 @@ class Fit:
     loglik: float | None
 
 
+NO_FIT = Fit(*(None,) * 12)  # a model without fit indices
+
+
 @dataclass(frozen=True)
 class FornellLarcker:
     """The Fornell-Larcker comparison of two constructs: squared correlation against each AVE."""
@@ -216,6 +219,11 @@ class Verdict:
     rules: tuple
     raised_by: Any
     vouching_checks: Any
+
+    @property
+    def given(self) -> bool:
+        """Whether report.json has a verdict (one read from nothing has every field empty)."""
+        return any(getattr(self, f.name) not in (None, ()) for f in fields(self))
 
 
 @dataclass(frozen=True)
@@ -396,6 +404,7 @@ class KeyPath:
     sources: PathOrigin | None
     cross_source_check: Mapping | None
     same_source_counterpart: Mapping | None
+    bounds_wide: bool | None
 
     @property
     def preferred_estimate(self) -> Estimate | None:
@@ -408,6 +417,9 @@ def _estimate(method: str, e: Any) -> Estimate | None:
         return None
     return _pick(Estimate, e, method=method, label=method_label(method),
                  bootstrap=_maybe(BootstrapInterval, e.get("bootstrap")))
+
+
+NO_SENSITIVITY = Sensitivity((), *(None,) * 7)  # a path without a sensitivity curve
 
 
 def _sensitivity(s: Any) -> Sensitivity | None:
@@ -571,13 +583,13 @@ class Report:
         """The tables of :meth:`to_frame`: the names of the files in tables/ (without .csv)."""
         from samesource.output.tables import report_tables
 
-        return tuple(report_tables(self.record))
+        return tuple(report_tables(self))
 
     def to_frame(self, name: str) -> pd.DataFrame:
         """One table in long (tidy) form, the same rows as tables/NAME.csv and tables.xlsx."""
         from samesource.output.tables import report_tables
 
-        tables = report_tables(self.record)
+        tables = report_tables(self)
         if name not in tables:
             from samesource.input.design import did_you_mean
 
