@@ -235,38 +235,78 @@ class ModelTest:
     p: float | None
     general: str | None
     restricted: str | None
+    question: str | None
+
+
+@dataclass(frozen=True)
+class ModelSummary:
+    """One model a method check fitted: what it assumes, its status and its fit."""
+
+    description: str | None
+    status: str | None
+    fit: Fit | None
 
 
 @dataclass(frozen=True)
 class MethodCheck:
-    """One common-method check: the fields the report's tables and pages read by name, and
-    ``section``, the check's whole section of report.json (read-only) for the rest."""
+    """One common-method check (report["method_variance"][key]): every field the report's
+    tables and pages read, each check filling those it has (None elsewhere), and ``section``,
+    the check's whole section of report.json (read-only)."""
 
     flag: Any
     rule: str | None
     note: str | None
     status: str | None
-    method_share: float | None
+    method_share: Any                 # a share (method factor, measured method) or one per construct (CFA marker)
     method_share_ci: tuple | None
     method_share_overall: float | None
+    method_share_by_construct: Mapping | None
     usable_as_correction: bool | None
+    identified_by: str | None
+    identified: bool | None
+    proper: bool | None
+    loadings: Any
+    fit: Fit | None
+    models: Mapping[str, ModelSummary | None]
+    warnings: tuple | None
+    method_construct: str | None
+    marker: str | None
+    n: int | None
+    marker_correlations: Mapping | None
+    pairs: Mapping | None             # the marker adjustment per pair, as report.json has it
+    sensitivity: tuple | None         # the marker adjustment under each choice of r_M, as report.json has it
     r_m: float | None
     r_m_p: float | None
     r_m_rule: str | None
+    chosen: str | None
+    reliability_split: Mapping | None
+    method: str | None
     first_factor_share: float | None
+    eigenvalues: tuple | None
+    factors_eigen_gt_1: int | None
+    single_factor_fit: Fit | None
+    vs_measurement_model: ModelTest | None
+    threshold: float | None
     values: Mapping | None
     tests: Mapping[str, ModelTest]
     section: Mapping
 
 
-NO_CHECK = MethodCheck(*(None,) * 13, tests=MappingProxyType({}), section=MappingProxyType({}))  # a check not run
-
-
-def _check(sec: Mapping | None) -> MethodCheck | None:
+def _check(sec: Any) -> MethodCheck | None:
     if not isinstance(sec, Mapping):
         return None
-    tests = _by_name(sec.get("tests"), lambda t: _pick(ModelTest, t))
-    return _pick(MethodCheck, sec, tests=tests, section=freeze(sec))
+    single = sec.get("single_factor_fit")
+    return _pick(MethodCheck, sec, tests=_by_name(sec.get("tests"), lambda t: _maybe(ModelTest, t)),
+                 fit=_maybe(Fit, sec.get("fit")),
+                 models=_by_name(sec.get("models"), lambda m: _maybe(ModelSummary, m, fit=_maybe(
+                     Fit, m.get("fit")) if isinstance(m, Mapping) else None)),
+                 single_factor_fit=_maybe(Fit, single.get("fit")) if isinstance(single, Mapping) else None,
+                 vs_measurement_model=_maybe(ModelTest, sec.get("vs_measurement_model")),
+                 section=freeze(sec))
+
+
+NO_CHECK = _pick(MethodCheck, {}, models=MappingProxyType({}), tests=MappingProxyType({}),
+                 section=MappingProxyType({}))  # a check not run
 
 
 @dataclass(frozen=True)
@@ -460,6 +500,97 @@ def _method_variance(mv: Any) -> MethodVariance:
 
 
 @dataclass(frozen=True)
+class CheckScenario:
+    """One scenario of the correction check: surveys simulated like the client's, or a departure."""
+
+    id: str | None
+    title: str | None
+    description: str | None
+    run: bool | None
+    why_not: str | None
+    failed_replicates: int | None
+    first_failure: str | None
+    verdicts: Mapping | None
+
+
+@dataclass(frozen=True)
+class CheckPath:
+    """The correction check of one key path: the truth simulated, which estimate to lean on, and
+    per scenario and estimate the bias, RMSE, coverage and count (``scenarios``, as report.json
+    has them: ``correction_check.dependable`` reads them)."""
+
+    outcome: str | None
+    predictor: str | None
+    truth: float | None
+    lean_on: str | None
+    lean_on_reason: str | None
+    lean_on_dependable_in: tuple | None
+    scenarios: Mapping[str, Mapping[str, Mapping | None]]
+
+
+@dataclass(frozen=True)
+class CorrectionCheck:
+    """How well each correction works on surveys simulated like the client's: report["correction_check"]."""
+
+    status: str | None
+    why_not: str | None
+    replicates: int | None
+    population: Mapping | None
+    scenarios: tuple[CheckScenario, ...]
+    paths: tuple[CheckPath, ...]
+    rules: Mapping | None
+    intervals: str | None
+    seed: int | None
+    notes: tuple | None
+
+    def path(self, outcome: str, predictor: str) -> CheckPath | None:
+        """The check of one key path, None when it was not checked."""
+        return next((p for p in self.paths if (p.outcome, p.predictor) == (outcome, predictor)), None)
+
+
+def _correction_check(c: Any) -> CorrectionCheck | None:
+    if not isinstance(c, Mapping):
+        return None
+    return _pick(CorrectionCheck, c,
+                 scenarios=tuple(_pick(CheckScenario, s) for s in _mappings(c.get("scenarios"))),
+                 paths=tuple(_pick(CheckPath, p, scenarios=_by_name(p.get("scenarios"), lambda per: _by_name(
+                     per, lambda v: freeze(v) if isinstance(v, Mapping) else None))) for p in _mappings(c.get("paths"))))
+
+
+@dataclass(frozen=True)
+class PowerOption:
+    """One design for the next survey and the power it gives to find a shared method."""
+
+    what: str | None
+    df: int | None
+    power_now: float | None
+    smallest_n: int | None
+
+
+@dataclass(frozen=True)
+class NextTime:
+    """The planning advice: report["next_time"]."""
+
+    status: str | None
+    why_not: str | None
+    advice: tuple[str, ...]
+    options: tuple[PowerOption, ...]
+    rows_now: int | None
+    power: float | None
+    planned_share: float | None
+    alpha: float | None
+    method: str | None
+    basis: str | None
+
+
+def _next_time(nt: Any) -> NextTime | None:
+    if not isinstance(nt, Mapping):
+        return None
+    return _pick(NextTime, nt, advice=_texts(nt.get("advice")),
+                 options=tuple(_pick(PowerOption, o) for o in _mappings(nt.get("options"))))
+
+
+@dataclass(frozen=True)
 class Teams:
     """Teams: ICC, agreement, within/between and split-team paths, and the group scores of
     groups of at least ``min_group_size`` (``visible_groups``); smaller groups are never shown.
@@ -524,8 +655,9 @@ class Report:
     warnings: tuple[Notice, ...]
     tool: Tool
     thresholds: Mapping[str, Threshold]
-    correction_check: Mapping | None  # as report.json has it (measurement/corrections/correction_check.py)
-    next_time: Mapping | None         # the planning advice (measurement/method_checks/planning.py)
+    options: Mapping                  # the options the analysis ran with, as report.json has them
+    correction_check: CorrectionCheck | None  # measurement/corrections/correction_check.py
+    next_time: NextTime | None                # the planning advice (measurement/method_checks/planning.py)
     fits: Mapping[str, Any] = field(repr=False)
     _record: dict = field(repr=False)  # report.json's content, as analyze made it
 
@@ -547,7 +679,9 @@ class Report:
             warnings=tuple(_pick(Notice, w) for w in _mappings(record.get("warnings"))),
             tool=_pick(Tool, record.get("tool")),
             thresholds=_by_name(record.get("thresholds"), lambda t: _pick(Threshold, t)),
-            correction_check=freeze(record.get("correction_check")), next_time=freeze(record.get("next_time")),
+            options=freeze(record.get("options")) if isinstance(record.get("options"), Mapping) else MappingProxyType({}),
+            correction_check=_correction_check(record.get("correction_check")),
+            next_time=_next_time(record.get("next_time")),
             fits=MappingProxyType(dict(fits or {})), _record=record)
 
     @classmethod

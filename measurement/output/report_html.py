@@ -41,6 +41,9 @@ from samesource.output.report import (
     Fit,
     ItemStats,
     KeyPath,
+    MethodCheck,
+    ModelSummary,
+    ModelTest,
     Pair,
     Report,
     Sensitivity,
@@ -259,14 +262,14 @@ def _sensitivity_sentence(s: Sensitivity) -> str:
     return f"No assumed method share{limit} brings the estimate or its interval to zero.{est_part}"
 
 
-def _verdict_box(report: dict) -> str:
-    v = _get(report, "method_variance", "verdict")
-    if not isinstance(v, dict):
+def _verdict_box(report: Report) -> str:
+    v = report.method_variance.verdict
+    if not v.given:
         return ('<div class="verdict level-unknown"><h3 class="verdict-title">Common-method variance: '
                 'not assessed</h3><p>The report has no method-variance verdict.</p></div>')
-    level = str(v.get("level") or "unknown")
+    level = str(v.level or "unknown")
     return (f'<div class="verdict level-{h(level)}"><h3 class="verdict-title">Common-method variance: '
-            f'<span class="level-word">{h(level.upper())}</span></h3><p>{h(v.get("summary"))}'
+            f'<span class="level-word">{h(level.upper())}</span></h3><p>{h(v.summary)}'
             f' <span class="sub">What raised it, and the rules: <a href="#method-variance">the common-method '
             f'checks</a>.</span></p></div>')
 
@@ -310,8 +313,8 @@ def decisions_of(report: Report | Mapping) -> list[Decision]:
     return [decision(p, labels=METHOD_LABELS) for p in Report.of(report).paths]
 
 
-def cautions_section(report: dict, ident: str, title: str) -> str:
-    cautions = report.get("cautions") or []
+def cautions_section(report: Report, ident: str, title: str) -> str:
+    cautions = report.cautions
     items = "".join(f"<li>{h(c)}</li>" for c in cautions) or "<li>The report carries no cautions.</li>"
     return (f'<section id="{ident}" class="cautions" aria-labelledby="{ident}-h"><h2 id="{ident}-h">{title}</h2>'
             f"<ol>{items}</ol></section>")
@@ -702,12 +705,11 @@ def _check_value(r: dict) -> str:
 
 
 def method_section(report: Report) -> str:
-    record = report.record
-    mv = record.get("method_variance")
+    mv = report.method_variance
     title = "Common-method checks"
-    if not isinstance(mv, dict):
+    if not isinstance(report.record.get("method_variance"), Mapping):
         return section("method-variance", title, '<p class="note">The report has no common-method checks.</p>')
-    out = [_verdict_box(record)]
+    out = [_verdict_box(report)]
     checked = method_check_rows(report)
     rows = [[h(r["check"]), h(r["signal"]), _check_value(r), pval(r["test_p"]), h(r["rule"]) or DASH,
              _level_cell(r["level"])] for r in checked]
@@ -720,9 +722,9 @@ def method_section(report: Report) -> str:
         out.append("<h3>How the verdict is reached</h3><ul>" + "".join(f"<li>{h(r)}</li>" for r in rules) + "</ul>")
     for key, render in (("method_factor", _mf_detail), ("measured_method", _mm_detail), ("marker", _marker_detail),
                         ("cfa_marker", _cfa_detail), ("harman", _harman_detail), ("collinearity_vif", _vif_detail)):
-        sec = mv.get(key)
-        if isinstance(sec, dict):
-            out.append(f"<h3>{h(CHECK_LABELS[key])}</h3>" + render(record, sec))
+        sec = mv.check(key)
+        if sec is not None:
+            out.append(f"<h3>{h(CHECK_LABELS[key])}</h3>" + render(sec))
         elif key in ("marker", "cfa_marker"):
             out.append(f"<h3>{h(CHECK_LABELS[key])}</h3><p class=\"note\">Not run: the design has no marker "
                        f"construct.</p>")
@@ -732,11 +734,11 @@ def method_section(report: Report) -> str:
     return section("method-variance", title, "".join(out))
 
 
-def _fit_summary(fit: dict | None) -> str:
-    if not isinstance(fit, dict):
+def _fit_summary(fit: Fit | None) -> str:
+    if fit is None:
         return DASH
-    return (f"chi-square {num(fit.get('chi2'), 2)} on {count(fit.get('df'))} df, CFI {num(fit.get('cfi'))}, "
-            f"RMSEA {num(fit.get('rmsea'))}, SRMR {num(fit.get('srmr'))}")
+    return (f"chi-square {num(fit.chi2, 2)} on {count(fit.df)} df, CFI {num(fit.cfi)}, "
+            f"RMSEA {num(fit.rmsea)}, SRMR {num(fit.srmr)}")
 
 
 # The method-factor models by what they assume (descriptive names of ours; the sequence of
@@ -750,26 +752,25 @@ def model_name(key: str | None) -> str | None:
     return MODEL_NAMES.get(key, key.replace("_", " ")) if key else None
 
 
-def _models_table(models: dict, caption: str) -> str:
+def _models_table(models: Mapping[str, ModelSummary | None], caption: str) -> str:
     rows = []
     for k, m in models.items():
-        if not isinstance(m, dict):
+        if m is None:
             continue
-        f = m.get("fit") or {}
-        rows.append([h(model_name(k)), h(m.get("description")), h(m.get("status")), num(f.get("chi2"), 2),
-                     count(f.get("df")), num(f.get("cfi")), num(f.get("rmsea")), num(f.get("srmr"))])
+        f = m.fit or NO_FIT
+        rows.append([h(model_name(k)), h(m.description), h(m.status), num(f.chi2, 2),
+                     count(f.df), num(f.cfi), num(f.rmsea), num(f.srmr)])
     return table(["Model", "Description", "Status", "Chi-square", "df", "CFI", "RMSEA", "SRMR"], rows,
                  caption=caption, numeric=(3, 4, 5, 6, 7))
 
 
-def _tests_table(tests: dict, caption: str) -> str:
+def _tests_table(tests: Mapping[str, ModelTest | None], caption: str) -> str:
     rows = []
     for k, t in tests.items():
-        if not isinstance(t, dict):
+        if t is None:
             continue
-        rows.append([h(t.get("question") or k.replace("_", " ")), h(model_name(t.get("restricted"))),
-                     h(model_name(t.get("general"))),
-                     num(t.get("chi2_diff"), 2), count(t.get("df_diff")), pval(t.get("p"))])
+        rows.append([h(t.question or k.replace("_", " ")), h(model_name(t.restricted)),
+                     h(model_name(t.general)), num(t.chi2_diff, 2), count(t.df_diff), pval(t.p)])
     return table(["Test", "Restricted model", "General model", "Chi-square difference", "df", "p"], rows,
                  caption=caption, numeric=(3, 4, 5))
 
@@ -779,52 +780,52 @@ def _warnings_list(ws: Any) -> str:
     return ('<ul class="warn">' + "".join(f"<li>{h(w)}</li>" for w in ws) + "</ul>") if ws else ""
 
 
-def _share_table(shares: dict, caption: str) -> str:
+def _share_table(shares: Mapping, caption: str) -> str:
     return table(["Construct", "Method share of item variance"], [[h(k), pct(v)] for k, v in shares.items()],
                  caption=caption, numeric=(1,), cls="narrow")
 
 
-def _mf_detail(report: dict, s: dict) -> str:
-    out = dl([("Identified by", h(s.get("identified_by"))), ("Method loadings", h(s.get("loadings"))),
-              ("Method share of item variance", pct(s.get("method_share"))),
-              ("Proper solution", h(s.get("proper"))), ("Identified", h(s.get("identified"))),
-              ("Used as a correction", h(s.get("usable_as_correction"))), ("Fit", _fit_summary(s.get("fit")))])
-    if s.get("method_share_by_construct"):
-        out += _share_table(s["method_share_by_construct"], "Method-factor share of item variance per construct")
-    if isinstance(s.get("models"), dict):
-        out += _models_table(s["models"], "Method-factor models")
-    if isinstance(s.get("tests"), dict):
-        out += _tests_table(s["tests"], "Method-factor tests")
-    return out + _warnings_list(s.get("warnings"))
+def _mf_detail(s: MethodCheck) -> str:
+    out = dl([("Identified by", h(s.identified_by)), ("Method loadings", h(s.loadings)),
+              ("Method share of item variance", pct(s.method_share)),
+              ("Proper solution", h(s.proper)), ("Identified", h(s.identified)),
+              ("Used as a correction", h(s.usable_as_correction)), ("Fit", _fit_summary(s.fit))])
+    if s.method_share_by_construct:
+        out += _share_table(s.method_share_by_construct, "Method-factor share of item variance per construct")
+    if s.models:
+        out += _models_table(s.models, "Method-factor models")
+    if s.tests:
+        out += _tests_table(s.tests, "Method-factor tests")
+    return out + _warnings_list(s.warnings)
 
 
-def _mm_detail(report: dict, s: dict) -> str:
-    out = dl([("Method construct", h(s.get("method_construct"))),
-              ("Method share of item variance", pct(s.get("method_share"))), ("Status", h(s.get("status"))),
-              ("Proper solution", h(s.get("proper"))), ("Identified", h(s.get("identified"))),
-              ("Fit", _fit_summary(s.get("fit")))])
-    if s.get("method_share_by_construct"):
-        out += _share_table(s["method_share_by_construct"], "Measured-method share of item variance per construct")
-    if isinstance(s.get("tests"), dict):
-        out += _tests_table(s["tests"], "Measured-method test")
-    return out + _warnings_list(s.get("warnings"))
+def _mm_detail(s: MethodCheck) -> str:
+    out = dl([("Method construct", h(s.method_construct)),
+              ("Method share of item variance", pct(s.method_share)), ("Status", h(s.status)),
+              ("Proper solution", h(s.proper)), ("Identified", h(s.identified)),
+              ("Fit", _fit_summary(s.fit))])
+    if s.method_share_by_construct:
+        out += _share_table(s.method_share_by_construct, "Measured-method share of item variance per construct")
+    if s.tests:
+        out += _tests_table(s.tests, "Measured-method test")
+    return out + _warnings_list(s.warnings)
 
 
-def _marker_detail(report: dict, s: dict) -> str:
-    out = dl([("Marker", h(s.get("marker"))),
-              ("r_M", f"{num(s.get('r_m'))} ({h(str(s.get('r_m_rule') or '').replace('_', ' '))} correlation, "
-                      f"p {pval(s.get('r_m_p'))})"), ("n", count(s.get("n")))])
-    if s.get("marker_correlations"):
+def _marker_detail(s: MethodCheck) -> str:
+    out = dl([("Marker", h(s.marker)),
+              ("r_M", f"{num(s.r_m)} ({h(str(s.r_m_rule or '').replace('_', ' '))} correlation, "
+                      f"p {pval(s.r_m_p)})"), ("n", count(s.n))])
+    if s.marker_correlations:
         out += table(["Scale", "Correlation with the marker"],
-                     [[h(k), num(v)] for k, v in s["marker_correlations"].items()],
+                     [[h(k), num(v)] for k, v in s.marker_correlations.items()],
                      caption="The marker's correlation with each substantive scale", numeric=(1,), cls="narrow")
-    pairs = s.get("pairs") or {}
+    pairs = s.pairs if isinstance(s.pairs, Mapping) else {}
     if pairs:
         out += table(["Pair", "r", "r adjusted", "t", "p"],
                      [[h(k.replace("|", " \u00d7 ")), num(v.get("r")), num(v.get("r_adjusted")), num(v.get("t"), 2),
-                       pval(v.get("p"))] for k, v in pairs.items() if isinstance(v, dict)],
+                       pval(v.get("p"))] for k, v in pairs.items() if isinstance(v, Mapping)],
                      caption="Scale correlations before and after the marker adjustment", numeric=(1, 2, 3, 4))
-    sens = [x for x in s.get("sensitivity") or [] if isinstance(x, dict)]
+    sens = [x for x in s.sensitivity or () if isinstance(x, Mapping)]
     if sens and pairs:
         head = ["Pair"] + [f'{h(str(x.get("rule", "")).replace("_", " "))}<br><span class="sub">r_M '
                            f'{num(x.get("r_m"))}</span>' for x in sens]
@@ -832,52 +833,52 @@ def _marker_detail(report: dict, s: dict) -> str:
                             for k in pairs],
                      caption="Adjusted correlations under each choice of r_M (smallest, second smallest, upper "
                              "95% bound)", numeric=tuple(range(1, 1 + len(sens))))
-    if s.get("note"):
-        out += f'<p class="sub">{h(s["note"])}</p>'
+    if s.note:
+        out += f'<p class="sub">{h(s.note)}</p>'
     return out
 
 
-def _cfa_detail(report: dict, s: dict) -> str:
-    out = dl([("Model chosen", h(model_name(s.get("chosen")))),
-              ("Method share of item variance (overall)", pct(s.get("method_share_overall")))])
-    if isinstance(s.get("models"), dict):
-        out += _models_table(s["models"], "CFA marker technique: models")
-    if isinstance(s.get("tests"), dict):
-        out += _tests_table(s["tests"], "CFA marker technique: tests")
-    split = s.get("reliability_split") or {}
+def _cfa_detail(s: MethodCheck) -> str:
+    out = dl([("Model chosen", h(model_name(s.chosen))),
+              ("Method share of item variance (overall)", pct(s.method_share_overall))])
+    if s.models:
+        out += _models_table(s.models, "CFA marker technique: models")
+    if s.tests:
+        out += _tests_table(s.tests, "CFA marker technique: tests")
+    split = s.reliability_split if isinstance(s.reliability_split, Mapping) else {}
     if split:
         out += table(["Construct", "Trait", "Method", "Error"],
                      [[h(k), pct(v.get("trait")), pct(v.get("method")), pct(v.get("error"))]
-                      for k, v in split.items() if isinstance(v, dict)],
+                      for k, v in split.items() if isinstance(v, Mapping)],
                      caption="Each construct's reliability split into trait, method and error", numeric=(1, 2, 3))
-    if s.get("note"):
-        out += f'<p class="sub">{h(s["note"])}</p>'
+    if s.note:
+        out += f'<p class="sub">{h(s.note)}</p>'
     return out
 
 
-def _harman_detail(report: dict, s: dict) -> str:
-    eig = [num(e, 2) for e in s.get("eigenvalues") or [] if _finite(e)]
-    vs = s.get("vs_measurement_model") or {}
-    out = dl([("Method", h(s.get("method"))), ("First factor's share of variance", pct(s.get("first_factor_share"))),
-              ("Eigenvalues above 1", count(s.get("factors_eigen_gt_1"))),
+def _harman_detail(s: MethodCheck) -> str:
+    eig = [num(e, 2) for e in s.eigenvalues or () if _finite(e)]
+    vs = s.vs_measurement_model
+    out = dl([("Method", h(s.method)), ("First factor's share of variance", pct(s.first_factor_share)),
+              ("Eigenvalues above 1", count(s.factors_eigen_gt_1)),
               ("Largest eigenvalues", ", ".join(eig) if eig else DASH),
-              ("One factor for all items", _fit_summary(_get(s, "single_factor_fit", "fit"))),
+              ("One factor for all items", _fit_summary(s.single_factor_fit)),
               ("One factor against the measurement model",
-               f"chi-square difference {num(vs.get('chi2_diff'), 2)} on {count(vs.get('df_diff'))} df, "
-               f"p {pval(vs.get('p'))}" if vs else DASH),
-              ("Rule", h(s.get("rule"))), ("Flagged", h(s.get("flag")))])
-    if s.get("note"):
-        out += f'<p class="sub">{h(s["note"])}</p>'
+               f"chi-square difference {num(vs.chi2_diff, 2)} on {count(vs.df_diff)} df, "
+               f"p {pval(vs.p)}" if vs else DASH),
+              ("Rule", h(s.rule)), ("Flagged", h(s.flag))])
+    if s.note:
+        out += f'<p class="sub">{h(s.note)}</p>'
     return out
 
 
-def _vif_detail(report: dict, s: dict) -> str:
-    t = s.get("threshold")
+def _vif_detail(s: MethodCheck) -> str:
+    t = s.threshold
     rows = [[h(k), num(v, 2) + (mark(v <= t, f"above {num(t, 1)}", f"at most {num(t, 1)}") if _finite(v) and _finite(t)
-                                 else "")] for k, v in (s.get("values") or {}).items()]
+                                 else "")] for k, v in (s.values or {}).items()]
     return (table(["Construct", f"VIF (flag above {num(t, 1)})" if _finite(t) else "VIF"], rows,
                   caption="Full-collinearity VIF per construct", numeric=(1,), cls="narrow")
-            + f'<p class="sub">{h(s.get("rule"))}</p>')
+            + f'<p class="sub">{h(s.rule)}</p>')
 
 
 # --------------------------------------------------------------------------- measurement model
@@ -1079,23 +1080,23 @@ def _cell(v: Any) -> str:
 
 # --------------------------------------------------------------------------- data, screening, warnings
 
-def data_section(report: dict) -> str:
+def data_section(report: Report) -> str:
     from samesource.output.sources_html import sources_block
 
-    d = report.get("data") or {}
-    mh = d.get("missing_handling") or {}
-    rs = d.get("response_scale") or {}
-    excl = d.get("excluded_by_reason") or {}
+    d = report.data
+    mh = d.missing_handling if isinstance(d.missing_handling, Mapping) else {}
+    rs = d.response_scale if isinstance(d.response_scale, Mapping) else {}
+    excl = d.excluded_by_reason if isinstance(d.excluded_by_reason, Mapping) else {}
     out = ["<h3>The data</h3>", dl([
-        ("File", h(d.get("file"))), ("Format", h(d.get("format"))), ("Encoding", h(d.get("encoding"))),
-        ("SHA-256 of the file", f'<code class="hash">{h(d.get("sha256"))}</code>'),
-        ("Rows read", count(d.get("rows"))), ("Rows analysed", count(d.get("rows_analyzed"))),
-        ("Items", count(d.get("items"))),
-        ("Rows excluded", count(d.get("excluded_rows")) + (
+        ("File", h(d.file)), ("Format", h(d.format)), ("Encoding", h(d.encoding)),
+        ("SHA-256 of the file", f'<code class="hash">{h(d.sha256)}</code>'),
+        ("Rows read", count(d.rows)), ("Rows analysed", count(d.rows_analyzed)),
+        ("Items", count(d.items)),
+        ("Rows excluded", count(d.excluded_rows) + (
             " (" + ", ".join(f"{h(k.replace('_', ' '))}: {count(v)}" for k, v in excl.items()) + ")" if excl else "")),
         ("Response scale", f"{num(rs.get('min'), 0)} to {num(rs.get('max'), 0)} (from the {h(rs.get('source'))})"
          if rs else DASH),
-        ("Missing answers", f"{count(d.get('missing_cells'))} cells ({pct(d.get('missing_share'))})")])]
+        ("Missing answers", f"{count(d.missing_cells)} cells ({pct(d.missing_share)})")])]
     out.append(sources_block(report))
     out.append("<h3>Missing answers</h3>")
     out.append(dl([("Handling", h(mh.get("description") or mh.get("method"))),
@@ -1104,45 +1105,42 @@ def data_section(report: dict) -> str:
     if mh.get("recommendation"):
         out.append(f'<p class="alert">{h(mh["recommendation"])}</p>')
 
-    sc = report.get("screening") or {}
+    sc = report.screening
     out.append("<h3>Screening for careless answers</h3>")
     out.append('<p class="note">Flags are for data review only. They are not a judgement on any person, and '
                'screening rules are common practice, not proof of careless answering. Only row numbers are shown '
                '(as a spreadsheet numbers them, header row 1).</p>')
-    checks = sc.get("checks") or {}
-    if checks:
+    if sc.checks:
         out.append(table(["Rule", "What it flags", "Rows flagged"],
-                         [[h(k.replace("_", " ")), h(v.get("rule")), count(v.get("flagged"))]
-                          for k, v in checks.items() if isinstance(v, dict)],
+                         [[h(k.replace("_", " ")), h(v.rule), count(v.flagged)] for k, v in sc.checks.items()],
                          caption="Rows flagged by each screening rule", numeric=(2,)))
-    dist = sc.get("distribution") or {}
+    dist = sc.distribution if isinstance(sc.distribution, Mapping) else {}
     if dist:
         out.append(table(["Measure", "Median over respondents"],
-                         [[h(k.replace("_", " ")), num(v.get("median"), 2)] for k, v in dist.items() if isinstance(v, dict)],
+                         [[h(k.replace("_", " ")), num(v.get("median"), 2)] for k, v in dist.items()
+                          if isinstance(v, Mapping)],
                          caption="Typical values of the screening measures", numeric=(1,), cls="narrow"))
-    flagged = [f for f in sc.get("flagged_rows") or [] if isinstance(f, dict)]
+    flagged = sc.flagged_rows
     if flagged and len(flagged) <= 40:
-        out.append(table(["Row", "Flagged by"], [[h(f.get("row")), h(", ".join(f.get("reasons") or []))]
-                                                for f in flagged],
+        out.append(table(["Row", "Flagged by"], [[h(f.row), h(", ".join(f.reasons or ()))] for f in flagged],
                          caption=f"Rows flagged for review ({count(len(flagged))})", cls="narrow"))
     elif flagged:
         out.append(f"<p>Rows flagged for review ({count(len(flagged))}): "
-                   + "; ".join(f"{h(f.get('row'))} ({h(', '.join(f.get('reasons') or []))})" for f in flagged)
+                   + "; ".join(f"{h(f.row)} ({h(', '.join(f.reasons or ()))})" for f in flagged)
                    + "</p>")
     else:
         out.append("<p>No row was flagged.</p>")
-    if sc.get("note"):
-        out.append(f'<p class="sub">{h(sc["note"])}</p>')
+    if sc.note:
+        out.append(f'<p class="sub">{h(sc.note)}</p>')
 
     out.append("<h3>Warnings</h3>")
-    ws = [w for w in report.get("warnings") or [] if isinstance(w, dict)]
-    if ws:
-        out.append('<ul class="warn">' + "".join(f"<li><code>{h(w.get('code'))}</code> {h(w.get('message'))}</li>"
-                                                  for w in ws) + "</ul>")
+    if report.warnings:
+        out.append('<ul class="warn">' + "".join(f"<li><code>{h(w.code)}</code> {h(w.message)}</li>"
+                                                  for w in report.warnings) + "</ul>")
     else:
         out.append("<p>The analysis raised no warnings.</p>")
 
-    o = report.get("options") or {}
+    o = report.options
     out.append("<h3>Options</h3>")
     out.append(dl([("Missing answers", h(o.get("missing"))), ("Flagged rows dropped", h(o.get("drop_flagged"))),
                    ("Bootstrap replicates", count(o.get("bootstrap")) if o.get("bootstrap") else "none (analytic intervals)"),
@@ -1224,8 +1222,8 @@ def render_html(report: Report | Mapping, *, when: str | None = None) -> str:
     return environment().get_template("report.html.j2").render(
         title=f"Survey report: {d.get('file') or 'survey data'}", css=stylesheet("report.css"),
         file=d.get("file") or "Survey data", facts=header_facts(view, when), review=review_reasons(view),
-        checks=Markup(checks_strip(view)), decisions=decisions_of(view), verdict=Markup(_verdict_box(report)),
-        cautions=Markup(cautions_section(report, "cautions", "Cautions: read these before using any result")),
+        checks=Markup(checks_strip(view)), decisions=decisions_of(view), verdict=Markup(_verdict_box(view)),
+        cautions=Markup(cautions_section(view, "cautions", "Cautions: read these before using any result")),
         toc=Markup(_toc((s.id, s.title) for s, _ in sections)), sections=[Markup(x) for _, x in sections],
         footer=Markup(footer)) + "\n"
 

@@ -28,7 +28,7 @@ class ReportSection:
 
 
 def _cautions_again(report: Report, figs: Figures) -> str:
-    inner = (report_html.cautions_section(report.record, "cautions-list", "Every caution, in full")
+    inner = (report_html.cautions_section(report, "cautions-list", "Every caution, in full")
              .replace('<h2 id="cautions-list-h">', '<h3 id="cautions-list-h">').replace("</h2>", "</h3>", 1))
     return report_html.section("cautions-again", "Cautions (repeated)", inner)
 
@@ -38,7 +38,7 @@ SECTIONS: tuple[ReportSection, ...] = (
     ReportSection("cross-source", "Same-source paths beside their cross-source counterparts",
                   sources_html.cross_source_section, ("cross_source",)),
     ReportSection("correction-check", "How well each correction works on data like these",
-                  lambda report, figs: check_html.correction_check_section(report.record), ("correction_check",)),
+                  lambda report, figs: check_html.correction_check_section(report), ("correction_check",)),
     ReportSection("sensitivity", "How much shared method would explain each path away",
                   report_html.sensitivity_section, ("sensitivity", "sensitivity_summary")),
     ReportSection("reliability", "How well each scale measures", report_html.reliability_section,
@@ -52,9 +52,9 @@ SECTIONS: tuple[ReportSection, ...] = (
     ReportSection("teams", "Teams", lambda report, figs: report_html.teams_section(report),
                   ("teams", "team_constructs", "team_paths")),
     ReportSection("next-time", "Next time: testing for a shared answering style",
-                  lambda report, figs: check_html.next_time_section(report.record), ()),
+                  lambda report, figs: check_html.next_time_section(report), ()),
     ReportSection("data", "Data, screening and warnings",
-                  lambda report, figs: report_html.data_section(report.record),
+                  lambda report, figs: report_html.data_section(report),
                   ("sources", "screening", "screening_rules", "warnings")),
     ReportSection("cautions-again", "Cautions (repeated)", _cautions_again, ("cautions",)),
 )

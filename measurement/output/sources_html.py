@@ -28,14 +28,14 @@ from samesource.output.tables import method_label
 KIND_LABELS = {"other_rater": "another rater", "later_wave": "a later wave", "records": "records"}
 
 
-def sources_block(report: dict) -> str:
+def sources_block(report: Report) -> str:
     """The data section's table of second sources: rows, matches, rows left unmatched."""
-    srcs = (report.get("data") or {}).get("sources") or {}
+    srcs = report.data.sources if isinstance(report.data.sources, Mapping) else {}
     if not srcs:
         return ""
     rows = []
     for name, s in srcs.items():
-        if not isinstance(s, dict):
+        if not isinstance(s, Mapping):
             continue
         rs = s.get("response_scale") or {}
         rows.append([h(name), h(KIND_LABELS.get(s.get("kind"), s.get("kind"))), h(s.get("file")),

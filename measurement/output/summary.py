@@ -71,9 +71,6 @@ def text_summary(report: Report | Mapping) -> str:
         lines += [f"    {reason}" for reason in v.reasons]
     if r.paths:
         lines += ["", "  key paths (standardized; preferred estimate marked *):"]
-        checked: dict = {}
-        for c in (r.correction_check or {}).get("paths") or ():
-            checked.setdefault((c["outcome"], c["predictor"]), c)
         for p in r.paths:
             lines.append(f"  {p.outcome} <- {p.predictor}")
             for m, e in p.estimates.items():
@@ -95,10 +92,10 @@ def text_summary(report: Report | Mapping) -> str:
                 lines.append(f"    {p.cannot_pin_down}")
             if p.sources is not None and p.sources.kind == "cross_source":
                 lines.append(f"    {p.sources.note}")
-            check = checked.get((p.outcome, p.predictor))
+            check = r.correction_check.path(p.outcome, p.predictor) if r.correction_check else None
             if check is not None:
-                lines.append(f"    correction check: {check['lean_on_reason']}")
-    for advice in (r.next_time or {}).get("advice") or ():
+                lines.append(f"    correction check: {check.lean_on_reason}")
+    for advice in r.next_time.advice if r.next_time else ():
         lines.append(f"  next time: {advice}")
     if r.warnings:
         lines += ["", f"  {len(r.warnings)} warning(s):"]

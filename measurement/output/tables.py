@@ -318,11 +318,10 @@ def _source_tables(report: Report, t: dict[str, pd.DataFrame]) -> None:
                          "within_benchmark_ci": e.get("within_benchmark_ci"), "closest": m == c.get("closest")})
     if rows:
         t["cross_source"] = _frame(rows, list(rows[0]))
-    check = report.correction_check or {}
-    rows = [{"outcome": p["outcome"], "predictor": p["predictor"], "truth": p["truth"], "scenario": sid, "method": m,
-             **e, "lean_on": m == p.get("lean_on")}
-            for p in check.get("paths") or () for sid, per in (p.get("scenarios") or {}).items()
-            for m, e in per.items()]
+    check = report.correction_check
+    rows = [{"outcome": p.outcome, "predictor": p.predictor, "truth": p.truth, "scenario": sid, "method": m,
+             **(e or {}), "lean_on": m == p.lean_on}
+            for p in (check.paths if check else ()) for sid, per in p.scenarios.items() for m, e in per.items()]
     if rows:
         t["correction_check"] = _frame(rows, list(rows[0]))
 
