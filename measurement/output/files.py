@@ -30,7 +30,7 @@ def report_files(report: Report | Mapping, *, when: str | None = None) -> dict[s
     r = Report.of(report)
     files = {"report.json": r.to_json().encode("utf-8"),
              "report.html": render_html(r, when=when).encode("utf-8"),
-             "brief.html": render_brief(r.record, when=when).encode("utf-8")}
+             "brief.html": render_brief(r, when=when).encode("utf-8")}
     tables = report_tables(r)
     for name, text in tables_csv(tables).items():
         files[f"{TABLES_FOLDER}/{name}"] = text.encode("utf-8")

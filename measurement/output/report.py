@@ -656,6 +656,7 @@ class Report:
     tool: Tool
     thresholds: Mapping[str, Threshold]
     options: Mapping                  # the options the analysis ran with, as report.json has them
+    schema: str | None                # report.json's schema ("samesource.report/1")
     correction_check: CorrectionCheck | None  # measurement/corrections/correction_check.py
     next_time: NextTime | None                # the planning advice (measurement/method_checks/planning.py)
     fits: Mapping[str, Any] = field(repr=False)
@@ -680,6 +681,7 @@ class Report:
             tool=_pick(Tool, record.get("tool")),
             thresholds=_by_name(record.get("thresholds"), lambda t: _pick(Threshold, t)),
             options=freeze(record.get("options")) if isinstance(record.get("options"), Mapping) else MappingProxyType({}),
+            schema=record.get("schema"),
             correction_check=_correction_check(record.get("correction_check")),
             next_time=_next_time(record.get("next_time")),
             fits=MappingProxyType(dict(fits or {})), _record=record)

@@ -141,7 +141,7 @@ def _get(d: Any, *keys: str) -> Any:
 
 
 def _conf(report: Report) -> str:
-    c = _get(report.record, "options", "confidence")
+    c = report.options.get("confidence")
     return f"{c * 100:.0f}%" if _finite(c) else "95%"
 
 
@@ -1210,18 +1210,17 @@ def review_reasons(report: Report | Mapping) -> list[dict]:
 def render_html(report: Report | Mapping, *, when: str | None = None) -> str:
     """The whole report as one self-contained HTML5 page (a string); ``when``: the date it was made."""
     view = Report.of(report)
-    report = view.record  # the first screen still reads report.json's content
-    d = report.get("data") or {}
+    d = view.data
     figs = Figures()
     from samesource.output.sections import render_sections  # it imports this module's sections
 
     sections = render_sections(view, figs)
-    footer = (f'Report schema {h(report.get("schema"))}; made by {h(_get(report, "tool", "name"))} '
-              f'{h(_get(report, "tool", "version"))} from {h(d.get("file"))} (SHA-256 '
-              f'<code class="hash">{h(d.get("sha256"))}</code>).')
+    footer = (f'Report schema {h(view.schema)}; made by {h(view.tool.name)} '
+              f'{h(view.tool.version)} from {h(d.file)} (SHA-256 '
+              f'<code class="hash">{h(d.sha256)}</code>).')
     return environment().get_template("report.html.j2").render(
-        title=f"Survey report: {d.get('file') or 'survey data'}", css=stylesheet("report.css"),
-        file=d.get("file") or "Survey data", facts=header_facts(view, when), review=review_reasons(view),
+        title=f"Survey report: {d.file or 'survey data'}", css=stylesheet("report.css"),
+        file=d.file or "Survey data", facts=header_facts(view, when), review=review_reasons(view),
         checks=Markup(checks_strip(view)), decisions=decisions_of(view), verdict=Markup(_verdict_box(view)),
         cautions=Markup(cautions_section(view, "cautions", "Cautions: read these before using any result")),
         toc=Markup(_toc((s.id, s.title) for s, _ in sections)), sections=[Markup(x) for _, x in sections],
