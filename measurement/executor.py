@@ -10,13 +10,17 @@ implementations live here:
   threads, and forking a threaded process can copy a lock another thread holds into the
   child, which then deadlocks.
 
-The service adds a Dask implementation of the same interface.
+The service adds a Dask implementation of the same interface, and runs its job processes in a
+:class:`LocalExecutor` too (``submit``, one process group per worker, ``own_groups=True``), so
+there is one process-pool layer with one owner-death watchdog. :class:`WorkerBudget` is the one
+cap on computing processes shared by several processes (the service's jobs): each running job
+may use ``cap // running jobs`` workers, re-read as its tasks finish.
 
 Contract for ``fn``: it must be picklable (a module-level function) and should handle its
 own errors (the bootstrap wraps every replicate). An exception that escapes ``fn`` is
 re-raised by ``map`` (the serial executor stops at once; the pool cancels the tasks not yet
 started). A worker process that dies (killed, out of memory, crashed in C code) makes
-``map`` raise :class:`RuntimeError`. An interruption of ``map`` (KeyboardInterrupt,
+``map`` raise :class:`WorkerLost` (a ``RuntimeError``). An interruption of ``map`` (KeyboardInterrupt,
 SystemExit) kills the pool's workers at once, and every worker leaves by itself within about a
 second when the process that owns the pool dies, even by SIGKILL.
 """
@@ -29,10 +33,11 @@ import io
 import math
 import multiprocessing
 import os
+import signal
 import threading
 import time
 from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import FIRST_EXCEPTION, ProcessPoolExecutor, wait
+from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from multiprocessing import context as mp_context
 from multiprocessing import forkserver, popen_forkserver, reduction, spawn
@@ -156,21 +161,31 @@ def watch_owner(owner_pid: int, on_gone: Callable[[], None], *, parent_pid: int 
     threading.Thread(target=watch, daemon=True, name=name).start()
 
 
-def _init_worker(blas_threads: int | None, owner_pid: int | None = None) -> None:
-    """Set a worker up: leave when the pool's owner dies, and limit BLAS threads (one pool
-    process per core, each multi-threaded, would oversubscribe the cores: the fitting engine
-    measured 10x slower fits that way)."""
+def _init_worker(blas_threads: int | None, owner_pid: int | None = None,
+                 own_group: bool = False, initializer: Callable[..., None] | None = None,
+                 initargs: tuple = ()) -> None:
+    """Set a worker up: leave when the pool's owner dies (or this worker's parent, the
+    forkserver, changes: it ends with the owner), and limit BLAS threads (one pool process per
+    core, each multi-threaded, would oversubscribe the cores: the fitting engine measured 10x
+    slower fits that way). With ``own_group`` the worker leads its own process group, and the
+    watchdog ends the whole group (the worker and every process it started, a pool of its own
+    included); then the caller's ``initializer(*initargs)`` runs."""
+    if own_group:
+        os.setpgid(0, 0)
     if owner_pid is not None:
-        watch_owner(owner_pid, lambda: os._exit(1))
-    if blas_threads is None:
-        return
-    for var in _BLAS_ENV:  # read by BLAS when numpy is first imported in this process
-        os.environ[var] = str(blas_threads)
-    try:  # libraries already loaded (by the main module or a preloaded one)
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - threadpoolctl is a dependency
-        return
-    threadpool_limits(limits=blas_threads)
+        on_gone = (lambda: os.killpg(0, signal.SIGKILL)) if own_group else (lambda: os._exit(1))
+        watch_owner(owner_pid, on_gone, parent_pid=os.getppid())
+    if blas_threads is not None:
+        for var in _BLAS_ENV:  # read by BLAS when numpy is first imported in this process
+            os.environ[var] = str(blas_threads)
+        try:  # libraries already loaded (by the main module or a preloaded one)
+            from threadpoolctl import threadpool_limits
+        except ImportError:  # pragma: no cover - threadpoolctl is a dependency
+            pass
+        else:
+            threadpool_limits(limits=blas_threads)
+    if initializer is not None:
+        initializer(*initargs)
 
 
 # ------------------------------------------------ workers that do not run the caller's script
@@ -245,12 +260,33 @@ def _context(start_method: str, import_main: bool) -> Any:
     return multiprocessing.get_context(start_method)
 
 
+class WorkerLost(RuntimeError):
+    """The process running a task died under it (killed, out of memory, crashed in C code);
+    the service's Dask backend raises it too when the cluster is lost."""
+
+
+class _Linked(Future):
+    """The future :meth:`LocalExecutor.submit` returns: cancelling it cancels the pool's task
+    too (when it has not started)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.inner: Future | None = None
+
+    def cancel(self) -> bool:
+        if self.inner is not None and not self.inner.cancel():
+            return False
+        return super().cancel()
+
+
 class LocalExecutor:
     """A pool of local worker processes (``concurrent.futures.ProcessPoolExecutor``).
 
-    The pool starts at the first :meth:`map` and is reused by later calls, so start-up is
-    paid once; :meth:`shutdown` (or leaving a ``with`` block) stops the workers, and a later
-    ``map`` would start a fresh pool. Safe to call from several threads at once.
+    The pool starts at the first :meth:`map` or :meth:`submit` and is reused by later calls,
+    so start-up is paid once; :meth:`shutdown` (or leaving a ``with`` block) stops the
+    workers, :meth:`terminate` kills them at once, and a later call starts a fresh pool. A
+    pool whose worker died is dropped and the next call starts a fresh one. Safe to call from
+    several threads at once.
 
     Parameters
     ----------
@@ -265,10 +301,21 @@ class LocalExecutor:
         (default False: a script or notebook that runs the analysis at top level needs no
         ``if __name__ == "__main__":`` guard). True is needed only when ``fn`` is defined in the
         main script itself, which must then have the guard; "spawn" always imports it.
+    share:
+        ``share()`` -> how many tasks of a :meth:`map` may run at once (at most
+        ``max_workers``), asked as tasks finish (:meth:`WorkerBudget.share`); default all.
+    own_groups:
+        Each worker leads its own process group, and ending a worker (its owner died,
+        :meth:`terminate`, a broken pool) ends its whole group: the service's job processes,
+        which start pools of their own.
+    initializer, initargs:
+        Run in each worker after its set-up, as in ``ProcessPoolExecutor``.
     """
 
     def __init__(self, max_workers: int | None = None, *, start_method: str | None = None,
-                 blas_threads: int | None = 1, import_main: bool = False) -> None:
+                 blas_threads: int | None = 1, import_main: bool = False,
+                 share: Callable[[], int] | None = None, own_groups: bool = False,
+                 initializer: Callable[..., None] | None = None, initargs: tuple = ()) -> None:
         n = (os.cpu_count() or 1) if max_workers is None else int(max_workers)
         if n < 1:
             raise ValueError(f"max_workers must be at least 1, got {max_workers}")
@@ -277,10 +324,14 @@ class LocalExecutor:
             raise ValueError(f"blas_threads must be at least 1 or None, got {blas_threads}")
         self._workers = n
         self._start_method = context.get_start_method()
-        self._blas_threads = blas_threads
         self._context = context
+        self._share = share
+        self._own_groups = own_groups
+        self._initargs = (blas_threads, None, own_groups, initializer, tuple(initargs))
         self._pool: ProcessPoolExecutor | None = None
         self._lock = threading.Lock()
+        # the pids of every worker each pool started, kept because a broken pool forgets them
+        self._pids: dict[int, set[int]] = {}
 
     @property
     def workers(self) -> int:
@@ -292,42 +343,87 @@ class LocalExecutor:
         """How workers start: "forkserver" or "spawn"."""
         return self._start_method
 
+    def worker_pids(self) -> list[int]:
+        """The process ids of the workers started so far (with ``own_groups``, each leads
+        its own process group)."""
+        with self._lock:
+            return sorted(p for pids in self._pids.values() for p in pids)
+
     def _get_pool(self) -> ProcessPoolExecutor:
         with self._lock:
             if self._pool is None:
+                blas, _owner, own_group, init, args = self._initargs
                 self._pool = ProcessPoolExecutor(
                     max_workers=self._workers, mp_context=self._context,
-                    initializer=_init_worker, initargs=(self._blas_threads, os.getpid()))
+                    initializer=_init_worker,
+                    initargs=(blas, os.getpid(), own_group, init, args))
             return self._pool
 
-    def _discard(self, pool: ProcessPoolExecutor) -> None:
-        """Drop a broken pool so that the next ``map`` starts a fresh one."""
-        with self._lock:
-            if self._pool is pool:
-                self._pool = None
-        pool.shutdown(wait=False, cancel_futures=True)
+    def _submit(self, fn: Callable[[Any], Any], item: Any) -> tuple[ProcessPoolExecutor, Future]:
+        pool = self._get_pool()
+        try:
+            fut = pool.submit(fn, item)
+        except BrokenProcessPool:  # a worker died since the last call: start afresh
+            self._end(pool)
+            pool = self._get_pool()
+            fut = pool.submit(fn, item)
+        with self._lock:  # the pool starts its processes in submit
+            self._pids.setdefault(id(pool), set()).update(getattr(pool, "_processes", None) or {})
+        return pool, fut
+
+    def submit(self, fn: Callable[[Any], Any], item: Any) -> Future:
+        """Run ``fn(item)`` in a worker; the future's result is its value. A worker that dies
+        under the task makes the future raise :class:`WorkerLost` (the pool is dropped, and
+        with ``own_groups`` what is left of every worker's group ended); ``cancel()`` drops a
+        task that has not started, :meth:`terminate` stops running ones."""
+        pool, fut = self._submit(fn, item)
+        outer = _Linked()
+        outer.inner = fut
+
+        def _done(f: Future) -> None:
+            if f.cancelled():
+                outer.cancel()
+                return
+            try:
+                outer.set_result(f.result())
+            except BrokenProcessPool as e:
+                self._end(pool)
+                outer.set_exception(WorkerLost(f"a worker process stopped ({e.__class__.__name__})"))
+            except BaseException as e:  # noqa: BLE001 - handed to the caller
+                outer.set_exception(e)
+
+        fut.add_done_callback(_done)
+        return outer
 
     def map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
-        """``[fn(item) for item in items]``, run in the workers, in the order of ``items``."""
+        """``[fn(item) for item in items]``, run in the workers, in the order of ``items``
+        (at most ``share()`` at once when the pool has a share)."""
         items = list(items)
         if not items:
             return []
         pool = self._get_pool()
-        futures = []
+        futures: list[Future] = []
+        running: set[Future] = set()
         try:
-            futures = [pool.submit(fn, item) for item in items]
-            while _checks():
-                done, pending = wait(futures, timeout=STOP_POLL_SECONDS,
-                                     return_when=FIRST_EXCEPTION)
-                if not pending or any(f.exception() is not None for f in done):
+            while True:
+                allowed = len(items) if self._share is None else max(1, min(self._workers, self._share()))
+                while len(futures) < len(items) and len(running) < allowed:
+                    pool, fut = self._submit(fn, items[len(futures)])
+                    futures.append(fut)
+                    running.add(fut)
+                if not running:
                     break
+                done, running = wait(running, return_when=FIRST_COMPLETED,
+                                     timeout=STOP_POLL_SECONDS if _checks() else None)
+                for f in done:
+                    f.result()  # a task's error (or a dead worker) ends the map here
                 if stop_requested():
                     self._terminate(pool)
                     raise StopRequested("the work was told to stop")
             return [f.result() for f in futures]
         except BrokenProcessPool as exc:
-            self._discard(pool)
-            raise RuntimeError(
+            self._end(pool)
+            raise WorkerLost(
                 "a worker process of the local pool died (killed, out of memory or crashed); "
                 f"{len(items)} tasks were lost") from exc
         except Exception:
@@ -341,14 +437,34 @@ class LocalExecutor:
             self._terminate(pool)
             raise
 
+    def _drop(self, pool: ProcessPoolExecutor) -> tuple[bool, set[int]]:
+        """Forget ``pool`` (the next call starts a fresh one): whether it was the current one,
+        and the pids it started."""
+        with self._lock:
+            current = self._pool is pool
+            if current:
+                self._pool = None
+            return current, self._pids.pop(id(pool), set())
+
+    def _end(self, pool: ProcessPoolExecutor) -> None:
+        """A worker died (or the pool is closed): drop the pool and, with ``own_groups``, end
+        what is left of every worker's process group, the dead one's own processes included."""
+        _current, pids = self._drop(pool)
+        pool.shutdown(wait=False, cancel_futures=True)
+        if self._own_groups:
+            for pid in pids:
+                with contextlib.suppress(ProcessLookupError, PermissionError):
+                    os.killpg(pid, signal.SIGKILL)
+
     def _terminate(self, pool: ProcessPoolExecutor) -> None:
         """Cancel what has not started, kill the workers and drop the pool."""
-        with self._lock:
-            if self._pool is pool:
-                self._pool = None
         # ProcessPoolExecutor has no public way to stop running tasks before Python 3.14
         # (terminate_workers), so its private worker table is read, and missing is tolerated.
         procs = list((getattr(pool, "_processes", None) or {}).values())
+        if self._own_groups:
+            self._end(pool)
+            return
+        self._drop(pool)
         pool.shutdown(wait=False, cancel_futures=True)
         for proc in procs:
             if proc.is_alive():
@@ -357,6 +473,14 @@ class LocalExecutor:
             proc.join(timeout=5)
             if proc.is_alive():
                 proc.kill()
+
+    def terminate(self) -> None:
+        """Stop now: cancel the tasks not started and kill the workers running the others
+        (with ``own_groups``, their whole groups)."""
+        with self._lock:
+            pool = self._pool
+        if pool is not None:
+            self._terminate(pool)
 
     def shutdown(self, wait: bool = True) -> None:
         """Stop the worker processes (tasks not yet started are cancelled)."""
@@ -375,31 +499,80 @@ class LocalExecutor:
         return f"LocalExecutor(max_workers={self._workers}, start_method={self._start_method!r})"
 
 
+# ------------------------------------------------------- one cap shared by several processes
+
+class WorkerBudget:
+    """One cap on the computing processes of several processes that each run work with a
+    pool of their own (the service's job processes, each with its bootstrap's pool).
+
+    Each process that runs a job holds a place (:meth:`running`) and may use
+    :meth:`share` = ``cap // running jobs`` workers (at least one), asked again as its tasks
+    finish: a lone job uses the whole cap, and once others start every one is down to its
+    share by the end of its current task. Made in the service's process and handed to the job
+    processes when they start (a shared counter in shared memory), so it is picklable only
+    then, as multiprocessing's locks are."""
+
+    def __init__(self, cap: int, context: Any = None) -> None:
+        if cap < 1:
+            raise ValueError(f"the cap on processes must be at least 1, got {cap}")
+        self.cap = int(cap)
+        self._running = (context or pool_context()).Value("i", 0)
+
+    def share(self) -> int:
+        """The workers one running job may use now."""
+        with self._running.get_lock():
+            n = self._running.value
+        return max(1, self.cap // max(1, n))
+
+    @contextlib.contextmanager
+    def running(self) -> Iterator[None]:
+        """Count this process's job among the running ones while the block runs."""
+        with self._running.get_lock():
+            self._running.value += 1
+        try:
+            yield
+        finally:
+            with self._running.get_lock():
+                self._running.value -= 1
+
+    def __repr__(self) -> str:
+        return f"WorkerBudget(cap={self.cap})"
+
+
 _SHARED: list[LocalExecutor] = []
 _SHARED_LOCK = threading.Lock()
-_LIMIT: list[int] = []  # limit_workers(n): the shared pool's size in this process
+_LIMIT: list[int | WorkerBudget] = []  # limit_workers(...): the shared pool's cap in this process
 
 
-def limit_workers(n: int) -> None:
-    """Cap the worker processes :func:`default_executor` starts in this process at ``n``
-    (1: every batch runs serially, no pool). The service calls it in each job process, with
-    its one cap on processes shared out among the jobs that run at once."""
-    if n < 1:
-        raise ValueError(f"the worker limit must be at least 1, got {n}")
+def limit_workers(limit: int | WorkerBudget) -> None:
+    """Cap the worker processes :func:`default_executor` uses in this process: a number (1:
+    every batch runs serially, no pool), or a :class:`WorkerBudget` shared with other
+    processes (the pool has up to ``cap`` workers, and each batch runs its share at once).
+    The service calls it in each job process with the service's one budget."""
+    if isinstance(limit, WorkerBudget):
+        pass
+    elif int(limit) != limit or limit < 1:
+        raise ValueError(f"the worker limit must be at least 1, got {limit}")
     with _SHARED_LOCK:
-        _LIMIT[:] = [int(n)]
+        _LIMIT[:] = [limit]
 
 
 def _pool_size() -> int:
-    return min(_LIMIT[0], os.cpu_count() or 1) if _LIMIT else (os.cpu_count() or 1)
+    cores = os.cpu_count() or 1
+    if not _LIMIT:
+        return cores
+    limit = _LIMIT[0]
+    return min(limit.cap if isinstance(limit, WorkerBudget) else limit, cores)
 
 
 def _shared_local_executor() -> LocalExecutor:
     # One pool per process, reused by every job that asks for the default, so the service
-    # pays worker start-up once rather than per analysis.
+    # pays worker start-up once rather than per analysis. Workers start as tasks need them.
     with _SHARED_LOCK:
         if not _SHARED:
-            _SHARED.append(LocalExecutor(_pool_size()))
+            limit = _LIMIT[0] if _LIMIT else None
+            share = limit.share if isinstance(limit, WorkerBudget) else None
+            _SHARED.append(LocalExecutor(_pool_size(), share=share))
             atexit.register(_SHARED[0].shutdown)
         return _SHARED[0]
 
@@ -413,5 +586,6 @@ def default_executor(n_tasks: int) -> Executor:
     return _shared_local_executor()
 
 
-__all__ = ["Executor", "LocalExecutor", "SerialExecutor", "default_executor", "limit_workers", "SERIAL_MAX_TASKS",
-           "StopRequested", "stop_requested", "stop_when"]
+__all__ = ["Executor", "LocalExecutor", "SerialExecutor", "WorkerBudget", "WorkerLost",
+           "default_executor", "limit_workers", "SERIAL_MAX_TASKS", "StopRequested",
+           "stop_requested", "stop_when"]

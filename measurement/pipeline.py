@@ -17,7 +17,6 @@ import pandas as pd
 
 from samesource import __version__
 from samesource.corrections.paths_stage import paths_section
-from samesource.corrections.source_paths import annotate_sources
 from samesource.errors import DataError
 from samesource.input.design import Design, parse_design
 from samesource.input.frames import Data, read_data
@@ -33,6 +32,17 @@ from samesource.method_checks.method_variance import (
 )
 from samesource.options import AnalysisOptions
 from samesource.output.report_json import finalize_report, finite_or_none
+from samesource.results import (
+    FitCache,
+    MeasurementResult,
+    MethodVarianceResult,
+    PathsResult,
+    ReliabilityResult,
+    SectionResult,
+    constructs_section,
+    freeze,
+    thaw,
+)
 from samesource.statistics.measurement_stage import measurement_model_section
 from samesource.statistics.reliability_stage import construct_reliability
 from samesource.statistics.teams_stage import teams_section
@@ -97,39 +107,63 @@ def analyze(
     _check_redundant(plan, dsg, table.source)
 
     step("reliability", 2, total)
-    fits: dict[str, Any] = {}
-    warnings: list[dict] = list(prepared.warnings)
-    if plan.recommendation:
-        warnings.append({"code": "listwise_dropped_many", "message": plan.recommendation})
-    constructs = construct_reliability(dsg, plan, opts, fits, warnings)
+    fits = FitCache()  # the one cache of fitted models, handed to every stage that fits
+    reliability = construct_reliability(dsg, plan, opts, fits)
 
     step("measurement_model", 3, total)
-    mm = measurement_model_section(dsg, plan, opts, fits, constructs, warnings)
+    measurement = measurement_model_section(dsg, plan, opts, fits)
 
     step("method_variance", 4, total)
-    mv = method_variance_section(same, plan, opts, fits, fits["measurement_model"])
-    assumptions = method_variance_verdict(same, plan, mv)
+    method = method_variance_stage(same, plan, opts, fits)
 
     step("paths", 5, total)
-    paths = paths_section(dsg, plan, opts, fits, mv, warnings, assumptions, executor=executor,
-                          progress=lambda done, n: step("bootstrap", done, n))
-    if dsg.sources:
-        paths = annotate_sources(dsg, paths)
+    paths = paths_section(dsg, plan, opts, fits, thaw(method.section), method.assumptions,
+                          executor=executor, progress=lambda done, n: step("bootstrap", done, n))
 
     step("teams", 6, total)
-    teams = teams_section(dsg, prepared, plan, opts, warnings)
+    teams = teams_section(dsg, prepared, plan, opts)
 
-    check = next_time = None
+    check = next_time = SectionResult(None)
     if opts.check_corrections:  # measurement/corrections/correction_check.py, then the planning advice from it
         from samesource.corrections.correction_check import correction_check
         from samesource.method_checks.planning import next_time_section
 
-        check, population = correction_check(dsg, prepared, plan, mv, paths, opts, n=opts.check_corrections,
-                                             executor=executor,
-                                             progress=lambda done, n: step("check_corrections", done, n))
-        next_time = next_time_section(dsg, population, plan, opts)
+        checked, population = correction_check(
+            dsg, prepared, plan, thaw(method.section), thaw(paths.paths), opts, n=opts.check_corrections,
+            executor=executor, progress=lambda done, n: step("check_corrections", done, n))
+        check = SectionResult(freeze(checked))
+        next_time = SectionResult(freeze(next_time_section(dsg, population, plan, opts)))
 
     step("report", 7, total)
+    report = assemble(table, prepared, plan, screening, opts, dsg, reliability=reliability,
+                      measurement=measurement, method=method, paths=paths, teams=teams, check=check,
+                      next_time=next_time)
+    report["timings"] = clock.finish()
+    step("report", total, total)
+    return Analysis(report=report, prepared=prepared, plan=plan, fits=dict(fits))
+
+
+def method_variance_stage(design: Design, plan: MissingPlan, opts: AnalysisOptions,
+                          fits: FitCache) -> MethodVarianceResult:
+    """Every method-variance check, the assumption checks they allow and the verdict
+    (measurement/method_checks/method_variance.py); reads the measurement model from ``fits``."""
+    mv = method_variance_section(design, plan, opts, fits, fits["measurement_model"])
+    assumptions = method_variance_verdict(design, plan, mv)  # the verdict goes into mv
+    return MethodVarianceResult(section=freeze(mv), assumptions=tuple(assumptions))
+
+
+def assemble(table: LoadedTable, prepared: PreparedData, plan: MissingPlan, screening: Any,
+             opts: AnalysisOptions, design: Design, *, reliability: ReliabilityResult,
+             measurement: MeasurementResult, method: MethodVarianceResult, paths: PathsResult,
+             teams: SectionResult, check: SectionResult, next_time: SectionResult) -> dict[str, Any]:
+    """report.json's content from the stages' results: the one place they are merged."""
+    assumptions = [*method.assumptions, *([paths.stability] if paths.stability is not None else [])]
+    warnings: list[dict] = list(prepared.warnings)
+    if plan.recommendation:
+        warnings.append({"code": "listwise_dropped_many", "message": plan.recommendation})
+    for stage in (reliability, measurement, paths, teams):
+        warnings += [n.to_dict() for n in stage.notices]
+    constructs = constructs_section(reliability, measurement)
     report: dict[str, Any] = {
         "schema": "samesource.report/1",
         "tool": {"name": "samesource", "version": __version__},
@@ -137,21 +171,18 @@ def analyze(
         "data": _data_section(table, prepared, plan),
         "screening": _screening_section(screening, plan),
         "constructs": constructs,
-        "measurement_model": mm,
-        "method_variance": mv,
-        "paths": paths,
-        "teams": teams,
+        "measurement_model": thaw(measurement.section),
+        "method_variance": thaw(method.section),
+        "paths": thaw(paths.paths),
+        "teams": thaw(teams.section),
         "options": opts.to_dict(),
-        "design": dsg.to_dict(),
-        **({"correction_check": check} if check is not None else {}),
-        **({"next_time": next_time} if next_time is not None else {}),
+        "design": design.to_dict(),
+        **({"correction_check": thaw(check.section)} if check.section is not None else {}),
+        **({"next_time": thaw(next_time.section)} if next_time.section is not None else {}),
     }
     # Review before use (measurement/input/review.py): after every section it reads from.
-    report.update(review_section(constructs, dsg, scale_source=prepared.scale_source))
-    report = finalize_report(report, warnings=warnings, options=opts)
-    report["timings"] = clock.finish()
-    step("report", total, total)
-    return Analysis(report=report, prepared=prepared, plan=plan, fits=fits)
+    report.update(review_section(constructs, design, scale_source=prepared.scale_source))
+    return finalize_report(report, warnings=warnings, options=opts)
 
 
 def _check_redundant(plan: MissingPlan, design: Design, source: str) -> None:

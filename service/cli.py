@@ -17,6 +17,8 @@ EXIT_BAD_INPUT = 2
 
 
 def _parser() -> argparse.ArgumentParser:
+    from samesource.input.loading import READABLE  # the formats, from the registry of readers
+
     p = argparse.ArgumentParser(prog="samesource", description=(
         "Check survey scales' reliability and validity, test for common-method variance, "
         "and report corrected path estimates."))
@@ -24,7 +26,7 @@ def _parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True)
 
     a = sub.add_parser("analyze", help="analyse a survey file with a design file; writes report.json")
-    a.add_argument("data", help="survey data: .csv, .tsv, .txt, .xlsx, .sav, .parquet, or any of them gzip-compressed (.csv.gz)")
+    a.add_argument("data", help=f"survey data: {READABLE}")
     a.add_argument("--design", required=True, help="the study design (JSON)")
     a.add_argument("--out", default="samesource-report", help="output folder (default ./samesource-report)")
     a.add_argument("--sheet", help="worksheet of an .xlsx file (default: the sheet with the most rows "

@@ -28,10 +28,10 @@ class ServiceConfig:
     database_url: str | None = None  # None: SQLite in data_dir
     max_upload_mb: float = DEFAULT_MAX_UPLOAD_MB
     executor: str = "local"  # "local" or "dask://HOST:PORT"
-    job_workers: int = 0  # analyses at once; 0: one per core (at least 1)
-    # The one cap on computing processes for the whole service: the analyses running at once
-    # share it for their bootstrap pools (each gets max_processes // workers, at least 1, and
-    # runs its replicates serially when that is 1). 0: one per core.
+    job_workers: int = 0  # analyses at once; 0: one per core (at least 1); at most max_processes
+    # The one cap on computing processes for the whole service (local executor): the analyses
+    # running at the moment share it for their bootstrap pools, each max_processes // running
+    # (at least 1), so a lone analysis uses every core. 0: one per core.
     max_processes: int = 0
     lease_seconds: float = 30.0  # a running analysis whose heartbeat is older is orphaned
     max_attempts: int = 3  # interrupted this many times: failed, not re-queued
@@ -85,14 +85,16 @@ class ServiceConfig:
 
     @property
     def workers(self) -> int:
-        return self.job_workers or max(1, os.cpu_count() or 1)
+        """Analyses at once: job_workers (0: one per core); on the local executor at most the
+        cap on processes, since each analysis is a computing process itself."""
+        n = self.job_workers or max(1, os.cpu_count() or 1)
+        return n if self.dask_address else min(n, self.process_cap)
 
     @property
-    def bootstrap_workers(self) -> int:
-        """Worker processes each running analysis's bootstrap may use: the service's cap on
-        processes shared out among the analyses that run at once (at least 1: serial)."""
-        cap = self.max_processes or max(1, os.cpu_count() or 1)
-        return max(1, cap // self.workers)
+    def process_cap(self) -> int:
+        """The one cap on the service's computing processes (local executor): its job
+        processes and their bootstrap pools together (``executor.WorkerBudget``)."""
+        return self.max_processes or max(1, os.cpu_count() or 1)
 
     @property
     def running_per_tenant(self) -> int:

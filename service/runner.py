@@ -5,8 +5,9 @@ any crash. A few dispatcher threads each claim the oldest queued analysis (an at
 conditional UPDATE, so several service processes on one PostgreSQL database never take the
 same one), hand it to a backend and wait for its outcome:
 
-* :class:`LocalBackend`: a pool of local worker processes; the worker writes progress to the
-  database itself (it has the database URL);
+* :class:`LocalBackend`: local job processes (the executor's :class:`LocalExecutor`, one
+  process group each); the job writes progress to the database itself (it has the database
+  URL), and its bootstrap takes its share of the service's one cap on processes;
 * :class:`samesource.service.dask_backend.DaskBackend`: the job runs on a Dask cluster and sends
   progress back as cluster events, which this process writes.
 
@@ -22,19 +23,25 @@ or fail with the reason once they were interrupted ``max_attempts`` times.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 import secrets
-import signal
 import socket
 import threading
 import time
-from concurrent.futures import Future, ProcessPoolExecutor
-from concurrent.futures.process import BrokenProcessPool
+from concurrent.futures import Future
 from pathlib import Path
 from typing import Protocol
 
-from samesource.executor import process_alive
+from samesource.executor import (
+    LocalExecutor,
+    WorkerBudget,
+    WorkerLost,
+    limit_workers,
+    process_alive,
+    stop_when,
+)
 
 from .config import ServiceConfig
 from .errors import safe_trace
@@ -45,10 +52,6 @@ from .store import Claim, Store
 log = logging.getLogger("samesource.runner")
 
 POLL_SECONDS = 2.0  # dispatchers look for queued analyses at least this often
-
-
-class WorkerLost(Exception):
-    """The process or cluster running a job went away before the job ended."""
 
 
 class Backend(Protocol):
@@ -63,25 +66,21 @@ class Backend(Protocol):
 
 
 _WORKER_STORE: Store | None = None
+_WORKER_BUDGET: WorkerBudget | None = None
 
 
-def _init_local_worker(database_url: str, service_pid: int, bootstrap_workers: int = 0) -> None:
-    """Runs once in each pool process: its own database connection for progress, its own
-    process group (so that it and every process it starts, the bootstrap's pool included,
-    can be ended together), a watchdog that ends that group when the service is gone,
-    so a killed service leaves no analysis running behind it, and its share of the
-    service's cap on processes for its bootstrap pool (``bootstrap_workers``; 0: no cap)."""
-    global _WORKER_STORE
-    from samesource.executor import limit_workers, watch_owner
-
+def _init_local_worker(database_url: str, budget: WorkerBudget | None = None) -> None:
+    """Runs once in each job process, after the executor's set-up (its own process group,
+    ended whole when the service is gone, so a killed service leaves no analysis running
+    behind it): its own database connection for progress, and the service's one budget of
+    processes for its bootstrap pool."""
+    global _WORKER_STORE, _WORKER_BUDGET
     from .db import Database
 
-    if bootstrap_workers:
-        limit_workers(bootstrap_workers)
-    os.setpgid(0, 0)
+    if budget is not None:
+        limit_workers(budget)
+        _WORKER_BUDGET = budget
     _WORKER_STORE = Store(Database(database_url))
-    watch_owner(service_pid, lambda: os.killpg(0, signal.SIGKILL), parent_pid=os.getppid(),
-                name="samesource-watchdog")
 
 
 def _run_local(spec: JobSpec) -> Outcome:
@@ -101,95 +100,36 @@ def _run_local(spec: JobSpec) -> Outcome:
         except Exception:
             return False
 
-    from samesource.executor import stop_when
-
-    with stop_when(gone):
+    running = _WORKER_BUDGET.running() if _WORKER_BUDGET is not None else contextlib.nullcontext()
+    with running, stop_when(gone):
         return run_job(spec, progress, executor=None)  # bootstrap: measurement's default pool
 
 
 class LocalBackend:
-    """Jobs in a pool of local processes ("forkserver" or "spawn": never "fork", the service
-    runs threads)."""
+    """Jobs in local processes: a :class:`samesource.executor.LocalExecutor` with one
+    process group per job process (a dead one's bootstrap processes end with it), and one
+    :class:`samesource.executor.WorkerBudget` of ``max_processes`` shared by the jobs'
+    bootstrap pools."""
 
     name = "local"
 
-    def __init__(self, workers: int, database_url: str, bootstrap_workers: int = 0) -> None:
-        from samesource.executor import pool_context
-
-        # the one way our pools start (never "fork"); a job needs nothing from the service's
-        # main script (the console script, or a test runner), so it is not imported again
-        self._context = pool_context()
-        self._workers = workers
-        self._bootstrap_workers = bootstrap_workers  # per job process (0: one per core)
-        self._url = database_url
-        self._lock = threading.Lock()
-        self._pool: ProcessPoolExecutor | None = None
-        # pids of every worker each pool started (each leads its own process group), kept here
-        # because a broken pool may have forgotten them
-        self._pids: dict[int, set[int]] = {}
-
-    def _get_pool(self) -> ProcessPoolExecutor:
-        with self._lock:
-            if self._pool is None:
-                self._pool = ProcessPoolExecutor(
-                    max_workers=self._workers, mp_context=self._context,
-                    initializer=_init_local_worker,
-                    initargs=(self._url, os.getpid(), self._bootstrap_workers))
-            return self._pool
+    def __init__(self, workers: int, database_url: str, max_processes: int | None = None) -> None:
+        budget = WorkerBudget(max_processes or max(1, os.cpu_count() or 1))
+        # a job needs nothing from the service's main script (the console script, or a test
+        # runner), so it is not imported again; BLAS threads are left to the job (blas_threads)
+        self._pool = LocalExecutor(workers, blas_threads=None, own_groups=True,
+                                   initializer=_init_local_worker, initargs=(database_url, budget))
+        self.budget = budget
 
     def submit(self, spec: JobSpec) -> Future:
-        pool = self._get_pool()
-        try:
-            fut = pool.submit(_run_local, spec)
-        except BrokenProcessPool:
-            self._discard(pool)
-            pool = self._get_pool()
-            fut = pool.submit(_run_local, spec)
-        with self._lock:  # the pool starts its processes in submit
-            self._pids.setdefault(id(pool), set()).update(getattr(pool, "_processes", None) or {})
-        outer: Future = Future()
-
-        def _done(f: Future) -> None:
-            try:
-                outer.set_result(f.result())
-            except BrokenProcessPool as e:
-                self._discard(pool)
-                outer.set_exception(WorkerLost(f"a worker process stopped ({e.__class__.__name__})"))
-            except BaseException as e:  # noqa: BLE001 - handed to the dispatcher
-                outer.set_exception(e)
-
-        fut.add_done_callback(_done)
-        return outer
+        return self._pool.submit(_run_local, spec)
 
     def worker_pids(self) -> list[int]:
-        with self._lock:
-            return sorted(p for pids in self._pids.values() for p in pids)
-
-    def _discard(self, pool: ProcessPoolExecutor) -> None:
-        """A worker died: drop the pool (the next job starts a fresh one) and end what is
-        left of every worker's process group, the dead one's bootstrap processes included."""
-        with self._lock:
-            if self._pool is not pool:
-                return  # already done for this pool
-            self._pool = None
-        self._end(pool)
+        return self._pool.worker_pids()
 
     def close(self) -> None:
         # Jobs still running were handed back to the queue: end them now.
-        with self._lock:
-            pool, self._pool = self._pool, None
-        if pool is not None:
-            self._end(pool)
-
-    def _end(self, pool: ProcessPoolExecutor) -> None:
-        pool.shutdown(wait=False, cancel_futures=True)
-        with self._lock:
-            pids = self._pids.pop(id(pool), set())
-        for pid in pids:
-            try:
-                os.killpg(pid, signal.SIGKILL)
-            except (ProcessLookupError, PermissionError):
-                pass
+        self._pool.terminate()
 
 
 # ---------------------------------------------------------------------- the runner
@@ -503,4 +443,4 @@ def make_backend(config: ServiceConfig, store: Store) -> Backend:
         from .dask_backend import DaskBackend
 
         return DaskBackend(config.dask_address, store)
-    return LocalBackend(config.workers, config.sqlalchemy_url, config.bootstrap_workers)
+    return LocalBackend(config.workers, config.sqlalchemy_url, config.process_cap)

@@ -9,7 +9,9 @@ replicates the intervals agree up to Monte Carlo error.
 from __future__ import annotations
 
 import os
+import time
 import types
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -29,6 +31,8 @@ from samesource.executor import (
     Executor,
     LocalExecutor,
     SerialExecutor,
+    WorkerBudget,
+    WorkerLost,
     default_executor,
 )
 
@@ -433,14 +437,15 @@ def test_one_cap_on_processes_for_the_service():
     import sys
 
     code = """
-from samesource.executor import LocalExecutor, SerialExecutor, default_executor, limit_workers
+from samesource.executor import LocalExecutor, SerialExecutor, WorkerBudget, default_executor, limit_workers
 from samesource.service.config import ServiceConfig
-assert ServiceConfig(job_workers=2, max_processes=8).bootstrap_workers == 4
-assert ServiceConfig(job_workers=3, max_processes=2).bootstrap_workers == 1
-assert ServiceConfig(job_workers=1, max_processes=0).bootstrap_workers >= 1
+assert ServiceConfig(job_workers=2, max_processes=8).process_cap == 8
+assert ServiceConfig(job_workers=3, max_processes=2).workers == 2  # each job is a process too
+assert ServiceConfig(job_workers=3, max_processes=2, executor="dask://h:1").workers == 3
+assert ServiceConfig(job_workers=1, max_processes=0).process_cap >= 1
 limit_workers(1)
-assert isinstance(default_executor(1000), SerialExecutor)  # a share of one: no pool at all
-limit_workers(2)
+assert isinstance(default_executor(1000), SerialExecutor)  # a cap of one: no pool at all
+limit_workers(WorkerBudget(2))
 big = default_executor(1000)
 import os
 assert (os.cpu_count() or 1) < 2 or (isinstance(big, LocalExecutor) and big.workers == 2)
@@ -448,6 +453,61 @@ print("ok")
 """
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert done.returncode == 0 and done.stdout.strip() == "ok", done.stderr
+
+
+def test_a_lone_job_has_the_whole_cap_and_several_share_it():
+    budget = WorkerBudget(4)
+    assert budget.share() == 4  # nothing running yet: a job that starts gets all
+    with budget.running():
+        assert budget.share() == 4  # a lone job on a cap of four: four workers
+        with budget.running():
+            assert budget.share() == 2
+            with budget.running(), budget.running(), budget.running():
+                assert budget.share() == 1  # more jobs than the cap: one each, never none
+        assert budget.share() == 4
+    with pytest.raises(ValueError, match="at least 1"):
+        WorkerBudget(0)
+
+
+def _sleep_and_count(args):
+    """A task that records how many tasks run at once (a file per running task)."""
+    folder, i = args
+    mark = Path(folder) / f"run-{i}"
+    mark.touch()
+    at_once = len(list(Path(folder).glob("run-*")))
+    time.sleep(0.15)
+    mark.unlink()
+    return at_once
+
+
+def test_a_map_runs_at_most_its_share_at_once_as_the_share_changes(tmp_path):
+    # The share is asked again as tasks finish: two at once, then one once a second job
+    # counts itself (as a job process does when another analysis starts).
+    budget = WorkerBudget(2)
+    with LocalExecutor(2, share=budget.share) as ex:
+        with budget.running():
+            first = ex.map(_sleep_and_count, [(str(tmp_path), i) for i in range(8)])
+            with budget.running():
+                second = ex.map(_sleep_and_count, [(str(tmp_path), i) for i in range(6)])
+    assert max(first) == 2 and max(second) == 1, (first, second)
+
+
+def test_submit_returns_a_future_and_a_dead_worker_is_worker_lost():
+    import signal
+
+    with LocalExecutor(1) as ex:
+        assert ex.submit(abs, -3).result(timeout=60) == 3
+        (pid,) = ex.worker_pids()
+        slow = ex.submit(time.sleep, 60)
+        queued = ex.submit(abs, -1)
+        assert queued.cancel()  # not started: dropped
+        time.sleep(0.5)
+        os.kill(pid, signal.SIGKILL)
+        with pytest.raises(WorkerLost):
+            slow.result(timeout=30)
+        assert ex.submit(abs, -5).result(timeout=60) == 5  # a fresh pool
+        assert pid not in ex.worker_pids()
+        ex.terminate()
 
 
 def test_map_keeps_order_and_reraises_task_errors(pool):

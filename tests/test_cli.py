@@ -217,3 +217,13 @@ def test_progress_line_on_a_terminal_only(tmp_path):
     assert lines[0] == "samesource: screen (stage 2 of 8)"
     assert all(ln.startswith("samesource: ") for ln in lines)
     assert run(*args, "--quiet").stderr == ""
+
+
+def test_help_lists_every_format_of_the_registry():
+    from samesource.input.loading import READERS
+
+    res = run("analyze", "--help")
+    assert res.returncode == 0, res.stderr
+    text = " ".join(res.stdout.split())  # argparse wraps the help at hyphens and spaces
+    for f in READERS:
+        assert f.suffixes[0] in text, (f.name, text)

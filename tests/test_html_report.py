@@ -696,25 +696,33 @@ def test_teams_say_why_a_value_is_missing_and_mark_imprecise_intervals(sample):
 
 
 def test_fit_reads_as_a_sentence():
+    from samesource.output.report import Report
     from samesource.output.report_html import fit_sentence
 
     # thresholds as the report carries them (Hu & Bentler 1999 cut-offs, common practice)
     th = {"cfi": {"value": 0.95, "direction": ">="}, "tli": {"value": 0.95, "direction": ">="},
           "rmsea": {"value": 0.06, "direction": "<="}, "srmr": {"value": 0.08, "direction": "<="}}
+
+    def sentence(fit: dict) -> str:  # the fit and thresholds read as the page reads them
+        r = Report.from_dict({"measurement_model": {"status": "ok", "fit": fit}, "thresholds": th})
+        return fit_sentence(r.measurement_model.fit, r.thresholds)
+
     good = {"cfi": 0.98, "tli": 0.97, "rmsea": 0.03, "srmr": 0.04}
-    assert fit_sentence(good, th) == "The measurement model fits well by all four usual checks."
-    assert fit_sentence({**good, "rmsea": 0.09}, th) == ("The measurement model fits well by three of the 4 usual "
-                                                         "checks; RMSEA falls short.")
-    assert "misses every one" in fit_sentence({"cfi": 0.5, "tli": 0.5, "rmsea": 0.2, "srmr": 0.2}, th)
-    assert "could not be judged" in fit_sentence({}, th)
+    assert sentence(good) == "The measurement model fits well by all four usual checks."
+    assert sentence({**good, "rmsea": 0.09}) == ("The measurement model fits well by three of the 4 usual "
+                                                "checks; RMSEA falls short.")
+    assert "misses every one" in sentence({"cfi": 0.5, "tli": 0.5, "rmsea": 0.2, "srmr": 0.2})
+    assert "could not be judged" in sentence({})
 
 
 def test_decision_sentences():
     from samesource.output.decision import DIRECTION_NOTE, sentence
+    from samesource.output.report import Report
 
-    def path(obs, pref, ci, key="method_factor_adjusted"):
-        return {"predictor": "workload", "outcome": "engagement", "preferred": key,
-                "estimates": {"observed": {"estimate": obs}, key: {"estimate": pref, "ci": ci}}}
+    def path(obs, pref, ci, key="method_factor_adjusted"):  # a key path as report.json has it, read
+        p = {"predictor": "workload", "outcome": "engagement", "preferred": key,
+             "estimates": {"observed": {"estimate": obs}, key: {"estimate": pref, "ci": ci}}}
+        return Report.from_dict({"paths": [p]}).paths[0]
 
     s, note = sentence(path(-0.01, -0.193, [-0.255, -0.131]))
     assert s.startswith("Workload matters a little for engagement (more workload goes with less engagement): "

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
@@ -10,6 +10,7 @@ import numpy as np
 from samesource.corrections.bounds import PUBLISHED_SHARES, path_bounds, plausible_shares
 from samesource.corrections.paths import METHODS, NOTES, PathEstimator, preference_order, wald
 from samesource.corrections.sensitivity import sensitivity_curves
+from samesource.corrections.source_paths import annotate_sources
 from samesource.engine.builders import path_constructs
 from samesource.engine.fitting import Moments
 from samesource.engine.robust_se import se_ratio
@@ -18,6 +19,7 @@ from samesource.input.missing import MissingPlan
 from samesource.method_checks.assumptions import SE_RATIO_LIMIT, Assumption, estimate_stable, find
 from samesource.options import AnalysisOptions
 from samesource.output.report_json import finite_or_none
+from samesource.results import FitCache, Notice, PathsResult, freeze
 
 # Below this many rows analysed, Wald intervals under-cover (docs/coverage.md: 90-91% at
 # n = 300): unless the user chose, the bootstrap runs by default with this many replicates.
@@ -36,13 +38,15 @@ def bootstrap_replicates(opts: AnalysisOptions, rows: int) -> int:
     return AUTO_BOOTSTRAP if rows < SMALL_SAMPLE else 0
 
 
-def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits: dict[str, Any],
-                  mv: dict, warnings: list[dict], assumptions: list[Assumption], *, executor=None,
-                  progress: Callable[[int, int], None] | None = None) -> list[dict]:
-    """Every key path's estimates, the preferred one and its bounds. Appends the
-    ``estimate_stable`` check to ``assumptions``."""
+def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits: FitCache,
+                  mv: dict, assumptions: Sequence[Assumption], *, executor=None,
+                  progress: Callable[[int, int], None] | None = None) -> PathsResult:
+    """Every key path's estimates, the preferred one and its bounds (report["paths"]), and
+    the ``estimate_stable`` check, which the choice of the preferred estimate weighs with
+    ``assumptions``. The full-sample fits go into ``fits``."""
     if not design.paths:
-        return []
+        return PathsResult(paths=(), notices=())
+    said: list[Notice] = []
     mf = mv["method_factor"]
     use_mf = ("marker" if design.marker else "plain") if mf["usable_as_correction"] else None
     mm = mv.get("measured_method")
@@ -55,15 +59,15 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
     full, extra = estimator.estimate(X, compute_se=True)
     fits.update(extra["fits"])
     estimator.warm = dict(extra["fits"])
-    warnings += [{"code": "paths", "message": n} for n in estimator.notes]
+    said += [Notice("paths", n) for n in estimator.notes]
 
     boot = None
     n_boot = bootstrap_replicates(opts, plan.rows_analyzed)
     if n_boot and opts.bootstrap is None:
-        warnings.append({"code": "bootstrap_default",
-                         "message": f"With {plan.rows_analyzed} rows analysed (under {SMALL_SAMPLE}), analytic "
-                                    f"intervals are too narrow; {n_boot} bootstrap replicates were run by default "
-                                    "(set the bootstrap option to choose another number, or 0 for none)."})
+        said.append(Notice("bootstrap_default",
+                           f"With {plan.rows_analyzed} rows analysed (under {SMALL_SAMPLE}), analytic "
+                           f"intervals are too narrow; {n_boot} bootstrap replicates were run by default "
+                           "(set the bootstrap option to choose another number, or 0 for none)."))
     if n_boot:
         from samesource.corrections.bootstrap import bootstrap
         from samesource.executor import default_executor
@@ -72,7 +76,7 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
         boot = bootstrap(estimator, X, n_boot=n_boot, seed=opts.seed, confidence=opts.confidence,
                          executor=ex, progress=progress, estimate=estimator.vector(full),
                          names=[f"{m} estimate of {o} on {x}" for m, o, x in estimator.keys])
-        warnings += [{"code": "bootstrap", "message": n} for n in boot.notes]
+        said += [Notice("bootstrap", n) for n in boot.notes]
 
     # sensitivity on the latent model (under FIML: on the EM covariance matrix, two-stage ML)
     latent = next(f for name, f in extra["fits"].items() if name == "latent")
@@ -124,7 +128,8 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
             out.append({"outcome": p.outcome, "predictor": x, "predictors": list(p.predictors),
                         "estimates": estimates, "sensitivity": sens[(p.outcome, x)]})
 
-    assumptions.append(estimate_stable(out))
+    stability = estimate_stable(out)
+    assumptions = [*assumptions, stability]
     shares = plausible_shares(mv, assumptions)
     for path in out:
         preferred, reason, rests_on = _preferred(path["estimates"], use_mf, assumptions)
@@ -139,7 +144,9 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
         path["bounds_wide"] = b.wide
         path["cannot_pin_down"] = b.cannot_pin_down
         path["trust"] = _trust(path, assumptions, b)
-    return out
+    if design.sources:  # where each path's ends come from (measurement/corrections/source_paths.py)
+        out = annotate_sources(design, out)
+    return PathsResult(paths=freeze(out), notices=tuple(said), stability=stability)
 
 
 def _reduced(estimator: PathEstimator) -> Design:

@@ -9,6 +9,9 @@ from the same templates (:mod:`samesource.output.report_html`).
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
+from samesource.output.report import Report
 from samesource.output.report_html import (
     decisions_of,
     environment,
@@ -22,20 +25,19 @@ from samesource.output.report_html import (
 BRIEF_CAUTIONS = 3
 
 
-def render_brief(report: dict, *, when: str | None = None) -> str:
+def render_brief(report: Report | Mapping, *, when: str | None = None) -> str:
     """brief.html as a string; ``when``: the date the analysis was made, printed at the top."""
-    d = report.get("data") or {}
-    cautions = [str(c) for c in report.get("cautions") or [] if c]
-    v = (report.get("method_variance") or {}).get("verdict")
-    verdict = {"level": str(v.get("level") or "not assessed"), "summary": str(v.get("summary") or "")} \
-        if isinstance(v, dict) else None
-    tool = report.get("tool") or {}
+    r = Report.of(report)
+    d = r.data
+    cautions = [str(c) for c in r.cautions if c]
+    v = r.method_variance.verdict
+    verdict = {"level": str(v.level or "not assessed"), "summary": str(v.summary or "")} if v.given else None
     return environment().get_template("brief.html.j2").render(
-        title=f"Survey results in brief: {d.get('file') or 'survey data'}", css=stylesheet("brief.css"),
-        file=d.get("file") or "Survey data", facts=header_facts(report, when), review=review_reasons(report),
-        decisions=decisions_of(report), verdict=verdict, cautions=cautions[:BRIEF_CAUTIONS],
-        more_cautions=max(len(cautions) - BRIEF_CAUTIONS, 0), sha256=d.get("sha256") or "\u2014",
-        footer=f"Made by {tool.get('name') or 'samesource'} {tool.get('version') or ''}; every number is "
+        title=f"Survey results in brief: {d.file or 'survey data'}", css=stylesheet("brief.css"),
+        file=d.file or "Survey data", facts=header_facts(r, when), review=review_reasons(r),
+        decisions=decisions_of(r), verdict=verdict, cautions=cautions[:BRIEF_CAUTIONS],
+        more_cautions=max(len(cautions) - BRIEF_CAUTIONS, 0), sha256=d.sha256 or "\u2014",
+        footer=f"Made by {r.tool.name or 'samesource'} {r.tool.version or ''}; every number is "
                f"from report.json; the evidence is in report.html.") + "\n"
 
 

@@ -11,6 +11,8 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
+from samesource.output.report import KeyPath
+
 MINUS = "\u2212"
 
 # Words for the size of a standardized association: Cohen's (1988) conventions for r (.10
@@ -81,10 +83,10 @@ class Decision:
     preferred: str | None
 
 
-def trust_of(p: dict) -> Trust:
-    t = p.get("trust") if isinstance(p.get("trust"), dict) else {}
-    level = t.get("level") if t.get("level") in TRUST_LABELS else None
-    reasons = [str(r) for r in t.get("reasons") or [] if r]
+def trust_of(p: KeyPath) -> Trust:
+    t = p.trust
+    level = t.level if t is not None and t.level in TRUST_LABELS else None
+    reasons = [str(r) for r in (t.reasons if t is not None else ()) if r]
     if level is None:
         return Trust(None, "not rated", 0, reasons)
     return Trust(level, TRUST_LABELS[level], TRUST_NOTCHES[level], reasons)
@@ -98,25 +100,24 @@ def _cap(s: str) -> str:
     return s[:1].upper() + s[1:]
 
 
-def sentence(p: dict) -> tuple[str, str | None]:
+def sentence(p: KeyPath) -> tuple[str, str | None]:
     """The one sentence for a path, and the note on the direction of method bias when it applies."""
-    x, y = str(p.get("predictor") or "the predictor"), str(p.get("outcome") or "the outcome")
-    est = p.get("estimates") or {}
-    key = p.get("preferred")
-    pref = est.get(key) if key else None
-    obs = est.get("observed") or {}
-    pr, o = (pref or {}).get("estimate"), obs.get("estimate")
+    x, y = str(p.predictor or "the predictor"), str(p.outcome or "the outcome")
+    key = p.preferred
+    pref = p.preferred_estimate
+    obs = p.estimates.get("observed")
+    pr, o = (pref.estimate if pref else None), (obs.estimate if obs else None)
     if not finite(pr):
         return f"No estimate could be computed for {x} and {y}, so this survey gives no answer here.", None
     corrected = key not in ("observed", "latent", "disattenuated", "disattenuated_omega", "errors_in_variables")
     removed = ("once the shared answering style and measurement error are removed" if corrected else
                "once measurement error is removed (a shared answering style could not be removed and may remain)"
                if key != "observed" else "taken at face value")
-    if (p.get("sources") or {}).get("free_of_same_rater_bias"):  # measurement/corrections/source_paths.py
+    if p.sources is not None and p.sources.free_of_same_rater_bias:  # measurement/corrections/source_paths.py
         removed = ("with measurement error removed and no shared rater behind it (predictor and outcome "
                    "come from different sources)" if key != "observed" else
                    "taken at face value, with no shared rater behind it (different sources)")
-    ci = ci_pair((pref or {}).get("ci"))
+    ci = ci_pair(pref.ci if pref else None)
     if ci is not None and ci[0] <= 0 <= ci[1]:
         head = f"{_cap(x)} may not matter for {y}: about {num(pr, 2)} on a {MINUS}1 to 1 scale {removed}, and no link at all is also consistent with the data"
     else:
@@ -136,32 +137,31 @@ def sentence(p: dict) -> tuple[str, str | None]:
     return head + tail + ".", note
 
 
-def decision(p: dict, *, labels: dict[str, str] | None = None) -> Decision:
+def decision(p: KeyPath, *, labels: dict[str, str] | None = None) -> Decision:
     labels = labels or {}
-    est = p.get("estimates") or {}
-    key = p.get("preferred")
-    pref = est.get(key) if key else None
+    key = p.preferred
+    pref = p.preferred_estimate
     s, note = sentence(p)
-    e = (pref or {}).get("estimate")
-    ci = ci_pair((pref or {}).get("ci"))
+    e = pref.estimate if pref else None
+    ci = ci_pair(pref.ci if pref else None)
     text = num(e) + (f" [{num(ci[0])}, {num(ci[1])}]" if ci else "") if finite(e) else "\u2014"
-    b = p.get("bounds") if isinstance(p.get("bounds"), dict) else None
+    b = p.bounds
     bounds_text = None
-    if b and finite(b.get("low")) and finite(b.get("high")):
-        share = ci_pair(b.get("plausible_share"))
+    if b is not None and finite(b.low) and finite(b.high):
+        share = ci_pair(b.plausible_share)
         src = {"estimated": "as estimated here", "published": "as published reviews report"}.get(
-            str(b.get("share_source")), "")
+            str(b.share_source), "")
         share_txt = (f" ({num(share[0] * 100, 0)}% to {num(share[1] * 100, 0)}% of each answer's variance"
                      f"{', ' + src if src else ''})") if share else ""
         bounds_text = (f"Allowing for any plausible amount of shared method{share_txt}: between "
-                       f"{num(b['low'], 2)} and {num(b['high'], 2)}.")
+                       f"{num(b.low, 2)} and {num(b.high, 2)}.")
     cannot = None
-    if p.get("bounds_wide"):
-        why = str(p.get("cannot_pin_down") or "").strip()
+    if p.bounds_wide:
+        why = str(p.cannot_pin_down or "").strip()
         cannot = "This survey cannot pin the answer down" + (f": {why}" if why else ".")
         if not cannot.endswith("."):
             cannot += "."
-    return Decision(title=f"{p.get('predictor')} \u2192 {p.get('outcome')}", sentence=s, direction_note=note,
+    return Decision(title=f"{p.predictor} \u2192 {p.outcome}", sentence=s, direction_note=note,
                     trust=trust_of(p), estimate_text=text, estimate_label=labels.get(str(key), str(key or "")),
                     bounds_text=bounds_text, cannot_pin_down=cannot, preferred=key)
 

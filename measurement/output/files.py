@@ -11,8 +11,8 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 from samesource.output.brief import render_brief
+from samesource.output.report import Report
 from samesource.output.report_html import render_html
-from samesource.output.report_json import dumps
 from samesource.output.tables import report_tables, tables_csv, tables_xlsx
 
 TABLES_FOLDER = "tables"
@@ -23,14 +23,15 @@ def made_at() -> str:
     return datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
 
 
-def report_files(report: dict, *, when: str | None = None) -> dict[str, bytes]:
+def report_files(report: Report | Mapping, *, when: str | None = None) -> dict[str, bytes]:
     """Relative file name -> content: report.json, report.html, brief.html, tables/NAME.csv
     (one per table of :func:`~samesource.output.tables.report_tables`) and tables.xlsx."""
     when = when or made_at()
-    files = {"report.json": dumps(report).encode("utf-8"),
-             "report.html": render_html(report, when=when).encode("utf-8"),
-             "brief.html": render_brief(report, when=when).encode("utf-8")}
-    tables = report_tables(report)
+    r = Report.of(report)
+    files = {"report.json": r.to_json().encode("utf-8"),
+             "report.html": render_html(r, when=when).encode("utf-8"),
+             "brief.html": render_brief(r, when=when).encode("utf-8")}
+    tables = report_tables(r)
     for name, text in tables_csv(tables).items():
         files[f"{TABLES_FOLDER}/{name}"] = text.encode("utf-8")
     files["tables.xlsx"] = tables_xlsx(tables)

@@ -7,9 +7,12 @@ from the same autoescaped templates (:mod:`samesource.output.report_html`).
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 from markupsafe import Markup
 
 from samesource.output.decision import num
+from samesource.output.report import Report
 from samesource.output.report_html import (
     decisions_of,
     environment,
@@ -20,16 +23,16 @@ from samesource.output.report_html import (
 from samesource.output.tables import report_tables
 
 
-def render_notebook(report: dict) -> str:
+def render_notebook(report: Report | Mapping) -> str:
     """An HTML fragment (no page around it) for a notebook cell's output."""
-    d = report.get("data") or {}
-    verdict = (report.get("method_variance") or {}).get("verdict") or None
-    scales = [{"name": name, "role": c.get("role") or "", "items": len(c.get("items") or []),
-               "alpha": num(c.get("alpha"), 2), "omega": num(c.get("omega"), 2),
-               "cr": num(c.get("composite_reliability"), 2), "ave": num(c.get("ave"), 2)}
-              for name, c in (report.get("constructs") or {}).items()]
+    r = Report.of(report)
+    verdict = r.method_variance.verdict
+    scales = [{"name": name, "role": c.role or "", "items": len(c.items),
+               "alpha": num(c.alpha, 2), "omega": num(c.omega, 2),
+               "cr": num(c.composite_reliability, 2), "ave": num(c.ave, 2)}
+              for name, c in r.constructs.items()]
     return environment().get_template("notebook.html.j2").render(
-        css=Markup(stylesheet("notebook.css")), file=d.get("file") or "Survey data",
-        facts=header_facts(report), review=review_reasons(report), decisions=decisions_of(report),
-        verdict=verdict, scales=scales, cautions=list(report.get("cautions") or []),
-        tables=list(report_tables(report)))
+        css=Markup(stylesheet("notebook.css")), file=r.data.file or "Survey data",
+        facts=header_facts(r), review=review_reasons(r), decisions=decisions_of(r),
+        verdict=verdict if verdict.given else None, scales=scales, cautions=list(r.cautions),
+        tables=list(report_tables(r)))

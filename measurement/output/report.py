@@ -18,53 +18,121 @@ from typing import Any
 
 import pandas as pd
 
-from samesource.output.files import report_files, write_files
+from samesource.corrections.paths import LABELS
 from samesource.output.report_json import dumps
-from samesource.output.tables import method_label, report_tables
+from samesource.results import Notice, freeze
 
 Pair = tuple[str, str]
 
 
-def _freeze(v: Any) -> Any:
-    """Read-only view of a report value: dicts become mappings that refuse writes, lists tuples."""
-    if isinstance(v, dict):
-        return MappingProxyType({k: _freeze(x) for k, x in v.items()})
-    if isinstance(v, list | tuple):
-        return tuple(_freeze(x) for x in v)
-    return v
-
-
-def _pick(cls, d: Mapping | None, **given):
-    """An instance of dataclass ``cls`` from the keys of ``d`` it names (absent keys: None)."""
-    d = d or {}
-    values = {f.name: _freeze(d.get(f.name)) for f in fields(cls) if f.name not in given}
+def _pick(cls, d: Any, **given):
+    """An instance of dataclass ``cls`` from the keys of ``d`` it names (absent keys, or ``d``
+    not a mapping at all: None). Reading is lenient, as the pages are: a stored report from an
+    older version, or one edited by hand, still reads."""
+    d = d if isinstance(d, Mapping) else {}
+    values = {f.name: freeze(d.get(f.name)) for f in fields(cls) if f.name not in given}
     return cls(**values, **given)
 
 
-def _pairs(d: Mapping | None) -> Mapping[Pair, Any]:
+def _maybe(cls, d: Any, **given):
+    """``_pick`` for a section that may be absent (None, empty or not a mapping: None)."""
+    return _pick(cls, d, **given) if isinstance(d, Mapping) and d else None
+
+
+def _mappings(v: Any) -> list[Mapping]:
+    """The entries of a report.json list that are objects (others are skipped)."""
+    return [x for x in v if isinstance(x, Mapping)] if isinstance(v, list | tuple) else []
+
+
+def _texts(v: Any) -> tuple:
+    return tuple(v) if isinstance(v, list | tuple) else ()
+
+
+def _pairs(d: Mapping | None, parse=freeze) -> Mapping[Pair, Any]:
     """report.json's "A|B" keys as (A, B) tuples, in design order."""
     out = {}
-    for k, v in (d or {}).items():
-        a, _, b = k.partition("|")
-        out[(a, b)] = _freeze(v)
+    for k, v in (d.items() if isinstance(d, Mapping) else ()):
+        a, _, b = str(k).partition("|")
+        out[(a, b)] = parse(v)
     return MappingProxyType(out)
+
+
+def _by_name(d: Any, parse) -> Mapping[str, Any]:
+    return MappingProxyType({k: parse(v) for k, v in (d.items() if isinstance(d, Mapping) else ())})
+
+
+@dataclass(frozen=True)
+class Threshold:
+    """A rule of thumb the report judges a value by: report["thresholds"][name]."""
+
+    value: float | None
+    direction: str | None
+    source: str | None
+
+
+@dataclass(frozen=True)
+class Tool:
+    """What made the report: report["tool"]."""
+
+    name: str | None
+    version: str | None
 
 
 @dataclass(frozen=True)
 class DataSummary:
-    """What was read: report["data"]."""
+    """What was read: report["data"] (``sources``: the second sources' joins, as report.json has them)."""
 
     file: str | None
     format: str | None
+    encoding: str | None
+    delimiter: str | None
+    decimal: str | None
+    sheet: Any
     sha256: str | None
     rows: int | None
     rows_analyzed: int | None
     items: int | None
     excluded_rows: int | None
+    excluded_by_reason: Mapping | None
     missing_cells: int | None
     missing_share: float | None
     response_scale: Mapping | None
     missing_handling: Mapping | None
+    sources: Mapping | None
+
+
+@dataclass(frozen=True)
+class FlaggedRow:
+    """A respondent the screen flagged for review (``row``: the file's row number)."""
+
+    row: int | None
+    reasons: tuple[str, ...] | None
+
+
+@dataclass(frozen=True)
+class ScreeningCheck:
+    """One screening rule and how many rows it flagged."""
+
+    rule: str | None
+    flagged: int | None
+
+
+@dataclass(frozen=True)
+class Screening:
+    """The careless-responding and outlier screen: report["screening"]."""
+
+    flagged_rows: tuple[FlaggedRow, ...]
+    n_flagged: int | None
+    dropped: bool | None
+    checks: Mapping[str, ScreeningCheck]
+    distribution: Mapping | None
+    note: str | None
+
+
+def _screening(sc: Any) -> Screening:
+    sc = sc if isinstance(sc, Mapping) else {}
+    return _pick(Screening, sc, flagged_rows=tuple(_pick(FlaggedRow, f) for f in _mappings(sc.get("flagged_rows"))),
+                 checks=_by_name(sc.get("checks"), lambda v: _pick(ScreeningCheck, v)))
 
 
 @dataclass(frozen=True)
@@ -113,6 +181,19 @@ class Fit:
     loglik: float | None
 
 
+NO_FIT = Fit(*(None,) * 12)  # a model without fit indices
+
+
+@dataclass(frozen=True)
+class FornellLarcker:
+    """The Fornell-Larcker comparison of two constructs: squared correlation against each AVE."""
+
+    r_squared: float | None
+    ave_a: float | None
+    ave_b: float | None
+    holds: bool | None
+
+
 @dataclass(frozen=True)
 class MeasurementModel:
     """The confirmatory factor model of every scale: report["measurement_model"]."""
@@ -123,7 +204,8 @@ class MeasurementModel:
     factor_correlations: Mapping[Pair, float | None]
     htmt: Mapping[Pair, float | None]
     htmt2: Mapping[Pair, float | None]
-    fornell_larcker: Mapping[Pair, Mapping]
+    htmt_variant: str | None
+    fornell_larcker: Mapping[Pair, FornellLarcker | None]
     warnings: tuple
 
 
@@ -138,14 +220,106 @@ class Verdict:
     raised_by: Any
     vouching_checks: Any
 
+    @property
+    def given(self) -> bool:
+        """Whether report.json has a verdict (one read from nothing has every field empty)."""
+        return any(getattr(self, f.name) not in (None, ()) for f in fields(self))
+
+
+@dataclass(frozen=True)
+class ModelTest:
+    """A chi-square difference test of two nested models in a method check."""
+
+    chi2_diff: float | None
+    df_diff: int | None
+    p: float | None
+    general: str | None
+    restricted: str | None
+    question: str | None
+
+
+@dataclass(frozen=True)
+class ModelSummary:
+    """One model a method check fitted: what it assumes, its status and its fit."""
+
+    description: str | None
+    status: str | None
+    fit: Fit | None
+
+
+@dataclass(frozen=True)
+class MethodCheck:
+    """One common-method check (report["method_variance"][key]): every field the report's
+    tables and pages read, each check filling those it has (None elsewhere), and ``section``,
+    the check's whole section of report.json (read-only)."""
+
+    flag: Any
+    rule: str | None
+    note: str | None
+    status: str | None
+    method_share: Any                 # a share (method factor, measured method) or one per construct (CFA marker)
+    method_share_ci: tuple | None
+    method_share_overall: float | None
+    method_share_by_construct: Mapping | None
+    usable_as_correction: bool | None
+    identified_by: str | None
+    identified: bool | None
+    proper: bool | None
+    loadings: Any
+    fit: Fit | None
+    models: Mapping[str, ModelSummary | None]
+    warnings: tuple | None
+    method_construct: str | None
+    marker: str | None
+    n: int | None
+    marker_correlations: Mapping | None
+    pairs: Mapping | None             # the marker adjustment per pair, as report.json has it
+    sensitivity: tuple | None         # the marker adjustment under each choice of r_M, as report.json has it
+    r_m: float | None
+    r_m_p: float | None
+    r_m_rule: str | None
+    chosen: str | None
+    reliability_split: Mapping | None
+    method: str | None
+    first_factor_share: float | None
+    eigenvalues: tuple | None
+    factors_eigen_gt_1: int | None
+    single_factor_fit: Fit | None
+    vs_measurement_model: ModelTest | None
+    threshold: float | None
+    values: Mapping | None
+    tests: Mapping[str, ModelTest]
+    section: Mapping
+
+
+def _check(sec: Any) -> MethodCheck | None:
+    if not isinstance(sec, Mapping):
+        return None
+    single = sec.get("single_factor_fit")
+    return _pick(MethodCheck, sec, tests=_by_name(sec.get("tests"), lambda t: _maybe(ModelTest, t)),
+                 fit=_maybe(Fit, sec.get("fit")),
+                 models=_by_name(sec.get("models"), lambda m: _maybe(ModelSummary, m, fit=_maybe(
+                     Fit, m.get("fit")) if isinstance(m, Mapping) else None)),
+                 single_factor_fit=_maybe(Fit, single.get("fit")) if isinstance(single, Mapping) else None,
+                 vs_measurement_model=_maybe(ModelTest, sec.get("vs_measurement_model")),
+                 section=freeze(sec))
+
+
+NO_CHECK = _pick(MethodCheck, {}, models=MappingProxyType({}), tests=MappingProxyType({}),
+                 section=MappingProxyType({}))  # a check not run
+
 
 @dataclass(frozen=True)
 class MethodVariance:
-    """Every common-method check (``checks``: the check's section of report.json, or None
-    when the design does not allow it) and the verdict."""
+    """Every common-method check (``checks``: by report.json's key; None when the design
+    does not allow it) and the verdict."""
 
     verdict: Verdict
-    checks: Mapping[str, Mapping | None]
+    checks: Mapping[str, MethodCheck | None]
+
+    def check(self, key: str) -> MethodCheck | None:
+        """The check under ``key`` ("marker", "method_factor", ...), None when absent."""
+        return self.checks.get(key)
 
 
 @dataclass(frozen=True)
@@ -164,6 +338,20 @@ class AssumptionCheck:
 
 
 @dataclass(frozen=True)
+class BootstrapInterval:
+    """One estimate's bootstrap: replicates, failures, SE, percentile and BCa intervals."""
+
+    n_boot: int | None
+    n_failed: int | None
+    seed: int | None
+    se: float | None
+    ci_percentile: tuple[float | None, float | None] | None
+    ci_bca: tuple[float | None, float | None] | None
+    bias_correction: float | None
+    acceleration: float | None
+
+
+@dataclass(frozen=True)
 class Estimate:
     """One estimate of a key path by one method (``label`` is the method in words)."""
 
@@ -176,7 +364,63 @@ class Estimate:
     status: str | None
     note: str | None
     ci_method: str | None
-    bootstrap: Mapping | None
+    se_method: str | None
+    bootstrap: BootstrapInterval | None
+
+
+@dataclass(frozen=True)
+class SensitivityPoint:
+    """The path at one assumed method share."""
+
+    method_share: float | None
+    estimate: float | None
+    ci: tuple[float | None, float | None] | None
+
+
+@dataclass(frozen=True)
+class Sensitivity:
+    """The path as a function of an assumed method share, and its break-even shares."""
+
+    curve: tuple[SensitivityPoint, ...]
+    break_even_method_share: float | None
+    ci_covers_zero_at: float | None
+    estimated_method_share: float | None
+    model_holds_up_to: float | None
+    stopped_at: Any
+    meaning: str | None
+    marks: Mapping | None
+
+
+@dataclass(frozen=True)
+class Bounds:
+    """The path's range over the plausible method shares."""
+
+    low: float | None
+    high: float | None
+    basis: str | None
+    plausible_share: tuple[float, float] | None
+    share_source: str | None
+    truncated_at: float | None
+
+
+@dataclass(frozen=True)
+class Trust:
+    """How far the headline number can be trusted (high, medium, low) and why."""
+
+    level: str | None
+    reasons: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class PathOrigin:
+    """Where a key path's two ends come from (second sources)."""
+
+    outcome: str | None
+    predictor: str | None
+    kind: str | None
+    free_of_same_rater_bias: bool | None
+    separated_in_time: bool | None
+    note: str | None
 
 
 @dataclass(frozen=True)
@@ -193,10 +437,14 @@ class KeyPath:
     preferred: str | None
     preferred_reason: str | None
     preferred_rests_on: Any
-    trust: Mapping | None
-    bounds: Mapping | None
+    trust: Trust | None
+    bounds: Bounds | None
     cannot_pin_down: Any
-    sensitivity: Mapping | None
+    sensitivity: Sensitivity | None
+    sources: PathOrigin | None
+    cross_source_check: Mapping | None
+    same_source_counterpart: Mapping | None
+    bounds_wide: bool | None
 
     @property
     def preferred_estimate(self) -> Estimate | None:
@@ -204,32 +452,179 @@ class KeyPath:
         return self.estimates.get(self.preferred) if self.preferred else None
 
 
-def _estimate(method: str, e: Mapping | None) -> Estimate | None:
-    return None if e is None else _pick(Estimate, e, method=method, label=method_label(method))
+def _estimate(method: str, e: Any) -> Estimate | None:
+    if not isinstance(e, Mapping):
+        return None
+    return _pick(Estimate, e, method=method, label=method_label(method),
+                 bootstrap=_maybe(BootstrapInterval, e.get("bootstrap")))
+
+
+NO_SENSITIVITY = Sensitivity((), *(None,) * 7)  # a path without a sensitivity curve
+
+
+def _sensitivity(s: Any) -> Sensitivity | None:
+    if not isinstance(s, Mapping):
+        return None
+    return _pick(Sensitivity, s, curve=tuple(_pick(SensitivityPoint, pt) for pt in _mappings(s.get("curve"))))
 
 
 def _path(p: Mapping) -> KeyPath:
-    ests = MappingProxyType({m: _estimate(m, e) for m, e in (p.get("estimates") or {}).items()})
-    return _pick(KeyPath, p, estimates=ests)
+    ests = _by_name(p.get("estimates"), lambda e: e)
+    ests = MappingProxyType({m: _estimate(m, e) for m, e in ests.items()})
+    trust = p.get("trust")
+    return _pick(KeyPath, p, estimates=ests, sensitivity=_sensitivity(p.get("sensitivity")),
+                 bounds=_maybe(Bounds, p.get("bounds")), sources=_maybe(PathOrigin, p.get("sources")),
+                 trust=_maybe(Trust, trust, reasons=_texts(trust.get("reasons"))) if isinstance(trust, Mapping)
+                 else None)
 
 
-def _construct(name: str, c: Mapping) -> Construct:
-    stats = MappingProxyType({i: _pick(ItemStats, s) for i, s in (c.get("item_stats") or {}).items()})
-    return _pick(Construct, c, name=name, item_stats=stats)
+def _construct(name: str, c: Any) -> Construct:
+    c = c if isinstance(c, Mapping) else {}
+    return _pick(Construct, c, name=name, items=_texts(c.get("items")), reverse=_texts(c.get("reverse")),
+                 item_stats=_by_name(c.get("item_stats"), lambda s: _pick(ItemStats, s)))
 
 
-def _measurement_model(mm: Mapping | None) -> MeasurementModel | None:
-    if not mm:
+def _measurement_model(mm: Any) -> MeasurementModel | None:
+    if not isinstance(mm, Mapping) or not mm:
         return None
-    return _pick(MeasurementModel, mm, fit=_pick(Fit, mm["fit"]) if mm.get("fit") else None,
+    return _pick(MeasurementModel, mm, fit=_maybe(Fit, mm.get("fit")),
                  factor_correlations=_pairs(mm.get("factor_correlations")), htmt=_pairs(mm.get("htmt")),
-                 htmt2=_pairs(mm.get("htmt2")), fornell_larcker=_pairs(mm.get("fornell_larcker")))
+                 htmt2=_pairs(mm.get("htmt2")),
+                 fornell_larcker=_pairs(mm.get("fornell_larcker"), lambda v: _maybe(FornellLarcker, v)))
 
 
-def _method_variance(mv: Mapping | None) -> MethodVariance:
-    mv = mv or {}
-    checks = MappingProxyType({k: _freeze(v) for k, v in mv.items() if k != "verdict"})
+def _method_variance(mv: Any) -> MethodVariance:
+    mv = mv if isinstance(mv, Mapping) else {}
+    checks = MappingProxyType({k: _check(v) for k, v in mv.items() if k != "verdict"})
     return MethodVariance(verdict=_pick(Verdict, mv.get("verdict")), checks=checks)
+
+
+@dataclass(frozen=True)
+class CheckScenario:
+    """One scenario of the correction check: surveys simulated like the client's, or a departure."""
+
+    id: str | None
+    title: str | None
+    description: str | None
+    run: bool | None
+    why_not: str | None
+    failed_replicates: int | None
+    first_failure: str | None
+    verdicts: Mapping | None
+
+
+@dataclass(frozen=True)
+class CheckPath:
+    """The correction check of one key path: the truth simulated, which estimate to lean on, and
+    per scenario and estimate the bias, RMSE, coverage and count (``scenarios``, as report.json
+    has them: ``correction_check.dependable`` reads them)."""
+
+    outcome: str | None
+    predictor: str | None
+    truth: float | None
+    lean_on: str | None
+    lean_on_reason: str | None
+    lean_on_dependable_in: tuple | None
+    scenarios: Mapping[str, Mapping[str, Mapping | None]]
+
+
+@dataclass(frozen=True)
+class CorrectionCheck:
+    """How well each correction works on surveys simulated like the client's: report["correction_check"]."""
+
+    status: str | None
+    why_not: str | None
+    replicates: int | None
+    population: Mapping | None
+    scenarios: tuple[CheckScenario, ...]
+    paths: tuple[CheckPath, ...]
+    rules: Mapping | None
+    intervals: str | None
+    seed: int | None
+    notes: tuple | None
+
+    def path(self, outcome: str, predictor: str) -> CheckPath | None:
+        """The check of one key path, None when it was not checked."""
+        return next((p for p in self.paths if (p.outcome, p.predictor) == (outcome, predictor)), None)
+
+
+def _correction_check(c: Any) -> CorrectionCheck | None:
+    if not isinstance(c, Mapping):
+        return None
+    return _pick(CorrectionCheck, c,
+                 scenarios=tuple(_pick(CheckScenario, s) for s in _mappings(c.get("scenarios"))),
+                 paths=tuple(_pick(CheckPath, p, scenarios=_by_name(p.get("scenarios"), lambda per: _by_name(
+                     per, lambda v: freeze(v) if isinstance(v, Mapping) else None))) for p in _mappings(c.get("paths"))))
+
+
+@dataclass(frozen=True)
+class PowerOption:
+    """One design for the next survey and the power it gives to find a shared method."""
+
+    what: str | None
+    df: int | None
+    power_now: float | None
+    smallest_n: int | None
+
+
+@dataclass(frozen=True)
+class NextTime:
+    """The planning advice: report["next_time"]."""
+
+    status: str | None
+    why_not: str | None
+    advice: tuple[str, ...]
+    options: tuple[PowerOption, ...]
+    rows_now: int | None
+    power: float | None
+    planned_share: float | None
+    alpha: float | None
+    method: str | None
+    basis: str | None
+
+
+def _next_time(nt: Any) -> NextTime | None:
+    if not isinstance(nt, Mapping):
+        return None
+    return _pick(NextTime, nt, advice=_texts(nt.get("advice")),
+                 options=tuple(_pick(PowerOption, o) for o in _mappings(nt.get("options"))))
+
+
+@dataclass(frozen=True)
+class Teams:
+    """Teams: ICC, agreement, within/between and split-team paths, and the group scores of
+    groups of at least ``min_group_size`` (``visible_groups``); smaller groups are never shown.
+    ``constructs``, ``paths`` and ``group_scores`` are as report.json has them (the tables
+    flatten them whole)."""
+
+    group_column: str | None
+    groups: int | None
+    groups_reported: int | None
+    groups_withheld: int | None
+    min_group_size: int | None
+    respondents_without_group: int | None
+    constructs: Mapping[str, Mapping | None]
+    paths: tuple[Mapping, ...]
+    group_scores: tuple[Mapping, ...]
+    meaning: Any
+    notes: tuple[str, ...]
+
+    @property
+    def visible_groups(self) -> tuple[Mapping, ...]:
+        """Group scores of groups with at least min_group_size respondents (a group of
+        unknown size is not shown either)."""
+        k = self.min_group_size
+        if k is None:
+            return ()
+        return tuple(g for g in self.group_scores if g.get("n") is not None and g["n"] >= k)
+
+
+def _teams(t: Any) -> Teams | None:
+    if not isinstance(t, Mapping):
+        return None
+    return _pick(Teams, t, constructs=_by_name(t.get("constructs"), freeze),
+                 paths=freeze(_mappings(t.get("paths"))), group_scores=freeze(_mappings(t.get("group_scores"))),
+                 notes=_texts(t.get("notes")))
 
 
 @dataclass(frozen=True)
@@ -252,12 +647,18 @@ class Report:
     method_variance: MethodVariance
     assumptions: tuple[AssumptionCheck, ...]
     paths: tuple[KeyPath, ...]
-    teams: Mapping | None
-    screening: Mapping | None
+    teams: Teams | None
+    screening: Screening
     review_needed: bool
     review_reasons: tuple
     cautions: tuple[str, ...]
-    warnings: tuple
+    warnings: tuple[Notice, ...]
+    tool: Tool
+    thresholds: Mapping[str, Threshold]
+    options: Mapping                  # the options the analysis ran with, as report.json has them
+    schema: str | None                # report.json's schema ("samesource.report/1")
+    correction_check: CorrectionCheck | None  # measurement/corrections/correction_check.py
+    next_time: NextTime | None                # the planning advice (measurement/method_checks/planning.py)
     fits: Mapping[str, Any] = field(repr=False)
     _record: dict = field(repr=False)  # report.json's content, as analyze made it
 
@@ -267,15 +668,29 @@ class Report:
         record = copy.deepcopy(report)
         return cls(
             data=_pick(DataSummary, record.get("data")),
-            constructs=MappingProxyType({n: _construct(n, c) for n, c in (record.get("constructs") or {}).items()}),
+            constructs=MappingProxyType({n: _construct(n, c) for n, c in _by_name(record.get("constructs"),
+                                                                                   lambda c: c).items()}),
             measurement_model=_measurement_model(record.get("measurement_model")),
             method_variance=_method_variance(record.get("method_variance")),
-            assumptions=tuple(_pick(AssumptionCheck, a) for a in record.get("assumptions") or []),
-            paths=tuple(_path(p) for p in record.get("paths") or []),
-            teams=_freeze(record.get("teams")), screening=_freeze(record.get("screening")),
-            review_needed=bool(record.get("review_needed")), review_reasons=_freeze(record.get("review_reasons") or []),
-            cautions=tuple(record.get("cautions") or []), warnings=_freeze(record.get("warnings") or []),
+            assumptions=tuple(_pick(AssumptionCheck, a) for a in _mappings(record.get("assumptions"))),
+            paths=tuple(_path(p) for p in _mappings(record.get("paths"))),
+            teams=_teams(record.get("teams")), screening=_screening(record.get("screening")),
+            review_needed=bool(record.get("review_needed")), review_reasons=freeze(record.get("review_reasons") or []),
+            cautions=_texts(record.get("cautions")),
+            warnings=tuple(_pick(Notice, w) for w in _mappings(record.get("warnings"))),
+            tool=_pick(Tool, record.get("tool")),
+            thresholds=_by_name(record.get("thresholds"), lambda t: _pick(Threshold, t)),
+            options=freeze(record.get("options")) if isinstance(record.get("options"), Mapping) else MappingProxyType({}),
+            schema=record.get("schema"),
+            correction_check=_correction_check(record.get("correction_check")),
+            next_time=_next_time(record.get("next_time")),
             fits=MappingProxyType(dict(fits or {})), _record=record)
+
+    @classmethod
+    def of(cls, report: Report | Mapping) -> Report:
+        """``report`` itself, or a Report read from report.json's content (what the output
+        modules take: the service renders stored reports)."""
+        return report if isinstance(report, Report) else cls.from_dict(dict(report))
 
     @classmethod
     def load(cls, path: str | Path) -> Report:
@@ -283,6 +698,13 @@ class Report:
         return cls.from_dict(json.loads(Path(path).read_text(encoding="utf-8")))
 
     # -- report.json ---------------------------------------------------------------------------
+    @property
+    def record(self) -> dict:
+        """report.json's content this report was read from, shared (not a copy): the output
+        modules read it where they do not read the typed sections yet; change nothing in it
+        (:meth:`to_dict` gives a copy)."""
+        return self._record
+
     def to_dict(self) -> dict:
         """report.json's content (a fresh copy: changing it changes nothing here)."""
         return copy.deepcopy(self._record)
@@ -295,11 +717,15 @@ class Report:
     @property
     def table_names(self) -> tuple[str, ...]:
         """The tables of :meth:`to_frame`: the names of the files in tables/ (without .csv)."""
-        return tuple(report_tables(self._record))
+        from samesource.output.tables import report_tables
+
+        return tuple(report_tables(self))
 
     def to_frame(self, name: str) -> pd.DataFrame:
         """One table in long (tidy) form, the same rows as tables/NAME.csv and tables.xlsx."""
-        tables = report_tables(self._record)
+        from samesource.output.tables import report_tables
+
+        tables = report_tables(self)
         if name not in tables:
             from samesource.input.design import did_you_mean
 
@@ -312,12 +738,12 @@ class Report:
         """The short text summary the command line prints."""
         from samesource.output.summary import text_summary
 
-        return text_summary(self._record)
+        return text_summary(self)
 
     def _repr_html_(self) -> str:
         from samesource.output.notebook import render_notebook
 
-        return render_notebook(self._record)
+        return render_notebook(self.record)
 
     def __str__(self) -> str:
         return self.summary()
@@ -331,13 +757,25 @@ class Report:
     # -- files -------------------------------------------------------------------------------------
     def files(self, *, when: str | None = None) -> dict[str, bytes]:
         """What :meth:`save` writes, as relative name -> bytes."""
-        return report_files(self._record, when=when)
+        from samesource.output.files import report_files
+
+        return report_files(self, when=when)
 
     def save(self, folder: str | Path = "samesource-report", *, when: str | None = None) -> Path:
         """Write what the command line writes: report.json, report.html, brief.html, tables/
         (a CSV per table) and tables.xlsx. Returns the folder."""
+        from samesource.output.files import write_files
+
         return write_files(self.files(when=when), folder)
 
 
-__all__ = ["Report", "DataSummary", "Construct", "ItemStats", "Fit", "MeasurementModel", "Verdict",
-           "MethodVariance", "AssumptionCheck", "Estimate", "KeyPath"]
+def method_label(key: str) -> str:
+    """A method (report.json's METHOD key) in words: each correction's label (corrections/paths.py
+    CORRECTIONS)."""
+    return LABELS.get(key, key.replace("_", " ").capitalize())
+
+
+__all__ = ["Report", "DataSummary", "Construct", "ItemStats", "Fit", "FornellLarcker", "MeasurementModel",
+           "Verdict", "MethodVariance", "MethodCheck", "ModelTest", "AssumptionCheck", "Estimate",
+           "BootstrapInterval", "KeyPath", "Sensitivity", "SensitivityPoint", "Bounds", "Trust", "PathOrigin",
+           "Screening", "ScreeningCheck", "FlaggedRow", "Teams", "Threshold", "Tool", "method_label"]

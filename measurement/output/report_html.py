@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import base64
 import re
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from functools import lru_cache
 from html import escape
 from pathlib import Path
@@ -33,6 +33,23 @@ from samesource.output.decision import (
     too_imprecise,
 )
 from samesource.output.decision import finite as _finite
+from samesource.output.report import (
+    NO_FIT,
+    NO_SENSITIVITY,
+    Construct,
+    Estimate,
+    Fit,
+    ItemStats,
+    KeyPath,
+    MethodCheck,
+    ModelSummary,
+    ModelTest,
+    Pair,
+    Report,
+    Sensitivity,
+    Teams,
+    Threshold,
+)
 from samesource.output.tables import (
     CHECK_LABELS,
     METHOD_LABELS,
@@ -41,7 +58,6 @@ from samesource.output.tables import (
     method_check_rows,
     method_label,
     pair,
-    visible_groups,
 )
 
 DASH = "\u2014"
@@ -93,18 +109,18 @@ def interval(ci: Any, d: int = 3) -> str:
     return f"[{num(ci[0], d)}, {num(ci[1], d)}]"
 
 
-def est_ci(e: dict | None) -> str:
+def est_ci(e: Estimate | None) -> str:
     """The estimate and its interval as the report prints them: "0.293 [0.233, 0.354]"."""
-    if not e or not _finite(e.get("estimate")):
+    if e is None or not _finite(e.estimate):
         return DASH
-    ci = e.get("ci")
-    return num(e["estimate"]) + (" " + interval(ci) if interval(ci) != DASH else " (no interval)")
+    return num(e.estimate) + (" " + interval(e.ci) if interval(e.ci) != DASH else " (no interval)")
 
 
-def threshold_text(th: dict | None, d: int = 2) -> str:
-    if not th or not _finite(th.get("value")):
+def threshold_text(th: Threshold | None, d: int = 2) -> str:
+    if th is None or not _finite(th.value):
         return ""
-    return escape(f"{DIRECTION.get(th.get('direction', '>='), th.get('direction', ''))} {num(th['value'], d)}")
+    direction = th.direction if th.direction is not None else ">="
+    return escape(f"{DIRECTION.get(direction, direction)} {num(th.value, d)}")
 
 
 def mark(ok: bool | None, fail_word: str = "below threshold", ok_word: str = "meets threshold") -> str:
@@ -118,14 +134,14 @@ def mark(ok: bool | None, fail_word: str = "below threshold", ok_word: str = "me
 
 def _get(d: Any, *keys: str) -> Any:
     for k in keys:
-        if not isinstance(d, dict):
+        if not isinstance(d, Mapping):
             return None
         d = d.get(k)
     return d
 
 
-def _conf(report: dict) -> str:
-    c = _get(report, "options", "confidence")
+def _conf(report: Report) -> str:
+    c = report.options.get("confidence")
     return f"{c * 100:.0f}%" if _finite(c) else "95%"
 
 
@@ -213,19 +229,24 @@ def section(ident: str, title: str, body: str, *, major: bool = True, hint: str 
             f'<summary><h2 id="{ident}-h">{title}</h2>{hint_html}</summary>{body}</details></section>')
 
 
-def path_title(p: dict) -> str:
-    return f"{h(p.get('predictor'))} \u2192 {h(p.get('outcome'))}"
+def path_title(p: KeyPath) -> str:
+    return arrow_title(p.predictor, p.outcome)
 
 
-def _path_plain(p: dict) -> str:
-    return f"{p.get('predictor')} \u2192 {p.get('outcome')}"
+def arrow_title(predictor: Any, outcome: Any) -> str:
+    """A path as "predictor → outcome", escaped."""
+    return f"{h(predictor)} \u2192 {h(outcome)}"
+
+
+def _path_plain(p: KeyPath) -> str:
+    return f"{p.predictor} \u2192 {p.outcome}"
 
 
 # --------------------------------------------------------------------------- the answer
 
-def _sensitivity_sentence(s: dict) -> str:
-    be, cz = s.get("break_even_method_share"), s.get("ci_covers_zero_at")
-    est, holds = s.get("estimated_method_share"), s.get("model_holds_up_to")
+def _sensitivity_sentence(s: Sensitivity) -> str:
+    be, cz = s.break_even_method_share, s.ci_covers_zero_at
+    est, holds = s.estimated_method_share, s.model_holds_up_to
     est_part = f" The checks estimate a method share of {pct(est)}." if _finite(est) else ""
     if _finite(be):
         z = f" (its interval first reaches zero at {pct(cz)})" if _finite(cz) and cz > 0 else ""
@@ -241,59 +262,59 @@ def _sensitivity_sentence(s: dict) -> str:
     return f"No assumed method share{limit} brings the estimate or its interval to zero.{est_part}"
 
 
-def _verdict_box(report: dict) -> str:
-    v = _get(report, "method_variance", "verdict")
-    if not isinstance(v, dict):
+def _verdict_box(report: Report) -> str:
+    v = report.method_variance.verdict
+    if not v.given:
         return ('<div class="verdict level-unknown"><h3 class="verdict-title">Common-method variance: '
                 'not assessed</h3><p>The report has no method-variance verdict.</p></div>')
-    level = str(v.get("level") or "unknown")
+    level = str(v.level or "unknown")
     return (f'<div class="verdict level-{h(level)}"><h3 class="verdict-title">Common-method variance: '
-            f'<span class="level-word">{h(level.upper())}</span></h3><p>{h(v.get("summary"))}'
+            f'<span class="level-word">{h(level.upper())}</span></h3><p>{h(v.summary)}'
             f' <span class="sub">What raised it, and the rules: <a href="#method-variance">the common-method '
             f'checks</a>.</span></p></div>')
 
 
-def checks_strip(report: dict) -> str:
+def checks_strip(report: Report) -> str:
     """The assumption checks, before any estimate: status and one plain sentence each; evidence,
     rule and source one click below."""
-    checks = [a for a in report.get("assumptions") or [] if isinstance(a, dict)]
+    checks = report.assumptions
     if not checks:
         return ""
     rows = []
     for a in checks:
-        st = str(a.get("status") or "")
+        st = str(a.status or "")
         badge = (f'<span class="st st-{h(st)}"><span aria-hidden="true">{h(STATUS_SYMBOLS.get(st, ""))}</span> '
                  f'{h(STATUS_LABELS.get(st, st or "not stated"))}</span>')
         detail = []
-        ev = [e for e in a.get("evidence") or [] if e]
+        ev = [e for e in a.evidence or () if e]
         if ev:
             detail.append("Evidence: " + "; ".join(h(e) for e in ev) + ".")
-        aff = [method_label(str(m)) for m in a.get("affects") or [] if m]
+        aff = [method_label(str(m)) for m in a.affects or () if m]
         if aff:
             detail.append("Estimates resting on it: " + ", ".join(h(m) for m in aff) + ".")
         else:  # a failed check that no estimate rests on must not read like a flaw in the answer
             detail.append("No key-path estimate rests on this; it concerns "
-                          + h(", ".join(CHECK_LABELS.get(c, c) for c in a.get("checks") or []) or "one method check")
+                          + h(", ".join(CHECK_LABELS.get(c, c) for c in a.checks or ()) or "one method check")
                           + " only.")
-        if a.get("rule"):
-            detail.append(f"Rule: {h(a['rule'])}")
-        if a.get("source"):
-            detail.append(f"Source: {h(a['source'])}")
-        if a.get("remedy"):
-            detail.append(f"What would settle it: {h(a['remedy'])}")
+        if a.rule:
+            detail.append(f"Rule: {h(a.rule)}")
+        if a.source:
+            detail.append(f"Source: {h(a.source)}")
+        if a.remedy:
+            detail.append(f"What would settle it: {h(a.remedy)}")
         body = "".join(f"<p>{x}</p>" for x in detail)
-        rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.get("message") or a.get("id"))}</span></summary>'
+        rows.append(f'<li><details><summary>{badge} <span class="msg">{h(a.message or a.id)}</span></summary>'
                     f'<div class="detail">{body or "<p>No further detail.</p>"}</div></details></li>')
     return ('<div class="checks-strip" id="assumptions"><h3>What the answer rests on: the assumption checks</h3>'
             f'<ul>{"".join(rows)}</ul></div>')
 
 
-def decisions_of(report: dict) -> list[Decision]:
-    return [decision(p, labels=METHOD_LABELS) for p in report.get("paths") or [] if isinstance(p, dict)]
+def decisions_of(report: Report | Mapping) -> list[Decision]:
+    return [decision(p, labels=METHOD_LABELS) for p in Report.of(report).paths]
 
 
-def cautions_section(report: dict, ident: str, title: str) -> str:
-    cautions = report.get("cautions") or []
+def cautions_section(report: Report, ident: str, title: str) -> str:
+    cautions = report.cautions
     items = "".join(f"<li>{h(c)}</li>" for c in cautions) or "<li>The report carries no cautions.</li>"
     return (f'<section id="{ident}" class="cautions" aria-labelledby="{ident}-h"><h2 id="{ident}-h">{title}</h2>'
             f"<ol>{items}</ol></section>")
@@ -301,36 +322,34 @@ def cautions_section(report: dict, ident: str, title: str) -> str:
 
 # --------------------------------------------------------------------------- paths and sensitivity
 
-def _forest_rows(report: dict, p: dict) -> list[svg.ForestRow]:
+def _forest_rows(report: Report, p: KeyPath) -> list[svg.ForestRow]:
     rows = []
-    for m, e in (p.get("estimates") or {}).items():
+    for m, e in p.estimates.items():
         label = method_label(m)
-        if not e or not _finite(e.get("estimate")):
+        if e is None or not _finite(e.estimate):
             rows.append(svg.ForestRow(label, "", unavailable="not available: " + absent_reason(report, m, e)))
             continue
-        ci = e.get("ci") if isinstance(e.get("ci"), list) else None
-        lo, hi = (ci[0], ci[1]) if ci and len(ci) == 2 and all(_finite(x) for x in ci) else (None, None)
-        rows.append(svg.ForestRow(label, est_ci(e), e["estimate"], lo, hi,
-                                  preferred=m == p.get("preferred")))
+        lo, hi = _pair_or_none(e.ci)
+        rows.append(svg.ForestRow(label, est_ci(e), e.estimate, lo, hi, preferred=m == p.preferred))
     return rows
 
 
-def paths_section(report: dict, figs: Figures | None = None) -> str:
+def paths_section(report: Report, figs: Figures | None = None) -> str:
     from samesource.output.check_html import lean_on_line
     from samesource.output.sources_html import path_sources_line
 
     figs = figs or Figures()
-    paths = report.get("paths") or []
+    paths = report.paths
     if not paths:
         return section("paths", "Key paths under every correction",
                        '<p class="note">The design declares no key paths.</p>')
     conf = _conf(report)
-    n_ways = max(len(p.get("estimates") or {}) for p in paths)
+    n_ways = max(len(p.estimates) for p in paths)
     out = [f"<p>Each path is estimated {n_ways} ways, from the plain observed estimate to models that correct "
            f"unreliability and shared method. Points are estimates, lines their {conf} intervals; the "
            f"preferred estimate is the diamond on the highlighted row.</p>"]
     common = _common_notes(paths)
-    out.append(_glossary(report, common))
+    out.append(_glossary(common))
     for i, p in enumerate(paths):
         ident = f"forest-{i + 1}"
         rows = _forest_rows(report, p)
@@ -343,52 +362,53 @@ def paths_section(report: dict, figs: Figures | None = None) -> str:
         out.append(f'<div class="keep"><h3 id="path-{i + 1}">{path_title(p)}</h3>')
         out.append(path_sources_line(p))
         out.append(lean_on_line(report, p))
-        preds = p.get("predictors") or []
+        preds = p.predictors or ()
         if len(preds) > 1:
-            out.append(f'<p class="sub">Estimated in the equation of {h(p.get("outcome"))} with all its predictors: '
+            out.append(f'<p class="sub">Estimated in the equation of {h(p.outcome)} with all its predictors: '
                        f'{", ".join(h(x) for x in preds)}.</p>')
-        if _get(p, "bounds", "basis"):
-            b = p["bounds"]
-            out.append(f'<p class="sub">Range over the plausible amounts of shared method: {num(b.get("low"))} to '
-                       f'{num(b.get("high"))} ({h(b["basis"])}).</p>')
-        if p.get("preferred_reason"):
-            out.append(f'<p class="why">Why {h(method_label(str(p.get("preferred") or "")))} leads: '
-                       f'{h(p["preferred_reason"])}.</p>')
+        if p.bounds is not None and p.bounds.basis:
+            b = p.bounds
+            out.append(f'<p class="sub">Range over the plausible amounts of shared method: {num(b.low)} to '
+                       f'{num(b.high)} ({h(b.basis)}).</p>')
+        if p.preferred_reason:
+            out.append(f'<p class="why">Why {h(method_label(str(p.preferred or "")))} leads: '
+                       f'{h(p.preferred_reason)}.</p>')
         out.append(figure(chart, cap, ident) + "</div>")
         out.append(_estimates_table(report, p, common))
     return section("paths", "Key paths under every correction", "".join(out))
 
 
-def _common_notes(paths: list[dict]) -> dict[str, str]:
+def _common_notes(paths: Sequence[KeyPath]) -> dict[str, str]:
     """The note of each method when it reads the same on every path (it then goes in the glossary)."""
     seen: dict[str, set[str]] = {}
     for p in paths:
-        for m, e in (p.get("estimates") or {}).items():
-            if e and _finite(e.get("estimate")) and e.get("note"):
-                seen.setdefault(m, set()).add(str(e["note"]))
+        for m, e in p.estimates.items():
+            if e is not None and _finite(e.estimate) and e.note:
+                seen.setdefault(m, set()).add(str(e.note))
     return {m: next(iter(v)) for m, v in seen.items() if len(v) == 1}
 
 
-def _estimates_table(report: dict, p: dict, common: dict[str, str]) -> str:
+def _estimates_table(report: Report, p: KeyPath, common: dict[str, str]) -> str:
     rows, classes, notes = [], [], []
-    ests = p.get("estimates") or {}
-    boot = any(isinstance(e, dict) and e.get("bootstrap") for e in ests.values())
-    failed = any(_finite(_get(e, "bootstrap", "n_failed")) and e["bootstrap"]["n_failed"] > 0 for e in ests.values())
+    ests = p.estimates
+    boots = [e.bootstrap for e in ests.values() if e is not None and e.bootstrap is not None]
+    boot = bool(boots)
+    failed = any(_finite(b.n_failed) and b.n_failed > 0 for b in boots)
     for m, e in ests.items():
-        pref = m == p.get("preferred")
+        pref = m == p.preferred
         label = h(method_label(m)) + (' <span class="tag">preferred</span>' if pref else "")
-        if not e or not _finite(e.get("estimate")):
+        if e is None or not _finite(e.estimate):
             row = [label, f'<span class="na">not available: {h(absent_reason(report, m, e))}</span>']
         else:
-            row = [label, num(e.get("estimate")), interval(e.get("ci")), num(e.get("se")), pval(e.get("p")),
-                   h(CI_METHOD.get(e.get("ci_method"), e.get("ci_method")))]
-            b = e.get("bootstrap")
+            row = [label, num(e.estimate), interval(e.ci), num(e.se), pval(e.p),
+                   h(CI_METHOD.get(e.ci_method, e.ci_method))]
+            b = e.bootstrap
             if boot:
-                row += [interval((b or {}).get("ci_percentile")), interval((b or {}).get("ci_bca"))]
+                row += [interval(b.ci_percentile if b else None), interval(b.ci_bca if b else None)]
                 if failed:
-                    row.append(count((b or {}).get("n_failed")) if b else DASH)
-            if e.get("note") and common.get(m) != e.get("note"):
-                notes.append(f"<li><strong>{h(method_label(m))}:</strong> {h(e['note'])}</li>")
+                    row.append(count(b.n_failed) if b else DASH)
+            if e.note and common.get(m) != e.note:
+                notes.append(f"<li><strong>{h(method_label(m))}:</strong> {h(e.note)}</li>")
         rows.append(row)
         classes.append("preferred" if pref else "")
     head = ["Estimate", "Value", "Interval", "SE", "p", "Interval method"]
@@ -400,8 +420,7 @@ def _estimates_table(report: dict, p: dict, common: dict[str, str]) -> str:
     body = table(head, rows, caption=f"Estimates of {path_title(p)} ({_conf(report)} intervals)",
                  numeric=tuple(i for i in range(1, width) if i != 5), row_classes=classes, cls="estimates",
                  span_short=True)
-    n_boot = next((e["bootstrap"].get("n_boot") for e in ests.values() if isinstance(e, dict) and e.get("bootstrap")),
-                  None)
+    n_boot = boots[0].n_boot if boots else None
     if boot:
         body += (f'<p class="sub">Intervals and SEs from {count(n_boot)} bootstrap replicates'
                  + ("" if failed else ", none of which failed")
@@ -412,7 +431,7 @@ def _estimates_table(report: dict, p: dict, common: dict[str, str]) -> str:
     return body
 
 
-def _glossary(report: dict, common: dict[str, str]) -> str:
+def _glossary(common: dict[str, str]) -> str:
     if not common:
         return ""
     items = "".join(f"<dt>{h(method_label(m))}</dt><dd>{h(n)}</dd>" for m, n in common.items())
@@ -420,24 +439,23 @@ def _glossary(report: dict, common: dict[str, str]) -> str:
             f'<dl class="facts">{items}</dl></details>')
 
 
-def sensitivity_section(report: dict, figs: Figures | None = None) -> str:
+def sensitivity_section(report: Report, figs: Figures | None = None) -> str:
     figs = figs or Figures()
-    paths = report.get("paths") or []
+    paths = report.paths
     title = "How much shared method would explain each path away"
     if not paths:
         return section("sensitivity", title, '<p class="note">The design declares no key paths.</p>')
-    meanings = {str((p.get("sensitivity") or {}).get("meaning") or "") for p in paths}
+    meanings = {str((p.sensitivity or NO_SENSITIVITY).meaning or "") for p in paths}
     shared = meanings.pop() if len(meanings) == 1 else None
     out = [f"<p>{h(shared)}</p>" if shared else
            "<p>Each curve re-estimates the latent path assuming that a given share of every item's variance "
            "comes from one shared method source, from none to half.</p>"]
     for i, p in enumerate(paths):
-        s = p.get("sensitivity") or {}
-        curve = [(pt.get("method_share"), pt.get("estimate"), *(_pair_or_none(pt.get("ci"))))
-                 for pt in s.get("curve") or [] if isinstance(pt, dict)]
+        s = p.sensitivity or NO_SENSITIVITY
+        curve = [(pt.method_share, pt.estimate, *(_pair_or_none(pt.ci))) for pt in s.curve]
         curve = [c for c in curve if _finite(c[0]) and _finite(c[1])]
-        be, cz, est = s.get("break_even_method_share"), s.get("ci_covers_zero_at"), s.get("estimated_method_share")
-        holds = s.get("model_holds_up_to")
+        be, cz, est = s.break_even_method_share, s.ci_covers_zero_at, s.estimated_method_share
+        holds = s.model_holds_up_to
         markers = []
         if _finite(est):
             markers.append(svg.Marker(est, f"estimated share {pct(est)}", "estimated"))
@@ -459,7 +477,7 @@ def sensitivity_section(report: dict, figs: Figures | None = None) -> str:
             continue
         desc = (f"Estimate from {num(curve[0][1])} at 0% to {num(curve[-1][1])} at {pct(curve[-1][0])}. "
                 + "; ".join(f"{k}: {v}" for k, v in facts))
-        marks = s.get("marks") if isinstance(s.get("marks"), dict) else {}
+        marks = s.marks if isinstance(s.marks, Mapping) else {}
         published = _pair_or_none(marks.get("published_range"))
         est_ci = _pair_or_none(marks.get("estimated_share_ci"))
         published = published if published[0] is not None else None
@@ -479,7 +497,7 @@ def sensitivity_section(report: dict, figs: Figures | None = None) -> str:
                f"can hold." + (" Hatched: the range of method shares published reviews report, for when the survey's own "
                                  "estimate cannot be vouched for; the orange bar on the axis: the estimated share's "
                                  "interval." if published or est_ci else "")
-               + (f" {h(s.get('meaning'))}" if s.get("meaning") and s.get("meaning") != shared else ""))
+               + (f" {h(s.meaning)}" if s.meaning and s.meaning != shared else ""))
         out.append(figure(chart, cap, ident))
         out.append(dl(facts) + "</div>")
         pts = [[pct(c[0]), num(c[1]), interval([c[2], c[3]])] for c in curve]
@@ -491,7 +509,7 @@ def sensitivity_section(report: dict, figs: Figures | None = None) -> str:
 
 
 def _pair_or_none(ci: Any) -> tuple[float | None, float | None]:
-    if isinstance(ci, list) and len(ci) == 2 and all(_finite(x) for x in ci):
+    if isinstance(ci, list | tuple) and len(ci) == 2 and all(_finite(x) for x in ci):
         return ci[0], ci[1]
     return None, None
 
@@ -502,16 +520,16 @@ RELIABILITY = (("alpha", "alpha"), ("omega", "omega"), ("composite_reliability",
 ROLE_WORDS = {"marker": "marker scale", "method": "method scale"}
 
 
-def _closest(name: str, names: list[str], htmt: dict) -> tuple[str, float] | None:
+def _closest(name: str, names: list[str], htmt: Mapping[Pair, Any]) -> tuple[str, float] | None:
     found = [(o, pair(htmt, name, o)) for o in names if o != name]
     found = [(o, v) for o, v in found if _finite(v)]
     return max(found, key=lambda t: t[1]) if found else None
 
 
-def _scale_card(name: str, c: dict, names: list[str], report: dict) -> str:
-    th = report.get("thresholds") or {}
-    mm = report.get("measurement_model") or {}
-    alpha, ave = c.get("alpha"), c.get("ave")
+def _scale_card(name: str, c: Construct, names: list[str], report: Report) -> str:
+    th = report.thresholds
+    mm = report.measurement_model
+    alpha, ave = c.alpha, c.ave
     ok_a, ok_ave = meets(alpha, th.get("alpha")), meets(ave, th.get("ave"))
     if ok_a is None:
         consistency = "Consistency could not be computed."
@@ -521,7 +539,7 @@ def _scale_card(name: str, c: dict, names: list[str], report: dict) -> str:
         consistency = "Its answers do not hang together well enough to be read as one score."
     if ok_ave is False:
         consistency += " Its items carry more error than shared signal."
-    close = _closest(name, names, mm.get("htmt") or {})
+    close = _closest(name, names, mm.htmt if mm is not None else {})
     if close is None:
         distinct = "How distinct it is from the other scales could not be computed."
     else:
@@ -535,34 +553,33 @@ def _scale_card(name: str, c: dict, names: list[str], report: dict) -> str:
             distinct = f"Too close to {h(other)} to be told apart."
     stats = []
     for key, label in RELIABILITY:
-        v = c.get(key)
+        v = getattr(c, key)
         t = th.get(key)
-        val = num(v) + (" " + interval(c.get("alpha_ci")) if key == "alpha" and interval(c.get("alpha_ci")) != DASH
-                        else "")
+        val = num(v) + (" " + interval(c.alpha_ci) if key == "alpha" and interval(c.alpha_ci) != DASH else "")
         if key == "omega" and not _finite(v):
-            val += " (needs 3 items)" if len(c.get("items") or []) < 3 else " (not available)"
+            val += " (needs 3 items)" if len(c.items) < 3 else " (not available)"
         ok = meets(v, t) if _finite(v) else None
         stats.append(f"{label} {val}" + (f" ({threshold_text(t)})" if t else "")
                      + mark(ok, f"below {threshold_text(t)}"))
     if close is not None:
         stats.append(f"highest HTMT {num(close[1])} with {h(close[0])} ({threshold_text(th.get('htmt_strict'))})")
-    stats.append(f"{count(len(c.get('items') or []))} items, n {count(c.get('n'))}")
+    stats.append(f"{count(len(c.items))} items, n {count(c.n)}")
     weak = ok_a is False or (close is not None and meets(close[1], th.get("htmt_liberal")) is False)
-    role = ROLE_WORDS.get(str(c.get("role") or ""), "")
+    role = ROLE_WORDS.get(str(c.role or ""), "")
     return (f'<div class="card{" weak" if weak else ""}" data-scale="{h(name)}"><h3>{h(name)}'
             + (f' <span class="sub">({h(role)})</span>' if role else "") + "</h3>"
             f"<p>{consistency}</p><p>{distinct}</p><p class=\"stats\">{SEP.join(stats)}</p></div>")
 
 
-def reliability_section(report: dict, figs: Figures | None = None) -> str:
-    constructs = report.get("constructs") or {}
-    th = report.get("thresholds") or {}
+def reliability_section(report: Report, figs: Figures | None = None) -> str:
+    constructs = report.constructs
+    th = report.thresholds
     title = "How well each scale measures"
     if not constructs:
         return section("reliability", title, '<p class="note">The report has no construct results.</p>')
     names = list(constructs)
-    cards = "".join(_scale_card(n, c, names, report) for n, c in constructs.items() if isinstance(c, dict))
-    sources = "; ".join(f"{label} {threshold_text(th.get(k))}: {h(_get(th, k, 'source'))}"
+    cards = "".join(_scale_card(n, c, names, report) for n, c in constructs.items())
+    sources = "; ".join(f"{label} {threshold_text(th[k])}: {h(th[k].source)}"
                         for k, label in RELIABILITY + (("htmt_strict", "HTMT"),) if th.get(k))
     body = ('<p>One card per scale: whether its answers hang together (consistency) and whether it measures '
             'something the other scales do not (distinctness). The statistics and their thresholds are in small '
@@ -574,43 +591,43 @@ def reliability_section(report: dict, figs: Figures | None = None) -> str:
     return section("reliability", title, body, hint="consistency and distinctness, one card per scale")
 
 
-def _item_method_loadings(report: dict) -> list[tuple[str, dict]]:
+def _item_method_loadings(report: Report) -> list[tuple[str, Mapping]]:
     """Per-item method loadings, if a method section carries them (a mapping item -> number)."""
-    mv = report.get("method_variance") or {}
     out = []
     for key, label in (("method_factor", "Method loading: method factor"),
                        ("measured_method", "Method loading: measured method")):
-        sec = mv.get(key)
-        if not isinstance(sec, dict):
+        sec = report.method_variance.check(key)
+        if sec is None:
             continue
         for field_name in ("item_loadings", "method_loadings", "loadings"):
-            v = sec.get(field_name)
-            if isinstance(v, dict) and v and all(_finite(x) or x is None for x in v.values()):
+            v = sec.section.get(field_name)
+            if isinstance(v, Mapping) and v and all(_finite(x) or x is None for x in v.values()):
                 out.append((label, v))
                 break
     return out
 
 
-def _construct_method_shares(report: dict) -> list[tuple[str, dict]]:
-    mv = report.get("method_variance") or {}
+def _construct_method_shares(report: Report) -> list[tuple[str, Mapping]]:
+    mv = report.method_variance
     out = []
-    mf = mv.get("method_factor")
-    if isinstance(mf, dict) and mf.get("method_share_by_construct"):
-        out.append((f"Method share: method factor ({mf.get('identified_by') or 'latent'})",
-                    mf["method_share_by_construct"]))
-    mm = mv.get("measured_method")
-    if isinstance(mm, dict) and mm.get("method_share_by_construct"):
-        out.append((f"Method share: measured method ({mm.get('method_construct')})", mm["method_share_by_construct"]))
-    cm = mv.get("cfa_marker")
-    if isinstance(cm, dict) and cm.get("method_share"):
-        out.append(("Method share: CFA marker technique", cm["method_share"]))
+    mf = mv.check("method_factor")
+    if mf is not None and mf.section.get("method_share_by_construct"):
+        out.append((f"Method share: method factor ({mf.section.get('identified_by') or 'latent'})",
+                    mf.section["method_share_by_construct"]))
+    mm = mv.check("measured_method")
+    if mm is not None and mm.section.get("method_share_by_construct"):
+        out.append((f"Method share: measured method ({mm.section.get('method_construct')})",
+                    mm.section["method_share_by_construct"]))
+    cm = mv.check("cfa_marker")
+    if cm is not None and cm.section.get("method_share"):
+        out.append(("Method share: CFA marker technique", cm.section["method_share"]))
     return out
 
 
-def loadings_section(report: dict, figs: Figures | None = None) -> str:
+def loadings_section(report: Report, figs: Figures | None = None) -> str:
     figs = figs or Figures()
-    constructs = report.get("constructs") or {}
-    th = report.get("thresholds") or {}
+    constructs = report.constructs
+    th = report.thresholds
     title = "Item loadings"
     if not constructs:
         return section("loadings", title, '<p class="note">The report has no item results.</p>')
@@ -622,21 +639,20 @@ def loadings_section(report: dict, figs: Figures | None = None) -> str:
     columns += [svg.HeatColumn(lab, svg.HIGHLIGHT, 0.3, span_groups=True) for lab, _ in share_cols]
     groups = []
     for name, c in constructs.items():
-        items = list(c.get("items") or (c.get("item_stats") or {}).keys())
-        stats = c.get("item_stats") or {}
+        items = list(c.items or c.item_stats)
         cells: list[list[tuple[float | None, str]]] = []
         col = []
         for it in items:
-            v = _get(stats, it, "loading")
+            v = c.item_stats[it].loading if it in c.item_stats else None
             ok = meets(v, lt) if _finite(v) else None
             col.append((v if _finite(v) else None, num(v) + (f" {FAIL}" if ok is False else "")))
         cells.append(col)
         for _, mapping in item_cols:
             cells.append([(mapping.get(it) if _finite(mapping.get(it)) else None, num(mapping.get(it))) for it in items])
         for _, mapping in share_cols:
-            v = mapping.get(name)
+            v = mapping.get(name) if isinstance(mapping, Mapping) else None
             cells.append([(v if _finite(v) else None, pct(v) if _finite(v) else "not estimated")])
-        groups.append(svg.HeatGroup(f"{name} ({c.get('role') or 'substantive'})", items, cells))
+        groups.append(svg.HeatGroup(f"{name} ({c.role or 'substantive'})", items, cells))
     desc = "; ".join(f"{g.label}: " + ", ".join(f"{it} {g.cells[0][i][1]}" for i, it in enumerate(g.rows)) for g in groups)
     chart = svg.heat_map(groups, columns, ident="loadings-svg", title="Item loadings and method shares", desc=desc)
     if item_cols:
@@ -648,19 +664,18 @@ def loadings_section(report: dict, figs: Figures | None = None) -> str:
     else:
         method_note = "The report has no method-variance estimate per construct or item, so only trait loadings are shown."
     cap = (f"<strong>Figure {figs.next()}.</strong> Standardized loadings of each item on its construct; darker means larger. "
-           f"What to look for: loadings {threshold_text(lt)} ({h(_get(lt, 'source'))}), shown with no mark; {FAIL} marks an item below. "
+           f"What to look for: loadings {threshold_text(lt)} ({h(lt.source if lt else None)}), shown with no mark; {FAIL} marks an item below. "
            f"{method_note} A method share above 10% is substantial by the verdict's rules.")
     rows = []
+    no_stats = ItemStats(None, None, None, None, None)
     for name, c in constructs.items():
-        reverse = set(c.get("reverse") or [])
-        stats = c.get("item_stats") or {}
-        for it in c.get("items") or list(stats):
-            s = stats.get(it) or {}
-            v = s.get("loading")
+        reverse = set(c.reverse)
+        for it in c.items or list(c.item_stats):
+            st = c.item_stats.get(it) or no_stats
+            v = st.loading
             rows.append([h(it), h(name), "yes" if it in reverse else "no",
                          num(v) + (mark(meets(v, lt), f"below {threshold_text(lt)}") if _finite(v) else ""),
-                         num(s.get("item_rest_r")), num(s.get("alpha_if_deleted")), num(s.get("mean"), 2),
-                         num(s.get("sd"), 2)])
+                         num(st.item_rest_r), num(st.alpha_if_deleted), num(st.mean, 2), num(st.sd, 2)])
     tbl = table(["Item", "Construct", "Reverse-keyed", f"Loading ({threshold_text(lt)})", "Item-rest r",
                  "Alpha if deleted", "Mean", "SD"], rows,
                 caption="Item statistics (means and SDs after reverse keying; all respondents together)",
@@ -689,26 +704,27 @@ def _check_value(r: dict) -> str:
     return f"{h(name)} {num(v)}"
 
 
-def method_section(report: dict) -> str:
-    mv = report.get("method_variance")
+def method_section(report: Report) -> str:
+    mv = report.method_variance
     title = "Common-method checks"
-    if not isinstance(mv, dict):
+    if not isinstance(report.record.get("method_variance"), Mapping):
         return section("method-variance", title, '<p class="note">The report has no common-method checks.</p>')
     out = [_verdict_box(report)]
-    rows = [[h(r["check"]), h(r["signal"]), _check_value(r), pval(r.get("test_p")), h(r.get("rule")) or DASH,
-             _level_cell(r.get("level"))] for r in method_check_rows(report)]
+    checked = method_check_rows(report)
+    rows = [[h(r["check"]), h(r["signal"]), _check_value(r), pval(r["test_p"]), h(r["rule"]) or DASH,
+             _level_cell(r["level"])] for r in checked]
     out.append(table(["Check", "Signal", "Value", "Test p", "Rule", "Level"], rows,
                      caption="Every signal the verdict weighed (○ none, ◐ minor, ● substantial)",
                      numeric=(3,), cls="checks"))
-    shown = {r.get("rule") for r in method_check_rows(report)}
-    rules = [r for r in _get(mv, "verdict", "rules") or [] if r not in shown]
+    shown = {r["rule"] for r in checked}
+    rules = [r for r in report.method_variance.verdict.rules or () if r not in shown]
     if rules:
         out.append("<h3>How the verdict is reached</h3><ul>" + "".join(f"<li>{h(r)}</li>" for r in rules) + "</ul>")
     for key, render in (("method_factor", _mf_detail), ("measured_method", _mm_detail), ("marker", _marker_detail),
                         ("cfa_marker", _cfa_detail), ("harman", _harman_detail), ("collinearity_vif", _vif_detail)):
-        sec = mv.get(key)
-        if isinstance(sec, dict):
-            out.append(f"<h3>{h(CHECK_LABELS[key])}</h3>" + render(report, sec))
+        sec = mv.check(key)
+        if sec is not None:
+            out.append(f"<h3>{h(CHECK_LABELS[key])}</h3>" + render(sec))
         elif key in ("marker", "cfa_marker"):
             out.append(f"<h3>{h(CHECK_LABELS[key])}</h3><p class=\"note\">Not run: the design has no marker "
                        f"construct.</p>")
@@ -718,11 +734,11 @@ def method_section(report: dict) -> str:
     return section("method-variance", title, "".join(out))
 
 
-def _fit_summary(fit: dict | None) -> str:
-    if not isinstance(fit, dict):
+def _fit_summary(fit: Fit | None) -> str:
+    if fit is None:
         return DASH
-    return (f"chi-square {num(fit.get('chi2'), 2)} on {count(fit.get('df'))} df, CFI {num(fit.get('cfi'))}, "
-            f"RMSEA {num(fit.get('rmsea'))}, SRMR {num(fit.get('srmr'))}")
+    return (f"chi-square {num(fit.chi2, 2)} on {count(fit.df)} df, CFI {num(fit.cfi)}, "
+            f"RMSEA {num(fit.rmsea)}, SRMR {num(fit.srmr)}")
 
 
 # The method-factor models by what they assume (descriptive names of ours; the sequence of
@@ -736,26 +752,25 @@ def model_name(key: str | None) -> str | None:
     return MODEL_NAMES.get(key, key.replace("_", " ")) if key else None
 
 
-def _models_table(models: dict, caption: str) -> str:
+def _models_table(models: Mapping[str, ModelSummary | None], caption: str) -> str:
     rows = []
     for k, m in models.items():
-        if not isinstance(m, dict):
+        if m is None:
             continue
-        f = m.get("fit") or {}
-        rows.append([h(model_name(k)), h(m.get("description")), h(m.get("status")), num(f.get("chi2"), 2),
-                     count(f.get("df")), num(f.get("cfi")), num(f.get("rmsea")), num(f.get("srmr"))])
+        f = m.fit or NO_FIT
+        rows.append([h(model_name(k)), h(m.description), h(m.status), num(f.chi2, 2),
+                     count(f.df), num(f.cfi), num(f.rmsea), num(f.srmr)])
     return table(["Model", "Description", "Status", "Chi-square", "df", "CFI", "RMSEA", "SRMR"], rows,
                  caption=caption, numeric=(3, 4, 5, 6, 7))
 
 
-def _tests_table(tests: dict, caption: str) -> str:
+def _tests_table(tests: Mapping[str, ModelTest | None], caption: str) -> str:
     rows = []
     for k, t in tests.items():
-        if not isinstance(t, dict):
+        if t is None:
             continue
-        rows.append([h(t.get("question") or k.replace("_", " ")), h(model_name(t.get("restricted"))),
-                     h(model_name(t.get("general"))),
-                     num(t.get("chi2_diff"), 2), count(t.get("df_diff")), pval(t.get("p"))])
+        rows.append([h(t.question or k.replace("_", " ")), h(model_name(t.restricted)),
+                     h(model_name(t.general)), num(t.chi2_diff, 2), count(t.df_diff), pval(t.p)])
     return table(["Test", "Restricted model", "General model", "Chi-square difference", "df", "p"], rows,
                  caption=caption, numeric=(3, 4, 5))
 
@@ -765,52 +780,52 @@ def _warnings_list(ws: Any) -> str:
     return ('<ul class="warn">' + "".join(f"<li>{h(w)}</li>" for w in ws) + "</ul>") if ws else ""
 
 
-def _share_table(shares: dict, caption: str) -> str:
+def _share_table(shares: Mapping, caption: str) -> str:
     return table(["Construct", "Method share of item variance"], [[h(k), pct(v)] for k, v in shares.items()],
                  caption=caption, numeric=(1,), cls="narrow")
 
 
-def _mf_detail(report: dict, s: dict) -> str:
-    out = dl([("Identified by", h(s.get("identified_by"))), ("Method loadings", h(s.get("loadings"))),
-              ("Method share of item variance", pct(s.get("method_share"))),
-              ("Proper solution", h(s.get("proper"))), ("Identified", h(s.get("identified"))),
-              ("Used as a correction", h(s.get("usable_as_correction"))), ("Fit", _fit_summary(s.get("fit")))])
-    if s.get("method_share_by_construct"):
-        out += _share_table(s["method_share_by_construct"], "Method-factor share of item variance per construct")
-    if isinstance(s.get("models"), dict):
-        out += _models_table(s["models"], "Method-factor models")
-    if isinstance(s.get("tests"), dict):
-        out += _tests_table(s["tests"], "Method-factor tests")
-    return out + _warnings_list(s.get("warnings"))
+def _mf_detail(s: MethodCheck) -> str:
+    out = dl([("Identified by", h(s.identified_by)), ("Method loadings", h(s.loadings)),
+              ("Method share of item variance", pct(s.method_share)),
+              ("Proper solution", h(s.proper)), ("Identified", h(s.identified)),
+              ("Used as a correction", h(s.usable_as_correction)), ("Fit", _fit_summary(s.fit))])
+    if s.method_share_by_construct:
+        out += _share_table(s.method_share_by_construct, "Method-factor share of item variance per construct")
+    if s.models:
+        out += _models_table(s.models, "Method-factor models")
+    if s.tests:
+        out += _tests_table(s.tests, "Method-factor tests")
+    return out + _warnings_list(s.warnings)
 
 
-def _mm_detail(report: dict, s: dict) -> str:
-    out = dl([("Method construct", h(s.get("method_construct"))),
-              ("Method share of item variance", pct(s.get("method_share"))), ("Status", h(s.get("status"))),
-              ("Proper solution", h(s.get("proper"))), ("Identified", h(s.get("identified"))),
-              ("Fit", _fit_summary(s.get("fit")))])
-    if s.get("method_share_by_construct"):
-        out += _share_table(s["method_share_by_construct"], "Measured-method share of item variance per construct")
-    if isinstance(s.get("tests"), dict):
-        out += _tests_table(s["tests"], "Measured-method test")
-    return out + _warnings_list(s.get("warnings"))
+def _mm_detail(s: MethodCheck) -> str:
+    out = dl([("Method construct", h(s.method_construct)),
+              ("Method share of item variance", pct(s.method_share)), ("Status", h(s.status)),
+              ("Proper solution", h(s.proper)), ("Identified", h(s.identified)),
+              ("Fit", _fit_summary(s.fit))])
+    if s.method_share_by_construct:
+        out += _share_table(s.method_share_by_construct, "Measured-method share of item variance per construct")
+    if s.tests:
+        out += _tests_table(s.tests, "Measured-method test")
+    return out + _warnings_list(s.warnings)
 
 
-def _marker_detail(report: dict, s: dict) -> str:
-    out = dl([("Marker", h(s.get("marker"))),
-              ("r_M", f"{num(s.get('r_m'))} ({h(str(s.get('r_m_rule') or '').replace('_', ' '))} correlation, "
-                      f"p {pval(s.get('r_m_p'))})"), ("n", count(s.get("n")))])
-    if s.get("marker_correlations"):
+def _marker_detail(s: MethodCheck) -> str:
+    out = dl([("Marker", h(s.marker)),
+              ("r_M", f"{num(s.r_m)} ({h(str(s.r_m_rule or '').replace('_', ' '))} correlation, "
+                      f"p {pval(s.r_m_p)})"), ("n", count(s.n))])
+    if s.marker_correlations:
         out += table(["Scale", "Correlation with the marker"],
-                     [[h(k), num(v)] for k, v in s["marker_correlations"].items()],
+                     [[h(k), num(v)] for k, v in s.marker_correlations.items()],
                      caption="The marker's correlation with each substantive scale", numeric=(1,), cls="narrow")
-    pairs = s.get("pairs") or {}
+    pairs = s.pairs if isinstance(s.pairs, Mapping) else {}
     if pairs:
         out += table(["Pair", "r", "r adjusted", "t", "p"],
                      [[h(k.replace("|", " \u00d7 ")), num(v.get("r")), num(v.get("r_adjusted")), num(v.get("t"), 2),
-                       pval(v.get("p"))] for k, v in pairs.items() if isinstance(v, dict)],
+                       pval(v.get("p"))] for k, v in pairs.items() if isinstance(v, Mapping)],
                      caption="Scale correlations before and after the marker adjustment", numeric=(1, 2, 3, 4))
-    sens = [x for x in s.get("sensitivity") or [] if isinstance(x, dict)]
+    sens = [x for x in s.sensitivity or () if isinstance(x, Mapping)]
     if sens and pairs:
         head = ["Pair"] + [f'{h(str(x.get("rule", "")).replace("_", " "))}<br><span class="sub">r_M '
                            f'{num(x.get("r_m"))}</span>' for x in sens]
@@ -818,52 +833,52 @@ def _marker_detail(report: dict, s: dict) -> str:
                             for k in pairs],
                      caption="Adjusted correlations under each choice of r_M (smallest, second smallest, upper "
                              "95% bound)", numeric=tuple(range(1, 1 + len(sens))))
-    if s.get("note"):
-        out += f'<p class="sub">{h(s["note"])}</p>'
+    if s.note:
+        out += f'<p class="sub">{h(s.note)}</p>'
     return out
 
 
-def _cfa_detail(report: dict, s: dict) -> str:
-    out = dl([("Model chosen", h(model_name(s.get("chosen")))),
-              ("Method share of item variance (overall)", pct(s.get("method_share_overall")))])
-    if isinstance(s.get("models"), dict):
-        out += _models_table(s["models"], "CFA marker technique: models")
-    if isinstance(s.get("tests"), dict):
-        out += _tests_table(s["tests"], "CFA marker technique: tests")
-    split = s.get("reliability_split") or {}
+def _cfa_detail(s: MethodCheck) -> str:
+    out = dl([("Model chosen", h(model_name(s.chosen))),
+              ("Method share of item variance (overall)", pct(s.method_share_overall))])
+    if s.models:
+        out += _models_table(s.models, "CFA marker technique: models")
+    if s.tests:
+        out += _tests_table(s.tests, "CFA marker technique: tests")
+    split = s.reliability_split if isinstance(s.reliability_split, Mapping) else {}
     if split:
         out += table(["Construct", "Trait", "Method", "Error"],
                      [[h(k), pct(v.get("trait")), pct(v.get("method")), pct(v.get("error"))]
-                      for k, v in split.items() if isinstance(v, dict)],
+                      for k, v in split.items() if isinstance(v, Mapping)],
                      caption="Each construct's reliability split into trait, method and error", numeric=(1, 2, 3))
-    if s.get("note"):
-        out += f'<p class="sub">{h(s["note"])}</p>'
+    if s.note:
+        out += f'<p class="sub">{h(s.note)}</p>'
     return out
 
 
-def _harman_detail(report: dict, s: dict) -> str:
-    eig = [num(e, 2) for e in s.get("eigenvalues") or [] if _finite(e)]
-    vs = s.get("vs_measurement_model") or {}
-    out = dl([("Method", h(s.get("method"))), ("First factor's share of variance", pct(s.get("first_factor_share"))),
-              ("Eigenvalues above 1", count(s.get("factors_eigen_gt_1"))),
+def _harman_detail(s: MethodCheck) -> str:
+    eig = [num(e, 2) for e in s.eigenvalues or () if _finite(e)]
+    vs = s.vs_measurement_model
+    out = dl([("Method", h(s.method)), ("First factor's share of variance", pct(s.first_factor_share)),
+              ("Eigenvalues above 1", count(s.factors_eigen_gt_1)),
               ("Largest eigenvalues", ", ".join(eig) if eig else DASH),
-              ("One factor for all items", _fit_summary(_get(s, "single_factor_fit", "fit"))),
+              ("One factor for all items", _fit_summary(s.single_factor_fit)),
               ("One factor against the measurement model",
-               f"chi-square difference {num(vs.get('chi2_diff'), 2)} on {count(vs.get('df_diff'))} df, "
-               f"p {pval(vs.get('p'))}" if vs else DASH),
-              ("Rule", h(s.get("rule"))), ("Flagged", h(s.get("flag")))])
-    if s.get("note"):
-        out += f'<p class="sub">{h(s["note"])}</p>'
+               f"chi-square difference {num(vs.chi2_diff, 2)} on {count(vs.df_diff)} df, "
+               f"p {pval(vs.p)}" if vs else DASH),
+              ("Rule", h(s.rule)), ("Flagged", h(s.flag))])
+    if s.note:
+        out += f'<p class="sub">{h(s.note)}</p>'
     return out
 
 
-def _vif_detail(report: dict, s: dict) -> str:
-    t = s.get("threshold")
+def _vif_detail(s: MethodCheck) -> str:
+    t = s.threshold
     rows = [[h(k), num(v, 2) + (mark(v <= t, f"above {num(t, 1)}", f"at most {num(t, 1)}") if _finite(v) and _finite(t)
-                                 else "")] for k, v in (s.get("values") or {}).items()]
+                                 else "")] for k, v in (s.values or {}).items()]
     return (table(["Construct", f"VIF (flag above {num(t, 1)})" if _finite(t) else "VIF"], rows,
                   caption="Full-collinearity VIF per construct", numeric=(1,), cls="narrow")
-            + f'<p class="sub">{h(s.get("rule"))}</p>')
+            + f'<p class="sub">{h(s.rule)}</p>')
 
 
 # --------------------------------------------------------------------------- measurement model
@@ -872,9 +887,9 @@ FIT_ROWS = (("cfi", "CFI"), ("tli", "TLI"), ("rmsea", "RMSEA"), ("srmr", "SRMR")
 COUNT_WORDS = {0: "none", 1: "one", 2: "two", 3: "three", 4: "all four"}
 
 
-def fit_sentence(fit: dict, th: dict) -> str:
+def fit_sentence(fit: Fit | None, th: Mapping[str, Threshold]) -> str:
     """The fit in one sentence: how many of the four usual indices meet their thresholds."""
-    judged = [(label, meets(fit.get(k), th.get(k))) for k, label in FIT_ROWS]
+    judged = [(label, meets(getattr(fit, k) if fit else None, th.get(k))) for k, label in FIT_ROWS]
     judged = [(label, ok) for label, ok in judged if ok is not None]
     if not judged:
         return "How well the measurement model fits could not be judged."
@@ -889,53 +904,49 @@ def fit_sentence(fit: dict, th: dict) -> str:
             f"{', '.join(bad)} falls short.")
 
 
-def fit_section(report: dict) -> str:
-    mm = report.get("measurement_model")
+def fit_section(report: Report) -> str:
+    mm = report.measurement_model
     title = "Measurement model: fit and overlap between scales"
-    if not isinstance(mm, dict):
+    if mm is None:
         return section("fit", title, '<p class="note">The report has no measurement model.</p>')
-    th = report.get("thresholds") or {}
-    f = mm.get("fit") or {}
+    th = report.thresholds
+    f = mm.fit or NO_FIT
     out = []
-    status = mm.get("status")
+    status = mm.status
     if status and status != "ok":
         out.append(f'<p class="alert">The measurement model ended with status <strong>{h(status)}</strong>: read '
                    f'its fit and everything built on it with care.</p>')
-    out.append(_warnings_list(mm.get("warnings")))
-    out.append(f'<p class="fit-sentence">{h(fit_sentence(f, th))}</p>')
+    out.append(_warnings_list(mm.warnings))
+    out.append(f'<p class="fit-sentence">{h(fit_sentence(mm.fit, th))}</p>')
     rows = []
     for key, label in FIT_ROWS:
-        v = f.get(key)
+        v = getattr(f, key)
         t = th.get(key)
-        val = num(v) + (f' <span class="sub">90% interval {interval(f.get("rmsea_ci"))}</span>' if key == "rmsea" else "")
+        val = num(v) + (f' <span class="sub">90% interval {interval(f.rmsea_ci)}</span>' if key == "rmsea" else "")
         ok = meets(v, t)
         verdict = DASH if ok is None else (f'<span class="mark ok" aria-hidden="true">{PASS}</span> meets' if ok
                                            else f'<span class="mark bad" aria-hidden="true">{FAIL}</span> does not meet')
-        rows.append([label, val, threshold_text(t, 2) if t else DASH, verdict, h(_get(t, "source"))])
-    rows.append(["Chi-square", f"{num(f.get('chi2'), 2)} on {count(f.get('df'))} df, p {pval(f.get('p'))}", DASH,
-                 DASH, DASH])
-    rows.append(["N", count(f.get("n")), DASH, DASH, DASH])
+        rows.append([label, val, threshold_text(t, 2) if t else DASH, verdict, h(t.source if t else None)])
+    rows.append(["Chi-square", f"{num(f.chi2, 2)} on {count(f.df)} df, p {pval(f.p)}", DASH, DASH, DASH])
+    rows.append(["N", count(f.n), DASH, DASH, DASH])
     out.append(table(["Index", "Value", "Threshold", "Against the threshold", "Source"], rows,
                      caption=f"Fit of the measurement model (every scale a factor of its own items; estimator "
-                             f"{h(str(mm.get('estimator') or '').upper() or None)}, status {h(status)})",
+                             f"{h(str(mm.estimator or '').upper() or None)}, status {h(status)})",
                      numeric=(1,), cls="fit"))
     out.append(_overlap_list(report))
     return section("fit", title, "".join(out), hint="fit in one sentence; the scale pairs closest to overlapping")
 
 
-def _overlap_list(report: dict) -> str:
+def _overlap_list(report: Report) -> str:
     """Discriminant validity as a ranked list: the scale pairs closest to overlapping first."""
-    mm = report.get("measurement_model") or {}
-    th = report.get("thresholds") or {}
-    htmt, htmt2 = mm.get("htmt") or {}, mm.get("htmt2") or {}
-    fl, fc = mm.get("fornell_larcker") or {}, mm.get("factor_correlations") or {}
-    ranked = sorted(((k, v) for k, v in htmt.items() if _finite(v)), key=lambda kv: -kv[1])
+    mm = report.measurement_model
+    th = report.thresholds
+    ranked = sorted(((k, v) for k, v in (mm.htmt.items() if mm else ()) if _finite(v)), key=lambda kv: -kv[1])
     if not ranked:
         return '<h3>Overlap between scales</h3><p class="note">Not available.</p>'
     strict, liberal = th.get("htmt_strict"), th.get("htmt_liberal")
     items = []
-    for k, v in ranked:
-        a, _, b = k.partition("|")
+    for (a, b), v in ranked:
         if meets(v, strict) is not False:
             word = "distinct"
         elif meets(v, liberal) is not False:
@@ -943,20 +954,20 @@ def _overlap_list(report: dict) -> str:
         else:
             word = f"{FAIL}{FAIL} too close to tell apart"
         extra = []
-        if _finite(pair(htmt2, a, b)):
-            extra.append(f"HTMT2 {num(pair(htmt2, a, b))}")
-        if _finite(pair(fc, a, b)):
-            extra.append(f"factor correlation {num(pair(fc, a, b))}")
-        flv = pair(fl, a, b)
-        if isinstance(flv, dict) and flv.get("holds") is False:
+        if _finite(pair(mm.htmt2, a, b)):
+            extra.append(f"HTMT2 {num(pair(mm.htmt2, a, b))}")
+        if _finite(pair(mm.factor_correlations, a, b)):
+            extra.append(f"factor correlation {num(pair(mm.factor_correlations, a, b))}")
+        flv = pair(mm.fornell_larcker, a, b)
+        if flv is not None and flv.holds is False:
             extra.append(f"{FAIL} Fornell\u2013Larcker does not hold")
         items.append(f"<li><strong>{h(a)} and {h(b)}</strong>: HTMT {num(v)}, {word}"
                      + (f' <span class="sub">({"; ".join(extra)})</span>' if extra else "") + "</li>")
     top, rest = items[:5], items[5:]
-    variant = mm.get("htmt_variant")
+    variant = mm.htmt_variant
     out = ("<h3>Overlap between scales</h3><p>The pairs of scales closest to measuring the same thing, closest "
            f"first. A pair is distinct when its HTMT is {threshold_text(strict)} (strict) or "
-           f"{threshold_text(liberal)} (liberal; {h(_get(strict, 'source'))})."
+           f"{threshold_text(liberal)} (liberal; {h(strict.source if strict else None)})."
            + (f" HTMT variant: {h(variant)}." if variant else "") + "</p>"
            f'<ol class="pairs">{"".join(top)}</ol>')
     if rest:
@@ -969,30 +980,30 @@ def _overlap_list(report: dict) -> str:
 
 # --------------------------------------------------------------------------- teams (when present)
 
-def teams_section(report: dict) -> str:
-    teams = report.get("teams")
-    if not isinstance(teams, dict):
+def teams_section(report: Report) -> str:
+    teams = report.teams
+    if teams is None:
         return ""
-    k = teams.get("min_group_size")
-    out = [dl([("Group column", h(teams.get("group_column"))), ("Groups", count(teams.get("groups"))),
-               ("Groups shown", count(teams.get("groups_reported"))),
-               ("Groups withheld as too small", count(teams.get("groups_withheld"))),
-               ("Respondents without a group", count(teams.get("respondents_without_group"))),
+    k = teams.min_group_size
+    out = [dl([("Group column", h(teams.group_column)), ("Groups", count(teams.groups)),
+               ("Groups shown", count(teams.groups_reported)),
+               ("Groups withheld as too small", count(teams.groups_withheld)),
+               ("Respondents without a group", count(teams.respondents_without_group)),
                ("Minimum group size", count(k))]),
            f'<p class="note">Groups with fewer than {count(k)} respondents are never shown; their members still '
            f'count in the pooled results.</p>']
-    meaning = teams.get("meaning") if isinstance(teams.get("meaning"), dict) else {}
-    cons = teams.get("constructs") or {}
+    meaning = teams.meaning if isinstance(teams.meaning, Mapping) else {}
+    cons = teams.constructs
     if cons:
         out.append(table(["Construct", "ICC(1)", "ICC(2)", "Median rwg(j)", "Groups in rwg(j)"],
                          [[h(n), num(v.get("icc1")), num(v.get("icc2")), num(v.get("rwg_j_median")),
-                           count(v.get("rwg_j_groups"))] for n, v in cons.items() if isinstance(v, dict)],
+                           count(v.get("rwg_j_groups"))] for n, v in cons.items() if isinstance(v, Mapping)],
                          caption="How much each construct differs between groups, and agreement within them",
                          numeric=(1, 2, 3, 4)))
     if meaning:
         labels = {"icc1": "ICC(1)", "icc2": "ICC(2)", "rwg_j": "rwg(j)"}
         out.append(dl([(h(labels.get(m, m)), h(t)) for m, t in meaning.items()]))
-    tp = [p for p in teams.get("paths") or [] if isinstance(p, dict)]
+    tp = teams.paths
     if tp:
         rows = []
         for p in tp:
@@ -1012,7 +1023,7 @@ def teams_section(report: dict) -> str:
                               f'{count(split.get("teams_used"))} groups)</span>')
             if split.get("note") and _finite(split.get("estimate")):
                 split_txt += f' <span class="sub">{h(split["note"])}</span>'
-            rows.append([path_title(p), num(_get(p, "within", "estimate")),
+            rows.append([arrow_title(p.get("predictor"), p.get("outcome")), num(_get(p, "within", "estimate")),
                          num(between.get("estimate")) + (f' <span class="sub">({count(between.get("teams"))} '
                                                           f'groups)</span>' if between.get("teams") else ""),
                          pval(test.get("p")) + (" (differ)" if test.get("differ") else ""),
@@ -1022,10 +1033,10 @@ def teams_section(report: dict) -> str:
                          caption="Key paths within and between groups (standardized; a split-group interval wider than "
                                  f"{num(IMPRECISE_WIDTH, 1)} is too imprecise to read)", numeric=(1, 2, 3),
                          cls="teampaths"))
-    notes = [n for n in teams.get("notes") or [] if n]
+    notes = [n for n in teams.notes if n]
     if notes:
         out.append('<ul class="sub">' + "".join(f"<li>{h(n)}</li>" for n in notes) + "</ul>")
-    groups = visible_groups(teams)
+    groups = teams.visible_groups
     if groups:
         cols = list(dict.fromkeys(c for g in groups for c in g))
         out.append('<div class="long-table">' + table(
@@ -1037,14 +1048,14 @@ def teams_section(report: dict) -> str:
     return section("teams", "Teams", "".join(out))
 
 
-def _same_source_cell(teams: dict, p: dict) -> str:
+def _same_source_cell(teams: Teams, p: Mapping) -> str:
     """The same-source team estimate, or why there is none (derived from the report's ICC(2) values)."""
     v = _get(p, "same_source_team", "estimate")
     if _finite(v):
         return num(v)
     reason = _get(p, "same_source_team", "reason")
     if not reason:
-        cons = teams.get("constructs") or {}
+        cons = teams.constructs
         names = [p.get("outcome"), *(p.get("predictors") or [p.get("predictor")])]
         low = [f"{n} ({num(_get(cons, n, 'icc2'))})" for n in dict.fromkeys(names)
                if _finite(_get(cons, n, "icc2")) and _get(cons, n, "icc2") <= 0]
@@ -1069,23 +1080,23 @@ def _cell(v: Any) -> str:
 
 # --------------------------------------------------------------------------- data, screening, warnings
 
-def data_section(report: dict) -> str:
+def data_section(report: Report) -> str:
     from samesource.output.sources_html import sources_block
 
-    d = report.get("data") or {}
-    mh = d.get("missing_handling") or {}
-    rs = d.get("response_scale") or {}
-    excl = d.get("excluded_by_reason") or {}
+    d = report.data
+    mh = d.missing_handling if isinstance(d.missing_handling, Mapping) else {}
+    rs = d.response_scale if isinstance(d.response_scale, Mapping) else {}
+    excl = d.excluded_by_reason if isinstance(d.excluded_by_reason, Mapping) else {}
     out = ["<h3>The data</h3>", dl([
-        ("File", h(d.get("file"))), ("Format", h(d.get("format"))), ("Encoding", h(d.get("encoding"))),
-        ("SHA-256 of the file", f'<code class="hash">{h(d.get("sha256"))}</code>'),
-        ("Rows read", count(d.get("rows"))), ("Rows analysed", count(d.get("rows_analyzed"))),
-        ("Items", count(d.get("items"))),
-        ("Rows excluded", count(d.get("excluded_rows")) + (
+        ("File", h(d.file)), ("Format", h(d.format)), ("Encoding", h(d.encoding)),
+        ("SHA-256 of the file", f'<code class="hash">{h(d.sha256)}</code>'),
+        ("Rows read", count(d.rows)), ("Rows analysed", count(d.rows_analyzed)),
+        ("Items", count(d.items)),
+        ("Rows excluded", count(d.excluded_rows) + (
             " (" + ", ".join(f"{h(k.replace('_', ' '))}: {count(v)}" for k, v in excl.items()) + ")" if excl else "")),
         ("Response scale", f"{num(rs.get('min'), 0)} to {num(rs.get('max'), 0)} (from the {h(rs.get('source'))})"
          if rs else DASH),
-        ("Missing answers", f"{count(d.get('missing_cells'))} cells ({pct(d.get('missing_share'))})")])]
+        ("Missing answers", f"{count(d.missing_cells)} cells ({pct(d.missing_share)})")])]
     out.append(sources_block(report))
     out.append("<h3>Missing answers</h3>")
     out.append(dl([("Handling", h(mh.get("description") or mh.get("method"))),
@@ -1094,45 +1105,42 @@ def data_section(report: dict) -> str:
     if mh.get("recommendation"):
         out.append(f'<p class="alert">{h(mh["recommendation"])}</p>')
 
-    sc = report.get("screening") or {}
+    sc = report.screening
     out.append("<h3>Screening for careless answers</h3>")
     out.append('<p class="note">Flags are for data review only. They are not a judgement on any person, and '
                'screening rules are common practice, not proof of careless answering. Only row numbers are shown '
                '(as a spreadsheet numbers them, header row 1).</p>')
-    checks = sc.get("checks") or {}
-    if checks:
+    if sc.checks:
         out.append(table(["Rule", "What it flags", "Rows flagged"],
-                         [[h(k.replace("_", " ")), h(v.get("rule")), count(v.get("flagged"))]
-                          for k, v in checks.items() if isinstance(v, dict)],
+                         [[h(k.replace("_", " ")), h(v.rule), count(v.flagged)] for k, v in sc.checks.items()],
                          caption="Rows flagged by each screening rule", numeric=(2,)))
-    dist = sc.get("distribution") or {}
+    dist = sc.distribution if isinstance(sc.distribution, Mapping) else {}
     if dist:
         out.append(table(["Measure", "Median over respondents"],
-                         [[h(k.replace("_", " ")), num(v.get("median"), 2)] for k, v in dist.items() if isinstance(v, dict)],
+                         [[h(k.replace("_", " ")), num(v.get("median"), 2)] for k, v in dist.items()
+                          if isinstance(v, Mapping)],
                          caption="Typical values of the screening measures", numeric=(1,), cls="narrow"))
-    flagged = [f for f in sc.get("flagged_rows") or [] if isinstance(f, dict)]
+    flagged = sc.flagged_rows
     if flagged and len(flagged) <= 40:
-        out.append(table(["Row", "Flagged by"], [[h(f.get("row")), h(", ".join(f.get("reasons") or []))]
-                                                for f in flagged],
+        out.append(table(["Row", "Flagged by"], [[h(f.row), h(", ".join(f.reasons or ()))] for f in flagged],
                          caption=f"Rows flagged for review ({count(len(flagged))})", cls="narrow"))
     elif flagged:
         out.append(f"<p>Rows flagged for review ({count(len(flagged))}): "
-                   + "; ".join(f"{h(f.get('row'))} ({h(', '.join(f.get('reasons') or []))})" for f in flagged)
+                   + "; ".join(f"{h(f.row)} ({h(', '.join(f.reasons or ()))})" for f in flagged)
                    + "</p>")
     else:
         out.append("<p>No row was flagged.</p>")
-    if sc.get("note"):
-        out.append(f'<p class="sub">{h(sc["note"])}</p>')
+    if sc.note:
+        out.append(f'<p class="sub">{h(sc.note)}</p>')
 
     out.append("<h3>Warnings</h3>")
-    ws = [w for w in report.get("warnings") or [] if isinstance(w, dict)]
-    if ws:
-        out.append('<ul class="warn">' + "".join(f"<li><code>{h(w.get('code'))}</code> {h(w.get('message'))}</li>"
-                                                  for w in ws) + "</ul>")
+    if report.warnings:
+        out.append('<ul class="warn">' + "".join(f"<li><code>{h(w.code)}</code> {h(w.message)}</li>"
+                                                  for w in report.warnings) + "</ul>")
     else:
         out.append("<p>The analysis raised no warnings.</p>")
 
-    o = report.get("options") or {}
+    o = report.options
     out.append("<h3>Options</h3>")
     out.append(dl([("Missing answers", h(o.get("missing"))), ("Flagged rows dropped", h(o.get("drop_flagged"))),
                    ("Bootstrap replicates", count(o.get("bootstrap")) if o.get("bootstrap") else "none (analytic intervals)"),
@@ -1173,45 +1181,48 @@ def _toc(entries: Iterable[tuple[str, str]]) -> str:
               'brief: <a href="brief.html">brief.html</a>.</p></nav>')
 
 
-def header_facts(report: dict, when: str | None = None) -> list[str]:
-    d = report.get("data") or {}
-    tool = report.get("tool") or {}
-    when = when or next((report.get(k) for k in ("created_at", "generated_at", "date") if report.get(k)), None)
-    facts = [f"{count(d.get('rows'))} rows read, {count(d.get('rows_analyzed'))} analysed",
-             f"{count(d.get('items'))} items", f"{len(report.get('constructs') or {})} scales",
-             f"made by {tool.get('name') or 'samesource'} {tool.get('version') or ''}".strip()]
+def header_facts(report: Report | Mapping, when: str | None = None) -> list[str]:
+    r = Report.of(report)
+    d = r.data
+    record = r.record
+    when = when or next((record.get(k) for k in ("created_at", "generated_at", "date") if record.get(k)), None)
+    facts = [f"{count(d.rows)} rows read, {count(d.rows_analyzed)} analysed",
+             f"{count(d.items)} items", f"{len(r.constructs)} scales",
+             f"made by {r.tool.name or 'samesource'} {r.tool.version or ''}".strip()]
     if when:
         facts.insert(0, f"produced {when}")
     return facts
 
 
-def review_reasons(report: dict) -> list[dict]:
+def review_reasons(report: Report | Mapping) -> list[dict]:
     """The "review before use" reasons, when the report asks for review (missing fields tolerated)."""
-    if not report.get("review_needed"):
+    view = Report.of(report)
+    if not view.review_needed:
         return []
     out = []
-    for r in report.get("review_reasons") or []:
-        if isinstance(r, dict):
+    for r in view.review_reasons or ():
+        if isinstance(r, Mapping):
             out.append({"message": str(r.get("message") or r.get("code") or "review needed"),
                         "names": [str(i) for i in r.get("items") or []], "fix": str(r.get("fix") or "")})
     return out or [{"message": "The analysis asks for a review before its results are used.", "names": [], "fix": ""}]
 
 
-def render_html(report: dict, *, when: str | None = None) -> str:
+def render_html(report: Report | Mapping, *, when: str | None = None) -> str:
     """The whole report as one self-contained HTML5 page (a string); ``when``: the date it was made."""
-    d = report.get("data") or {}
+    view = Report.of(report)
+    d = view.data
     figs = Figures()
     from samesource.output.sections import render_sections  # it imports this module's sections
 
-    sections = render_sections(report, figs)
-    footer = (f'Report schema {h(report.get("schema"))}; made by {h(_get(report, "tool", "name"))} '
-              f'{h(_get(report, "tool", "version"))} from {h(d.get("file"))} (SHA-256 '
-              f'<code class="hash">{h(d.get("sha256"))}</code>).')
+    sections = render_sections(view, figs)
+    footer = (f'Report schema {h(view.schema)}; made by {h(view.tool.name)} '
+              f'{h(view.tool.version)} from {h(d.file)} (SHA-256 '
+              f'<code class="hash">{h(d.sha256)}</code>).')
     return environment().get_template("report.html.j2").render(
-        title=f"Survey report: {d.get('file') or 'survey data'}", css=stylesheet("report.css"),
-        file=d.get("file") or "Survey data", facts=header_facts(report, when), review=review_reasons(report),
-        checks=Markup(checks_strip(report)), decisions=decisions_of(report), verdict=Markup(_verdict_box(report)),
-        cautions=Markup(cautions_section(report, "cautions", "Cautions: read these before using any result")),
+        title=f"Survey report: {d.file or 'survey data'}", css=stylesheet("report.css"),
+        file=d.file or "Survey data", facts=header_facts(view, when), review=review_reasons(view),
+        checks=Markup(checks_strip(view)), decisions=decisions_of(view), verdict=Markup(_verdict_box(view)),
+        cautions=Markup(cautions_section(view, "cautions", "Cautions: read these before using any result")),
         toc=Markup(_toc((s.id, s.title) for s, _ in sections)), sections=[Markup(x) for _, x in sections],
         footer=Markup(footer)) + "\n"
 

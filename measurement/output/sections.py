@@ -10,10 +10,11 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 from samesource.output import check_html, report_html, sources_html
+from samesource.output.report import Report
 from samesource.output.report_html import Figures
 
-# (report.json's content, the page's figures) -> the section's HTML, "" when it does not apply
-Render = Callable[[dict, Figures], str]
+# (the typed report, the page's figures) -> the section's HTML, "" when it does not apply
+Render = Callable[[Report, Figures], str]
 
 
 @dataclass(frozen=True)
@@ -26,7 +27,7 @@ class ReportSection:
     tables: tuple[str, ...]   # the tables holding its numbers (names of report_tables)
 
 
-def _cautions_again(report: dict, figs: Figures) -> str:
+def _cautions_again(report: Report, figs: Figures) -> str:
     inner = (report_html.cautions_section(report, "cautions-list", "Every caution, in full")
              .replace('<h2 id="cautions-list-h">', '<h3 id="cautions-list-h">').replace("</h2>", "</h3>", 1))
     return report_html.section("cautions-again", "Cautions (repeated)", inner)
@@ -52,13 +53,14 @@ SECTIONS: tuple[ReportSection, ...] = (
                   ("teams", "team_constructs", "team_paths")),
     ReportSection("next-time", "Next time: testing for a shared answering style",
                   lambda report, figs: check_html.next_time_section(report), ()),
-    ReportSection("data", "Data, screening and warnings", lambda report, figs: report_html.data_section(report),
+    ReportSection("data", "Data, screening and warnings",
+                  lambda report, figs: report_html.data_section(report),
                   ("sources", "screening", "screening_rules", "warnings")),
     ReportSection("cautions-again", "Cautions (repeated)", _cautions_again, ("cautions",)),
 )
 
 
-def render_sections(report: dict, figs: Figures) -> list[tuple[ReportSection, str]]:
+def render_sections(report: Report, figs: Figures) -> list[tuple[ReportSection, str]]:
     """Every section that applies to this report, with its HTML, in page order."""
     out = []
     for s in SECTIONS:

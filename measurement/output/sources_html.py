@@ -7,7 +7,10 @@ measurement/input/sources.py and measurement/corrections/source_paths.py).
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 from samesource.output import svg
+from samesource.output.report import KeyPath, Report
 from samesource.output.report_html import (
     Figures,
     count,
@@ -25,14 +28,14 @@ from samesource.output.tables import method_label
 KIND_LABELS = {"other_rater": "another rater", "later_wave": "a later wave", "records": "records"}
 
 
-def sources_block(report: dict) -> str:
+def sources_block(report: Report) -> str:
     """The data section's table of second sources: rows, matches, rows left unmatched."""
-    srcs = (report.get("data") or {}).get("sources") or {}
+    srcs = report.data.sources if isinstance(report.data.sources, Mapping) else {}
     if not srcs:
         return ""
     rows = []
     for name, s in srcs.items():
-        if not isinstance(s, dict):
+        if not isinstance(s, Mapping):
             continue
         rs = s.get("response_scale") or {}
         rows.append([h(name), h(KIND_LABELS.get(s.get("kind"), s.get("kind"))), h(s.get("file")),
@@ -49,19 +52,19 @@ def sources_block(report: dict) -> str:
     return "".join(out)
 
 
-def path_sources_line(p: dict) -> str:
+def path_sources_line(p: KeyPath) -> str:
     """One line under a path's title: same-source or cross-source, in words."""
-    s = p.get("sources")
-    if not isinstance(s, dict):
+    s = p.sources
+    if s is None:
         return ""
-    cls = "cross-source" if s.get("free_of_same_rater_bias") else "same-source"
-    return f'<p class="sub {cls}">{h(s.get("note"))}</p>'
+    cls = "cross-source" if s.free_of_same_rater_bias else "same-source"
+    return f'<p class="sub {cls}">{h(s.note)}</p>'
 
 
-def cross_source_section(report: dict, figs: Figures | None = None) -> str:
+def cross_source_section(report: Report, figs: Figures | None = None) -> str:
     """Each same-source path beside its cross-source counterpart: a table and a figure."""
     figs = figs or Figures()
-    paths = [p for p in report.get("paths") or [] if isinstance(p, dict) and p.get("cross_source_check")]
+    paths = [p for p in report.paths if isinstance(p.cross_source_check, Mapping) and p.cross_source_check]
     if not paths:
         return ""
     out = ["<p>A path answered by the same people at both ends can be inflated or hidden by their shared "
@@ -69,10 +72,10 @@ def cross_source_section(report: dict, figs: Figures | None = None) -> str:
            "construct in a second source too, each correction of the same-source path is set beside the "
            "cross-source estimate: the closer a correction comes, the better it worked on these data.</p>"]
     for i, p in enumerate(paths):
-        c = p["cross_source_check"]
+        c = p.cross_source_check
         b = c.get("benchmark") or {}
         cp = c.get("counterpart") or {}
-        bench_ci = b.get("ci") if isinstance(b.get("ci"), list) and len(b["ci"]) == 2 else None
+        bench_ci = b.get("ci") if isinstance(b.get("ci"), list | tuple) and len(b["ci"]) == 2 else None
         rows, classes, forest = [], [], []
         for m, e in (c.get("by_estimate") or {}).items():
             within = e.get("within_benchmark_ci")
@@ -80,7 +83,7 @@ def cross_source_section(report: dict, figs: Figures | None = None) -> str:
                          num(e.get("estimate")), interval(e.get("ci")), signed(e.get("difference")),
                          "yes" if within else ("no" if within is not None else "\u2014")])
             classes.append("preferred" if m == c.get("closest") else "")
-            ci = e.get("ci") if isinstance(e.get("ci"), list) and len(e["ci"]) == 2 else None
+            ci = e.get("ci") if isinstance(e.get("ci"), list | tuple) and len(e["ci"]) == 2 else None
             forest.append(svg.ForestRow(method_label(m), f"{num(e.get('estimate'))}, gap {signed(e.get('difference'))}",
                                         e.get("estimate"), ci[0] if ci else None, ci[1] if ci else None,
                                         preferred=m == c.get("closest"), highlight_word="closest"))
@@ -94,7 +97,7 @@ def cross_source_section(report: dict, figs: Figures | None = None) -> str:
                                 "and its interval", b["estimate"], *(bench_ci or (None, None)))
         desc = "; ".join(f"{r.label}: {r.value_text}" for r in forest)
         chart = svg.forest_plot(forest, ident=f"cross-{i + 1}-svg", reference=ref, desc=desc,
-                                title=f"Each correction of {p.get('predictor')} \u2192 {p.get('outcome')} "
+                                title=f"Each correction of {p.predictor} \u2192 {p.outcome} "
                                       "against the cross-source estimate")
         cap = (f"<strong>Figure {figs.next()}.</strong> Each estimate of {path_title(p)} (points, with intervals) "
                f"against the cross-source estimate of {cross} (green line, its interval shaded). The "

@@ -10,11 +10,25 @@ from __future__ import annotations
 
 import io
 import re
+from collections.abc import Mapping
 from typing import Any
 
 import pandas as pd
 
 from samesource.corrections.paths import LABELS
+from samesource.output.report import (
+    NO_CHECK,
+    Estimate,
+    FornellLarcker,
+    ItemStats,
+    MethodVariance,
+    ModelTest,
+    Pair,
+    Report,
+    Teams,
+    Threshold,
+    method_label,
+)
 
 METHOD_LABELS = LABELS  # each correction's label (corrections/paths.py CORRECTIONS)
 
@@ -32,15 +46,11 @@ LEVELS = ("none", "minor", "substantial")
 SMALL_GROUP_RULE = "groups with fewer respondents than min_group_size are never shown"
 
 
-def method_label(key: str) -> str:
-    return METHOD_LABELS.get(key, key.replace("_", " ").capitalize())
-
-
-def pair(report_pairs: dict | None, a: str, b: str) -> Any:
-    """The value stored under "A|B" (design order) for two constructs, either way round."""
-    if not report_pairs:
+def pair(pairs: Mapping[Pair, Any] | None, a: str, b: str) -> Any:
+    """The value stored for two constructs ((A, B) in design order), either way round."""
+    if not pairs:
         return None
-    return report_pairs.get(f"{a}|{b}", report_pairs.get(f"{b}|{a}"))
+    return pairs.get((a, b), pairs.get((b, a)))
 
 
 def split_pair(key: str) -> tuple[str, str]:
@@ -48,31 +58,31 @@ def split_pair(key: str) -> tuple[str, str]:
     return a, b
 
 
-def absent_reason(report: dict, method: str, entry: dict | None) -> str:
+def absent_reason(report: Report | Mapping, method: str, entry: Estimate | None) -> str:
     """Why a path estimate is missing: the estimate's own note, else what the design lacks."""
-    if entry is not None and entry.get("note"):
-        return str(entry["note"])
-    mv = report.get("method_variance") or {}
+    if entry is not None and entry.note:
+        return str(entry.note)
+    mv = Report.of(report).method_variance
     if method == "marker_adjusted":
-        return "the design has no marker construct" if not mv.get("marker") else "the marker adjustment could not be computed"
+        return "the design has no marker construct" if not mv.check("marker") else "the marker adjustment could not be computed"
     if method == "method_factor_adjusted":
-        mf = mv.get("method_factor") or {}
-        if not mf.get("usable_as_correction"):
+        mf = mv.check("method_factor")
+        if mf is None or not mf.usable_as_correction:
             return "no method factor passed its identification checks (see the common-method checks)"
         return "the method-factor model could not be estimated"
     if method == "measured_method_adjusted":
-        mm = mv.get("measured_method")
-        if not mm:
+        mm = mv.check("measured_method")
+        if mm is None:
             return "the design has no method construct"
-        return f"the measured-method model did not fit cleanly (status {mm.get('status', 'unknown')})"
+        return f"the measured-method model did not fit cleanly (status {mm.status or 'unknown'})"
     return "not computed for this design"
 
 
-def meets(value: float | None, threshold: dict | None) -> bool | None:
-    """Whether a value satisfies a report threshold {value, direction}; None when either is missing."""
-    if value is None or not threshold or threshold.get("value") is None:
+def meets(value: float | None, threshold: Threshold | None) -> bool | None:
+    """Whether a value satisfies a report threshold (value, direction); None when either is missing."""
+    if value is None or threshold is None or threshold.value is None:
         return None
-    t, d = threshold["value"], threshold.get("direction", ">=")
+    t, d = threshold.value, threshold.direction or ">="
     return {">=": value >= t, ">": value > t, "<=": value <= t, "<": value < t}.get(d)
 
 
@@ -91,175 +101,173 @@ def _check_key(signal: str) -> str | None:
     return None
 
 
-def _rule_for(key: str | None, mv: dict) -> str:
-    sec = mv.get(key) if key else None
-    if isinstance(sec, dict) and sec.get("rule"):
-        return str(sec["rule"])
+def _rule_for(key: str | None, mv: MethodVariance) -> str:
+    sec = mv.check(key) if key else None
+    if sec is not None and sec.rule:
+        return str(sec.rule)
     starts = {"method_factor": "method factor", "measured_method": "method factor",
               "cfa_marker": "cfa marker", "marker": "marker correlation", "harman": "harman",
               "collinearity_vif": "full-collinearity"}.get(key or "")
-    rules = (mv.get("verdict") or {}).get("rules") or []
+    rules = mv.verdict.rules or ()
     return next((str(r) for r in rules if starts and str(r).lower().startswith(starts)), "")
 
 
-def method_check_rows(report: dict) -> list[dict]:
+def _p(test: ModelTest | None) -> float | None:
+    return test.p if test is not None else None
+
+
+def method_check_rows(report: Report | Mapping) -> list[dict]:
     """One row per signal the verdict weighed: check, signal, value, test p, rule, level, flag."""
-    mv = report.get("method_variance") or {}
-    verdict = mv.get("verdict") or {}
+    mv = Report.of(report).method_variance
     rows = []
-    for reason in verdict.get("reasons") or []:
+    for reason in mv.verdict.reasons or ():
         m = _REASON.match(str(reason))
         level, signal = (m.group(1), m.group(2)) if m else (None, str(reason))
         key = _check_key(signal)
-        sec = mv.get(key) if key else None
-        sec = sec if isinstance(sec, dict) else {}
+        sec = (mv.check(key) if key else None) or NO_CHECK
         value, value_name, p = None, None, None
         if key in ("method_factor", "measured_method"):
-            value, value_name = sec.get("method_share"), "method share"
-            p = ((sec.get("tests") or {}).get("method_vs_none") or {}).get("p")
+            value, value_name = sec.method_share, "method share"
+            p = _p(sec.tests.get("method_vs_none"))
         elif key == "cfa_marker":
-            tests = sec.get("tests") or {}
             if "correlations change" in signal:
-                held = next((v for k, v in tests.items() if k.endswith("_vs_held")), None) or {}
-                value, value_name, p = held.get("chi2_diff"), "chi-square difference", held.get("p")
+                held = next((t for k, t in sec.tests.items() if k.endswith("_vs_held")), None)
+                value, value_name, p = (held.chi2_diff if held else None), "chi-square difference", _p(held)
             else:
-                value, value_name = sec.get("method_share_overall"), "method share"
-                p = (tests.get("baseline_vs_equal") or {}).get("p")
+                value, value_name = sec.method_share_overall, "method share"
+                p = _p(sec.tests.get("baseline_vs_equal"))
         elif key == "marker":
-            value, value_name, p = sec.get("r_m"), "r_M", sec.get("r_m_p")
+            value, value_name, p = sec.r_m, "r_M", sec.r_m_p
         elif key == "harman":
             # the rule reads the first factor's share and the eigenvalues, not a test
-            value, value_name = sec.get("first_factor_share"), "first-factor share"
+            value, value_name = sec.first_factor_share, "first-factor share"
         elif key == "collinearity_vif":
-            vals = [v for v in (sec.get("values") or {}).values() if v is not None]
+            vals = [v for v in (sec.values or {}).values() if v is not None]
             value, value_name = (max(vals) if vals else None), "highest VIF"
         rows.append({"check": CHECK_LABELS.get(key, "check") if key else "check", "check_key": key,
                      "signal": signal, "value_name": value_name, "value": value, "test_p": p,
-                     "rule": _rule_for(key, mv), "level": level,
-                     "flag": sec.get("flag") if "flag" in sec else None})
+                     "rule": _rule_for(key, mv), "level": level, "flag": sec.flag})
     return rows
 
 
 # --------------------------------------------------------------------------- teams
 
-def visible_groups(teams: dict) -> list[dict]:
+def visible_groups(teams: Teams) -> tuple[Mapping, ...]:
     """Group scores with at least min_group_size respondents; smaller groups are never shown."""
-    k = teams.get("min_group_size")
-    out = []
-    for g in teams.get("group_scores") or []:
-        n = g.get("n")
-        if k is None or n is None or n < k:
-            continue  # unknown size or below the minimum: not shown
-        out.append(g)
-    return out
+    return teams.visible_groups
 
 
 # --------------------------------------------------------------------------- the tables
 
-def report_tables(report: dict) -> dict[str, pd.DataFrame]:
+def _lo_hi(pair_: Any) -> tuple[Any, Any]:
+    return (pair_[0], pair_[1]) if pair_ else (None, None)
+
+
+def report_tables(report: Report | Mapping) -> dict[str, pd.DataFrame]:
     """Every table of the report in long (tidy) form; the first is the cautions."""
+    r = Report.of(report)
     t: dict[str, pd.DataFrame] = {}
-    t["cautions"] = pd.DataFrame({"number": range(1, len(report.get("cautions") or []) + 1),
-                                  "caution": list(report.get("cautions") or [])})
-    th = report.get("thresholds") or {}
-    constructs = report.get("constructs") or {}
+    t["cautions"] = pd.DataFrame({"number": range(1, len(r.cautions) + 1), "caution": list(r.cautions)})
+    th = r.thresholds
 
     rows = []
-    for name, c in constructs.items():
-        ci = c.get("alpha_ci") or [None, None]
-        rows.append({"construct": name, "role": c.get("role"), "n_items": len(c.get("items") or []),
-                     "n": c.get("n"), "alpha": c.get("alpha"), "alpha_ci_lo": ci[0], "alpha_ci_hi": ci[1],
-                     "omega": c.get("omega"), "composite_reliability": c.get("composite_reliability"),
-                     "ave": c.get("ave"),
-                     "alpha_meets": meets(c.get("alpha"), th.get("alpha")),
-                     "omega_meets": meets(c.get("omega"), th.get("omega")),
-                     "cr_meets": meets(c.get("composite_reliability"), th.get("composite_reliability")),
-                     "ave_meets": meets(c.get("ave"), th.get("ave"))})
+    for name, c in r.constructs.items():
+        lo, hi = _lo_hi(c.alpha_ci)
+        rows.append({"construct": name, "role": c.role, "n_items": len(c.items or ()),
+                     "n": c.n, "alpha": c.alpha, "alpha_ci_lo": lo, "alpha_ci_hi": hi,
+                     "omega": c.omega, "composite_reliability": c.composite_reliability,
+                     "ave": c.ave,
+                     "alpha_meets": meets(c.alpha, th.get("alpha")),
+                     "omega_meets": meets(c.omega, th.get("omega")),
+                     "cr_meets": meets(c.composite_reliability, th.get("composite_reliability")),
+                     "ave_meets": meets(c.ave, th.get("ave"))})
     t["constructs"] = _frame(rows, ["construct", "role", "n_items", "n", "alpha", "alpha_ci_lo", "alpha_ci_hi",
                                     "omega", "composite_reliability", "ave", "alpha_meets", "omega_meets",
                                     "cr_meets", "ave_meets"])
 
     rows = []
-    for name, c in constructs.items():
-        reverse = set(c.get("reverse") or [])
-        stats = c.get("item_stats") or {}
-        for item in c.get("items") or list(stats):
-            s = stats.get(item) or {}
+    for name, c in r.constructs.items():
+        reverse = set(c.reverse or ())
+        for item in c.items or tuple(c.item_stats):
+            s = c.item_stats.get(item) or ItemStats(None, None, None, None, None)
             rows.append({"construct": name, "item": item, "reverse_keyed": item in reverse,
-                         "loading": s.get("loading"), "loading_meets": meets(s.get("loading"), th.get("loading")),
-                         "item_rest_r": s.get("item_rest_r"), "alpha_if_deleted": s.get("alpha_if_deleted"),
-                         "mean": s.get("mean"), "sd": s.get("sd")})
+                         "loading": s.loading, "loading_meets": meets(s.loading, th.get("loading")),
+                         "item_rest_r": s.item_rest_r, "alpha_if_deleted": s.alpha_if_deleted,
+                         "mean": s.mean, "sd": s.sd})
     t["items"] = _frame(rows, ["construct", "item", "reverse_keyed", "loading", "loading_meets", "item_rest_r",
                                "alpha_if_deleted", "mean", "sd"])
 
-    mm = report.get("measurement_model") or {}
-    fit = mm.get("fit") or {}
+    mm = r.measurement_model
+    fit = mm.fit if mm is not None else None
     rows = []
     for key, label in (("chi2", "chi-square"), ("df", "degrees of freedom"), ("p", "p"), ("cfi", "CFI"),
                        ("tli", "TLI"), ("rmsea", "RMSEA"), ("rmsea_ci_lo", "RMSEA 90% CI lower"),
                        ("rmsea_ci_hi", "RMSEA 90% CI upper"), ("srmr", "SRMR"), ("n", "N")):
+        if fit is None:
+            break
         if key.startswith("rmsea_ci"):
-            ci = fit.get("rmsea_ci") or [None, None]
-            v = ci[0] if key.endswith("lo") else ci[1]
+            lo, hi = _lo_hi(fit.rmsea_ci)
+            v = lo if key.endswith("lo") else hi
         else:
-            v = fit.get(key)
-        thr = th.get(key) or {}
-        rows.append({"measure": key, "label": label, "value": v, "threshold": thr.get("value"),
-                     "direction": thr.get("direction"), "meets": meets(v, thr) if thr else None,
-                     "source": thr.get("source")})
-    t["fit"] = _frame(rows if fit else [], ["measure", "label", "value", "threshold", "direction", "meets", "source"])
+            v = getattr(fit, key)
+        thr = th.get(key)
+        rows.append({"measure": key, "label": label, "value": v, "threshold": thr.value if thr else None,
+                     "direction": thr.direction if thr else None, "meets": meets(v, thr) if thr else None,
+                     "source": thr.source if thr else None})
+    t["fit"] = _frame(rows, ["measure", "label", "value", "threshold", "direction", "meets", "source"])
 
     t["factor_correlations"] = _frame(
         [{"construct_a": a, "construct_b": b, "r": v}
-         for (a, b), v in ((split_pair(k), v) for k, v in (mm.get("factor_correlations") or {}).items())],
+         for (a, b), v in (mm.factor_correlations.items() if mm else ())],
         ["construct_a", "construct_b", "r"])
     t["htmt"] = _frame(
         [{"construct_a": a, "construct_b": b, "htmt": v,
           "below_strict": meets(v, th.get("htmt_strict")), "below_liberal": meets(v, th.get("htmt_liberal"))}
-         for (a, b), v in ((split_pair(k), v) for k, v in (mm.get("htmt") or {}).items())],
+         for (a, b), v in (mm.htmt.items() if mm else ())],
         ["construct_a", "construct_b", "htmt", "below_strict", "below_liberal"])
+    no_fl = FornellLarcker(None, None, None, None)
     t["fornell_larcker"] = _frame(
-        [{"construct_a": a, "construct_b": b, "r_squared": v.get("r_squared"), "ave_a": v.get("ave_a"),
-          "ave_b": v.get("ave_b"), "holds": v.get("holds")}
-         for (a, b), v in ((split_pair(k), v or {}) for k, v in (mm.get("fornell_larcker") or {}).items())],
+        [{"construct_a": a, "construct_b": b, "r_squared": v.r_squared, "ave_a": v.ave_a,
+          "ave_b": v.ave_b, "holds": v.holds}
+         for (a, b), v in ((k, v or no_fl) for k, v in (mm.fornell_larcker.items() if mm else ()))],
         ["construct_a", "construct_b", "r_squared", "ave_a", "ave_b", "holds"])
 
-    verdict = (report.get("method_variance") or {}).get("verdict") or {}
+    verdict = r.method_variance.verdict
+    has_verdict = verdict.given
     t["method_checks"] = _frame(
-        [{k: r[k] for k in ("check", "signal", "value_name", "value", "test_p", "rule", "level", "flag")}
-         for r in method_check_rows(report)]
-        + ([{"check": "verdict", "signal": verdict.get("summary"), "level": verdict.get("level")}] if verdict else []),
+        [{k: row[k] for k in ("check", "signal", "value_name", "value", "test_p", "rule", "level", "flag")}
+         for row in method_check_rows(r)]
+        + ([{"check": "verdict", "signal": verdict.summary, "level": verdict.level}] if has_verdict else []),
         ["check", "signal", "value_name", "value", "test_p", "rule", "level", "flag"])
 
-    paths = report.get("paths") or []
     rows, sens, summ = [], [], []
-    for p in paths:
-        for method, e in (p.get("estimates") or {}).items():
-            ci = (e or {}).get("ci") or [None, None]
-            b = (e or {}).get("bootstrap") or {}
-            pct = b.get("ci_percentile") or [None, None]
-            bca = b.get("ci_bca") or [None, None]
-            available = bool(e) and e.get("estimate") is not None
-            rows.append({"outcome": p.get("outcome"), "predictor": p.get("predictor"), "method": method,
-                         "label": method_label(method), "estimate": (e or {}).get("estimate"),
-                         "se": (e or {}).get("se"), "ci_lo": ci[0], "ci_hi": ci[1], "p": (e or {}).get("p"),
-                         "ci_method": (e or {}).get("ci_method"), "status": (e or {}).get("status", "absent"),
-                         "preferred": method == p.get("preferred"),
-                         "note": (e or {}).get("note") if available else absent_reason(report, method, e),
-                         "n_boot": b.get("n_boot"), "boot_failed": b.get("n_failed"),
-                         "ci_percentile_lo": pct[0], "ci_percentile_hi": pct[1],
-                         "ci_bca_lo": bca[0], "ci_bca_hi": bca[1]})
-        s = p.get("sensitivity") or {}
-        for pt in s.get("curve") or []:
-            ci = pt.get("ci") or [None, None]
-            sens.append({"outcome": p.get("outcome"), "predictor": p.get("predictor"),
-                         "method_share": pt.get("method_share"), "estimate": pt.get("estimate"),
-                         "ci_lo": ci[0], "ci_hi": ci[1]})
-        summ.append({"outcome": p.get("outcome"), "predictor": p.get("predictor"),
-                     "break_even_method_share": s.get("break_even_method_share"),
-                     "ci_covers_zero_at": s.get("ci_covers_zero_at"),
-                     "estimated_method_share": s.get("estimated_method_share"),
-                     "model_holds_up_to": s.get("model_holds_up_to")})
+    for p in r.paths:
+        for method, e in p.estimates.items():
+            lo, hi = _lo_hi(e.ci if e else None)
+            b = e.bootstrap if e else None
+            pct_lo, pct_hi = _lo_hi(b.ci_percentile if b else None)
+            bca_lo, bca_hi = _lo_hi(b.ci_bca if b else None)
+            available = e is not None and e.estimate is not None
+            rows.append({"outcome": p.outcome, "predictor": p.predictor, "method": method,
+                         "label": method_label(method), "estimate": e.estimate if e else None,
+                         "se": e.se if e else None, "ci_lo": lo, "ci_hi": hi, "p": e.p if e else None,
+                         "ci_method": e.ci_method if e else None, "status": e.status if e else "absent",
+                         "preferred": method == p.preferred,
+                         "note": e.note if available else absent_reason(r, method, e),
+                         "n_boot": b.n_boot if b else None, "boot_failed": b.n_failed if b else None,
+                         "ci_percentile_lo": pct_lo, "ci_percentile_hi": pct_hi,
+                         "ci_bca_lo": bca_lo, "ci_bca_hi": bca_hi})
+        s = p.sensitivity
+        for pt in s.curve if s else ():
+            lo, hi = _lo_hi(pt.ci)
+            sens.append({"outcome": p.outcome, "predictor": p.predictor,
+                         "method_share": pt.method_share, "estimate": pt.estimate,
+                         "ci_lo": lo, "ci_hi": hi})
+        summ.append({"outcome": p.outcome, "predictor": p.predictor,
+                     "break_even_method_share": s.break_even_method_share if s else None,
+                     "ci_covers_zero_at": s.ci_covers_zero_at if s else None,
+                     "estimated_method_share": s.estimated_method_share if s else None,
+                     "model_holds_up_to": s.model_holds_up_to if s else None})
     t["paths"] = _frame(rows, ["outcome", "predictor", "method", "label", "estimate", "se", "ci_lo", "ci_hi", "p",
                                "ci_method", "status", "preferred", "note", "n_boot", "boot_failed",
                                "ci_percentile_lo", "ci_percentile_hi", "ci_bca_lo", "ci_bca_hi"])
@@ -267,43 +275,42 @@ def report_tables(report: dict) -> dict[str, pd.DataFrame]:
     t["sensitivity_summary"] = _frame(summ, ["outcome", "predictor", "break_even_method_share", "ci_covers_zero_at",
                                              "estimated_method_share", "model_holds_up_to"])
 
-    sc = report.get("screening") or {}
-    t["screening"] = _frame([{"row": f.get("row"), "reasons": "; ".join(f.get("reasons") or [])}
-                             for f in sc.get("flagged_rows") or []], ["row", "reasons"])
-    t["screening_rules"] = _frame([{"check": k, "rule": v.get("rule"), "flagged": v.get("flagged")}
-                                   for k, v in (sc.get("checks") or {}).items()], ["check", "rule", "flagged"])
-    t["warnings"] = _frame([{"code": w.get("code"), "message": w.get("message")}
-                            for w in report.get("warnings") or []], ["code", "message"])
+    sc = r.screening
+    t["screening"] = _frame([{"row": f.row, "reasons": "; ".join(f.reasons or ())} for f in sc.flagged_rows],
+                            ["row", "reasons"])
+    t["screening_rules"] = _frame([{"check": k, "rule": v.rule, "flagged": v.flagged} for k, v in sc.checks.items()],
+                                  ["check", "rule", "flagged"])
+    t["warnings"] = _frame([{"code": w.code, "message": w.message} for w in r.warnings], ["code", "message"])
 
-    _source_tables(report, t)
+    _source_tables(r, t)
 
-    teams = report.get("teams")
-    if isinstance(teams, dict):
-        groups = visible_groups(teams)
+    teams = r.teams
+    if teams is not None:
+        groups = teams.visible_groups
         names = list(dict.fromkeys(k for g in groups for k in g))
         t["teams"] = _frame([dict(g) for g in groups], names or ["group", "n"])
         t["team_constructs"] = _frame(
-            [{"construct": k, **(v or {})} for k, v in (teams.get("constructs") or {}).items()],
+            [{"construct": k, **(v or {})} for k, v in teams.constructs.items()],
             ["construct", "icc1", "icc2", "rwg_j_median"])
-        t["team_paths"] = _frame([flatten(tp) for tp in teams.get("paths") or []], ["outcome", "predictor"])
+        t["team_paths"] = _frame([flatten(tp) for tp in teams.paths], ["outcome", "predictor"])
     return t
 
 
-def _source_tables(report: dict, t: dict[str, pd.DataFrame]) -> None:
+def _source_tables(report: Report, t: dict[str, pd.DataFrame]) -> None:
     """The second sources' joins, the cross-source comparisons and the correction check, when
     the report has them (measurement/input/sources.py, source_paths.py, correction_check.py)."""
-    sources = (report.get("data") or {}).get("sources")
+    sources = report.data.sources
     if sources:
         t["sources"] = _frame([{k: v for k, v in flatten(s).items() if not k.startswith("examples")}
                                for s in sources.values()], ["name", "file", "rows", "matched"])
     rows = []
-    for p in report.get("paths") or []:
-        c = p.get("cross_source_check")
+    for p in report.paths:
+        c = p.cross_source_check
         if not c:
             continue
         b = c.get("benchmark") or {}
         for m, e in (c.get("by_estimate") or {}).items():
-            rows.append({"outcome": p["outcome"], "predictor": p["predictor"],
+            rows.append({"outcome": p.outcome, "predictor": p.predictor,
                          "counterpart_outcome": c["counterpart"]["outcome"],
                          "counterpart_predictor": c["counterpart"]["predictor"], "method": m,
                          "estimate": e.get("estimate"), "benchmark_method": b.get("method"),
@@ -311,21 +318,20 @@ def _source_tables(report: dict, t: dict[str, pd.DataFrame]) -> None:
                          "within_benchmark_ci": e.get("within_benchmark_ci"), "closest": m == c.get("closest")})
     if rows:
         t["cross_source"] = _frame(rows, list(rows[0]))
-    check = report.get("correction_check") or {}
-    rows = [{"outcome": p["outcome"], "predictor": p["predictor"], "truth": p["truth"], "scenario": sid, "method": m,
-             **e, "lean_on": m == p.get("lean_on")}
-            for p in check.get("paths") or [] for sid, per in (p.get("scenarios") or {}).items()
-            for m, e in per.items()]
+    check = report.correction_check
+    rows = [{"outcome": p.outcome, "predictor": p.predictor, "truth": p.truth, "scenario": sid, "method": m,
+             **(e or {}), "lean_on": m == p.lean_on}
+            for p in (check.paths if check else ()) for sid, per in p.scenarios.items() for m, e in per.items()]
     if rows:
         t["correction_check"] = _frame(rows, list(rows[0]))
 
 
-def flatten(d: dict, prefix: str = "") -> dict:
-    """Nested dicts and [lo, hi] pairs as flat columns ("within_estimate", "within_ci_lo")."""
+def flatten(d: Mapping, prefix: str = "") -> dict:
+    """Nested mappings and [lo, hi] pairs as flat columns ("within_estimate", "within_ci_lo")."""
     out: dict = {}
     for k, v in d.items():
         name = f"{prefix}{k}"
-        if isinstance(v, dict):
+        if isinstance(v, Mapping):
             out.update(flatten(v, f"{name}_"))
         elif isinstance(v, list | tuple) and len(v) == 2 and all(x is None or isinstance(x, int | float) for x in v):
             out[f"{name}_lo"], out[f"{name}_hi"] = v

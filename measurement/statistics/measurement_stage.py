@@ -3,7 +3,7 @@ Fornell-Larcker."""
 
 from __future__ import annotations
 
-from typing import Any
+from types import MappingProxyType
 
 import pandas as pd
 
@@ -12,6 +12,7 @@ from samesource.engine.fitting import fit_model
 from samesource.input.design import Design
 from samesource.input.missing import MissingPlan
 from samesource.options import AnalysisOptions
+from samesource.results import FitCache, MeasurementResult, Notice, ScaleValidity, freeze
 from samesource.statistics.reliability import average_variance_extracted, composite_reliability
 from samesource.statistics.validity import HTMT_VARIANT, fornell_larcker, htmt, htmt2
 
@@ -22,24 +23,23 @@ def item_correlations(plan: MissingPlan, items: list[str]) -> pd.DataFrame:
 
 
 def measurement_model_section(design: Design, plan: MissingPlan, opts: AnalysisOptions,
-                              fits: dict[str, Any], constructs: dict[str, dict],
-                              warnings: list[dict]) -> dict:
+                              fits: FitCache) -> MeasurementResult:
+    """report["measurement_model"], and each scale's standardized loadings, CR and AVE (the
+    assembly merges those into report["constructs"]); the fit goes into ``fits``."""
     spec = measurement_model(design)
     fit = fit_model(spec, plan.data_for(list(spec.observed)), time_limit=opts.fit_time_limit,
                     n_starts=opts.n_starts, seed=opts.seed)
     fits[spec.name] = fit
     names = list(design.constructs)
-    for w in fit.warnings:
-        warnings.append({"code": "measurement_model", "message": f"Measurement model: {w}"})
+    said = tuple(Notice("measurement_model", f"Measurement model: {w}") for w in fit.warnings)
 
     ave: dict[str, float] = {}
+    scales: dict[str, ScaleValidity] = {}
     for c in design.constructs.values():
         std = [fit.std("load", c.name, it) for it in c.items]
-        for it, v in zip(c.items, std, strict=True):
-            constructs[c.name]["item_stats"][it]["loading"] = v
-        constructs[c.name]["composite_reliability"] = composite_reliability(std)
         ave[c.name] = average_variance_extracted(std)
-        constructs[c.name]["ave"] = ave[c.name]
+        scales[c.name] = ScaleValidity(loadings=MappingProxyType(dict(zip(c.items, std, strict=True))),
+                                       composite_reliability=composite_reliability(std), ave=ave[c.name])
 
     corr = {}
     for i, a in enumerate(names):
@@ -51,7 +51,7 @@ def measurement_model_section(design: Design, plan: MissingPlan, opts: AnalysisO
     ht2 = htmt2(icorr, blocks)
     fl = fornell_larcker(ave, corr)
 
-    return {
+    section = {
         "fit": fit.fit_indices(),
         "status": fit.status,
         "estimator": fit.estimator,
@@ -62,3 +62,4 @@ def measurement_model_section(design: Design, plan: MissingPlan, opts: AnalysisO
         "htmt_variant": HTMT_VARIANT,
         "fornell_larcker": {f"{a}|{b}": v for (a, b), v in fl.items()},
     }
+    return MeasurementResult(section=freeze(section), scales=MappingProxyType(scales), notices=said)

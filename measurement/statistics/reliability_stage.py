@@ -1,45 +1,38 @@
-"""Per-construct reliability: alpha with its Feldt interval, omega, item statistics."""
+"""The reliability stage: per construct, alpha with its Feldt interval, omega, item statistics."""
 
 from __future__ import annotations
 
-from typing import Any
+from types import MappingProxyType
 
 from samesource.engine.builders import single_factor_model
 from samesource.engine.fitting import fit_model
 from samesource.input.design import MIN_ITEMS_OMEGA, Design
 from samesource.input.missing import MissingPlan
 from samesource.options import AnalysisOptions
+from samesource.results import (
+    FitCache,
+    ItemReliability,
+    Notice,
+    ReliabilityResult,
+    ScaleReliability,
+)
 from samesource.statistics.reliability import cronbach_alpha, item_statistics, omega_total
 
 
 def construct_reliability(design: Design, plan: MissingPlan, opts: AnalysisOptions,
-                          fits: dict[str, Any], warnings: list[dict]) -> dict[str, dict]:
-    out: dict[str, dict] = {}
+                          fits: FitCache) -> ReliabilityResult:
+    """Each scale's alpha, omega and item statistics (its one-factor fits go into ``fits``)."""
+    scales: dict[str, ScaleReliability] = {}
+    said: list[Notice] = []
     for c in design.constructs.values():
         complete = plan.complete(c.items)
         alpha = cronbach_alpha(complete, confidence=opts.confidence)
         stats = item_statistics(complete)
-        entry: dict[str, Any] = {
-            "role": c.role,
-            "items": list(c.items),
-            "reverse": list(c.reverse),
-            "n": int(alpha.n),
-            "alpha": alpha.alpha,
-            "alpha_ci": list(alpha.ci) if alpha.ci is not None else None,
-            "omega": None,
-            "composite_reliability": None,
-            "ave": None,
-            "item_stats": {
-                it: {"loading": None, "item_rest_r": stats.loc[it, "item_rest_r"],
-                     "alpha_if_deleted": stats.loc[it, "alpha_if_deleted"],
-                     "mean": stats.loc[it, "mean"], "sd": stats.loc[it, "sd"]}
-                for it in c.items
-            },
-        }
+        omega = None
         if len(c.items) < MIN_ITEMS_OMEGA:
-            warnings.append({"code": "omega_needs_three_items",
-                             "message": f"Omega for '{c.name}' is not computed: a one-factor model of "
-                                        f"{len(c.items)} items is not identified on its own (3 items needed)."})
+            said.append(Notice("omega_needs_three_items",
+                               f"Omega for '{c.name}' is not computed: a one-factor model of "
+                               f"{len(c.items)} items is not identified on its own (3 items needed)."))
         else:
             spec = single_factor_model(c)
             fit = fit_model(spec, plan.data_for(c.items), time_limit=opts.fit_time_limit,
@@ -48,15 +41,22 @@ def construct_reliability(design: Design, plan: MissingPlan, opts: AnalysisOptio
             if fit.status == "ok":
                 lam = [fit.est("load", c.name, it) for it in c.items]
                 theta = [fit.est("cov", it, it) for it in c.items]
-                entry["omega"] = omega_total(lam, theta)
+                omega = omega_total(lam, theta)
                 neg = [it for it, v in zip(c.items, lam, strict=True) if v < 0]
                 if neg:
-                    warnings.append({"code": "negative_loading",
-                                     "message": f"In '{c.name}', item(s) {', '.join(neg)} load negatively on "
-                                                "the construct: check whether they are reverse-keyed in the design."})
+                    said.append(Notice("negative_loading",
+                                       f"In '{c.name}', item(s) {', '.join(neg)} load negatively on "
+                                       "the construct: check whether they are reverse-keyed in the design."))
             else:
-                warnings.append({"code": "omega_fit_failed",
-                                 "message": f"Omega for '{c.name}' is not reported: its one-factor model "
-                                            f"ended with status '{fit.status}'. " + " ".join(fit.warnings)})
-        out[c.name] = entry
-    return out
+                said.append(Notice("omega_fit_failed",
+                                   f"Omega for '{c.name}' is not reported: its one-factor model "
+                                   f"ended with status '{fit.status}'. " + " ".join(fit.warnings)))
+        scales[c.name] = ScaleReliability(
+            role=c.role, items=tuple(c.items), reverse=tuple(c.reverse), n=int(alpha.n),
+            alpha=alpha.alpha, alpha_ci=tuple(alpha.ci) if alpha.ci is not None else None, omega=omega,
+            item_stats=MappingProxyType({
+                it: ItemReliability(item_rest_r=stats.loc[it, "item_rest_r"],
+                                    alpha_if_deleted=stats.loc[it, "alpha_if_deleted"],
+                                    mean=stats.loc[it, "mean"], sd=stats.loc[it, "sd"])
+                for it in c.items}))
+    return ReliabilityResult(scales=MappingProxyType(scales), notices=tuple(said))

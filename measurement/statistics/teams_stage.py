@@ -8,6 +8,7 @@ from samesource.input.design import Design
 from samesource.input.missing import MissingPlan
 from samesource.input.prepare import PreparedData
 from samesource.options import AnalysisOptions
+from samesource.results import Notice, SectionResult, freeze
 from samesource.statistics.scores import scale_scores
 from samesource.statistics.teams import (
     group_table,
@@ -29,9 +30,11 @@ MEANING = {
 
 
 def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
-                  opts: AnalysisOptions, warnings: list[dict]) -> dict | None:
+                  opts: AnalysisOptions) -> SectionResult:
+    """report["teams"] (None without a group column) and its notices."""
     if not design.group_column or prepared.groups is None:
-        return None
+        return SectionResult(None)
+    said: list[Notice] = []
     groups = prepared.groups.reindex(plan.frame.index)
     keep = groups.notna()
     frame, groups = plan.frame[keep], groups[keep].astype(str)
@@ -66,9 +69,9 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
         with np.errstate(all="ignore"):
             wb = within_between(y, X, gg)
         if wb is None:
-            warnings.append({"code": "too_few_teams",
-                             "message": f"Too few teams with two or more respondents to estimate the "
-                                        f"within- and between-team paths of {p.outcome}."})
+            said.append(Notice("too_few_teams",
+                               f"Too few teams with two or more respondents to estimate the "
+                               f"within- and between-team paths of {p.outcome}."))
             continue
         split = split_team_estimate(sub.to_numpy(), gg, seed=opts.seed, confidence=opts.confidence)
         same = same_source_team_estimate(sub.to_numpy(), gg)
@@ -92,18 +95,18 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
                                  "note": split.get("note")},
             })
         if wb["difference"]["p"] < 0.05:
-            warnings.append({"code": "within_between_differ",
-                             "message": f"For {p.outcome}, the within-team and between-team paths differ "
-                                        f"(p = {wb['difference']['p']:.3f}): the predictors correlate with team "
-                                        "effects, so a single pooled (random-effects) estimate would be biased; "
-                                        "read the within-team path for individual-level questions."})
+            said.append(Notice("within_between_differ",
+                               f"For {p.outcome}, the within-team and between-team paths differ "
+                               f"(p = {wb['difference']['p']:.3f}): the predictors correlate with team "
+                               "effects, so a single pooled (random-effects) estimate would be biased; "
+                               "read the within-team path for individual-level questions."))
 
     table, withheld = group_table(scores, groups, min_size)
     if withheld:
-        warnings.append({"code": "small_groups_withheld",
-                         "message": f"{withheld} group(s) with fewer than {min_size} respondents are left out "
-                                    "of every group-level table; their members still count in pooled results."})
-    return {
+        said.append(Notice("small_groups_withheld",
+                           f"{withheld} group(s) with fewer than {min_size} respondents are left out "
+                           "of every group-level table; their members still count in pooled results."))
+    return SectionResult(freeze({
         "group_column": design.group_column,
         "groups": int(len(sizes)),
         "groups_reported": int((sizes >= min_size).sum()),
@@ -123,6 +126,6 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
             "Corrected for the unreliability of part-team means by Spearman-Brown from ICC(1); the "
             "interval is a team bootstrap.",
         ],
-    }
+    }), tuple(said))
 
 

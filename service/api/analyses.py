@@ -27,6 +27,7 @@ from .. import quotas
 from ..context import services
 from ..errors import ApiError, echo, from_input_error
 from .auth import tenant_id
+from .openapi import XLSX  # the format registry's media type, as the API documents it
 from .paging import page_args
 
 log = logging.getLogger("samesource.service")
@@ -297,7 +298,6 @@ def brief_html(analysis_id: str) -> Response:
     return _page(analysis_id, "render_brief", "one-page brief")
 
 
-XLSX = "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"
 
 
 def _tables(analysis_id: str) -> dict:
