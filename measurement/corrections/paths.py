@@ -30,7 +30,7 @@ from samesource.engine.builders import (
     without_method_factor,
 )
 from samesource.engine.fitting import FitResult, Moments, RawData, fit_model, refit
-from samesource.engine.robust_se import robust_se
+from samesource.engine.robust_se import PairMoments, pair_moments, robust_se
 from samesource.input.design import MAIN, Design, Path
 from samesource.method_checks.marker import choose_r_m, r_m_source
 from samesource.statistics.reliability import alpha_from_cov, omega_total
@@ -204,8 +204,23 @@ class PathEstimator:
         # the sandwich needs the rows the model was fitted to (not e.g. marker-adjusted moments)
         if rows is None or f.spec.name in run.robust_cache:
             return run.robust_cache.get(f.spec.name)
-        run.robust_cache[f.spec.name] = r = robust_se(f, self._rows_for(f, names, rows))
+        pm = self._pair_moments(run, rows, names) if f.means is None else None
+        if pm is not None and not set(f.spec.observed) <= set(pm.names):
+            pm = None
+        run.robust_cache[f.spec.name] = r = robust_se(f, pm if pm is not None else self._rows_for(f, names, rows))
         return r
+
+    def _pair_moments(self, run: _Run, rows: np.ndarray, names: list[str]) -> PairMoments | None:
+        """The fourth-order moments every ML sandwich on these rows takes its meat from,
+        formed once per set of rows over the columns the models use (the reduced design's
+        items, or the scale scores); None when a cell is missing (the scores need the rows)."""
+        key = tuple(names)
+        if key not in run.pair_cache:
+            used = set(self.reduced.items) | {score_name(c) for c in self.score_names}
+            cols = [i for i, n in enumerate(names) if n in used]
+            sub = rows[:, cols]
+            run.pair_cache[key] = None if np.isnan(sub).any() else pair_moments(sub, [names[i] for i in cols])
+        return run.pair_cache[key]
 
     def _from_fit(self, run: _Run, method: str, f: FitResult, eq: Path,
                   formula: dict[str, float] | None = None,
@@ -341,6 +356,7 @@ class _Run:
     fits: dict[str, FitResult]
     extra: dict[str, Any]
     robust_cache: dict[str, Any] = dataclasses.field(default_factory=dict)
+    pair_cache: dict[tuple[str, ...], PairMoments | None] = dataclasses.field(default_factory=dict)
 
 
 @dataclasses.dataclass(frozen=True)
