@@ -11,12 +11,14 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import linalg, stats
 
+from samesource.engine.fitting import _single_threaded_blas
 from samesource.engine.patterns import row_patterns, rows_by_pattern
 from samesource.errors import DesignError
 
 RULE_NAMES = ("longstring", "irv", "mahalanobis", "missing", "out_of_range")
+ROW_BLOCK = 65_536  # rows per block where a measure needs a temporary the size of its rows
 
 
 @dataclass(frozen=True)
@@ -115,7 +117,8 @@ def _intra_individual_variability(x: np.ndarray) -> np.ndarray:
     out = np.full(x.shape[0], np.nan)
     ok = m >= 2
     if ok.all() and m.min() == x.shape[1]:  # every row complete: the same SDs without NaN handling
-        out[:] = np.std(x, axis=1, ddof=1)
+        for s in range(0, x.shape[0], ROW_BLOCK):  # a block at a time: no copy of every row
+            out[s:s + ROW_BLOCK] = np.std(x[s:s + ROW_BLOCK], axis=1, ddof=1)
     elif ok.any():
         out[ok] = np.nanstd(x[ok], axis=1, ddof=1)
     return out
@@ -156,26 +159,28 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
             "there is no covariance matrix to measure against."
         )
         return d2, df, p, notes
-    mean = complete.mean(axis=0)
-    cov = np.atleast_2d(np.cov(complete, rowvar=False, ddof=1))
+    mean, cov = _mean_and_cov(complete)
     singular_rows = 0
-    # Rows that share a pattern of answered items share one sub-matrix: invert it once.
+    # Rows that share a pattern of answered items share one sub-matrix: factor it once.
     patterns, inverse = row_patterns(answered)
-    for pattern, rows in zip(patterns, rows_by_pattern(inverse, len(patterns)), strict=True):
-        if not pattern.any():
-            continue
-        sub = cov[np.ix_(pattern, pattern)]
-        eig = np.linalg.eigvalsh(sub)
-        if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
-            singular_rows += rows.size
-            continue
-        if rows.size == n and pattern.all():
-            dev = x - mean  # every row complete: no copy of the rows first
-        else:
-            dev = x[np.ix_(rows, pattern)] - mean[pattern]
-        vals = np.einsum("ij,ij->i", dev @ np.linalg.inv(sub), dev)
-        d2[rows] = vals
-        p[rows] = stats.chi2.sf(vals, int(pattern.sum()))
+    every = complete.shape[0] == n
+    with _single_threaded_blas():
+        for pattern, rows in zip(patterns, rows_by_pattern(inverse, len(patterns)), strict=True):
+            if not pattern.any():
+                continue
+            sub = cov[np.ix_(pattern, pattern)]
+            eig = np.linalg.eigvalsh(sub)
+            if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
+                singular_rows += rows.size
+                continue
+            L = linalg.cholesky(sub, lower=True)
+            for s in range(0, rows.size, ROW_BLOCK):
+                r = rows[s:s + ROW_BLOCK]
+                # every row complete: a slice of the rows, not a copy of them first
+                dev = x[s:s + r.size] - mean if every else x[np.ix_(r, pattern)] - mean[pattern]
+                z = linalg.solve_triangular(L, dev.T, lower=True, check_finite=False)
+                d2[r] = np.einsum("ij,ij->j", z, z)
+            p[rows] = stats.chi2.sf(d2[rows], int(pattern.sum()))
     if singular_rows:
         notes.append(
             f"Mahalanobis distance not computed for {singular_rows} row(s): the covariance "
@@ -184,6 +189,19 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
             "exact combinations of others."
         )
     return d2, df, p, notes
+
+
+def _mean_and_cov(complete: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Means and covariance (divisor n - 1) of complete rows, as ``np.cov`` gives them,
+    summed a block of rows at a time (no centred copy of every row)."""
+    n, k = complete.shape
+    mean = complete.mean(axis=0)
+    cross = np.zeros((k, k))
+    with _single_threaded_blas():
+        for s in range(0, n, ROW_BLOCK):
+            dev = complete[s:s + ROW_BLOCK] - mean
+            cross += dev.T @ dev
+    return mean, cross / (n - 1)
 
 
 def _rule_texts(
@@ -334,7 +352,9 @@ def screen_respondents(
         m = raw_answered.sum(axis=1)
         same = np.zeros(n, dtype=bool)
         ok = m >= max(rules.irv_min_items, 1)
-        if ok.any():
+        if ok.all():  # no copy of the rows when every row qualifies
+            same[:] = np.nanmax(raw, axis=1) == np.nanmin(raw, axis=1)
+        elif ok.any():
             # Identical answers, tested exactly rather than as a floating-point SD of 0.
             same[ok] = np.nanmax(raw[ok], axis=1) == np.nanmin(raw[ok], axis=1)
         flags["irv"] = same
@@ -366,11 +386,10 @@ def screen_respondents(
     def plain(v):
         return v.item() if isinstance(v, np.generic) else v
 
-    flagged_rows = [plain(i) for i in per_row.index[per_row["flagged"].to_numpy()]]
-    reasons = {
-        plain(idx): [r for r in RULE_NAMES if r in flags and bool(row[f"flag_{r}"])]
-        for idx, row in per_row[per_row["flagged"]].iterrows()
-    }
+    hit = per_row["flagged"].to_numpy(dtype=bool)
+    flagged_rows = [plain(i) for i in per_row.index[hit]]
+    broke = {r: flags[r][hit] for r in RULE_NAMES if r in flags}  # the flagged rows only
+    reasons = {idx: [r for r, f in broke.items() if f[j]] for j, idx in enumerate(flagged_rows)}
     counts = {r: int(flags[r].sum()) for r in RULE_NAMES if r in flags}
     texts = _rule_texts(rules, raw.shape[1], ls_threshold, raw_items is not None)
     if "out_of_range" in texts and "out_of_range" not in flags:
