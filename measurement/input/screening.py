@@ -173,13 +173,16 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
             if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
                 singular_rows += rows.size
                 continue
+            # One solve per pattern: the inverse of the Cholesky factor L of the sub-matrix, so a
+            # row's d2 is the squared length of L^-1 d (a sum of squares, never below zero).
             L = linalg.cholesky(sub, lower=True)
+            white = linalg.solve_triangular(L, np.eye(L.shape[0]), lower=True, check_finite=False).T
             for s in range(0, rows.size, ROW_BLOCK):
                 r = rows[s:s + ROW_BLOCK]
                 # every row complete: a slice of the rows, not a copy of them first
                 dev = x[s:s + r.size] - mean if every else x[np.ix_(r, pattern)] - mean[pattern]
-                z = linalg.solve_triangular(L, dev.T, lower=True, check_finite=False)
-                d2[r] = np.einsum("ij,ij->j", z, z)
+                z = dev @ white
+                d2[r] = np.einsum("ij,ij->i", z, z)
             p[rows] = stats.chi2.sf(d2[rows], int(pattern.sum()))
     if singular_rows:
         notes.append(
