@@ -127,8 +127,11 @@ class PathEstimator:
         return {"max_iter": max(50, 3 * prev.iterations),
                 "time_limit": min(self.time_limit, max(5.0, 30 * prev.elapsed))}
 
-    def _item_data(self, X: np.ndarray) -> tuple[Moments | RawData, np.ndarray]:
-        """Model input for the items, and the item covariance for closed-form statistics."""
+    def _item_data(self, X: np.ndarray, moments: Moments | None = None) -> tuple[Moments | RawData, np.ndarray]:
+        """Model input for the items, and the item covariance for closed-form statistics
+        (``moments``: the items' moments on these complete rows, formed once elsewhere)."""
+        if moments is not None:
+            return Moments(names=tuple(self.items), cov=moments.cov, n=moments.n), moments.cov
         if np.isnan(X).any():
             data: Moments | RawData = RawData(names=tuple(self.items), X=X)
             cov = np.ma.cov(np.ma.masked_invalid(X), rowvar=False, bias=True).filled(np.nan)
@@ -152,18 +155,21 @@ class PathEstimator:
         return rows[:, [pos[n] for n in fit.spec.observed]]
 
     # -- the estimates ------------------------------------------------------------------------
-    def estimate(self, X: np.ndarray, *, compute_se: bool = True) -> tuple[dict[Key, Estimate], dict]:
+    def estimate(self, X: np.ndarray, *, compute_se: bool = True,
+                 moments: Moments | None = None) -> tuple[dict[Key, Estimate], dict]:
         """Every correction's estimate of every key path (CORRECTIONS, in order) from the items
-        ``X``, and what the report needs beside them (the fits, alpha, omega, r_M)."""
-        run = self._prepare(X, compute_se)
+        ``X``, and what the report needs beside them (the fits, alpha, omega, r_M).
+        ``moments``: the items' moments on the rows ``X`` when they are complete, if formed
+        already (the full sample's, from the missing-data plan), so they are not formed again."""
+        run = self._prepare(X, compute_se, moments)
         for correction in CORRECTIONS:
             correction.estimate(self, run)
         return run.out, run.extra
 
-    def _prepare(self, X: np.ndarray, compute_se: bool) -> _Run:
+    def _prepare(self, X: np.ndarray, compute_se: bool, moments: Moments | None = None) -> _Run:
         """What every correction reads: the item and score moments and each scale's alpha and omega."""
         fits: dict[str, FitResult] = {}
-        data, icov = self._item_data(X)
+        data, icov = self._item_data(X, moments)
         scov, n_s, srows = self._scores(X)
         sd = np.sqrt(np.diag(scov))
 

@@ -52,7 +52,7 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
         r_m_rule=mv["marker"]["r_m_rule"] if mv.get("marker") else "smallest",
         time_limit=opts.fit_time_limit, n_starts=opts.n_starts, seed=opts.seed)
     X = plan.frame[estimator.items].to_numpy(dtype=float)
-    full, extra = estimator.estimate(X, compute_se=True)
+    full, extra = estimator.estimate(X, compute_se=True, moments=plan.moments(estimator.items))
     fits.update(extra["fits"])
     estimator.warm = dict(extra["fits"])
     warnings += [{"code": "paths", "message": n} for n in estimator.notes]

@@ -132,12 +132,12 @@ class MomentPathEstimator(PathEstimator):
     averaging weights. tests/test_bootstrap.py checks it against the estimator on the
     resampled rows."""
 
-    def _item_data(self, X):
+    def _item_data(self, X, moments=None):
         if isinstance(X, ReplicateMoments):
             from samesource.engine.fitting import Moments
 
             return Moments(names=tuple(self.items), cov=X.cov, n=X.n), X.cov
-        return super()._item_data(X)
+        return super()._item_data(X, moments)
 
     def _scores(self, X):
         if isinstance(X, ReplicateMoments):

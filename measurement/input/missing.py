@@ -47,9 +47,15 @@ class MissingPlan:
             sub = self.frame[list(items)]
             sub = sub[sub.notna().any(axis=1)]
             return RawData(names=tuple(items), X=sub.to_numpy(dtype=float))
+        return self.moments(items) or Moments.from_data(self.frame[list(items)].to_numpy(dtype=float),
+                                                        names=tuple(items))
+
+    def moments(self, items: Sequence[str]) -> Moments | None:
+        """These items' means and covariance (divisor n) on the analysis rows, a block of the
+        moments formed once, when the rows are complete (else None: rows with gaps)."""
         full = self._moments()
         if full is None:
-            return Moments.from_data(self.frame[list(items)].to_numpy(dtype=float), names=tuple(items))
+            return None
         idx = np.array([full.names.index(i) for i in items], dtype=np.intp)
         return Moments(names=tuple(items), cov=full.cov[np.ix_(idx, idx)], n=full.n, mean=full.mean[idx])
 

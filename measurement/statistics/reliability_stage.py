@@ -9,16 +9,29 @@ from samesource.engine.fitting import fit_model
 from samesource.input.design import MIN_ITEMS_OMEGA, Design
 from samesource.input.missing import MissingPlan
 from samesource.options import AnalysisOptions
-from samesource.statistics.reliability import cronbach_alpha, item_statistics, omega_total
+from samesource.statistics.reliability import (
+    alpha_from_moments,
+    cronbach_alpha,
+    item_statistics,
+    item_statistics_from_moments,
+    omega_total,
+)
 
 
 def construct_reliability(design: Design, plan: MissingPlan, opts: AnalysisOptions,
                           fits: dict[str, Any], warnings: list[dict]) -> dict[str, dict]:
     out: dict[str, dict] = {}
     for c in design.constructs.values():
-        complete = plan.complete(c.items)
-        alpha = cronbach_alpha(complete, confidence=opts.confidence)
-        stats = item_statistics(complete)
+        moments = plan.moments(c.items)
+        if moments is not None:  # complete rows: from the moments formed once, no pass over the rows
+            n = moments.n
+            cov = moments.cov * (n / (n - 1))
+            alpha = alpha_from_moments(cov, n, len(c.items), confidence=opts.confidence)
+            stats = item_statistics_from_moments(c.items, moments.mean, cov, n)
+        else:
+            complete = plan.complete(c.items)
+            alpha = cronbach_alpha(complete, confidence=opts.confidence)
+            stats = item_statistics(complete)
         entry: dict[str, Any] = {
             "role": c.role,
             "items": list(c.items),
