@@ -85,7 +85,8 @@ def analyze(
     same = dsg.main_part()  # the main file's constructs: the same-source checks look at these
 
     step("screen", 1, total)
-    screening = screen_respondents(prepared.items[same.items], scale_min=prepared.scale_min,
+    items = prepared.items if list(prepared.items.columns) == same.items else prepared.items[same.items]
+    screening = screen_respondents(items, scale_min=prepared.scale_min,
                                    scale_max=prepared.scale_max, raw_items=_raw_answers(prepared, same))
     plan = plan_missing(prepared, opts, flagged=screening.flagged_rows)
     if plan.rows_analyzed < _min_rows(dsg):
@@ -172,14 +173,20 @@ def _min_rows(design: Design) -> int:
 
 
 def _raw_answers(prepared: PreparedData, design: Design) -> pd.DataFrame:
-    """The answers as given (reverse keying undone), in the file's column order, for longstring."""
-    raw = prepared.items.copy()
+    """The answers as given (reverse keying undone), in the file's column order, for longstring:
+    filled column by column into one array (one copy of the answers, not three)."""
+    items = prepared.items
     lo_hi = prepared.scale_min + prepared.scale_max
-    for c in design.constructs.values():
-        for it in c.reverse:
-            raw[it] = lo_hi - raw[it]
-    order = [c for c in prepared.table.frame.columns if c in raw.columns]
-    return raw[order]
+    reverse = {it for c in design.constructs.values() for it in c.reverse}
+    order = [c for c in prepared.table.frame.columns if c in items.columns]
+    raw = np.empty((len(items), len(order)), order="F")
+    for j, it in enumerate(order):
+        col = items[it].to_numpy(dtype=float)
+        if it in reverse:
+            np.subtract(lo_hi, col, out=raw[:, j])
+        else:
+            raw[:, j] = col
+    return pd.DataFrame(raw, index=items.index, columns=pd.Index(order, dtype=object), copy=False)
 
 
 def _data_section(table: LoadedTable, prepared: PreparedData, plan: MissingPlan) -> dict:

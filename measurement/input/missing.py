@@ -122,7 +122,7 @@ def plan_missing(prepared: PreparedData, options: AnalysisOptions,
 
     recommendation = None
     if options.missing == "listwise":
-        frame = items[~has_missing]
+        frame = items[~has_missing] if n_missing else items  # the same rows: no copy of them
         by_reason["missing_item"] = n_missing
         if share > LISTWISE_DROP_LIMIT:
             recommendation = (
@@ -131,7 +131,7 @@ def plan_missing(prepared: PreparedData, options: AnalysisOptions,
                 "and is less biased when answers are missing at random.")
     else:
         empty = items.isna().all(axis=1)
-        frame = items[~empty]
+        frame = items[~empty] if empty.any() else items
         by_reason["no_answers"] = int(empty.sum())
     by_reason = {k: v for k, v in by_reason.items() if v}
     return MissingPlan(method=options.missing, frame=frame, rows_total=total,

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
-from samesource.engine.fitting import _single_threaded_blas
+from samesource.engine.fitting import _single_threaded_blas, centred_cross_products
 from samesource.engine.patterns import row_patterns, rows_by_pattern
 from samesource.errors import DesignError
 
@@ -152,14 +152,16 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
     answered = ~np.isnan(x)
     df = answered.sum(axis=1)
     notes: list[str] = []
-    complete = x[answered.all(axis=1)]
+    whole = answered.all(axis=1)
+    complete = x if whole.all() else x[whole]  # no copy of the rows when every row is complete
     if complete.shape[0] < 2:
         notes.append(
             "Mahalanobis distance not computed: fewer than two rows answer every item, so "
             "there is no covariance matrix to measure against."
         )
         return d2, df, p, notes
-    mean, cov = _mean_and_cov(complete)
+    mean, cross = centred_cross_products(complete)
+    cov = cross / (complete.shape[0] - 1)
     singular_rows = 0
     # Rows that share a pattern of answered items share one sub-matrix: factor it once.
     patterns, inverse = row_patterns(answered)
@@ -192,19 +194,6 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
             "exact combinations of others."
         )
     return d2, df, p, notes
-
-
-def _mean_and_cov(complete: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Means and covariance (divisor n - 1) of complete rows, as ``np.cov`` gives them,
-    summed a block of rows at a time (no centred copy of every row)."""
-    n, k = complete.shape
-    mean = complete.mean(axis=0)
-    cross = np.zeros((k, k))
-    with _single_threaded_blas():
-        for s in range(0, n, ROW_BLOCK):
-            dev = complete[s:s + ROW_BLOCK] - mean
-            cross += dev.T @ dev
-    return mean, cross / (n - 1)
 
 
 def _rule_texts(
