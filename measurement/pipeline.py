@@ -174,19 +174,19 @@ def _min_rows(design: Design) -> int:
 
 def _raw_answers(prepared: PreparedData, design: Design) -> pd.DataFrame:
     """The answers as given (reverse keying undone), in the file's column order, for longstring:
-    filled column by column into one array (one copy of the answers, not three)."""
+    a column not reverse-keyed is the prepared column itself (no copy; the screen reads a
+    block of rows at a time), a reversed one is undone into a new column."""
     items = prepared.items
     lo_hi = prepared.scale_min + prepared.scale_max
     reverse = {it for c in design.constructs.values() for it in c.reverse}
     order = [c for c in prepared.table.frame.columns if c in items.columns]
-    raw = np.empty((len(items), len(order)), order="F")
-    for j, it in enumerate(order):
+    cols = {}
+    for it in order:
         col = items[it].to_numpy(dtype=float)
-        if it in reverse:
-            np.subtract(lo_hi, col, out=raw[:, j])
-        else:
-            raw[:, j] = col
-    return pd.DataFrame(raw, index=items.index, columns=pd.Index(order, dtype=object), copy=False)
+        cols[it] = lo_hi - col if it in reverse else col
+    raw = pd.DataFrame(cols, index=items.index, copy=False)
+    raw.columns = pd.Index(order, dtype=object)
+    return raw
 
 
 def _data_section(table: LoadedTable, prepared: PreparedData, plan: MissingPlan) -> dict:

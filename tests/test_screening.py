@@ -153,6 +153,12 @@ def test_blocks_of_rows_give_the_same_distances_and_irv(hs_items, monkeypatch, h
         assert res.per_row.loc[row, "mahalanobis_d2"] == pytest.approx(ref, rel=1e-10)
     want = data.std(axis=1, ddof=1).to_numpy()  # pandas skips NaN, as IRV does
     assert res.per_row["irv"].to_numpy() == pytest.approx(want, rel=1e-12)
+    # the raw answers in another column order, read a block at a time, as in one pass
+    raw = data[list(data.columns)[::-1]]
+    blocked = screen_respondents(data, raw, scale_min=1, scale_max=9).per_row
+    monkeypatch.setattr(screening, "ROW_BLOCK", 10**6)
+    whole = screen_respondents(data, raw, scale_min=1, scale_max=9).per_row
+    pd.testing.assert_frame_equal(blocked, whole, check_exact=False, rtol=1e-12)
 
 
 def _simulate(seed: int = 7, n: int = 400):

@@ -64,13 +64,30 @@ class ScreeningResult:
     notes: list[str] = field(default_factory=list)
 
 
-def _numeric_array(df: pd.DataFrame, what: str) -> np.ndarray:
+def _check_numeric(df: pd.DataFrame, what: str) -> None:
     if not isinstance(df, pd.DataFrame):
         raise TypeError(f"{what} must be a pandas DataFrame")
     bad = [c for c in df.columns if df[c].dtype.kind not in "bifu"]
     if bad:
         raise ValueError(f"{what}: columns must be numeric: {bad}")
+
+
+def _numeric_array(df: pd.DataFrame, what: str) -> np.ndarray:
+    _check_numeric(df, what)
     return df.to_numpy(dtype=float)
+
+
+def _same_answer(raw: np.ndarray, min_items: int) -> np.ndarray:
+    """The same answer to every answered item, over at least ``min_items`` answered ones
+    (tested exactly rather than as a floating-point SD of 0)."""
+    m = (~np.isnan(raw)).sum(axis=1)
+    same = np.zeros(raw.shape[0], dtype=bool)
+    ok = m >= max(min_items, 1)
+    if ok.all():  # no copy of the rows when every row qualifies
+        same[:] = np.nanmax(raw, axis=1) == np.nanmin(raw, axis=1)
+    elif ok.any():
+        same[ok] = np.nanmax(raw[ok], axis=1) == np.nanmin(raw[ok], axis=1)
+    return same
 
 
 def _longstring(x: np.ndarray) -> np.ndarray:
@@ -294,11 +311,12 @@ def screen_respondents(
     if x.shape[1] == 0:
         raise ValueError("items has no columns")
     if raw_items is None:
-        raw = x
+        raw_width = x.shape[1]
     else:
         if not raw_items.index.equals(items.index):
             raise ValueError("raw_items must have the same rows (index) as items")
-        raw = _numeric_array(raw_items, "raw_items")
+        _check_numeric(raw_items, "raw_items")
+        raw_width = raw_items.shape[1]
     if (scale_min is None) != (scale_max is None):
         raise DesignError("give both ends of the response scale or neither", field="scale_min")
     if scale_min is not None and not scale_min < scale_max:
@@ -309,8 +327,17 @@ def screen_respondents(
 
     n, k = x.shape
     notes: list[str] = []
-    ls = _longstring(raw)
-    irv = _intra_individual_variability(raw)
+    # Longstring, IRV and the same-answer test look at one row at a time: a block of rows of
+    # the raw answers at a time, so they are never copied whole into one array.
+    ls = np.zeros(n, dtype=int)
+    irv = np.full(n, np.nan)
+    same = np.zeros(n, dtype=bool)
+    for s in range(0, n, ROW_BLOCK):
+        raw = x[s:s + ROW_BLOCK] if raw_items is None else raw_items.iloc[s:s + ROW_BLOCK].to_numpy(dtype=float)
+        ls[s:s + len(raw)] = _longstring(raw)
+        irv[s:s + len(raw)] = _intra_individual_variability(raw)
+        if rules.irv_min_items is not None:
+            same[s:s + len(raw)] = _same_answer(raw, rules.irv_min_items)
     d2, df, p, maha_notes = _mahalanobis_distances(x)
     notes += maha_notes
     answered = ~np.isnan(x)
@@ -328,27 +355,18 @@ def screen_respondents(
     ls_threshold = None
     if rules.longstring_min is not None:
         # Runs are whole numbers: "at least half of 25 items" means a run of 13.
-        half = math.ceil(rules.longstring_share * raw.shape[1] - 1e-9)
+        half = math.ceil(rules.longstring_share * raw_width - 1e-9)
         ls_threshold = max(int(rules.longstring_min), half)
         # A run can be at most as long as the questionnaire.
-        if ls_threshold > raw.shape[1]:
+        if ls_threshold > raw_width:
             notes.append(
                 f"Longstring rule cannot fire: the threshold {ls_threshold:g} exceeds the "
-                f"{raw.shape[1]} items."
+                f"{raw_width} items."
             )
     flags: dict[str, np.ndarray] = {}
     if ls_threshold is not None:
         flags["longstring"] = ls >= ls_threshold
     if rules.irv_min_items is not None:
-        raw_answered = ~np.isnan(raw)
-        m = raw_answered.sum(axis=1)
-        same = np.zeros(n, dtype=bool)
-        ok = m >= max(rules.irv_min_items, 1)
-        if ok.all():  # no copy of the rows when every row qualifies
-            same[:] = np.nanmax(raw, axis=1) == np.nanmin(raw, axis=1)
-        elif ok.any():
-            # Identical answers, tested exactly rather than as a floating-point SD of 0.
-            same[ok] = np.nanmax(raw[ok], axis=1) == np.nanmin(raw[ok], axis=1)
         flags["irv"] = same
     if rules.mahalanobis_alpha is not None:
         flags["mahalanobis"] = np.where(np.isnan(p), False, p < rules.mahalanobis_alpha)
@@ -383,7 +401,7 @@ def screen_respondents(
     broke = {r: flags[r][hit] for r in RULE_NAMES if r in flags}  # the flagged rows only
     reasons = {idx: [r for r, f in broke.items() if f[j]] for j, idx in enumerate(flagged_rows)}
     counts = {r: int(flags[r].sum()) for r in RULE_NAMES if r in flags}
-    texts = _rule_texts(rules, raw.shape[1], ls_threshold, raw_items is not None)
+    texts = _rule_texts(rules, raw_width, ls_threshold, raw_items is not None)
     if "out_of_range" in texts and "out_of_range" not in flags:
         del texts["out_of_range"]
     return ScreeningResult(per_row, flagged_rows, reasons, counts, texts, notes)
