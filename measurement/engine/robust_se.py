@@ -84,6 +84,20 @@ class PairMoments:
         return out
 
 
+def pair_products(D: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+    """The products D[:, j] * D[:, l] of every pair j <= l of columns, in ``np.triu_indices``
+    order: column j times columns j..p-1, one broadcast product per column instead of two
+    gathers of p(p+1)/2 columns (the same products, several times faster)."""
+    n, p = D.shape
+    if out is None:
+        out = np.empty((n, p * (p + 1) // 2))
+    at = 0
+    for j in range(p):
+        np.multiply(D[:, j:j + 1], D[:, j:], out=out[:, at:at + p - j])
+        at += p - j
+    return out
+
+
 # Rows per block of pair products (at 25 columns, 325 products: about 40 MB a block).
 PAIR_BLOCK_ROWS = 16_384
 
@@ -104,7 +118,7 @@ def pair_moments(X: np.ndarray, names: tuple[str, ...] | list[str]) -> PairMomen
     with _single_threaded_blas():
         for start in range(0, n, PAIR_BLOCK_ROWS):
             D = X[start:start + PAIR_BLOCK_ROWS] - mean
-            V = D[:, iu] * D[:, ju]
+            V = pair_products(D)
             sums += V.sum(axis=0)
             cross += V.T @ V  # one symmetric rank-k update (numpy hands A'A to syrk)
     return PairMoments(names=tuple(names), n=n, mean=mean, sums=sums, cross=cross)
