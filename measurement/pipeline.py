@@ -95,7 +95,8 @@ def analyze(
     same = dsg.main_part()  # the main file's constructs: the same-source checks look at these
 
     step("screen", 1, total)
-    screening = screen_respondents(prepared.items[same.items], scale_min=prepared.scale_min,
+    items = prepared.items if list(prepared.items.columns) == same.items else prepared.items[same.items]
+    screening = screen_respondents(items, scale_min=prepared.scale_min,
                                    scale_max=prepared.scale_max, raw_items=_raw_answers(prepared, same))
     plan = plan_missing(prepared, opts, flagged=screening.flagged_rows)
     if plan.rows_analyzed < _min_rows(dsg):
@@ -203,14 +204,20 @@ def _min_rows(design: Design) -> int:
 
 
 def _raw_answers(prepared: PreparedData, design: Design) -> pd.DataFrame:
-    """The answers as given (reverse keying undone), in the file's column order, for longstring."""
-    raw = prepared.items.copy()
+    """The answers as given (reverse keying undone), in the file's column order, for longstring:
+    a column not reverse-keyed is the prepared column itself (no copy; the screen reads a
+    block of rows at a time), a reversed one is undone into a new column."""
+    items = prepared.items
     lo_hi = prepared.scale_min + prepared.scale_max
-    for c in design.constructs.values():
-        for it in c.reverse:
-            raw[it] = lo_hi - raw[it]
-    order = [c for c in prepared.table.frame.columns if c in raw.columns]
-    return raw[order]
+    reverse = {it for c in design.constructs.values() for it in c.reverse}
+    order = [c for c in prepared.table.frame.columns if c in items.columns]
+    cols = {}
+    for it in order:
+        col = items[it].to_numpy(dtype=float)
+        cols[it] = lo_hi - col if it in reverse else col
+    raw = pd.DataFrame(cols, index=items.index, copy=False)
+    raw.columns = pd.Index(order, dtype=object)
+    return raw
 
 
 def _data_section(table: LoadedTable, prepared: PreparedData, plan: MissingPlan) -> dict:

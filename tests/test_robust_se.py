@@ -17,7 +17,7 @@ from semopy.examples import holzinger39
 
 from samesource.engine.fitting import Moments, RawData, fit_model
 from samesource.engine.modelspec import ModelSpec, Param
-from samesource.engine.robust_se import casewise_scores, robust_se
+from samesource.engine.robust_se import casewise_scores, pair_moments, robust_se
 
 HS_ITEMS = [f"x{i}" for i in range(1, 10)]
 HS_FACTORS = {"visual": HS_ITEMS[:3], "textual": HS_ITEMS[3:6], "speed": HS_ITEMS[6:]}
@@ -121,3 +121,44 @@ def test_fiml_scores_sum_to_zero_and_sandwich_is_close_to_bootstrap():
     # error variances of skewed items: the sandwich follows the bootstrap, the normal-theory SE does not
     assert rob.se_of("cov", "a", "a") == pytest.approx(sd, rel=0.2)
     assert fit.se("cov", "a", "a") < 0.8 * sd
+
+
+def test_sandwich_from_pair_moments_equals_the_row_blocks():
+    """The closed-form meat (fourth-order moments of the rows, formed once) against the
+    casewise scores summed row by row: the same algebra, so equal to rounding (1e-10), on the
+    Holzinger & Swineford data shipped with semopy, the moments taken over more columns than
+    the model uses and in another order; and the OLS slope's sandwich still equals
+    statsmodels' HC0 (White 1980)."""
+    X = holzinger39.get_data()[HS_ITEMS].to_numpy(dtype=float)
+    fit = fit_model(hs_spec(), Moments.from_data(X, names=HS_ITEMS))
+    rows = robust_se(fit, X)
+    extra = np.random.default_rng(3).normal(size=(len(X), 2))
+    wider = np.column_stack([extra[:, 0], X[:, ::-1], extra[:, 1]])
+    pm = pair_moments(wider, ["e1", *HS_ITEMS[::-1], "e2"])
+    moments = robust_se(fit, pm)
+    scale = np.abs(rows.cov).max()
+    assert np.abs(moments.cov - rows.cov).max() <= 1e-10 * scale
+    np.testing.assert_allclose(moments.std_se, rows.std_se, rtol=1e-10, atol=0)
+
+    R = skewed_regression()
+    spec = ModelSpec("reg", ("x", "y"), (), (Param("reg", "y", "x"), Param("cov", "x", "x"),
+                                             Param("cov", "y", "y")))
+    reg = fit_model(spec, Moments.from_data(R, names=["x", "y"]))
+    ols = sm.OLS(R[:, 1], sm.add_constant(R[:, 0])).fit(cov_type="HC0")   # statsmodels reference
+    assert robust_se(reg, pair_moments(R, ["x", "y"])).se_of("reg", "y", "x") == pytest.approx(ols.bse[1], rel=1e-4)
+
+
+def test_pair_moments_refuse_incomplete_rows_and_fiml_fits():
+    X = np.array([[1.0, 2.0], [np.nan, 1.0], [0.5, 0.0]])
+    with pytest.raises(ValueError, match="complete rows"):
+        pair_moments(X, ["a", "b"])
+    rng = np.random.default_rng(2)
+    Y = rng.normal(size=(200, 3))
+    Y[rng.random(Y.shape) < 0.1] = np.nan
+    items = ("a", "b", "c")
+    spec = ModelSpec("one", items, ("F",), tuple([Param("load", "F", i) for i in items]
+                                                  + [Param("cov", "F", "F", free=False, value=1.0)]
+                                                  + [Param("cov", i, i) for i in items]))
+    fit = fit_model(spec, RawData(names=items, X=Y))
+    with pytest.raises(ValueError, match="FIML"):
+        robust_se(fit, pair_moments(np.nan_to_num(Y), list(items)))

@@ -30,7 +30,7 @@ from samesource.engine.builders import (
     without_method_factor,
 )
 from samesource.engine.fitting import FitResult, Moments, RawData, fit_model, refit
-from samesource.engine.robust_se import robust_se
+from samesource.engine.robust_se import PairMoments, pair_moments, robust_se
 from samesource.input.design import MAIN, Design, Path
 from samesource.method_checks.marker import choose_r_m, r_m_source
 from samesource.statistics.reliability import alpha_from_cov, omega_total
@@ -127,8 +127,11 @@ class PathEstimator:
         return {"max_iter": max(50, 3 * prev.iterations),
                 "time_limit": min(self.time_limit, max(5.0, 30 * prev.elapsed))}
 
-    def _item_data(self, X: np.ndarray) -> tuple[Moments | RawData, np.ndarray]:
-        """Model input for the items, and the item covariance for closed-form statistics."""
+    def _item_data(self, X: np.ndarray, moments: Moments | None = None) -> tuple[Moments | RawData, np.ndarray]:
+        """Model input for the items, and the item covariance for closed-form statistics
+        (``moments``: the items' moments on these complete rows, formed once elsewhere)."""
+        if moments is not None:
+            return Moments(names=tuple(self.items), cov=moments.cov, n=moments.n), moments.cov
         if np.isnan(X).any():
             data: Moments | RawData = RawData(names=tuple(self.items), X=X)
             cov = np.ma.cov(np.ma.masked_invalid(X), rowvar=False, bias=True).filled(np.nan)
@@ -152,18 +155,21 @@ class PathEstimator:
         return rows[:, [pos[n] for n in fit.spec.observed]]
 
     # -- the estimates ------------------------------------------------------------------------
-    def estimate(self, X: np.ndarray, *, compute_se: bool = True) -> tuple[dict[Key, Estimate], dict]:
+    def estimate(self, X: np.ndarray, *, compute_se: bool = True,
+                 moments: Moments | None = None) -> tuple[dict[Key, Estimate], dict]:
         """Every correction's estimate of every key path (CORRECTIONS, in order) from the items
-        ``X``, and what the report needs beside them (the fits, alpha, omega, r_M)."""
-        run = self._prepare(X, compute_se)
+        ``X``, and what the report needs beside them (the fits, alpha, omega, r_M).
+        ``moments``: the items' moments on the rows ``X`` when they are complete, if formed
+        already (the full sample's, from the missing-data plan), so they are not formed again."""
+        run = self._prepare(X, compute_se, moments)
         for correction in CORRECTIONS:
             correction.estimate(self, run)
         return run.out, run.extra
 
-    def _prepare(self, X: np.ndarray, compute_se: bool) -> _Run:
+    def _prepare(self, X: np.ndarray, compute_se: bool, moments: Moments | None = None) -> _Run:
         """What every correction reads: the item and score moments and each scale's alpha and omega."""
         fits: dict[str, FitResult] = {}
-        data, icov = self._item_data(X)
+        data, icov = self._item_data(X, moments)
         scov, n_s, srows = self._scores(X)
         sd = np.sqrt(np.diag(scov))
 
@@ -204,8 +210,23 @@ class PathEstimator:
         # the sandwich needs the rows the model was fitted to (not e.g. marker-adjusted moments)
         if rows is None or f.spec.name in run.robust_cache:
             return run.robust_cache.get(f.spec.name)
-        run.robust_cache[f.spec.name] = r = robust_se(f, self._rows_for(f, names, rows))
+        pm = self._pair_moments(run, rows, names) if f.means is None else None
+        if pm is not None and not set(f.spec.observed) <= set(pm.names):
+            pm = None
+        run.robust_cache[f.spec.name] = r = robust_se(f, pm if pm is not None else self._rows_for(f, names, rows))
         return r
+
+    def _pair_moments(self, run: _Run, rows: np.ndarray, names: list[str]) -> PairMoments | None:
+        """The fourth-order moments every ML sandwich on these rows takes its meat from,
+        formed once per set of rows over the columns the models use (the reduced design's
+        items, or the scale scores); None when a cell is missing (the scores need the rows)."""
+        key = tuple(names)
+        if key not in run.pair_cache:
+            used = set(self.reduced.items) | {score_name(c) for c in self.score_names}
+            cols = [i for i, n in enumerate(names) if n in used]
+            sub = rows[:, cols]
+            run.pair_cache[key] = None if np.isnan(sub).any() else pair_moments(sub, [names[i] for i in cols])
+        return run.pair_cache[key]
 
     def _from_fit(self, run: _Run, method: str, f: FitResult, eq: Path,
                   formula: dict[str, float] | None = None,
@@ -341,6 +362,7 @@ class _Run:
     fits: dict[str, FitResult]
     extra: dict[str, Any]
     robust_cache: dict[str, Any] = dataclasses.field(default_factory=dict)
+    pair_cache: dict[tuple[str, ...], PairMoments | None] = dataclasses.field(default_factory=dict)
 
 
 @dataclasses.dataclass(frozen=True)

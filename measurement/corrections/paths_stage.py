@@ -55,8 +55,9 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
         use_measured=bool(mm and mm["status"] == "ok"),
         r_m_rule=mv["marker"]["r_m_rule"] if mv.get("marker") else "smallest",
         time_limit=opts.fit_time_limit, n_starts=opts.n_starts, seed=opts.seed)
-    X = plan.frame[estimator.items].to_numpy(dtype=float)
-    full, extra = estimator.estimate(X, compute_se=True)
+    frame = plan.frame if list(plan.frame.columns) == estimator.items else plan.frame[estimator.items]
+    X = frame.to_numpy(dtype=float)  # a view of the frame's one float block where it has one
+    full, extra = estimator.estimate(X, compute_se=True, moments=plan.moments(estimator.items))
     fits.update(extra["fits"])
     estimator.warm = dict(extra["fits"])
     said += [Notice("paths", n) for n in estimator.notes]

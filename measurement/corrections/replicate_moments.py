@@ -32,6 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from samesource.corrections.paths import PathEstimator
+from samesource.engine.robust_se import pair_products
 
 BATCH = 32  # replicates per matrix product (and the unit chunks are rounded to)
 ROW_BLOCK = 4096  # rows per block of pair products
@@ -92,11 +93,11 @@ def weighted_moments(X: np.ndarray, count: int,
 def _pair_blocks(X: np.ndarray, center: np.ndarray, iu: np.ndarray, ju: np.ndarray
                  ) -> Iterator[tuple[int, np.ndarray]]:
     p = X.shape[1]
+    buf = np.empty((min(ROW_BLOCK, X.shape[0]), p + iu.size))  # one buffer for every block (each is used up first)
     for s in range(0, X.shape[0], ROW_BLOCK):
-        blk = X[s:s + ROW_BLOCK] - center
-        F = np.empty((blk.shape[0], p + iu.size))
-        F[:, :p] = blk
-        np.multiply(blk[:, iu], blk[:, ju], out=F[:, p:])
+        F = buf[:min(ROW_BLOCK, X.shape[0] - s)]
+        np.subtract(X[s:s + ROW_BLOCK], center, out=F[:, :p])
+        pair_products(F[:, :p], out=F[:, p:])
         yield s, F
 
 
@@ -132,12 +133,12 @@ class MomentPathEstimator(PathEstimator):
     averaging weights. tests/test_bootstrap.py checks it against the estimator on the
     resampled rows."""
 
-    def _item_data(self, X):
+    def _item_data(self, X, moments=None):
         if isinstance(X, ReplicateMoments):
             from samesource.engine.fitting import Moments
 
             return Moments(names=tuple(self.items), cov=X.cov, n=X.n), X.cov
-        return super()._item_data(X)
+        return super()._item_data(X, moments)
 
     def _scores(self, X):
         if isinstance(X, ReplicateMoments):

@@ -125,9 +125,26 @@ class Moments:
         if np.isnan(arr).any():
             raise DataError("data contain missing values; use complete rows or RawData (FIML)")
         n = arr.shape[0]
-        mean = arr.mean(axis=0)
-        dev = arr - mean
-        return cls(names=nm, cov=dev.T @ dev / n, n=n, mean=mean)
+        mean, cross = centred_cross_products(arr)
+        return cls(names=nm, cov=cross / n, n=n, mean=mean)
+
+
+# Rows per block of centred rows: a block's copy stays small however many rows there are.
+CROSS_BLOCK_ROWS = 65_536
+
+
+def centred_cross_products(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Column means of complete rows and the sum of their centred outer products
+    (sum_i (x_i - mean)(x_i - mean)'), a block of rows at a time: no centred copy of every
+    row, BLAS single-threaded (see :func:`_single_threaded_blas`)."""
+    X = np.asarray(X, dtype=float)
+    mean = X.mean(axis=0)
+    cross = np.zeros((X.shape[1], X.shape[1]))
+    with _single_threaded_blas():
+        for s in range(0, X.shape[0], CROSS_BLOCK_ROWS):
+            dev = X[s:s + CROSS_BLOCK_ROWS] - mean
+            cross += dev.T @ dev
+    return mean, (cross + cross.T) / 2.0
 
 
 @dataclass(frozen=True, eq=False)

@@ -16,6 +16,13 @@ Casewise score of respondent i (observed variables o, deviation d = x_o - mu_o):
     dl_i/dmu    = u_i
 
 and dl_i/dtheta_k = tr(dl_i/dSigma . dSigma/dtheta_k), from the engine's derivative vectors.
+
+With complete rows and the sample means (ML on a covariance matrix), each score is a quadratic
+form in the row's deviations, s_ik = d_i' Q_k d_i - c_k, so the meat B = sum_i s_i s_i' needs
+only the rows' fourth-order moments: with v_i the products d_ij d_il (j <= l) of a row,
+B = Q'(sum v v')Q - (Q' sum v) c' - c (sum v)'Q + n c c'. :func:`pair_moments` forms sum v v'
+once for the rows (one BLAS pass, a block of rows at a time), and every model fitted to those
+rows or to a subset of their columns takes its meat from it, without a pass over the rows.
 """
 
 from __future__ import annotations
@@ -29,6 +36,7 @@ from samesource.engine.fitting import (  # the engine's own helpers
     FitResult,
     _Deadline,
     _num_jacobian,
+    _single_threaded_blas,
     _Structure,
     _TimeUp,
     delta_method,
@@ -53,6 +61,91 @@ class RobustSE:
 
     def delta(self, fun) -> tuple[float, float | None]:
         return delta_method(self.fit, fun, self.cov)
+
+
+@dataclass(frozen=True)
+class PairMoments:
+    """Moments of complete rows up to the fourth order, for sandwich meats: with d_i a row's
+    deviation from the column means and v_i its pair products d_ij d_il (j <= l, in
+    ``np.triu_indices`` order), ``sums`` = sum_i v_i and ``cross`` = sum_i v_i v_i'."""
+
+    names: tuple[str, ...]
+    n: int
+    mean: np.ndarray   # (p,)
+    sums: np.ndarray   # (p(p+1)/2,)
+    cross: np.ndarray  # (p(p+1)/2, p(p+1)/2)
+
+    def pair_index(self) -> np.ndarray:
+        """(p, p) symmetric: the position in v of the product of columns j and l."""
+        p = len(self.names)
+        iu, ju = np.triu_indices(p)
+        out = np.empty((p, p), dtype=np.intp)
+        out[iu, ju] = out[ju, iu] = np.arange(iu.size)
+        return out
+
+
+def pair_products(D: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+    """The products D[:, j] * D[:, l] of every pair j <= l of columns, in ``np.triu_indices``
+    order: column j times columns j..p-1, one broadcast product per column instead of two
+    gathers of p(p+1)/2 columns (the same products, several times faster)."""
+    n, p = D.shape
+    if out is None:
+        out = np.empty((n, p * (p + 1) // 2))
+    at = 0
+    for j in range(p):
+        np.multiply(D[:, j:j + 1], D[:, j:], out=out[:, at:at + p - j])
+        at += p - j
+    return out
+
+
+# Rows per block of pair products (at 25 columns, 325 products: about 40 MB a block).
+PAIR_BLOCK_ROWS = 16_384
+
+
+def pair_moments(X: np.ndarray, names: tuple[str, ...] | list[str]) -> PairMoments:
+    """:class:`PairMoments` of the complete rows ``X`` (columns named by ``names``). Raises
+    ``ValueError`` when a cell is missing (FIML's scores need the rows)."""
+    X = np.asarray(X, dtype=float)
+    if np.isnan(X).any():
+        raise ValueError("pair moments need complete rows")
+    n, p = X.shape
+    mean = X.mean(axis=0)
+    iu, ju = np.triu_indices(p)
+    sums = np.zeros(iu.size)
+    cross = np.zeros((iu.size, iu.size))
+    # One BLAS thread, as in the fits: on two busy cores OpenBLAS's second thread made this
+    # product 4 to 16 times slower (measured), not faster.
+    with _single_threaded_blas():
+        for start in range(0, n, PAIR_BLOCK_ROWS):
+            D = X[start:start + PAIR_BLOCK_ROWS] - mean
+            V = pair_products(D)
+            sums += V.sum(axis=0)
+            cross += V.T @ V  # one symmetric rank-k update (numpy hands A'A to syrk)
+    return PairMoments(names=tuple(names), n=n, mean=mean, sums=sums, cross=cross)
+
+
+def _meat_from_pairs(fit: FitResult, pm: PairMoments) -> np.ndarray | None:
+    """The scores' cross-products sum_i s_i s_i' of an ML fit (free parameters), from the
+    rows' :class:`PairMoments` (see the module docstring); None when the fit's variables are
+    not all among them."""
+    st = fit._structure or _Structure(fit.spec)
+    pos = {n: i for i, n in enumerate(pm.names)}
+    if any(o not in pos for o in st.observed):
+        return None
+    E, Om = st.moments(fit.x)
+    p = st.p
+    Amat, Bmat = st.deriv_vectors(E, Om)
+    W = np.linalg.inv(Om[:p, :p])
+    alpha, beta = W @ Amat, W @ Bmat           # d'W a_k and d'W b_k: the score's two factors
+    c = np.sum(Amat * beta, axis=0)
+    a, b = np.triu_indices(p)
+    Q = alpha[a] * beta[b] + np.where((a != b)[:, None], alpha[b] * beta[a], 0.0)
+    Qz, cz = Q @ st.Z.T, st.Z @ c              # onto the free parameters
+    idx = np.array([pos[o] for o in st.observed], dtype=np.intp)
+    sel = pm.pair_index()[idx[a], idx[b]]
+    G = pm.cross[np.ix_(sel, sel)]
+    t = Qz.T @ pm.sums[sel]
+    return Qz.T @ G @ Qz - np.outer(t, cz) - np.outer(cz, t) + pm.n * np.outer(cz, cz)
 
 
 def casewise_scores(fit: FitResult, X: np.ndarray) -> np.ndarray:
@@ -103,8 +196,10 @@ def _score_blocks(fit: FitResult, X: np.ndarray, block: int = SCORE_BLOCK_ROWS):
         yield np.hstack([scores, s_mu]) if fiml else scores
 
 
-def robust_se(fit: FitResult, X: np.ndarray, *, time_limit: float = 30.0) -> RobustSE | None:
-    """Sandwich SEs of a fit from the rows it was fitted to (see the module docstring).
+def robust_se(fit: FitResult, X: np.ndarray | PairMoments, *, time_limit: float = 30.0) -> RobustSE | None:
+    """Sandwich SEs of a fit from the rows it was fitted to (see the module docstring), or,
+    for an ML fit to complete rows, from their :class:`PairMoments` (the same numbers without
+    a pass over the rows).
 
     None when the fit has no information matrix to invert (unidentified, capped), or when
     the standardized SEs could not be computed in ``time_limit`` seconds.
@@ -112,11 +207,20 @@ def robust_se(fit: FitResult, X: np.ndarray, *, time_limit: float = 30.0) -> Rob
     A_inv = fit.param_cov_all if fit.param_cov_all is not None else fit.param_cov
     if A_inv is None:
         return None
-    SS = None  # the scores' cross-products, summed block by block
-    for S in _score_blocks(fit, X):
-        if S.shape[1] != A_inv.shape[0]:
-            return None   # an ML fit's inverse information covers the parameters only
-        SS = S.T @ S if SS is None else SS + S.T @ S
+    SS = None  # the scores' cross-products
+    if isinstance(X, PairMoments):
+        if fit.means is not None:
+            raise ValueError("a FIML fit's scores need its rows, not pair moments")
+        SS = _meat_from_pairs(fit, X)
+        if SS is None:
+            raise ValueError(f"pair moments lack some of {fit.spec.name}'s variables")
+        if SS.shape[0] != A_inv.shape[0]:
+            return None
+    else:
+        for S in _score_blocks(fit, X):  # block by block
+            if S.shape[1] != A_inv.shape[0]:
+                return None   # an ML fit's inverse information covers the parameters only
+            SS = S.T @ S if SS is None else SS + S.T @ S
     V = A_inv @ SS @ A_inv
     q = fit.x.size
     cov = (V[:q, :q] + V[:q, :q].T) / 2.0

@@ -631,6 +631,13 @@ def _canonical_lengths(values: np.ndarray) -> np.ndarray | None:
     return digits if blank is None else np.where(blank, 0, digits)
 
 
+def _compact(lengths: np.ndarray) -> np.ndarray:
+    """Field lengths in the smallest unsigned type that holds them: kept for every column until
+    the line-length check is done, they were 8 bytes a cell (480 MB at a million rows of 60)."""
+    top = int(lengths.max()) if len(lengths) else 0
+    return lengths.astype(next(t for t in (np.uint8, np.uint16, np.uint32, np.int64) if top <= np.iinfo(t).max))
+
+
 def _text_lengths(cells: np.ndarray, ascii_only: bool) -> np.ndarray:
     s = pd.Series(cells, dtype=object)
     lengths = s.str.len() if ascii_only else s.str.encode("utf-8").str.len()
@@ -729,7 +736,7 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
         if lj is None:
             cols[j] = None
         else:
-            lengths[j] = lj
+            lengths[j] = _compact(lj)
             expected += lj
     limit = csv.field_size_limit()  # the record reader refuses longer values, naming the row
     if any(j in text_cols and len(lj) and lj.max() > limit for j, lj in lengths.items()):
@@ -744,7 +751,7 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
                 v = raw[j].to_numpy(dtype=object)
                 if j in lengths:
                     expected -= lengths[j]
-                cols[j], lengths[j] = v, _text_lengths(v, ascii_only)
+                cols[j], lengths[j] = v, _compact(_text_lengths(v, ascii_only))
                 expected += lengths[j]
                 text_cols.add(j)
             del raw

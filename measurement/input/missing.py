@@ -47,9 +47,15 @@ class MissingPlan:
             sub = self.frame[list(items)]
             sub = sub[sub.notna().any(axis=1)]
             return RawData(names=tuple(items), X=sub.to_numpy(dtype=float))
+        return self.moments(items) or Moments.from_data(self.frame[list(items)].to_numpy(dtype=float),
+                                                        names=tuple(items))
+
+    def moments(self, items: Sequence[str]) -> Moments | None:
+        """These items' means and covariance (divisor n) on the analysis rows, a block of the
+        moments formed once, when the rows are complete (else None: rows with gaps)."""
         full = self._moments()
         if full is None:
-            return Moments.from_data(self.frame[list(items)].to_numpy(dtype=float), names=tuple(items))
+            return None
         idx = np.array([full.names.index(i) for i in items], dtype=np.intp)
         return Moments(names=tuple(items), cov=full.cov[np.ix_(idx, idx)], n=full.n, mean=full.mean[idx])
 
@@ -116,7 +122,7 @@ def plan_missing(prepared: PreparedData, options: AnalysisOptions,
 
     recommendation = None
     if options.missing == "listwise":
-        frame = items[~has_missing]
+        frame = items[~has_missing] if n_missing else items  # the same rows: no copy of them
         by_reason["missing_item"] = n_missing
         if share > LISTWISE_DROP_LIMIT:
             recommendation = (
@@ -125,7 +131,7 @@ def plan_missing(prepared: PreparedData, options: AnalysisOptions,
                 "and is less biased when answers are missing at random.")
     else:
         empty = items.isna().all(axis=1)
-        frame = items[~empty]
+        frame = items[~empty] if empty.any() else items
         by_reason["no_answers"] = int(empty.sum())
     by_reason = {k: v for k, v in by_reason.items() if v}
     return MissingPlan(method=options.missing, frame=frame, rows_total=total,

@@ -11,12 +11,14 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import linalg, stats
 
+from samesource.engine.fitting import _single_threaded_blas, centred_cross_products
 from samesource.engine.patterns import row_patterns, rows_by_pattern
 from samesource.errors import DesignError
 
 RULE_NAMES = ("longstring", "irv", "mahalanobis", "missing", "out_of_range")
+ROW_BLOCK = 65_536  # rows per block where a measure needs a temporary the size of its rows
 
 
 @dataclass(frozen=True)
@@ -62,13 +64,30 @@ class ScreeningResult:
     notes: list[str] = field(default_factory=list)
 
 
-def _numeric_array(df: pd.DataFrame, what: str) -> np.ndarray:
+def _check_numeric(df: pd.DataFrame, what: str) -> None:
     if not isinstance(df, pd.DataFrame):
         raise TypeError(f"{what} must be a pandas DataFrame")
     bad = [c for c in df.columns if df[c].dtype.kind not in "bifu"]
     if bad:
         raise ValueError(f"{what}: columns must be numeric: {bad}")
+
+
+def _numeric_array(df: pd.DataFrame, what: str) -> np.ndarray:
+    _check_numeric(df, what)
     return df.to_numpy(dtype=float)
+
+
+def _same_answer(raw: np.ndarray, min_items: int) -> np.ndarray:
+    """The same answer to every answered item, over at least ``min_items`` answered ones
+    (tested exactly rather than as a floating-point SD of 0)."""
+    m = (~np.isnan(raw)).sum(axis=1)
+    same = np.zeros(raw.shape[0], dtype=bool)
+    ok = m >= max(min_items, 1)
+    if ok.all():  # no copy of the rows when every row qualifies
+        same[:] = np.nanmax(raw, axis=1) == np.nanmin(raw, axis=1)
+    elif ok.any():
+        same[ok] = np.nanmax(raw[ok], axis=1) == np.nanmin(raw[ok], axis=1)
+    return same
 
 
 def _longstring(x: np.ndarray) -> np.ndarray:
@@ -115,7 +134,8 @@ def _intra_individual_variability(x: np.ndarray) -> np.ndarray:
     out = np.full(x.shape[0], np.nan)
     ok = m >= 2
     if ok.all() and m.min() == x.shape[1]:  # every row complete: the same SDs without NaN handling
-        out[:] = np.std(x, axis=1, ddof=1)
+        for s in range(0, x.shape[0], ROW_BLOCK):  # a block at a time: no copy of every row
+            out[s:s + ROW_BLOCK] = np.std(x[s:s + ROW_BLOCK], axis=1, ddof=1)
     elif ok.any():
         out[ok] = np.nanstd(x[ok], axis=1, ddof=1)
     return out
@@ -149,33 +169,40 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
     answered = ~np.isnan(x)
     df = answered.sum(axis=1)
     notes: list[str] = []
-    complete = x[answered.all(axis=1)]
+    whole = answered.all(axis=1)
+    complete = x if whole.all() else x[whole]  # no copy of the rows when every row is complete
     if complete.shape[0] < 2:
         notes.append(
             "Mahalanobis distance not computed: fewer than two rows answer every item, so "
             "there is no covariance matrix to measure against."
         )
         return d2, df, p, notes
-    mean = complete.mean(axis=0)
-    cov = np.atleast_2d(np.cov(complete, rowvar=False, ddof=1))
+    mean, cross = centred_cross_products(complete)
+    cov = cross / (complete.shape[0] - 1)
     singular_rows = 0
-    # Rows that share a pattern of answered items share one sub-matrix: invert it once.
+    # Rows that share a pattern of answered items share one sub-matrix: factor it once.
     patterns, inverse = row_patterns(answered)
-    for pattern, rows in zip(patterns, rows_by_pattern(inverse, len(patterns)), strict=True):
-        if not pattern.any():
-            continue
-        sub = cov[np.ix_(pattern, pattern)]
-        eig = np.linalg.eigvalsh(sub)
-        if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
-            singular_rows += rows.size
-            continue
-        if rows.size == n and pattern.all():
-            dev = x - mean  # every row complete: no copy of the rows first
-        else:
-            dev = x[np.ix_(rows, pattern)] - mean[pattern]
-        vals = np.einsum("ij,ij->i", dev @ np.linalg.inv(sub), dev)
-        d2[rows] = vals
-        p[rows] = stats.chi2.sf(vals, int(pattern.sum()))
+    every = complete.shape[0] == n
+    with _single_threaded_blas():
+        for pattern, rows in zip(patterns, rows_by_pattern(inverse, len(patterns)), strict=True):
+            if not pattern.any():
+                continue
+            sub = cov[np.ix_(pattern, pattern)]
+            eig = np.linalg.eigvalsh(sub)
+            if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
+                singular_rows += rows.size
+                continue
+            # One solve per pattern: the inverse of the Cholesky factor L of the sub-matrix, so a
+            # row's d2 is the squared length of L^-1 d (a sum of squares, never below zero).
+            L = linalg.cholesky(sub, lower=True)
+            white = linalg.solve_triangular(L, np.eye(L.shape[0]), lower=True, check_finite=False).T
+            for s in range(0, rows.size, ROW_BLOCK):
+                r = rows[s:s + ROW_BLOCK]
+                # every row complete: a slice of the rows, not a copy of them first
+                dev = x[s:s + r.size] - mean if every else x[np.ix_(r, pattern)] - mean[pattern]
+                z = dev @ white
+                d2[r] = np.einsum("ij,ij->i", z, z)
+            p[rows] = stats.chi2.sf(d2[rows], int(pattern.sum()))
     if singular_rows:
         notes.append(
             f"Mahalanobis distance not computed for {singular_rows} row(s): the covariance "
@@ -284,11 +311,12 @@ def screen_respondents(
     if x.shape[1] == 0:
         raise ValueError("items has no columns")
     if raw_items is None:
-        raw = x
+        raw_width = x.shape[1]
     else:
         if not raw_items.index.equals(items.index):
             raise ValueError("raw_items must have the same rows (index) as items")
-        raw = _numeric_array(raw_items, "raw_items")
+        _check_numeric(raw_items, "raw_items")
+        raw_width = raw_items.shape[1]
     if (scale_min is None) != (scale_max is None):
         raise DesignError("give both ends of the response scale or neither", field="scale_min")
     if scale_min is not None and not scale_min < scale_max:
@@ -299,8 +327,17 @@ def screen_respondents(
 
     n, k = x.shape
     notes: list[str] = []
-    ls = _longstring(raw)
-    irv = _intra_individual_variability(raw)
+    # Longstring, IRV and the same-answer test look at one row at a time: a block of rows of
+    # the raw answers at a time, so they are never copied whole into one array.
+    ls = np.zeros(n, dtype=int)
+    irv = np.full(n, np.nan)
+    same = np.zeros(n, dtype=bool)
+    for s in range(0, n, ROW_BLOCK):
+        raw = x[s:s + ROW_BLOCK] if raw_items is None else raw_items.iloc[s:s + ROW_BLOCK].to_numpy(dtype=float)
+        ls[s:s + len(raw)] = _longstring(raw)
+        irv[s:s + len(raw)] = _intra_individual_variability(raw)
+        if rules.irv_min_items is not None:
+            same[s:s + len(raw)] = _same_answer(raw, rules.irv_min_items)
     d2, df, p, maha_notes = _mahalanobis_distances(x)
     notes += maha_notes
     answered = ~np.isnan(x)
@@ -318,25 +355,18 @@ def screen_respondents(
     ls_threshold = None
     if rules.longstring_min is not None:
         # Runs are whole numbers: "at least half of 25 items" means a run of 13.
-        half = math.ceil(rules.longstring_share * raw.shape[1] - 1e-9)
+        half = math.ceil(rules.longstring_share * raw_width - 1e-9)
         ls_threshold = max(int(rules.longstring_min), half)
         # A run can be at most as long as the questionnaire.
-        if ls_threshold > raw.shape[1]:
+        if ls_threshold > raw_width:
             notes.append(
                 f"Longstring rule cannot fire: the threshold {ls_threshold:g} exceeds the "
-                f"{raw.shape[1]} items."
+                f"{raw_width} items."
             )
     flags: dict[str, np.ndarray] = {}
     if ls_threshold is not None:
         flags["longstring"] = ls >= ls_threshold
     if rules.irv_min_items is not None:
-        raw_answered = ~np.isnan(raw)
-        m = raw_answered.sum(axis=1)
-        same = np.zeros(n, dtype=bool)
-        ok = m >= max(rules.irv_min_items, 1)
-        if ok.any():
-            # Identical answers, tested exactly rather than as a floating-point SD of 0.
-            same[ok] = np.nanmax(raw[ok], axis=1) == np.nanmin(raw[ok], axis=1)
         flags["irv"] = same
     if rules.mahalanobis_alpha is not None:
         flags["mahalanobis"] = np.where(np.isnan(p), False, p < rules.mahalanobis_alpha)
@@ -366,13 +396,12 @@ def screen_respondents(
     def plain(v):
         return v.item() if isinstance(v, np.generic) else v
 
-    flagged_rows = [plain(i) for i in per_row.index[per_row["flagged"].to_numpy()]]
-    reasons = {
-        plain(idx): [r for r in RULE_NAMES if r in flags and bool(row[f"flag_{r}"])]
-        for idx, row in per_row[per_row["flagged"]].iterrows()
-    }
+    hit = per_row["flagged"].to_numpy(dtype=bool)
+    flagged_rows = [plain(i) for i in per_row.index[hit]]
+    broke = {r: flags[r][hit] for r in RULE_NAMES if r in flags}  # the flagged rows only
+    reasons = {idx: [r for r, f in broke.items() if f[j]] for j, idx in enumerate(flagged_rows)}
     counts = {r: int(flags[r].sum()) for r in RULE_NAMES if r in flags}
-    texts = _rule_texts(rules, raw.shape[1], ls_threshold, raw_items is not None)
+    texts = _rule_texts(rules, raw_width, ls_threshold, raw_items is not None)
     if "out_of_range" in texts and "out_of_range" not in flags:
         del texts["out_of_range"]
     return ScreeningResult(per_row, flagged_rows, reasons, counts, texts, notes)

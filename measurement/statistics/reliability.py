@@ -61,16 +61,22 @@ def alpha_from_cov(cov: np.ndarray) -> float | None:
     return float(k / (k - 1) * (1.0 - np.trace(cov) / total_var))
 
 
-def _alpha_from_array(x: np.ndarray) -> tuple[float | None, str | None]:
-    n, k = x.shape
+def _alpha_checked(cov: np.ndarray | None, n: int, k: int) -> tuple[float | None, str | None]:
     if k < 2:
         return None, "alpha needs at least 2 items"
     if n < 2:
         return None, "alpha needs at least 2 complete rows"
-    alpha = alpha_from_cov(np.cov(x, rowvar=False, ddof=1))
+    alpha = alpha_from_cov(cov)
     if alpha is None:
         return None, "the sum of the items has no variance"
     return alpha, None
+
+
+def _complete_moments(x: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+    """Means and covariance (divisor n - 1) of complete rows; no covariance below 2 rows."""
+    n, k = x.shape
+    mean = x.mean(axis=0) if n else np.full(k, np.nan)
+    return mean, (np.atleast_2d(np.cov(x, rowvar=False, ddof=1)) if n >= 2 else None)
 
 
 def cronbach_alpha(items: pd.DataFrame, confidence: float = 0.95) -> AlphaResult:
@@ -113,7 +119,15 @@ def cronbach_alpha(items: pd.DataFrame, confidence: float = 0.95) -> AlphaResult
         raise ValueError("confidence must be strictly between 0 and 1")
     x = _complete_numeric(items)
     n, k = x.shape
-    alpha, reason = _alpha_from_array(x)
+    return alpha_from_moments(np.cov(x, rowvar=False, ddof=1) if n >= 2 and k >= 2 else None, n, k, confidence)
+
+
+def alpha_from_moments(cov: np.ndarray | None, n: int, k: int, confidence: float = 0.95) -> AlphaResult:
+    """:func:`cronbach_alpha` from the covariance matrix (divisor n - 1) of ``n`` complete
+    rows of ``k`` items, formed once elsewhere (None below two rows)."""
+    if not 0.0 < confidence < 1.0:
+        raise ValueError("confidence must be strictly between 0 and 1")
+    alpha, reason = _alpha_checked(cov, n, k)
     if alpha is None:
         return AlphaResult(None, None, n, k, confidence, reason)
     g = 1.0 - confidence
@@ -152,28 +166,41 @@ def item_statistics(items: pd.DataFrame) -> pd.DataFrame:
     Psychometrika, 16(3), 297-334.
     """
     x = _complete_numeric(items)
-    n, k = x.shape
-    total = x.sum(axis=1)
+    mean, cov = _complete_moments(x)
+    return item_statistics_from_moments(list(items.columns), mean, cov, x.shape[0])
+
+
+def _constant(var: float, mean: float) -> bool:
+    # No variance but rounding's: a column of one value leaves at most ~(1e-16 x its mean)^2.
+    return not var > 1e-13 * max(1.0, mean * mean)
+
+
+def item_statistics_from_moments(names: Sequence[str], mean: np.ndarray, cov: np.ndarray | None,
+                                 n: int) -> pd.DataFrame:
+    """:func:`item_statistics` from the means and covariance matrix (divisor n - 1) of ``n``
+    complete rows, formed once elsewhere (``cov`` None below two rows): the item-rest
+    covariance is the item's row sum less its variance, the rest's variance the total's
+    less twice that row sum plus the item's variance."""
+    k = len(names)
     rows = []
     for j in range(k):
-        item = x[:, j]
-        rest = total - item
-        r = np.nan
-        if n >= 2 and k >= 2 and np.ptp(item) > 0 and np.ptp(rest) > 0:
-            r = float(np.corrcoef(item, rest)[0, 1])
-        a_del = np.nan
-        if k - 1 >= 2:
-            a, _ = _alpha_from_array(np.delete(x, j, axis=1))
-            a_del = np.nan if a is None else a
-        rows.append(
-            {
-                "mean": float(item.mean()) if n else np.nan,
-                "sd": float(item.std(ddof=1)) if n >= 2 else np.nan,
-                "item_rest_r": r,
-                "alpha_if_deleted": a_del,
-            }
-        )
-    out = pd.DataFrame(rows, index=pd.Index(list(items.columns), name="item"))
+        r = a_del = np.nan
+        sd = np.nan
+        if cov is not None:
+            v = float(cov[j, j])
+            sd = float(np.sqrt(v)) if v >= 0 else np.nan
+            row = float(cov[j].sum())
+            rest_var = float(cov.sum()) - 2.0 * row + v
+            rest_mean = float(mean.sum() - mean[j])
+            if k >= 2 and not _constant(v, float(mean[j])) and not _constant(rest_var, rest_mean):
+                r = float(np.clip((row - v) / np.sqrt(v * rest_var), -1.0, 1.0))
+            if k - 1 >= 2:
+                keep = np.arange(k) != j
+                a, _ = _alpha_checked(cov[np.ix_(keep, keep)], n, k - 1)
+                a_del = np.nan if a is None else a
+        rows.append({"mean": float(mean[j]) if n else np.nan, "sd": sd, "item_rest_r": r,
+                     "alpha_if_deleted": a_del})
+    out = pd.DataFrame(rows, index=pd.Index(list(names), name="item"))
     return out[["mean", "sd", "item_rest_r", "alpha_if_deleted"]]
 
 

@@ -16,7 +16,13 @@ from samesource.results import (
     ReliabilityResult,
     ScaleReliability,
 )
-from samesource.statistics.reliability import cronbach_alpha, item_statistics, omega_total
+from samesource.statistics.reliability import (
+    alpha_from_moments,
+    cronbach_alpha,
+    item_statistics,
+    item_statistics_from_moments,
+    omega_total,
+)
 
 
 def construct_reliability(design: Design, plan: MissingPlan, opts: AnalysisOptions,
@@ -25,9 +31,16 @@ def construct_reliability(design: Design, plan: MissingPlan, opts: AnalysisOptio
     scales: dict[str, ScaleReliability] = {}
     said: list[Notice] = []
     for c in design.constructs.values():
-        complete = plan.complete(c.items)
-        alpha = cronbach_alpha(complete, confidence=opts.confidence)
-        stats = item_statistics(complete)
+        moments = plan.moments(c.items)
+        if moments is not None:  # complete rows: from the moments formed once, no pass over the rows
+            n = moments.n
+            cov = moments.cov * (n / (n - 1))
+            alpha = alpha_from_moments(cov, n, len(c.items), confidence=opts.confidence)
+            stats = item_statistics_from_moments(c.items, moments.mean, cov, n)
+        else:
+            complete = plan.complete(c.items)
+            alpha = cronbach_alpha(complete, confidence=opts.confidence)
+            stats = item_statistics(complete)
         omega = None
         if len(c.items) < MIN_ITEMS_OMEGA:
             said.append(Notice("omega_needs_three_items",

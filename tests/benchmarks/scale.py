@@ -37,6 +37,17 @@ ITEMS = 60
 
 
 def _peak_mb() -> float:
+    """This process's peak resident memory in MB (10^6 bytes). On Linux from VmHWM, the high-water
+    mark of the address space this process's program got at exec: getrusage's ru_maxrss is kept
+    across fork and exec, so a child of this script (which holds the survey it wrote) reported the
+    parent's 2 GB as its own peak."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024 / 1e6
+    except OSError:
+        pass
     from samesource.timings import peak_memory_mb
 
     return peak_memory_mb() or float("nan")
