@@ -329,8 +329,12 @@ class LocalExecutor:
         self._own_groups = own_groups
         self._initargs = (blas_threads, None, own_groups, initializer, tuple(initargs))
         self._pool: ProcessPoolExecutor | None = None
-        self._lock = threading.Lock()
-        # the pids of every worker each pool started, kept because a broken pool forgets them
+        # Re-entrant: a stop signal's exception can leave a "with lock" block between the
+        # acquire and the block (the with statement is not atomic against signal handlers), and
+        # the same thread then stops the pool, or exits, through the same lock.
+        self._lock = threading.RLock()
+        # the pids of every worker each pool started (own_groups: their groups are ended),
+        # kept because a broken pool forgets them
         self._pids: dict[int, set[int]] = {}
 
     @property
@@ -344,8 +348,8 @@ class LocalExecutor:
         return self._start_method
 
     def worker_pids(self) -> list[int]:
-        """The process ids of the workers started so far (with ``own_groups``, each leads
-        its own process group)."""
+        """With ``own_groups``: the process ids of the workers started so far, each the leader
+        of its own process group (empty otherwise)."""
         with self._lock:
             return sorted(p for pids in self._pids.values() for p in pids)
 
@@ -367,8 +371,9 @@ class LocalExecutor:
             self._end(pool)
             pool = self._get_pool()
             fut = pool.submit(fn, item)
-        with self._lock:  # the pool starts its processes in submit
-            self._pids.setdefault(id(pool), set()).update(getattr(pool, "_processes", None) or {})
+        if self._own_groups:
+            with self._lock:  # the pool starts its processes in submit
+                self._pids.setdefault(id(pool), set()).update(list(getattr(pool, "_processes", None) or {}))
         return pool, fut
 
     def submit(self, fn: Callable[[Any], Any], item: Any) -> Future:
@@ -405,6 +410,16 @@ class LocalExecutor:
         futures: list[Future] = []
         running: set[Future] = set()
         try:
+            if self._share is None and not _checks():
+                # Nothing to ask while waiting: submit all and wait on each result in turn. A
+                # signal's exception (the command line's stop) then arrives inside one
+                # Future.result, which gives its lock back; concurrent.futures.wait takes the
+                # locks of several futures at once and could leave one held, and the pool's
+                # manager thread (and the interpreter's exit) would wait for it for ever.
+                for item in items:
+                    pool, fut = self._submit(fn, item)
+                    futures.append(fut)
+                return [f.result() for f in futures]
             while True:
                 allowed = len(items) if self._share is None else max(1, min(self._workers, self._share()))
                 while len(futures) < len(items) and len(running) < allowed:
@@ -461,6 +476,12 @@ class LocalExecutor:
         # ProcessPoolExecutor has no public way to stop running tasks before Python 3.14
         # (terminate_workers), so its private worker table is read, and missing is tolerated.
         procs = list((getattr(pool, "_processes", None) or {}).values())
+        # The tasks no worker has read are not wanted: without this, the queue's feeder thread
+        # can block on a full pipe that no live worker reads, and the pool's manager thread (and
+        # with it the interpreter's exit) waits for it for ever.
+        call_queue = getattr(pool, "_call_queue", None)
+        if call_queue is not None:
+            call_queue.cancel_join_thread()
         if self._own_groups:
             self._end(pool)
             return

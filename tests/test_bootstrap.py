@@ -495,7 +495,7 @@ def test_a_map_runs_at_most_its_share_at_once_as_the_share_changes(tmp_path):
 def test_submit_returns_a_future_and_a_dead_worker_is_worker_lost():
     import signal
 
-    with LocalExecutor(1) as ex:
+    with LocalExecutor(1, own_groups=True) as ex:
         assert ex.submit(abs, -3).result(timeout=60) == 3
         (pid,) = ex.worker_pids()
         slow = ex.submit(time.sleep, 60)
