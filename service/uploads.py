@@ -338,7 +338,8 @@ def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
         cap = _vm_bytes() + int(limits.memory_mb * 1024 * 1024)
         resource.setrlimit(resource.RLIMIT_AS, (cap if hard == resource.RLIM_INFINITY
                                                 else min(cap, hard), hard))
-        table = load_table(path, name=name, max_bytes=limits.max_bytes)
+        table = load_table(path, name=name, max_bytes=limits.max_bytes,
+                           max_unpacked_bytes=int(limits.max_unpacked_mb * 1024 * 1024))
         check_table_limits(table.frame, limits)
         out = ("ok", summarize(table))
     except MemoryError:

@@ -382,6 +382,27 @@ def test_measurement_refuses_a_workbook_bomb_before_parsing_it():
     assert e.value.code == "too_large" and "declares" in str(e.value)
 
 
+def test_the_configured_unpacked_limit_reaches_the_workbook_reader(monkeypatch):
+    # The parsing child reads with the service's limit, not the reader's 500 MB default: a
+    # limit below the default refuses there, and one above it lets through what the default
+    # would refuse (the default made smaller here so the workbook can stay small).
+    from samesource.errors import DataError
+    from samesource.input import workbook_limits
+    from samesource.input.loading import load_table
+
+    bomb = workbook_bomb(8)
+    with pytest.raises(DataError) as e:
+        load_table(bomb, name="bomb.xlsx", max_unpacked_bytes=4 << 20)
+    assert e.value.code == "too_large" and "limit of 4 MB" in str(e.value)
+    token = workbook_limits.UNPACKED_LIMIT.set(4 << 20)  # as if the default were 4 MB
+    try:
+        table = load_table(bomb, name="bomb.xlsx", max_unpacked_bytes=16 << 20)
+        assert table.format == "xlsx"
+        assert workbook_limits.UNPACKED_LIMIT.get() == 4 << 20  # reset after the call
+    finally:
+        workbook_limits.UNPACKED_LIMIT.reset(token)
+
+
 def csv_bytes(rows: list[list[str]]) -> bytes:
     return "\n".join(",".join(r) for r in rows).encode()
 

@@ -34,7 +34,7 @@ from samesource.errors import DataError, InputError, UnsupportedFormat
 from samesource.input import formats
 from samesource.input.design import did_you_mean, item_stem
 from samesource.input.formats import FileFormat
-from samesource.input.workbook_limits import check_workbook
+from samesource.input.workbook_limits import UNPACKED_LIMIT, check_workbook
 
 # READERS, the registry of formats, and FORMATS, READABLE and TEXT_EXTENSIONS made from it
 # are at the end of this module, after the readers they name.
@@ -1117,13 +1117,21 @@ def _read_sav(data: bytes, source: str) -> dict:
 
 
 def load_table(source: str | os.PathLike | bytes, *, name: str | None = None,
-               sheet: str | int | None = None, max_bytes: int | None = None) -> LoadedTable:
+               sheet: str | int | None = None, max_bytes: int | None = None,
+               max_unpacked_bytes: int | None = None) -> LoadedTable:
     """Read a data file (a path, or the bytes of an upload) into a :class:`LoadedTable`.
 
     ``name`` is the file name used in messages and for the extension (required in spirit
     for bytes); ``sheet`` picks an .xlsx sheet by name or 0-based position (default: the
-    first); ``max_bytes`` refuses larger files.
+    first); ``max_bytes`` refuses larger files; ``max_unpacked_bytes`` refuses a workbook that
+    unpacks to more (default 500 MB).
     """
+    if max_unpacked_bytes is not None:
+        token = UNPACKED_LIMIT.set(max_unpacked_bytes)
+        try:
+            return load_table(source, name=name, sheet=sheet, max_bytes=max_bytes)
+        finally:
+            UNPACKED_LIMIT.reset(token)
     if isinstance(source, bytes | bytearray | memoryview):
         data = bytes(source)
         label = name or "upload"

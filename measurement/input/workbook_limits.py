@@ -10,6 +10,7 @@ declare less than it holds). Either over the limit refuses the file.
 
 from __future__ import annotations
 
+import contextvars
 import io
 import os
 import zipfile
@@ -17,6 +18,10 @@ import zipfile
 from samesource.errors import DataError
 
 DEFAULT_MAX_UNPACKED_BYTES = 500 * 1024 * 1024
+# The limit the workbook reader checks against: load_table(max_unpacked_bytes=...) sets it for
+# its own call (the readers of the format registry take only the bytes, label and sheet).
+UNPACKED_LIMIT: contextvars.ContextVar[int] = contextvars.ContextVar("unpacked_limit",
+                                                                      default=DEFAULT_MAX_UNPACKED_BYTES)
 MAX_PARTS = 10_000  # a workbook has tens of parts; tens of thousands is no spreadsheet
 _CHUNK = 1 << 20
 
@@ -28,10 +33,13 @@ def _refuse(what: str, limit: int, source: str) -> DataError:
 
 
 def check_workbook(data: bytes | str | os.PathLike, source: str, *,
-                   max_unpacked_bytes: int = DEFAULT_MAX_UNPACKED_BYTES) -> int:
+                   max_unpacked_bytes: int | None = None) -> int:
     """Raise a DataError (code too_large) when the workbook's parts, decompressed, would
-    exceed ``max_unpacked_bytes``; returns the unpacked size. An archive that cannot be read
-    is left for the workbook reader to describe. ``data``: the bytes, or a path."""
+    exceed ``max_unpacked_bytes`` (default: :data:`UNPACKED_LIMIT`'s value); returns the unpacked
+    size. An archive that cannot be read is left for the workbook reader to describe. ``data``:
+    the bytes, or a path."""
+    if max_unpacked_bytes is None:
+        max_unpacked_bytes = UNPACKED_LIMIT.get()
     try:
         z = zipfile.ZipFile(io.BytesIO(data) if isinstance(data, bytes | bytearray) else data)
     except (zipfile.BadZipFile, OSError, ValueError):
