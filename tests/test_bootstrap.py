@@ -499,7 +499,11 @@ def test_submit_returns_a_future_and_a_dead_worker_is_worker_lost():
         assert ex.submit(abs, -3).result(timeout=60) == 3
         (pid,) = ex.worker_pids()
         slow = ex.submit(time.sleep, 60)
-        queued = ex.submit(abs, -1)
+        # concurrent.futures hands a task to the pool's call queue (max_workers + 1 places) as
+        # soon as there is room, and a task in it can no longer be cancelled: with one worker
+        # busy, two more fit, so the third is certainly still waiting
+        _in_queue = [ex.submit(abs, -1), ex.submit(abs, -2)]
+        queued = ex.submit(abs, -4)
         assert queued.cancel()  # not started: dropped
         time.sleep(0.5)
         os.kill(pid, signal.SIGKILL)
