@@ -274,7 +274,7 @@ class _Linked(Future):
         self.inner: Future | None = None
 
     def cancel(self) -> bool:
-        # CPython 3.11 (gh-107219, fixed in 3.12): if a worker dies while a cancelled task still
+        # CPython 3.11 (gh-107219, fixed upstream after 3.11.7): if a worker dies while a cancelled task still
         # waits in the pool, the pool's manager thread raises InvalidStateError on it and stops
         # failing the rest of the pool's futures; tests/test_bootstrap.py shows the warning
         if self.inner is not None and not self.inner.cancel():
