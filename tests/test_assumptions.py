@@ -192,6 +192,23 @@ def test_a_chance_win_of_unidentified_free_loadings_is_no_test_of_equal_loadings
     assert not (p["estimates"]["latent"]["ci"][0] <= truth)  # the latent model misses it
 
 
+def test_free_loadings_are_not_adopted_on_tau_equivalent_scales():
+    # Truth (simulate's "baseline", seed 20019 of the assumption study): equal method loadings
+    # .35 and every trait loading .70. Free loadings "won" here (free vs equal p = .005) and
+    # were used, with method_loadings "holds"; on tau-equivalent scales they are not identified
+    # (mean free-vs-equal difference 19-21 on 13 df on such surveys, docs/methods.md).
+    from simulate import make_scenario
+
+    sc = make_scenario("baseline", 20019)
+    df, _ = simulate_survey(sc.spec)
+    r = analyze(df.to_csv(index=False).encode(), sc.design(), {"bootstrap": 0}, name="sim.csv").report
+    mf = r["method_variance"]["method_factor"]
+    assert mf["without_marker"]["loadings_differ"] is False
+    assert mf["loadings"] == "equal"
+    assert any("tau-equivalence" in why for why in mf["free_loadings_not_used_because"])
+    assert status(r, "method_loadings") == "untestable"
+
+
 def _loadings_mv(loadings="equal", p_free=0.30, unclean=(), differ=True):
     return {"method_factor": {"usable_as_correction": True, "loadings": loadings,
                               "tests": {"equal_vs_free": {"p": p_free}, "free_vs_none": {"p": 0.01},

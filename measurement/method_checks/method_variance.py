@@ -356,6 +356,13 @@ def method_factor_section(design: Design, fitter: Fitter, mm: FitResult) -> dict
     if conc.get("concentrated"):
         free_reasons.append(f"its method variance is concentrated on a few constructs (least affected: "
                             f"{', '.join(conc['low'])})")
+    without_marker = plain_method_check(design, fitter) if use_marker else None
+    if without_marker is not None and not without_marker["loadings_differ"]:
+        # With tau-equivalent scales, free method loadings proportional to the trait loadings trade
+        # against the trait correlations: the free model is not identified, its fit gain is chance
+        # (methods.md, method_loadings)
+        free_reasons.append("the items of each scale load equally (tau-equivalence not rejected), so free "
+                            "method loadings are not identified")
     free_ok = not free_reasons
     if degenerate:
         warnings.append("The free-loading method factor is degenerate and is not used: " + "; ".join(degenerate) + ".")
@@ -416,8 +423,8 @@ def method_factor_section(design: Design, fitter: Fitter, mm: FitResult) -> dict
         "warnings": warnings,
         "model": chosen.spec.name,
     }
-    if use_marker:
-        out["without_marker"] = plain_method_check(design, fitter)
+    if without_marker is not None:
+        out["without_marker"] = without_marker
     return out
 
 
