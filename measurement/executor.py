@@ -548,16 +548,23 @@ class WorkerBudget:
             n = self._running.value
         return max(1, self.cap // max(1, n))
 
-    @contextlib.contextmanager
-    def running(self) -> Iterator[None]:
-        """Count this process's job among the running ones while the block runs."""
+    def enter(self) -> None:
+        """Count one more running job (give the place back with :meth:`leave`)."""
         with self._running.get_lock():
             self._running.value += 1
+
+    def leave(self) -> None:
+        with self._running.get_lock():
+            self._running.value -= 1
+
+    @contextlib.contextmanager
+    def running(self) -> Iterator[None]:
+        """Count a job among the running ones while the block runs."""
+        self.enter()
         try:
             yield
         finally:
-            with self._running.get_lock():
-                self._running.value -= 1
+            self.leave()
 
     def __repr__(self) -> str:
         return f"WorkerBudget(cap={self.cap})"

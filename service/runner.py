@@ -23,7 +23,6 @@ or fail with the reason once they were interrupted ``max_attempts`` times.
 
 from __future__ import annotations
 
-import contextlib
 import logging
 import os
 import secrets
@@ -66,7 +65,6 @@ class Backend(Protocol):
 
 
 _WORKER_STORE: Store | None = None
-_WORKER_BUDGET: WorkerBudget | None = None
 
 
 def _init_local_worker(database_url: str, budget: WorkerBudget | None = None) -> None:
@@ -74,12 +72,11 @@ def _init_local_worker(database_url: str, budget: WorkerBudget | None = None) ->
     ended whole when the service is gone, so a killed service leaves no analysis running
     behind it): its own database connection for progress, and the service's one budget of
     processes for its bootstrap pool."""
-    global _WORKER_STORE, _WORKER_BUDGET
+    global _WORKER_STORE
     from .db import Database
 
     if budget is not None:
         limit_workers(budget)
-        _WORKER_BUDGET = budget
     _WORKER_STORE = Store(Database(database_url))
 
 
@@ -100,8 +97,7 @@ def _run_local(spec: JobSpec) -> Outcome:
         except Exception:
             return False
 
-    running = _WORKER_BUDGET.running() if _WORKER_BUDGET is not None else contextlib.nullcontext()
-    with running, stop_when(gone):
+    with stop_when(gone):  # the job's place in the budget is held by LocalBackend.submit
         return run_job(spec, progress, executor=None)  # bootstrap: measurement's default pool
 
 
@@ -122,7 +118,17 @@ class LocalBackend:
         self.budget = budget
 
     def submit(self, spec: JobSpec) -> Future:
-        return self._pool.submit(_run_local, spec)
+        # The place is taken and given back here, in the service's process: a job process ended
+        # by kill (a deleted dataset, a dead owner) would never give it back itself, and every
+        # later job would then bootstrap on a smaller share.
+        self.budget.enter()
+        try:
+            fut = self._pool.submit(_run_local, spec)
+        except BaseException:
+            self.budget.leave()
+            raise
+        fut.add_done_callback(lambda _f: self.budget.leave())
+        return fut
 
     def worker_pids(self) -> list[int]:
         return self._pool.worker_pids()

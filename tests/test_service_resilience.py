@@ -758,3 +758,33 @@ def test_short_chaos_kill_9_loop_generated_requests_and_concurrent_clients(tmp_p
         assert load["errors"] == 0 and load["round_trips"] > 0, load
     finally:
         srv.stop()
+
+
+def test_a_killed_job_gives_its_place_in_the_process_budget_back():
+    # The place is held in the service's process: a job process ended by kill (a deleted
+    # dataset's analysis, say) cannot give it back itself, and every later lone job would
+    # bootstrap on a smaller share (2 // 2 = 1 worker on two cores instead of 2).
+    from concurrent.futures import Future
+
+    from samesource.executor import WorkerBudget, WorkerLost
+    from samesource.service.runner import LocalBackend
+
+    class Pool:
+        futures: list = []
+
+        def submit(self, fn, item):
+            self.futures.append(Future())
+            return self.futures[-1]
+
+    backend = LocalBackend.__new__(LocalBackend)
+    backend._pool, backend.budget = Pool(), WorkerBudget(2)
+    backend.submit("a")
+    backend.submit("b")
+    assert backend.budget.share() == 1  # two jobs running: one worker each
+    backend._pool.futures[0].set_exception(WorkerLost("killed"))
+    assert backend.budget.share() == 2  # the killed job's place is back: the other gets both
+    backend.submit("c")
+    assert backend.budget.share() == 1
+    backend._pool.futures[1].set_result(None)
+    backend._pool.futures[2].set_result(None)
+    assert backend.budget.share() == 2
