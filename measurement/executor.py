@@ -529,7 +529,8 @@ class WorkerBudget:
     """One cap on the computing processes of several processes that each run work with a
     pool of their own (the service's job processes, each with its bootstrap's pool).
 
-    Each process that runs a job holds a place (:meth:`running`) and may use
+    Each running job holds a place (:meth:`enter` / :meth:`leave`, or :meth:`running`; the
+    service takes it in its own process, which outlives a killed job) and may use
     :meth:`share` = ``cap // running jobs`` workers (at least one), asked again as its tasks
     finish: a lone job uses the whole cap, and once others start every one is down to its
     share by the end of its current task. Made in the service's process and handed to the job
