@@ -9,7 +9,7 @@ check costs if it did nothing but the analyses themselves.
 
 Writes the block between the ``correction check`` markers in docs/performance.md.
 
-    nice -n 10 python tests/benchmarks/correction_check_bench.py [--replicates 200] [--skip-dask]
+    python tests/benchmarks/correction_check_bench.py [--replicates 200] [--skip-dask]
 """
 
 from __future__ import annotations
@@ -64,6 +64,11 @@ def run(replicates: int, dask_workers: int) -> dict:
     raise RuntimeError(proc.stderr[-3000:])
 
 
+def _commit() -> str:
+    proc = subprocess.run(["git", "rev-parse", "--short", "HEAD"], capture_output=True, text=True, cwd=ROOT)
+    return proc.stdout.strip() or "unknown"
+
+
 def write(block: str, out: Path) -> None:
     text = out.read_text() if out.exists() else ""
     if BEGIN in text:
@@ -91,8 +96,8 @@ def main() -> None:
     rows = [("local process pool (2 workers)", local)] + ([("local Dask cluster (2 workers)", dask)] if dask else [])
     lines = [BEGIN, "", "## The correction check (`--check-corrections`)", "",
              f"Measured by `tests/benchmarks/correction_check_bench.py` on {date.today().isoformat()} "
-             f"({platform.processor() or platform.machine()}, {os.cpu_count()} cores, shared with other work; run "
-             "under `nice -n 10`). The sample survey (2,500 rows, 23 items, FIML, as `make demo` runs it) with "
+             f"({platform.processor() or platform.machine()}, {os.cpu_count()} cores, at commit {_commit()}, "
+             f"niceness {os.nice(0)}, load average {os.getloadavg()[0]:.1f} at the end). The sample survey (2,500 rows, 23 items, FIML, as `make demo` runs it) with "
              f"N = {args.replicates}: five scenarios, {local['surveys']:,} simulated surveys, each a whole analysis "
              "(no bootstrap inside). Floor: one ordinary analysis of the survey, measured in the same run, times the "
              "number of simulated surveys, over the two workers.", "",
