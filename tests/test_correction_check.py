@@ -21,7 +21,10 @@ import pytest
 from conftest import small_survey
 
 from samesource.corrections.correction_check import (
+    ESTIMATES,
     Population,
+    _Chunk,
+    _run_chunk,
     dependable,
     draw_survey,
     lean_on,
@@ -32,6 +35,7 @@ from samesource.corrections.correction_check import (
 )
 from samesource.engine.builders import method_factor_model, without_method_factor
 from samesource.engine.fitting import Moments, fit_model
+from samesource.executor import StopRequested, stop_when
 from samesource.input.design import parse_design
 from samesource.method_checks.planning import power_at, smallest_n
 from simulate import (
@@ -207,3 +211,17 @@ def test_the_command_line_runs_the_check_and_writes_it_into_every_output(tmp_pat
     assert p["scenarios"]["published_upper_share"]["observed"]["bias"] > p["scenarios"]["fitted"]["observed"]["bias"]
     page = (tmp_path / "out" / "report.html").read_text()
     assert 'id="correction-check"' in page and 'id="next-time"' in page and "Correction check:" in page
+
+
+def test_a_stopped_run_ends_its_chunk_before_the_next_survey():
+    # a chunk of simulated surveys is minutes of work; a stopped run (the service's stop flag on a
+    # cluster worker) must not analyse another survey: a stop asked at once ends it before the first
+    pop = population_of(SPEC, 300)
+    design = design_for(SPEC)
+    chunk = _Chunk(0, pop, design, {}, (("engagement", "support"),), 0, 3, 1)
+    with stop_when(lambda: True), pytest.raises(StopRequested):
+        _run_chunk(chunk)
+    # and without a stop the same chunk analyses its surveys
+    one = _run_chunk(dataclasses.replace(chunk, stop=1))
+    assert one.values.shape == (1, 1, len(ESTIMATES), 3) and not one.failures
+    assert np.isfinite(one.values[0, 0, ESTIMATES.index("observed"), 0])

@@ -52,7 +52,13 @@ from samesource.corrections.paths import METHODS
 from samesource.engine.builders import METHOD, population_model
 from samesource.engine.fitting import fit_model
 from samesource.errors import InputError
-from samesource.executor import Executor, SerialExecutor, default_executor
+from samesource.executor import (
+    Executor,
+    SerialExecutor,
+    StopRequested,
+    default_executor,
+    stop_requested,
+)
 from samesource.input.design import MAIN, Design
 from samesource.input.loading import LoadedTable
 from samesource.input.missing import MissingPlan
@@ -389,6 +395,10 @@ def _run_chunk(chunk: _Chunk) -> _ChunkResult:
     verdict = np.full(size, -1, dtype=np.int64)
     failures: list[str] = []
     for i, r in enumerate(range(chunk.start, chunk.stop)):
+        # a chunk is minutes of work: a run its owner stopped (a deleted dataset's analysis on a
+        # cluster worker, where a task cannot be killed from outside) ends at the next survey
+        if stop_requested():
+            raise StopRequested("the work was told to stop")
         rng = replicate_rng(chunk.seed, chunk.scenario, r)
         try:
             main, sources = draw_survey(chunk.population, design, rng)
