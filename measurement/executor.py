@@ -36,8 +36,9 @@ import os
 import signal
 import threading
 import time
+import weakref
 from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
+from concurrent.futures import FIRST_COMPLETED, Future, InvalidStateError, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from multiprocessing import context as mp_context
 from multiprocessing import forkserver, popen_forkserver, reduction, spawn
@@ -130,6 +131,9 @@ class SerialExecutor:
 
 
 OWNER_POLL_SECONDS = 1.0
+# A pool broken (a worker died) whose manager thread has not failed its futures by then has its
+# futures failed by the pool's watcher (LocalExecutor._watch)
+BROKEN_POOL_GRACE_SECONDS = 5.0
 
 
 def process_alive(pid: int) -> bool:
@@ -274,9 +278,10 @@ class _Linked(Future):
         self.inner: Future | None = None
 
     def cancel(self) -> bool:
-        # CPython 3.11 (gh-107219, fixed upstream after 3.11.7): if a worker dies while a cancelled task still
-        # waits in the pool, the pool's manager thread raises InvalidStateError on it and stops
-        # failing the rest of the pool's futures; tests/test_bootstrap.py shows the warning
+        # CPython 3.11 (gh-107219, fixed upstream after 3.11.7): if a worker dies while a
+        # cancelled task still waits in the pool, the pool's manager thread raises
+        # InvalidStateError on it and stops failing the pool's other futures. The pool's
+        # watcher (LocalExecutor._watch) fails those itself; tests/test_executor_pool.py
         if self.inner is not None and not self.inner.cancel():
             return False
         return super().cancel()
@@ -339,6 +344,9 @@ class LocalExecutor:
         # the pids of every worker each pool started (own_groups: their groups are ended),
         # kept because a broken pool forgets them
         self._pids: dict[int, set[int]] = {}
+        # each pool's futures not yet done, failed by the pool's watcher (_watch) if the pool
+        # cannot fail them itself
+        self._pending: dict[int, tuple[weakref.ref, set[Future]]] = {}
 
     @property
     def workers(self) -> int:
@@ -374,16 +382,76 @@ class LocalExecutor:
             self._end(pool)
             pool = self._get_pool()
             fut = pool.submit(fn, item)
-        if self._own_groups:
-            with self._lock:  # the pool starts its processes in submit
+        with self._lock:
+            if self._own_groups:  # the pool starts its processes in submit
                 self._pids.setdefault(id(pool), set()).update(list(getattr(pool, "_processes", None) or {}))
+            ref, pending = self._pending.get(id(pool), (None, set()))
+            if ref is None or ref() is not pool:  # (an id is reused once its pool is gone)
+                ref, pending = self._pending[id(pool)] = (weakref.ref(pool), set())
+                self._start_watch(pool, ref, pending)
+            pending.add(fut)
+        fut.add_done_callback(pending.discard)
         return pool, fut
+
+    def _start_watch(self, pool: ProcessPoolExecutor, ref: weakref.ref,
+                     pending: set[Future]) -> None:
+        """Start the thread that fails ``pool``'s futures left pending when the pool breaks."""
+        # The manager thread (started by the pool's first submit) is the one that completes the
+        # pool's futures; private, so a Python without it goes unwatched.
+        manager = getattr(pool, "_executor_manager_thread", None)
+        if manager is None:  # pragma: no cover - every Python 3.11 to 3.13 has it
+            return
+        processes = getattr(pool, "_processes", None)  # the dict the manager fills
+        threading.Thread(target=self._watch,
+                         args=(id(pool), ref, manager, {} if processes is None else processes, pending),
+                         daemon=True, name="samesource-pool-watch").start()
+
+    def _watch(self, key: int, pool_ref: weakref.ref, manager: threading.Thread,
+               processes: dict, pending: set[Future]) -> None:
+        """Wait until the pool's manager thread ends, or the pool has been broken (a worker
+        died) for BROKEN_POOL_GRACE_SECONDS; then fail every future of the pool still pending
+        with BrokenProcessPool (its callbacks make that WorkerLost), and if the pool broke,
+        drop it and kill its workers left alive.
+
+        Once its manager thread has ended nobody else completes a pool's futures. It ends
+        after failing them all when a worker dies, except in CPython 3.11's race (gh-107219):
+        a cancelled task still waiting in the pool makes it raise InvalidStateError half-way,
+        leaving later futures pending for ever (a caller waiting on one would hang) and the
+        other workers running. The grace bounds the wait should the manager thread itself
+        wedge while the pool is broken."""
+        broken_since: float | None = None
+        while manager.is_alive():
+            manager.join(OWNER_POLL_SECONDS)
+            pool = pool_ref()
+            if pool is not None and getattr(pool, "_broken", False):
+                broken_since = broken_since or time.monotonic()
+                if time.monotonic() - broken_since >= BROKEN_POOL_GRACE_SECONDS:
+                    break
+            del pool
+        pool = pool_ref()
+        broken = pool is not None and bool(getattr(pool, "_broken", False))
+        lost = BrokenProcessPool("the pool's manager thread ended with the task pending "
+                                 "(a worker process died)")
+        for fut in list(pending):
+            with contextlib.suppress(InvalidStateError):  # done or cancelled meanwhile
+                fut.set_exception(lost)
+        if pool is not None and broken:
+            self._end(pool)
+        if broken:
+            for proc in list(processes.values()):
+                if proc.is_alive():
+                    proc.kill()
+        with self._lock:
+            if self._pending.get(key, (None, None))[1] is pending:
+                del self._pending[key]
 
     def submit(self, fn: Callable[[Any], Any], item: Any) -> Future:
         """Run ``fn(item)`` in a worker; the future's result is its value. A worker that dies
         under the task makes the future raise :class:`WorkerLost` (the pool is dropped, and
         with ``own_groups`` what is left of every worker's group ended); ``cancel()`` drops a
         task that has not started, :meth:`terminate` stops running ones."""
+        # Every other future of a broken pool raises WorkerLost too, even in Python 3.11's race
+        # with a cancelled task (the pool's watcher, _watch).
         pool, fut = self._submit(fn, item)
         outer = _Linked()
         outer.inner = fut

@@ -335,6 +335,35 @@ def _database_errors() -> tuple[type[BaseException], ...]:
     return (SQLAlchemyError,)
 
 
+def _out_of_memory(e: BaseException, data: str) -> str:
+    """What to say when reading or analysing a file ran out of memory (a reader's "cannot
+    open" raised while handling a MemoryError included): the limit that was met and what to
+    do, as the service's 413 for an upload over SAMESOURCE_PARSE_MEMORY_MB does."""
+    import resource
+
+    where = getattr(e, "file", None) or data
+    soft, _hard = resource.getrlimit(resource.RLIMIT_AS)
+    if soft != resource.RLIM_INFINITY:
+        limit = f"the limit on this process's memory, {soft / 2**20:,.0f} MB (ulimit -v)"
+    else:
+        free = _available_mb()
+        limit = "the memory free on this machine" + (f" (about {free:,.0f} MB now)" if free else "")
+    what = "reading the file" if isinstance(e, InputError) else "the analysis"
+    return (f"{where}: {what} ran out of memory: it needs more than {limit}. Save the data as "
+            ".csv or .parquet (read with far less memory than a workbook), remove the rows or "
+            "columns the analysis does not use, or run it where more memory is free")
+
+
+def _available_mb() -> float | None:
+    try:
+        for line in Path("/proc/meminfo").read_text().splitlines():
+            if line.startswith("MemAvailable:"):
+                return int(line.split()[1]) / 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
+
+
 def main(argv: list[str] | None = None) -> int:
     from .config import ConfigError
 
@@ -361,7 +390,14 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"samesource: {e.strerror or e} ({e.filename or 'data folder'})", file=sys.stderr)
         return EXIT_BAD_INPUT
-    except InputError as e:
+    except (InputError, MemoryError) as e:
+        from .uploads import ran_out_of_memory
+
+        if args.command in ("analyze", "draft-design") and ran_out_of_memory(e):
+            print(f"samesource: {_out_of_memory(e, args.data)}", file=sys.stderr)
+            return EXIT_BAD_INPUT
+        if isinstance(e, MemoryError):
+            raise
         print(f"samesource: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:

@@ -54,6 +54,9 @@ class ServiceConfig:
     max_cell_chars: int = 32_767  # Excel's own limit on the text of one cell
     max_column_name_chars: int = 256
     max_unpacked_mb: float = 500.0  # an .xlsx's parts, decompressed
+    # Parsing children at once (each up to parse_memory_mb); an upload that waits for one
+    # longer than max_queue_seconds is answered 503 overloaded (service/upload_gate.py).
+    max_parsers: int = 2
     # The HTTP server under load (service/server.py, docs/http-api.md "Limits"): open
     # connections, how long an idle or silent one stays open, and how long a request may wait
     # for a request thread before it is answered 503 instead.
@@ -133,7 +136,7 @@ def _limits(cfg: ServiceConfig) -> list[tuple[str, float, float]]:
             "tenant_max_queued": 1, "max_bootstrap": 0, "tenant_max_replicates": 0,
             "parse_memory_mb": 64, "parse_seconds": 1, "max_rows": 1, "max_columns": 1,
             "max_cells": 1, "max_cell_chars": 1, "max_column_name_chars": 1,
-            "max_unpacked_mb": 1, "connection_limit": 10, "idle_seconds": 1,
+            "max_unpacked_mb": 1, "max_parsers": 1, "connection_limit": 10, "idle_seconds": 1,
             "max_queue_seconds": 0.1}
     return [(setting_name(f), getattr(cfg, f), low) for f, low in lows.items()]
 
@@ -162,6 +165,7 @@ _ENV: dict[str, tuple[str, Any]] = {
     "SAMESOURCE_MAX_CELL_CHARS": ("max_cell_chars", int),
     "SAMESOURCE_MAX_COLUMN_NAME_CHARS": ("max_column_name_chars", int),
     "SAMESOURCE_MAX_UNPACKED_MB": ("max_unpacked_mb", float),
+    "SAMESOURCE_MAX_PARSERS": ("max_parsers", int),
     "SAMESOURCE_CONNECTION_LIMIT": ("connection_limit", int),
     "SAMESOURCE_IDLE_SECONDS": ("idle_seconds", int),
     "SAMESOURCE_MAX_QUEUE_SECONDS": ("max_queue_seconds", float),

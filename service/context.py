@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 from flask import current_app
 
 from .config import ServiceConfig
 from .runner import JobRunner
 from .store import Store
+from .upload_gate import ParseSlots, SameBytes
 
 EXTENSION = "samesource"
 # The WSGI environ key in which the server (service/server.py) puts the seconds a request,
@@ -22,6 +23,11 @@ class Services:
     store: Store
     runner: JobRunner | None = None
     lock_fd: int | None = None  # the data folder's lock, held while the service runs
+    same_bytes: SameBytes = field(default_factory=SameBytes)  # one upload of the same bytes at a time
+    parse_slots: ParseSlots = field(init=False)  # the bound on parsing children at once
+
+    def __post_init__(self) -> None:
+        self.parse_slots = ParseSlots(self.config.max_parsers, self.config.max_queue_seconds)
 
     def close(self) -> None:
         """Stop the job runner (running analyses go back to the queue), the database, and

@@ -6,13 +6,14 @@ an HTTP route makes is scoped to one tenant: another tenant's id is simply not f
 
 from __future__ import annotations
 
+import hashlib
 import secrets
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from sqlalchemy import delete, func, select, update
+from sqlalchemy import delete, func, select, text, update
 
 from . import tokens
 from .db import Database
@@ -137,6 +138,29 @@ class Store:
             s.add(ds)
             s.flush()
             return _dataset(ds)
+
+    def add_dataset_once(self, tenant_id: str, dataset_id: str, *, sha256: str,
+                         **fields: Any) -> tuple[dict, bool]:
+        """Store the dataset unless the tenant already has one with exactly these bytes, in one
+        write transaction: (the dataset, True) when stored, (the earlier one, False) when not.
+        Two service processes storing the same bytes at once store them once: SQLite's write
+        transactions run one at a time (BEGIN IMMEDIATE), and on PostgreSQL the transaction
+        first takes an advisory lock named by the tenant and the hash."""
+        with self.db.writing() as s:
+            if self.db.dialect == "postgresql":
+                key = int.from_bytes(hashlib.sha256(f"{tenant_id}/{sha256}".encode()).digest()[:8],
+                                     "big", signed=True)
+                s.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": key})
+            earlier = s.scalar(select(Dataset).where(Dataset.tenant_id == tenant_id,
+                                                     Dataset.sha256 == sha256)
+                               .order_by(Dataset.created_at, Dataset.id).limit(1))
+            if earlier is not None:
+                return _dataset(earlier), False
+            ds = Dataset(id=dataset_id, tenant_id=tenant_id, created_at=utcnow(), sha256=sha256,
+                         **fields)
+            s.add(ds)
+            s.flush()
+            return _dataset(ds), True
 
     def get_dataset(self, tenant_id: str, dataset_id: str) -> dict | None:
         if not _can_exist(dataset_id):

@@ -310,10 +310,11 @@ def check_table_limits(frame, limits: ParseLimits) -> None:
                             f"{limits.max_cell_chars}")
 
 
-def _ran_out_of_memory(e: BaseException) -> bool:
+def ran_out_of_memory(e: BaseException) -> bool:
     """Whether ``e`` was raised while handling a MemoryError: the workbook reader reports any
     failure inside openpyxl as a workbook it cannot open (``raise ... from None`` still keeps
-    the MemoryError as the context), which under the child's memory cap is the cap."""
+    the MemoryError as the context), which under the child's memory cap is the cap (and for
+    the command line, the machine's memory or the process's limit)."""
     seen: set[int] = set()
     while e is not None and id(e) not in seen:
         if isinstance(e, MemoryError):
@@ -347,7 +348,7 @@ def _parse_child(conn, path: str, name: str, limits: ParseLimits) -> None:
     except OverLimit as e:
         out = ("limit", (e.status, e.field, e.value, e.message))
     except InputError as e:
-        if _ran_out_of_memory(e):  # a reader's "cannot open" over the cap is the cap
+        if ran_out_of_memory(e):  # a reader's "cannot open" over the cap is the cap
             out = ("memory", None)
         else:
             api = from_input_error(e)

@@ -246,3 +246,30 @@ def test_the_service_runs_an_analysis_on_this_database(store, tmp_path):
         assert app.extensions[EXTENSION].store.db.dialect == store.db.dialect
     finally:
         app.extensions[EXTENSION].close()
+
+
+def test_the_same_bytes_stored_at_the_same_moment_are_stored_once(store):
+    # Several connections at once (as several service processes on one database): the check
+    # and the insert are one write transaction, so exactly one dataset is stored.
+    from samesource.service.store import new_id
+
+    _, a = tenant(store, "acme")
+    _, b = tenant(store, "other")
+    results: list = []
+
+    def add(tenant_id: str) -> None:
+        results.append(store.add_dataset_once(
+            tenant_id, new_id("ds"), sha256="1" * 64, name="s.csv", format="csv", size_bytes=10,
+            rows=3, columns=["a"], numeric_columns=["a"], draft_design={}, warnings=[],
+            stored_path="uploads/x"))
+
+    threads = [threading.Thread(target=add, args=(a,)) for _ in range(6)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(60)
+    assert sorted(created for _, created in results) == [False] * 5 + [True]
+    assert len({ds["id"] for ds, _ in results}) == 1
+    assert store.list_datasets(a, limit=10, offset=0)[1] == 1
+    add(b)  # another tenant's same bytes are its own
+    assert results[-1][1] is True and results[-1][0]["id"] != results[0][0]["id"]

@@ -8,10 +8,10 @@ import re
 
 from flask import Blueprint, Response, jsonify, request
 
-from .. import upload_stream, uploads
+from .. import upload_gate, upload_stream, uploads
 from ..config import setting_name
-from ..context import services
-from ..errors import ApiError, echo
+from ..context import Services, services
+from ..errors import OVERLOAD_RETRY_AFTER, ApiError, echo
 from ..faults import is_disk_full
 from ..store import new_id
 from .auth import tenant_id
@@ -49,34 +49,51 @@ def upload() -> tuple[Response, int]:
                        "send the survey file as multipart/form-data in the field 'file' "
                        f"(got Content-Type {request.mimetype or 'none'!r})", "file")
     spooled, name = _spool_file_field(cfg)
+    # The same bytes sent again at the same moment wait here for the first, then get its
+    # dataset as a later duplicate does: the check and the storing are one step.
+    try:
+        with svc.same_bytes.holding(tenant_id(), spooled.sha256):
+            return _parse_and_store(svc, spooled, name)
+    finally:
+        spooled.discard()  # gone already when stored
+
+
+def _parse_and_store(svc: Services, spooled: uploads.Spooled, name: str) -> tuple[Response, int]:
+    cfg = svc.config
     existing = svc.store.find_dataset_by_sha256(tenant_id(), spooled.sha256)
     if existing is not None:  # the same bytes again: answer the dataset already stored
-        spooled.discard()
         log.info("upload of %d bytes is dataset %s again; not stored twice", spooled.size, existing["id"])
         return _reused(existing)
     try:
-        try:
+        with svc.parse_slots.taken():
             parsed = uploads.parse_bounded(spooled.path, name, uploads.ParseLimits.from_config(cfg))
-        except uploads.OverLimit as e:
-            setting = setting_name(e.field)
-            log.info("upload refused: over %s (%d bytes)", setting, spooled.size)
-            raise ApiError(e.status, "over_limit", f"{e.message} ({setting}); remove what the "
-                           "analysis does not use, or split the file", "file",
-                           {"limit": setting, "limit_value": e.value}) from None
-        except ApiError as err:
-            if err.field is None:
-                err.field = "file"
-            log.info("upload refused: %s (%d bytes)", err.code, spooled.size)
-            raise
-        columns = parsed.columns
-        dataset_id = new_id("ds")
-        rel = uploads.stored_relpath(tenant_id(), dataset_id)
-        uploads.keep(spooled, cfg.data_dir, rel)
-    except BaseException:
-        spooled.discard()
+    except upload_gate.Busy as e:
+        slots = svc.parse_slots
+        log.warning("overloaded: an upload waited %.1f s for a parsing slot (all %d busy); "
+                    "answered 503", e.waited, slots.size)
+        raise ApiError(503, "overloaded", (
+            f"the service is overloaded: this upload waited {e.waited:.1f} s for one of its "
+            f"{slots.size} parsing slots (SAMESOURCE_MAX_PARSERS), over "
+            f"SAMESOURCE_MAX_QUEUE_SECONDS ({slots.wait_seconds:g} s); try again in "
+            f"{OVERLOAD_RETRY_AFTER} s"),
+            headers={"Retry-After": str(OVERLOAD_RETRY_AFTER)}) from None
+    except uploads.OverLimit as e:
+        setting = setting_name(e.field)
+        log.info("upload refused: over %s (%d bytes)", setting, spooled.size)
+        raise ApiError(e.status, "over_limit", f"{e.message} ({setting}); remove what the "
+                       "analysis does not use, or split the file", "file",
+                       {"limit": setting, "limit_value": e.value}) from None
+    except ApiError as err:
+        if err.field is None:
+            err.field = "file"
+        log.info("upload refused: %s (%d bytes)", err.code, spooled.size)
         raise
+    columns = parsed.columns
+    dataset_id = new_id("ds")
+    rel = uploads.stored_relpath(tenant_id(), dataset_id)
+    uploads.keep(spooled, cfg.data_dir, rel)
     try:
-        ds = svc.store.add_dataset(
+        ds, stored = svc.store.add_dataset_once(
             tenant_id(), dataset_id, name=name, format=parsed.format, sha256=spooled.sha256,
             size_bytes=spooled.size, rows=parsed.rows, columns=columns,
             numeric_columns=parsed.numeric_columns, draft_design=parsed.draft_design,
@@ -84,6 +101,10 @@ def upload() -> tuple[Response, int]:
     except BaseException:
         uploads.remove(cfg.data_dir, rel)
         raise
+    if not stored:  # another service process stored the same bytes meanwhile
+        uploads.remove(cfg.data_dir, rel)
+        log.info("upload of %d bytes is dataset %s again; not stored twice", spooled.size, ds["id"])
+        return _reused(ds)
     log.info("dataset %s stored: %d bytes, %d rows, %d columns, %s", dataset_id, spooled.size,
              ds["rows"], len(columns), parsed.format)
     resp = jsonify(public(ds))

@@ -319,7 +319,8 @@ def document() -> dict:
                                   "or (code over_limit) it passes a limit on rows, columns, "
                                   "cells, cell or column-name length, or parsing time"),
                     "503": _error("The database does not answer, or the service is overloaded "
-                                   "(Retry-After)"),
+                                  "(code overloaded: no request thread, or no parsing slot, "
+                                  "SAMESOURCE_MAX_PARSERS, in time; Retry-After)"),
                     "507": _error("The service's disk is full (code insufficient_storage)"),
                 }},
             "get": {
