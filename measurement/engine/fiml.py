@@ -124,4 +124,20 @@ class FIMLRows:
                    observed=observed, counts=counts, ac_n=ac_n, ac_mean=ac_mean, ac_var=ac_var)
 
 
-__all__ = ["FIMLRows"]
+@dataclass(frozen=True, eq=False)
+class PatternData:
+    """FIML's input as per-pattern sums (:func:`~samesource.engine.chunked_moments.pattern_sums`
+    of the rows on ``names``) instead of the rows: :func:`~samesource.engine.fitting.fit_model`
+    takes it where it takes :class:`~samesource.engine.fitting.RawData`, with the same result."""
+
+    names: tuple[str, ...]
+    patterns: tuple[PatternSums, ...]
+
+    def rows_for(self, columns: np.ndarray) -> FIMLRows:
+        """The statistics on these columns (positions in ``names``, in the model's order)."""
+        from samesource.engine.chunked_moments import project_patterns  # see TYPE_CHECKING above
+
+        return FIMLRows.from_patterns(project_patterns(self.patterns, columns), len(columns))
+
+
+__all__ = ["FIMLRows", "PatternData"]

@@ -46,7 +46,7 @@ import pandas as pd
 from scipy import linalg, stats
 
 from samesource.engine import fit_indices as fx
-from samesource.engine.fiml import FIMLRows
+from samesource.engine.fiml import FIMLRows, PatternData
 from samesource.engine.modelspec import ModelSpec, Param
 from samesource.errors import DataError
 
@@ -1091,7 +1091,9 @@ def _objective_for(st: _Structure, data: Moments | RawData):
     if isinstance(data, RawData):
         sel = _select(data.names, st.observed)
         return _FIMLObjective(st, data.X[:, sel])
-    raise TypeError("data must be Moments or RawData")
+    if isinstance(data, PatternData):
+        return _FIMLObjective(st, data.rows_for(_select(data.names, st.observed)))
+    raise TypeError("data must be Moments, RawData or PatternData")
 
 
 def _check_proper(st: _Structure, x: np.ndarray, S: np.ndarray) -> list[str]:

@@ -361,17 +361,10 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
 
     for j, col in enumerate(items):
         present = matrix[:, j][~np.isnan(matrix[:, j])]
-        if present.size == 0:
-            raise DataError(
-                f"item '{col}' has no answers (every cell is blank or a missing code); drop it "
-                "from the design, or check that this is the right column",
-                file=table.source, column=col)
-        if np.all(present == present[0]):
-            some = " that has an answer" if present.size < n else ""
-            raise DataError(
-                f"item '{col}' has the same answer ({_num(present[0])}) in every "
-                f"{table.row_label}{some}, so it carries no information; drop it from the "
-                "design", file=table.source, column=col)
+        err = item_answers_error(col, present.size, float(present.min(initial=np.inf)),
+                                 float(present.max(initial=-np.inf)), n, table.source, table.row_label)
+        if err is not None:
+            raise err
 
     reverse = [i for c in design.constructs.values() for i in c.reverse]
     if source == "data":
@@ -416,6 +409,23 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
     return PreparedData(items=items_frame, ids=ids, groups=groups, scale_min=lo, scale_max=hi,
                         scale_source=source, n_rows=n,
                         missing_cells=int(np.isnan(matrix).sum()), warnings=notes, table=table)
+
+
+def item_answers_error(col: str, count: int, lowest: float, highest: float, rows: int, source: str,
+                       label: str) -> DataError | None:
+    """An item that cannot be analysed, from its answers' count and range: none, or one answer
+    throughout (None when it can)."""
+    if count == 0:
+        return DataError(
+            f"item '{col}' has no answers (every cell is blank or a missing code); drop it "
+            "from the design, or check that this is the right column", file=source, column=col)
+    if lowest == highest:
+        some = " that has an answer" if count < rows else ""
+        return DataError(
+            f"item '{col}' has the same answer ({_num(lowest)}) in every "
+            f"{label}{some}, so it carries no information; drop it from the "
+            "design", file=source, column=col)
+    return None
 
 
 def where_read(table: LoadedTable) -> str:
