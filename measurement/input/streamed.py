@@ -157,7 +157,6 @@ def _accumulate(fh, source: str, names: list[str], design: Design) -> StreamedIt
     present = np.zeros(p, dtype=np.int64)
     vmin, vmax = np.full(p, np.inf), np.full(p, -np.inf)
     words: Counter = Counter()
-    listwise = MomentSums.of(np.empty((0, p)))
     patterns = PatternAccumulator()
     n = missing = empty = 0
     for row0, block in _blocks(fh, 2):
@@ -198,8 +197,7 @@ def _accumulate(fh, source: str, names: list[str], design: Design) -> StreamedIt
                     vmax = np.fmax(vmax, np.nanmax(np.where(gaps, -np.inf, X), axis=0))
                 if reverse:
                     X[:, reverse] = lo + hi - X[:, reverse]
-                listwise = listwise.merged(MomentSums.of(X[~gaps.any(axis=1)]))
-                patterns.add(X)
+                patterns.add(X)   # the complete rows' pattern is also the listwise sums
     flagged = [j for j in range(p) if bad[j].count]
     if flagged:
         j = flagged[0]
@@ -212,9 +210,11 @@ def _accumulate(fh, source: str, names: list[str], design: Design) -> StreamedIt
         err = item_answers_error(col, int(present[j]), float(vmin[j]), float(vmax[j]), n, source, "row")
         if err is not None:
             raise err
+    sums = patterns.result()
+    listwise = next((ps.sums for ps in sums if ps.observed.all()), MomentSums.of(np.empty((0, p))))
     return StreamedItems(source=source, items=tuple(items), n_rows=n, missing_cells=missing,
                          rows_without_answers=empty, scale_min=lo, scale_max=hi, listwise=listwise,
-                         patterns=tuple(patterns.result()), missing_words=words)
+                         patterns=tuple(sums), missing_words=words)
 
 
 __all__ = ["NotStreamable", "StreamedItems", "stream_items"]
