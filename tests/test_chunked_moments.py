@@ -14,7 +14,13 @@ import pandas as pd
 import pytest
 from semopy.examples import holzinger39
 
-from samesource.engine.chunked_moments import MomentSums, chunked_moments, csv_chunks, pattern_sums
+from samesource.engine.chunked_moments import (
+    MomentSums,
+    chunked_moments,
+    csv_chunks,
+    pattern_sums,
+    project_patterns,
+)
 from samesource.engine.fitting import Moments, fit_model
 
 ITEMS = [f"x{i}" for i in range(1, 10)]
@@ -85,6 +91,20 @@ def test_pattern_sums_equal_numpy_per_pattern():
     # the patterns come in one order however the rows were chunked
     again = pattern_sums(_chunks(X, 301))
     assert [p.observed.tolist() for p in again] == [p.observed.tolist() for p in parts]
+
+
+def test_projected_pattern_sums_are_those_of_the_columns():
+    rng = np.random.default_rng(12)
+    X = _hs()
+    X[rng.random(X.shape) < 0.1] = np.nan
+    cols = [7, 2, 3]                       # a model's items, in its own order
+    got = project_patterns(pattern_sums(_chunks(X, 50)), cols)
+    want = pattern_sums([X[:, cols]])      # the rows' columns, checked against numpy above
+    assert [p.observed.tolist() for p in got] == [p.observed.tolist() for p in want]
+    for a, b in zip(got, want, strict=True):
+        assert a.sums.n == b.sums.n
+        np.testing.assert_allclose(a.sums.mean, b.sums.mean, rtol=1e-12)
+        np.testing.assert_allclose(a.sums.cross, b.sums.cross, rtol=1e-10, atol=1e-12)
 
 
 def test_csv_chunks_give_the_moments_pandas_gives(tmp_path):

@@ -77,26 +77,58 @@ class PatternSums:
     sums: MomentSums
 
 
-def pattern_sums(chunks: Iterable[np.ndarray]) -> list[PatternSums]:
-    """FIML's sufficient statistics, per missing-data pattern, from rows read in chunks;
-    patterns in the order :func:`~samesource.engine.patterns.row_patterns` sorts them, rows
-    with no answer left out (FIML leaves them out)."""
-    acc: dict[bytes, PatternSums] = {}
-    for X in chunks:
+class PatternAccumulator:
+    """:func:`pattern_sums` built up one chunk of rows at a time (:meth:`add`, then :meth:`result`)."""
+
+    def __init__(self) -> None:
+        self._acc: dict[bytes, PatternSums] = {}
+
+    def add(self, X: np.ndarray) -> None:
         X = np.asarray(X, dtype=float)
         obs = ~np.isnan(X)
         pats, inv = row_patterns(obs)
         for pat, rows in zip(pats, rows_by_pattern(inv, len(pats)), strict=True):
-            if not pat.any():
-                continue
-            key = np.packbits(pat).tobytes()
-            part = MomentSums.of(X[np.ix_(rows, np.flatnonzero(pat))])
-            prev = acc.get(key)
-            acc[key] = PatternSums(pat.copy(), part if prev is None else prev.sums.merged(part))
-    if not acc:
-        return []
-    ordered, _ = row_patterns(np.array([p.observed for p in acc.values()]))
-    return [acc[np.packbits(pat).tobytes()] for pat in ordered]
+            if pat.any():
+                self._merge(pat, MomentSums.of(X[np.ix_(rows, np.flatnonzero(pat))]))
+
+    def _merge(self, pat: np.ndarray, part: MomentSums) -> None:
+        key = np.packbits(pat).tobytes()
+        prev = self._acc.get(key)
+        self._acc[key] = PatternSums(pat.copy(), part if prev is None else prev.sums.merged(part))
+
+    def result(self) -> list[PatternSums]:
+        if not self._acc:
+            return []
+        ordered, _ = row_patterns(np.array([p.observed for p in self._acc.values()]))
+        return [self._acc[np.packbits(pat).tobytes()] for pat in ordered]
+
+
+def pattern_sums(chunks: Iterable[np.ndarray]) -> list[PatternSums]:
+    """FIML's sufficient statistics, per missing-data pattern, from rows read in chunks;
+    patterns in the order :func:`~samesource.engine.patterns.row_patterns` sorts them, rows
+    with no answer left out (FIML leaves them out)."""
+    acc = PatternAccumulator()
+    for X in chunks:
+        acc.add(X)
+    return acc.result()
+
+
+def project_patterns(patterns: Sequence[PatternSums], columns: Sequence[int]) -> list[PatternSums]:
+    """The pattern sums of the same rows on a subset of the variables (``columns``, in that
+    order): each pattern's sums on the columns it answered, patterns that now coincide merged,
+    rows with none of the columns left out. The sums of one pattern are exact sums, so this
+    equals :func:`pattern_sums` of the rows' ``columns``."""
+    cols = np.asarray(columns, dtype=np.intp)
+    acc = PatternAccumulator()
+    for ps in patterns:
+        pat = ps.observed[cols]
+        if not pat.any():
+            continue
+        pos = np.cumsum(ps.observed) - 1          # column -> place among the answered ones
+        sel = pos[cols[pat]]
+        s = ps.sums
+        acc._merge(pat, MomentSums(s.n, s.mean[sel], s.cross[np.ix_(sel, sel)]))
+    return acc.result()
 
 
 def csv_chunks(path: str, columns: Sequence[str], rows: int = 100_000) -> Iterator[np.ndarray]:
@@ -110,4 +142,5 @@ def csv_chunks(path: str, columns: Sequence[str], rows: int = 100_000) -> Iterat
             yield chunk[list(columns)].to_numpy(dtype=float)
 
 
-__all__ = ["MomentSums", "PatternSums", "chunked_moments", "pattern_sums", "csv_chunks"]
+__all__ = ["MomentSums", "PatternSums", "PatternAccumulator", "chunked_moments", "pattern_sums",
+           "project_patterns", "csv_chunks"]

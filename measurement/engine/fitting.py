@@ -46,8 +46,8 @@ import pandas as pd
 from scipy import linalg, stats
 
 from samesource.engine import fit_indices as fx
+from samesource.engine.fiml import FIMLRows, PatternData
 from samesource.engine.modelspec import ModelSpec, Param
-from samesource.engine.patterns import row_patterns
 from samesource.errors import DataError
 
 ParamKey = tuple[str, str, str]
@@ -463,40 +463,35 @@ class _MLObjective:
 class _FIMLObjective:
     """-2 LL / N of the observed entries; x = (model parameters, saturated means).
 
-    Rows are grouped by which variables they miss. Every pattern's inverse and
+    The rows enter through their per-pattern sufficient statistics, held as a few weighted
+    pseudo-rows per missing-data pattern (:class:`~samesource.engine.fiml.FIMLRows`), so an
+    evaluation costs the number of patterns, not of rows. Every pattern's inverse and
     determinant come from the full precision matrix ``P = Sigma^-1`` through the Schur
     complement (``Sigma_oo^-1 = P_oo - P_om P_mm^-1 P_mo``,
     ``log|Sigma_oo| = log|Sigma| + log|P_mm|``), so a pattern costs O(p m^2) for its m
-    missing variables and the quadratic forms are one pass over the rows, instead of a
-    Cholesky factorization of every observed block.
+    missing variables and the quadratic forms are one pass over the pseudo-rows, instead of
+    a Cholesky factorization of every observed block.
     """
 
     estimator = "fiml"
 
-    def __init__(self, st: _Structure, X: np.ndarray) -> None:
+    def __init__(self, st: _Structure, X: np.ndarray | FIMLRows) -> None:
         self.st = st
         self.p = p = st.p
         self.nx = st.q + st.p
-        obs = ~np.isnan(X)
-        keep = obs.any(axis=1)
-        self.dropped = int((~keep).sum())
-        X = X[keep]
-        obs = obs[keep]
-        self.n = n = X.shape[0]
-        if n < 2:
-            raise DataError(f"need at least 2 rows with an answer, got {n}")
-        with np.errstate(invalid="ignore"):
-            self.ac_mean = np.nanmean(X, axis=0)
-            self.ac_var = np.nanvar(X, axis=0)
-        self.ac_n = obs.sum(axis=0)
+        rows = X if isinstance(X, FIMLRows) else FIMLRows.from_rows(X)
+        self.dropped = rows.dropped
+        self.n = n = rows.n
+        self.ac_mean, self.ac_var, self.ac_n = rows.ac_mean, rows.ac_var, rows.ac_n
         if np.any(self.ac_n < 2) or np.any(~(self.ac_var > 0)):
             raise DataError("a variable has fewer than two answers or no variance")
-        self.obs = obs
-        self.Y0 = np.where(obs, X, 0.0)
-        self.k_sum = float(obs.sum())
-        pats, inv = row_patterns(obs)
+        self.obs = rows.obs
+        self.Y0 = rows.Y0
+        self.scale = rows.scale
+        self.k_sum = rows.k_sum
+        pats, inv = rows.observed, rows.pattern
         self.n_patterns = len(pats)
-        self.complete = bool(obs.all())
+        self.complete = rows.complete
         by_m: dict[int, list[int]] = {}
         for g, pat in enumerate(pats):
             m = int(p - pat.sum())
@@ -506,10 +501,10 @@ class _FIMLObjective:
         for _, gs in sorted(by_m.items()):
             M = np.array([np.flatnonzero(~pats[g]) for g in gs], dtype=int)
             local = {g: i for i, g in enumerate(gs)}
-            rows = np.flatnonzero(np.isin(inv, gs))
-            pi = np.array([local[g] for g in inv[rows]], dtype=int)
-            counts = np.bincount(pi, minlength=len(gs)).astype(float)
-            self.groups.append({"M": M, "rows": rows, "pi": pi, "w": counts / n,
+            prow = np.flatnonzero(np.isin(inv, gs))
+            pi = np.array([local[g] for g in inv[prow]], dtype=int)
+            counts = rows.counts[gs]
+            self.groups.append({"M": M, "rows": prow, "pi": pi, "w": counts / n, "counts": counts,
                                 "ii": np.arange(len(gs))[:, None, None]})
         self.deadline: _Deadline | None = None
 
@@ -522,7 +517,7 @@ class _FIMLObjective:
         Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
         P = Li.T @ Li
         n = self.n
-        Et = (self.Y0 - mu) * self.obs
+        Et = (self.Y0 - self.scale[:, None] * mu) * self.obs
         U = Et @ P
         logdet = n * 2.0 * float(np.sum(np.log(np.diag(L))))
         Q = np.zeros((self.p, self.p)) if grad else None
@@ -535,7 +530,7 @@ class _FIMLObjective:
                 Lm = np.linalg.cholesky(Pmm)
             except np.linalg.LinAlgError:
                 return None
-            logdet += float(np.sum(np.bincount(pi, minlength=len(M)) *
+            logdet += float(np.sum(gr["counts"] *
                                    2.0 * np.sum(np.log(np.diagonal(Lm, axis1=1, axis2=2)),
                                                 axis=1)))
             # V_g = P[:, M_g] Lm_g^-T, so that P_:M P_MM^-1 P_M: = V_g V_g'.
@@ -554,7 +549,7 @@ class _FIMLObjective:
             return f, None, None, None
         Wsum = P - Q                         # sum_g w_g Sigma_oo^-1 (embedded)
         G = Wsum - U.T @ U / n
-        gmu = -2.0 * U.sum(axis=0) / n
+        gmu = -2.0 * (self.scale @ U) / n   # the mean rows: sum_g n_g Sigma_oo^-1 (m_g - mu_o)
         return f, (G + G.T) / 2.0, gmu, 2.0 * Wsum
 
     def value(self, x: np.ndarray) -> float:
@@ -607,8 +602,8 @@ class _FIMLObjective:
         gains less than 1e-12 x (1 + |LL|)."""
         n = self.n
         if self.complete:
-            mu = self.Y0.mean(axis=0)
-            dev = self.Y0 - mu
+            mu = self.scale @ self.Y0 / n
+            dev = self.Y0 - self.scale[:, None] * mu
             Sig = dev.T @ dev / n
             r = self._core(Sig, mu, False)
             return None if r is None else (mu, Sig, -0.5 * n * r[0])
@@ -630,18 +625,19 @@ class _FIMLObjective:
             last = ll
             P = linalg.cho_solve((L, True), np.eye(self.p))
             Yc = self.Y0.copy()
-            Et = (self.Y0 - mu) * self.obs
+            Et = (self.Y0 - self.scale[:, None] * mu) * self.obs
             extra = np.zeros((self.p, self.p))
             for gr in self.groups:
                 M, rows, pi, ii = gr["M"], gr["rows"], gr["pi"], gr["ii"]
                 Pmm = P[M[:, :, None], M[:, None, :]]
                 Cm = np.linalg.inv(Pmm)                               # cov(y_m | y_o)
                 PmE = np.einsum("rmp,rp->rm", P[M][pi], Et[rows])     # P_mo (y_o - mu_o)
-                Yc[rows[:, None], M[pi]] = mu[M[pi]] - np.einsum("rij,rj->ri", Cm[pi], PmE)
+                Yc[rows[:, None], M[pi]] = (self.scale[rows, None] * mu[M[pi]]
+                                            - np.einsum("rij,rj->ri", Cm[pi], PmE))
                 add = np.zeros((len(M), self.p, self.p))
                 add[ii, M[:, :, None], M[:, None, :]] = Cm
                 extra += np.einsum("g,gij->ij", gr["w"] * n, add)
-            mu = Yc.mean(axis=0)
+            mu = self.scale @ Yc / n
             Sig = (Yc.T @ Yc + extra) / n - np.outer(mu, mu)
             Sig = (Sig + Sig.T) / 2.0
         return mu, Sig, last
@@ -1095,7 +1091,9 @@ def _objective_for(st: _Structure, data: Moments | RawData):
     if isinstance(data, RawData):
         sel = _select(data.names, st.observed)
         return _FIMLObjective(st, data.X[:, sel])
-    raise TypeError("data must be Moments or RawData")
+    if isinstance(data, PatternData):
+        return _FIMLObjective(st, data.rows_for(_select(data.names, st.observed)))
+    raise TypeError("data must be Moments, RawData or PatternData")
 
 
 def _check_proper(st: _Structure, x: np.ndarray, S: np.ndarray) -> list[str]:

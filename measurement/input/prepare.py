@@ -12,7 +12,7 @@ import datetime as _dt
 import numbers
 import re
 from collections import Counter
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -58,12 +58,15 @@ def _show(v: Any) -> str:
     return repr(s if len(s) <= 40 else s[:37] + "...")
 
 
-def _rows_text(label: str, rows: list[int], limit: int = 5) -> str:
+def _rows_text(label: str, rows: list[int], limit: int = 5, total: int | None = None) -> str:
+    """"row 7", "rows 7 and 9", "rows 7, 9, 12, 15, 20, ..."; ``total`` the number of rows when
+    ``rows`` holds only the first of them."""
+    total = len(rows) if total is None else total
     shown = [str(r) for r in rows[:limit]]
-    more = ", ..." if len(rows) > limit else ""
-    if len(rows) == 1:
+    more = ", ..." if total > limit else ""
+    if total == 1:
         return f"{label} {shown[0]}"
-    if len(rows) <= limit:
+    if total <= limit:
         return f"{label}s " + ", ".join(shown[:-1]) + f" and {shown[-1]}"
     return f"{label}s " + ", ".join(shown) + more
 
@@ -168,14 +171,66 @@ def _what_is_wrong(v: Any) -> str:
     return "is not a number"
 
 
-def _text_advice(s: pd.Series, bad: np.ndarray, labels: dict[str, float | None]) -> str | None:
-    """For a column whose bad cells are answer texts: how to map them with answer_labels."""
-    texts = [str(v).strip() for v in s[bad].to_numpy(dtype=object)
-             if isinstance(v, str) and not _NUMBER.fullmatch(v.strip())
-             and not _COMMA_NUMBER.fullmatch(v.strip()) and not v.strip().startswith("=")]
-    if not texts:
+def _advice_text(v: Any) -> str | None:
+    """The cell's text when it is an answer text (not a number, decimal-comma number or
+    formula), the kind :func:`_text_advice` proposes answer_labels for."""
+    if not isinstance(v, str):
         return None
-    distinct = list(dict.fromkeys(texts))
+    t = v.strip()
+    if _NUMBER.fullmatch(t) or _COMMA_NUMBER.fullmatch(t) or t.startswith("="):
+        return None
+    return t
+
+
+@dataclass
+class BadCells:
+    """What a message about one column's bad cells needs from them, gathered a chunk of rows at
+    a time (the in-memory reader passes the whole column as one chunk): their count, the first
+    cell, the first rows, the distinct answer texts and (out of scale) the count of each value."""
+
+    count: int = 0
+    first_value: Any = None
+    rows: list[int] = field(default_factory=list)      # the first ROWS_KEPT rows, in order
+    texts: list[str] = field(default_factory=list)     # distinct answer texts, the first TEXTS_KEPT
+    values: Counter = field(default_factory=Counter)   # out of scale: _num(value) -> count
+
+    ROWS_KEPT = 6    # the first cell and the five others a message lists
+    TEXTS_KEPT = 9   # eight shown, and whether there are more
+
+    def add(self, rows: np.ndarray, cells: np.ndarray, *, scale: bool = False) -> None:
+        """The bad cells of a chunk: their user row numbers and values, in row order."""
+        if not len(rows):
+            return
+        if self.count == 0:
+            self.first_value = cells[0]
+        self.count += len(rows)
+        room = self.ROWS_KEPT - len(self.rows)
+        if room > 0:
+            self.rows += [int(r) for r in rows[:room]]
+        if scale:
+            self.values.update(_num(x) for x in cells)
+            return
+        if len(self.texts) < self.TEXTS_KEPT:
+            for v in cells:
+                t = _advice_text(v)
+                if t is not None and t not in self.texts:
+                    self.texts.append(t)
+                    if len(self.texts) == self.TEXTS_KEPT:
+                        break
+
+    @classmethod
+    def of(cls, rows: np.ndarray, values: np.ndarray, bad: np.ndarray, *, scale: bool = False) -> BadCells:
+        out = cls()
+        idx = np.flatnonzero(bad)
+        out.add(np.asarray(rows)[idx], np.asarray(values)[idx], scale=scale)
+        return out
+
+
+def _text_advice(cells: BadCells, labels: dict[str, float | None]) -> str | None:
+    """For a column whose bad cells are answer texts: how to map them with answer_labels."""
+    distinct = cells.texts
+    if not distinct:
+        return None
     shown = ", ".join(_show(t) for t in distinct[:8]) + (", ..." if len(distinct) > 8 else "")
     if labels:
         hint = did_you_mean(answer_key(distinct[0]), list(labels))
@@ -191,43 +246,50 @@ def _text_advice(s: pd.Series, bad: np.ndarray, labels: dict[str, float | None])
 def _non_numeric_error(table: LoadedTable, col: str, s: pd.Series, bad: np.ndarray,
                        others: list[str], labels: dict[str, float | None] | None = None
                        ) -> DataError:
-    idx = np.flatnonzero(bad)
-    first = idx[0]
-    rows = table.row_numbers
-    value = s.iloc[first]
-    label = table.row_label
-    rest = [int(rows[i]) for i in idx[1:]]
-    if rest:
-        more = (f" {len(rest)} other cell(s) in this column are not numbers either "
-                f"({_rows_text(label, rest)}).")
+    cells = BadCells.of(table.row_numbers, s.to_numpy(dtype=object), bad)
+    cells.first_value = s.iloc[int(np.flatnonzero(bad)[0])]  # as the column gives it (numpy scalars)
+    return non_numeric_error(table.source, table.row_label, col, cells, others, labels)
+
+
+def non_numeric_error(source: str, label: str, col: str, cells: BadCells, others: list[str],
+                      labels: dict[str, float | None] | None = None) -> DataError:
+    """The message for a column's cells that are not numbers (``cells``: :class:`BadCells`)."""
+    value = cells.first_value
+    rest = cells.rows[1:]
+    if cells.count > 1:
+        more = (f" {cells.count - 1} other cell(s) in this column are not numbers either "
+                f"({_rows_text(label, rest, total=cells.count - 1)}).")
     else:
         more = " It is the only such cell in this column."
     if others:
         more += " Other items with cells that are not numbers: " + ", ".join(others[:5]) + (
             ", ..." if len(others) > 5 else "") + "."
-    advice = _text_advice(s, bad, labels or {})
+    advice = _text_advice(cells, labels or {})
     if advice:
         return DataError(f"the value {_show(value)} {_what_is_wrong(value)}.{more} {advice}",
-                         file=table.source, row=int(rows[first]), column=col, code="text_answers")
+                         file=source, row=cells.rows[0], column=col, code="text_answers")
     return DataError(
         f"the value {_show(value)} {_what_is_wrong(value)}.{more} Item answers "
         "must be numbers: fix the value, or, if it stands for a missing answer, leave the "
         "cell blank or use a numeric code and list that code in the design's missing_codes",
-        file=table.source, row=int(rows[first]), column=col)
+        file=source, row=cells.rows[0], column=col)
 
 
 def _scale_error(table: LoadedTable, col: str, vals: np.ndarray, out: np.ndarray,
                  lo: float, hi: float, others: list[str]) -> DataError:
-    idx = np.flatnonzero(out)
-    first = idx[0]
-    v = float(vals[first])
-    rows = table.row_numbers
-    counts = Counter(_num(x) for x in vals[idx])
-    listed = ", ".join(f"{k} ({c}x)" for k, c in counts.most_common(6))
+    cells = BadCells.of(table.row_numbers, vals, out, scale=True)
+    return scale_error(table.source, col, cells, lo, hi, others)
+
+
+def scale_error(source: str, col: str, cells: BadCells, lo: float, hi: float,
+                others: list[str]) -> DataError:
+    """The message for a column's answers outside the response scale."""
+    v = float(cells.first_value)
+    listed = ", ".join(f"{k} ({c}x)" for k, c in cells.values.most_common(6))
     msg = (f"the value {_num(v)} is outside the response scale {_num(lo)} to "
            f"{_num(hi)} given in the design. ")
-    if len(idx) > 1:
-        msg += f"This column has {len(idx)} values outside the scale: {listed}. "
+    if cells.count > 1:
+        msg += f"This column has {cells.count} values outside the scale: {listed}. "
     if others:
         msg += "Other items with values outside it: " + ", ".join(others[:5]) + (
             ", ..." if len(others) > 5 else "") + ". "
@@ -236,7 +298,7 @@ def _scale_error(table: LoadedTable, col: str, vals: np.ndarray, out: np.ndarray
                 "design; otherwise correct the value, or the design's response_scale")
     else:
         msg += "Correct the value, or the design's response_scale"
-    return DataError(msg, file=table.source, row=int(rows[first]), column=col)
+    return DataError(msg, file=source, row=cells.rows[0], column=col)
 
 
 def _label(v: Any) -> str | None:
@@ -299,17 +361,10 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
 
     for j, col in enumerate(items):
         present = matrix[:, j][~np.isnan(matrix[:, j])]
-        if present.size == 0:
-            raise DataError(
-                f"item '{col}' has no answers (every cell is blank or a missing code); drop it "
-                "from the design, or check that this is the right column",
-                file=table.source, column=col)
-        if np.all(present == present[0]):
-            some = " that has an answer" if present.size < n else ""
-            raise DataError(
-                f"item '{col}' has the same answer ({_num(present[0])}) in every "
-                f"{table.row_label}{some}, so it carries no information; drop it from the "
-                "design", file=table.source, column=col)
+        err = item_answers_error(col, present.size, float(present.min(initial=np.inf)),
+                                 float(present.max(initial=-np.inf)), n, table.source, table.row_label)
+        if err is not None:
+            raise err
 
     reverse = [i for c in design.constructs.values() for i in c.reverse]
     if source == "data":
@@ -354,6 +409,23 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
     return PreparedData(items=items_frame, ids=ids, groups=groups, scale_min=lo, scale_max=hi,
                         scale_source=source, n_rows=n,
                         missing_cells=int(np.isnan(matrix).sum()), warnings=notes, table=table)
+
+
+def item_answers_error(col: str, count: int, lowest: float, highest: float, rows: int, source: str,
+                       label: str) -> DataError | None:
+    """An item that cannot be analysed, from its answers' count and range: none, or one answer
+    throughout (None when it can)."""
+    if count == 0:
+        return DataError(
+            f"item '{col}' has no answers (every cell is blank or a missing code); drop it "
+            "from the design, or check that this is the right column", file=source, column=col)
+    if lowest == highest:
+        some = " that has an answer" if count < rows else ""
+        return DataError(
+            f"item '{col}' has the same answer ({_num(lowest)}) in every "
+            f"{label}{some}, so it carries no information; drop it from the "
+            "design", file=source, column=col)
+    return None
 
 
 def where_read(table: LoadedTable) -> str:

@@ -1,0 +1,134 @@
+"""Beyond memory, run on demand (never part of the suite): a CSV of N x 60 answers read a block
+of lines at a time (samesource.input.streamed), its listwise moments and FIML pattern sums
+accumulated, and the measurement model fitted from them by ML (listwise) and by FIML; beside
+it, in its own process, the floor: pandas reading the same file in chunks of 1,000,000 rows
+and forming the covariance matrix (reading it whole would hold 10,000,000 x 62 numbers).
+
+Each measurement runs in a fresh process, so its peak memory (VmHWM, as scale.py reads it) is
+its own. Prints one JSON line per measurement; docs/performance.md "Beyond memory" records
+the figures.
+
+    python tests/benchmarks/beyond_memory.py [--rows 10000000] [--path FILE --design FILE]
+
+Without --path it writes the file (the benchmarks' 60-item survey of tests/benchmarks/
+workload.py, 1,000,000 rows per seed, 1% of six items' cells blank) to a temporary folder and
+deletes it afterwards.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parents[1]
+sys.path.insert(0, str(HERE))
+from scale import _peak_mb  # noqa: E402  (VmHWM of this process)
+
+PIECE = 1_000_000
+
+
+CONSTRUCTS = [f"c{i}" for i in range(10)] + ["mark", "meth"]
+
+
+def write_survey(rows: int, folder: str) -> tuple[str, str]:
+    """The survey file and its design file, a million rows at a time: 12 constructs of 5
+    items on a 5-point scale (the constructs of workload.py's 60-item survey), each item
+    round(3 + 0.9 factor + 0.8 noise) clipped to 1..5, factors correlated .3; 1% of the cells
+    of six items blank (MCAR). The bytes are formed with numpy (a survey simulated and written
+    by pandas took minutes per million rows on the loaded machine)."""
+    import numpy as np
+
+    items = [f"{c}_{k}" for c in CONSTRUCTS for k in range(1, 6)]
+    design = {"constructs": {c: {"items": items[5 * i:5 * i + 5]} for i, c in enumerate(CONSTRUCTS)},
+              "paths": [{"outcome": "c1", "predictors": ["c0"]}, {"outcome": "c2", "predictors": ["c1"]}],
+              "response_scale": {"min": 1, "max": 5}}
+    design["constructs"]["mark"]["role"] = "marker"
+    design["constructs"]["meth"]["role"] = "method"
+    path, design_path = os.path.join(folder, f"survey_{rows}.csv"), os.path.join(folder, "design.json")
+    Path(design_path).write_text(json.dumps(design), encoding="utf-8")
+    with open(path, "wb") as fh:
+        fh.write((",".join(items) + "\n").encode("ascii"))
+        for k in range(-(-rows // PIECE)):
+            n = min(PIECE, rows - k * PIECE)
+            rng = np.random.default_rng(k)
+            F = np.sqrt(0.7) * rng.standard_normal((n, 12)) + np.sqrt(0.3) * rng.standard_normal((n, 1))
+            X = np.rint(3 + 0.9 * np.repeat(F, 5, axis=1) + 0.8 * rng.standard_normal((n, 60)))
+            buf = np.empty((n, 120), dtype=np.uint8)
+            buf[:, 0::2] = 48 + np.clip(X, 1, 5).astype(np.uint8)
+            buf[:, 1::2] = 44
+            buf[:, -1] = 10
+            keep = np.ones((n, 120), dtype=bool)
+            keep[:, 0:60:10] = rng.random((n, 6)) >= 0.01   # items 1, 6, ..., 26: 1% blank
+            fh.write(buf[keep].tobytes())
+    return path, design_path
+
+
+def child_streamed(path: str, design_path: str) -> dict:
+    from samesource.engine.builders import measurement_model
+    from samesource.engine.fitting import fit_model
+    from samesource.input.design import parse_design
+    from samesource.input.streamed import stream_items
+
+    design = parse_design(json.loads(Path(design_path).read_text(encoding="utf-8")))
+    t0, c0 = time.perf_counter(), time.process_time()
+    got = stream_items(path, design)
+    read = (time.perf_counter() - t0, time.process_time() - c0)
+    spec = measurement_model(design)
+    t1, c1 = time.perf_counter(), time.process_time()
+    ml = fit_model(spec, got.moments(spec.observed))
+    t2, c2 = time.perf_counter(), time.process_time()
+    fiml = fit_model(spec, got.fiml_data())
+    t3, c3 = time.perf_counter(), time.process_time()
+    return {"rows": got.n_rows, "patterns": len(got.patterns), "complete_rows": got.listwise.n,
+            "read_wall": read[0], "read_cpu": read[1], "ml_wall": t2 - t1, "ml_cpu": c2 - c1,
+            "fiml_wall": t3 - t2, "fiml_cpu": c3 - c2, "ml_status": ml.status, "fiml_status": fiml.status,
+            "fiml_chi2": fiml.chi2, "peak_mb": _peak_mb(), "load": os.getloadavg()}
+
+
+def child_floor(path: str, design_path: str) -> dict:
+    import pandas as pd
+
+    from samesource.engine.chunked_moments import chunked_moments
+
+    design = json.loads(Path(design_path).read_text(encoding="utf-8"))
+    items = [it for c in design["constructs"].values() for it in c["items"]]
+    t0, c0 = time.perf_counter(), time.process_time()
+    chunks = (c.to_numpy(dtype=float) for c in pd.read_csv(path, usecols=items, chunksize=PIECE))
+    m = chunked_moments((c for c in chunks), items)
+    return {"floor_wall": time.perf_counter() - t0, "floor_cpu": time.process_time() - c0,
+            "floor_peak_mb": _peak_mb(), "check": float(m.cov.trace())}
+
+
+def run_child(kind: str, *args: str) -> dict:
+    code = ("import json, sys; sys.path.insert(0, sys.argv[1]); import beyond_memory as b; "
+            "print('RESULT ' + json.dumps(getattr(b, sys.argv[2])(*sys.argv[3:])))")
+    proc = subprocess.run([sys.executable, "-c", code, str(HERE), kind, *args],
+                          capture_output=True, text=True, cwd=ROOT)
+    for line in proc.stdout.splitlines():
+        if line.startswith("RESULT "):
+            return json.loads(line[7:])
+    raise RuntimeError(f"{kind} failed:\n{proc.stderr[-3000:]}")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--rows", type=int, default=10_000_000)
+    ap.add_argument("--path")
+    ap.add_argument("--design")
+    args = ap.parse_args()
+    with tempfile.TemporaryDirectory() as folder:
+        path, design = (args.path, args.design) if args.path else write_survey(args.rows, folder)
+        print(json.dumps({"file_mb": os.path.getsize(path) / 1e6, **run_child("child_floor", path, design)}),
+              flush=True)
+        print(json.dumps(run_child("child_streamed", path, design)), flush=True)
+
+
+if __name__ == "__main__":
+    main()
