@@ -62,12 +62,17 @@ STD_LOAD_TOL = 1e-6      # proper: |standardized loading| <= 1 + STD_LOAD_TOL
 EIG_TOL = 1e-10          # identified: smallest/largest eigenvalue of the scaled information
 STD_SE_MAX = 10.0        # identified: no standardized SE above this
 SE_RATIO_MAX = 1e4       # identified: no SE above this multiple of the estimate's scale
-# Ridge stop: less improvement than STALL_CHI2 chi-square units (N x change in F) over
+# Stall stop: F (the ML discrepancy, or -2 LL / N for FIML) improved by less than STALL_F over
 # STALL_WINDOW iterations. Identified models converge in tens of iterations; a model drifting
 # along a flat ridge (a variance sliding to zero, loadings trading off) otherwise used all
 # 1000 iterations, 6 s for one free-loading method-factor check at 2,000 x 60, to gain <0.02.
+# In units of F, not of chi-square (N F): for a given covariance matrix F, its gradient and
+# the optimizer's path do not depend on N (the ML estimates are a function of S alone), so
+# neither does where a fit stops; counted in chi-square units the same ridge ran its full
+# 1000 iterations at 1,000,000 rows and stopped after 184 at 239. 1e-4 is 0.01 chi-square units
+# at N = 100. A stop with the gradient still above GRAD_TOL is reported as not converged.
 STALL_WINDOW = 50
-STALL_CHI2 = 0.01
+STALL_F = 1e-4
 
 try:  # optional: present wherever scikit-learn is; the engine works without it
     from threadpoolctl import ThreadpoolController
@@ -677,7 +682,7 @@ class _Run:
     iterations: int
     success: bool
     capped: bool
-    stalled: bool = False  # stopped on a flat ridge (see STALL_CHI2)
+    stalled: bool = False  # stopped on a flat ridge, not converged (see STALL_F)
 
 
 def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
@@ -690,8 +695,9 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
     when the model misfits (rate about .7 on the Holzinger-Swineford model); the
     correction makes it superlinear. C is dropped whenever H + C is not positive definite.
     Stops when the largest scaled gradient (see :func:`_scaled_grad`) is below 1e-10, when
-    steps stop changing F, when F has improved by less than STALL_CHI2 chi-square units over
-    STALL_WINDOW iterations without converging (a flat ridge), when the damping grows past
+    steps stop changing F, when F has improved by less than STALL_F over STALL_WINDOW
+    iterations (a flat ridge; not converged unless the gradient is within GRAD_TOL), when the
+    damping grows past
     1e12 (no descent possible) or at the deadline.
     """
     # The first evaluation always completes, so there is a point to report; after it the
@@ -709,7 +715,6 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
     capped = False
     ridge = False
     history = [f]  # F after each iteration, for the ridge stop
-    n_obs = float(getattr(obj, "n", 1) or 1)
     obj.deadline = deadline
     try:
         while it < max_iter:
@@ -767,9 +772,10 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
             if stalls >= 3:
                 break
             history.append(f)
-            if it >= STALL_WINDOW and (history[it - STALL_WINDOW] - f) * n_obs < STALL_CHI2 \
-                    and _scaled_grad(g, H) > GRAD_TOL:
-                ridge = True
+            if it >= STALL_WINDOW and history[it - STALL_WINDOW] - f < STALL_F:
+                # converged already (gradient within GRAD_TOL) but short of the 1e-10 that ends
+                # the loop: F no longer moves, so the rest would be spent on a flat ridge too
+                ridge = _scaled_grad(g, H) > GRAD_TOL
                 break
     except _TimeUp:
         capped = True
@@ -1549,9 +1555,9 @@ def _status_and_warnings(best: _Run, heywood: list[str], warnings: list[str], de
                         f"{tried} of {n_starts} starting points; the estimates are the best "
                         "point reached and may not be a solution.")
     if not converged and not best.capped:
-        ridge = (f"; the discrepancy improved by less than {STALL_CHI2:g} chi-square units in "
-                 f"{STALL_WINDOW} iterations, a flat ridge typical of a model the data do not "
-                 "identify" if best.stalled else "")
+        ridge = (f"; the discrepancy improved by less than {STALL_F:g} in {STALL_WINDOW} "
+                 "iterations, a flat ridge typical of a model the data do not identify"
+                 if best.stalled else "")
         warnings.append(f"The optimizer did not converge (largest scaled gradient "
                         f"{_scaled_grad(best.g, best.H):.2g} after {best.iterations} "
                         f"iterations{ridge}).")
