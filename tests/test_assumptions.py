@@ -245,3 +245,20 @@ def test_marker_finding_counts_only_if_the_verdict_counts_it():
     r = analyze(df.to_csv(index=False).encode(), sc.design(), {"bootstrap": 0}, name="sim.csv").report
     assert status(r, "marker_carries_method") == "untestable"
     assert r["method_variance"]["verdict"]["level"] != "none"
+
+
+def test_distinct_count_is_numpys_unique_count():
+    """items_continuous counts answer categories by one bincount where answers are whole
+    numbers; the reference is numpy's own ``len(np.unique(x))``, on answer codes, signed
+    codes, large codes, non-whole values, infinities, -0.0 beside 0.0 and empty input."""
+    import numpy as np
+
+    from samesource.method_checks.assumptions import distinct_count
+
+    rng = np.random.default_rng(3)
+    cases = [rng.integers(1, 6, 5000).astype(float), rng.integers(-3, 4, 300).astype(float),
+             rng.normal(size=300), np.array([2.0]), np.array([]), np.array([-0.0, 0.0, 2.0]),
+             np.array([1e300, 1.0]), np.array([0.5, 1.5, 0.5]), rng.integers(0, 3, 50) * 1e7,
+             np.array([-np.inf, 1.0, np.inf]), np.array([1.0, 7.0, 7.0, 3.0])]
+    for x in cases:
+        assert distinct_count(np.asarray(x, dtype=float)) == len(np.unique(x)), x

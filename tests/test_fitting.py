@@ -599,3 +599,46 @@ def test_observed_regression_equals_ols():
     # Standardized coefficient = b sd(x)/sd(y) (numpy sds).
     assert r.std("reg", "y5", "y1") == pytest.approx(
         ols.params[1] * d["y1"].std() / d["y5"].std(), abs=1e-8)
+
+
+def test_estimates_status_and_iterations_do_not_depend_on_n(hs_data, monkeypatch):
+    # F_ML = log|Sigma| + tr(S Sigma^-1) - log|S| - p does not involve N, so the ML estimates
+    # are a function of the sample covariance matrix alone and do not change with N for a
+    # fixed S (Bollen 1989, ch. 4; only the chi-square, N F_min, and the SEs scale with N).
+    # The fitting engine's stops must respect that: the same covariance matrix at N = 500 and
+    # N = 1,000,000 gives the same estimates, status and iterations in every start (the stall
+    # stop counted in chi-square units once ran a start 1000 iterations at the larger N).
+    from samesource.engine import fitting
+
+    iterations: list[int] = []
+    optimize = fitting._optimize
+
+    def counted(*args, **kwargs):
+        run = optimize(*args, **kwargs)
+        iterations.append(-1 if run is None else run.iterations)
+        return run
+
+    monkeypatch.setattr(fitting, "_optimize", counted)
+    data = method_factor_data()
+    items = list(data.columns)
+    ps: list[Param] = []
+    for lat, pre in (("S", "s"), ("E", "e"), ("G", "g")):
+        its = [c for c in items if c.startswith(pre)]
+        ps.append(Param("load", lat, its[0], free=False, value=1.0))
+        ps += [Param("load", lat, it) for it in its[1:]] + [Param("cov", lat, lat)]
+    ps += [Param("cov", "S", "E"), Param("cov", "S", "G"), Param("cov", "E", "G")]
+    ps += [Param("load", "M", it) for it in items] + [Param("cov", "M", "M", free=False, value=1.0)]
+    ps += [Param("cov", it, it) for it in items]
+    cases = [(ModelSpec("method_free", tuple(items), ("S", "E", "G", "M"), tuple(ps)), Moments.from_data(data)),
+             (cfa_spec(HS_FACTORS), Moments.from_data(hs_data[HS_ITEMS]))]
+    for spec, m in cases:
+        got = {}
+        for n in (500, 1_000_000):
+            iterations.clear()
+            r = fit_model(spec, Moments(m.names, m.cov, n), time_limit=120.0)
+            got[n] = (r, list(iterations))
+        (small, it_small), (large, it_large) = got[500], got[1_000_000]
+        assert small.status == large.status and not small.capped
+        np.testing.assert_allclose(large.x, small.x, rtol=0, atol=1e-10)
+        assert it_small == it_large, (it_small, it_large)
+        assert large.chi2 / 1_000_000 == pytest.approx(small.chi2 / 500, rel=1e-12)

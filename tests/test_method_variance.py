@@ -147,7 +147,7 @@ def test_a_check_model_on_a_flat_ridge_stops_early_and_says_why():
     # Simulated survey (as tests/benchmarks/workload.py: 2,000 x 60, 5-point items): the
     # free-loading marker method factor drifts along a flat ridge here (a marker loading runs
     # off while the fit improves by hundredths of a chi-square unit). The engine must stop on
-    # the ridge (fitting.STALL_CHI2) instead of spending its 1000 iterations, say so, and the
+    # the ridge (fitting.STALL_F) instead of spending its 1000 iterations, say so, and the
     # report must not use that model.
     per = 5
     cons = [ConstructSpec(f"c{i}", per, 0.7, 0.35, prefix=f"c{i}_") for i in range(10)]

@@ -399,7 +399,7 @@ def without_method_factor(spec: ModelSpec) -> ModelSpec:
 def only_method_variance_negative(fit) -> bool:
     """True when the method variance is negative and every other variance positive: the
     Heywood case sampling error gives when the true method variance is zero."""
-    t = fit.params
-    var = t[(t["op"] == "cov") & (t["lhs"] == t["rhs"])]
-    method = var[var["lhs"] == METHOD]
-    return bool(len(method) and (method["estimate"] < 0).all() and (var[var["lhs"] != METHOD]["estimate"] > 0).all())
+    variances = [(p.lhs, float(v)) for p, v in zip(fit.spec.params, fit.values, strict=True)
+                 if p.op == "cov" and p.lhs == p.rhs]
+    method = [v for name, v in variances if name == METHOD]
+    return bool(method and all(v < 0 for v in method) and all(v > 0 for name, v in variances if name != METHOD))

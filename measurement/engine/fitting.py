@@ -39,6 +39,7 @@ import math
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -61,12 +62,17 @@ STD_LOAD_TOL = 1e-6      # proper: |standardized loading| <= 1 + STD_LOAD_TOL
 EIG_TOL = 1e-10          # identified: smallest/largest eigenvalue of the scaled information
 STD_SE_MAX = 10.0        # identified: no standardized SE above this
 SE_RATIO_MAX = 1e4       # identified: no SE above this multiple of the estimate's scale
-# Ridge stop: less improvement than STALL_CHI2 chi-square units (N x change in F) over
+# Stall stop: F (the ML discrepancy, or -2 LL / N for FIML) improved by less than STALL_F over
 # STALL_WINDOW iterations. Identified models converge in tens of iterations; a model drifting
 # along a flat ridge (a variance sliding to zero, loadings trading off) otherwise used all
 # 1000 iterations, 6 s for one free-loading method-factor check at 2,000 x 60, to gain <0.02.
+# In units of F, not of chi-square (N F): for a given covariance matrix F, its gradient and
+# the optimizer's path do not depend on N (the ML estimates are a function of S alone), so
+# neither does where a fit stops; counted in chi-square units the same ridge ran its full
+# 1000 iterations at 1,000,000 rows and stopped after 184 at 239. 1e-4 is 0.01 chi-square units
+# at N = 100. A stop with the gradient still above GRAD_TOL is reported as not converged.
 STALL_WINDOW = 50
-STALL_CHI2 = 0.01
+STALL_F = 1e-4
 
 try:  # optional: present wherever scikit-learn is; the engine works without it
     from threadpoolctl import ThreadpoolController
@@ -672,7 +678,7 @@ class _Run:
     iterations: int
     success: bool
     capped: bool
-    stalled: bool = False  # stopped on a flat ridge (see STALL_CHI2)
+    stalled: bool = False  # stopped on a flat ridge, not converged (see STALL_F)
 
 
 def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
@@ -685,8 +691,9 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
     when the model misfits (rate about .7 on the Holzinger-Swineford model); the
     correction makes it superlinear. C is dropped whenever H + C is not positive definite.
     Stops when the largest scaled gradient (see :func:`_scaled_grad`) is below 1e-10, when
-    steps stop changing F, when F has improved by less than STALL_CHI2 chi-square units over
-    STALL_WINDOW iterations without converging (a flat ridge), when the damping grows past
+    steps stop changing F, when F has improved by less than STALL_F over STALL_WINDOW
+    iterations (a flat ridge; not converged unless the gradient is within GRAD_TOL), when the
+    damping grows past
     1e12 (no descent possible) or at the deadline.
     """
     # The first evaluation always completes, so there is a point to report; after it the
@@ -704,7 +711,6 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
     capped = False
     ridge = False
     history = [f]  # F after each iteration, for the ridge stop
-    n_obs = float(getattr(obj, "n", 1) or 1)
     obj.deadline = deadline
     try:
         while it < max_iter:
@@ -762,9 +768,10 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
             if stalls >= 3:
                 break
             history.append(f)
-            if it >= STALL_WINDOW and (history[it - STALL_WINDOW] - f) * n_obs < STALL_CHI2 \
-                    and _scaled_grad(g, H) > GRAD_TOL:
-                ridge = True
+            if it >= STALL_WINDOW and history[it - STALL_WINDOW] - f < STALL_F:
+                # converged already (gradient within GRAD_TOL) but short of the 1e-10 that ends
+                # the loop: F no longer moves, so the rest would be spent on a flat ridge too
+                ridge = _scaled_grad(g, H) > GRAD_TOL
                 break
     except _TimeUp:
         capped = True
@@ -909,9 +916,7 @@ def _start_from(st: _Structure, start: Any, base: np.ndarray) -> np.ndarray:
     if isinstance(start, FitResult):
         if start._structure is not None and start._structure.spec == st.spec:
             return np.array(start.x, dtype=float)
-        start = {tuple(k): v for k, v in zip(
-            zip(start.params["op"], start.params["lhs"], start.params["rhs"], strict=True),
-            start.params["estimate"], strict=True)}
+        start = {p.key: float(v) for p, v in zip(start.spec.params, start.values, strict=True)}
     x = base.copy()
     for k, members in enumerate(st.free_params):
         for j in members:
@@ -987,19 +992,12 @@ class FitResult:
     starts_tried: int
     iterations: int
     x: np.ndarray
-    params: pd.DataFrame
     implied: np.ndarray
     all_cov: pd.DataFrame
     sample_cov: np.ndarray
     means: pd.Series | None
     chi2: float | None
     df: int
-    p: float | None
-    cfi: float | None
-    tli: float | None
-    rmsea: float | None
-    rmsea_ci: list[float] | None
-    srmr: float | None
     loglik: float | None
     aic: float | None
     bic: float | None
@@ -1011,6 +1009,49 @@ class FitResult:
     # the saturated means after them (the robust sandwich needs the whole of it)
     param_cov_all: np.ndarray | None = field(default=None, repr=False)
     _structure: _Structure | None = field(default=None, repr=False, compare=False)
+    # per spec parameter: the estimate, the SE (NaN when fixed or not computed) and the SE of
+    # the standardized value; ``params`` and the standardized values are formed from these on
+    # first use (a bootstrap replicate reads a few estimates and never the table)
+    values: np.ndarray = field(default_factory=lambda: np.empty(0), repr=False, compare=False)
+    se_values: np.ndarray = field(default_factory=lambda: np.empty(0), repr=False, compare=False)
+    std_se_values: np.ndarray = field(default_factory=lambda: np.empty(0), repr=False, compare=False)
+
+    # -- formed on first use -------------------------------------------------------------
+
+    @cached_property
+    def std_values(self) -> np.ndarray:
+        """Completely standardized value of every spec parameter."""
+        return (self._structure or _Structure(self.spec)).standardized(self.x)
+
+    @cached_property
+    def params(self) -> pd.DataFrame:
+        """One row per spec parameter: estimate, SE, z, p, standardized value and its SE."""
+        return _parameter_table(self.spec, self.values, self.std_values, self.se_values, self.std_se_values)
+
+    @cached_property
+    def p(self) -> float | None:
+        return None if self.chi2 is None else fx.chi2_pvalue(self.chi2, self.df)
+
+    @cached_property
+    def cfi(self) -> float | None:
+        return None if self.chi2 is None else fx.cfi(self.chi2, self.df, self.baseline_chi2, self.baseline_df)
+
+    @cached_property
+    def tli(self) -> float | None:
+        return None if self.chi2 is None else fx.tli(self.chi2, self.df, self.baseline_chi2, self.baseline_df)
+
+    @cached_property
+    def rmsea(self) -> float | None:
+        return None if self.chi2 is None else fx.rmsea(self.chi2, self.df, self.n)
+
+    @cached_property
+    def rmsea_ci(self) -> list[float] | None:
+        return None if self.chi2 is None else fx.rmsea_ci(self.chi2, self.df, self.n)
+
+    @cached_property
+    def srmr(self) -> float | None:
+        # sample_cov and implied are the matrices the fit compared (copies of them)
+        return fx.srmr(self.sample_cov, self.implied)
 
     # -- lookups -------------------------------------------------------------------------
 
@@ -1021,16 +1062,16 @@ class FitResult:
         return j
 
     def est(self, op: str, lhs: str, rhs: str) -> float:
-        return float(self.params["estimate"].iat[self._row(op, lhs, rhs)])
+        return float(self.values[self._row(op, lhs, rhs)])
 
     def std(self, op: str, lhs: str, rhs: str) -> float:
-        return float(self.params["std"].iat[self._row(op, lhs, rhs)])
+        return float(self.std_values[self._row(op, lhs, rhs)])
 
     def se(self, op: str, lhs: str, rhs: str) -> float:
-        return float(self.params["se"].iat[self._row(op, lhs, rhs)])
+        return float(self.se_values[self._row(op, lhs, rhs)])
 
     def std_se(self, op: str, lhs: str, rhs: str) -> float:
-        return float(self.params["std_se"].iat[self._row(op, lhs, rhs)])
+        return float(self.std_se_values[self._row(op, lhs, rhs)])
 
     # -- reporting -----------------------------------------------------------------------
 
@@ -1226,8 +1267,7 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
     se = _standard_errors(st, obj, best, vals, st.param_unit(Om), deadline, compute_se=compute_se,
                           capped=capped)
     capped = se.capped
-    table = _parameter_table(st, vals, st.standardized(x), se.se_free, se.std_se)
-    stats_ = _fit_statistics(st, obj, best, m, Sig, warnings)
+    stats_ = _fit_statistics(st, obj, best, m, warnings)
     info_failed = se.info_failed
     identified = not info_failed and not se.se_failed
     if stats_["df"] < 0:
@@ -1244,10 +1284,11 @@ def _fit(st: _Structure, data: Moments | RawData, deadline: _Deadline, *, n_star
         spec=st.spec, estimator=obj.estimator, n=obj.n, converged=converged, proper=not heywood,
         identified=identified, capped=capped, status=status, warnings=warnings,
         heywood=heywood, elapsed=deadline.elapsed(), starts_tried=tried,
-        iterations=best.iterations, x=x.copy(), params=table,
+        iterations=best.iterations, x=x.copy(),
         implied=Sig.copy(), all_cov=pd.DataFrame(Om, index=list(st.names), columns=list(st.names)),
         sample_cov=np.array(m.S_ref), means=means, **stats_, fmin=float(best.f),
-        param_cov=se.param_cov, param_cov_all=se.param_cov_all, _structure=st)
+        param_cov=se.param_cov, param_cov_all=se.param_cov_all, _structure=st,
+        values=vals, se_values=_se_per_param(st, se.se_free), std_se_values=se.std_se)
 
 
 @dataclass
@@ -1436,16 +1477,13 @@ def _standard_errors(st: _Structure, obj: Any, best: _Run, vals: np.ndarray, uni
     return _StandardErrors(se_free, std_se, param_cov, param_cov_all, info_failed, se_failed, capped)
 
 
-def _parameter_table(st: _Structure, vals: np.ndarray, std: np.ndarray, se_free: np.ndarray,
+def _parameter_table(spec: ModelSpec, vals: np.ndarray, std: np.ndarray, se_col: np.ndarray,
                      std_se: np.ndarray) -> pd.DataFrame:
     """One row per spec parameter: estimate, SE, z, p, standardized value and its SE."""
-    free = st.pidx >= 0
-    se_col = np.full(len(vals), np.nan)
-    se_col[free] = se_free[st.pidx[free]]
+    free = np.array([p.free for p in spec.params], dtype=bool)
     with np.errstate(divide="ignore", invalid="ignore"):
         z = np.where(free, vals / se_col, np.nan)
     pval = np.where(np.isfinite(z), 2.0 * stats.norm.sf(np.abs(z)), np.nan)
-    spec = st.spec
     return pd.DataFrame({
         "op": [p.op for p in spec.params],
         "lhs": [p.lhs for p in spec.params],
@@ -1461,10 +1499,19 @@ def _parameter_table(st: _Structure, vals: np.ndarray, std: np.ndarray, se_free:
     })
 
 
-def _fit_statistics(st: _Structure, obj: Any, best: _Run, m: _StartMoments, Sig: np.ndarray,
+def _se_per_param(st: _Structure, se_free: np.ndarray) -> np.ndarray:
+    """The free parameters' SEs spread over the spec's parameters (NaN where fixed)."""
+    free = st.pidx >= 0
+    se_col = np.full(len(st.pidx), np.nan)
+    se_col[free] = se_free[st.pidx[free]]
+    return se_col
+
+
+def _fit_statistics(st: _Structure, obj: Any, best: _Run, m: _StartMoments,
                     warnings: list[str]) -> dict[str, Any]:
-    """Chi-square against the saturated model, the fit indices, log-likelihood, AIC and BIC,
-    as FitResult's fields of those names."""
+    """Chi-square against the saturated model and the baseline, log-likelihood, AIC and BIC,
+    as FitResult's fields of those names (the indices formed from them, CFI, TLI, RMSEA with
+    its interval, SRMR and the p-value, are FitResult's properties, formed on first use)."""
     n = obj.n
     p = st.p
     q = st.q
@@ -1485,21 +1532,12 @@ def _fit_statistics(st: _Structure, obj: Any, best: _Run, m: _StartMoments, Sig:
         ll = -0.5 * n * (best.f + obj.logdet_s + p + p * LOG2PI)
         base_f = float(np.sum(np.log(np.diag(obj.S)))) - obj.logdet_s
         base_chi2 = n * base_f
-    if chi2 is not None:
-        p_val = fx.chi2_pvalue(chi2, df)
-        cfi_v = fx.cfi(chi2, df, base_chi2, base_df)
-        tli_v = fx.tli(chi2, df, base_chi2, base_df)
-        rm = fx.rmsea(chi2, df, n)
-        rm_ci = fx.rmsea_ci(chi2, df, n)
-    else:
-        p_val = cfi_v = tli_v = rm = rm_ci = None
+    if chi2 is None:
         warnings.append("The saturated model could not be fitted in time, so chi-square "
                         "based fit indices are not available.")
-    srmr = fx.srmr(m.S_ref, Sig)
     aic = -2.0 * ll + 2.0 * k_total
     bic = -2.0 * ll + k_total * math.log(n)
-    return {"chi2": None if chi2 is None else float(chi2), "df": int(df), "p": p_val, "cfi": cfi_v,
-            "tli": tli_v, "rmsea": rm, "rmsea_ci": rm_ci, "srmr": srmr, "loglik": float(ll),
+    return {"chi2": None if chi2 is None else float(chi2), "df": int(df), "loglik": float(ll),
             "aic": float(aic), "bic": float(bic),
             "baseline_chi2": None if base_chi2 is None else float(base_chi2), "baseline_df": int(base_df)}
 
@@ -1515,9 +1553,9 @@ def _status_and_warnings(best: _Run, heywood: list[str], warnings: list[str], de
                         f"{tried} of {n_starts} starting points; the estimates are the best "
                         "point reached and may not be a solution.")
     if not converged and not best.capped:
-        ridge = (f"; the discrepancy improved by less than {STALL_CHI2:g} chi-square units in "
-                 f"{STALL_WINDOW} iterations, a flat ridge typical of a model the data do not "
-                 "identify" if best.stalled else "")
+        ridge = (f"; the discrepancy improved by less than {STALL_F:g} in {STALL_WINDOW} "
+                 "iterations, a flat ridge typical of a model the data do not identify"
+                 if best.stalled else "")
         warnings.append(f"The optimizer did not converge (largest scaled gradient "
                         f"{_scaled_grad(best.g, best.H):.2g} after {best.iterations} "
                         f"iterations{ridge}).")
