@@ -41,12 +41,14 @@ from samesource.output.report import (
     Fit,
     ItemStats,
     KeyPath,
+    MarkerPair,
     MethodCheck,
     ModelSummary,
     ModelTest,
     Pair,
     Report,
     Sensitivity,
+    TeamPath,
     Teams,
     Threshold,
 )
@@ -130,14 +132,6 @@ def mark(ok: bool | None, fail_word: str = "below threshold", ok_word: str = "me
     if ok:
         return f' <span class="mark ok" aria-hidden="true">{PASS}</span><span class="sr-only">({ok_word})</span>'
     return f' <span class="mark bad" aria-hidden="true">{FAIL}</span><span class="sr-only">({fail_word})</span>'
-
-
-def _get(d: Any, *keys: str) -> Any:
-    for k in keys:
-        if not isinstance(d, Mapping):
-            return None
-        d = d.get(k)
-    return d
 
 
 def _conf(report: Report) -> str:
@@ -329,7 +323,7 @@ def _forest_rows(report: Report, p: KeyPath) -> list[svg.ForestRow]:
         if e is None or not _finite(e.estimate):
             rows.append(svg.ForestRow(label, "", unavailable="not available: " + absent_reason(report, m, e)))
             continue
-        lo, hi = _pair_or_none(e.ci)
+        lo, hi = pair_or_none(e.ci)
         rows.append(svg.ForestRow(label, est_ci(e), e.estimate, lo, hi, preferred=m == p.preferred))
     return rows
 
@@ -452,7 +446,7 @@ def sensitivity_section(report: Report, figs: Figures | None = None) -> str:
            "comes from one shared method source, from none to half.</p>"]
     for i, p in enumerate(paths):
         s = p.sensitivity or NO_SENSITIVITY
-        curve = [(pt.method_share, pt.estimate, *(_pair_or_none(pt.ci))) for pt in s.curve]
+        curve = [(pt.method_share, pt.estimate, *(pair_or_none(pt.ci))) for pt in s.curve]
         curve = [c for c in curve if _finite(c[0]) and _finite(c[1])]
         be, cz, est = s.break_even_method_share, s.ci_covers_zero_at, s.estimated_method_share
         holds = s.model_holds_up_to
@@ -478,8 +472,8 @@ def sensitivity_section(report: Report, figs: Figures | None = None) -> str:
         desc = (f"Estimate from {num(curve[0][1])} at 0% to {num(curve[-1][1])} at {pct(curve[-1][0])}. "
                 + "; ".join(f"{k}: {v}" for k, v in facts))
         marks = s.marks if isinstance(s.marks, Mapping) else {}
-        published = _pair_or_none(marks.get("published_range"))
-        est_ci = _pair_or_none(marks.get("estimated_share_ci"))
+        published = pair_or_none(marks.get("published_range"))
+        est_ci = pair_or_none(marks.get("estimated_share_ci"))
         published = published if published[0] is not None else None
         est_ci = est_ci if est_ci[0] is not None else None
         if published:
@@ -508,7 +502,7 @@ def sensitivity_section(report: Report, figs: Figures | None = None) -> str:
     return section("sensitivity", title, "".join(out))
 
 
-def _pair_or_none(ci: Any) -> tuple[float | None, float | None]:
+def pair_or_none(ci: Any) -> tuple[float | None, float | None]:
     if isinstance(ci, list | tuple) and len(ci) == 2 and all(_finite(x) for x in ci):
         return ci[0], ci[1]
     return None, None
@@ -592,18 +586,14 @@ def reliability_section(report: Report, figs: Figures | None = None) -> str:
 
 
 def _item_method_loadings(report: Report) -> list[tuple[str, Mapping]]:
-    """Per-item method loadings, if a method section carries them (a mapping item -> number)."""
+    """Per-item method loadings, if a method check gives them (a mapping item -> number)."""
     out = []
     for key, label in (("method_factor", "Method loading: method factor"),
                        ("measured_method", "Method loading: measured method")):
         sec = report.method_variance.check(key)
-        if sec is None:
-            continue
-        for field_name in ("item_loadings", "method_loadings", "loadings"):
-            v = sec.section.get(field_name)
-            if isinstance(v, Mapping) and v and all(_finite(x) or x is None for x in v.values()):
-                out.append((label, v))
-                break
+        v = sec.item_loadings if sec is not None else None
+        if isinstance(v, Mapping) and v and all(_finite(x) or x is None for x in v.values()):
+            out.append((label, v))
     return out
 
 
@@ -611,16 +601,14 @@ def _construct_method_shares(report: Report) -> list[tuple[str, Mapping]]:
     mv = report.method_variance
     out = []
     mf = mv.check("method_factor")
-    if mf is not None and mf.section.get("method_share_by_construct"):
-        out.append((f"Method share: method factor ({mf.section.get('identified_by') or 'latent'})",
-                    mf.section["method_share_by_construct"]))
+    if mf is not None and mf.method_share_by_construct:
+        out.append((f"Method share: method factor ({mf.identified_by or 'latent'})", mf.method_share_by_construct))
     mm = mv.check("measured_method")
-    if mm is not None and mm.section.get("method_share_by_construct"):
-        out.append((f"Method share: measured method ({mm.section.get('method_construct')})",
-                    mm.section["method_share_by_construct"]))
+    if mm is not None and mm.method_share_by_construct:
+        out.append((f"Method share: measured method ({mm.method_construct})", mm.method_share_by_construct))
     cm = mv.check("cfa_marker")
-    if cm is not None and cm.section.get("method_share"):
-        out.append(("Method share: CFA marker technique", cm.section["method_share"]))
+    if cm is not None and cm.method_share:
+        out.append(("Method share: CFA marker technique", cm.method_share))
     return out
 
 
@@ -707,7 +695,7 @@ def _check_value(r: dict) -> str:
 def method_section(report: Report) -> str:
     mv = report.method_variance
     title = "Common-method checks"
-    if not isinstance(report.record.get("method_variance"), Mapping):
+    if not mv.given:
         return section("method-variance", title, '<p class="note">The report has no common-method checks.</p>')
     out = [_verdict_box(report)]
     checked = method_check_rows(report)
@@ -819,23 +807,32 @@ def _marker_detail(s: MethodCheck) -> str:
         out += table(["Scale", "Correlation with the marker"],
                      [[h(k), num(v)] for k, v in s.marker_correlations.items()],
                      caption="The marker's correlation with each substantive scale", numeric=(1,), cls="narrow")
-    pairs = s.pairs if isinstance(s.pairs, Mapping) else {}
+    pairs = s.pairs or {}
     if pairs:
         out += table(["Pair", "r", "r adjusted", "t", "p"],
-                     [[h(k.replace("|", " \u00d7 ")), num(v.get("r")), num(v.get("r_adjusted")), num(v.get("t"), 2),
-                       pval(v.get("p"))] for k, v in pairs.items() if isinstance(v, Mapping)],
+                     [[_pair_name(k), num(v.r), num(v.r_adjusted), num(v.t, 2), pval(v.p)]
+                      for k, v in pairs.items() if v is not None],
                      caption="Scale correlations before and after the marker adjustment", numeric=(1, 2, 3, 4))
-    sens = [x for x in s.sensitivity or () if isinstance(x, Mapping)]
+    sens = s.sensitivity or ()
     if sens and pairs:
-        head = ["Pair"] + [f'{h(str(x.get("rule", "")).replace("_", " "))}<br><span class="sub">r_M '
-                           f'{num(x.get("r_m"))}</span>' for x in sens]
-        out += table(head, [[h(k.replace("|", " \u00d7 "))] + [num(_get(x, "pairs", k, "r_adjusted")) for x in sens]
-                            for k in pairs],
+        head = ["Pair"] + [f'{h(str(x.rule or "").replace("_", " "))}<br><span class="sub">r_M '
+                           f'{num(x.r_m)}</span>' for x in sens]
+        # .get: a choice of r_M that lacks a pair shows a dash there
+        out += table(head, [[_pair_name(k)] + [num(_r_adjusted(x.pairs.get(k))) for x in sens] for k in pairs],
                      caption="Adjusted correlations under each choice of r_M (smallest, second smallest, upper "
                              "95% bound)", numeric=tuple(range(1, 1 + len(sens))))
     if s.note:
         out += f'<p class="sub">{h(s.note)}</p>'
     return out
+
+
+def _pair_name(pair_: Pair) -> str:
+    """Two scales as "A × B" (a design's names never hold "|", report.json's separator)."""
+    return h(" \u00d7 ".join(pair_))
+
+
+def _r_adjusted(v: MarkerPair | None) -> float | None:
+    return v.r_adjusted if v is not None else None
 
 
 def _cfa_detail(s: MethodCheck) -> str:
@@ -996,8 +993,8 @@ def teams_section(report: Report) -> str:
     cons = teams.constructs
     if cons:
         out.append(table(["Construct", "ICC(1)", "ICC(2)", "Median rwg(j)", "Groups in rwg(j)"],
-                         [[h(n), num(v.get("icc1")), num(v.get("icc2")), num(v.get("rwg_j_median")),
-                           count(v.get("rwg_j_groups"))] for n, v in cons.items() if isinstance(v, Mapping)],
+                         [[h(n), num(v.icc1), num(v.icc2), num(v.rwg_j_median), count(v.rwg_j_groups)]
+                          for n, v in cons.items() if v is not None],
                          caption="How much each construct differs between groups, and agreement within them",
                          numeric=(1, 2, 3, 4)))
     if meaning:
@@ -1007,26 +1004,24 @@ def teams_section(report: Report) -> str:
     if tp:
         rows = []
         for p in tp:
-            split = p.get("split_source") or {}
-            test = p.get("within_between_test") or {}
-            between = p.get("between") or {}
-            if too_imprecise(split.get("ci")):
+            split, test, between = p.split_source, p.within_between_test, p.between
+            if too_imprecise(split.ci):
                 split_txt = (f'<span class="imprecise">too imprecise to read</span> <span class="sub">'
-                             f'({num(split.get("estimate"))} {interval(split.get("ci"))}: the interval is wider '
+                             f'({num(split.estimate)} {interval(split.ci)}: the interval is wider '
                              f'than half the {MINUS}1 to 1 range)</span>')
-            elif not _finite(split.get("estimate")):
-                split_txt = f'<span class="na">not available: {h(split.get("note") or "the split-group estimate could not be computed")}</span>'
+            elif not _finite(split.estimate):
+                split_txt = f'<span class="na">not available: {h(split.note or "the split-group estimate could not be computed")}</span>'
             else:
-                split_txt = num(split.get("estimate")) + (f" {interval(split.get('ci'))}" if split.get("ci") else "")
-            if split.get("splits") is not None:
-                split_txt += (f' <span class="sub">({count(split.get("splits"))} splits, '
-                              f'{count(split.get("teams_used"))} groups)</span>')
-            if split.get("note") and _finite(split.get("estimate")):
-                split_txt += f' <span class="sub">{h(split["note"])}</span>'
-            rows.append([arrow_title(p.get("predictor"), p.get("outcome")), num(_get(p, "within", "estimate")),
-                         num(between.get("estimate")) + (f' <span class="sub">({count(between.get("teams"))} '
-                                                          f'groups)</span>' if between.get("teams") else ""),
-                         pval(test.get("p")) + (" (differ)" if test.get("differ") else ""),
+                split_txt = num(split.estimate) + (f" {interval(split.ci)}" if split.ci else "")
+            if split.splits is not None:
+                split_txt += (f' <span class="sub">({count(split.splits)} splits, '
+                              f'{count(split.teams_used)} groups)</span>')
+            if split.note and _finite(split.estimate):
+                split_txt += f' <span class="sub">{h(split.note)}</span>'
+            rows.append([arrow_title(p.predictor, p.outcome), num(p.within.estimate),
+                         num(between.estimate) + (f' <span class="sub">({count(between.teams)} '
+                                                  f'groups)</span>' if between.teams else ""),
+                         pval(test.p) + (" (differ)" if test.differ else ""),
                          _same_source_cell(teams, p), split_txt])
         out.append(table(["Path", "Within groups", "Between groups", "Within vs between, p",
                           "Same-source group means", "Split-group estimate"], rows,
@@ -1038,9 +1033,11 @@ def teams_section(report: Report) -> str:
         out.append('<ul class="sub">' + "".join(f"<li>{h(n)}</li>" for n in notes) + "</ul>")
     groups = teams.visible_groups
     if groups:
-        cols = list(dict.fromkeys(c for g in groups for c in g))
+        rows = [g.row() for g in groups]
+        cols = list(dict.fromkeys(c for row in rows for c in row))
+        # .get: a group without a scale's mean shows a dash there
         out.append('<div class="long-table">' + table(
-            [h(c) for c in cols], [[_cell(g.get(c)) for c in cols] for g in groups],
+            [h(c) for c in cols], [[_cell(row.get(c)) for c in cols] for row in rows],
             caption=f"Mean scale scores per group ({count(len(groups))} groups of at least {count(k)} respondents)",
             numeric=tuple(range(1, len(cols))), cls="narrow") + "</div>")
     else:
@@ -1048,23 +1045,21 @@ def teams_section(report: Report) -> str:
     return section("teams", "Teams", "".join(out))
 
 
-def _same_source_cell(teams: Teams, p: Mapping) -> str:
+def _same_source_cell(teams: Teams, p: TeamPath) -> str:
     """The same-source team estimate, or why there is none (derived from the report's ICC(2) values)."""
-    v = _get(p, "same_source_team", "estimate")
+    v = p.same_source_team.estimate
     if _finite(v):
         return num(v)
-    reason = _get(p, "same_source_team", "reason")
-    if not reason:
-        cons = teams.constructs
-        names = [p.get("outcome"), *(p.get("predictors") or [p.get("predictor")])]
-        low = [f"{n} ({num(_get(cons, n, 'icc2'))})" for n in dict.fromkeys(names)
-               if _finite(_get(cons, n, "icc2")) and _get(cons, n, "icc2") <= 0]
-        if low:
-            reason = ("the team means of " + ", ".join(low) + " are not reliable (ICC(2) at or below zero), so "
-                      "they cannot be corrected for their unreliability")
-        else:
-            reason = ("corrected for the low reliability of team means (ICC(2)), the team-level correlations "
-                      "exceed what correlations can be, so no estimate is defined")
+    icc2 = {n: c.icc2 for n, c in teams.constructs.items() if c is not None}
+    # .get: a path's construct without team statistics gives no reason of its own
+    low = [f"{n} ({num(icc2[n])})" for n in dict.fromkeys((p.outcome, p.predictor))
+           if _finite(icc2.get(n)) and icc2[n] <= 0]
+    if low:
+        reason = ("the team means of " + ", ".join(low) + " are not reliable (ICC(2) at or below zero), so "
+                  "they cannot be corrected for their unreliability")
+    else:
+        reason = ("corrected for the low reliability of team means (ICC(2)), the team-level correlations "
+                  "exceed what correlations can be, so no estimate is defined")
     return f'<span class="na">not available: {h(reason)}</span>'
 
 
@@ -1184,8 +1179,7 @@ def _toc(entries: Iterable[tuple[str, str]]) -> str:
 def header_facts(report: Report | Mapping, when: str | None = None) -> list[str]:
     r = Report.of(report)
     d = r.data
-    record = r.record
-    when = when or next((record.get(k) for k in ("created_at", "generated_at", "date") if record.get(k)), None)
+    when = when or r.date
     facts = [f"{count(d.rows)} rows read, {count(d.rows_analyzed)} analysed",
              f"{count(d.items)} items", f"{len(r.constructs)} scales",
              f"made by {r.tool.name or 'samesource'} {r.tool.version or ''}".strip()]
