@@ -141,14 +141,15 @@ class DataSummary:
     excluded_by_reason: Mapping | None
     missing_cells: int | None
     missing_share: float | None
-    response_scale: Mapping | None
+    response_scale: ResponseScale | None
     missing_handling: Mapping | None
     sources: Mapping[str, SourceJoin | None]
 
 
 def _data(d: Any) -> DataSummary:
     d = d if isinstance(d, Mapping) else {}
-    return _pick(DataSummary, d, sources=_by_name(d.get("sources"), _source_join))
+    return _pick(DataSummary, d, response_scale=_maybe(ResponseScale, d.get("response_scale")),
+                 sources=_by_name(d.get("sources"), _source_join))
 
 
 @dataclass(frozen=True)
