@@ -135,7 +135,7 @@ def mark(ok: bool | None, fail_word: str = "below threshold", ok_word: str = "me
 
 
 def _conf(report: Report) -> str:
-# .get: the options as report.json has them; one an older report lacks reads as None
+    # .get: the options as report.json has them; one an older report lacks reads as None
     c = report.options.get("confidence")
     return f"{c * 100:.0f}%" if _finite(c) else "95%"
 
@@ -473,7 +473,7 @@ def sensitivity_section(report: Report, figs: Figures | None = None) -> str:
         desc = (f"Estimate from {num(curve[0][1])} at 0% to {num(curve[-1][1])} at {pct(curve[-1][0])}. "
                 + "; ".join(f"{k}: {v}" for k, v in facts))
         marks = s.marks if isinstance(s.marks, Mapping) else {}
-# .get: both marks are optional (a curve without a published range or an estimated share)
+        # .get: both marks are optional (a curve without a published range or an estimated share)
         published = pair_or_none(marks.get("published_range"))
         est_ci = pair_or_none(marks.get("estimated_share_ci"))
         published = published if published[0] is not None else None
@@ -526,7 +526,7 @@ def _scale_card(name: str, c: Construct, names: list[str], report: Report) -> st
     th = report.thresholds
     mm = report.measurement_model
     alpha, ave = c.alpha, c.ave
-# .get on thresholds, here and below: a threshold the report lacks leaves its mark out
+    # .get on thresholds, here and below: a threshold the report lacks leaves its mark out
     ok_a, ok_ave = meets(alpha, th.get("alpha")), meets(ave, th.get("ave"))
     if ok_a is None:
         consistency = "Consistency could not be computed."
@@ -639,7 +639,7 @@ def loadings_section(report: Report, figs: Figures | None = None) -> str:
             col.append((v if _finite(v) else None, num(v) + (f" {FAIL}" if ok is False else "")))
         cells.append(col)
         for _, mapping in item_cols:
-# .get: an item or scale the method check has no number for shows a dash
+            # .get: an item or scale the method check has no number for shows a dash
             cells.append([(mapping.get(it) if _finite(mapping.get(it)) else None, num(mapping.get(it))) for it in items])
         for _, mapping in share_cols:
             v = mapping.get(name) if isinstance(mapping, Mapping) else None
@@ -663,7 +663,7 @@ def loadings_section(report: Report, figs: Figures | None = None) -> str:
     for name, c in constructs.items():
         reverse = set(c.reverse)
         for it in c.items or list(c.item_stats):
-# .get: an item without statistics shows dashes
+            # .get: an item without statistics shows dashes
             st = c.item_stats.get(it) or no_stats
             v = st.loading
             rows.append([h(it), h(name), "yes" if it in reverse else "no",
@@ -850,7 +850,7 @@ def _cfa_detail(s: MethodCheck) -> str:
     split = s.reliability_split if isinstance(s.reliability_split, Mapping) else {}
     if split:
         out += table(["Construct", "Trait", "Method", "Error"],
-# .get: the split as report.json has it; a part it lacks shows a dash
+                     # .get: the split as report.json has it; a part it lacks shows a dash
                      [[h(k), pct(v.get("trait")), pct(v.get("method")), pct(v.get("error"))]
                       for k, v in split.items() if isinstance(v, Mapping)],
                      caption="Each construct's reliability split into trait, method and error", numeric=(1, 2, 3))
@@ -892,7 +892,7 @@ COUNT_WORDS = {0: "none", 1: "one", 2: "two", 3: "three", 4: "all four"}
 
 def fit_sentence(fit: Fit | None, th: Mapping[str, Threshold]) -> str:
     """The fit in one sentence: how many of the four usual indices meet their thresholds."""
-# .get: an index without a threshold is not judged
+    # .get: an index without a threshold is not judged
     judged = [(label, meets(getattr(fit, k) if fit else None, th.get(k))) for k, label in FIT_ROWS]
     judged = [(label, ok) for label, ok in judged if ok is not None]
     if not judged:
@@ -1100,7 +1100,7 @@ def data_section(report: Report) -> str:
         ("Missing answers", f"{count(d.missing_cells)} cells ({pct(d.missing_share)})")])]
     out.append(sources_block(report))
     out.append("<h3>Missing answers</h3>")
-# .get: missing_handling as report.json has it; a part an older report lacks shows a dash
+    # .get: missing_handling as report.json has it; a part an older report lacks shows a dash
     out.append(dl([("Handling", h(mh.get("description") or mh.get("method"))),
                    ("Rows with a missing answer", count(mh.get("rows_with_missing"))),
                    ("Share listwise deletion would drop", pct(mh.get("listwise_drop_share")))]))
@@ -1119,7 +1119,7 @@ def data_section(report: Report) -> str:
     dist = sc.distribution if isinstance(sc.distribution, Mapping) else {}
     if dist:
         out.append(table(["Measure", "Median over respondents"],
-# .get: the distribution as report.json has it; a measure without a median shows a dash
+                         # .get: as report.json has it; a measure without a median shows a dash
                          [[h(k.replace("_", " ")), num(v.get("median"), 2)] for k, v in dist.items()
                           if isinstance(v, Mapping)],
                          caption="Typical values of the screening measures", numeric=(1,), cls="narrow"))
@@ -1145,7 +1145,7 @@ def data_section(report: Report) -> str:
 
     o = report.options
     out.append("<h3>Options</h3>")
-# .get: the options as report.json has them; one an older report lacks shows a dash
+    # .get: the options as report.json has them; one an older report lacks shows a dash
     out.append(dl([("Missing answers", h(o.get("missing"))), ("Flagged rows dropped", h(o.get("drop_flagged"))),
                    ("Bootstrap replicates", count(o.get("bootstrap")) if o.get("bootstrap") else "none (analytic intervals)"),
                    ("Seed", count(o.get("seed"))), ("Confidence", pct(o.get("confidence"), 0)),
@@ -1205,7 +1205,7 @@ def review_reasons(report: Report | Mapping) -> list[dict]:
     out = []
     for r in view.review_reasons or ():
         if isinstance(r, Mapping):
-# .get: a reason as report.json has it (review.py); any part may be missing
+            # .get: a reason as report.json has it (review.py); any part may be missing
             out.append({"message": str(r.get("message") or r.get("code") or "review needed"),
                         "names": [str(i) for i in r.get("items") or []], "fix": str(r.get("fix") or "")})
     return out or [{"message": "The analysis asks for a review before its results are used.", "names": [], "fix": ""}]

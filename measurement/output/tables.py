@@ -54,7 +54,7 @@ def pair(pairs: Mapping[Pair, Any] | None, a: str, b: str) -> Any:
     """The value stored for two constructs ((A, B) in design order), either way round."""
     if not pairs:
         return None
- # .get: either order, and a pair the report lacks reads as None
+    # .get: either order, and a pair the report lacks reads as None
     return pairs.get((a, b), pairs.get((b, a)))
 
 
@@ -133,7 +133,7 @@ def method_check_rows(report: Report | Mapping) -> list[dict]:
         value, value_name, p = None, None, None
         if key in ("method_factor", "measured_method"):
             value, value_name = sec.method_share, "method share"
- # .get on tests: a test the check did not run reads as None
+            # .get on tests: a test the check did not run reads as None
             p = _p(sec.tests.get("method_vs_none"))
         elif key == "cfa_marker":
             if "correlations change" in signal:
@@ -183,7 +183,7 @@ def report_tables(report: Report | Mapping) -> dict[str, pd.DataFrame]:
                      "n": c.n, "alpha": c.alpha, "alpha_ci_lo": lo, "alpha_ci_hi": hi,
                      "omega": c.omega, "composite_reliability": c.composite_reliability,
                      "ave": c.ave,
- # .get on thresholds, here and below: a threshold the report lacks leaves its column empty
+                     # .get on thresholds, here and below: a threshold the report lacks leaves its column empty
                      "alpha_meets": meets(c.alpha, th.get("alpha")),
                      "omega_meets": meets(c.omega, th.get("omega")),
                      "cr_meets": meets(c.composite_reliability, th.get("composite_reliability")),
@@ -196,7 +196,7 @@ def report_tables(report: Report | Mapping) -> dict[str, pd.DataFrame]:
     for name, c in r.constructs.items():
         reverse = set(c.reverse or ())
         for item in c.items or tuple(c.item_stats):
- # .get: an item without statistics gives empty cells
+            # .get: an item without statistics gives empty cells
             s = c.item_stats.get(item) or ItemStats(None, None, None, None, None)
             rows.append({"construct": name, "item": item, "reverse_keyed": item in reverse,
                          "loading": s.loading, "loading_meets": meets(s.loading, th.get("loading")),
