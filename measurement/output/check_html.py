@@ -1,7 +1,7 @@
 """report.html's parts for the correction check and the planning advice: which estimate to lean
 on for this design, the check's numbers per scenario, and the "next time" section.
 
-Reads report.json only (``correction_check``: measurement/corrections/correction_check.py; ``next_time``:
+Reads the typed report (``correction_check``: measurement/corrections/correction_check.py; ``next_time``:
 measurement/method_checks/planning.py).
 """
 
@@ -50,6 +50,8 @@ def correction_check_section(report: Report) -> str:
     if c.status != "ok":
         return section("correction-check", title, f'<p class="note">Not run: {h(c.why_not)}.</p>')
     n = int(c.replicates or 0)
+    # .get on population, rules and the per-scenario numbers: as report.json has them
+    # (correction_check.dependable reads the numbers); a part it lacks shows a dash
     pop = c.population if isinstance(c.population, Mapping) else {}
     run = [s for s in c.scenarios if s.run]
     out = [f"<p>Each correction was tried on {count(n)} simulated surveys per scenario, drawn from a model fitted to "

@@ -105,6 +105,7 @@ def sentence(p: KeyPath) -> tuple[str, str | None]:
     x, y = str(p.predictor or "the predictor"), str(p.outcome or "the outcome")
     key = p.preferred
     pref = p.preferred_estimate
+    # .get: a path without an observed estimate (an edited or older report) reads as None
     obs = p.estimates.get("observed")
     pr, o = (pref.estimate if pref else None), (obs.estimate if obs else None)
     if not finite(pr):

@@ -79,8 +79,53 @@ class Tool:
 
 
 @dataclass(frozen=True)
+class ResponseScale:
+    """An answer range: the lowest and highest answer, and where it was taken from (design or data)."""
+
+    min: float | None
+    max: float | None
+    source: str | None
+
+
+@dataclass(frozen=True)
+class SourceJoin:
+    """How one second source's rows were joined to the main file's on ids:
+    report["data"]["sources"][name] (measurement/input/sources.py ``SourceLink``)."""
+
+    name: str | None
+    kind: str | None
+    file: str | None
+    format: str | None
+    sha256: str | None
+    id_column: str | None
+    main_id_column: str | None
+    constructs: tuple[str, ...]
+    items: int | None
+    rows: int | None
+    matched: int | None                # main-file rows joined to a source row
+    main_rows: int | None
+    main_without_match: int | None
+    main_without_id: int | None
+    source_without_match: int | None
+    source_without_id: int | None
+    response_scale: ResponseScale | None
+    examples: Mapping[str, tuple[str, ...]]   # example ids of each kind of unmatched row
+    hint: str | None
+    unmatched_main_rows: int | None    # main-file rows without a source row (no match or no id)
+    unused_source_rows: int | None     # source rows not joined (no match or no id)
+
+
+def _source_join(s: Any) -> SourceJoin | None:
+    if not isinstance(s, Mapping):
+        return None
+    return _pick(SourceJoin, s, constructs=_texts(s.get("constructs")),
+                 response_scale=_maybe(ResponseScale, s.get("response_scale")),
+                 examples=_by_name(s.get("examples"), _texts))
+
+
+@dataclass(frozen=True)
 class DataSummary:
-    """What was read: report["data"] (``sources``: the second sources' joins, as report.json has them)."""
+    """What was read: report["data"] (``sources``: how each second source was joined, by name)."""
 
     file: str | None
     format: str | None
@@ -96,9 +141,15 @@ class DataSummary:
     excluded_by_reason: Mapping | None
     missing_cells: int | None
     missing_share: float | None
-    response_scale: Mapping | None
+    response_scale: ResponseScale | None
     missing_handling: Mapping | None
-    sources: Mapping | None
+    sources: Mapping[str, SourceJoin | None]
+
+
+def _data(d: Any) -> DataSummary:
+    d = d if isinstance(d, Mapping) else {}
+    return _pick(DataSummary, d, response_scale=_maybe(ResponseScale, d.get("response_scale")),
+                 sources=_by_name(d.get("sources"), _source_join))
 
 
 @dataclass(frozen=True)
@@ -248,6 +299,29 @@ class ModelSummary:
 
 
 @dataclass(frozen=True)
+class MarkerPair:
+    """Two scales' correlation before and after the marker adjustment, with its test."""
+
+    r: float | None
+    r_adjusted: float | None
+    t: float | None
+    p: float | None
+
+
+@dataclass(frozen=True)
+class MarkerChoice:
+    """The marker adjustment under one choice of r_M (``rule``: smallest, second smallest, upper bound)."""
+
+    rule: str | None
+    r_m: float | None
+    pairs: Mapping[Pair, MarkerPair | None]
+
+
+def _marker_pairs(d: Any) -> Mapping[Pair, MarkerPair | None]:
+    return _pairs(d, lambda v: _pick(MarkerPair, v) if isinstance(v, Mapping) else None)
+
+
+@dataclass(frozen=True)
 class MethodCheck:
     """One common-method check (report["method_variance"][key]): every field the report's
     tables and pages read, each check filling those it has (None elsewhere), and ``section``,
@@ -265,7 +339,8 @@ class MethodCheck:
     identified_by: str | None
     identified: bool | None
     proper: bool | None
-    loadings: Any
+    loadings: Any                     # the method factor's loadings: "equal" or "free"
+    item_loadings: Mapping | None     # each item's standardized loading on the method (item -> number)
     fit: Fit | None
     models: Mapping[str, ModelSummary | None]
     warnings: tuple | None
@@ -273,8 +348,8 @@ class MethodCheck:
     marker: str | None
     n: int | None
     marker_correlations: Mapping | None
-    pairs: Mapping | None             # the marker adjustment per pair, as report.json has it
-    sensitivity: tuple | None         # the marker adjustment under each choice of r_M, as report.json has it
+    pairs: Mapping[Pair, MarkerPair | None] | None   # the marker adjustment per pair of scales
+    sensitivity: tuple[MarkerChoice, ...] | None     # the marker adjustment under each choice of r_M
     r_m: float | None
     r_m_p: float | None
     r_m_rule: str | None
@@ -302,6 +377,9 @@ def _check(sec: Any) -> MethodCheck | None:
                      Fit, m.get("fit")) if isinstance(m, Mapping) else None)),
                  single_factor_fit=_maybe(Fit, single.get("fit")) if isinstance(single, Mapping) else None,
                  vs_measurement_model=_maybe(ModelTest, sec.get("vs_measurement_model")),
+                 pairs=_marker_pairs(sec["pairs"]) if isinstance(sec.get("pairs"), Mapping) else None,
+                 sensitivity=tuple(_pick(MarkerChoice, x, pairs=_marker_pairs(x.get("pairs")))
+                                   for x in _mappings(sec.get("sensitivity"))) if "sensitivity" in sec else None,
                  section=freeze(sec))
 
 
@@ -312,10 +390,11 @@ NO_CHECK = _pick(MethodCheck, {}, models=MappingProxyType({}), tests=MappingProx
 @dataclass(frozen=True)
 class MethodVariance:
     """Every common-method check (``checks``: by report.json's key; None when the design
-    does not allow it) and the verdict."""
+    does not allow it) and the verdict; ``given``: whether report.json has the section at all."""
 
     verdict: Verdict
     checks: Mapping[str, MethodCheck | None]
+    given: bool
 
     def check(self, key: str) -> MethodCheck | None:
         """The check under ``key`` ("marker", "method_factor", ...), None when absent."""
@@ -424,6 +503,69 @@ class PathOrigin:
 
 
 @dataclass(frozen=True)
+class Counterpart:
+    """The other path of a same-source/cross-source pair, named by its ends (``sources``: where
+    the cross-source path's ends come from; None for a same-source counterpart)."""
+
+    outcome: str | None
+    predictor: str | None
+    sources: PathOrigin | None
+
+
+NO_COUNTERPART = Counterpart(None, None, None)
+
+
+@dataclass(frozen=True)
+class Benchmark:
+    """The cross-source path's preferred estimate, which each same-source estimate is set against."""
+
+    method: str | None
+    estimate: float | None
+    ci: tuple[float | None, float | None] | None
+
+
+NO_BENCHMARK = Benchmark(None, None, None)
+
+
+@dataclass(frozen=True)
+class CrossSourceGap:
+    """One estimate of a same-source path against the cross-source benchmark: the gap is the
+    estimate minus the benchmark."""
+
+    estimate: float | None
+    ci: tuple[float | None, float | None] | None
+    difference: float | None
+    within_benchmark_ci: bool | None
+
+
+@dataclass(frozen=True)
+class CrossSourceCheck:
+    """A same-source path beside its cross-source counterpart: report["paths"][i]["cross_source_check"]
+    (measurement/corrections/source_paths.py): every estimate's gap to the benchmark, the closest."""
+
+    counterpart: Counterpart | None
+    benchmark: Benchmark | None
+    by_estimate: Mapping[str, CrossSourceGap]
+    closest: str | None
+    preferred_difference: float | None
+    note: str | None
+
+
+def _counterpart(c: Any) -> Counterpart | None:
+    if not isinstance(c, Mapping):
+        return None
+    return _pick(Counterpart, c, sources=_maybe(PathOrigin, c.get("sources")))
+
+
+def _cross_source_check(c: Any) -> CrossSourceCheck | None:
+    if not isinstance(c, Mapping) or not c:
+        return None
+    return _pick(CrossSourceCheck, c, counterpart=_counterpart(c.get("counterpart")),
+                 benchmark=_maybe(Benchmark, c.get("benchmark")),
+                 by_estimate=_by_name(c.get("by_estimate"), lambda e: _pick(CrossSourceGap, e)))
+
+
+@dataclass(frozen=True)
 class KeyPath:
     """One key path (predictor -> outcome), every estimate of it and the preferred one.
 
@@ -442,8 +584,8 @@ class KeyPath:
     cannot_pin_down: Any
     sensitivity: Sensitivity | None
     sources: PathOrigin | None
-    cross_source_check: Mapping | None
-    same_source_counterpart: Mapping | None
+    cross_source_check: CrossSourceCheck | None     # a same-source path with a cross-source counterpart
+    same_source_counterpart: Counterpart | None     # a cross-source path: the same-source path it checks
     bounds_wide: bool | None
 
     @property
@@ -474,6 +616,8 @@ def _path(p: Mapping) -> KeyPath:
     trust = p.get("trust")
     return _pick(KeyPath, p, estimates=ests, sensitivity=_sensitivity(p.get("sensitivity")),
                  bounds=_maybe(Bounds, p.get("bounds")), sources=_maybe(PathOrigin, p.get("sources")),
+                 cross_source_check=_cross_source_check(p.get("cross_source_check")),
+                 same_source_counterpart=_counterpart(p.get("same_source_counterpart")),
                  trust=_maybe(Trust, trust, reasons=_texts(trust.get("reasons"))) if isinstance(trust, Mapping)
                  else None)
 
@@ -494,9 +638,10 @@ def _measurement_model(mm: Any) -> MeasurementModel | None:
 
 
 def _method_variance(mv: Any) -> MethodVariance:
-    mv = mv if isinstance(mv, Mapping) else {}
+    given = isinstance(mv, Mapping)
+    mv = mv if given else {}
     checks = MappingProxyType({k: _check(v) for k, v in mv.items() if k != "verdict"})
-    return MethodVariance(verdict=_pick(Verdict, mv.get("verdict")), checks=checks)
+    return MethodVariance(verdict=_pick(Verdict, mv.get("verdict")), checks=checks, given=given)
 
 
 @dataclass(frozen=True)
@@ -591,11 +736,109 @@ def _next_time(nt: Any) -> NextTime | None:
 
 
 @dataclass(frozen=True)
+class TeamConstruct:
+    """One construct across groups: ICC(1), ICC(2) and the median rwg(j) over the groups it was computed in."""
+
+    icc1: float | None
+    icc2: float | None
+    rwg_j_median: float | None
+    rwg_j_groups: int | None
+
+
+@dataclass(frozen=True)
+class WithinEstimate:
+    """A key path within groups (group-mean centred): standardized, unstandardized and its SE."""
+
+    estimate: float | None
+    b: float | None
+    se_b: float | None
+
+
+@dataclass(frozen=True)
+class BetweenEstimate:
+    """A key path between group means, and the number of groups."""
+
+    estimate: float | None
+    b: float | None
+    se_b: float | None
+    teams: int | None
+
+
+@dataclass(frozen=True)
+class WithinBetweenTest:
+    """Whether the within- and between-group paths differ (Mundlak test, cluster-robust)."""
+
+    difference_b: float | None
+    se: float | None
+    wald: float | None
+    df: int | None
+    p: float | None
+    differ: bool | None
+
+
+@dataclass(frozen=True)
+class SameSourceTeam:
+    """The path between team means corrected for their unreliability (None when it is not defined)."""
+
+    estimate: float | None
+
+
+@dataclass(frozen=True)
+class SplitTeamEstimate:
+    """The split-team estimate: each side's team mean from a different part of the team."""
+
+    estimate: float | None
+    ci: tuple[float | None, float | None] | None
+    splits: int | None
+    teams_used: int | None
+    min_team_size: int | None
+    note: str | None
+
+
+@dataclass(frozen=True)
+class TeamPath:
+    """One key path within and between groups: report["teams"]["paths"][i]. A part report.json
+    lacks reads as one with every field None."""
+
+    outcome: str | None
+    predictor: str | None
+    within: WithinEstimate
+    between: BetweenEstimate
+    within_between_test: WithinBetweenTest
+    same_source_team: SameSourceTeam
+    split_source: SplitTeamEstimate
+
+
+def _team_path(tp: Mapping) -> TeamPath:
+    return _pick(TeamPath, tp, within=_pick(WithinEstimate, tp.get("within")),
+                 between=_pick(BetweenEstimate, tp.get("between")),
+                 within_between_test=_pick(WithinBetweenTest, tp.get("within_between_test")),
+                 same_source_team=_pick(SameSourceTeam, tp.get("same_source_team")),
+                 split_source=_pick(SplitTeamEstimate, tp.get("split_source")))
+
+
+@dataclass(frozen=True)
+class GroupScore:
+    """One group's mean scale scores (``scores``: scale name -> mean) and its size."""
+
+    group: str | None
+    n: int | None
+    scores: Mapping[str, float | None]
+
+    def row(self) -> dict:
+        """The group as one row: group, n, then each scale's mean (the teams table's columns)."""
+        return {"group": self.group, "n": self.n, **self.scores}
+
+
+def _group_score(g: Mapping) -> GroupScore:
+    return GroupScore(group=g.get("group"), n=g.get("n"),
+                      scores=MappingProxyType({k: freeze(v) for k, v in g.items() if k not in ("group", "n")}))
+
+
+@dataclass(frozen=True)
 class Teams:
     """Teams: ICC, agreement, within/between and split-team paths, and the group scores of
-    groups of at least ``min_group_size`` (``visible_groups``); smaller groups are never shown.
-    ``constructs``, ``paths`` and ``group_scores`` are as report.json has them (the tables
-    flatten them whole)."""
+    groups of at least ``min_group_size`` (``visible_groups``); smaller groups are never shown."""
 
     group_column: str | None
     groups: int | None
@@ -603,28 +846,33 @@ class Teams:
     groups_withheld: int | None
     min_group_size: int | None
     respondents_without_group: int | None
-    constructs: Mapping[str, Mapping | None]
-    paths: tuple[Mapping, ...]
-    group_scores: tuple[Mapping, ...]
+    constructs: Mapping[str, TeamConstruct | None]
+    paths: tuple[TeamPath, ...]
+    group_scores: tuple[GroupScore, ...]
     meaning: Any
     notes: tuple[str, ...]
 
     @property
-    def visible_groups(self) -> tuple[Mapping, ...]:
+    def visible_groups(self) -> tuple[GroupScore, ...]:
         """Group scores of groups with at least min_group_size respondents (a group of
         unknown size is not shown either)."""
         k = self.min_group_size
         if k is None:
             return ()
-        return tuple(g for g in self.group_scores if g.get("n") is not None and g["n"] >= k)
+        return tuple(g for g in self.group_scores if g.n is not None and g.n >= k)
 
 
 def _teams(t: Any) -> Teams | None:
     if not isinstance(t, Mapping):
         return None
-    return _pick(Teams, t, constructs=_by_name(t.get("constructs"), freeze),
-                 paths=freeze(_mappings(t.get("paths"))), group_scores=freeze(_mappings(t.get("group_scores"))),
+    return _pick(Teams, t, constructs=_by_name(t.get("constructs"), lambda c: _pick(TeamConstruct, c)
+                                                if isinstance(c, Mapping) else None),
+                 paths=tuple(_team_path(p) for p in _mappings(t.get("paths"))),
+                 group_scores=tuple(_group_score(g) for g in _mappings(t.get("group_scores"))),
                  notes=_texts(t.get("notes")))
+
+
+DATE_KEYS = ("created_at", "generated_at", "date")  # a stored report's date, the first of these it has
 
 
 @dataclass(frozen=True)
@@ -659,6 +907,7 @@ class Report:
     schema: str | None                # report.json's schema ("samesource.report/1")
     correction_check: CorrectionCheck | None  # measurement/corrections/correction_check.py
     next_time: NextTime | None                # the planning advice (measurement/method_checks/planning.py)
+    date: str | None                  # when a stored report says it was made (analyze writes no date)
     fits: Mapping[str, Any] = field(repr=False)
     _record: dict = field(repr=False)  # report.json's content, as analyze made it
 
@@ -667,7 +916,7 @@ class Report:
         """A Report from report.json's content (``fits``: the fitted models, when at hand)."""
         record = copy.deepcopy(report)
         return cls(
-            data=_pick(DataSummary, record.get("data")),
+            data=_data(record.get("data")),
             constructs=MappingProxyType({n: _construct(n, c) for n, c in _by_name(record.get("constructs"),
                                                                                    lambda c: c).items()}),
             measurement_model=_measurement_model(record.get("measurement_model")),
@@ -684,6 +933,7 @@ class Report:
             schema=record.get("schema"),
             correction_check=_correction_check(record.get("correction_check")),
             next_time=_next_time(record.get("next_time")),
+            date=next((str(record[k]) for k in DATE_KEYS if record.get(k)), None),
             fits=MappingProxyType(dict(fits or {})), _record=record)
 
     @classmethod
@@ -700,9 +950,8 @@ class Report:
     # -- report.json ---------------------------------------------------------------------------
     @property
     def record(self) -> dict:
-        """report.json's content this report was read from, shared (not a copy): the output
-        modules read it where they do not read the typed sections yet; change nothing in it
-        (:meth:`to_dict` gives a copy)."""
+        """report.json's content this report was read from, shared (not a copy); change nothing
+        in it (:meth:`to_dict` gives a copy). The outputs read the typed sections, never this."""
         return self._record
 
     def to_dict(self) -> dict:
@@ -743,7 +992,7 @@ class Report:
     def _repr_html_(self) -> str:
         from samesource.output.notebook import render_notebook
 
-        return render_notebook(self.record)
+        return render_notebook(self)
 
     def __str__(self) -> str:
         return self.summary()
@@ -778,4 +1027,7 @@ def method_label(key: str) -> str:
 __all__ = ["Report", "DataSummary", "Construct", "ItemStats", "Fit", "FornellLarcker", "MeasurementModel",
            "Verdict", "MethodVariance", "MethodCheck", "ModelTest", "AssumptionCheck", "Estimate",
            "BootstrapInterval", "KeyPath", "Sensitivity", "SensitivityPoint", "Bounds", "Trust", "PathOrigin",
-           "Screening", "ScreeningCheck", "FlaggedRow", "Teams", "Threshold", "Tool", "method_label"]
+           "Screening", "ScreeningCheck", "FlaggedRow", "Teams", "Threshold", "Tool", "method_label",
+           "ResponseScale", "SourceJoin", "Counterpart", "Benchmark", "CrossSourceGap", "CrossSourceCheck",
+           "MarkerPair", "MarkerChoice", "TeamConstruct", "TeamPath", "WithinEstimate", "BetweenEstimate",
+           "WithinBetweenTest", "SameSourceTeam", "SplitTeamEstimate", "GroupScore"]

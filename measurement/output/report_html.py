@@ -41,12 +41,14 @@ from samesource.output.report import (
     Fit,
     ItemStats,
     KeyPath,
+    MarkerPair,
     MethodCheck,
     ModelSummary,
     ModelTest,
     Pair,
     Report,
     Sensitivity,
+    TeamPath,
     Teams,
     Threshold,
 )
@@ -132,15 +134,8 @@ def mark(ok: bool | None, fail_word: str = "below threshold", ok_word: str = "me
     return f' <span class="mark bad" aria-hidden="true">{FAIL}</span><span class="sr-only">({fail_word})</span>'
 
 
-def _get(d: Any, *keys: str) -> Any:
-    for k in keys:
-        if not isinstance(d, Mapping):
-            return None
-        d = d.get(k)
-    return d
-
-
 def _conf(report: Report) -> str:
+    # .get: the options as report.json has them; one an older report lacks reads as None
     c = report.options.get("confidence")
     return f"{c * 100:.0f}%" if _finite(c) else "95%"
 
@@ -329,7 +324,7 @@ def _forest_rows(report: Report, p: KeyPath) -> list[svg.ForestRow]:
         if e is None or not _finite(e.estimate):
             rows.append(svg.ForestRow(label, "", unavailable="not available: " + absent_reason(report, m, e)))
             continue
-        lo, hi = _pair_or_none(e.ci)
+        lo, hi = pair_or_none(e.ci)
         rows.append(svg.ForestRow(label, est_ci(e), e.estimate, lo, hi, preferred=m == p.preferred))
     return rows
 
@@ -452,7 +447,7 @@ def sensitivity_section(report: Report, figs: Figures | None = None) -> str:
            "comes from one shared method source, from none to half.</p>"]
     for i, p in enumerate(paths):
         s = p.sensitivity or NO_SENSITIVITY
-        curve = [(pt.method_share, pt.estimate, *(_pair_or_none(pt.ci))) for pt in s.curve]
+        curve = [(pt.method_share, pt.estimate, *(pair_or_none(pt.ci))) for pt in s.curve]
         curve = [c for c in curve if _finite(c[0]) and _finite(c[1])]
         be, cz, est = s.break_even_method_share, s.ci_covers_zero_at, s.estimated_method_share
         holds = s.model_holds_up_to
@@ -478,8 +473,9 @@ def sensitivity_section(report: Report, figs: Figures | None = None) -> str:
         desc = (f"Estimate from {num(curve[0][1])} at 0% to {num(curve[-1][1])} at {pct(curve[-1][0])}. "
                 + "; ".join(f"{k}: {v}" for k, v in facts))
         marks = s.marks if isinstance(s.marks, Mapping) else {}
-        published = _pair_or_none(marks.get("published_range"))
-        est_ci = _pair_or_none(marks.get("estimated_share_ci"))
+        # .get: both marks are optional (a curve without a published range or an estimated share)
+        published = pair_or_none(marks.get("published_range"))
+        est_ci = pair_or_none(marks.get("estimated_share_ci"))
         published = published if published[0] is not None else None
         est_ci = est_ci if est_ci[0] is not None else None
         if published:
@@ -508,7 +504,7 @@ def sensitivity_section(report: Report, figs: Figures | None = None) -> str:
     return section("sensitivity", title, "".join(out))
 
 
-def _pair_or_none(ci: Any) -> tuple[float | None, float | None]:
+def pair_or_none(ci: Any) -> tuple[float | None, float | None]:
     if isinstance(ci, list | tuple) and len(ci) == 2 and all(_finite(x) for x in ci):
         return ci[0], ci[1]
     return None, None
@@ -530,6 +526,7 @@ def _scale_card(name: str, c: Construct, names: list[str], report: Report) -> st
     th = report.thresholds
     mm = report.measurement_model
     alpha, ave = c.alpha, c.ave
+    # .get on thresholds, here and below: a threshold the report lacks leaves its mark out
     ok_a, ok_ave = meets(alpha, th.get("alpha")), meets(ave, th.get("ave"))
     if ok_a is None:
         consistency = "Consistency could not be computed."
@@ -592,18 +589,14 @@ def reliability_section(report: Report, figs: Figures | None = None) -> str:
 
 
 def _item_method_loadings(report: Report) -> list[tuple[str, Mapping]]:
-    """Per-item method loadings, if a method section carries them (a mapping item -> number)."""
+    """Per-item method loadings, if a method check gives them (a mapping item -> number)."""
     out = []
     for key, label in (("method_factor", "Method loading: method factor"),
                        ("measured_method", "Method loading: measured method")):
         sec = report.method_variance.check(key)
-        if sec is None:
-            continue
-        for field_name in ("item_loadings", "method_loadings", "loadings"):
-            v = sec.section.get(field_name)
-            if isinstance(v, Mapping) and v and all(_finite(x) or x is None for x in v.values()):
-                out.append((label, v))
-                break
+        v = sec.item_loadings if sec is not None else None
+        if isinstance(v, Mapping) and v and all(_finite(x) or x is None for x in v.values()):
+            out.append((label, v))
     return out
 
 
@@ -611,16 +604,14 @@ def _construct_method_shares(report: Report) -> list[tuple[str, Mapping]]:
     mv = report.method_variance
     out = []
     mf = mv.check("method_factor")
-    if mf is not None and mf.section.get("method_share_by_construct"):
-        out.append((f"Method share: method factor ({mf.section.get('identified_by') or 'latent'})",
-                    mf.section["method_share_by_construct"]))
+    if mf is not None and mf.method_share_by_construct:
+        out.append((f"Method share: method factor ({mf.identified_by or 'latent'})", mf.method_share_by_construct))
     mm = mv.check("measured_method")
-    if mm is not None and mm.section.get("method_share_by_construct"):
-        out.append((f"Method share: measured method ({mm.section.get('method_construct')})",
-                    mm.section["method_share_by_construct"]))
+    if mm is not None and mm.method_share_by_construct:
+        out.append((f"Method share: measured method ({mm.method_construct})", mm.method_share_by_construct))
     cm = mv.check("cfa_marker")
-    if cm is not None and cm.section.get("method_share"):
-        out.append(("Method share: CFA marker technique", cm.section["method_share"]))
+    if cm is not None and cm.method_share:
+        out.append(("Method share: CFA marker technique", cm.method_share))
     return out
 
 
@@ -648,6 +639,7 @@ def loadings_section(report: Report, figs: Figures | None = None) -> str:
             col.append((v if _finite(v) else None, num(v) + (f" {FAIL}" if ok is False else "")))
         cells.append(col)
         for _, mapping in item_cols:
+            # .get: an item or scale the method check has no number for shows a dash
             cells.append([(mapping.get(it) if _finite(mapping.get(it)) else None, num(mapping.get(it))) for it in items])
         for _, mapping in share_cols:
             v = mapping.get(name) if isinstance(mapping, Mapping) else None
@@ -671,6 +663,7 @@ def loadings_section(report: Report, figs: Figures | None = None) -> str:
     for name, c in constructs.items():
         reverse = set(c.reverse)
         for it in c.items or list(c.item_stats):
+            # .get: an item without statistics shows dashes
             st = c.item_stats.get(it) or no_stats
             v = st.loading
             rows.append([h(it), h(name), "yes" if it in reverse else "no",
@@ -693,10 +686,10 @@ def _level_cell(level: str | None) -> str:
 
 
 def _check_value(r: dict) -> str:
-    v = r.get("value")
+    v = r["value"]
     if not _finite(v):
         return DASH
-    name = r.get("value_name") or ""
+    name = r["value_name"] or ""
     if name in ("method share", "first-factor share"):
         return f"{h(name)} {pct(v)}"
     if name == "highest VIF":
@@ -707,7 +700,7 @@ def _check_value(r: dict) -> str:
 def method_section(report: Report) -> str:
     mv = report.method_variance
     title = "Common-method checks"
-    if not isinstance(report.record.get("method_variance"), Mapping):
+    if not mv.given:
         return section("method-variance", title, '<p class="note">The report has no common-method checks.</p>')
     out = [_verdict_box(report)]
     checked = method_check_rows(report)
@@ -819,23 +812,32 @@ def _marker_detail(s: MethodCheck) -> str:
         out += table(["Scale", "Correlation with the marker"],
                      [[h(k), num(v)] for k, v in s.marker_correlations.items()],
                      caption="The marker's correlation with each substantive scale", numeric=(1,), cls="narrow")
-    pairs = s.pairs if isinstance(s.pairs, Mapping) else {}
+    pairs = s.pairs or {}
     if pairs:
         out += table(["Pair", "r", "r adjusted", "t", "p"],
-                     [[h(k.replace("|", " \u00d7 ")), num(v.get("r")), num(v.get("r_adjusted")), num(v.get("t"), 2),
-                       pval(v.get("p"))] for k, v in pairs.items() if isinstance(v, Mapping)],
+                     [[_pair_name(k), num(v.r), num(v.r_adjusted), num(v.t, 2), pval(v.p)]
+                      for k, v in pairs.items() if v is not None],
                      caption="Scale correlations before and after the marker adjustment", numeric=(1, 2, 3, 4))
-    sens = [x for x in s.sensitivity or () if isinstance(x, Mapping)]
+    sens = s.sensitivity or ()
     if sens and pairs:
-        head = ["Pair"] + [f'{h(str(x.get("rule", "")).replace("_", " "))}<br><span class="sub">r_M '
-                           f'{num(x.get("r_m"))}</span>' for x in sens]
-        out += table(head, [[h(k.replace("|", " \u00d7 "))] + [num(_get(x, "pairs", k, "r_adjusted")) for x in sens]
-                            for k in pairs],
+        head = ["Pair"] + [f'{h(str(x.rule or "").replace("_", " "))}<br><span class="sub">r_M '
+                           f'{num(x.r_m)}</span>' for x in sens]
+        # .get: a choice of r_M that lacks a pair shows a dash there
+        out += table(head, [[_pair_name(k)] + [num(_r_adjusted(x.pairs.get(k))) for x in sens] for k in pairs],
                      caption="Adjusted correlations under each choice of r_M (smallest, second smallest, upper "
                              "95% bound)", numeric=tuple(range(1, 1 + len(sens))))
     if s.note:
         out += f'<p class="sub">{h(s.note)}</p>'
     return out
+
+
+def _pair_name(pair_: Pair) -> str:
+    """Two scales as "A × B" (a design's names never hold "|", report.json's separator)."""
+    return h(" \u00d7 ".join(pair_))
+
+
+def _r_adjusted(v: MarkerPair | None) -> float | None:
+    return v.r_adjusted if v is not None else None
 
 
 def _cfa_detail(s: MethodCheck) -> str:
@@ -848,6 +850,7 @@ def _cfa_detail(s: MethodCheck) -> str:
     split = s.reliability_split if isinstance(s.reliability_split, Mapping) else {}
     if split:
         out += table(["Construct", "Trait", "Method", "Error"],
+                     # .get: the split as report.json has it; a part it lacks shows a dash
                      [[h(k), pct(v.get("trait")), pct(v.get("method")), pct(v.get("error"))]
                       for k, v in split.items() if isinstance(v, Mapping)],
                      caption="Each construct's reliability split into trait, method and error", numeric=(1, 2, 3))
@@ -889,6 +892,7 @@ COUNT_WORDS = {0: "none", 1: "one", 2: "two", 3: "three", 4: "all four"}
 
 def fit_sentence(fit: Fit | None, th: Mapping[str, Threshold]) -> str:
     """The fit in one sentence: how many of the four usual indices meet their thresholds."""
+    # .get: an index without a threshold is not judged
     judged = [(label, meets(getattr(fit, k) if fit else None, th.get(k))) for k, label in FIT_ROWS]
     judged = [(label, ok) for label, ok in judged if ok is not None]
     if not judged:
@@ -996,8 +1000,8 @@ def teams_section(report: Report) -> str:
     cons = teams.constructs
     if cons:
         out.append(table(["Construct", "ICC(1)", "ICC(2)", "Median rwg(j)", "Groups in rwg(j)"],
-                         [[h(n), num(v.get("icc1")), num(v.get("icc2")), num(v.get("rwg_j_median")),
-                           count(v.get("rwg_j_groups"))] for n, v in cons.items() if isinstance(v, Mapping)],
+                         [[h(n), num(v.icc1), num(v.icc2), num(v.rwg_j_median), count(v.rwg_j_groups)]
+                          for n, v in cons.items() if v is not None],
                          caption="How much each construct differs between groups, and agreement within them",
                          numeric=(1, 2, 3, 4)))
     if meaning:
@@ -1007,26 +1011,24 @@ def teams_section(report: Report) -> str:
     if tp:
         rows = []
         for p in tp:
-            split = p.get("split_source") or {}
-            test = p.get("within_between_test") or {}
-            between = p.get("between") or {}
-            if too_imprecise(split.get("ci")):
+            split, test, between = p.split_source, p.within_between_test, p.between
+            if too_imprecise(split.ci):
                 split_txt = (f'<span class="imprecise">too imprecise to read</span> <span class="sub">'
-                             f'({num(split.get("estimate"))} {interval(split.get("ci"))}: the interval is wider '
+                             f'({num(split.estimate)} {interval(split.ci)}: the interval is wider '
                              f'than half the {MINUS}1 to 1 range)</span>')
-            elif not _finite(split.get("estimate")):
-                split_txt = f'<span class="na">not available: {h(split.get("note") or "the split-group estimate could not be computed")}</span>'
+            elif not _finite(split.estimate):
+                split_txt = f'<span class="na">not available: {h(split.note or "the split-group estimate could not be computed")}</span>'
             else:
-                split_txt = num(split.get("estimate")) + (f" {interval(split.get('ci'))}" if split.get("ci") else "")
-            if split.get("splits") is not None:
-                split_txt += (f' <span class="sub">({count(split.get("splits"))} splits, '
-                              f'{count(split.get("teams_used"))} groups)</span>')
-            if split.get("note") and _finite(split.get("estimate")):
-                split_txt += f' <span class="sub">{h(split["note"])}</span>'
-            rows.append([arrow_title(p.get("predictor"), p.get("outcome")), num(_get(p, "within", "estimate")),
-                         num(between.get("estimate")) + (f' <span class="sub">({count(between.get("teams"))} '
-                                                          f'groups)</span>' if between.get("teams") else ""),
-                         pval(test.get("p")) + (" (differ)" if test.get("differ") else ""),
+                split_txt = num(split.estimate) + (f" {interval(split.ci)}" if split.ci else "")
+            if split.splits is not None:
+                split_txt += (f' <span class="sub">({count(split.splits)} splits, '
+                              f'{count(split.teams_used)} groups)</span>')
+            if split.note and _finite(split.estimate):
+                split_txt += f' <span class="sub">{h(split.note)}</span>'
+            rows.append([arrow_title(p.predictor, p.outcome), num(p.within.estimate),
+                         num(between.estimate) + (f' <span class="sub">({count(between.teams)} '
+                                                  f'groups)</span>' if between.teams else ""),
+                         pval(test.p) + (" (differ)" if test.differ else ""),
                          _same_source_cell(teams, p), split_txt])
         out.append(table(["Path", "Within groups", "Between groups", "Within vs between, p",
                           "Same-source group means", "Split-group estimate"], rows,
@@ -1038,9 +1040,11 @@ def teams_section(report: Report) -> str:
         out.append('<ul class="sub">' + "".join(f"<li>{h(n)}</li>" for n in notes) + "</ul>")
     groups = teams.visible_groups
     if groups:
-        cols = list(dict.fromkeys(c for g in groups for c in g))
+        rows = [g.row() for g in groups]
+        cols = list(dict.fromkeys(c for row in rows for c in row))
+        # .get: a group without a scale's mean shows a dash there
         out.append('<div class="long-table">' + table(
-            [h(c) for c in cols], [[_cell(g.get(c)) for c in cols] for g in groups],
+            [h(c) for c in cols], [[_cell(row.get(c)) for c in cols] for row in rows],
             caption=f"Mean scale scores per group ({count(len(groups))} groups of at least {count(k)} respondents)",
             numeric=tuple(range(1, len(cols))), cls="narrow") + "</div>")
     else:
@@ -1048,23 +1052,21 @@ def teams_section(report: Report) -> str:
     return section("teams", "Teams", "".join(out))
 
 
-def _same_source_cell(teams: Teams, p: Mapping) -> str:
+def _same_source_cell(teams: Teams, p: TeamPath) -> str:
     """The same-source team estimate, or why there is none (derived from the report's ICC(2) values)."""
-    v = _get(p, "same_source_team", "estimate")
+    v = p.same_source_team.estimate
     if _finite(v):
         return num(v)
-    reason = _get(p, "same_source_team", "reason")
-    if not reason:
-        cons = teams.constructs
-        names = [p.get("outcome"), *(p.get("predictors") or [p.get("predictor")])]
-        low = [f"{n} ({num(_get(cons, n, 'icc2'))})" for n in dict.fromkeys(names)
-               if _finite(_get(cons, n, "icc2")) and _get(cons, n, "icc2") <= 0]
-        if low:
-            reason = ("the team means of " + ", ".join(low) + " are not reliable (ICC(2) at or below zero), so "
-                      "they cannot be corrected for their unreliability")
-        else:
-            reason = ("corrected for the low reliability of team means (ICC(2)), the team-level correlations "
-                      "exceed what correlations can be, so no estimate is defined")
+    icc2 = {n: c.icc2 for n, c in teams.constructs.items() if c is not None}
+    # .get: a path's construct without team statistics gives no reason of its own
+    low = [f"{n} ({num(icc2[n])})" for n in dict.fromkeys((p.outcome, p.predictor))
+           if _finite(icc2.get(n)) and icc2[n] <= 0]
+    if low:
+        reason = ("the team means of " + ", ".join(low) + " are not reliable (ICC(2) at or below zero), so "
+                  "they cannot be corrected for their unreliability")
+    else:
+        reason = ("corrected for the low reliability of team means (ICC(2)), the team-level correlations "
+                  "exceed what correlations can be, so no estimate is defined")
     return f'<span class="na">not available: {h(reason)}</span>'
 
 
@@ -1085,7 +1087,7 @@ def data_section(report: Report) -> str:
 
     d = report.data
     mh = d.missing_handling if isinstance(d.missing_handling, Mapping) else {}
-    rs = d.response_scale if isinstance(d.response_scale, Mapping) else {}
+    rs = d.response_scale
     excl = d.excluded_by_reason if isinstance(d.excluded_by_reason, Mapping) else {}
     out = ["<h3>The data</h3>", dl([
         ("File", h(d.file)), ("Format", h(d.format)), ("Encoding", h(d.encoding)),
@@ -1094,11 +1096,11 @@ def data_section(report: Report) -> str:
         ("Items", count(d.items)),
         ("Rows excluded", count(d.excluded_rows) + (
             " (" + ", ".join(f"{h(k.replace('_', ' '))}: {count(v)}" for k, v in excl.items()) + ")" if excl else "")),
-        ("Response scale", f"{num(rs.get('min'), 0)} to {num(rs.get('max'), 0)} (from the {h(rs.get('source'))})"
-         if rs else DASH),
+        ("Response scale", f"{num(rs.min, 0)} to {num(rs.max, 0)} (from the {h(rs.source)})" if rs else DASH),
         ("Missing answers", f"{count(d.missing_cells)} cells ({pct(d.missing_share)})")])]
     out.append(sources_block(report))
     out.append("<h3>Missing answers</h3>")
+    # .get: missing_handling as report.json has it; a part an older report lacks shows a dash
     out.append(dl([("Handling", h(mh.get("description") or mh.get("method"))),
                    ("Rows with a missing answer", count(mh.get("rows_with_missing"))),
                    ("Share listwise deletion would drop", pct(mh.get("listwise_drop_share")))]))
@@ -1117,6 +1119,7 @@ def data_section(report: Report) -> str:
     dist = sc.distribution if isinstance(sc.distribution, Mapping) else {}
     if dist:
         out.append(table(["Measure", "Median over respondents"],
+                         # .get: as report.json has it; a measure without a median shows a dash
                          [[h(k.replace("_", " ")), num(v.get("median"), 2)] for k, v in dist.items()
                           if isinstance(v, Mapping)],
                          caption="Typical values of the screening measures", numeric=(1,), cls="narrow"))
@@ -1142,6 +1145,7 @@ def data_section(report: Report) -> str:
 
     o = report.options
     out.append("<h3>Options</h3>")
+    # .get: the options as report.json has them; one an older report lacks shows a dash
     out.append(dl([("Missing answers", h(o.get("missing"))), ("Flagged rows dropped", h(o.get("drop_flagged"))),
                    ("Bootstrap replicates", count(o.get("bootstrap")) if o.get("bootstrap") else "none (analytic intervals)"),
                    ("Seed", count(o.get("seed"))), ("Confidence", pct(o.get("confidence"), 0)),
@@ -1184,8 +1188,7 @@ def _toc(entries: Iterable[tuple[str, str]]) -> str:
 def header_facts(report: Report | Mapping, when: str | None = None) -> list[str]:
     r = Report.of(report)
     d = r.data
-    record = r.record
-    when = when or next((record.get(k) for k in ("created_at", "generated_at", "date") if record.get(k)), None)
+    when = when or r.date
     facts = [f"{count(d.rows)} rows read, {count(d.rows_analyzed)} analysed",
              f"{count(d.items)} items", f"{len(r.constructs)} scales",
              f"made by {r.tool.name or 'samesource'} {r.tool.version or ''}".strip()]
@@ -1202,6 +1205,7 @@ def review_reasons(report: Report | Mapping) -> list[dict]:
     out = []
     for r in view.review_reasons or ():
         if isinstance(r, Mapping):
+            # .get: a reason as report.json has it (review.py); any part may be missing
             out.append({"message": str(r.get("message") or r.get("code") or "review needed"),
                         "names": [str(i) for i in r.get("items") or []], "fix": str(r.get("fix") or "")})
     return out or [{"message": "The analysis asks for a review before its results are used.", "names": [], "fix": ""}]

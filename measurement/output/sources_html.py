@@ -1,16 +1,14 @@
 """report.html's parts for second sources: how the files were joined, which paths are free
 of same-rater bias, and each same-source path beside its cross-source counterpart.
 
-Reads report.json only (``data.sources``, ``paths[].sources``, ``paths[].cross_source_check``;
+Reads the typed report (``data.sources``, ``paths[].sources``, ``paths[].cross_source_check``;
 measurement/input/sources.py and measurement/corrections/source_paths.py).
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping
-
 from samesource.output import svg
-from samesource.output.report import KeyPath, Report
+from samesource.output.report import NO_BENCHMARK, NO_COUNTERPART, KeyPath, Report, ResponseScale
 from samesource.output.report_html import (
     Figures,
     count,
@@ -18,6 +16,7 @@ from samesource.output.report_html import (
     h,
     interval,
     num,
+    pair_or_none,
     path_title,
     section,
     signed,
@@ -26,22 +25,23 @@ from samesource.output.report_html import (
 from samesource.output.tables import method_label
 
 KIND_LABELS = {"other_rater": "another rater", "later_wave": "a later wave", "records": "records"}
+NO_SCALE = ResponseScale(None, None, None)
 
 
 def sources_block(report: Report) -> str:
     """The data section's table of second sources: rows, matches, rows left unmatched."""
-    srcs = report.data.sources if isinstance(report.data.sources, Mapping) else {}
+    srcs = report.data.sources
     if not srcs:
         return ""
     rows = []
     for name, s in srcs.items():
-        if not isinstance(s, Mapping):
+        if s is None:
             continue
-        rs = s.get("response_scale") or {}
-        rows.append([h(name), h(KIND_LABELS.get(s.get("kind"), s.get("kind"))), h(s.get("file")),
-                     f"<code>{h(s.get('id_column'))}</code>", count(s.get("rows")), count(s.get("matched")),
-                     count(s.get("unmatched_main_rows")), count(s.get("unused_source_rows")),
-                     f"{num(rs.get('min'), 0)} to {num(rs.get('max'), 0)}"])
+        rs = s.response_scale or NO_SCALE
+        rows.append([h(name), h(KIND_LABELS.get(s.kind, s.kind)), h(s.file),
+                     f"<code>{h(s.id_column)}</code>", count(s.rows), count(s.matched),
+                     count(s.unmatched_main_rows), count(s.unused_source_rows),
+                     f"{num(rs.min, 0)} to {num(rs.max, 0)}"])
     out = ["<h3>Second sources</h3>",
            '<p class="note">Each source\'s rows are joined to the main file\'s rows on ids. A main-file row the '
            "source has no row for keeps its place with that source's items missing; a source row whose id the "
@@ -64,7 +64,7 @@ def path_sources_line(p: KeyPath) -> str:
 def cross_source_section(report: Report, figs: Figures | None = None) -> str:
     """Each same-source path beside its cross-source counterpart: a table and a figure."""
     figs = figs or Figures()
-    paths = [p for p in report.paths if isinstance(p.cross_source_check, Mapping) and p.cross_source_check]
+    paths = [p for p in report.paths if p.cross_source_check is not None]
     if not paths:
         return ""
     out = ["<p>A path answered by the same people at both ends can be inflated or hidden by their shared "
@@ -73,28 +73,26 @@ def cross_source_section(report: Report, figs: Figures | None = None) -> str:
            "cross-source estimate: the closer a correction comes, the better it worked on these data.</p>"]
     for i, p in enumerate(paths):
         c = p.cross_source_check
-        b = c.get("benchmark") or {}
-        cp = c.get("counterpart") or {}
-        bench_ci = b.get("ci") if isinstance(b.get("ci"), list | tuple) and len(b["ci"]) == 2 else None
+        b, cp = c.benchmark or NO_BENCHMARK, c.counterpart or NO_COUNTERPART
+        bench_ci = pair_or_none(b.ci)
         rows, classes, forest = [], [], []
-        for m, e in (c.get("by_estimate") or {}).items():
-            within = e.get("within_benchmark_ci")
-            rows.append([h(method_label(m)) + (' <span class="tag">closest</span>' if m == c.get("closest") else ""),
-                         num(e.get("estimate")), interval(e.get("ci")), signed(e.get("difference")),
+        for m, e in c.by_estimate.items():
+            within = e.within_benchmark_ci
+            rows.append([h(method_label(m)) + (' <span class="tag">closest</span>' if m == c.closest else ""),
+                         num(e.estimate), interval(e.ci), signed(e.difference),
                          "yes" if within else ("no" if within is not None else "\u2014")])
-            classes.append("preferred" if m == c.get("closest") else "")
-            ci = e.get("ci") if isinstance(e.get("ci"), list | tuple) and len(e["ci"]) == 2 else None
-            forest.append(svg.ForestRow(method_label(m), f"{num(e.get('estimate'))}, gap {signed(e.get('difference'))}",
-                                        e.get("estimate"), ci[0] if ci else None, ci[1] if ci else None,
-                                        preferred=m == c.get("closest"), highlight_word="closest"))
-        cross = f"{h(cp.get('predictor'))} \u2192 {h(cp.get('outcome'))}"
+            classes.append("preferred" if m == c.closest else "")
+            forest.append(svg.ForestRow(method_label(m), f"{num(e.estimate)}, gap {signed(e.difference)}",
+                                        e.estimate, *pair_or_none(e.ci),
+                                        preferred=m == c.closest, highlight_word="closest"))
+        cross = f"{h(cp.predictor)} \u2192 {h(cp.outcome)}"
         out.append(f'<div class="keep"><h3 id="cross-{i + 1}">{path_title(p)} beside {cross}</h3>')
-        out.append(f'<p>Benchmark: the cross-source path {cross}, {h(method_label(str(b.get("method"))))} estimate '
-                   f'{num(b.get("estimate"))} {interval(bench_ci)}.</p>')
+        out.append(f'<p>Benchmark: the cross-source path {cross}, {h(method_label(str(b.method)))} estimate '
+                   f'{num(b.estimate)} {interval(bench_ci)}.</p>')
         ref = None
-        if b.get("estimate") is not None:
-            ref = svg.Reference(f"cross-source estimate of {cp.get('predictor')} \u2192 {cp.get('outcome')} "
-                                "and its interval", b["estimate"], *(bench_ci or (None, None)))
+        if b.estimate is not None:
+            ref = svg.Reference(f"cross-source estimate of {cp.predictor} \u2192 {cp.outcome} "
+                                "and its interval", b.estimate, *bench_ci)
         desc = "; ".join(f"{r.label}: {r.value_text}" for r in forest)
         chart = svg.forest_plot(forest, ident=f"cross-{i + 1}-svg", reference=ref, desc=desc,
                                 title=f"Each correction of {p.predictor} \u2192 {p.outcome} "
@@ -106,7 +104,7 @@ def cross_source_section(report: Report, figs: Figures | None = None) -> str:
         out.append(table(["Estimate", "Value", "Interval", "Gap to the cross-source estimate",
                           "Inside its interval"], rows, row_classes=classes, numeric=(1, 2, 3),
                          caption=f"How close each correction of {path_title(p)} came to {cross}"))
-        out.append(f'<p class="sub">{h(c.get("note"))}</p></div>')
+        out.append(f'<p class="sub">{h(c.note)}</p></div>')
     return section("cross-source", "Same-source paths beside their cross-source counterparts", "".join(out))
 
 

@@ -10,16 +10,20 @@ from __future__ import annotations
 
 import io
 import re
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
+from dataclasses import fields, is_dataclass
 from typing import Any
 
 import pandas as pd
 
 from samesource.corrections.paths import LABELS
 from samesource.output.report import (
+    NO_BENCHMARK,
     NO_CHECK,
+    NO_COUNTERPART,
     Estimate,
     FornellLarcker,
+    GroupScore,
     ItemStats,
     MethodVariance,
     ModelTest,
@@ -50,6 +54,7 @@ def pair(pairs: Mapping[Pair, Any] | None, a: str, b: str) -> Any:
     """The value stored for two constructs ((A, B) in design order), either way round."""
     if not pairs:
         return None
+    # .get: either order, and a pair the report lacks reads as None
     return pairs.get((a, b), pairs.get((b, a)))
 
 
@@ -128,6 +133,7 @@ def method_check_rows(report: Report | Mapping) -> list[dict]:
         value, value_name, p = None, None, None
         if key in ("method_factor", "measured_method"):
             value, value_name = sec.method_share, "method share"
+            # .get on tests: a test the check did not run reads as None
             p = _p(sec.tests.get("method_vs_none"))
         elif key == "cfa_marker":
             if "correlations change" in signal:
@@ -152,7 +158,7 @@ def method_check_rows(report: Report | Mapping) -> list[dict]:
 
 # --------------------------------------------------------------------------- teams
 
-def visible_groups(teams: Teams) -> tuple[Mapping, ...]:
+def visible_groups(teams: Teams) -> tuple[GroupScore, ...]:
     """Group scores with at least min_group_size respondents; smaller groups are never shown."""
     return teams.visible_groups
 
@@ -177,6 +183,7 @@ def report_tables(report: Report | Mapping) -> dict[str, pd.DataFrame]:
                      "n": c.n, "alpha": c.alpha, "alpha_ci_lo": lo, "alpha_ci_hi": hi,
                      "omega": c.omega, "composite_reliability": c.composite_reliability,
                      "ave": c.ave,
+                     # .get on thresholds, here and below: a threshold the report lacks leaves its column empty
                      "alpha_meets": meets(c.alpha, th.get("alpha")),
                      "omega_meets": meets(c.omega, th.get("omega")),
                      "cr_meets": meets(c.composite_reliability, th.get("composite_reliability")),
@@ -189,6 +196,7 @@ def report_tables(report: Report | Mapping) -> dict[str, pd.DataFrame]:
     for name, c in r.constructs.items():
         reverse = set(c.reverse or ())
         for item in c.items or tuple(c.item_stats):
+            # .get: an item without statistics gives empty cells
             s = c.item_stats.get(item) or ItemStats(None, None, None, None, None)
             rows.append({"construct": name, "item": item, "reverse_keyed": item in reverse,
                          "loading": s.loading, "loading_meets": meets(s.loading, th.get("loading")),
@@ -286,11 +294,10 @@ def report_tables(report: Report | Mapping) -> dict[str, pd.DataFrame]:
 
     teams = r.teams
     if teams is not None:
-        groups = teams.visible_groups
-        names = list(dict.fromkeys(k for g in groups for k in g))
-        t["teams"] = _frame([dict(g) for g in groups], names or ["group", "n"])
+        rows = [g.row() for g in teams.visible_groups]
+        t["teams"] = _frame(rows, list(dict.fromkeys(k for row in rows for k in row)) or ["group", "n"])
         t["team_constructs"] = _frame(
-            [{"construct": k, **(v or {})} for k, v in teams.constructs.items()],
+            [{"construct": k, **(flatten(v) if v else {})} for k, v in teams.constructs.items()],
             ["construct", "icc1", "icc2", "rwg_j_median"])
         t["team_paths"] = _frame([flatten(tp) for tp in teams.paths], ["outcome", "predictor"])
     return t
@@ -302,20 +309,19 @@ def _source_tables(report: Report, t: dict[str, pd.DataFrame]) -> None:
     sources = report.data.sources
     if sources:
         t["sources"] = _frame([{k: v for k, v in flatten(s).items() if not k.startswith("examples")}
-                               for s in sources.values()], ["name", "file", "rows", "matched"])
+                               for s in sources.values() if s is not None], ["name", "file", "rows", "matched"])
     rows = []
     for p in report.paths:
         c = p.cross_source_check
-        if not c:
+        if c is None:
             continue
-        b = c.get("benchmark") or {}
-        for m, e in (c.get("by_estimate") or {}).items():
+        b, cp = c.benchmark or NO_BENCHMARK, c.counterpart or NO_COUNTERPART
+        for m, e in c.by_estimate.items():
             rows.append({"outcome": p.outcome, "predictor": p.predictor,
-                         "counterpart_outcome": c["counterpart"]["outcome"],
-                         "counterpart_predictor": c["counterpart"]["predictor"], "method": m,
-                         "estimate": e.get("estimate"), "benchmark_method": b.get("method"),
-                         "benchmark": b.get("estimate"), "difference": e.get("difference"),
-                         "within_benchmark_ci": e.get("within_benchmark_ci"), "closest": m == c.get("closest")})
+                         "counterpart_outcome": cp.outcome, "counterpart_predictor": cp.predictor, "method": m,
+                         "estimate": e.estimate, "benchmark_method": b.method,
+                         "benchmark": b.estimate, "difference": e.difference,
+                         "within_benchmark_ci": e.within_benchmark_ci, "closest": m == c.closest})
     if rows:
         t["cross_source"] = _frame(rows, list(rows[0]))
     check = report.correction_check
@@ -326,12 +332,14 @@ def _source_tables(report: Report, t: dict[str, pd.DataFrame]) -> None:
         t["correction_check"] = _frame(rows, list(rows[0]))
 
 
-def flatten(d: Mapping, prefix: str = "") -> dict:
-    """Nested mappings and [lo, hi] pairs as flat columns ("within_estimate", "within_ci_lo")."""
+def flatten(d: Any, prefix: str = "") -> dict:
+    """A typed result (or a mapping) as flat columns, one per field in field order: nested
+    results and mappings as prefixed columns, [lo, hi] pairs as two ("within_estimate",
+    "split_source_ci_lo"), other lists joined with "; "."""
     out: dict = {}
-    for k, v in d.items():
+    for k, v in _fields_of(d):
         name = f"{prefix}{k}"
-        if isinstance(v, Mapping):
+        if isinstance(v, Mapping) or is_dataclass(v):
             out.update(flatten(v, f"{name}_"))
         elif isinstance(v, list | tuple) and len(v) == 2 and all(x is None or isinstance(x, int | float) for x in v):
             out[f"{name}_lo"], out[f"{name}_hi"] = v
@@ -340,6 +348,12 @@ def flatten(d: Mapping, prefix: str = "") -> dict:
         else:
             out[name] = v
     return out
+
+
+def _fields_of(d: Any) -> Iterable[tuple[str, Any]]:
+    if isinstance(d, Mapping):
+        return d.items()
+    return ((f.name, getattr(d, f.name)) for f in fields(d))
 
 
 def _frame(rows: list[dict], columns: list[str]) -> pd.DataFrame:
