@@ -86,12 +86,12 @@ def main() -> None:
     ap.add_argument("--out", type=Path, default=ROOT / "docs" / "performance.md")
     args = ap.parse_args()
     floor = run(0, 0)  # one ordinary analysis: the unit of work of the check
-    print("one analysis", floor["wall"], flush=True)
+    print("one analysis", json.dumps(floor), flush=True)  # each phase whole: a stopped run keeps its figures
     local = run(args.replicates, 0)
-    print("local", local["wall"], flush=True)
+    print("local", json.dumps(local), flush=True)
     dask = None if args.skip_dask else run(args.replicates, WORKERS)
     if dask:
-        print("dask", dask["wall"], flush=True)
+        print("dask", json.dumps(dask), flush=True)
     unit = floor["wall"]
     rows = [("local process pool (2 workers)", local)] + ([("local Dask cluster (2 workers)", dask)] if dask else [])
     lines = [BEGIN, "", "## The correction check (`--check-corrections`)", "",
