@@ -495,6 +495,9 @@ def test_page_adds_a_second_source_and_sends_it_with_the_analysis(server_factory
         # the constructs' source selects appear only once the design has sources
         expect(construct(page, "sup").locator("[data-role='links']")).to_be_hidden()
         page.locator("#json-view > summary").click()
+        # opening the box refreshes its JSON from the form in the details' toggle event, which the
+        # browser fires as a task of its own: fill only after it, or the refresh overwrites the fill
+        expect(page.locator("#design-json")).not_to_have_value("", timeout=30_000)
         page.locator("#design-json").fill(json.dumps(two))
         page.locator("#json-load").click()
         perf = construct(page, "performance")

@@ -83,11 +83,14 @@ def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--replicates", type=int, default=200)
     ap.add_argument("--skip-dask", action="store_true")
+    ap.add_argument("--local-result", type=Path,
+                    help="the local phase's printed result (JSON) of an earlier run at the same commit: "
+                         "the local phase is not run again")
     ap.add_argument("--out", type=Path, default=ROOT / "docs" / "performance.md")
     args = ap.parse_args()
     floor = run(0, 0)  # one ordinary analysis: the unit of work of the check
     print("one analysis", json.dumps(floor), flush=True)  # each phase whole: a stopped run keeps its figures
-    local = run(args.replicates, 0)
+    local = json.loads(args.local_result.read_text()) if args.local_result else run(args.replicates, 0)
     print("local", json.dumps(local), flush=True)
     dask = None if args.skip_dask else run(args.replicates, WORKERS)
     if dask:
