@@ -16,6 +16,7 @@ import pandas as pd
 
 from samesource.engine.fitting import Moments, RawData
 from samesource.input.prepare import PreparedData
+from samesource.input.rows import FrameRows, ItemRows
 from samesource.options import LISTWISE_DROP_LIMIT, AnalysisOptions
 
 
@@ -32,6 +33,15 @@ class MissingPlan:
     # Moments of every item over the rows, formed once (listwise, complete rows): a model's
     # covariance matrix is a block of it, not another pass over the rows.
     _all_moments: Moments | None = field(default=None, init=False, repr=False, compare=False)
+    _rows: ItemRows | None = field(default=None, init=False, repr=False, compare=False)
+
+    @property
+    def rows(self) -> ItemRows:
+        """The analysis rows' answers a block at a time (measurement/input/rows.py): how a
+        stage that reads rows is to read them."""
+        if self._rows is None:
+            self._rows = FrameRows(self.frame)
+        return self._rows
 
     @property
     def rows_analyzed(self) -> int:
