@@ -24,6 +24,7 @@ from samesource.input.loading import (  # missing words: read as blank, with a w
     MISSING_WORDS,
     LoadedTable,
 )
+from samesource.input.rows import FrameRows, ItemRows
 
 _NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
 _COMMA_NUMBER = re.compile(r"[+-]?\d*,\d+")
@@ -44,6 +45,16 @@ class PreparedData:
     warnings: list[dict]  # {"code", "message"}: the loader's and this step's
     table: LoadedTable  # where the data came from (format, encoding, ...)
     links: tuple = ()  # sources.SourceLink per second source joined on ids (measurement/input/sources.py)
+    # The answers a block of rows at a time (measurement/input/rows.py); FrameRows over
+    # ``items`` unless given (a file read beyond memory gives CodedRows).
+    item_rows: ItemRows | None = field(default=None, repr=False)
+
+    @property
+    def rows(self) -> ItemRows:
+        """The items' answers as ItemRows: how a stage that reads rows is to read them."""
+        if self.item_rows is None:
+            self.item_rows = FrameRows(self.items)
+        return self.item_rows
 
 
 def _num(v: float) -> str:

@@ -100,7 +100,7 @@ def prepare_with_sources(table: LoadedTable, design: Design,
         links.append(link)
     items = pd.concat(frames, axis=1)[design.items]
     return dataclasses.replace(main, items=items, missing_cells=int(items.isna().to_numpy().sum()),
-                               warnings=warnings, links=tuple(links))
+                               warnings=warnings, links=tuple(links), item_rows=None)
 
 
 def load_sources(sources: Mapping[str, object] | None) -> dict[str, LoadedTable]:
