@@ -304,6 +304,21 @@ def test_truncated_xlsx_cannot_be_opened(tmp_path):
         load_table(cut)
 
 
+def test_workbook_out_of_memory_says_so_and_what_to_do(tmp_path, monkeypatch):
+    import openpyxl
+
+    p = make_xlsx(tmp_path / "s.xlsx", {"S": [["id", "sup1"], ["r1", 1]]})
+
+    def exhausted(*a, **k):
+        raise MemoryError
+
+    monkeypatch.setattr(openpyxl, "load_workbook", exhausted)
+    with pytest.raises(DataError, match="ran out of memory opening the Excel workbook") as e:
+        load_table(p)
+    assert ".csv or .parquet" in str(e.value) and str(p) in str(e.value)
+    assert isinstance(e.value.__context__, MemoryError)  # the service and command line look for it
+
+
 # ---------------------------------------------------------------- sav
 
 

@@ -889,7 +889,12 @@ def _read_xlsx(data: bytes, source: str, sheet: str | int | None) -> dict:
         warnings.simplefilter("ignore")  # openpyxl warns about styles and extensions it skips
         try:
             wb = open_book(True)
-        except Exception as e:  # any failure inside the workbook reader means "cannot open"
+        except MemoryError:  # a workbook is read whole: say so, and what to do (the MemoryError stays the context)
+            raise DataError(
+                "ran out of memory opening the Excel workbook (a workbook is read whole and takes many "
+                "times its size in memory); save the sheet as .csv or .parquet, which are read with far "
+                "less, or run it where more memory is free", file=source) from None
+        except Exception as e:  # any other failure inside the workbook reader means "cannot open"
             raise DataError(
                 f"cannot open the Excel workbook ({_brief(e)}); check that the file is complete "
                 "and not password-protected, or save it again as .xlsx or .csv",
