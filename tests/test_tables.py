@@ -214,3 +214,15 @@ def test_second_sources_and_the_correction_check_get_tables_of_their_own():
     assert t["cross_source"]["closest"].tolist() == [False, True]
     assert t["correction_check"].loc[0, ["scenario", "method", "bias", "lean_on"]].tolist() == [
         "fitted", "latent", 0.01, True]
+
+
+def test_an_absent_interval_keeps_its_two_columns():
+    # A split-team estimate without an interval used to give a third, empty "ci" column in
+    # team_paths.csv beside the "ci_lo"/"ci_hi" of rows that have one.
+    from samesource.output.report import SplitTeamEstimate
+    from samesource.output.tables import flatten
+
+    with_ci = flatten(SplitTeamEstimate(0.2, (0.1, 0.3), 40, 12, 6, None))
+    without = flatten(SplitTeamEstimate(0.2, None, 40, 12, 6, "too few teams"))
+    assert list(without) == list(with_ci)
+    assert without["ci_lo"] is None and without["ci_hi"] is None

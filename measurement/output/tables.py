@@ -337,9 +337,12 @@ def flatten(d: Any, prefix: str = "") -> dict:
     results and mappings as prefixed columns, [lo, hi] pairs as two ("within_estimate",
     "split_source_ci_lo"), other lists joined with "; "."""
     out: dict = {}
+    intervals = _interval_fields(d)
     for k, v in _fields_of(d):
         name = f"{prefix}{k}"
-        if isinstance(v, Mapping) or is_dataclass(v):
+        if v is None and k in intervals:  # no interval: still its two columns, so every row has the same ones
+            out[f"{name}_lo"] = out[f"{name}_hi"] = None
+        elif isinstance(v, Mapping) or is_dataclass(v):
             out.update(flatten(v, f"{name}_"))
         elif isinstance(v, list | tuple) and len(v) == 2 and all(x is None or isinstance(x, int | float) for x in v):
             out[f"{name}_lo"], out[f"{name}_hi"] = v
@@ -348,6 +351,13 @@ def flatten(d: Any, prefix: str = "") -> dict:
         else:
             out[name] = v
     return out
+
+
+def _interval_fields(d: Any) -> set[str]:
+    """A typed result's fields that hold a [lo, hi] pair or None (annotated ``tuple[float ...``)."""
+    if not is_dataclass(d):
+        return set()
+    return {f.name for f in fields(d) if str(f.type).startswith("tuple[float")}
 
 
 def _fields_of(d: Any) -> Iterable[tuple[str, Any]]:
