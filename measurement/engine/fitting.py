@@ -284,6 +284,22 @@ class _Structure:
         ew = np.concatenate([np.ones(len(self.a_r)), np.where(off, 1.0, 0.5)])
         self.Z = np.zeros((self.q, len(ek)))
         self.Z[ek, np.arange(len(ek))] = ew
+        # Z h Z' without the dense product where each parameter has one entry (no labels): a
+        # reordering of h weighted by w w', the same bits as the product (every weight is 1
+        # or 1/2, so each product is exact, and the other terms are exact zeros). With labels
+        # the product stays: summed in another order its rounding differed, and that moved
+        # which of several starts reaching one solution was reported.
+        self.e_single = len(ek) == self.q
+        self.e_order = np.argsort(ek, kind="stable")
+        self.e_ww = np.outer(ew[self.e_order], ew[self.e_order])
+        # (I - A)^-1 in closed form where no variable both receives and sends a path and every
+        # path runs from a later variable to an earlier one (measurement models: loadings from
+        # latents, which come after the observed): then A A = 0 and I - A is upper triangular,
+        # so E = I + A, the same bits as LAPACK's inverse (its elimination multiplies by 1 and
+        # adds 0) for a tenth of the work.
+        ar, ac = self.rows[self.is_a], self.cols[self.is_a]
+        self.two_layer = not (set(ar.tolist()) & set(ac.tolist())) and bool(np.all(ar < ac))
+        self.eye = np.eye(self.m)
         # Spec bookkeeping for standardization and reporting.
         self.fixed_values = np.array([np.nan if p.free else float(p.value) for p in spec.params])
         self.keymap: dict[ParamKey, int] = {}
@@ -320,10 +336,13 @@ class _Structure:
     def moments(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         """(E, Omega) or None when I - A is singular."""
         A, S = self.matrices(x)
-        try:
-            E = np.linalg.inv(np.eye(self.m) - A)
-        except np.linalg.LinAlgError:
-            return None
+        if self.two_layer:
+            E = self.eye + A
+        else:
+            try:
+                E = np.linalg.inv(self.eye - A)
+            except np.linalg.LinAlgError:
+                return None
         if not np.all(np.isfinite(E)):
             return None
         Om = E @ S @ E.T
@@ -372,17 +391,21 @@ def _chol(M: np.ndarray) -> np.ndarray | None:
     return L
 
 
-def _info_from_whitened(At: np.ndarray, Bt: np.ndarray, Z: np.ndarray) -> np.ndarray:
+def _info_from_whitened(At: np.ndarray, Bt: np.ndarray, st: _Structure) -> np.ndarray:
     """tr(Sigma^-1 Sigma_k Sigma^-1 Sigma_l) from whitened derivative vectors.
 
     With Sigma_k = sum_e w_e (a_e b_e' + b_e a_e') and whitened a~ = L^-1 a:
-    tr(...) = 2[(a~e.a~f)(b~e.b~f) + (a~e.b~f)(b~e.a~f)] summed over the entries.
+    tr(...) = 2[(a~e.a~f)(b~e.b~f) + (a~e.b~f)(b~e.a~f)] summed over the entries
+    (``st.Z h st.Z'``; a reordering of h where every parameter has one entry).
     """
     gaa = At.T @ At
     gbb = Bt.T @ Bt
     gab = At.T @ Bt
     h = 2.0 * (gaa * gbb + gab * gab.T)
-    return Z @ h @ Z.T
+    if not st.e_single:
+        return st.Z @ h @ st.Z.T
+    o = st.e_order
+    return h[o[:, None], o[None, :]] * st.e_ww
 
 
 # ---------------------------------------------------------------------------------------
@@ -432,6 +455,29 @@ class _Infeasible(Exception):
     pass
 
 
+class _PointCache:
+    """The model's moments and Sigma's Cholesky factor at the last point asked for.
+
+    The optimizer asks for the value at a trial point and then, once it is accepted, for the
+    gradient and information at the same point: the second reuses the first's moments and
+    factorization (the same arrays, so the same numbers). Callers only read what they get.
+    """
+
+    def __init__(self, st: _Structure) -> None:
+        self.st = st
+        self.x: np.ndarray | None = None
+        self.got: tuple[tuple[np.ndarray, np.ndarray] | None, np.ndarray | None] = (None, None)
+
+    def at(self, x: np.ndarray) -> tuple[tuple[np.ndarray, np.ndarray] | None, np.ndarray | None]:
+        """((E, Omega) or None, Cholesky factor of Sigma or None) at the parameters x."""
+        if self.x is not None and np.array_equal(self.x, x):
+            return self.got
+        mo = self.st.moments(x)
+        L = None if mo is None else _chol(mo[1][: self.st.p, : self.st.p])
+        self.x, self.got = np.array(x, dtype=float), (mo, L)
+        return self.got
+
+
 class _MLObjective:
     """F_ML of a structure on a sample covariance matrix; x holds the model parameters."""
 
@@ -450,39 +496,34 @@ class _MLObjective:
                 f"the sample covariance matrix of the {self.p} observed variables is not "
                 f"positive definite (N = {n}); remove redundant or constant items")
         self.logdet_s = 2.0 * np.sum(np.log(np.diag(Ls)))
+        self.eye = np.eye(self.p)
+        self.point = _PointCache(st)
 
     def value(self, x: np.ndarray) -> float:
-        mo = self.st.moments(x)
-        if mo is None:
+        mo, L = self.point.at(x)
+        if mo is None or L is None:
             return math.inf
-        Sig = mo[1][: self.p, : self.p]
-        L = _chol(Sig)
-        if L is None:
-            return math.inf
-        W = linalg.solve_triangular(L, self.S, lower=True)
-        W = linalg.solve_triangular(L, W.T, lower=True)
+        # L is a Cholesky factor checked finite: scipy's finiteness checks would only repeat it
+        W = linalg.solve_triangular(L, self.S, lower=True, check_finite=False)
+        W = linalg.solve_triangular(L, W.T, lower=True, check_finite=False)
         f = 2.0 * np.sum(np.log(np.diag(L))) + np.trace(W) - self.logdet_s - self.p
         return float(f) if np.isfinite(f) else math.inf
 
     def full(self, x: np.ndarray) -> tuple[float, np.ndarray, np.ndarray] | None:
         """(F, gradient, expected Hessian) or None if Sigma is not positive definite."""
         st = self.st
-        mo = st.moments(x)
-        if mo is None:
+        mo, L = self.point.at(x)
+        if mo is None or L is None:
             return None
         E, Om = mo
-        Sig = Om[: self.p, : self.p]
-        L = _chol(Sig)
-        if L is None:
-            return None
-        Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
+        Li = linalg.solve_triangular(L, self.eye, lower=True, check_finite=False)
         Si = Li.T @ Li
         SiS = Si @ self.S
         f = 2.0 * np.sum(np.log(np.diag(L))) + np.trace(SiS) - self.logdet_s - self.p
         G = Si - SiS @ Si
         Amat, Bmat = st.deriv_vectors(E, Om)
         g = st.Z @ (2.0 * np.sum(Amat * (G @ Bmat), axis=0))
-        H = _info_from_whitened(Li @ Amat, Li @ Bmat, st.Z)
+        H = _info_from_whitened(Li @ Amat, Li @ Bmat, st)
         return float(f), g, H
 
     def param_cov_scale(self) -> float:
@@ -537,14 +578,17 @@ class _FIMLObjective:
             self.groups.append({"M": M, "rows": prow, "pi": pi, "w": counts / n, "counts": counts,
                                 "ii": np.arange(len(gs))[:, None, None]})
         self.deadline: _Deadline | None = None
+        self.eye = np.eye(p)
+        self.point = _PointCache(st)
 
-    def _core(self, Sig: np.ndarray, mu: np.ndarray, grad: bool):
+    def _core(self, Sig: np.ndarray, mu: np.ndarray, grad: bool, L: np.ndarray | None = None):
         """-2 LL / N at (Sigma, mu) and, if asked, d/dSigma (as G with tr(G dSigma)) and
-        d/dmu; also returns P and the exact expected information block of mu."""
-        L = _chol(Sig)
+        d/dmu; also returns P and the exact expected information block of mu. ``L``: Sigma's
+        Cholesky factor when the caller has it."""
+        L = _chol(Sig) if L is None else L
         if L is None:
             return None
-        Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
+        Li = linalg.solve_triangular(L, self.eye, lower=True, check_finite=False)
         P = Li.T @ Li
         n = self.n
         Et = (self.Y0 - self.scale[:, None] * mu) * self.obs
@@ -583,20 +627,20 @@ class _FIMLObjective:
         return f, (G + G.T) / 2.0, gmu, 2.0 * Wsum
 
     def value(self, x: np.ndarray) -> float:
-        mo = self.st.moments(x[: self.st.q])
-        if mo is None:
+        mo, L = self.point.at(x[: self.st.q])
+        if mo is None or L is None:
             return math.inf
-        r = self._core(mo[1][: self.p, : self.p], x[self.st.q:], False)
+        r = self._core(mo[1][: self.p, : self.p], x[self.st.q:], False, L)
         return math.inf if r is None else r[0]
 
     def _grad(self, x: np.ndarray, info: bool):
         st = self.st
-        mo = st.moments(x[: st.q])
-        if mo is None:
+        mo, L = self.point.at(x[: st.q])
+        if mo is None or L is None:
             return None
         E, Om = mo
         Sig = Om[: self.p, : self.p]
-        r = self._core(Sig, x[st.q:], True)
+        r = self._core(Sig, x[st.q:], True, L)
         if r is None:
             return None
         f, G, gmu, Hmu = r
@@ -607,10 +651,9 @@ class _FIMLObjective:
         # Curvature for the optimizer: complete-data expected information for the model
         # parameters (an upper bound of the observed-data one: the missing-information
         # principle, Orchard & Woodbury 1972), exact expected information for the means.
-        L = np.linalg.cholesky(Sig)
-        Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
+        Li = linalg.solve_triangular(L, self.eye, lower=True, check_finite=False)
         H = np.zeros((self.nx, self.nx))
-        H[: st.q, : st.q] = _info_from_whitened(Li @ Amat, Li @ Bmat, st.Z)
+        H[: st.q, : st.q] = _info_from_whitened(Li @ Amat, Li @ Bmat, st)
         H[st.q:, st.q:] = Hmu
         return f, g, H
 
@@ -646,7 +689,7 @@ class _FIMLObjective:
             L = _chol(Sig)
             if L is None:
                 return None
-            r = self._core(Sig, mu, False)
+            r = self._core(Sig, mu, False, L)
             if r is None:
                 return None
             ll = -0.5 * n * r[0]

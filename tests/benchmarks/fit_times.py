@@ -34,8 +34,9 @@ sys.path.insert(0, str(HERE))
 
 
 def _kind(name: str) -> str:
-    """A model's kind: its name without the construct or share it was built for."""
-    return re.sub(r"\[.*?\]|:\d.*$|@.*$", "", name)
+    """A model's kind: its name up to the first ':' or '+' (the builder's family, without the
+    construct, variant or share it was built for)."""
+    return re.split(r"[:+]", name)[0]
 
 
 def run(survey: str, missing: str, profile: int) -> tuple[list[dict], float]:
