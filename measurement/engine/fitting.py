@@ -381,6 +381,33 @@ def _key_text(key: ParamKey) -> str:
     return f"{lhs} {sym} {rhs}"
 
 
+# LAPACK called directly with the arguments scipy.linalg's wrappers pass it, so the same bits:
+# at these sizes their array-API, batch and validation layers cost more than the solves.
+_TRTRS, _POTRF, _POTRS = linalg.lapack.dtrtrs, linalg.lapack.dpotrf, linalg.lapack.dpotrs
+
+
+def _solve_lower(L: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """L^-1 B for a finite lower-triangular float64 L with a positive diagonal (a Cholesky
+    factor from :func:`_chol`): ``scipy.linalg.solve_triangular(L, B, lower=True)``."""
+    if L.flags.f_contiguous:
+        x, info = _TRTRS(L, B, lower=1, trans=0)
+    else:  # as scipy does: the transposed system, since LAPACK reads Fortran order
+        x, info = _TRTRS(L.T, B, lower=0, trans=1)
+    if info != 0:
+        raise linalg.LinAlgError(f"triangular solve failed (info {info})")
+    return x
+
+
+def _cho_solve(M: np.ndarray, g: np.ndarray) -> np.ndarray | None:
+    """M^-1 g through M's Cholesky factor, None when M is not positive definite:
+    ``scipy.linalg.cho_solve(cho_factor(M, lower=True), g)``."""
+    c, info = _POTRF(M, lower=1, clean=0, overwrite_a=0)
+    if info != 0:
+        return None
+    x, info = _POTRS(c, g, lower=1, overwrite_b=0)
+    return x if info == 0 else None
+
+
 def _chol(M: np.ndarray) -> np.ndarray | None:
     try:
         L = np.linalg.cholesky(M)
@@ -504,8 +531,8 @@ class _MLObjective:
         if mo is None or L is None:
             return math.inf
         # L is a Cholesky factor checked finite: scipy's finiteness checks would only repeat it
-        W = linalg.solve_triangular(L, self.S, lower=True, check_finite=False)
-        W = linalg.solve_triangular(L, W.T, lower=True, check_finite=False)
+        W = _solve_lower(L, self.S)
+        W = _solve_lower(L, W.T)
         f = 2.0 * np.sum(np.log(np.diag(L))) + np.trace(W) - self.logdet_s - self.p
         return float(f) if np.isfinite(f) else math.inf
 
@@ -516,7 +543,7 @@ class _MLObjective:
         if mo is None or L is None:
             return None
         E, Om = mo
-        Li = linalg.solve_triangular(L, self.eye, lower=True, check_finite=False)
+        Li = _solve_lower(L, self.eye)
         Si = Li.T @ Li
         SiS = Si @ self.S
         f = 2.0 * np.sum(np.log(np.diag(L))) + np.trace(SiS) - self.logdet_s - self.p
@@ -588,7 +615,7 @@ class _FIMLObjective:
         L = _chol(Sig) if L is None else L
         if L is None:
             return None
-        Li = linalg.solve_triangular(L, self.eye, lower=True, check_finite=False)
+        Li = _solve_lower(L, self.eye)
         P = Li.T @ Li
         n = self.n
         Et = (self.Y0 - self.scale[:, None] * mu) * self.obs
@@ -651,7 +678,7 @@ class _FIMLObjective:
         # Curvature for the optimizer: complete-data expected information for the model
         # parameters (an upper bound of the observed-data one: the missing-information
         # principle, Orchard & Woodbury 1972), exact expected information for the means.
-        Li = linalg.solve_triangular(L, self.eye, lower=True, check_finite=False)
+        Li = _solve_lower(L, self.eye)
         H = np.zeros((self.nx, self.nx))
         H[: st.q, : st.q] = _info_from_whitened(Li @ Amat, Li @ Bmat, st)
         H[st.q:, st.q:] = Hmu
@@ -795,12 +822,10 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
                 if deadline.over():
                     capped = True
                     break
-                try:
-                    c = linalg.cho_factor(B + np.diag(lam * dg), lower=True, check_finite=False)
-                    d = -linalg.cho_solve(c, g, check_finite=False)
-                    ok = bool(np.all(np.isfinite(d)))
-                except (linalg.LinAlgError, ValueError):
-                    ok = False
+                sol = _cho_solve(B + np.diag(lam * dg), g)
+                ok = sol is not None and bool(np.all(np.isfinite(sol)))
+                if ok:
+                    d = -sol
                 if not ok:
                     if C.any():
                         C[:] = 0.0
