@@ -19,7 +19,7 @@ from semopy.examples import holzinger39, political_democracy
 
 from samesource.engine import fit_indices as fx
 from samesource.engine import fitting
-from samesource.engine.fitting import FitResult, Moments, RawData, fit_model, refit
+from samesource.engine.fitting import FitResult, Moments, RawData, delta_method, fit_model, refit
 from samesource.engine.modelspec import ModelSpec, Param
 from samesource.errors import DataError
 
@@ -208,6 +208,13 @@ def test_std_se_of_a_correlation_matches_normal_theory(hs_data):
     rho = float(np.corrcoef(hs_data["x1"], hs_data["x2"])[0, 1])
     assert r.std("cov", "x1", "x2") == pytest.approx(rho, abs=1e-8)
     assert r.std_se("cov", "x1", "x2") == pytest.approx((1 - rho**2) / math.sqrt(301), rel=1e-4)
+    # the delta method of a function of the standardized values: r itself, and r^2, whose SE
+    # is 2 |r| SE(r) (the chain rule)
+    value, se = delta_method(r, lambda std: std[2])
+    assert value == pytest.approx(rho, abs=1e-8)
+    assert se == pytest.approx((1 - rho**2) / math.sqrt(301), rel=1e-4)
+    value, se2 = delta_method(r, lambda std: std[2] ** 2)
+    assert se2 == pytest.approx(2 * abs(rho) * se, rel=1e-6)
     # df = 0: fit indices that make sense, no NaN.
     assert r.df == 0 and r.chi2 == pytest.approx(0.0, abs=1e-8)
     assert r.p is None and r.tli is None and r.rmsea == 0.0 and r.rmsea_ci == [0.0, 0.0]
@@ -259,6 +266,67 @@ def test_political_democracy_matches_semopy():
 # ---------------------------------------------------------------------------------------
 # Equality labels
 # ---------------------------------------------------------------------------------------
+
+
+def political_democracy_spec(label: bool = True) -> ModelSpec:
+    """Bollen's (1989) model: three factors, regressions among them, a fixed first loading
+    each and residual covariances, two of them equal through a label."""
+    obs = ("y1", "y2", "y3", "y4", "y5", "y6", "y7", "y8", "x1", "x2", "x3")
+    lats = ("ind60", "dem60", "dem65")
+    ps: list[Param] = []
+    for lat, its in zip(lats, (["x1", "x2", "x3"], ["y1", "y2", "y3", "y4"], ["y5", "y6", "y7", "y8"]),
+                        strict=True):
+        ps.append(Param("load", lat, its[0], free=False, value=1.0))
+        ps += [Param("load", lat, it) for it in its[1:]]
+    ps += [Param("reg", "dem60", "ind60"), Param("reg", "dem65", "ind60"), Param("reg", "dem65", "dem60")]
+    ps += [Param("cov", v, v) for v in obs + lats]
+    ps += [Param("cov", "y1", "y5"), Param("cov", "y2", "y4", label="c" if label else None),
+           Param("cov", "y6", "y8", label="c" if label else None)]
+    return ModelSpec("pd", obs, lats, tuple(ps))
+
+
+def test_standardized_jacobian_matches_scipy_differentiation():
+    # The analytic Jacobian of the standardized values (the std SEs' and the delta method's)
+    # against scipy.differentiate.jacobian (an outside numerical differentiator, order 8) on
+    # Bollen's political democracy data as semopy ships them: loadings fixed and free,
+    # regressions among factors, residual covariances, a label shared by two of them.
+    from scipy.differentiate import jacobian
+
+    data = political_democracy.get_data()
+    spec = political_democracy_spec()
+    fit = fit_model(spec, Moments.from_data(data[list(spec.observed)]))
+    assert fit.status == "ok"
+    st = fit._structure
+
+    def std_at(xs: np.ndarray) -> np.ndarray:
+        flat = xs.reshape(xs.shape[0], -1)
+        out = np.stack([st.standardized(flat[:, i]) for i in range(flat.shape[1])], axis=-1)
+        return out.reshape((out.shape[0],) + xs.shape[1:])
+
+    # entries with a zero derivative never meet a relative tolerance: an absolute one too
+    ref = jacobian(std_at, fit.x, initial_step=1e-2, tolerances={"atol": 1e-10, "rtol": 1e-9})
+    assert np.all(ref.success)
+    np.testing.assert_allclose(st.standardized_jacobian(fit.x), ref.df, atol=1e-8)
+
+
+def test_cheaper_evaluations_give_the_same_bits(hs_data):
+    # The shortcuts of the evaluations reproduce what they replace bit for bit (numpy's
+    # inverse and the dense product are the reference): E = I + A for a measurement model,
+    # the information's Z h Z' as a reordering when no parameter is labelled.
+    from samesource.engine.fitting import _info_from_whitened, _Structure
+
+    rng = np.random.default_rng(4)
+    for spec, two_layer in ((cfa_spec(HS_FACTORS, name="hs"), True), (political_democracy_spec(False), False)):
+        st = _Structure(spec)
+        assert st.two_layer is two_layer and st.e_single
+        x = rng.uniform(0.2, 0.9, st.q)
+        A, _ = st.matrices(x)
+        E, Om = st.moments(x)
+        if two_layer:
+            assert np.array_equal(E, np.linalg.inv(np.eye(st.m) - A))
+        At, Bt = (rng.standard_normal((st.p, st.Z.shape[1])) for _ in range(2))
+        h = 2.0 * ((At.T @ At) * (Bt.T @ Bt) + (At.T @ Bt) * (At.T @ Bt).T)
+        assert np.array_equal(_info_from_whitened(At, Bt, st), st.Z @ h @ st.Z.T)
 
 
 def test_equal_loadings_label_matches_semopy(hs_data):
