@@ -29,7 +29,9 @@ matrices; the information matrix is formed from whitened derivative vectors, wit
 Python loop over parameters.
 
 Time: :func:`fit_model` and :func:`refit` obey ``time_limit`` for everything (EM, all
-starts, standard errors) and report ``capped=True`` when they had to stop.
+starts, standard errors) and report ``capped=True`` when they had to stop. The limit counts
+seconds of computation (CPU time of the fitting thread, see :class:`_Deadline`), so a fit
+stops at the same point on a busy machine as on an idle one.
 """
 
 from __future__ import annotations
@@ -282,6 +284,22 @@ class _Structure:
         ew = np.concatenate([np.ones(len(self.a_r)), np.where(off, 1.0, 0.5)])
         self.Z = np.zeros((self.q, len(ek)))
         self.Z[ek, np.arange(len(ek))] = ew
+        # Z h Z' without the dense product where each parameter has one entry (no labels): a
+        # reordering of h weighted by w w', the same bits as the product (every weight is 1
+        # or 1/2, so each product is exact, and the other terms are exact zeros). With labels
+        # the product stays: summed in another order its rounding differed, and that moved
+        # which of several starts reaching one solution was reported.
+        self.e_single = len(ek) == self.q
+        self.e_order = np.argsort(ek, kind="stable")
+        self.e_ww = np.outer(ew[self.e_order], ew[self.e_order])
+        # (I - A)^-1 in closed form where no variable both receives and sends a path and every
+        # path runs from a later variable to an earlier one (measurement models: loadings from
+        # latents, which come after the observed): then A A = 0 and I - A is upper triangular,
+        # so E = I + A, the same bits as LAPACK's inverse (its elimination multiplies by 1 and
+        # adds 0) for a tenth of the work.
+        ar, ac = self.rows[self.is_a], self.cols[self.is_a]
+        self.two_layer = not (set(ar.tolist()) & set(ac.tolist())) and bool(np.all(ar < ac))
+        self.eye = np.eye(self.m)
         # Spec bookkeeping for standardization and reporting.
         self.fixed_values = np.array([np.nan if p.free else float(p.value) for p in spec.params])
         self.keymap: dict[ParamKey, int] = {}
@@ -318,10 +336,13 @@ class _Structure:
     def moments(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         """(E, Omega) or None when I - A is singular."""
         A, S = self.matrices(x)
-        try:
-            E = np.linalg.inv(np.eye(self.m) - A)
-        except np.linalg.LinAlgError:
-            return None
+        if self.two_layer:
+            E = self.eye + A
+        else:
+            try:
+                E = np.linalg.inv(self.eye - A)
+            except np.linalg.LinAlgError:
+                return None
         if not np.all(np.isfinite(E)):
             return None
         Om = E @ S @ E.T
@@ -347,6 +368,34 @@ class _Structure:
                            vals / (sd[self.rows] * sd[self.cols]))
         return out
 
+    def standardized_jacobian(self, x: np.ndarray) -> np.ndarray:
+        """d standardized / d x (spec parameters x free parameters), analytic.
+
+        The variances of all variables move as diag(dOmega/dx_k) = sum_e 2 w_e a_e * b_e (the
+        derivative vectors of :meth:`deriv_vectors` over all variables, not only the
+        observed), and each standardized value is its estimate times a ratio of sds, so
+        d std = (d value) ratio + std (d log sd(col) -/+ d log sd(row)). One evaluation in
+        place of the 2q of a central-difference Jacobian, which it equals to about 1e-9 (the
+        differences' own error). NaN where a sd is not real.
+        """
+        n = len(self.pidx)
+        mo = self.moments(x)
+        if mo is None:
+            return np.full((n, self.q), np.nan)
+        E, Om = mo
+        var = np.diag(Om)
+        vals = self.values(x)
+        dvar = (2.0 * E[:, self.e_arow] * np.hstack([Om, E])[:, self.e_bcol]) @ self.Z.T
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sd = np.where(var > 0, np.sqrt(np.abs(var)), np.nan)
+            dlog = dvar / (2.0 * var[:, None])                   # d log sd / dx, per variable
+            ratio = np.where(self.is_a, sd[self.cols] / sd[self.rows], 1.0 / (sd[self.rows] * sd[self.cols]))
+            sign = np.where(self.is_a, 1.0, -1.0)[:, None]
+            J = (vals * ratio)[:, None] * (sign * dlog[self.cols] - dlog[self.rows])
+        free = np.flatnonzero(self.pidx >= 0)
+        J[free, self.pidx[free]] += ratio[free]
+        return J
+
     def param_unit(self, Om: np.ndarray) -> np.ndarray:
         """Natural scale of each spec parameter from the implied sds (for SE checks)."""
         var = np.abs(np.diag(Om))
@@ -360,6 +409,33 @@ def _key_text(key: ParamKey) -> str:
     return f"{lhs} {sym} {rhs}"
 
 
+# LAPACK called directly with the arguments scipy.linalg's wrappers pass it, so the same bits:
+# at these sizes their array-API, batch and validation layers cost more than the solves.
+_TRTRS, _POTRF, _POTRS = linalg.lapack.dtrtrs, linalg.lapack.dpotrf, linalg.lapack.dpotrs
+
+
+def _solve_lower(L: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """L^-1 B for a finite lower-triangular float64 L with a positive diagonal (a Cholesky
+    factor from :func:`_chol`): ``scipy.linalg.solve_triangular(L, B, lower=True)``."""
+    if L.flags.f_contiguous:
+        x, info = _TRTRS(L, B, lower=1, trans=0)
+    else:  # as scipy does: the transposed system, since LAPACK reads Fortran order
+        x, info = _TRTRS(L.T, B, lower=0, trans=1)
+    if info != 0:
+        raise linalg.LinAlgError(f"triangular solve failed (info {info})")
+    return x
+
+
+def _cho_solve(M: np.ndarray, g: np.ndarray) -> np.ndarray | None:
+    """M^-1 g through M's Cholesky factor, None when M is not positive definite:
+    ``scipy.linalg.cho_solve(cho_factor(M, lower=True), g)``."""
+    c, info = _POTRF(M, lower=1, clean=0, overwrite_a=0)
+    if info != 0:
+        return None
+    x, info = _POTRS(c, g, lower=1, overwrite_b=0)
+    return x if info == 0 else None
+
+
 def _chol(M: np.ndarray) -> np.ndarray | None:
     try:
         L = np.linalg.cholesky(M)
@@ -370,17 +446,21 @@ def _chol(M: np.ndarray) -> np.ndarray | None:
     return L
 
 
-def _info_from_whitened(At: np.ndarray, Bt: np.ndarray, Z: np.ndarray) -> np.ndarray:
+def _info_from_whitened(At: np.ndarray, Bt: np.ndarray, st: _Structure) -> np.ndarray:
     """tr(Sigma^-1 Sigma_k Sigma^-1 Sigma_l) from whitened derivative vectors.
 
     With Sigma_k = sum_e w_e (a_e b_e' + b_e a_e') and whitened a~ = L^-1 a:
-    tr(...) = 2[(a~e.a~f)(b~e.b~f) + (a~e.b~f)(b~e.a~f)] summed over the entries.
+    tr(...) = 2[(a~e.a~f)(b~e.b~f) + (a~e.b~f)(b~e.a~f)] summed over the entries
+    (``st.Z h st.Z'``; a reordering of h where every parameter has one entry).
     """
     gaa = At.T @ At
     gbb = Bt.T @ Bt
     gab = At.T @ Bt
     h = 2.0 * (gaa * gbb + gab * gab.T)
-    return Z @ h @ Z.T
+    if not st.e_single:
+        return st.Z @ h @ st.Z.T
+    o = st.e_order
+    return h[o[:, None], o[None, :]] * st.e_ww
 
 
 # ---------------------------------------------------------------------------------------
@@ -388,16 +468,38 @@ def _info_from_whitened(At: np.ndarray, Bt: np.ndarray, Z: np.ndarray) -> np.nda
 # ---------------------------------------------------------------------------------------
 
 
+def cpu_seconds() -> float:
+    """CPU seconds of the calling thread so far (``time.thread_time``), the clock of every
+    fit's cap and of every budget derived from a fit's duration."""
+    return time.thread_time()
+
+
 class _Deadline:
+    """A cap counted in CPU seconds of the thread doing the work, not in wall time.
+
+    In wall time the same data gave another result on a loaded machine (a busy server, a Dask
+    worker beside others): a fit that converges alone was cut at its cap, a replicate counted
+    as failed. Counted in the thread's own CPU time the cap is as far away however many other
+    processes share the cores. A hang stays impossible: a fit reads arrays already in memory
+    and waits on nothing but the CPU (no I/O, no lock, no other process), so its thread keeps
+    accruing CPU time until the cap. BLAS runs in the calling thread during a fit
+    (:func:`_single_threaded_blas`), so its work is counted too; were BLAS to run threads of
+    its own (threadpoolctl missing), their share would go uncounted and a fit could take more
+    CPU in all than its cap, but still stop. ``time.thread_time`` is
+    clock_gettime(CLOCK_THREAD_CPUTIME_ID) on Linux: about 1 microsecond a call, next to
+    milliseconds per evaluation. The service's own limits (reading an upload, a job's lease)
+    stay in wall time.
+    """
+
     def __init__(self, seconds: float) -> None:
-        self.t0 = time.perf_counter()
+        self.t0 = cpu_seconds()
         self.end = self.t0 + max(float(seconds), 0.0)
 
     def over(self) -> bool:
-        return time.perf_counter() >= self.end
+        return cpu_seconds() >= self.end
 
     def elapsed(self) -> float:
-        return time.perf_counter() - self.t0
+        return cpu_seconds() - self.t0
 
 
 class _TimeUp(Exception):
@@ -406,6 +508,29 @@ class _TimeUp(Exception):
 
 class _Infeasible(Exception):
     pass
+
+
+class _PointCache:
+    """The model's moments and Sigma's Cholesky factor at the last point asked for.
+
+    The optimizer asks for the value at a trial point and then, once it is accepted, for the
+    gradient and information at the same point: the second reuses the first's moments and
+    factorization (the same arrays, so the same numbers). Callers only read what they get.
+    """
+
+    def __init__(self, st: _Structure) -> None:
+        self.st = st
+        self.x: np.ndarray | None = None
+        self.got: tuple[tuple[np.ndarray, np.ndarray] | None, np.ndarray | None] = (None, None)
+
+    def at(self, x: np.ndarray) -> tuple[tuple[np.ndarray, np.ndarray] | None, np.ndarray | None]:
+        """((E, Omega) or None, Cholesky factor of Sigma or None) at the parameters x."""
+        if self.x is not None and np.array_equal(self.x, x):
+            return self.got
+        mo = self.st.moments(x)
+        L = None if mo is None else _chol(mo[1][: self.st.p, : self.st.p])
+        self.x, self.got = np.array(x, dtype=float), (mo, L)
+        return self.got
 
 
 class _MLObjective:
@@ -426,39 +551,34 @@ class _MLObjective:
                 f"the sample covariance matrix of the {self.p} observed variables is not "
                 f"positive definite (N = {n}); remove redundant or constant items")
         self.logdet_s = 2.0 * np.sum(np.log(np.diag(Ls)))
+        self.eye = np.eye(self.p)
+        self.point = _PointCache(st)
 
     def value(self, x: np.ndarray) -> float:
-        mo = self.st.moments(x)
-        if mo is None:
+        mo, L = self.point.at(x)
+        if mo is None or L is None:
             return math.inf
-        Sig = mo[1][: self.p, : self.p]
-        L = _chol(Sig)
-        if L is None:
-            return math.inf
-        W = linalg.solve_triangular(L, self.S, lower=True)
-        W = linalg.solve_triangular(L, W.T, lower=True)
+        # L is a Cholesky factor checked finite: scipy's finiteness checks would only repeat it
+        W = _solve_lower(L, self.S)
+        W = _solve_lower(L, W.T)
         f = 2.0 * np.sum(np.log(np.diag(L))) + np.trace(W) - self.logdet_s - self.p
         return float(f) if np.isfinite(f) else math.inf
 
     def full(self, x: np.ndarray) -> tuple[float, np.ndarray, np.ndarray] | None:
         """(F, gradient, expected Hessian) or None if Sigma is not positive definite."""
         st = self.st
-        mo = st.moments(x)
-        if mo is None:
+        mo, L = self.point.at(x)
+        if mo is None or L is None:
             return None
         E, Om = mo
-        Sig = Om[: self.p, : self.p]
-        L = _chol(Sig)
-        if L is None:
-            return None
-        Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
+        Li = _solve_lower(L, self.eye)
         Si = Li.T @ Li
         SiS = Si @ self.S
         f = 2.0 * np.sum(np.log(np.diag(L))) + np.trace(SiS) - self.logdet_s - self.p
         G = Si - SiS @ Si
         Amat, Bmat = st.deriv_vectors(E, Om)
         g = st.Z @ (2.0 * np.sum(Amat * (G @ Bmat), axis=0))
-        H = _info_from_whitened(Li @ Amat, Li @ Bmat, st.Z)
+        H = _info_from_whitened(Li @ Amat, Li @ Bmat, st)
         return float(f), g, H
 
     def param_cov_scale(self) -> float:
@@ -513,14 +633,17 @@ class _FIMLObjective:
             self.groups.append({"M": M, "rows": prow, "pi": pi, "w": counts / n, "counts": counts,
                                 "ii": np.arange(len(gs))[:, None, None]})
         self.deadline: _Deadline | None = None
+        self.eye = np.eye(p)
+        self.point = _PointCache(st)
 
-    def _core(self, Sig: np.ndarray, mu: np.ndarray, grad: bool):
+    def _core(self, Sig: np.ndarray, mu: np.ndarray, grad: bool, L: np.ndarray | None = None):
         """-2 LL / N at (Sigma, mu) and, if asked, d/dSigma (as G with tr(G dSigma)) and
-        d/dmu; also returns P and the exact expected information block of mu."""
-        L = _chol(Sig)
+        d/dmu; also returns P and the exact expected information block of mu. ``L``: Sigma's
+        Cholesky factor when the caller has it."""
+        L = _chol(Sig) if L is None else L
         if L is None:
             return None
-        Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
+        Li = _solve_lower(L, self.eye)
         P = Li.T @ Li
         n = self.n
         Et = (self.Y0 - self.scale[:, None] * mu) * self.obs
@@ -559,20 +682,20 @@ class _FIMLObjective:
         return f, (G + G.T) / 2.0, gmu, 2.0 * Wsum
 
     def value(self, x: np.ndarray) -> float:
-        mo = self.st.moments(x[: self.st.q])
-        if mo is None:
+        mo, L = self.point.at(x[: self.st.q])
+        if mo is None or L is None:
             return math.inf
-        r = self._core(mo[1][: self.p, : self.p], x[self.st.q:], False)
+        r = self._core(mo[1][: self.p, : self.p], x[self.st.q:], False, L)
         return math.inf if r is None else r[0]
 
     def _grad(self, x: np.ndarray, info: bool):
         st = self.st
-        mo = st.moments(x[: st.q])
-        if mo is None:
+        mo, L = self.point.at(x[: st.q])
+        if mo is None or L is None:
             return None
         E, Om = mo
         Sig = Om[: self.p, : self.p]
-        r = self._core(Sig, x[st.q:], True)
+        r = self._core(Sig, x[st.q:], True, L)
         if r is None:
             return None
         f, G, gmu, Hmu = r
@@ -583,10 +706,9 @@ class _FIMLObjective:
         # Curvature for the optimizer: complete-data expected information for the model
         # parameters (an upper bound of the observed-data one: the missing-information
         # principle, Orchard & Woodbury 1972), exact expected information for the means.
-        L = np.linalg.cholesky(Sig)
-        Li = linalg.solve_triangular(L, np.eye(self.p), lower=True)
+        Li = _solve_lower(L, self.eye)
         H = np.zeros((self.nx, self.nx))
-        H[: st.q, : st.q] = _info_from_whitened(Li @ Amat, Li @ Bmat, st.Z)
+        H[: st.q, : st.q] = _info_from_whitened(Li @ Amat, Li @ Bmat, st)
         H[st.q:, st.q:] = Hmu
         return f, g, H
 
@@ -622,7 +744,7 @@ class _FIMLObjective:
             L = _chol(Sig)
             if L is None:
                 return None
-            r = self._core(Sig, mu, False)
+            r = self._core(Sig, mu, False, L)
             if r is None:
                 return None
             ll = -0.5 * n * r[0]
@@ -728,12 +850,10 @@ def _optimize(obj, x0: np.ndarray, deadline: _Deadline, max_iter: int = 1000,
                 if deadline.over():
                     capped = True
                     break
-                try:
-                    c = linalg.cho_factor(B + np.diag(lam * dg), lower=True, check_finite=False)
-                    d = -linalg.cho_solve(c, g, check_finite=False)
-                    ok = bool(np.all(np.isfinite(d)))
-                except (linalg.LinAlgError, ValueError):
-                    ok = False
+                sol = _cho_solve(B + np.diag(lam * dg), g)
+                ok = sol is not None and bool(np.all(np.isfinite(sol)))
+                if ok:
+                    d = -sol
                 if not ok:
                     if C.any():
                         C[:] = 0.0
@@ -968,14 +1088,16 @@ class FitResult:
       largest eigenvalue above 1e-10, and no SE explodes: no standardized SE above 10 and no
       SE above 1e4 x max(|estimate|, its natural unit sd(lhs)/sd(rhs) or sd(lhs)sd(rhs)).
       With ``compute_se=False`` only the eigenvalue and raw-SE tests run.
-    * ``capped``: the time limit stopped the fit (during EM, a start or the SEs). When it
+    * ``capped``: the time limit (CPU seconds of the fitting thread, the same on a busy or
+      idle machine) stopped the fit (during EM, a start or the SEs). When it
       struck after a start had finished, the reported point is that finished solution and
       ``converged`` describes it.
     * ``status``: the first that applies of "capped", "not_converged", "unidentified",
       "improper", else "ok".
 
     ``warnings`` holds plain sentences for a report; ``heywood`` the offending parameters.
-    ``iterations`` counts the scoring steps of the reported start.
+    ``iterations`` counts the scoring steps of the reported start; ``elapsed`` is the fit's
+    CPU time in seconds (of the thread that ran it), the clock of its cap.
     """
 
     spec: ModelSpec
@@ -1095,7 +1217,7 @@ class FitResult:
         left = [("Model:", self.spec.name), ("Estimator:", self.estimator.upper()),
                 ("Observations:", str(self.n)), ("Free parameters:", str(len(self.x))),
                 ("Status:", self.status), ("Starts tried:", str(self.starts_tried)),
-                ("Iterations:", str(self.iterations)), ("Time (s):", f"{self.elapsed:.3f}")]
+                ("Iterations:", str(self.iterations)), ("CPU time (s):", f"{self.elapsed:.3f}")]
         right = [("Chi-square:", num(self.chi2)), ("df:", str(self.df)), ("p:", num(self.p)),
                  ("CFI:", num(self.cfi)), ("TLI:", num(self.tli)), ("RMSEA:", num(self.rmsea)),
                  ("RMSEA 90% CI:", ci), ("SRMR:", num(self.srmr))]
@@ -1212,8 +1334,9 @@ def fit_model(spec: ModelSpec, data: Moments | RawData, *, time_limit: float = 6
     FitResult or a dict of parameter key -> value, missing keys from the rule) is tried
     before them and counts as one of the ``n_starts``. The best proper solution (lowest
     discrepancy) is kept; if none is proper, the lowest one, with a warning. The whole fit,
-    starts and standard errors included, stops at ``time_limit`` seconds: the best point so
-    far is returned with ``capped=True`` and status "capped".
+    starts and standard errors included, stops after ``time_limit`` seconds of computation
+    (CPU time of the calling thread, so the same on a busy or an idle machine): the best
+    point so far is returned with ``capped=True`` and status "capped".
 
     SEs: ML from the expected information ``(N/2) tr(Sigma^-1 Sigma_k Sigma^-1 Sigma_l)``;
     FIML from the observed information (central-difference Hessian of the analytic
@@ -1463,7 +1586,9 @@ def _standard_errors(st: _Structure, obj: Any, best: _Run, vals: np.ndarray, uni
                              f"({se_spec[j]:.3g}) is more than {SE_RATIO_MAX:g} times its scale")
         if compute_se and not capped:
             try:
-                J = _num_jacobian(st.standardized, x, deadline)
+                if deadline.over():
+                    raise _TimeUp
+                J = st.standardized_jacobian(x)
                 cs = np.einsum("ik,kl,il->i", J, param_cov, J)
                 std_se = np.sqrt(np.where(cs >= 0, cs, np.nan))
                 big = np.flatnonzero(std_se > STD_SE_MAX)
@@ -1577,19 +1702,33 @@ def _status_and_warnings(best: _Run, heywood: list[str], warnings: list[str], de
 def delta_method(fit: FitResult, fun: Callable[[np.ndarray], float],
                  cov: np.ndarray | None = None, *, time_limit: float = 10.0) -> tuple[float, float | None]:
     """A function of the completely standardized parameter values (the ``std`` column, in
-    spec order) with its delta-method standard error: sqrt(J V J'), J the central-difference
-    gradient of ``fun`` over the free parameters and V their covariance (``fit.param_cov``
-    unless another, e.g. a robust one, is given). SE None without a covariance."""
+    spec order) with its delta-method standard error: sqrt(J V J'), J the gradient of ``fun``
+    over the free parameters (its central-difference gradient over the standardized values
+    times their analytic Jacobian) and V their covariance (``fit.param_cov`` unless another,
+    e.g. a robust one, is given). SE None without a covariance."""
     st = fit._structure or _Structure(fit.spec)
-    value = float(fun(st.standardized(fit.x)))
+    std = st.standardized(fit.x)
+    value = float(fun(std))
     V = fit.param_cov if cov is None else cov
-    if V is None:
+    if V is None or not math.isfinite(value):
         return value, None
+    # chain rule: fun's central-difference gradient over the standardized values it reads
+    # (cheap: no model moments) times their analytic Jacobian over the free parameters
     try:
-        J = _num_jacobian(lambda x: np.atleast_1d(fun(st.standardized(x))), fit.x, _Deadline(time_limit))
+        used = np.flatnonzero(np.isfinite(std))
+        grad = np.zeros(len(std))
+        if used.size:
+            def over_used(s: np.ndarray) -> np.ndarray:
+                full = std.copy()
+                full[used] = s
+                return np.atleast_1d(fun(full))
+
+            grad[used] = _num_jacobian(over_used, std[used], _Deadline(time_limit))[0]
     except (_TimeUp, _Infeasible):
         return value, None
-    var = float(J[0] @ V @ J[0])
+    read = np.flatnonzero(grad)
+    J = grad[read] @ st.standardized_jacobian(fit.x)[read]
+    var = float(J @ V @ J)
     return value, (math.sqrt(var) if var >= 0 and math.isfinite(var) else None)
 
 
