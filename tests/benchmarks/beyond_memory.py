@@ -37,12 +37,14 @@ PIECE = 1_000_000
 CONSTRUCTS = [f"c{i}" for i in range(10)] + ["mark", "meth"]
 
 
-def write_survey(rows: int, folder: str) -> tuple[str, str]:
+def write_survey(rows: int, folder: str, *, ids: bool = False) -> tuple[str, str]:
     """The survey file and its design file, a million rows at a time: 12 constructs of 5
     items on a 5-point scale (the constructs of workload.py's 60-item survey), each item
     round(3 + 0.9 factor + 0.8 noise) clipped to 1..5, factors correlated .3; 1% of the cells
     of six items blank (MCAR). The bytes are formed with numpy (a survey simulated and written
-    by pandas took minutes per million rows on the loaded machine)."""
+    by pandas took minutes per million rows on the loaded machine). With ``ids``, two columns
+    come first: a respondent id (10000000 + the row's position: eight digits, unique) and a
+    team ("T000" to "T199", a survey's group column), named in the design."""
     import numpy as np
 
     items = [f"{c}_{k}" for c in CONSTRUCTS for k in range(1, 6)]
@@ -51,10 +53,15 @@ def write_survey(rows: int, folder: str) -> tuple[str, str]:
               "response_scale": {"min": 1, "max": 5}}
     design["constructs"]["mark"]["role"] = "marker"
     design["constructs"]["meth"]["role"] = "method"
-    path, design_path = os.path.join(folder, f"survey_{rows}.csv"), os.path.join(folder, "design.json")
+    lead = ["resp_id", "team"] if ids else []
+    if ids:
+        design.update(id_column="resp_id", group_column="team")
+    tag = "_ids" if ids else ""
+    path = os.path.join(folder, f"survey_{rows}{tag}.csv")
+    design_path = os.path.join(folder, f"design{tag}.json")
     Path(design_path).write_text(json.dumps(design), encoding="utf-8")
     with open(path, "wb") as fh:
-        fh.write((",".join(items) + "\n").encode("ascii"))
+        fh.write((",".join(lead + items) + "\n").encode("ascii"))
         for k in range(-(-rows // PIECE)):
             n = min(PIECE, rows - k * PIECE)
             rng = np.random.default_rng(k)
@@ -66,8 +73,22 @@ def write_survey(rows: int, folder: str) -> tuple[str, str]:
             buf[:, -1] = 10
             keep = np.ones((n, 120), dtype=bool)
             keep[:, 0:60:10] = rng.random((n, 6)) >= 0.01   # items 1, 6, ..., 26: 1% blank
+            if ids:  # "10000123,T042," before the answers: fixed widths, so formed as bytes too
+                front = np.empty((n, 14), dtype=np.uint8)
+                front[:, :8] = _digits(10_000_000 + k * PIECE + np.arange(n), 8)
+                front[:, 8], front[:, 9], front[:, 13] = 44, ord("T"), 44
+                front[:, 10:13] = _digits(rng.integers(0, 200, n), 3)
+                buf, keep = np.hstack([front, buf]), np.hstack([np.ones((n, 14), dtype=bool), keep])
             fh.write(buf[keep].tobytes())
     return path, design_path
+
+
+def _digits(values, width: int):
+    """ASCII digits of non-negative integers below 10**width, zero-padded (rows x width)."""
+    import numpy as np
+
+    powers = 10 ** np.arange(width - 1, -1, -1, dtype=np.int64)
+    return (48 + (values[:, None] // powers) % 10).astype(np.uint8)
 
 
 def child_streamed(path: str, design_path: str) -> dict:
@@ -122,9 +143,14 @@ def main() -> None:
     ap.add_argument("--rows", type=int, default=10_000_000)
     ap.add_argument("--path")
     ap.add_argument("--design")
+    ap.add_argument("--ids", action="store_true", help="the file with an id and a team column (write_survey)")
+    ap.add_argument("--write", metavar="FOLDER", help="only write the file (and its design) into FOLDER")
     args = ap.parse_args()
+    if args.write:
+        print(json.dumps(dict(zip(("path", "design"), write_survey(args.rows, args.write, ids=args.ids), strict=True))))
+        return
     with tempfile.TemporaryDirectory() as folder:
-        path, design = (args.path, args.design) if args.path else write_survey(args.rows, folder)
+        path, design = (args.path, args.design) if args.path else write_survey(args.rows, folder, ids=args.ids)
         print(json.dumps({"file_mb": os.path.getsize(path) / 1e6, **run_child("child_floor", path, design)}),
               flush=True)
         print(json.dumps(run_child("child_streamed", path, design)), flush=True)
