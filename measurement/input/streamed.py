@@ -138,14 +138,14 @@ def _lines(block: bytes, width: int, row0: int) -> tuple[bytes, np.ndarray, np.n
     ends = np.flatnonzero(arr == 10)
     starts = np.concatenate(([0], ends[:-1] + 1))
     commas = np.add.reduceat(arr == 44, starts, dtype=np.int64)
-    filled = np.add.reduceat(~_BLANK_BYTES[arr], starts, dtype=np.int64)
-    filled[ends == starts] = 0   # an empty line (reduceat gives the next byte's value there)
+    filled = np.logical_or.reduceat(~_BLANK_BYTES[arr], starts)
+    filled[ends == starts] = False   # an empty line (reduceat gives the next byte's value there)
     if not ascii_only:  # fields of other white space (a no-break space) are blank too
-        high = np.add.reduceat(arr >= 128, starts, dtype=np.int64)
-        for i in np.flatnonzero((filled > 0) & (filled == high)):
+        low = np.logical_or.reduceat(~_BLANK_BYTES[arr] & (arr < 128), starts)
+        for i in np.flatnonzero(filled & ~low & (ends != starts)):
             if not block[starts[i]:ends[i]].decode("utf-8").replace(",", "").strip():
-                filled[i] = 0
-    blank = filled == 0
+                filled[i] = False
+    blank = ~filled
     if np.any(commas[~blank] != width - 1):
         raise NotStreamable("a line with more or fewer fields than the header")
     rows = row0 + np.arange(len(ends), dtype=np.int64)

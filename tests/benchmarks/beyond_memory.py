@@ -4,15 +4,19 @@ accumulated, and the measurement model fitted from them by ML (listwise) and by 
 it, in its own process, the floor: pandas reading the same file in chunks of 1,000,000 rows
 and forming the covariance matrix (reading it whole would hold 10,000,000 x 62 numbers).
 
-Each measurement runs in a fresh process, so its peak memory (VmHWM, as scale.py reads it) is
-its own. Prints one JSON line per measurement; docs/performance.md "Beyond memory" records
+Beside them, the file read once into the PreparedData the later stages read
+(samesource.input.streamed.prepare_streamed: answers one byte per cell, row numbers, ids,
+groups), with what it holds. Each measurement runs in a fresh process, so its peak memory
+(VmHWM, as scale.py reads it) is its own. Prints one JSON line per measurement; docs/performance.md "Beyond memory" records
 the figures.
 
-    python tests/benchmarks/beyond_memory.py [--rows 10000000] [--path FILE --design FILE]
+    python tests/benchmarks/beyond_memory.py [--rows 10000000] [--ids] [--only prepared]
+                                             [--path FILE --design FILE] [--write FOLDER]
 
 Without --path it writes the file (the benchmarks' 60-item survey of tests/benchmarks/
 workload.py, 1,000,000 rows per seed, 1% of six items' cells blank) to a temporary folder and
-deletes it afterwards.
+deletes it afterwards; with --ids the file has an id and a team column first; --write FOLDER
+only writes the file (make it once, then measure with --path).
 """
 
 from __future__ import annotations
@@ -113,6 +117,26 @@ def child_streamed(path: str, design_path: str) -> dict:
             "fiml_chi2": fiml.chi2, "peak_mb": _peak_mb(), "load": os.getloadavg()}
 
 
+def child_prepared(path: str, design_path: str) -> dict:
+    """The file read once into the PreparedData the later stages read (prepare_streamed): what
+    it holds (bytes of the answers' codes, row numbers, ids, groups) beside the process's peak."""
+    from samesource.input.design import parse_design
+    from samesource.input.streamed import prepare_streamed
+
+    design = parse_design(json.loads(Path(design_path).read_text(encoding="utf-8")))
+    t0, c0 = time.perf_counter(), time.process_time()
+    got = prepare_streamed(path, design)
+    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
+    rows = got.rows
+    held = {"codes_mb": rows.codes.nbytes / 1e6, "row_numbers_mb": rows.labels.nbytes / 1e6,
+            "ids_mb": 0 if got.ids is None else got.ids.memory_usage(index=False, deep=True) / 1e6,
+            "groups_mb": 0 if got.groups is None else got.groups.memory_usage(index=False, deep=True) / 1e6}
+    return {"rows": got.n_rows, "items": len(rows.names), "prepared_wall": wall, "prepared_cpu": cpu,
+            **held, "warnings": [w["code"] for w in got.warnings],
+            "ids_dtype": None if got.ids is None else str(got.ids.dtype),
+            "complete_rows": got.sums.listwise.n, "peak_mb": _peak_mb(), "load": os.getloadavg()}
+
+
 def child_floor(path: str, design_path: str) -> dict:
     import pandas as pd
 
@@ -145,6 +169,8 @@ def main() -> None:
     ap.add_argument("--design")
     ap.add_argument("--ids", action="store_true", help="the file with an id and a team column (write_survey)")
     ap.add_argument("--write", metavar="FOLDER", help="only write the file (and its design) into FOLDER")
+    ap.add_argument("--only", choices=["streamed", "prepared"],
+                    help="beside the floor, only this measurement (default: both)")
     args = ap.parse_args()
     if args.write:
         print(json.dumps(dict(zip(("path", "design"), write_survey(args.rows, args.write, ids=args.ids), strict=True))))
@@ -153,7 +179,9 @@ def main() -> None:
         path, design = (args.path, args.design) if args.path else write_survey(args.rows, folder, ids=args.ids)
         print(json.dumps({"file_mb": os.path.getsize(path) / 1e6, **run_child("child_floor", path, design)}),
               flush=True)
-        print(json.dumps(run_child("child_streamed", path, design)), flush=True)
+        for kind in ("streamed", "prepared"):
+            if args.only in (None, kind):
+                print(json.dumps(run_child(f"child_{kind}", path, design)), flush=True)
 
 
 if __name__ == "__main__":
