@@ -1,6 +1,11 @@
-"""The answers of a plain numeric CSV file read a block of lines at a time, for files larger
-than memory: what the models need from them (listwise moments, FIML's per-pattern sums)
-accumulated block by block, no row kept.
+"""A plain numeric CSV file read a block of lines at a time, for files larger than memory.
+
+:func:`prepare_streamed` reads it once into the
+:class:`~samesource.input.prepare.PreparedData` that ``prepare(load_table(path), design)``
+gives, with the answers kept as one byte per cell (:class:`~samesource.input.rows.CodedRows`)
+and nothing else per row but the row numbers, ids and groups (compactly); the listwise moments
+and FIML's per-pattern sums are accumulated on the way (``sums``). :func:`stream_items`
+accumulates those sums alone, keeping no row.
 
 Each block goes through the column-wise reader's own parser (``loading._read_plain``) and
 each cell through the item rules of :mod:`samesource.input.prepare` (``_read_column``:
@@ -8,14 +13,24 @@ answer labels, missing words), missing codes, the response-scale check and rever
 so the numbers are those of ``prepare(load_table(path), design)``. A bad cell's message is
 made from the :class:`~samesource.input.prepare.BadCells` of its column gathered over the
 whole pass (count, first rows, answer texts, other columns), so it is the in-memory one word
-for word, whatever block the cell is in.
+for word, whatever block the cell is in; the notes (blank rows skipped, missing words, rows
+without answers, missing and repeated ids, missing groups) come from the same builders.
+Blank lines are skipped and noted as the in-memory reader does; ids and groups are read as
+text, and ids kept as numbers exactly where the in-memory reader makes them numbers (every
+one written as a whole number's own digits, and no blank row, which makes it read every cell
+as text).
 
-Boundary (docs/performance.md, "Beyond memory"): this reads plain files only, as the
-column-wise reader does (UTF-8, comma-delimited, no quotes, tabs or bare carriage returns,
-every line with the header's number of fields), with a design that gives the response scale
-and no second sources; anything else raises :class:`NotStreamable` (read it in memory). It
-gives the moments and pattern sums only: screening, alpha, teams and the report's other
-stages need the rows and are not run on it yet, and nothing in the pipeline calls it.
+Boundary (docs/performance.md, "Beyond memory"): plain files only, as the column-wise reader
+reads them (UTF-8, comma-delimited, at least two columns, no quotes, tabs or bare carriage
+returns, every line that is not blank with the header's number of fields), with a design
+that gives the response scale and no second sources; for :func:`prepare_streamed`, answers
+that are whole numbers on a scale of at most 255 points starting at a whole number. Anything
+else raises :class:`NotStreamable` (read it in memory, where every case has its message).
+
+What still reads ``PreparedData.items`` (built from the rows on first use, 8 bytes a cell):
+pipeline.py (the screen's input, ``_raw_answers``, the data section's counts),
+``missing.plan_missing`` and ``correction_check``, until they read ``rows``; the pipeline does
+not call this module yet.
 """
 
 from __future__ import annotations
