@@ -207,12 +207,17 @@ def test_whole_number_ids_without_blanks_are_int64_and_texts_a_categorical(tiny_
     # One id late in the file not written as a plain whole number: in memory the column is text.
     # (Not "2e2": in memory it is the number 200, its text as long as 200's, which the
     # column-wise reader's check of line lengths takes for the integer's own digits.)
-    for odd in ("0233", "+233", "233.0", " 233", "2e02", "R233"):
+    for odd in ("0233", "+233", "233.0", " 233", "2e02", "R233", "-9223372036854775808",
+                "9223372036854775808"):
         text = lines[:34] + [lines[34].replace("233", odd, 1)] + lines[35:]
         got, want = _both(_write(tmp_path, text, "odd.csv"), HAND_DESIGN)
         _assert_same(got, want)
         assert isinstance(got.ids.dtype, pd.CategoricalDtype), odd
         assert got.ids.astype(object).tolist()[:3] == ["200", "201", "202"]
+    text = lines[:34] + [lines[34].replace("233", "9223372036854775807", 1)] + lines[35:]
+    got, want = _both(_write(tmp_path, text, "big.csv"), HAND_DESIGN)   # the largest int64: a number
+    _assert_same(got, want)
+    assert got.ids.dtype == np.int64 and got.ids.iloc[33] == 2 ** 63 - 1
 
 
 def test_blank_lines_are_skipped_and_noted_as_in_memory(tiny_blocks, tmp_path):

@@ -429,10 +429,10 @@ class _FirstRows:
 
 
 # An id written as a whole number the way the in-memory reader makes a column of them numeric:
-# the integer's own digits (no sign of +, no leading zero or space), at most 18 of them.
-_WHOLE = r"0|-?[1-9][0-9]{0,17}"
+# the integer's own digits (no sign of +, no leading zero or space), an int64 above its lowest.
+_WHOLE = r"0|-?[1-9][0-9]{0,18}"
 _EXACT_FLOAT = 2.0 ** 53
-_NO_ID = np.iinfo(np.int64).min   # a blank id among whole numbers (never a value: see _WHOLE)
+_NO_ID = np.iinfo(np.int64).min   # a blank id among whole numbers (never a value: see add)
 
 
 class _IdColumn:
@@ -456,10 +456,14 @@ class _IdColumn:
             whole = cells.str.fullmatch(_WHOLE).to_numpy(dtype=bool)
             if np.all(whole | blank):
                 v = np.full(m, _NO_ID, dtype=np.int64)
-                v[~blank] = cells[~blank].astype(np.int64).to_numpy()
-                self.ints[self.n:self.n + m] = v
-                self.n += m
-                return
+                try:
+                    v[~blank] = cells[~blank].astype(np.int64).to_numpy()
+                except (OverflowError, ValueError, TypeError):
+                    v[~blank] = _NO_ID   # past int64: read as text in memory
+                if not np.any(v[~blank] == _NO_ID):
+                    self.ints[self.n:self.n + m] = v
+                    self.n += m
+                    return
             self._to_text()
         raw = _plain_cells(cells.to_numpy(dtype=object))
         self.codes[self.n:self.n + m] = _code_cells(raw, self.where, self.uniques, str)
