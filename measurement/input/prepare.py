@@ -348,9 +348,7 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
         raise _non_numeric_error(table, col, frame[col], bad, [c for c, _ in bad_cols[1:]],
                                  design.labels_for(col))
     if words:
-        listed = ", ".join(f"'{k}' ({c}x)" for k, c in words.most_common())
-        notes.append({"code": "text_missing_markers", "message": (
-            f"item cells holding {listed} were read as missing answers")})
+        notes.append(missing_words_note(words))
 
     if design.missing_codes:
         matrix[np.isin(matrix, np.asarray(design.missing_codes, dtype=float))] = np.nan
@@ -392,11 +390,8 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
 
     empty_rows = np.flatnonzero(np.isnan(matrix).all(axis=1)) if items else np.array([])
     if len(empty_rows):
-        rows = [int(table.row_numbers[i]) for i in empty_rows]
-        notes.append({"code": "rows_without_answers", "message": (
-            f"{len(rows)} {table.row_label}(s) have no answer to any item "
-            f"({_rows_text(table.row_label, rows)}); they are kept, and handled with the other "
-            "missing data")})
+        rows = [int(table.row_numbers[i]) for i in empty_rows[:BadCells.ROWS_KEPT]]
+        notes.append(rows_without_answers_note(table.row_label, rows, len(empty_rows)))
 
     ids = groups = None
     if design.id_column:
@@ -409,17 +404,35 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
                            dtype=object)
         missing = int(none.sum())
         if missing:
-            rows = [int(r) for r in np.asarray(table.row_numbers)[none]]
-            notes.append({"code": "missing_groups", "message": (
-                f"{missing} {table.row_label}(s) have no value in the group column "
-                f"'{design.group_column}' ({_rows_text(table.row_label, rows)}); they cannot "
-                "be placed in a group")})
+            rows = [int(r) for r in np.asarray(table.row_numbers)[none][:BadCells.ROWS_KEPT]]
+            notes.append(missing_groups_note(table.row_label, design.group_column, rows, missing))
 
     items_frame = pd.DataFrame(matrix, columns=pd.Index(items, dtype=object), index=index,
                                dtype="float64", copy=False)
     return PreparedData(items=items_frame, ids=ids, groups=groups, scale_min=lo, scale_max=hi,
                         scale_source=source, n_rows=n,
                         missing_cells=int(np.isnan(matrix).sum()), warnings=notes, table=table)
+
+
+def missing_words_note(words: Counter) -> dict:
+    """The note on item cells holding missing words (text -> count)."""
+    listed = ", ".join(f"'{k}' ({c}x)" for k, c in words.most_common())
+    return {"code": "text_missing_markers", "message": (
+        f"item cells holding {listed} were read as missing answers")}
+
+
+def rows_without_answers_note(label: str, rows: list[int], total: int) -> dict:
+    """The note on rows with no answer to any item (``rows``: the first of them, ``total`` in all)."""
+    return {"code": "rows_without_answers", "message": (
+        f"{total} {label}(s) have no answer to any item ({_rows_text(label, rows, total=total)}); "
+        "they are kept, and handled with the other missing data")}
+
+
+def missing_groups_note(label: str, col: str, rows: list[int], total: int) -> dict:
+    """The note on rows with no group (``rows``: the first of them, ``total`` in all)."""
+    return {"code": "missing_groups", "message": (
+        f"{total} {label}(s) have no value in the group column '{col}' "
+        f"({_rows_text(label, rows, total=total)}); they cannot be placed in a group")}
 
 
 def item_answers_error(col: str, count: int, lowest: float, highest: float, rows: int, source: str,
@@ -530,21 +543,30 @@ def _labels(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
 
 def _check_ids(ids: pd.Series, table: LoadedTable, col: str, notes: list[dict]) -> None:
     labels, none = _labels(ids)
-    missing = int(none.sum())
-    if missing:
-        notes.append({"code": "missing_ids", "message": (
-            f"{missing} {table.row_label}(s) have no value in the id column '{col}'")})
     codes, uniques = pd.factorize(labels[~none])  # in order of first appearance
     counts = np.bincount(codes, minlength=len(uniques))
-    repeated = [uniques[k] for k in np.flatnonzero(counts > 1)]
+    repeated = np.flatnonzero(counts > 1)
+    first = uniques[repeated[0]] if len(repeated) else None
+    where = [int(r) for r in np.asarray(table.row_numbers)[np.equal(labels, first)]] if len(repeated) else []
+    notes += id_notes(table.row_label, col, int(none.sum()), len(repeated), int(counts[repeated].sum()),
+                      first, where)
+
+
+def id_notes(label: str, col: str, missing: int, repeated: int, repeated_rows: int, first: Any,
+             where: list[int]) -> list[dict]:
+    """The notes on the id column: ``missing`` rows without an id; ``repeated`` id values given
+    more than once, in ``repeated_rows`` rows in all, the first of them (in order of first
+    appearance) ``first`` (its label), given in rows ``where``."""
+    notes = []
+    if missing:
+        notes.append({"code": "missing_ids", "message": (
+            f"{missing} {label}(s) have no value in the id column '{col}'")})
     if repeated:
-        first = repeated[0]
-        where = [int(r) for r in np.asarray(table.row_numbers)[np.equal(labels, first)]]
-        n_rows = int(counts[counts > 1].sum())
         notes.append({"code": "duplicate_ids", "message": (
-            f"{len(repeated)} id value(s) in column '{col}' appear more than once ({n_rows} "
-            f"{table.row_label}s in all; for example {_show(first)} in "
-            f"{_rows_text(table.row_label, where)}); check for respondents entered twice")})
+            f"{repeated} id value(s) in column '{col}' appear more than once ({repeated_rows} "
+            f"{label}s in all; for example {_show(first)} in "
+            f"{_rows_text(label, where)}); check for respondents entered twice")})
+    return notes
 
 
 def numeric_columns(table: LoadedTable) -> list[str]:

@@ -4,15 +4,19 @@ accumulated, and the measurement model fitted from them by ML (listwise) and by 
 it, in its own process, the floor: pandas reading the same file in chunks of 1,000,000 rows
 and forming the covariance matrix (reading it whole would hold 10,000,000 x 62 numbers).
 
-Each measurement runs in a fresh process, so its peak memory (VmHWM, as scale.py reads it) is
-its own. Prints one JSON line per measurement; docs/performance.md "Beyond memory" records
+Beside them, the file read once into the PreparedData the later stages read
+(samesource.input.streamed.prepare_streamed: answers one byte per cell, row numbers, ids,
+groups), with what it holds. Each measurement runs in a fresh process, so its peak memory
+(VmHWM, as scale.py reads it) is its own. Prints one JSON line per measurement; docs/performance.md "Beyond memory" records
 the figures.
 
-    python tests/benchmarks/beyond_memory.py [--rows 10000000] [--path FILE --design FILE]
+    python tests/benchmarks/beyond_memory.py [--rows 10000000] [--ids] [--only prepared]
+                                             [--path FILE --design FILE] [--write FOLDER]
 
 Without --path it writes the file (the benchmarks' 60-item survey of tests/benchmarks/
 workload.py, 1,000,000 rows per seed, 1% of six items' cells blank) to a temporary folder and
-deletes it afterwards.
+deletes it afterwards; with --ids the file has an id and a team column first; --write FOLDER
+only writes the file (make it once, then measure with --path).
 """
 
 from __future__ import annotations
@@ -37,12 +41,14 @@ PIECE = 1_000_000
 CONSTRUCTS = [f"c{i}" for i in range(10)] + ["mark", "meth"]
 
 
-def write_survey(rows: int, folder: str) -> tuple[str, str]:
+def write_survey(rows: int, folder: str, *, ids: bool = False) -> tuple[str, str]:
     """The survey file and its design file, a million rows at a time: 12 constructs of 5
     items on a 5-point scale (the constructs of workload.py's 60-item survey), each item
     round(3 + 0.9 factor + 0.8 noise) clipped to 1..5, factors correlated .3; 1% of the cells
     of six items blank (MCAR). The bytes are formed with numpy (a survey simulated and written
-    by pandas took minutes per million rows on the loaded machine)."""
+    by pandas took minutes per million rows on the loaded machine). With ``ids``, two columns
+    come first: a respondent id (10000000 + the row's position: eight digits, unique) and a
+    team ("T000" to "T199", a survey's group column), named in the design."""
     import numpy as np
 
     items = [f"{c}_{k}" for c in CONSTRUCTS for k in range(1, 6)]
@@ -51,10 +57,15 @@ def write_survey(rows: int, folder: str) -> tuple[str, str]:
               "response_scale": {"min": 1, "max": 5}}
     design["constructs"]["mark"]["role"] = "marker"
     design["constructs"]["meth"]["role"] = "method"
-    path, design_path = os.path.join(folder, f"survey_{rows}.csv"), os.path.join(folder, "design.json")
+    lead = ["resp_id", "team"] if ids else []
+    if ids:
+        design.update(id_column="resp_id", group_column="team")
+    tag = "_ids" if ids else ""
+    path = os.path.join(folder, f"survey_{rows}{tag}.csv")
+    design_path = os.path.join(folder, f"design{tag}.json")
     Path(design_path).write_text(json.dumps(design), encoding="utf-8")
     with open(path, "wb") as fh:
-        fh.write((",".join(items) + "\n").encode("ascii"))
+        fh.write((",".join(lead + items) + "\n").encode("ascii"))
         for k in range(-(-rows // PIECE)):
             n = min(PIECE, rows - k * PIECE)
             rng = np.random.default_rng(k)
@@ -66,8 +77,22 @@ def write_survey(rows: int, folder: str) -> tuple[str, str]:
             buf[:, -1] = 10
             keep = np.ones((n, 120), dtype=bool)
             keep[:, 0:60:10] = rng.random((n, 6)) >= 0.01   # items 1, 6, ..., 26: 1% blank
+            if ids:  # "10000123,T042," before the answers: fixed widths, so formed as bytes too
+                front = np.empty((n, 14), dtype=np.uint8)
+                front[:, :8] = _digits(10_000_000 + k * PIECE + np.arange(n), 8)
+                front[:, 8], front[:, 9], front[:, 13] = 44, ord("T"), 44
+                front[:, 10:13] = _digits(rng.integers(0, 200, n), 3)
+                buf, keep = np.hstack([front, buf]), np.hstack([np.ones((n, 14), dtype=bool), keep])
             fh.write(buf[keep].tobytes())
     return path, design_path
+
+
+def _digits(values, width: int):
+    """ASCII digits of non-negative integers below 10**width, zero-padded (rows x width)."""
+    import numpy as np
+
+    powers = 10 ** np.arange(width - 1, -1, -1, dtype=np.int64)
+    return (48 + (values[:, None] // powers) % 10).astype(np.uint8)
 
 
 def child_streamed(path: str, design_path: str) -> dict:
@@ -90,6 +115,26 @@ def child_streamed(path: str, design_path: str) -> dict:
             "read_wall": read[0], "read_cpu": read[1], "ml_wall": t2 - t1, "ml_cpu": c2 - c1,
             "fiml_wall": t3 - t2, "fiml_cpu": c3 - c2, "ml_status": ml.status, "fiml_status": fiml.status,
             "fiml_chi2": fiml.chi2, "peak_mb": _peak_mb(), "load": os.getloadavg()}
+
+
+def child_prepared(path: str, design_path: str) -> dict:
+    """The file read once into the PreparedData the later stages read (prepare_streamed): what
+    it holds (bytes of the answers' codes, row numbers, ids, groups) beside the process's peak."""
+    from samesource.input.design import parse_design
+    from samesource.input.streamed import prepare_streamed
+
+    design = parse_design(json.loads(Path(design_path).read_text(encoding="utf-8")))
+    t0, c0 = time.perf_counter(), time.process_time()
+    got = prepare_streamed(path, design)
+    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
+    rows = got.rows
+    held = {"codes_mb": rows.codes.nbytes / 1e6, "row_numbers_mb": rows.labels.nbytes / 1e6,
+            "ids_mb": 0 if got.ids is None else got.ids.memory_usage(index=False, deep=True) / 1e6,
+            "groups_mb": 0 if got.groups is None else got.groups.memory_usage(index=False, deep=True) / 1e6}
+    return {"rows": got.n_rows, "items": len(rows.names), "prepared_wall": wall, "prepared_cpu": cpu,
+            **held, "warnings": [w["code"] for w in got.warnings],
+            "ids_dtype": None if got.ids is None else str(got.ids.dtype),
+            "complete_rows": got.sums.listwise.n, "peak_mb": _peak_mb(), "load": os.getloadavg()}
 
 
 def child_floor(path: str, design_path: str) -> dict:
@@ -122,12 +167,21 @@ def main() -> None:
     ap.add_argument("--rows", type=int, default=10_000_000)
     ap.add_argument("--path")
     ap.add_argument("--design")
+    ap.add_argument("--ids", action="store_true", help="the file with an id and a team column (write_survey)")
+    ap.add_argument("--write", metavar="FOLDER", help="only write the file (and its design) into FOLDER")
+    ap.add_argument("--only", choices=["streamed", "prepared"],
+                    help="beside the floor, only this measurement (default: both)")
     args = ap.parse_args()
+    if args.write:
+        print(json.dumps(dict(zip(("path", "design"), write_survey(args.rows, args.write, ids=args.ids), strict=True))))
+        return
     with tempfile.TemporaryDirectory() as folder:
-        path, design = (args.path, args.design) if args.path else write_survey(args.rows, folder)
+        path, design = (args.path, args.design) if args.path else write_survey(args.rows, folder, ids=args.ids)
         print(json.dumps({"file_mb": os.path.getsize(path) / 1e6, **run_child("child_floor", path, design)}),
               flush=True)
-        print(json.dumps(run_child("child_streamed", path, design)), flush=True)
+        for kind in ("streamed", "prepared"):
+            if args.only in (None, kind):
+                print(json.dumps(run_child(f"child_{kind}", path, design)), flush=True)
 
 
 if __name__ == "__main__":
