@@ -244,3 +244,98 @@ def test_group_variances_give_rwg_and_group_means_pandas(kind):
     for r in table:
         assert r["n"] == sizes[r["group"]]
         assert r["A"] == pytest.approx(means.loc[r["group"], "A"], rel=1e-12)
+
+
+# --- the stages on the sample survey: FrameRows and CodedRows of its answers, and the DataFrame
+# computations the stages made before they read rows a block at a time ---------------------
+
+def _sample(missing):
+    import dataclasses
+    import json
+    from pathlib import Path
+
+    from samesource.input.loading import load_table
+    from samesource.input.prepare import prepare
+
+    root = Path(__file__).resolve().parents[1] / "sample_surveys"
+    design = parse_design(json.loads((root / "staff_survey_design.json").read_text(encoding="utf-8")))
+    prepared = prepare(load_table(str(root / "staff_survey.csv")), design)
+    items = prepared.items
+    coded = dataclasses.replace(prepared, item_rows=CodedRows.encode(
+        items.to_numpy(), list(items.columns), items.index.to_numpy(), prepared.scale_min))
+    opts = AnalysisOptions(missing=missing)
+    return design, opts, [(p, plan_missing(p, opts)) for p in (prepared, coded)]
+
+
+def _close(a, b, path=""):
+    """Equal nested results: numbers within 1e-10 relative (sums in another order)."""
+    if isinstance(a, dict):
+        assert set(a) == set(b), path
+        for k in a:
+            _close(a[k], b[k], f"{path}/{k}")
+    elif isinstance(a, list | tuple):
+        assert len(a) == len(b), path
+        for i, (x, y) in enumerate(zip(a, b, strict=True)):
+            _close(x, y, f"{path}/{i}")
+    elif isinstance(a, float) and isinstance(b, float):
+        assert (np.isnan(a) and np.isnan(b)) or a == pytest.approx(b, rel=1e-10, abs=1e-12), path
+    else:
+        assert a == b, path
+
+
+@pytest.mark.parametrize("missing", ["listwise", "fiml"])
+def test_method_checks_from_rows_equal_the_dataframe_computations(missing):
+    from samesource.input.missing import moments_corr
+    from samesource.method_checks.assumptions import items_continuous
+    from samesource.method_checks.collinearity import full_collinearity_vif, vif_from_corr
+    from samesource.method_checks.harman import harman_efa, harman_from_corr
+    from samesource.method_checks.method_variance import (
+        _score_sums,
+        collinearity_section,
+        marker_section,
+    )
+
+    design, _, runs = _sample(missing)
+    (_, plan), (_, coded) = runs
+    frame = plan.frame
+    subst = [it for c in design.substantive for it in c.items]
+    old = harman_efa(frame[subst].dropna())
+    for p in (plan, coded):
+        new = harman_from_corr(moments_corr(p.complete_moments(subst).cov))
+        np.testing.assert_allclose(new.eigenvalues, old.eigenvalues, atol=1e-12)
+    names = [c.name for c in design.substantive]
+    old_vif = full_collinearity_vif(scale_scores(frame, design, names))
+    for p in (plan, coded):
+        new_vif = vif_from_corr(moments_corr(_score_sums(design, p, names).cross), names)
+        _close(new_vif, old_vif)
+    _close(collinearity_section(design, coded), collinearity_section(design, plan))
+    if design.marker is not None:
+        _close(marker_section(design, coded), marker_section(design, plan))
+    a, b = items_continuous(plan.rows, design), items_continuous(coded.rows, design)
+    assert a == b == items_continuous(frame, design)
+
+
+@pytest.mark.parametrize("missing", ["listwise", "fiml"])
+def test_reliability_and_teams_equal_on_frame_and_coded_rows(missing):
+    from samesource.results import FitCache
+    from samesource.statistics.reliability import cronbach_alpha, item_statistics
+    from samesource.statistics.reliability_stage import construct_reliability
+    from samesource.statistics.teams_stage import teams_section
+
+    design, opts, runs = _sample(missing)
+    (prepared, plan), (coded_prepared, coded) = runs
+    rel = [construct_reliability(design, p, opts, FitCache()) for p in (plan, coded)]
+    for c in design.constructs.values():
+        a, b = rel[0].scales[c.name], rel[1].scales[c.name]
+        old_alpha = cronbach_alpha(plan.frame[list(c.items)], confidence=opts.confidence)   # pandas' dropna, numpy's cov
+        old_stats = item_statistics(plan.frame[list(c.items)])
+        for r in (a, b):
+            assert r.n == old_alpha.n and r.alpha == pytest.approx(old_alpha.alpha, rel=1e-12)
+            for it in c.items:
+                assert r.item_stats[it].item_rest_r == pytest.approx(old_stats.loc[it, "item_rest_r"], rel=1e-10)
+                assert r.item_stats[it].sd == pytest.approx(old_stats.loc[it, "sd"], rel=1e-12)
+        assert a.omega == pytest.approx(b.omega, rel=1e-8) if a.omega is not None else b.omega is None
+    if design.group_column:
+        t = [teams_section(design, p, pl, opts) for p, pl in ((prepared, plan), (coded_prepared, coded))]
+        from samesource.results import thaw
+        _close(thaw(t[1].section), thaw(t[0].section))
