@@ -17,6 +17,7 @@ import pandas as pd
 from scipy import stats
 
 from samesource.input.design import Design
+from samesource.input.rows import FrameRows, ItemRows
 from samesource.method_checks.verdict import adjusted_tests
 
 STATUSES = ("holds", "doubtful", "fails", "untestable")
@@ -253,31 +254,77 @@ def method_orthogonal(design: Design) -> Assumption:
 
 # --- items_continuous -----------------------------------------------------------------
 
-def distinct_count(x: np.ndarray) -> int:
-    """How many distinct values ``x`` (no NaN) holds: ``len(np.unique(x))``, counted without a
-    sort where the values are whole numbers in a modest range (answer codes), by one bincount."""
+def distinct_values(x: np.ndarray) -> np.ndarray:
+    """The distinct values of ``x`` (no NaN), sorted: ``np.unique(x)``, found without a sort
+    where the values are whole numbers in a modest range (answer codes), by one bincount."""
     if x.size == 0:
-        return 0
+        return x[:0]
     lo, hi = float(x.min()), float(x.max())
     if hi - lo < 1e6 and np.array_equal(x, np.floor(x)):
-        return int(np.count_nonzero(np.bincount((x - lo).astype(np.int64))))
-    return int(len(np.unique(x)))
+        return lo + np.flatnonzero(np.bincount((x - lo).astype(np.int64))).astype(float)
+    return np.unique(x)
 
 
-def item_distribution(frame: pd.DataFrame, items: list[str]) -> pd.DataFrame:
-    """Per item: answer categories used, skewness and excess kurtosis (scipy.stats, bias-corrected)."""
-    rows = []
-    for it in items:
-        x = pd.to_numeric(frame[it], errors="coerce").dropna().to_numpy(dtype=float)
-        rows.append({"item": it, "categories": distinct_count(x),
-                     "skew": float(stats.skew(x, bias=False)) if len(x) > 2 else float("nan"),
-                     "kurtosis": float(stats.kurtosis(x, bias=False)) if len(x) > 3 else float("nan")})
-    return pd.DataFrame(rows).set_index("item")
+def distinct_count(x: np.ndarray) -> int:
+    """How many distinct values ``x`` (no NaN) holds: ``len(np.unique(x))`` (see
+    :func:`distinct_values`)."""
+    return int(len(distinct_values(x)))
 
 
-def items_continuous(frame: pd.DataFrame, design: Design) -> Assumption:
+def item_distribution(rows: ItemRows | pd.DataFrame, items: list[str]) -> pd.DataFrame:
+    """Per item: answer categories used, skewness and excess kurtosis (as scipy.stats gives
+    them, bias-corrected), a block of rows at a time: each item's distinct answers, and the
+    count and power sums (orders 1 to 4) of its answers less a shift (the item's mean in the
+    first block, so that no digits are lost to a large mean)."""
+    rows = rows if isinstance(rows, ItemRows) else FrameRows(rows[items].apply(pd.to_numeric, errors="coerce"))
+    k = len(items)
+    seen: list[np.ndarray] = [np.empty(0)] * k
+    n = np.zeros(k)
+    sums = np.zeros((4, k))
+    shift = None
+    for _, X in rows.blocks(items):
+        answered = ~np.isnan(X)
+        if shift is None:
+            count = answered.sum(axis=0)
+            shift = np.where(count > 0, np.where(answered, X, 0.0).sum(axis=0) / np.maximum(count, 1), 0.0)
+        for j in range(k):
+            seen[j] = np.union1d(seen[j], distinct_values(X[answered[:, j], j]))
+        d = np.where(answered, X - shift, 0.0)
+        n += answered.sum(axis=0)
+        power = d.copy()
+        for order in range(4):
+            sums[order] += power.sum(axis=0)
+            if order < 3:
+                power *= d
+    shift = np.zeros(k) if shift is None else shift
+    out = [{"item": it, "categories": len(seen[j]), **_skew_kurtosis(n[j], sums[:, j], shift[j])}
+           for j, it in enumerate(items)]
+    return pd.DataFrame(out, columns=["item", "categories", "skew", "kurtosis"]).set_index("item")
+
+
+def _skew_kurtosis(n: float, s: np.ndarray, shift: float) -> dict[str, float]:
+    """scipy.stats' skew and kurtosis (bias=False, Fisher's excess kurtosis) from the count and
+    the power sums of the answers less ``shift``: the central moments m2, m3, m4 by the
+    binomial expansion around the mean, then the sample-size corrections as scipy applies them;
+    NaN for a constant item (scipy's rule: m2 at most (eps x mean)^2) or too few answers."""
+    nan = float("nan")
+    if n < 1:
+        return {"skew": nan, "kurtosis": nan}
+    mu = s[0] / n
+    e2, e3, e4 = s[1] / n, s[2] / n, s[3] / n
+    m2 = e2 - mu * mu
+    m3 = e3 - 3 * mu * e2 + 2 * mu ** 3
+    m4 = e4 - 4 * mu * e3 + 6 * mu * mu * e2 - 3 * mu ** 4
+    if m2 <= (np.finfo(float).eps * (shift + mu)) ** 2:
+        return {"skew": nan, "kurtosis": nan}
+    skew = float(np.sqrt((n - 1) * n) / (n - 2) * m3 / m2 ** 1.5) if n > 2 else nan
+    kurt = float(((n * n - 1) * m4 / m2 ** 2 - 3 * (n - 1) ** 2) / ((n - 2) * (n - 3))) if n > 3 else nan
+    return {"skew": skew, "kurtosis": kurt}
+
+
+def items_continuous(rows: ItemRows | pd.DataFrame, design: Design) -> Assumption:
     items = [it for c in design.constructs.values() for it in c.items]
-    d = item_distribution(frame, items)
+    d = item_distribution(rows, items)
     few = d.index[d["categories"] < MIN_CATEGORIES].tolist()
     very_few = d.index[d["categories"] <= 3].tolist()
     severe = d.index[(d["skew"].abs() > SEVERE_SKEW) | (d["kurtosis"] > SEVERE_KURTOSIS)].tolist()
@@ -435,15 +482,16 @@ def no_shared_method(verdict: dict) -> Assumption:
         source="Podsakoff, MacKenzie, Lee & Podsakoff (2003) on the inflation of same-source associations")
 
 
-def method_assumptions(design: Design, frame: pd.DataFrame, mv: dict) -> list[Assumption]:
-    """Every check that can be made before the paths are estimated."""
+def method_assumptions(design: Design, rows: ItemRows | pd.DataFrame, mv: dict) -> list[Assumption]:
+    """Every check that can be made before the paths are estimated (``rows``: the analysis
+    rows' answers)."""
     out: list[Assumption] = []
     mc = marker_carries_method(design, mv)
     if mc is not None:
         out.append(mc)
     out.append(method_loadings(mv))
     out.append(method_orthogonal(design))
-    out.append(items_continuous(frame, design))
+    out.append(items_continuous(rows, design))
     out.append(checks_agree(mv, mc.status if mc else None))
     cm = mv.get("cfa_marker")
     if cm and cm.get("assumption"):

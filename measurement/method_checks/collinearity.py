@@ -13,6 +13,12 @@ def full_collinearity_vif(scores: pd.DataFrame) -> dict[str, float]:
 
     Computed from the inverse of the score correlation matrix, whose diagonal holds exactly
     these VIFs (the OLS R^2 of each score on the rest)."""
-    corr = np.corrcoef(scores.dropna().to_numpy(dtype=float), rowvar=False)
+    return vif_from_corr(np.corrcoef(scores.dropna().to_numpy(dtype=float), rowvar=False),
+                         list(scores.columns))
+
+
+def vif_from_corr(corr: np.ndarray, names: list) -> dict[str, float]:
+    """:func:`full_collinearity_vif` from the scores' correlation matrix (rows with every
+    score), formed elsewhere."""
     inv = np.linalg.pinv(corr)
-    return {c: float(inv[i, i]) for i, c in enumerate(scores.columns)}
+    return {c: float(inv[i, i]) for i, c in enumerate(names)}

@@ -25,8 +25,12 @@ def harman_efa(items: pd.DataFrame) -> HarmanEFA:
     """Unrotated principal-components solution of the item correlation matrix: the share of
     total item variance on the first factor (first eigenvalue / number of items) and the
     number of eigenvalues above 1 (Kaiser's rule). Rows with a missing item are dropped."""
-    x = items.dropna().to_numpy(dtype=float)
-    corr = np.corrcoef(x, rowvar=False)
+    return harman_from_corr(np.corrcoef(items.dropna().to_numpy(dtype=float), rowvar=False))
+
+
+def harman_from_corr(corr: np.ndarray) -> HarmanEFA:
+    """:func:`harman_efa` from the items' correlation matrix (of the complete rows), formed
+    elsewhere: the stage takes it from moments summed a block of rows at a time."""
     ev = np.sort(np.linalg.eigvalsh(corr))[::-1]
     return HarmanEFA(eigenvalues=[float(v) for v in ev], first_factor_share=float(ev[0] / len(ev)),
                      factors_eigen_gt_1=int(np.sum(ev > 1.0)))

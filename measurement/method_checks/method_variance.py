@@ -25,17 +25,18 @@ from samesource.engine.builders import (
     tau_equivalent_model,
     without_method_factor,
 )
+from samesource.engine.chunked_moments import MomentSums
 from samesource.engine.comparison import chi2_difference
 from samesource.engine.fitting import FitResult, delta_method, fit_model
 from samesource.engine.modelspec import ModelSpec
 from samesource.input.design import Design
-from samesource.input.missing import MissingPlan
-from samesource.method_checks.collinearity import KOCK_THRESHOLD, full_collinearity_vif
-from samesource.method_checks.harman import SHARE_THRESHOLD, harman_efa
+from samesource.input.missing import MissingPlan, moments_corr
+from samesource.method_checks.collinearity import KOCK_THRESHOLD, vif_from_corr
+from samesource.method_checks.harman import SHARE_THRESHOLD, harman_from_corr
 from samesource.method_checks.marker import marker_adjustment
 from samesource.method_checks.verdict import verdict
 from samesource.options import AnalysisOptions
-from samesource.statistics.scores import scale_scores
+from samesource.statistics.scores import score_moments
 
 ALPHA = 0.05  # significance level of every test here, but for the two below
 # The more flexible method factors must clear a stricter bar: free loadings (one parameter per
@@ -127,11 +128,18 @@ def reliability_split(fit: FitResult, method_latent: str, constructs: dict[str, 
     return out
 
 
+def _score_sums(design: Design, plan: MissingPlan, names: list[str]) -> MomentSums:
+    """The scale scores' sums over the rows with every score: from the items' moments when
+    the rows are complete, else a block of rows at a time."""
+    items = [it for n in names for it in design.constructs[n].items]
+    return score_moments(plan.rows, design, names, plan.moments(items))
+
+
 # --- Harman -----------------------------------------------------------------------------
 
 def harman_section(design: Design, plan: MissingPlan, fitter: Fitter) -> dict:
     items = [it for c in design.substantive for it in c.items]
-    efa = harman_efa(plan.complete(items))
+    efa = harman_from_corr(moments_corr(plan.complete_moments(items).cov))
     one = fitter(one_factor_model(items))
     mm = fitter(measurement_model(design, design.substantive).with_params(
         measurement_model(design, design.substantive).params, name="measurement_model:substantive"))
@@ -160,9 +168,9 @@ def marker_section(design: Design, plan: MissingPlan) -> dict | None:
     if marker is None:
         return None
     names = [c.name for c in design.substantive] + [marker.name]
-    scores = scale_scores(plan.frame, design, names).dropna()
-    n = len(scores)
-    corr = np.corrcoef(scores.to_numpy(dtype=float), rowvar=False)
+    scores = _score_sums(design, plan, names)
+    n = scores.n
+    corr = moments_corr(scores.cross)
     adj = marker_adjustment(corr, names, marker.name, n)
     r_m = adj["r_m"]
     t_m = r_m * math.sqrt((n - 2) / max(1 - r_m ** 2, 1e-12))
@@ -524,7 +532,7 @@ def collinearity_section(design: Design, plan: MissingPlan) -> dict:
     if len(names) < 2:
         return {"values": {}, "threshold": KOCK_THRESHOLD, "flag": False,
                 "note": "needs at least two substantive constructs"}
-    vif = full_collinearity_vif(scale_scores(plan.frame, design, names))
+    vif = vif_from_corr(moments_corr(_score_sums(design, plan, names).cross), names)
     return {"values": vif, "threshold": KOCK_THRESHOLD,
             "flag": bool(any(v > KOCK_THRESHOLD for v in vif.values())),
             "rule": f"flag when any construct score's full-collinearity VIF exceeds {KOCK_THRESHOLD} (Kock 2015)"}
@@ -549,8 +557,7 @@ def method_variance_verdict(design: Design, plan: MissingPlan, mv: dict) -> list
     weighed with them (written into ``mv["verdict"]``). Returns the assumptions."""
     from samesource.method_checks.assumptions import method_assumptions, no_shared_method
 
-    items = [it for c in design.constructs.values() for it in c.items]
-    assumptions = method_assumptions(design, plan.frame[items], mv)
+    assumptions = method_assumptions(design, plan.rows, mv)
     mv["verdict"] = verdict(mv, assumptions)
     assumptions.append(no_shared_method(mv["verdict"]))
     return assumptions

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from types import MappingProxyType
 
+import numpy as np
+
 from samesource.engine.builders import single_factor_model
 from samesource.engine.fitting import fit_model
 from samesource.input.design import MIN_ITEMS_OMEGA, Design
@@ -18,8 +20,6 @@ from samesource.results import (
 )
 from samesource.statistics.reliability import (
     alpha_from_moments,
-    cronbach_alpha,
-    item_statistics,
     item_statistics_from_moments,
     omega_total,
 )
@@ -31,16 +31,20 @@ def construct_reliability(design: Design, plan: MissingPlan, opts: AnalysisOptio
     scales: dict[str, ScaleReliability] = {}
     said: list[Notice] = []
     for c in design.constructs.values():
-        moments = plan.moments(c.items)
-        if moments is not None:  # complete rows: from the moments formed once, no pass over the rows
+        # the rows complete on the scale's items: a block of the moments formed once when every
+        # row is complete, else their moments summed a block of rows at a time
+        moments = plan.complete_moments(c.items)
+        if moments is not None:
             n = moments.n
             cov = moments.cov * (n / (n - 1))
             alpha = alpha_from_moments(cov, n, len(c.items), confidence=opts.confidence)
             stats = item_statistics_from_moments(c.items, moments.mean, cov, n)
-        else:
-            complete = plan.complete(c.items)
-            alpha = cronbach_alpha(complete, confidence=opts.confidence)
-            stats = item_statistics(complete)
+        else:  # fewer than two complete rows: alpha and item statistics say why they are missing
+            few = plan.complete(c.items)
+            n = len(few)
+            mean = np.array([few.column(it).mean() for it in c.items]) if n else np.full(len(c.items), np.nan)
+            alpha = alpha_from_moments(None, n, len(c.items), confidence=opts.confidence)
+            stats = item_statistics_from_moments(c.items, mean, None, n)
         omega = None
         if len(c.items) < MIN_ITEMS_OMEGA:
             said.append(Notice("omega_needs_three_items",

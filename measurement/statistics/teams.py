@@ -70,13 +70,44 @@ def rwg_j(items: np.ndarray, n_options: int) -> float | None:
     x = x[~np.isnan(x).any(axis=1)]
     if x.shape[0] < 2:
         return None
-    J = x.shape[1]
-    s2 = float(np.mean(np.var(x, axis=0, ddof=1)))
+    return rwg_from_variance(float(np.mean(np.var(x, axis=0, ddof=1))), x.shape[1], n_options)
+
+
+def rwg_from_variance(s2: float, J: int, n_options: int) -> float:
+    """:func:`rwg_j` from s2, the mean item variance (divisor n - 1) of a group's complete rows."""
     e = (n_options ** 2 - 1) / 12.0
     q = s2 / e
     if q >= 1:
         return 0.0
     return float(J * (1 - q) / (J * (1 - q) + q))
+
+
+def group_item_variances(rows, items: list[str], codes: np.ndarray, n_groups: int) -> tuple[np.ndarray, np.ndarray]:
+    """Per group (``codes``: each row's group number, -1 for none): the count of rows complete
+    on ``items`` and the mean over the items of their variance (divisor n - 1) on those rows,
+    summed a block of rows at a time (``rows``: ItemRows), each group's answers shifted by the
+    item's overall first-block mean so that no digits are lost to a large mean."""
+    k = len(items)
+    n = np.zeros(n_groups)
+    s = np.zeros((n_groups, k))
+    ss = np.zeros((n_groups, k))
+    shift = None
+    for start, X in rows.blocks(items):
+        g = codes[start:start + len(X)]
+        ok = (g >= 0) & ~np.isnan(X).any(axis=1)
+        X, g = X[ok], g[ok]
+        if not len(g):
+            continue
+        if shift is None:
+            shift = X.mean(axis=0)
+        D = X - shift
+        n += np.bincount(g, minlength=n_groups)
+        for j in range(k):
+            s[:, j] += np.bincount(g, weights=D[:, j], minlength=n_groups)
+            ss[:, j] += np.bincount(g, weights=D[:, j] * D[:, j], minlength=n_groups)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        var = (ss - s * s / n[:, None]) / (n[:, None] - 1)
+    return n, var.mean(axis=1)
 
 
 # --- Within and between ------------------------------------------------------------------
@@ -251,11 +282,20 @@ def same_source_team_estimate(scores: np.ndarray, groups: np.ndarray) -> list[fl
     return [float(v) for v in standardized_coefficients(rc, 0, list(range(1, scores.shape[1])))]
 
 
-def group_table(scores: pd.DataFrame, groups: pd.Series, min_size: int) -> tuple[list[dict], int]:
-    """Team means for teams of at least ``min_size`` respondents; and how many were withheld."""
-    df = scores.assign(_g=groups.values)
-    sizes = df.groupby("_g").size()
-    means = df.groupby("_g").mean()
-    rows = [{"group": str(gname), "n": int(sizes[gname]), **{c: float(means.loc[gname, c]) for c in scores.columns}}
-            for gname in sizes.index if sizes[gname] >= min_size]
-    return rows, int((sizes < min_size).sum())
+def group_table(scores: np.ndarray, names: list[str], codes: np.ndarray, labels: np.ndarray,
+                min_size: int) -> tuple[list[dict], int]:
+    """Team means for teams of at least ``min_size`` respondents; and how many were withheld.
+    ``codes``: each row's group number into ``labels`` (the group names, in order); a team's
+    mean of a score is over its members who have that score."""
+    G = len(labels)
+    sizes = np.bincount(codes, minlength=G)
+    means = np.empty((G, len(names)))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for j in range(len(names)):
+            has = ~np.isnan(scores[:, j])
+            means[:, j] = (np.bincount(codes[has], weights=scores[has, j], minlength=G)
+                           / np.bincount(codes[has], minlength=G))
+    present = np.flatnonzero(sizes > 0)
+    rows = [{"group": str(labels[t]), "n": int(sizes[t]), **{c: float(means[t, j]) for j, c in enumerate(names)}}
+            for t in present if sizes[t] >= min_size]
+    return rows, int((sizes[present] < min_size).sum())

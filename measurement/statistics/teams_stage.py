@@ -3,17 +3,19 @@
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 
 from samesource.input.design import Design
 from samesource.input.missing import MissingPlan
 from samesource.input.prepare import PreparedData
 from samesource.options import AnalysisOptions
 from samesource.results import Notice, SectionResult, freeze
-from samesource.statistics.scores import scale_scores
+from samesource.statistics.scores import score_array
 from samesource.statistics.teams import (
+    group_item_variances,
     group_table,
     icc_oneway,
-    rwg_j,
+    rwg_from_variance,
     same_source_team_estimate,
     split_team_estimate,
     within_between,
@@ -35,12 +37,18 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
     if not design.group_column or prepared.groups is None:
         return SectionResult(None)
     said: list[Notice] = []
-    groups = prepared.groups.reindex(plan.frame.index)
-    keep = groups.notna()
-    frame, groups = plan.frame[keep], groups[keep].astype(str)
+    # each analysis row's group as an integer code (-1 for none), looked up once by row label;
+    # codes follow the sorted group names, the order np.unique gives the names themselves
+    cat = pd.Categorical(prepared.groups.to_numpy(dtype=object))
+    at = prepared.groups.index.get_indexer(plan.rows.labels)
+    all_codes = np.where(at >= 0, cat.codes[np.maximum(at, 0)], -1).astype(np.intp)
+    keep = all_codes >= 0
+    codes = all_codes[keep]
+    labels = np.asarray(cat.categories, dtype=object)
     names = [c.name for c in design.substantive]
-    scores = scale_scores(frame, design, names)
-    sizes = groups.value_counts()
+    scores = score_array(plan.rows, design, names)[keep]
+    col = {n: j for j, n in enumerate(names)}
+    sizes = np.bincount(codes, minlength=len(labels))
     min_size = opts.min_group_size
     n_options = int(round(prepared.scale_max - prepared.scale_min)) + 1
     # a second source's constructs have that source's answer range (measurement/input/sources.py)
@@ -49,12 +57,11 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
 
     constructs = {}
     for c in design.substantive:
-        icc = icc_oneway(scores[c.name].to_numpy(), groups.to_numpy())
-        items = frame[list(c.items)]
+        icc = icc_oneway(scores[:, col[c.name]], codes)
         options = source_options.get(c.source, n_options)
-        rwgs = [rwg_j(items[groups == gname].to_numpy(dtype=float), options)
-                for gname in sizes.index if sizes[gname] >= 2]
-        rwgs = [r for r in rwgs if r is not None]
+        complete, s2 = group_item_variances(plan.rows, list(c.items), all_codes, len(labels))
+        rwgs = [rwg_from_variance(float(s2[t]), len(c.items), options)
+                for t in range(len(labels)) if sizes[t] >= 2 and complete[t] >= 2]
         constructs[c.name] = {"icc1": icc.icc1, "icc2": icc.icc2,
                               "rwg_j_median": float(np.median(rwgs)) if rwgs else None,
                               "rwg_j_groups": len(rwgs)}
@@ -62,10 +69,10 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
     paths = []
 
     for p in design.paths:
-        cols = [p.outcome] + list(p.predictors)
-        sub = scores[cols].dropna()
-        gg = groups.loc[sub.index].to_numpy()
-        y, X = sub[p.outcome].to_numpy(), sub[list(p.predictors)].to_numpy()
+        cols = [col[p.outcome]] + [col[x] for x in p.predictors]
+        ok = ~np.isnan(scores[:, cols]).any(axis=1)
+        sub, gg = scores[np.ix_(ok, cols)], codes[ok]
+        y, X = sub[:, 0], sub[:, 1:]
         with np.errstate(all="ignore"):
             wb = within_between(y, X, gg)
         if wb is None:
@@ -73,8 +80,8 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
                                f"Too few teams with two or more respondents to estimate the "
                                f"within- and between-team paths of {p.outcome}."))
             continue
-        split = split_team_estimate(sub.to_numpy(), gg, seed=opts.seed, confidence=opts.confidence)
-        same = same_source_team_estimate(sub.to_numpy(), gg)
+        split = split_team_estimate(sub, gg, seed=opts.seed, confidence=opts.confidence)
+        same = same_source_team_estimate(sub, gg)
         for j, x in enumerate(p.predictors):
             paths.append({
                 "outcome": p.outcome, "predictor": x,
@@ -101,14 +108,14 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
                                "effects, so a single pooled (random-effects) estimate would be biased; "
                                "read the within-team path for individual-level questions."))
 
-    table, withheld = group_table(scores, groups, min_size)
+    table, withheld = group_table(scores, names, codes, labels, min_size)
     if withheld:
         said.append(Notice("small_groups_withheld",
                            f"{withheld} group(s) with fewer than {min_size} respondents are left out "
                            "of every group-level table; their members still count in pooled results."))
     return SectionResult(freeze({
         "group_column": design.group_column,
-        "groups": int(len(sizes)),
+        "groups": int((sizes > 0).sum()),
         "groups_reported": int((sizes >= min_size).sum()),
         "groups_withheld": withheld,
         "min_group_size": min_size,
