@@ -18,10 +18,10 @@ from samesource.engine.chunked_moments import MomentSums
 from samesource.engine.fitting import _single_threaded_blas
 from samesource.engine.patterns import packed_patterns
 from samesource.errors import DesignError
-from samesource.input.rows import FrameRows, ItemRows
+from samesource.input.rows import BLOCK_ROWS, FrameRows, ItemRows
 
 RULE_NAMES = ("longstring", "irv", "mahalanobis", "missing", "out_of_range")
-ROW_BLOCK = 65_536  # rows per block where a measure needs a temporary the size of its rows
+ROW_BLOCK = BLOCK_ROWS  # rows read at a time (ItemRows.blocks)
 
 
 @dataclass(frozen=True)

@@ -3,7 +3,7 @@
 Times ``screen_respondents`` on a 60-item survey (default 1,000,000 rows: workload.survey,
 two items of each construct taken as reverse-keyed) in a fresh process per measurement:
 CPU time (time.process_time) and wall time of the call, the child's peak resident memory
-(VmHWM, which includes the answers themselves) and, in a second run of the call under
+(VmHWM, reset before the call: the call's peak with the answers it reads) and, in a second run of the call under
 tracemalloc, the peak of what the call itself allocated. Cases: ``complete`` (every row
 answers every item) and ``holes`` (0.5% of the cells blank at random, so thousands of
 missing-data patterns).
@@ -21,7 +21,7 @@ How the call is made (``--how``):
 from __future__ import annotations
 
 import argparse
-import json
+import gc
 import subprocess
 import sys
 import time
@@ -32,6 +32,16 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
 sys.path.insert(0, str(HERE))
 ITEMS = 60
+
+
+def _reset_vmhwm() -> None:
+    """Start the peak resident memory afresh (Linux 4.0+: writing 5 to clear_refs), so VmHWM
+    after the call is the call's peak with its inputs, not the survey generator's."""
+    try:
+        with open("/proc/self/clear_refs", "w", encoding="ascii") as f:
+            f.write("5")
+    except OSError:
+        pass
 
 
 def _vmhwm_mb() -> float:
@@ -49,7 +59,7 @@ def _survey(n: int, case: str):
 
     df, design, _ = survey(n, ITEMS)
     names = [it for c in design["constructs"].values() for it in c["items"]]
-    X = df[names].to_numpy(dtype=float)
+    X = np.array(df[names], dtype=float)  # a writable copy
     if case == "holes":
         X[np.random.default_rng(1).random(X.shape) < 0.005] = np.nan
     items = pd.DataFrame(X, columns=names, index=np.arange(2, n + 2))  # the file's row numbers
@@ -82,6 +92,8 @@ def _call(items, order, reversed_items, how: str):
 def child(n: int, case: str, how: str) -> dict:
     items, order, reversed_items = _survey(n, case)
     run = _call(items, order, reversed_items, how)
+    gc.collect()
+    _reset_vmhwm()
     before = _vmhwm_mb()
     c0, w0 = time.process_time(), time.perf_counter()
     res = run()
