@@ -71,7 +71,9 @@ class RowMeasures:
         return 1.0 - self.answered.astype(np.int64) / self.n_items
 
     def mahalanobis_p(self) -> np.ndarray:
-        """The upper-tail chi-square p-value of each row's d2 (NaN where d2 is)."""
+        """The upper-tail chi-square p-value of each row's d2 (NaN where d2 is), degrees of
+        freedom the items it answered. Treating d2 as chi-square assumes multivariate normal
+        answers: a rough guide for ordinal items."""
         return _chi2_sf(self.mahalanobis_d2, self.answered)
 
     def flag(self, rule: str) -> np.ndarray:
@@ -505,7 +507,7 @@ def screen_respondents(
         rows: ItemRows = FrameRows(items)
     elif isinstance(items, ItemRows):
         rows = items
-        index = pd.Index(rows.labels)
+        index = pd.Index(rows.labels, copy=False)  # the labels themselves, not a copy
     else:
         raise TypeError("items must be a pandas DataFrame or ItemRows")
     screened = list(rows.names) if columns is None else [str(c) for c in columns]
