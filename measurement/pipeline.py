@@ -13,7 +13,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import pandas as pd
 
 from samesource import __version__
 from samesource.corrections.paths_stage import paths_section
@@ -95,9 +94,8 @@ def analyze(
     same = dsg.main_part()  # the main file's constructs: the same-source checks look at these
 
     step("screen", 1, total)
-    items = prepared.items if list(prepared.items.columns) == same.items else prepared.items[same.items]
-    screening = screen_respondents(items, scale_min=prepared.scale_min,
-                                   scale_max=prepared.scale_max, raw_items=_raw_answers(prepared, same))
+    screening = screen_respondents(prepared.rows, columns=same.items, scale_min=prepared.scale_min,
+                                   scale_max=prepared.scale_max, **_as_given(prepared, same))
     plan = plan_missing(prepared, opts, flagged=screening.flagged_rows)
     if plan.rows_analyzed < _min_rows(dsg):
         raise DataError(
@@ -203,21 +201,13 @@ def _min_rows(design: Design) -> int:
     return max(len(design.items) + 2, 30)
 
 
-def _raw_answers(prepared: PreparedData, design: Design) -> pd.DataFrame:
-    """The answers as given (reverse keying undone), in the file's column order, for longstring:
-    a column not reverse-keyed is the prepared column itself (no copy; the screen reads a
-    block of rows at a time), a reversed one is undone into a new column."""
-    items = prepared.items
-    lo_hi = prepared.scale_min + prepared.scale_max
-    reverse = {it for c in design.constructs.values() for it in c.reverse}
-    order = [c for c in prepared.table.frame.columns if c in items.columns]
-    cols = {}
-    for it in order:
-        col = items[it].to_numpy(dtype=float)
-        cols[it] = lo_hi - col if it in reverse else col
-    raw = pd.DataFrame(cols, index=items.index, copy=False)
-    raw.columns = pd.Index(order, dtype=object)
-    return raw
+def _as_given(prepared: PreparedData, design: Design) -> dict:
+    """How the screen reads the answers as given, a block of rows at a time: the items in the
+    file's column order, and the reverse-keyed ones it recodes back (longstring and response
+    variability describe the questionnaire as answered)."""
+    names = set(prepared.rows.names)
+    return {"order": [c for c in prepared.table.frame.columns if c in names],
+            "reversed_items": {it for c in design.constructs.values() for it in c.reverse}}
 
 
 def _data_section(table: LoadedTable, prepared: PreparedData, plan: MissingPlan) -> dict:
@@ -250,12 +240,10 @@ def _screening_section(screening, plan: MissingPlan) -> dict:
     ]
     checks = {rule: {"rule": text, "flagged": int(screening.counts.get(rule, 0))}
               for rule, text in screening.rules.items()}
-    per_row = screening.per_row
     summary = {}
     for col in ("longstring", "irv", "mahalanobis_d2", "share_missing"):
-        if col in per_row:
-            s = pd.to_numeric(per_row[col], errors="coerce")
-            summary[col] = {"median": finite_or_none(s.median()), "max": finite_or_none(s.max())}
+        median, most = screening.measures.spread(col)
+        summary[col] = {"median": finite_or_none(median), "max": finite_or_none(most)}
     return {
         "flagged_rows": flagged,
         "n_flagged": len(flagged),

@@ -21,16 +21,26 @@ def row_patterns(observed: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         return pats, np.asarray(inv).reshape(-1)
     if obs.all() or not obs.any():
         return obs[:1].copy(), np.zeros(n, dtype=np.intp)
-    packed = np.packbits(obs, axis=1)  # the first column in the highest bit: keys sort as rows do
-    width = packed.shape[1]
+    # the first column in the highest bit: keys sort as rows do
+    return packed_patterns(np.packbits(obs, axis=1), obs.shape[1])
+
+
+def packed_patterns(packed: np.ndarray, columns: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`row_patterns` of rows already packed (``np.packbits(observed, axis=1)`` of a
+    matrix with ``columns`` columns), so a caller reading rows a block at a time keeps
+    ``columns / 8`` bytes per row rather than the boolean matrix."""
+    n, width = packed.shape
     if width <= 8:
-        wide = np.zeros((n, 8), dtype=np.uint8)
-        wide[:, :width] = packed
+        wide = np.ascontiguousarray(packed)
+        if width < 8:
+            wide = np.zeros((n, 8), dtype=np.uint8)
+            wide[:, :width] = packed
         keys = wide.view(">u8").ravel()
     else:
         keys = np.ascontiguousarray(packed).view(np.dtype((np.void, width))).ravel()
     _, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
-    return obs[first], np.asarray(inverse, dtype=np.intp).reshape(-1)
+    patterns = np.unpackbits(packed[first], axis=1, count=columns).astype(bool)
+    return patterns, np.asarray(inverse, dtype=np.intp).reshape(-1)
 
 
 def rows_by_pattern(inverse: np.ndarray, count: int) -> list[np.ndarray]:

@@ -7,18 +7,21 @@ The rules are common practice, not laws; the result carries them in words for th
 from __future__ import annotations
 
 import math
+from collections.abc import Collection, Iterator, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
-from samesource.engine.fitting import _single_threaded_blas, centred_cross_products
-from samesource.engine.patterns import row_patterns, rows_by_pattern
+from samesource.engine.chunked_moments import MomentSums
+from samesource.engine.fitting import _single_threaded_blas
+from samesource.engine.patterns import packed_patterns
 from samesource.errors import DesignError
+from samesource.input.rows import BLOCK_ROWS, FrameRows, ItemRows
 
 RULE_NAMES = ("longstring", "irv", "mahalanobis", "missing", "out_of_range")
-ROW_BLOCK = 65_536  # rows per block where a measure needs a temporary the size of its rows
+ROW_BLOCK = BLOCK_ROWS  # rows read at a time (ItemRows.blocks)
 
 
 @dataclass(frozen=True)
@@ -42,6 +45,75 @@ class ScreeningRules:
     flag_out_of_range: bool = True
 
 
+@dataclass(frozen=True, eq=False)
+class RowMeasures:
+    """The screen's per-row measures as compact numpy columns, one entry per row in row order
+    (at 10,000,000 rows about 230 MB, where a DataFrame of every measure took 1 GB).
+
+    Counts are the smallest unsigned integers that hold them; ``irv`` and ``mahalanobis_d2``
+    stay float64 (the report gives their median and maximum). ``share_missing`` and
+    ``mahalanobis_p`` are computed from ``answered`` and ``mahalanobis_d2`` when asked for,
+    with the same arithmetic as when they were stored. ``flags`` holds bit ``i`` for rule
+    ``RULE_NAMES[i]``; ``rules`` names the rules in force.
+    """
+
+    index: pd.Index          # each row's label (the caller's row numbers)
+    n_items: int             # items screened (the missing share's denominator)
+    longstring: np.ndarray
+    irv: np.ndarray
+    mahalanobis_d2: np.ndarray
+    answered: np.ndarray     # items answered: the Mahalanobis degrees of freedom
+    n_out_of_range: np.ndarray
+    flags: np.ndarray        # uint8 bit mask over RULE_NAMES
+    rules: tuple[str, ...]
+
+    def share_missing(self) -> np.ndarray:
+        return 1.0 - self.answered.astype(np.int64) / self.n_items
+
+    def mahalanobis_p(self) -> np.ndarray:
+        """The upper-tail chi-square p-value of each row's d2 (NaN where d2 is), degrees of
+        freedom the items it answered. Treating d2 as chi-square assumes multivariate normal
+        answers: a rough guide for ordinal items."""
+        return _chi2_sf(self.mahalanobis_d2, self.answered)
+
+    def flag(self, rule: str) -> np.ndarray:
+        return (self.flags & np.uint8(1 << RULE_NAMES.index(rule))) != 0
+
+    def column(self, name: str) -> np.ndarray:
+        """One column of :attr:`ScreeningResult.per_row` as a numpy array."""
+        if name == "share_missing":
+            return self.share_missing()
+        if name == "mahalanobis_p":
+            return self.mahalanobis_p()
+        if name == "mahalanobis_df":
+            return self.answered.astype(np.int64)
+        if name == "flagged":
+            return self.flags != 0
+        if name.startswith("flag_") and name[5:] in self.rules:
+            return self.flag(name[5:])
+        if name in ("longstring", "n_out_of_range"):
+            return getattr(self, name).astype(np.int64)
+        if name in ("irv", "mahalanobis_d2"):
+            return getattr(self, name)
+        raise KeyError(name)
+
+    def columns(self) -> list[str]:
+        return [*MEASURES, *(f"flag_{r}" for r in self.rules), "flagged"]
+
+    def spread(self, name: str) -> tuple[float, float]:
+        """(median, maximum) of a measure over the rows where it is defined (NaN, NaN where
+        it is defined for none): pandas' ``Series.median()`` and ``max()``, exactly."""
+        v = np.asarray(self.column(name), dtype=float)
+        v = v[~np.isnan(v)]
+        if not v.size:
+            return math.nan, math.nan
+        return float(np.median(v)), float(v.max())
+
+
+MEASURES = ("longstring", "irv", "mahalanobis_d2", "mahalanobis_df", "mahalanobis_p",
+            "share_missing", "n_out_of_range")
+
+
 @dataclass
 class ScreeningResult:
     """Per-row measures and flags.
@@ -50,18 +122,24 @@ class ScreeningResult:
     ``mahalanobis_d2``, ``mahalanobis_df``, ``mahalanobis_p``, ``share_missing``,
     ``n_out_of_range``, one bool column ``flag_<rule>`` per rule and ``flagged`` (any
     flag). ``irv``, ``mahalanobis_d2`` and ``mahalanobis_p`` are NaN where undefined
-    (see :func:`screen_respondents`); callers map NaN to null. ``reasons`` lists the rules
-    each flagged row broke; ``counts`` the rows per rule; ``rules`` each rule in words;
-    ``notes`` any caveat about this data (e.g. a covariance matrix that could not be
-    inverted).
+    (see :func:`screen_respondents`); callers map NaN to null. ``per_row`` is built when
+    asked for, from ``measures`` (:class:`RowMeasures`, compact columns): a caller that
+    needs a summary uses ``measures.spread``. ``reasons`` lists the rules each flagged row
+    broke; ``counts`` the rows per rule; ``rules`` each rule in words; ``notes`` any caveat
+    about this data (e.g. a covariance matrix that could not be inverted).
     """
 
-    per_row: pd.DataFrame
+    measures: RowMeasures = field(repr=False)
     flagged_rows: list
     reasons: dict
     counts: dict[str, int]
     rules: dict[str, str]
     notes: list[str] = field(default_factory=list)
+
+    @property
+    def per_row(self) -> pd.DataFrame:
+        m = self.measures
+        return pd.DataFrame({c: m.column(c) for c in m.columns()}, index=m.index.copy())
 
 
 def _check_numeric(df: pd.DataFrame, what: str) -> None:
@@ -72,9 +150,19 @@ def _check_numeric(df: pd.DataFrame, what: str) -> None:
         raise ValueError(f"{what}: columns must be numeric: {bad}")
 
 
-def _numeric_array(df: pd.DataFrame, what: str) -> np.ndarray:
-    _check_numeric(df, what)
-    return df.to_numpy(dtype=float)
+def _chi2_sf(d2: np.ndarray, df: np.ndarray) -> np.ndarray:
+    """chi2.sf(d2, df) a block of rows at a time (NaN where d2 is NaN or df is 0)."""
+    out = np.full(d2.shape, np.nan)
+    for s in range(0, d2.size, ROW_BLOCK):
+        d, k = d2[s:s + ROW_BLOCK], df[s:s + ROW_BLOCK]
+        ok = ~np.isnan(d)
+        if ok.any():
+            out[s:s + ROW_BLOCK][ok] = stats.chi2.sf(d[ok], k[ok].astype(float))
+    return out
+
+
+def _count_dtype(most: int) -> np.dtype:
+    return np.dtype(np.uint8 if most <= 255 else np.uint16 if most <= 65_535 else np.uint32)
 
 
 def _same_answer(raw: np.ndarray, min_items: int) -> np.ndarray:
@@ -120,7 +208,9 @@ def _intra_individual_variability(x: np.ndarray) -> np.ndarray:
     """Intra-individual response variability: SD of each row's answered items.
 
     The sample SD (divisor m - 1 over the m answered items); NaN when fewer than two items
-    are answered.
+    are answered. Each row's SD is computed the same way whatever the other rows of its block
+    (a complete row by ``np.std``, one with gaps by ``np.nanstd``), so blocks of other sizes
+    give the same numbers.
 
     References
     ----------
@@ -132,27 +222,114 @@ def _intra_individual_variability(x: np.ndarray) -> np.ndarray:
     x = np.asarray(x, dtype=float)
     m = (~np.isnan(x)).sum(axis=1)
     out = np.full(x.shape[0], np.nan)
-    ok = m >= 2
-    if ok.all() and m.min() == x.shape[1]:  # every row complete: the same SDs without NaN handling
-        for s in range(0, x.shape[0], ROW_BLOCK):  # a block at a time: no copy of every row
-            out[s:s + ROW_BLOCK] = np.std(x[s:s + ROW_BLOCK], axis=1, ddof=1)
-    elif ok.any():
-        out[ok] = np.nanstd(x[ok], axis=1, ddof=1)
+    whole = (m == x.shape[1]) & (m >= 2)
+    part = (m >= 2) & ~whole
+    if x.shape[0] and whole.all():  # no copy of the rows when every row is complete
+        out[:] = np.std(x, axis=1, ddof=1)
+    elif whole.any():
+        out[whole] = np.std(x[whole], axis=1, ddof=1)
+    if part.any():
+        out[part] = np.nanstd(x[part], axis=1, ddof=1)
     return out
 
 
-def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[str]]:
-    """Squared Mahalanobis distance of each row and its upper-tail chi-square p-value.
+def _whitener(sub: np.ndarray) -> np.ndarray | None:
+    """The transposed inverse Cholesky factor W of a covariance matrix S (L L' = S, W = L^-T),
+    so a row's d2 is the squared length of (x - m) W (a sum of squares, never below zero);
+    None where S cannot be inverted."""
+    eig = np.linalg.eigvalsh(sub)
+    if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
+        return None
+    L = linalg.cholesky(sub, lower=True)
+    return linalg.solve_triangular(L, np.eye(L.shape[0]), lower=True, check_finite=False).T
+
+
+class _Whiteners:
+    """Each missing-data pattern's whitener (:func:`_whitener` of the covariance on its
+    answered items), factored once and kept until the block with the pattern's last row;
+    beyond ``budget`` bytes kept, a pattern's is factored again where it is needed (the same
+    numbers)."""
+
+    def __init__(self, cov: np.ndarray, patterns: np.ndarray, counts: np.ndarray,
+                 budget: int) -> None:
+        self.cov, self.patterns, self.left = cov, patterns, counts.copy()
+        self.budget, self.kept, self.memo = budget, 0, {}
+
+    def get(self, j: int) -> np.ndarray | None:
+        if j in self.memo:
+            return self.memo[j]
+        pat = self.patterns[j]
+        white = _whitener(self.cov[np.ix_(pat, pat)])
+        size = 0 if white is None else white.nbytes
+        if self.kept + size <= self.budget:
+            self.memo[j] = white
+            self.kept += size
+        return white
+
+    def done(self, j: int, rows: int) -> None:
+        self.left[j] -= rows
+        if self.left[j] == 0 and j in self.memo:
+            white = self.memo.pop(j)
+            self.kept -= 0 if white is None else white.nbytes
+
+
+WHITENERS_BYTES = 256 * 2**20  # whitening matrices kept between blocks (~9,000 of 60 items)
+
+
+class _Answers:
+    """The rows read for the screen, a block at a time: the screened items (C order, so a
+    row's numbers never depend on how it is stored) and the answers as given (reverse keying
+    undone, questionnaire order) or the raw answers handed in as a DataFrame."""
+
+    def __init__(self, rows: ItemRows, columns: list[str], order: list[str] | None,
+                 reversed_items: set[str], lo_hi: float | None, raw_frame: pd.DataFrame | None) -> None:
+        known = set(rows.names)
+        for what, names in (("columns", columns), ("order", order or [])):
+            unknown = [c for c in names if c not in known]
+            if unknown:
+                raise ValueError(f"screening: {what} names {unknown[0]!r}, not an item of these rows")
+        self.rows, self.k, self.raw_frame = rows, len(columns), raw_frame
+        screened = set(columns)
+        self.read = columns + [c for c in (order or []) if c not in screened]
+        pos = {c: i for i, c in enumerate(self.read)}
+        self.raw_idx = None if order is None else np.array([pos[c] for c in order], dtype=np.intp)
+        self.rev = np.array([i for i, c in enumerate(order or []) if c in reversed_items], dtype=np.intp)
+        self.lo_hi = lo_hi
+
+    def _blocks(self):
+        cols = None if self.read == list(self.rows.names) else self.read
+        return self.rows.blocks(cols, size=ROW_BLOCK)
+
+    def items(self) -> Iterator[tuple[int, np.ndarray]]:
+        for s, B in self._blocks():
+            yield s, np.ascontiguousarray(B[:, :self.k])
+
+    def both(self) -> Iterator[tuple[int, np.ndarray, np.ndarray]]:
+        for s, B in self._blocks():
+            X = np.ascontiguousarray(B[:, :self.k])
+            if self.raw_frame is not None:
+                raw = np.ascontiguousarray(self.raw_frame.iloc[s:s + len(B)].to_numpy(dtype=float))
+            elif self.raw_idx is None:
+                raw = X
+            else:
+                raw = np.ascontiguousarray(B[:, self.raw_idx])  # a copy: undone in place
+                if self.rev.size:
+                    raw[:, self.rev] = self.lo_hi - raw[:, self.rev]
+            yield s, X, raw
+
+
+def _mahalanobis_distances(answers: _Answers, n: int, sums: MomentSums, keys: np.ndarray | None,
+                           d2: np.ndarray) -> list[str]:
+    """Squared Mahalanobis distance of each row, into ``d2`` (NaN where undefined); returns
+    the notes. A second pass over the rows, after the first gave the complete rows' sums and,
+    where some rows have gaps, each row's packed pattern of answered items (``keys``).
 
     The mean vector and covariance matrix (divisor n - 1) come from the complete rows. A
     row with missing items is measured on its answered items, with the matching
     sub-vector of the mean and sub-matrix of the covariance; its degrees of freedom are
-    the number of items it answered. The p-value treats d2 as chi-square, which assumes
-    multivariate normal answers: a rough guide for ordinal items.
-
-    Returns ``(d2, df, p, notes)``; d2 and p are NaN for a row with no answers, and for
+    the number of items it answered. d2 is NaN for a row with no answers, and for
     rows whose (sub-)covariance matrix cannot be inverted (fewer complete rows than items,
-    or items that are exact linear combinations of others) — ``notes`` then says so.
+    or items that are exact linear combinations of others) — a note then says so.
 
     References
     ----------
@@ -162,55 +339,50 @@ def _mahalanobis_distances(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
     Meade, A. W., & Craig, S. B. (2012). Identifying careless responses in survey data.
     Psychological Methods, 17(3), 437-455.
     """
-    x = np.asarray(x, dtype=float)
-    n, k = x.shape
-    d2 = np.full(n, np.nan)
-    p = np.full(n, np.nan)
-    answered = ~np.isnan(x)
-    df = answered.sum(axis=1)
-    notes: list[str] = []
-    whole = answered.all(axis=1)
-    complete = x if whole.all() else x[whole]  # no copy of the rows when every row is complete
-    if complete.shape[0] < 2:
-        notes.append(
-            "Mahalanobis distance not computed: fewer than two rows answer every item, so "
-            "there is no covariance matrix to measure against."
-        )
-        return d2, df, p, notes
-    mean, cross = centred_cross_products(complete)
-    cov = cross / (complete.shape[0] - 1)
+    if sums.n < 2:
+        return ["Mahalanobis distance not computed: fewer than two rows answer every item, so "
+                "there is no covariance matrix to measure against."]
+    mean, cov = sums.mean, sums.cross / (sums.n - 1)
+    if keys is None:  # every row complete: one pattern
+        patterns, inverse = np.ones((1, answers.k), dtype=bool), None
+        counts = np.array([n])
+    else:  # rows that share a pattern of answered items share one sub-matrix: factor it once
+        patterns, inverse = packed_patterns(keys, answers.k)
+        counts = np.bincount(inverse, minlength=len(patterns))
+    whiteners = _Whiteners(cov, patterns, counts, WHITENERS_BYTES)
     singular_rows = 0
-    # Rows that share a pattern of answered items share one sub-matrix: factor it once.
-    patterns, inverse = row_patterns(answered)
-    every = complete.shape[0] == n
     with _single_threaded_blas():
-        for pattern, rows in zip(patterns, rows_by_pattern(inverse, len(patterns)), strict=True):
-            if not pattern.any():
-                continue
-            sub = cov[np.ix_(pattern, pattern)]
-            eig = np.linalg.eigvalsh(sub)
-            if not eig[0] > 1e-10 * max(eig[-1], 1e-300):
-                singular_rows += rows.size
-                continue
-            # One solve per pattern: the inverse of the Cholesky factor L of the sub-matrix, so a
-            # row's d2 is the squared length of L^-1 d (a sum of squares, never below zero).
-            L = linalg.cholesky(sub, lower=True)
-            white = linalg.solve_triangular(L, np.eye(L.shape[0]), lower=True, check_finite=False).T
-            for s in range(0, rows.size, ROW_BLOCK):
-                r = rows[s:s + ROW_BLOCK]
-                # every row complete: a slice of the rows, not a copy of them first
-                dev = x[s:s + r.size] - mean if every else x[np.ix_(r, pattern)] - mean[pattern]
-                z = dev @ white
-                d2[r] = np.einsum("ij,ij->i", z, z)
-            p[rows] = stats.chi2.sf(d2[rows], int(pattern.sum()))
+        for s, X in answers.items():
+            if inverse is None:
+                groups = [(0, slice(None))]
+            else:
+                ids = inverse[s:s + len(X)]
+                order = np.argsort(ids, kind="stable")
+                cuts = np.flatnonzero(ids[order][1:] != ids[order][:-1]) + 1
+                groups = [(int(ids[g[0]]), g) for g in np.split(order, cuts)]
+            for j, rows in groups:
+                pat = patterns[j]
+                if not pat.any():
+                    continue
+                white = whiteners.get(j)
+                m = len(X) if inverse is None else rows.size
+                if white is None:
+                    singular_rows += m
+                else:
+                    if inverse is None:
+                        dev = X - mean  # every row complete: the block itself, not a copy first
+                    else:
+                        cols = np.flatnonzero(pat)
+                        dev = X[np.ix_(rows, cols)] - mean[cols]
+                    z = dev @ white
+                    d2[s:s + len(X)][rows] = np.einsum("ij,ij->i", z, z)
+                whiteners.done(j, m)
     if singular_rows:
-        notes.append(
-            f"Mahalanobis distance not computed for {singular_rows} row(s): the covariance "
-            f"of their answered items (from {complete.shape[0]} complete rows) cannot be "
-            "inverted — too few complete rows for the number of items, or items that are "
-            "exact combinations of others."
-        )
-    return d2, df, p, notes
+        return [f"Mahalanobis distance not computed for {singular_rows} row(s): the covariance "
+                f"of their answered items (from {sums.n} complete rows) cannot be "
+                "inverted — too few complete rows for the number of items, or items that are "
+                "exact combinations of others."]
+    return []
 
 
 def _rule_texts(
@@ -256,12 +428,16 @@ def _rule_texts(
 
 
 def screen_respondents(
-    items: pd.DataFrame,
+    items: pd.DataFrame | ItemRows,
     raw_items: pd.DataFrame | None = None,
     *,
     scale_min: float | None,
     scale_max: float | None,
     rules: ScreeningRules | None = None,
+    columns: Sequence[str] | None = None,
+    order: Sequence[str] | None = None,
+    reversed_items: Collection[str] = (),
+    moments: MomentSums | None = None,
 ) -> ScreeningResult:
     """Measure and flag each respondent for careless responding, outliers and missingness.
 
@@ -271,17 +447,23 @@ def screen_respondents(
     ``n_out_of_range``. See :class:`ScreeningRules` for the flags.
 
     Longstring and IRV describe how a person answered the questionnaire, so they run on
-    ``raw_items``: the answers as given (not reverse-keyed), columns in questionnaire
-    order. Reverse-keying would break a straight-liner's run at every reversed item. When
-    ``raw_items`` is ``None`` they run on ``items`` in its column order, and ``notes`` says
-    so. Mahalanobis distance is unchanged by reverse-keying (an affine change of each item)
-    and, like the missing share and the range check, runs on ``items``.
+    the answers as given (not reverse-keyed), in questionnaire order: ``raw_items``, or
+    ``order`` and ``reversed_items``, which undo the keying a block of rows at a time
+    (``scale_min + scale_max - x``) instead of a second copy of the answers. Reverse-keying
+    would break a straight-liner's run at every reversed item. Given neither, they run on
+    ``items`` in its column order, and ``notes`` says so. Mahalanobis distance is unchanged
+    by reverse-keying (an affine change of each item) and, like the missing share and the
+    range check, runs on ``items``.
+
+    The rows are read a block at a time (:class:`~samesource.input.rows.ItemRows`), twice:
+    the first pass measures each row and sums the complete rows (means and covariance), the
+    second measures the Mahalanobis distances against them.
 
     Parameters
     ----------
-    items : pandas.DataFrame
-        All item columns (reverse-keyed or not), one row per respondent; the index holds
-        the user-visible row numbers and is kept.
+    items : pandas.DataFrame or ItemRows
+        All item columns (reverse-keyed or not), one row per respondent. A DataFrame's index
+        holds the user-visible row numbers and is kept; ItemRows give theirs as ``labels``.
     raw_items : pandas.DataFrame or None
         The same respondents' answers as given, in questionnaire column order; its index
         must equal ``items``'s index. The longstring share counts its columns.
@@ -290,6 +472,18 @@ def screen_respondents(
         for both skips the range check.
     rules : ScreeningRules or None
         Thresholds; the defaults when ``None``.
+    columns : sequence of str or None
+        The items screened, among the rows' items (all of them when ``None``).
+    order : sequence of str or None
+        The questionnaire's items in the order asked (among the rows' items): the answers
+        as given are these columns, with ``reversed_items`` recoded back. Not with
+        ``raw_items``. The longstring share counts these items.
+    reversed_items : collection of str
+        The reverse-keyed items among ``order`` (needs both ends of the scale).
+    moments : MomentSums or None
+        The count, means and centred cross-products of the rows that answer every screened
+        item, in the screened columns' order (as a reader that summed them already has);
+        ``None`` sums them in the first pass.
 
     Returns
     -------
@@ -307,16 +501,26 @@ def screen_respondents(
     Psychological Methods, 17(3), 437-455.
     """
     rules = rules or ScreeningRules()
-    x = _numeric_array(items, "items")
-    if x.shape[1] == 0:
-        raise ValueError("items has no columns")
-    if raw_items is None:
-        raw_width = x.shape[1]
+    if isinstance(items, pd.DataFrame):
+        _check_numeric(items, "items")
+        index = items.index
+        rows: ItemRows = FrameRows(items)
+    elif isinstance(items, ItemRows):
+        rows = items
+        index = pd.Index(rows.labels, copy=False)  # the labels themselves, not a copy
     else:
-        if not raw_items.index.equals(items.index):
-            raise ValueError("raw_items must have the same rows (index) as items")
+        raise TypeError("items must be a pandas DataFrame or ItemRows")
+    screened = list(rows.names) if columns is None else [str(c) for c in columns]
+    if not screened:
+        raise ValueError("items has no columns")
+    if raw_items is not None:
+        if order is not None:
+            raise ValueError("give the answers as given either as raw_items or as order, not both")
         _check_numeric(raw_items, "raw_items")
-        raw_width = raw_items.shape[1]
+        if not raw_items.index.equals(index):
+            raise ValueError("raw_items must have the same rows (index) as items")
+    if reversed_items and order is None:
+        raise ValueError("reversed_items needs order, the questionnaire's items")
     if (scale_min is None) != (scale_max is None):
         raise DesignError("give both ends of the response scale or neither", field="scale_min")
     if scale_min is not None and not scale_min < scale_max:
@@ -324,84 +528,92 @@ def screen_respondents(
             f"response scale minimum {scale_min:g} must be below the maximum {scale_max:g}",
             field="scale_min",
         )
+    if reversed_items and scale_min is None:
+        raise DesignError("undoing reverse keying needs both ends of the response scale", field="scale_min")
+    if moments is not None and moments.mean.shape != (len(screened),):
+        raise ValueError(f"moments are of {moments.mean.size} items, not the {len(screened)} screened")
+    order = None if order is None else [str(c) for c in order]
+    answers = _Answers(rows, screened, order, set(map(str, reversed_items)),
+                       None if scale_min is None else scale_min + scale_max, raw_items)
+    raw_given = raw_items is not None or order is not None
+    raw_width = raw_items.shape[1] if raw_items is not None else len(order) if order is not None else len(screened)
 
-    n, k = x.shape
+    n, k = len(rows), len(screened)
     notes: list[str] = []
-    # Longstring, IRV and the same-answer test look at one row at a time: a block of rows of
-    # the raw answers at a time, so they are never copied whole into one array.
-    ls = np.zeros(n, dtype=int)
-    irv = np.full(n, np.nan)
-    same = np.zeros(n, dtype=bool)
-    for s in range(0, n, ROW_BLOCK):
-        raw = x[s:s + ROW_BLOCK] if raw_items is None else raw_items.iloc[s:s + ROW_BLOCK].to_numpy(dtype=float)
-        ls[s:s + len(raw)] = _longstring(raw)
-        irv[s:s + len(raw)] = _intra_individual_variability(raw)
-        if rules.irv_min_items is not None:
-            same[s:s + len(raw)] = _same_answer(raw, rules.irv_min_items)
-    d2, df, p, maha_notes = _mahalanobis_distances(x)
-    notes += maha_notes
-    answered = ~np.isnan(x)
-    share_missing = 1.0 - answered.sum(axis=1) / k
-    if scale_min is None:
-        n_oor = np.zeros(n, dtype=int)
-    else:
-        n_oor = (answered & ((x < scale_min) | (x > scale_max))).sum(axis=1)
-    if raw_items is None:
-        notes.append(
-            "Longstring and response variability were computed on the items as given to "
-            "screening, not on the raw answers in questionnaire order."
-        )
-
     ls_threshold = None
     if rules.longstring_min is not None:
         # Runs are whole numbers: "at least half of 25 items" means a run of 13.
         half = math.ceil(rules.longstring_share * raw_width - 1e-9)
         ls_threshold = max(int(rules.longstring_min), half)
-        # A run can be at most as long as the questionnaire.
-        if ls_threshold > raw_width:
-            notes.append(
-                f"Longstring rule cannot fire: the threshold {ls_threshold:g} exceeds the "
-                f"{raw_width} items."
-            )
-    flags: dict[str, np.ndarray] = {}
-    if ls_threshold is not None:
-        flags["longstring"] = ls >= ls_threshold
-    if rules.irv_min_items is not None:
-        flags["irv"] = same
-    if rules.mahalanobis_alpha is not None:
-        flags["mahalanobis"] = np.where(np.isnan(p), False, p < rules.mahalanobis_alpha)
-    if rules.max_share_missing is not None:
-        flags["missing"] = share_missing > rules.max_share_missing
-    if rules.flag_out_of_range and scale_min is not None:
-        flags["out_of_range"] = n_oor > 0
+    in_force = tuple(r for r, on in zip(RULE_NAMES, (
+        ls_threshold is not None, rules.irv_min_items is not None, rules.mahalanobis_alpha is not None,
+        rules.max_share_missing is not None, rules.flag_out_of_range and scale_min is not None),
+        strict=True) if on)
+    bit = {r: np.uint8(1 << i) for i, r in enumerate(RULE_NAMES)}
 
-    per_row = pd.DataFrame(
-        {
-            "longstring": ls,
-            "irv": irv,
-            "mahalanobis_d2": d2,
-            "mahalanobis_df": df,
-            "mahalanobis_p": p,
-            "share_missing": share_missing,
-            "n_out_of_range": n_oor,
-        },
-        index=items.index.copy(),
-    )
-    for name in RULE_NAMES:
-        if name in flags:
-            per_row[f"flag_{name}"] = flags[name].astype(bool)
-    flag_cols = [f"flag_{r}" for r in RULE_NAMES if r in flags]
-    per_row["flagged"] = per_row[flag_cols].any(axis=1) if flag_cols else False
+    counts_t = _count_dtype(max(k, raw_width))
+    ls = np.zeros(n, dtype=counts_t)
+    irv = np.full(n, np.nan)
+    answered = np.zeros(n, dtype=counts_t)
+    n_oor = np.zeros(n, dtype=counts_t)
+    flags = np.zeros(n, dtype=np.uint8)
+    d2 = np.full(n, np.nan)
+    keys = None  # each row's packed pattern of answered items, once some row has a gap
+    every = np.packbits(np.ones(k, dtype=bool))
+    sums = MomentSums.of(np.empty((0, k))) if moments is None else moments
 
-    def plain(v):
-        return v.item() if isinstance(v, np.generic) else v
+    # First pass: the per-row measures, the complete rows' sums, the rows' patterns.
+    for s, X, raw in answers.both():
+        e = s + len(X)
+        ls[s:e] = _longstring(raw)
+        irv[s:e] = _intra_individual_variability(raw)
+        if rules.irv_min_items is not None:
+            flags[s:e] |= _same_answer(raw, rules.irv_min_items) * bit["irv"]
+        obs = ~np.isnan(X)
+        m = obs.sum(axis=1)
+        answered[s:e] = m
+        if scale_min is not None:
+            n_oor[s:e] = (obs & ((X < scale_min) | (X > scale_max))).sum(axis=1)
+        whole = m == k
+        if keys is None and not whole.all():
+            keys = np.empty((n, every.size), dtype=np.uint8)
+            keys[:s] = every
+        if keys is not None:
+            keys[s:e] = np.packbits(obs, axis=1)
+        if moments is None:
+            sums = sums.merged(MomentSums.of(X if whole.all() else X[whole]))
+    notes += _mahalanobis_distances(answers, n, sums, keys, d2)
+    del keys
+    if not raw_given:
+        notes.append(
+            "Longstring and response variability were computed on the items as given to "
+            "screening, not on the raw answers in questionnaire order."
+        )
+    if ls_threshold is not None and ls_threshold > raw_width:  # a run is at most the questionnaire
+        notes.append(
+            f"Longstring rule cannot fire: the threshold {ls_threshold:g} exceeds the "
+            f"{raw_width} items."
+        )
 
-    hit = per_row["flagged"].to_numpy(dtype=bool)
-    flagged_rows = [plain(i) for i in per_row.index[hit]]
-    broke = {r: flags[r][hit] for r in RULE_NAMES if r in flags}  # the flagged rows only
-    reasons = {idx: [r for r, f in broke.items() if f[j]] for j, idx in enumerate(flagged_rows)}
-    counts = {r: int(flags[r].sum()) for r in RULE_NAMES if r in flags}
-    texts = _rule_texts(rules, raw_width, ls_threshold, raw_items is not None)
-    if "out_of_range" in texts and "out_of_range" not in flags:
+    for s in range(0, n, ROW_BLOCK):  # the other flags, a block of rows at a time
+        e = min(s + ROW_BLOCK, n)
+        if ls_threshold is not None:
+            flags[s:e] |= (ls[s:e] >= ls_threshold) * bit["longstring"]
+        if rules.mahalanobis_alpha is not None:
+            p = _chi2_sf(d2[s:e], answered[s:e])
+            flags[s:e] |= np.where(np.isnan(p), False, p < rules.mahalanobis_alpha) * bit["mahalanobis"]
+        if rules.max_share_missing is not None:
+            share = 1.0 - answered[s:e].astype(np.int64) / k
+            flags[s:e] |= (share > rules.max_share_missing) * bit["missing"]
+        if "out_of_range" in in_force:
+            flags[s:e] |= (n_oor[s:e] > 0) * bit["out_of_range"]
+
+    measures = RowMeasures(index, k, ls, irv, d2, answered, n_oor, flags, in_force)
+    hit = np.flatnonzero(flags)
+    flagged_rows = index[hit].tolist()
+    reasons = {label: [r for r in in_force if f & bit[r]] for label, f in zip(flagged_rows, flags[hit], strict=True)}
+    counts = {r: int(np.count_nonzero(flags & bit[r])) for r in in_force}
+    texts = _rule_texts(rules, raw_width, ls_threshold, raw_given)
+    if "out_of_range" in texts and "out_of_range" not in in_force:
         del texts["out_of_range"]
-    return ScreeningResult(per_row, flagged_rows, reasons, counts, texts, notes)
+    return ScreeningResult(measures, flagged_rows, reasons, counts, texts, notes)
