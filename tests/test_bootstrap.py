@@ -578,13 +578,13 @@ def items5() -> np.ndarray:
 
 def test_weighted_covariance_equals_numpy_cov_with_frequency_weights(items5):
     # Reference: numpy's np.cov(..., fweights=..., bias=True) and np.average(..., weights=...)
-    from samesource.corrections.replicate_moments import BATCH, draw_counts, weighted_moments
+    from samesource.corrections.replicate_moments import BATCH, weighted_moments
 
     n = len(items5)
     count = BATCH + 5  # a whole batch and a part of one
-    W = draw_counts(lambda r: replicate_indices(9, r, n), range(count), n)
+    W = np.vstack([np.bincount(replicate_indices(9, r, n), minlength=n) for r in range(count)]).astype(float)
     W[-1] = (np.arange(n) % 3 != 0)  # 0/1 weights, as a jackknife deletion
-    got = weighted_moments(items5, count, lambda a, b: W[a:b])
+    got = weighted_moments(items5, count, lambda a, b: lambda s, e: W[a:b, s:e])
     for r in (0, 17, count - 2, count - 1):
         w = W[r].astype(np.int64)
         want = np.cov(items5, rowvar=False, fweights=w, bias=True)
@@ -633,7 +633,8 @@ def test_path_estimates_from_a_replicates_moments_equal_those_from_its_rows():
     # The path estimator fed a replicate's moments (replicate_moments.MomentPathEstimator)
     # against the same estimator on the resampled rows (simulated survey with known truth).
     from samesource.corrections.paths import PathEstimator
-    from samesource.corrections.replicate_moments import draw_counts, moment_form, weighted_moments
+    from samesource.corrections.bootstrap import ReplicateWeights
+    from samesource.corrections.replicate_moments import moment_form, weighted_moments
     from samesource.input.design import parse_design
     from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
@@ -648,8 +649,7 @@ def test_path_estimates_from_a_replicates_moments_equal_those_from_its_rows():
     est.warm = dict(extra["fits"])
     form = moment_form(est)
     assert form is not None and form is not est
-    W = draw_counts(lambda r: replicate_indices(3, r, len(X)), range(3), len(X))
-    moments = weighted_moments(X, 3, lambda a, b: W[a:b])
+    moments = weighted_moments(X, 3, lambda a, b: ReplicateWeights(3, range(a, b), len(X)))
     for r in range(3):
         from_rows = est(X, replicate_indices(3, r, len(X)))
         from_moments = form.from_moments(moments[r])

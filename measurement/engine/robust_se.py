@@ -21,8 +21,10 @@ With complete rows and the sample means (ML on a covariance matrix), each score 
 form in the row's deviations, s_ik = d_i' Q_k d_i - c_k, so the meat B = sum_i s_i s_i' needs
 only the rows' fourth-order moments: with v_i the products d_ij d_il (j <= l) of a row,
 B = Q'(sum v v')Q - (Q' sum v) c' - c (sum v)'Q + n c c'. :func:`pair_moments` forms sum v v'
-once for the rows (one BLAS pass, a block of rows at a time), and every model fitted to those
-rows or to a subset of their columns takes its meat from it, without a pass over the rows.
+once for the rows (two passes over ItemRows, a block of rows at a time: the means, then the
+pair products), and every model fitted to those rows or to a subset of their columns takes
+its meat from it, without another pass over the rows. FIML's casewise scores are summed a
+block of rows at a time too.
 """
 
 from __future__ import annotations
@@ -117,7 +119,7 @@ def as_rows(X: np.ndarray | ItemRows, names: Sequence[str]) -> ItemRows:
     X = np.asarray(X, dtype=float)
     if X.ndim != 2 or X.shape[1] != len(names):
         raise ValueError(f"rows are {X.shape}, expected {len(names)} columns")
-    return FrameRows(pd.DataFrame(X, columns=list(names)))
+    return FrameRows(pd.DataFrame(X, columns=list(names), copy=False))
 
 
 def pair_moments(rows: ItemRows | np.ndarray, names: Sequence[str] | None = None, *,
