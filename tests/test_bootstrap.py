@@ -578,13 +578,13 @@ def items5() -> np.ndarray:
 
 def test_weighted_covariance_equals_numpy_cov_with_frequency_weights(items5):
     # Reference: numpy's np.cov(..., fweights=..., bias=True) and np.average(..., weights=...)
-    from samesource.corrections.replicate_moments import BATCH, draw_counts, weighted_moments
+    from samesource.corrections.replicate_moments import BATCH, weighted_moments
 
     n = len(items5)
     count = BATCH + 5  # a whole batch and a part of one
-    W = draw_counts(lambda r: replicate_indices(9, r, n), range(count), n)
+    W = np.vstack([np.bincount(replicate_indices(9, r, n), minlength=n) for r in range(count)]).astype(float)
     W[-1] = (np.arange(n) % 3 != 0)  # 0/1 weights, as a jackknife deletion
-    got = weighted_moments(items5, count, lambda a, b: W[a:b])
+    got = weighted_moments(items5, count, lambda a, b: lambda s, e: W[a:b, s:e])
     for r in (0, 17, count - 2, count - 1):
         w = W[r].astype(np.int64)
         want = np.cov(items5, rowvar=False, fweights=w, bias=True)
@@ -632,8 +632,9 @@ def test_rows_are_resampled_when_a_cell_is_missing(items5):
 def test_path_estimates_from_a_replicates_moments_equal_those_from_its_rows():
     # The path estimator fed a replicate's moments (replicate_moments.MomentPathEstimator)
     # against the same estimator on the resampled rows (simulated survey with known truth).
+    from samesource.corrections.bootstrap import ReplicateWeights
     from samesource.corrections.paths import PathEstimator
-    from samesource.corrections.replicate_moments import draw_counts, moment_form, weighted_moments
+    from samesource.corrections.replicate_moments import moment_form, weighted_moments
     from samesource.input.design import parse_design
     from simulate import ConstructSpec, SurveySpec, design_for, simulate_survey
 
@@ -648,10 +649,82 @@ def test_path_estimates_from_a_replicates_moments_equal_those_from_its_rows():
     est.warm = dict(extra["fits"])
     form = moment_form(est)
     assert form is not None and form is not est
-    W = draw_counts(lambda r: replicate_indices(3, r, len(X)), range(3), len(X))
-    moments = weighted_moments(X, 3, lambda a, b: W[a:b])
+    moments = weighted_moments(X, 3, lambda a, b: ReplicateWeights(3, range(a, b), len(X)))
     for r in range(3):
         from_rows = est(X, replicate_indices(3, r, len(X)))
         from_moments = form.from_moments(moments[r])
         assert np.isfinite(from_rows).sum() == 7  # all but measured_method_adjusted (no method scale)
         np.testing.assert_allclose(from_moments, from_rows, rtol=1e-5, atol=1e-6, equal_nan=True)
+
+
+# -- draws split over draw blocks (rows read a block at a time) --------------------------------
+
+
+def test_draws_split_over_blocks_are_an_exact_multinomial(monkeypatch):
+    """With n rows over several draw blocks (DRAW_ROWS made small), a replicate's draw counts
+    are a multinomial of n draws over n equally likely rows: every replicate's counts sum to n,
+    each row's count has mean 1 and variance (n - 1)/n, two rows' counts covariance -1/n
+    (the multinomial's known moments), within a block and across blocks; the counts'
+    distribution matches numpy's own multinomial (Generator.multinomial) by a chi-square test
+    (scipy.stats.chi2_contingency)."""
+    from samesource.corrections import bootstrap as boot
+
+    monkeypatch.setattr(boot, "DRAW_ROWS", 50)
+    n, R = 230, 4000   # five draw blocks, the last of 30 rows
+    C = np.vstack([np.bincount(boot.replicate_indices(11, r, n), minlength=n) for r in range(R)])
+    assert (C.sum(axis=1) == n).all()
+    se = np.sqrt(2.0 / R)   # about the sampling error of a variance near 1 over R replicates
+    assert abs(C.mean() - 1.0) < 0.01
+    assert abs(C.var(axis=0, ddof=1).mean() - (n - 1) / n) < 3 * se / np.sqrt(n) + 0.01
+    cov = np.cov(C, rowvar=False)
+    same = cov[0, 1:50].mean()            # rows of one block
+    across = cov[0, 50:].mean()           # rows of other blocks
+    for c in (same, across):
+        assert abs(c - (-1.0 / n)) < 4 * se / np.sqrt(49)
+    totals = C.reshape(R, -1)[:, :200].reshape(R, 4, 50).sum(axis=2)   # draws per full block
+    assert abs(totals.mean() - n * 50 / n) < 0.3
+    q = 50 / n   # a full block's share of the rows: its total is binomial, two totals covary -n q^2
+    assert abs(totals.var() - n * q * (1 - q)) < 0.1 * n * q * (1 - q)
+    assert abs(np.cov(totals, rowvar=False)[0, 1:].mean() - (-n * q * q)) < 0.15 * n * q * q
+    ref = np.random.default_rng(4).multinomial(n, np.full(n, 1.0 / n), size=R)   # numpy's multinomial
+    top = max(C.max(), ref.max()) + 1
+    table = np.vstack([np.bincount(C.ravel(), minlength=top), np.bincount(ref.ravel(), minlength=top)])
+    table = table[:, table.min(axis=0) >= 5]
+    assert stats.chi2_contingency(table).pvalue > 0.001
+
+
+def test_replicate_weights_are_the_counted_draws_however_rows_are_read(monkeypatch):
+    # ReplicateWeights over any split of the row positions equals replicate_indices counted
+    # (np.bincount): the draws do not depend on how the rows are read
+    from samesource.corrections import bootstrap as boot
+
+    monkeypatch.setattr(boot, "DRAW_ROWS", 64)
+    n = 300
+    w = boot.ReplicateWeights(5, [0, 3, 9], n)
+    want = np.vstack([np.bincount(boot.replicate_indices(5, r, n), minlength=n) for r in (0, 3, 9)])
+    for cuts in ([0, n], [0, 10, 64, 65, 200, n], [0, 128, 129, n]):
+        got = np.hstack([w(a, b) for a, b in zip(cuts[:-1], cuts[1:], strict=True)])
+        np.testing.assert_array_equal(got, want)
+
+
+def test_weighted_replicates_equal_on_frame_rows_and_coded_rows(items5):
+    # The same answers as a DataFrame (FrameRows) and as one byte per cell (CodedRows, with a
+    # selection: blocks of uneven size) give the same replicate moments; reference: numpy's
+    # np.cov with frequency weights of the counted draws
+    import pandas as pd
+
+    from samesource.input.rows import CodedRows, FrameRows
+
+    stat = MeanCovStat()
+    names = [f"i{j}" for j in range(items5.shape[1])]
+    keep = np.random.default_rng(6).random(len(items5)) < 0.9
+    frame = FrameRows(pd.DataFrame(items5, columns=names)).select(keep)
+    coded = CodedRows.encode(items5, names, np.arange(len(items5)), 1.0).select(keep)
+    X = items5[keep]
+    full = stat(X, np.arange(len(X)))   # the statistic reads arrays; its moment form reads the rows
+    a = bootstrap(stat, frame, n_boot=33, seed=4, executor=SERIAL, jackknife_groups=5, estimate=full)
+    b = bootstrap(stat, coded, n_boot=33, seed=4, executor=SERIAL, jackknife_groups=5, estimate=full)
+    np.testing.assert_allclose(b.replicates, a.replicates, rtol=1e-12, atol=1e-12)
+    w = np.bincount(replicate_indices(4, 32, len(X)), minlength=len(X))
+    want = np.cov(X, rowvar=False, fweights=w, bias=True)[np.triu_indices(X.shape[1])]
+    np.testing.assert_allclose(a.replicates[32, X.shape[1]:], want, rtol=1e-11, atol=1e-12)

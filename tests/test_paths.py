@@ -191,3 +191,112 @@ def test_sensitivity_curve_at_the_true_method_share_recovers_the_truth():
             xs = [c["method_share"] for c in p["sensitivity"]["curve"]]
             i = next(j for j in range(1, len(est)) if est[j] <= 0)
             assert xs[i - 1] <= be <= xs[i]
+
+
+# -- the estimator reads ItemRows (measurement/input/rows.py) ----------------------------------
+
+
+def _rows_survey(missing: float):
+    """A simulated 5-point survey with a marker and a method scale (known truth), its design,
+    and the answers as FrameRows and CodedRows (CodedRows with a selection of every row but
+    a few, FrameRows of the same rows)."""
+    import pandas as pd
+
+    from samesource.input.design import parse_design
+    from samesource.input.rows import CodedRows, FrameRows
+
+    spec = SurveySpec(constructs=[ConstructSpec("sup", 4, 0.7, 0.3), ConstructSpec("eng", 4, 0.7, 0.3),
+                                  ConstructSpec("wth", 3, 0.7, 0.3, role="marker")],
+                      paths={"eng": {"sup": 0.4}}, n=700, seed=21, missing_rate=missing)
+    df, _ = simulate_survey(spec)
+    design = parse_design(design_for(spec))
+    items = list(design.items)
+    X = df[items].to_numpy(dtype=float)
+    keep = np.ones(len(X), dtype=bool)
+    keep[[3, 50, 400]] = False
+    if missing:
+        keep &= ~np.isnan(X).all(axis=1)
+    frame = FrameRows(pd.DataFrame(X[keep], columns=items))
+    coded = CodedRows.encode(X, items, np.arange(len(X)), 1.0).select(keep)
+    return design, X[keep], frame, coded
+
+
+def _estimator(design):
+    from samesource.corrections.paths import PathEstimator
+
+    return PathEstimator(design, use_method_factor="marker", method_loadings="equal", use_measured=False)
+
+
+@pytest.mark.parametrize("missing", [0.0, 0.05])
+def test_estimates_and_ses_are_equal_on_frame_rows_and_coded_rows(missing):
+    """Every estimate, its information SE and its robust SE, from the same answers held as a
+    DataFrame and as one byte per cell (listwise: complete rows; FIML: rows with gaps), and
+    from the array itself. The scale scores' covariance the estimator reads is numpy's
+    (np.cov of the row means of each scale's answered items, pandas' DataFrame.mean)."""
+    from samesource.corrections.paths import ScoreRows
+
+    design, X, frame, coded = _rows_survey(missing)
+    runs = []
+    for rows in (X, frame, coded):
+        est = _estimator(design)
+        runs.append(est.estimate(rows, compute_se=True)[0])
+    first = runs[0]
+    assert sum(e.se_robust is not None for e in first.values()) >= 5
+    for other in runs[1:]:
+        assert other.keys() == first.keys()
+        for k, e in first.items():
+            o = other[k]
+            assert (o.status, o.note) == (e.status, e.note), k
+            for field in ("estimate", "se", "se_robust"):
+                a, b = getattr(e, field), getattr(o, field)
+                assert (a is None) == (b is None), (k, field)
+                if a is not None:
+                    assert b == pytest.approx(a, rel=1e-7, abs=1e-9), (k, field)
+    import pandas as pd
+
+    est = _estimator(design)
+    scov, n_s, srows = est._scores(coded)
+    df = pd.DataFrame(X, columns=est.items)
+    means = pd.concat([df[list(design.constructs[c].items)].mean(axis=1) for c in est.score_names], axis=1).dropna()
+    np.testing.assert_allclose(scov, np.cov(means.to_numpy(), rowvar=False, bias=True), rtol=1e-12)
+    assert n_s == len(means) == len(srows) and isinstance(srows, ScoreRows)
+
+
+def test_available_case_covariance_equals_numpy_masked_cov():
+    # Reference: numpy's np.ma.cov of the masked rows (bias=True), which the estimator used
+    # on the whole array before it read rows a block at a time.
+    from samesource.corrections.paths import available_case_cov
+    from samesource.engine.chunked_moments import pattern_sums
+
+    rng = np.random.default_rng(12)
+    X = rng.normal(3.0, 1.0, size=(5000, 6)) @ np.triu(np.ones((6, 6)))
+    X[rng.random(X.shape) < 0.15] = np.nan
+    X[:40, 4] = np.nan
+    X[:40, 5] = 1.0
+    X[40:, 5] = np.nan        # columns 4 and 5 never answered together
+    want = np.ma.cov(np.ma.masked_invalid(X), rowvar=False, bias=True).filled(np.nan)
+    got = available_case_cov(pattern_sums(X[s:s + 999] for s in range(0, len(X), 999)), 6)
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12)
+    assert np.isnan(got[4, 5]) and np.isnan(want[4, 5])
+
+
+def test_bootstrap_of_the_paths_is_the_same_on_frame_rows_and_coded_rows():
+    # The same replicates (weighted cross-products: complete rows) whether the answers are a
+    # DataFrame or codes; and under FIML (rows with gaps: each replicate's rows drawn and read
+    # a block at a time) the replicates equal those of the resampled array, row by row.
+    from samesource.corrections.bootstrap import bootstrap
+    from samesource.executor import SerialExecutor
+
+    for missing in (0.0, 0.05):
+        design, X, frame, coded = _rows_survey(missing)
+        out = []
+        for rows in (frame, coded) + ((X,) if missing else ()):
+            est = _estimator(design)
+            full, extra = est.estimate(rows, compute_se=False)
+            est.warm = dict(extra["fits"])
+            out.append(bootstrap(est, rows, n_boot=4, seed=3, executor=SerialExecutor(), jackknife_groups=3,
+                                 estimate=est.vector(full)))
+        for other in out[1:]:
+            np.testing.assert_allclose(other.replicates, out[0].replicates, rtol=1e-6, atol=1e-7, equal_nan=True)
+            np.testing.assert_allclose(other.jackknife, out[0].jackknife, rtol=1e-6, atol=1e-7, equal_nan=True)
+        assert np.isfinite(out[0].replicates).sum() >= 4 * 6

@@ -2,10 +2,18 @@
 
 Method (Efron & Tibshirani 1993, *An Introduction to the Bootstrap*):
 
-* Replicates: rows drawn with replacement, n of n (ch. 6). Replicate ``r`` draws its rows
-  from its own generator ``default_rng(SeedSequence(seed, spawn_key=(r,)))``, which is
-  ``SeedSequence(seed).spawn(n_boot)[r]`` built directly, so the replicates are bit-for-bit
-  the same whatever the executor, the number of workers or the chunk size.
+* Replicates: rows drawn with replacement, n of n (ch. 6), each replicate from its own seed
+  streams, so the replicates are bit-for-bit the same whatever the executor, the number of
+  workers, the chunk size or how the rows are read. The n draws are split over fixed draw
+  blocks of :data:`DRAW_ROWS` row positions, exactly: how many draws fall in each block is one
+  multinomial over the blocks' sizes (from ``SeedSequence(seed, spawn_key=(r, TOTALS_KEY))``),
+  and block b's draws are uniform over its rows (from ``SeedSequence(seed, spawn_key=(r,))``
+  for block 0 and ``(r, b)`` for the others). A multinomial of n draws over n rows is
+  the same distribution as a multinomial over blocks followed, within each block, by one
+  over its rows (the multinomial's grouping property), so a replicate is the usual n-of-n
+  resample; its draw counts are formed one block at a time (memory of one block per
+  replicate, not of n rows). With n at most one block (every survey under 65,536 rows) the
+  draws are those of ``SeedSequence(seed).spawn(n_boot)[r]``: ``integers(0, n, n)``.
 * Percentile interval: the alpha/2 and 1 - alpha/2 quantiles of the successful replicates
   (ch. 13), with numpy's default (linear) quantile, the one scipy.stats.bootstrap uses.
 * BCa interval (Efron 1987, JASA 82:171-185; Efron & Tibshirani 1993, ch. 14, section 14.3):
@@ -46,6 +54,7 @@ from typing import Any
 import numpy as np
 
 from samesource.executor import Executor, StopRequested, default_executor, stop_requested
+from samesource.input.rows import ItemRows
 
 Statistic = Callable[[np.ndarray, np.ndarray], np.ndarray]
 """``statistic(data, idx)`` -> 1-D float vector of k estimates for the rows ``data[idx]``.
@@ -62,6 +71,11 @@ MIN_JACKKNIFE = 3  # fewer finite jackknife values: no acceleration
 # Spawn key of the jackknife grouping generator; replicate r uses spawn key (r,), so this
 # stays independent of the replicates for any n_boot below it (options cap n_boot at 100,000).
 _JACKKNIFE_KEY = 0x4A41434B
+# Row positions per draw block of a replicate (fixed: a replicate's draws must not depend on
+# how the rows are read); and the second spawn key of a replicate's block totals (block b
+# uses (r, b), b < TOTALS_KEY: a file would need 2^32 blocks to reach it).
+DRAW_ROWS = 65_536
+TOTALS_KEY = 0xFFFFFFFF
 
 
 @dataclass
@@ -144,11 +158,69 @@ class _ChunkResult:
     first_error: str | None
 
 
+def _block_sizes(n: int) -> np.ndarray:
+    k = max(1, -(-n // DRAW_ROWS))
+    sizes = np.full(k, DRAW_ROWS, dtype=np.int64)
+    sizes[-1] = n - DRAW_ROWS * (k - 1)
+    return sizes
+
+
+def block_totals(seed: int, r: int, n: int) -> np.ndarray:
+    """How many of replicate ``r``'s n draws fall in each draw block of :data:`DRAW_ROWS`
+    rows: a multinomial over the blocks' sizes (n itself when there is one block)."""
+    sizes = _block_sizes(n)
+    if sizes.size == 1:
+        return np.array([n], dtype=np.int64)
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(r, TOTALS_KEY)))
+    return rng.multinomial(n, sizes / n)
+
+
+def block_draws(seed: int, r: int, block: int, total: int, size: int) -> np.ndarray:
+    """Replicate ``r``'s ``total`` draws in draw block ``block`` of ``size`` rows (positions
+    within the block), uniform, from the block's own seed stream."""
+    key = (r,) if block == 0 else (r, block)
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=key))
+    return rng.integers(0, size, size=total)
+
+
 def replicate_indices(seed: int, r: int, n: int) -> np.ndarray:
-    """Row indices of bootstrap replicate ``r``: n draws with replacement, from the generator
-    ``SeedSequence(seed).spawn(n_boot)[r]`` (built directly from its spawn key)."""
-    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(r,)))
-    return rng.integers(0, n, size=n)
+    """Row indices of bootstrap replicate ``r``: n draws with replacement (see the module
+    docstring for the seed streams); with n at most :data:`DRAW_ROWS`, the draws
+    ``integers(0, n, n)`` of ``SeedSequence(seed).spawn(n_boot)[r]``."""
+    sizes = _block_sizes(n)
+    totals = block_totals(seed, r, n)
+    return np.concatenate([b * DRAW_ROWS + block_draws(seed, r, b, int(t), int(sz))
+                           for b, (t, sz) in enumerate(zip(totals, sizes, strict=True))])
+
+
+class ReplicateWeights:
+    """The draw counts of replicates ``replicates`` over row positions, formed one draw block
+    at a time (``weights(start, stop)``: (replicates, stop - start) float, the counts of those
+    rows); the same counts as :func:`replicate_indices` counted."""
+
+    def __init__(self, seed: int, replicates: Sequence[int], n: int) -> None:
+        self.seed, self.replicates, self.n = seed, list(replicates), n
+        self.sizes = _block_sizes(n)
+        self.totals = [block_totals(seed, r, n) for r in self.replicates]
+        self._block: tuple[int, np.ndarray] | None = None  # the last block's counts
+
+    def block(self, b: int) -> np.ndarray:
+        if self._block is None or self._block[0] != b:
+            size = int(self.sizes[b])
+            W = np.empty((len(self.replicates), size))
+            for i, r in enumerate(self.replicates):
+                W[i] = np.bincount(block_draws(self.seed, r, b, int(self.totals[i][b]), size), minlength=size)
+            self._block = (b, W)
+        return self._block[1]
+
+    def __call__(self, start: int, stop: int) -> np.ndarray:
+        parts = []
+        while start < stop:
+            b = start // DRAW_ROWS
+            end = min(stop, (b + 1) * DRAW_ROWS)
+            parts.append(self.block(b)[:, start - b * DRAW_ROWS:end - b * DRAW_ROWS])
+            start = end
+        return parts[0] if len(parts) == 1 else np.hstack(parts)
 
 
 def _run_chunk(chunk: _Chunk) -> _ChunkResult:
@@ -183,16 +255,16 @@ def _run_chunk(chunk: _Chunk) -> _ChunkResult:
 
 
 def _chunk_moments(chunk: _Chunk, replicates: range) -> list:
-    from samesource.corrections.replicate_moments import draw_counts, weighted_moments
+    from samesource.corrections.replicate_moments import weighted_moments
 
     n = len(chunk.data)
     if chunk.kind == "boot":
-        def weights(a: int, b: int) -> np.ndarray:
-            return draw_counts(lambda r: replicate_indices(chunk.seed, r, n), replicates[a:b], n)
+        def weights(a: int, b: int) -> Callable[[int, int], np.ndarray]:
+            return ReplicateWeights(chunk.seed, replicates[a:b], n)
     else:
-        def weights(a: int, b: int) -> np.ndarray:
+        def weights(a: int, b: int) -> Callable[[int, int], np.ndarray]:
             groups = np.asarray(replicates[a:b])
-            return (chunk.labels[None, :] != groups[:, None]).astype(float)
+            return lambda s, e: (chunk.labels[None, s:e] != groups[:, None]).astype(float)
     return weighted_moments(chunk.data, len(replicates), weights)
 
 
@@ -201,8 +273,11 @@ def _moment_form(statistic: Any, data: Any, scheme: str) -> Any:
     complete rows (no missing cell) and a statistic that needs only their moments."""
     if scheme == "rows":
         return None
-    if not (isinstance(data, np.ndarray) and data.ndim == 2 and data.dtype.kind == "f"
-            and len(data) and np.isfinite(data).all()):
+    if isinstance(data, ItemRows):
+        if not len(data) or any(not np.isfinite(X).all() for _, X in data.blocks()):
+            return None
+    elif not (isinstance(data, np.ndarray) and data.ndim == 2 and data.dtype.kind == "f"
+              and len(data) and np.isfinite(data).all()):
         return None
     from samesource.corrections.replicate_moments import moment_form
 
@@ -271,7 +346,7 @@ def bca_levels(z0: float, a: float, confidence: float) -> tuple[float, float]:
 # ---------------------------------------------------------------------------------------
 
 
-def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
+def bootstrap(statistic: Statistic, data: np.ndarray | ItemRows, *, n_boot: int, seed: int,
               confidence: float = 0.95, executor: Executor | None = None,
               chunk_size: int | None = None, jackknife_groups: int = 50,
               progress: Callable[[int, int], None] | None = None,
@@ -287,7 +362,8 @@ def bootstrap(statistic: Statistic, data: np.ndarray, *, n_boot: int, seed: int,
     statistic:
         ``statistic(data, idx)`` -> k estimates for rows ``data[idx]`` (see :data:`Statistic`).
     data:
-        Rows = respondents; passed to the statistic unchanged.
+        Rows = respondents (an array, or :class:`~samesource.input.rows.ItemRows` read a block
+        at a time); passed to the statistic unchanged.
     n_boot, seed:
         Number of replicates and the seed (a non-negative integer) they are drawn from.
     executor:
@@ -487,6 +563,7 @@ def _extreme_note(notes: list[str], label: str, what: str, lo: float, hi: float,
                      "replicates needed)")
 
 
-__all__ = ["BootstrapResult", "Statistic", "bootstrap", "replicate_indices",
+__all__ = ["BootstrapResult", "Statistic", "bootstrap", "replicate_indices", "ReplicateWeights",
+           "block_totals", "block_draws", "DRAW_ROWS",
            "jackknife_groups_for", "acceleration_from_jackknife", "bias_correction", "bca_levels",
            "CHUNKS_PER_WORKER", "MIN_SUCCESSFUL", "FAILED_SHARE_NOTE"]

@@ -2,8 +2,14 @@
 
 Each estimate is the standardized coefficient of a predictor in its outcome's equation
 with all the outcome's declared predictors. One :class:`PathEstimator` computes every
-estimate from an item matrix, so the same code serves the full sample (with analytic
+estimate from the items' rows, so the same code serves the full sample (with analytic
 standard errors) and each bootstrap replicate (warm-started refits, no standard errors).
+
+The rows are read a block at a time (:class:`~samesource.input.rows.ItemRows`), never held
+as one n x p array: the models take the items' moments (complete rows) or their per-pattern
+sums (FIML), the scale scores' moments are accumulated per block, and the robust SEs read
+the items' or the scores' blocks again (:class:`ScoreRows` forms a block's scores from its
+items' block).
 """
 
 from __future__ import annotations
@@ -11,7 +17,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import warnings
-from collections.abc import Callable
+from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
 import numpy as np
@@ -29,9 +35,12 @@ from samesource.engine.builders import (
     single_indicator_model,
     without_method_factor,
 )
-from samesource.engine.fitting import FitResult, Moments, RawData, fit_model, refit
-from samesource.engine.robust_se import PairMoments, pair_moments, robust_se
+from samesource.engine.chunked_moments import MomentSums, PatternSums, chunked_moments, pattern_sums
+from samesource.engine.fiml import PatternData
+from samesource.engine.fitting import FitResult, Moments, fit_model, refit
+from samesource.engine.robust_se import PairMoments, as_rows, pair_moments, robust_se
 from samesource.input.design import MAIN, Design, Path
+from samesource.input.rows import BLOCK_ROWS, ItemRows
 from samesource.method_checks.marker import choose_r_m, r_m_source
 from samesource.statistics.reliability import alpha_from_cov, omega_total
 
@@ -127,50 +136,54 @@ class PathEstimator:
         return {"max_iter": max(50, 3 * prev.iterations),
                 "time_limit": min(self.time_limit, max(5.0, 30 * prev.elapsed))}
 
-    def _item_data(self, X: np.ndarray, moments: Moments | None = None) -> tuple[Moments | RawData, np.ndarray]:
+    def _item_data(self, rows: ItemRows, moments: Moments | None = None
+                   ) -> tuple[Moments | PatternData, np.ndarray]:
         """Model input for the items, and the item covariance for closed-form statistics
-        (``moments``: the items' moments on these complete rows, formed once elsewhere)."""
+        (``moments``: the items' moments on these complete rows, formed once elsewhere).
+        One pass over the rows otherwise: their per-pattern sums, which are the moments when
+        every row is complete and FIML's input when not (the covariance is then
+        ``np.ma.cov``'s: available-case means, pairwise-complete cross-products)."""
         if moments is not None:
             return Moments(names=tuple(self.items), cov=moments.cov, n=moments.n), moments.cov
-        if np.isnan(X).any():
-            data: Moments | RawData = RawData(names=tuple(self.items), X=X)
-            cov = np.ma.cov(np.ma.masked_invalid(X), rowvar=False, bias=True).filled(np.nan)
-        else:
-            cov = np.cov(X, rowvar=False, bias=True)
-            data = Moments(names=tuple(self.items), cov=cov, n=X.shape[0])
-        return data, cov
+        patterns = pattern_sums(X for _, X in rows.blocks(self.items))
+        if len(patterns) == 1 and patterns[0].observed.all():
+            s = patterns[0].sums
+            cov = s.cross / s.n
+            return Moments(names=tuple(self.items), cov=cov, n=s.n), cov
+        return (PatternData(names=tuple(self.items), patterns=tuple(patterns)),
+                available_case_cov(patterns, len(self.items)))
 
-    def _scores(self, X: np.ndarray) -> tuple[np.ndarray, int, np.ndarray]:
-        cols = [[self.col[i] for i in self.design.constructs[c].items] for c in self.score_names]
-        with np.errstate(invalid="ignore"), warnings.catch_warnings():
-            # a row without any answer to a scale (a second source without a row for it) has no score
-            warnings.simplefilter("ignore", RuntimeWarning)
-            s = np.column_stack([np.nanmean(X[:, c], axis=1) for c in cols])
-        s = s[~np.isnan(s).any(axis=1)]
-        return np.cov(s, rowvar=False, bias=True), s.shape[0], s
-
-    @staticmethod
-    def _rows_for(fit: FitResult, names: list[str], rows: np.ndarray) -> np.ndarray:
-        pos = {n: i for i, n in enumerate(names)}
-        return rows[:, [pos[n] for n in fit.spec.observed]]
+    def _scores(self, rows: ItemRows) -> tuple[np.ndarray, int, ItemRows | None]:
+        """The scale scores' covariance (divisor n) and count over the rows where every score
+        is defined, and those scores as rows (formed a block at a time from the items)."""
+        scores = ScoreRows(rows, [score_name(c) for c in self.score_names],
+                           [self.design.constructs[c].items for c in self.score_names])
+        total = MomentSums.of(np.empty((0, len(self.score_names))))
+        for _, S in scores.blocks():
+            total = total.merged(MomentSums.of(S))
+        scores.count = total.n
+        return total.cross / total.n, total.n, scores
 
     # -- the estimates ------------------------------------------------------------------------
-    def estimate(self, X: np.ndarray, *, compute_se: bool = True,
+    def estimate(self, rows: ItemRows | np.ndarray, *, compute_se: bool = True,
                  moments: Moments | None = None) -> tuple[dict[Key, Estimate], dict]:
-        """Every correction's estimate of every key path (CORRECTIONS, in order) from the items
-        ``X``, and what the report needs beside them (the fits, alpha, omega, r_M).
-        ``moments``: the items' moments on the rows ``X`` when they are complete, if formed
-        already (the full sample's, from the missing-data plan), so they are not formed again."""
-        run = self._prepare(X, compute_se, moments)
+        """Every correction's estimate of every key path (CORRECTIONS, in order) from the items'
+        ``rows`` (ItemRows holding ``self.items``, or an array with those columns), and what
+        the report needs beside them (the fits, alpha, omega, r_M). ``moments``: the items'
+        moments on these rows when they are complete, if formed already (the full sample's,
+        from the missing-data plan), so they are not formed again."""
+        run = self._prepare(rows, compute_se, moments)
         for correction in CORRECTIONS:
             correction.estimate(self, run)
         return run.out, run.extra
 
-    def _prepare(self, X: np.ndarray, compute_se: bool, moments: Moments | None = None) -> _Run:
+    def _prepare(self, rows: ItemRows | np.ndarray, compute_se: bool, moments: Moments | None = None) -> _Run:
         """What every correction reads: the item and score moments and each scale's alpha and omega."""
+        if isinstance(rows, np.ndarray):
+            rows = as_rows(rows, self.items)
         fits: dict[str, FitResult] = {}
-        data, icov = self._item_data(X, moments)
-        scov, n_s, srows = self._scores(X)
+        data, icov = self._item_data(rows, moments)
+        scov, n_s, srows = self._scores(rows)
         sd = np.sqrt(np.diag(scov))
 
         # reliabilities: alpha from the item covariance, omega from each one-factor model
@@ -178,9 +191,9 @@ class PathEstimator:
         for c in self.path_names:
             idx = [self.col[i] for i in self.design.constructs[c].items]
             sub = icov[np.ix_(idx, idx)]
-            if np.isnan(sub).any():
-                rows = X[:, idx][~np.isnan(X[:, idx]).any(axis=1)]
-                sub = np.cov(rows, rowvar=False, bias=True)
+            if np.isnan(sub).any():  # a pair never answered together: the rows complete on the scale
+                its = list(self.design.constructs[c].items)
+                sub = chunked_moments((X for _, X in rows.blocks(its)), its).cov
             alpha[c] = alpha_from_cov(sub)
             con = self.design.constructs[c]
             if len(con.items) >= 3:
@@ -193,10 +206,10 @@ class PathEstimator:
                 omega[c] = alpha[c]  # two items: omega is not identified alone
         sidx = {c: i for i, c in enumerate(self.score_names)}
         return _Run(
-            X=X, compute_se=compute_se, data=data, scorr=scov / np.outer(sd, sd), sidx=sidx, n_s=n_s,
+            rows=rows, compute_se=compute_se, data=data, scorr=scov / np.outer(sd, sd), sidx=sidx, n_s=n_s,
             score_moments=Moments(names=tuple(score_name(c) for c in self.score_names), cov=scov, n=n_s),
             var={c: scov[sidx[c], sidx[c]] for c in self.score_names}, alpha=alpha, omega=omega,
-            score_rows=(srows, [score_name(c) for c in self.score_names]), item_rows=(X, self.items),
+            score_rows=srows, item_rows=rows if isinstance(rows, ItemRows) else None,
             out={}, fits=fits, extra={"fits": fits, "alpha": alpha, "omega": omega})
 
     def _single(self, run: _Run, name: str, errors: dict[str, float], eq: list[Path] | None,
@@ -206,31 +219,31 @@ class PathEstimator:
         run.fits[spec.name] = f
         return f
 
-    def _robust(self, run: _Run, f: FitResult, rows: np.ndarray | None, names: list[str]):
+    def _robust(self, run: _Run, f: FitResult, rows: ItemRows | None):
         # the sandwich needs the rows the model was fitted to (not e.g. marker-adjusted moments)
         if rows is None or f.spec.name in run.robust_cache:
             return run.robust_cache.get(f.spec.name)
-        pm = self._pair_moments(run, rows, names) if f.means is None else None
+        pm = self._pair_moments(run, rows) if f.means is None else None
         if pm is not None and not set(f.spec.observed) <= set(pm.names):
             pm = None
-        run.robust_cache[f.spec.name] = r = robust_se(f, pm if pm is not None else self._rows_for(f, names, rows))
+        run.robust_cache[f.spec.name] = r = robust_se(f, pm if pm is not None else rows)
         return r
 
-    def _pair_moments(self, run: _Run, rows: np.ndarray, names: list[str]) -> PairMoments | None:
+    def _pair_moments(self, run: _Run, rows: ItemRows) -> PairMoments | None:
         """The fourth-order moments every ML sandwich on these rows takes its meat from,
         formed once per set of rows over the columns the models use (the reduced design's
         items, or the scale scores); None when a cell is missing (the scores need the rows)."""
-        key = tuple(names)
+        key = tuple(rows.names)
         if key not in run.pair_cache:
             used = set(self.reduced.items) | {score_name(c) for c in self.score_names}
-            cols = [i for i, n in enumerate(names) if n in used]
-            sub = rows[:, cols]
-            run.pair_cache[key] = None if np.isnan(sub).any() else pair_moments(sub, [names[i] for i in cols])
+            try:
+                run.pair_cache[key] = pair_moments(rows, [n for n in rows.names if n in used])
+            except ValueError:  # a missing cell
+                run.pair_cache[key] = None
         return run.pair_cache[key]
 
     def _from_fit(self, run: _Run, method: str, f: FitResult, eq: Path,
-                  formula: dict[str, float] | None = None,
-                  rows: tuple[np.ndarray, list[str]] | None = None) -> None:
+                  formula: dict[str, float] | None = None, rows: ItemRows | None = None) -> None:
         """``method``'s estimates of ``eq``'s paths: the fit's standardized coefficients (or
         ``formula``'s values), with the fit's standard errors."""
         for x in eq.predictors:
@@ -241,14 +254,13 @@ class PathEstimator:
             se = f.std_se("reg", eq.outcome, x) if run.compute_se and f.status == "ok" else None
             se_r = None
             if se is not None and rows is not None:
-                r = self._robust(run, f, *rows)
+                r = self._robust(run, f, rows)
                 se_r = None if r is None else r.std_se_of("reg", eq.outcome, x)
                 se_r = se_r if se_r is not None and math.isfinite(se_r) else None
             run.out[(method, eq.outcome, x)] = Estimate(est, se, status=f.status, se_robust=se_r)
 
     def _spearman(self, run: _Run, method: str, corr: np.ndarray, rel: dict[str, float | None],
-                  moments: Moments, errors_scale: dict[str, float],
-                  rows: tuple[np.ndarray, list[str]] | None = None) -> None:
+                  moments: Moments, errors_scale: dict[str, float], rows: ItemRows | None = None) -> None:
         """``method``'s estimates from correlations disattenuated with ``rel`` (Spearman 1904);
         standard errors from the single-indicator model with those reliabilities."""
         pn = self.path_names
@@ -332,10 +344,120 @@ class PathEstimator:
     def vector(self, est: dict[Key, Estimate]) -> np.ndarray:
         return np.array([np.nan if est[k].estimate is None else est[k].estimate for k in self.keys])
 
-    def __call__(self, data: np.ndarray, idx: np.ndarray) -> np.ndarray:
-        """Bootstrap statistic: every estimate on the rows ``data[idx]``."""
-        est, _ = self.estimate(data[idx], compute_se=False)
+    def __call__(self, data: np.ndarray | ItemRows, idx: np.ndarray) -> np.ndarray:
+        """Bootstrap statistic: every estimate on the rows ``data[idx]`` (ItemRows: the rows
+        drawn, read a block at a time from ``data``)."""
+        rows = data[idx] if isinstance(data, np.ndarray) else ResampledRows(data, idx)
+        est, _ = self.estimate(rows, compute_se=False)
         return self.vector(est)
+
+
+class ScoreRows(ItemRows):
+    """Scale scores (the mean of each scale's answered items) as rows, formed a block at a
+    time from the items' rows; rows where a score is undefined (a scale without any answer)
+    are left out. ``count``: the number of rows, once a pass has counted them."""
+
+    def __init__(self, items: ItemRows, names: Sequence[str], scales: Sequence[Sequence[str]],
+                 count: int | None = None) -> None:
+        self.items = items
+        self.names = tuple(names)
+        self.scales = [list(s) for s in scales]
+        self.count = count
+        self._columns = list(dict.fromkeys(i for s in self.scales for i in s))
+        pos = {it: k for k, it in enumerate(self._columns)}
+        self._cols = [[pos[i] for i in s] for s in self.scales]
+
+    def __len__(self) -> int:
+        if self.count is None:
+            self.count = sum(len(S) for _, S in self.blocks())
+        return self.count
+
+    @property
+    def labels(self) -> np.ndarray:
+        out = [lab[self._defined(X)] for (_, X), lab in
+               zip(self.items.blocks(self._columns), _label_blocks(self.items), strict=True)]
+        return np.concatenate(out) if out else np.zeros(0, dtype=np.int64)
+
+    def _all_scores(self, X: np.ndarray) -> np.ndarray:
+        with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            # a row without any answer to a scale (a second source without a row for it) has no score
+            warnings.simplefilter("ignore", RuntimeWarning)
+            return np.column_stack([np.nanmean(X[:, c], axis=1) for c in self._cols])
+
+    def _defined(self, X: np.ndarray) -> np.ndarray:
+        return ~np.isnan(self._all_scores(X)).any(axis=1)
+
+    def blocks(self, columns=None, *, size=BLOCK_ROWS):
+        idx = None if columns is None or list(columns) == list(self.names) else self._index(columns)
+        at = 0
+        for _, X in self.items.blocks(self._columns, size=size):
+            S = self._all_scores(X)
+            S = S[~np.isnan(S).any(axis=1)]
+            if len(S):
+                yield at, S if idx is None else S[:, idx]
+                at += len(S)
+
+    def select(self, keep):
+        raise NotImplementedError("scale-score rows are not selected; select the items' rows")
+
+
+def _label_blocks(rows: ItemRows) -> Iterator[np.ndarray]:
+    labels = rows.labels
+    for start, X in rows.blocks(rows.names[:1]):
+        yield labels[start:start + len(X)]
+
+
+class ResampledRows(ItemRows):
+    """The rows ``idx`` of ``rows`` (drawn with replacement: a bootstrap replicate), read a
+    block of ``rows`` at a time with each row repeated as often as it was drawn (rows in
+    their stored order: a statistic of the rows does not depend on their order)."""
+
+    def __init__(self, rows: ItemRows, idx: np.ndarray) -> None:
+        self.rows = rows
+        self.names = rows.names
+        self.counts = np.bincount(np.asarray(idx, dtype=np.intp), minlength=len(rows))
+
+    def __len__(self) -> int:
+        return int(self.counts.sum())
+
+    @property
+    def labels(self) -> np.ndarray:
+        return np.repeat(self.rows.labels, self.counts)
+
+    def blocks(self, columns=None, *, size=BLOCK_ROWS):
+        at = 0
+        for start, X in self.rows.blocks(columns, size=size):
+            Y = np.repeat(X, self.counts[start:start + len(X)], axis=0)
+            if len(Y):
+                yield at, Y
+                at += len(Y)
+
+    def select(self, keep):
+        raise NotImplementedError("a replicate's rows are not selected")
+
+
+def available_case_cov(patterns: Sequence[PatternSums], p: int) -> np.ndarray:
+    """``np.ma.cov(masked rows, rowvar=False, bias=True)`` from the rows' per-pattern sums:
+    each variable centred at its available-case mean, each pair's cross-products summed over
+    the rows that answered both and divided by their number (NaN for a pair never answered
+    together)."""
+    count = np.zeros(p)
+    total = np.zeros(p)
+    for ps in patterns:
+        o = np.flatnonzero(ps.observed)
+        count[o] += ps.sums.n
+        total[o] += ps.sums.n * ps.sums.mean
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = total / count
+    cross = np.zeros((p, p))
+    pairs = np.zeros((p, p))
+    for ps in patterns:
+        o = np.flatnonzero(ps.observed)
+        d = ps.sums.mean - mean[o]
+        cross[np.ix_(o, o)] += ps.sums.cross + ps.sums.n * np.outer(d, d)
+        pairs[np.ix_(o, o)] += ps.sums.n
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(pairs > 0, cross / np.where(pairs > 0, pairs, 1.0), np.nan)
 
 
 
@@ -346,9 +468,9 @@ class _Run:
     """One call of :meth:`PathEstimator.estimate`: what every correction reads, and where it
     writes its estimates (``out``), its fits and the extras the report needs."""
 
-    X: np.ndarray
+    rows: Any                             # the items' rows (ItemRows; a replicate's moments under weights)
     compute_se: bool
-    data: Moments | RawData               # the items, for the models
+    data: Moments | PatternData           # the items, for the models
     scorr: np.ndarray                     # scale-score correlations (score_names order)
     sidx: dict[str, int]
     n_s: int
@@ -356,8 +478,8 @@ class _Run:
     var: dict[str, float]                 # scale-score variances
     alpha: dict[str, float | None]
     omega: dict[str, float | None]
-    score_rows: tuple[np.ndarray, list[str]]
-    item_rows: tuple[np.ndarray, list[str]]
+    score_rows: ItemRows | None           # the scale scores' rows, for robust SEs (None: no rows)
+    item_rows: ItemRows | None
     out: dict[Key, Estimate]
     fits: dict[str, FitResult]
     extra: dict[str, Any]

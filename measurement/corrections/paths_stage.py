@@ -55,9 +55,8 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
         use_measured=bool(mm and mm["status"] == "ok"),
         r_m_rule=mv["marker"]["r_m_rule"] if mv.get("marker") else "smallest",
         time_limit=opts.fit_time_limit, n_starts=opts.n_starts, seed=opts.seed)
-    frame = plan.frame if list(plan.frame.columns) == estimator.items else plan.frame[estimator.items]
-    X = frame.to_numpy(dtype=float)  # a view of the frame's one float block where it has one
-    full, extra = estimator.estimate(X, compute_se=True, moments=plan.moments(estimator.items))
+    rows = plan.rows  # read a block at a time; the models take moments or per-pattern sums
+    full, extra = estimator.estimate(rows, compute_se=True, moments=plan.moments(estimator.items))
     fits.update(extra["fits"])
     estimator.warm = dict(extra["fits"])
     said += [Notice("paths", n) for n in estimator.notes]
@@ -74,7 +73,7 @@ def paths_section(design: Design, plan: MissingPlan, opts: AnalysisOptions, fits
         from samesource.executor import default_executor
 
         ex = executor or default_executor(n_boot)
-        boot = bootstrap(estimator, X, n_boot=n_boot, seed=opts.seed, confidence=opts.confidence,
+        boot = bootstrap(estimator, rows, n_boot=n_boot, seed=opts.seed, confidence=opts.confidence,
                          executor=ex, progress=progress, estimate=estimator.vector(full),
                          names=[f"{m} estimate of {o} on {x}" for m, o, x in estimator.keys])
         said += [Notice("bootstrap", n) for n in boot.notes]

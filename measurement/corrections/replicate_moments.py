@@ -14,14 +14,19 @@ of ``ROW_BLOCK`` rows at a time so memory stays bounded. The columns are centred
 sample's means first, so the products do not lose digits to large means (the covariance is
 shift-invariant).
 
+The rows are read a block at a time (:class:`~samesource.input.rows.ItemRows`) and so are the
+weights: a replicate's draw counts come one draw block at a time
+(:class:`~samesource.corrections.bootstrap.ReplicateWeights`), so memory is that of a block of
+rows and of a block of weights per replicate held, whatever the number of rows.
+
 Reproducibility: batches are fixed runs of replicate numbers (``BATCH`` r apart; a short last
 batch is padded with zero weights, so every product has the same shape) and rows enter in
 fixed blocks, single-threaded, so a replicate's matrix is the same bit for bit whatever the
 chunk it is computed in, the executor, the number of workers or of replicates.
 
-Not for incomplete rows: FIML fits the raw rows, which weights would need the fitting
-engine to accept (it does not), so the bootstrap resamples rows whenever data have a missing
-cell.
+Not for incomplete rows: FIML fits per-pattern sums of the rows, which weights would need
+per pattern and per replicate; the bootstrap then resamples rows (for ItemRows: each block's
+rows repeated as often as drawn, corrections/paths.py ``ResampledRows``).
 """
 
 from __future__ import annotations
@@ -30,13 +35,18 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 
 from samesource.corrections.paths import PathEstimator
 from samesource.engine.robust_se import pair_products
+from samesource.input.rows import FrameRows, ItemRows
 
 BATCH = 32  # replicates per matrix product (and the unit chunks are rounded to)
 ROW_BLOCK = 4096  # rows per block of pair products
-WEIGHT_BYTES = 256 * 2**20  # weights held at once; F is formed once per pass (at 100,000 rows: 320 replicates)
+READ_ROWS = 16 * ROW_BLOCK  # rows read at a time (a multiple of ROW_BLOCK: the same blocks of products)
+# Weights held at once: a pass holds its replicates' weights of one read block (float64) and
+# forms the pair products once: 512 replicates a pass at READ_ROWS rows.
+WEIGHT_BYTES = 256 * 2**20
 
 
 @dataclass(frozen=True)
@@ -47,67 +57,70 @@ class ReplicateMoments:
     n: int
     mean: np.ndarray  # (p,)
     cov: np.ndarray  # (p, p)
+    names: tuple[str, ...] = ()  # the columns (the rows' names; empty: as the estimator's items)
 
 
-def weighted_moments(X: np.ndarray, count: int,
-                     weights: Callable[[int, int], np.ndarray]) -> list[ReplicateMoments]:
-    """The moments of ``count`` weighted replicates of the complete rows ``X`` (n x p);
-    ``weights(first, stop)`` gives the weight rows of replicates first..stop-1 ((stop -
-    first) x n: draw counts, or 0/1 for deletions). Weights are asked for in passes of at
-    most :data:`WEIGHT_BYTES`; each pass forms the pair products once and multiplies them by
-    :data:`BATCH` weight rows at a time (see the module docstring)."""
-    X = np.asarray(X, dtype=float)
-    n, p = X.shape
-    center = X.mean(axis=0)
+def weighted_moments(rows: ItemRows | np.ndarray, count: int,
+                     weights: Callable[[int, int], Callable[[int, int], np.ndarray]]) -> list[ReplicateMoments]:
+    """The moments of ``count`` weighted replicates of the complete rows (ItemRows, or an
+    n x p array); ``weights(first, stop)`` gives, for replicates first..stop-1, a function
+    ``w(start, end)`` of their weights of rows start..end-1 ((stop - first) x (end - start):
+    draw counts, or 0/1 for deletions). Replicates are taken in passes whose weights of one
+    read block fit :data:`WEIGHT_BYTES`; each pass reads the rows once, forms their pair
+    products once and multiplies them by :data:`BATCH` weight rows at a time (see the module
+    docstring)."""
+    names = tuple(rows.names) if isinstance(rows, ItemRows) else ()  # an array's columns are positional
+    if not isinstance(rows, ItemRows):
+        X = np.asarray(rows, dtype=float)
+        rows = FrameRows(pd.DataFrame(X, columns=[str(j) for j in range(X.shape[1])], copy=False))
+    n, p = len(rows), len(rows.names)
+    total = np.zeros(p)
+    for _, X in rows.blocks(size=READ_ROWS):
+        total += X.sum(axis=0)
+    center = total / n
     iu, ju = np.triu_indices(p)
     sums = np.zeros((count, p + iu.size))
     totals = np.zeros(count)
-    per_pass = max(BATCH, (WEIGHT_BYTES // (8 * max(n, 1))) // BATCH * BATCH)
+    per_pass = max(BATCH, (WEIGHT_BYTES // (8 * min(max(n, 1), READ_ROWS))) // BATCH * BATCH)
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1, user_api="blas"):  # the same sums in every process
         for first in range(0, count, per_pass):
             stop = min(first + per_pass, count)
-            W = np.asarray(weights(first, stop), dtype=float)
-            if W.shape != (stop - first, n):
-                raise ValueError(f"weights are {W.shape}, expected ({stop - first}, {n})")
-            totals[first:stop] = W.sum(axis=1)
-            for s, F in _pair_blocks(X, center, iu, ju):
+            w = weights(first, stop)
+            for s, F in _pair_blocks(rows, center, iu, ju):
+                W = np.asarray(w(s, s + F.shape[0]), dtype=float)
+                if W.shape != (stop - first, F.shape[0]):
+                    raise ValueError(f"weights are {W.shape}, expected ({stop - first}, {F.shape[0]})")
+                totals[first:stop] += W.sum(axis=1)
                 for b in range(first, stop, BATCH):
                     e = min(b + BATCH, stop)
-                    part = W[b - first:e - first, s:s + F.shape[0]]
+                    part = W[b - first:e - first]
                     if e - b < BATCH:  # a short last batch, padded: the same product shape always
                         part = np.vstack([part, np.zeros((BATCH - (e - b), part.shape[1]))])
                     sums[b:e] += (part @ F)[:e - b]
     out = []
     for r in range(count):
-        total = float(totals[r])
-        m = sums[r, :p] / total
+        total_r = float(totals[r])
+        m = sums[r, :p] / total_r
         cross = np.empty((p, p))
-        cross[iu, ju] = sums[r, p:] / total
+        cross[iu, ju] = sums[r, p:] / total_r
         cross[ju, iu] = cross[iu, ju]
-        out.append(ReplicateMoments(n=int(round(total)), mean=center + m, cov=cross - np.outer(m, m)))
+        out.append(ReplicateMoments(n=int(round(total_r)), mean=center + m, cov=cross - np.outer(m, m),
+                                    names=names))
     return out
 
 
-def _pair_blocks(X: np.ndarray, center: np.ndarray, iu: np.ndarray, ju: np.ndarray
+def _pair_blocks(rows: ItemRows, center: np.ndarray, iu: np.ndarray, ju: np.ndarray
                  ) -> Iterator[tuple[int, np.ndarray]]:
-    p = X.shape[1]
-    buf = np.empty((min(ROW_BLOCK, X.shape[0]), p + iu.size))  # one buffer for every block (each is used up first)
-    for s in range(0, X.shape[0], ROW_BLOCK):
-        F = buf[:min(ROW_BLOCK, X.shape[0] - s)]
-        np.subtract(X[s:s + ROW_BLOCK], center, out=F[:, :p])
-        pair_products(F[:, :p], out=F[:, p:])
-        yield s, F
-
-
-def draw_counts(rows: Callable[[int], np.ndarray], replicates: range, n: int) -> np.ndarray:
-    """Multinomial draw counts of the given replicates (one row each): the rows replicate r
-    draws, ``rows(r)``, counted, so the weights stand for the very same resample."""
-    W = np.empty((len(replicates), n))
-    for i, r in enumerate(replicates):
-        W[i] = np.bincount(rows(r), minlength=n)
-    return W
+    p = len(center)
+    buf = np.empty((ROW_BLOCK, p + iu.size))  # one buffer for every block (each is used up first)
+    for start, X in rows.blocks(size=READ_ROWS):
+        for s in range(0, X.shape[0], ROW_BLOCK):
+            F = buf[:min(ROW_BLOCK, X.shape[0] - s)]
+            np.subtract(X[s:s + ROW_BLOCK], center, out=F[:, :p])
+            pair_products(F[:, :p], out=F[:, p:])
+            yield start + s, F
 
 
 def moment_form(statistic):
@@ -137,16 +150,21 @@ class MomentPathEstimator(PathEstimator):
         if isinstance(X, ReplicateMoments):
             from samesource.engine.fitting import Moments
 
-            return Moments(names=tuple(self.items), cov=X.cov, n=X.n), X.cov
+            cov = X.cov
+            if X.names and list(X.names) != self.items:  # the rows hold more columns, or in another order
+                idx = [X.names.index(i) for i in self.items]
+                cov = cov[np.ix_(idx, idx)]
+            return Moments(names=tuple(self.items), cov=cov, n=X.n), cov
         return super()._item_data(X, moments)
 
     def _scores(self, X):
         if isinstance(X, ReplicateMoments):
+            _, cov = self._item_data(X)
             A = np.zeros((len(self.score_names), len(self.items)))
             for k, c in enumerate(self.score_names):
                 cols = [self.col[i] for i in self.design.constructs[c].items]
                 A[k, cols] = 1.0 / len(cols)
-            return A @ X.cov @ A.T, X.n, None   # no rows: replicates need no robust SEs
+            return A @ cov @ A.T, X.n, None   # no rows: replicates need no robust SEs
         return super()._scores(X)
 
     def from_moments(self, m: ReplicateMoments) -> np.ndarray:
@@ -154,5 +172,5 @@ class MomentPathEstimator(PathEstimator):
         return self.vector(est)
 
 
-__all__ = ["ReplicateMoments", "weighted_moments", "draw_counts", "moment_form",
+__all__ = ["ReplicateMoments", "weighted_moments", "moment_form",
            "MomentPathEstimator", "BATCH", "ROW_BLOCK"]

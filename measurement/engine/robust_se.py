@@ -21,16 +21,21 @@ With complete rows and the sample means (ML on a covariance matrix), each score 
 form in the row's deviations, s_ik = d_i' Q_k d_i - c_k, so the meat B = sum_i s_i s_i' needs
 only the rows' fourth-order moments: with v_i the products d_ij d_il (j <= l) of a row,
 B = Q'(sum v v')Q - (Q' sum v) c' - c (sum v)'Q + n c c'. :func:`pair_moments` forms sum v v'
-once for the rows (one BLAS pass, a block of rows at a time), and every model fitted to those
-rows or to a subset of their columns takes its meat from it, without a pass over the rows.
+once for the rows (two passes over ItemRows, a block of rows at a time: the means, then the
+pair products), and every model fitted to those rows or to a subset of their columns takes
+its meat from it, without another pass over the rows. FIML's casewise scores are summed a
+block of rows at a time too.
 """
 
 from __future__ import annotations
 
 import math
+import os
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 
 from samesource.engine.fitting import (  # the engine's own helpers
     FitResult,
@@ -42,6 +47,7 @@ from samesource.engine.fitting import (  # the engine's own helpers
     delta_method,
 )
 from samesource.engine.patterns import row_patterns, rows_by_pattern
+from samesource.input.rows import FrameRows, ItemRows
 
 
 @dataclass(frozen=True)
@@ -100,28 +106,110 @@ def pair_products(D: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
 
 # Rows per block of pair products (at 25 columns, 325 products: about 40 MB a block).
 PAIR_BLOCK_ROWS = 16_384
+# Partial sums of the pair products: block i goes to partial sum i % PAIR_PARTS, and the parts
+# are added in order at the end, so the sums are the same bit for bit whether one thread or
+# PAIR_PARTS threads form them.
+PAIR_PARTS = 2
 
 
-def pair_moments(X: np.ndarray, names: tuple[str, ...] | list[str]) -> PairMoments:
-    """:class:`PairMoments` of the complete rows ``X`` (columns named by ``names``). Raises
-    ``ValueError`` when a cell is missing (FIML's scores need the rows)."""
+def as_rows(X: np.ndarray | ItemRows, names: Sequence[str]) -> ItemRows:
+    """``X`` as :class:`~samesource.input.rows.ItemRows` (an array's columns named ``names``)."""
+    if isinstance(X, ItemRows):
+        return X
     X = np.asarray(X, dtype=float)
-    if np.isnan(X).any():
-        raise ValueError("pair moments need complete rows")
-    n, p = X.shape
-    mean = X.mean(axis=0)
-    iu, ju = np.triu_indices(p)
-    sums = np.zeros(iu.size)
-    cross = np.zeros((iu.size, iu.size))
-    # One BLAS thread, as in the fits: on two busy cores OpenBLAS's second thread made this
-    # product 4 to 16 times slower (measured), not faster.
+    if X.ndim != 2 or X.shape[1] != len(names):
+        raise ValueError(f"rows are {X.shape}, expected {len(names)} columns")
+    return FrameRows(pd.DataFrame(X, columns=list(names), copy=False))
+
+
+def pair_moments(rows: ItemRows | np.ndarray, names: Sequence[str] | None = None, *,
+                 threads: int | None = None) -> PairMoments:
+    """:class:`PairMoments` of complete rows: ``rows`` an :class:`~samesource.input.rows.ItemRows`
+    (``names``: the columns to use, default all) or an array whose columns ``names`` names.
+    Two passes over the rows, a block at a time: the column means, then the pair products
+    of the deviations. Raises ``ValueError`` when a cell is missing (FIML's scores need the
+    rows). ``threads``: how many threads form the pair products (default: up to
+    :data:`PAIR_PARTS`, as many cores as this process may use); the sums do not depend on it."""
+    if not isinstance(rows, ItemRows):
+        if names is None:
+            raise ValueError("an array of rows needs its column names")
+        rows, names = as_rows(rows, names), None
+    cols = list(rows.names) if names is None else list(names)
+    p = len(cols)
+    n = 0
+    total = np.zeros(p)
+    for _, X in rows.blocks(cols, size=PAIR_BLOCK_ROWS):
+        if np.isnan(X).any():
+            raise ValueError("pair moments need complete rows")
+        n += X.shape[0]
+        total += X.sum(axis=0)
+    if n == 0:
+        raise ValueError("pair moments need at least one row")
+    mean = total / n
+    if threads is None:
+        threads = min(PAIR_PARTS, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1)
+    q = p * (p + 1) // 2
+    parts = [(np.zeros(q), np.zeros((q, q))) for _ in range(PAIR_PARTS)]
+
+    def add(part: tuple[np.ndarray, np.ndarray], X: np.ndarray) -> None:
+        V = pair_products(X - mean)
+        part[0][:] += V.sum(axis=0)
+        part[1][:] += V.T @ V  # one symmetric rank-k update (numpy hands A'A to syrk)
+
+    blocks = (X for _, X in rows.blocks(cols, size=PAIR_BLOCK_ROWS))
+    # One BLAS thread per thread, as in the fits: on two busy cores OpenBLAS's own second thread
+    # made this product 4 to 16 times slower (measured), not faster. Our own threads instead
+    # split the blocks (numpy releases the GIL in the products).
     with _single_threaded_blas():
-        for start in range(0, n, PAIR_BLOCK_ROWS):
-            D = X[start:start + PAIR_BLOCK_ROWS] - mean
-            V = pair_products(D)
-            sums += V.sum(axis=0)
-            cross += V.T @ V  # one symmetric rank-k update (numpy hands A'A to syrk)
-    return PairMoments(names=tuple(names), n=n, mean=mean, sums=sums, cross=cross)
+        if threads <= 1 or n <= PAIR_BLOCK_ROWS:
+            for i, X in enumerate(blocks):
+                add(parts[i % PAIR_PARTS], X)
+        else:
+            _in_threads(blocks, parts, add, min(threads, PAIR_PARTS))
+    sums = parts[0][0].copy()
+    cross = parts[0][1].copy()
+    for s, c in parts[1:]:
+        sums += s
+        cross += c
+    return PairMoments(names=tuple(cols), n=n, mean=mean, sums=sums, cross=cross)
+
+
+def _in_threads(blocks, parts, add, threads: int) -> None:
+    """``add(parts[i % len(parts)], block_i)`` for every block, ``threads`` threads each taking
+    its own parts (so each part sums its blocks in order, as one thread would)."""
+    import queue
+    import threading
+
+    queues: list[queue.Queue] = [queue.Queue(maxsize=2) for _ in range(threads)]
+    errors: list[BaseException] = []
+
+    def work(k: int) -> None:
+        while True:
+            item = queues[k].get()
+            if item is None:
+                return
+            i, X = item
+            if not errors:
+                try:
+                    add(parts[i % len(parts)], X)
+                except BaseException as exc:  # re-raised in the calling thread
+                    errors.append(exc)
+
+    workers = [threading.Thread(target=work, args=(k,), daemon=True) for k in range(threads)]
+    for w in workers:
+        w.start()
+    try:
+        for i, X in enumerate(blocks):
+            if errors:
+                break
+            queues[(i % len(parts)) % threads].put((i, X))
+    finally:
+        for q in queues:
+            q.put(None)
+        for w in workers:
+            w.join()
+    if errors:
+        raise errors[0]
 
 
 def _meat_from_pairs(fit: FitResult, pm: PairMoments) -> np.ndarray | None:
@@ -148,11 +236,12 @@ def _meat_from_pairs(fit: FitResult, pm: PairMoments) -> np.ndarray | None:
     return Qz.T @ G @ Qz - np.outer(t, cz) - np.outer(cz, t) + pm.n * np.outer(cz, cz)
 
 
-def casewise_scores(fit: FitResult, X: np.ndarray) -> np.ndarray:
+def casewise_scores(fit: FitResult, X: np.ndarray | ItemRows) -> np.ndarray:
     """Scores of every respondent's log-likelihood with respect to the fit's estimated
     quantities: the free parameters, then (FIML) the saturated means. ``X`` has the rows the
-    model was fitted to, columns in ``fit.spec.observed`` order, NaN for a missing answer.
-    At the ML estimate they sum to (about) zero over respondents."""
+    model was fitted to: an array with columns in ``fit.spec.observed`` order, NaN for a
+    missing answer, or ItemRows holding those columns. At the ML estimate they sum to (about)
+    zero over respondents."""
     return np.vstack(list(_score_blocks(fit, X)))
 
 
@@ -160,27 +249,38 @@ def casewise_scores(fit: FitResult, X: np.ndarray) -> np.ndarray:
 SCORE_BLOCK_ROWS = 65_536
 
 
-def _score_blocks(fit: FitResult, X: np.ndarray, block: int = SCORE_BLOCK_ROWS):
-    """:func:`casewise_scores` a block of rows at a time (the same rows, in order)."""
+def _score_blocks(fit: FitResult, X: np.ndarray | ItemRows, block: int = SCORE_BLOCK_ROWS
+                  ) -> Iterator[np.ndarray]:
+    """:func:`casewise_scores` a block of rows at a time (the same rows, in order; rows with
+    no answer on the model's variables are left out, as the fit left them out)."""
     st = fit._structure or _Structure(fit.spec)
-    X = np.asarray(X, dtype=float)
-    obs = ~np.isnan(X)
-    keep = obs.any(axis=1)
-    X, obs = X[keep], obs[keep]
+    cols = list(st.observed)
+    rows = as_rows(X, cols)
     E, Om = st.moments(fit.x)
     p = st.p
     Sig = Om[:p, :p]
     Amat, Bmat = st.deriv_vectors(E, Om)
     fiml = fit.means is not None
-    mu = fit.means.to_numpy(dtype=float) if fiml else X.mean(axis=0)
+    if fiml:
+        mu = fit.means.to_numpy(dtype=float)
+    else:  # an ML fit: its rows' means (a first pass)
+        total, count = np.zeros(p), 0
+        for _, Xb in rows.blocks(cols, size=block):
+            Xb = Xb[~np.isnan(Xb).all(axis=1)]
+            total += Xb.sum(axis=0)
+            count += Xb.shape[0]
+        mu = total / max(count, 1)
     weights: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}  # per pattern: W and its constant
-    for start in range(0, max(X.shape[0], 1), block):
-        Xb, ob = X[start:start + block], obs[start:start + block]
+    for _, Xb in rows.blocks(cols, size=block):
+        ob = ~np.isnan(Xb)
+        keep = ob.any(axis=1)
+        if not keep.all():
+            Xb, ob = Xb[keep], ob[keep]
         n = Xb.shape[0]
         s_theta = np.zeros((n, Amat.shape[1]))
         s_mu = np.zeros((n, p))
         pats, inv = row_patterns(ob)
-        for pat, rows in zip(pats, rows_by_pattern(inv, len(pats)), strict=True):
+        for pat, sel in zip(pats, rows_by_pattern(inv, len(pats)), strict=True):
             key = pat.tobytes()
             if key not in weights:
                 o = np.flatnonzero(pat)
@@ -188,16 +288,19 @@ def _score_blocks(fit: FitResult, X: np.ndarray, block: int = SCORE_BLOCK_ROWS):
                 W[np.ix_(o, o)] = np.linalg.inv(Sig[np.ix_(o, o)])
                 weights[key] = (W, np.sum(Amat * (W @ Bmat), axis=0))
             W, c = weights[key]
-            D = np.where(ob[rows], Xb[rows] - mu, 0.0)
+            D = np.where(ob[sel], Xb[sel] - mu, 0.0)
             U = D @ W
-            s_theta[rows] = (U @ Amat) * (U @ Bmat) - c
-            s_mu[rows] = U
+            s_theta[sel] = (U @ Amat) * (U @ Bmat) - c
+            s_mu[sel] = U
         scores = s_theta @ st.Z.T
         yield np.hstack([scores, s_mu]) if fiml else scores
 
 
-def robust_se(fit: FitResult, X: np.ndarray | PairMoments, *, time_limit: float = 30.0) -> RobustSE | None:
-    """Sandwich SEs of a fit from the rows it was fitted to (see the module docstring), or,
+def robust_se(fit: FitResult, X: np.ndarray | ItemRows | PairMoments, *,
+              time_limit: float = 30.0) -> RobustSE | None:
+    """Sandwich SEs of a fit from the rows it was fitted to (an array with columns in
+    ``fit.spec.observed`` order, or ItemRows holding those columns; see the module docstring,
+    the casewise scores summed a block of rows at a time), or,
     for an ML fit to complete rows, from their :class:`PairMoments` (the same numbers without
     a pass over the rows).
 
@@ -221,6 +324,8 @@ def robust_se(fit: FitResult, X: np.ndarray | PairMoments, *, time_limit: float 
             if S.shape[1] != A_inv.shape[0]:
                 return None   # an ML fit's inverse information covers the parameters only
             SS = S.T @ S if SS is None else SS + S.T @ S
+        if SS is None:
+            return None
     V = A_inv @ SS @ A_inv
     q = fit.x.size
     cov = (V[:q, :q] + V[:q, :q].T) / 2.0

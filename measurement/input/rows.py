@@ -72,6 +72,11 @@ class FrameRows(ItemRows):
         # One float64 block is a view of the frame's own memory; anything else is copied once.
         self._values = frame.to_numpy(dtype=float)
 
+    def __reduce__(self):
+        # pickled (a bootstrap chunk for a worker) as the frame alone, not the frame and its
+        # values again: the values are formed anew from it
+        return (FrameRows, (self.frame,))
+
     def __len__(self) -> int:
         return self._values.shape[0]
 

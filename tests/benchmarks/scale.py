@@ -99,8 +99,8 @@ def child_covariances(path: str, items: list[str], replicates: int) -> dict:
     import numpy as np
     import pandas as pd
 
-    from samesource.corrections.bootstrap import replicate_indices
-    from samesource.corrections.replicate_moments import draw_counts, weighted_moments
+    from samesource.corrections.bootstrap import ReplicateWeights, replicate_indices
+    from samesource.corrections.replicate_moments import weighted_moments
 
     X = pd.read_csv(path)[items].to_numpy(dtype=float)
     n = len(X)
@@ -110,8 +110,7 @@ def child_covariances(path: str, items: list[str], replicates: int) -> dict:
         np.cov(X[replicate_indices(1, r, n)], rowvar=False, bias=True)
     rows = (time.perf_counter() - t0) / k
     t0 = time.perf_counter()
-    weighted_moments(X, replicates, lambda a, b: draw_counts(lambda r: replicate_indices(1, r, n),
-                                                             range(a, b), n))
+    weighted_moments(X, replicates, lambda a, b: ReplicateWeights(1, range(a, b), n))
     weighted = (time.perf_counter() - t0) / replicates
     return {"rows_ms": rows * 1000, "weighted_ms": weighted * 1000, "replicates": replicates}
 
