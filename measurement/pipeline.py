@@ -89,8 +89,7 @@ def analyze(
     total = len(STAGES)
 
     step("load", 0, total)
-    table = read_data(data, name=name, sheet=opts.sheet)
-    prepared = prepare_with_sources(table, dsg, load_sources(sources))
+    table, prepared = read_prepared(data, dsg, sources=sources, name=name, sheet=opts.sheet)
     same = dsg.main_part()  # the main file's constructs: the same-source checks look at these
 
     step("screen", 1, total)
@@ -140,6 +139,38 @@ def analyze(
     report["timings"] = clock.finish()
     step("report", total, total)
     return Analysis(report=report, prepared=prepared, plan=plan, fits=dict(fits))
+
+
+# A plain CSV file at least this large is read a block of lines at a time, its answers kept as
+# one byte per cell (measurement/input/streamed.py): the same numbers in a fraction of the
+# memory. SAMESOURCE_STREAM_MB sets it (0: every plain CSV file).
+STREAM_BYTES = 256 * 2**20
+
+
+def stream_bytes() -> int:
+    """The size from which a plain CSV file is read beyond memory (SAMESOURCE_STREAM_MB)."""
+    raw = os.environ.get("SAMESOURCE_STREAM_MB", "").strip()
+    try:
+        return STREAM_BYTES if not raw else max(0, int(float(raw) * 2**20))
+    except ValueError:
+        return STREAM_BYTES
+
+
+def read_prepared(data: Data, design: Design, *, sources: Mapping[str, Any] | None = None,
+                  name: str | None = None, sheet: str | int | None = None) -> tuple[LoadedTable, PreparedData]:
+    """The data read and prepared: a big plain CSV file a block at a time (``stream_bytes``), anything
+    else in memory (also a file the streamed reader declines: ``NotStreamable`` says why)."""
+    from samesource.input.streamed import NotStreamable, prepare_streamed
+
+    if not sources and isinstance(data, str | os.PathLike) and os.path.isfile(data) \
+            and os.path.getsize(data) >= stream_bytes():
+        try:
+            prepared = prepare_streamed(data, design, name=name)
+            return prepared.table, prepared
+        except NotStreamable:
+            pass  # read in memory, where every case has its message
+    table = read_data(data, name=name, sheet=sheet)
+    return table, prepare_with_sources(table, design, load_sources(sources))
 
 
 def method_variance_stage(design: Design, plan: MissingPlan, opts: AnalysisOptions,

@@ -85,6 +85,26 @@ def test_report_json_is_unchanged_on_the_sample_survey(case):
     assert not diffs, f"{len(diffs)} differences from the pinned report ({case}):\n" + "\n".join(diffs[:40])
 
 
+def test_the_file_read_a_block_at_a_time_gives_the_same_report(monkeypatch):
+    # Every plain CSV file streamed (SAMESOURCE_STREAM_MB=0): the answers kept one byte a cell
+    # (measurement/input/streamed.py) and every stage reading them a block at a time give the
+    # pinned FIML report, and no stage builds the answers' DataFrame.
+    from samesource.input import streamed
+
+    monkeypatch.setenv("SAMESOURCE_STREAM_MB", "0")
+    keeps = streamed.StreamedPreparedData.items.fset  # the reader sets it empty; reading it is the fault
+    monkeypatch.setattr(streamed.StreamedPreparedData, "items", property(_no_frame, keeps))
+    want = json.loads((DATA / "pinned_report_fiml.json").read_text(encoding="utf-8"))
+    got = _report(CASES["fiml"])
+    assert got["data"]["format"] == want["data"]["format"]
+    diffs = _differences(got, want)
+    assert not diffs, f"{len(diffs)} differences from the pinned report (streamed):\n" + "\n".join(diffs[:40])
+
+
+def _no_frame(self):
+    raise AssertionError("a stage built the answers' DataFrame of a streamed file")
+
+
 def test_the_comparison_sees_a_changed_number():
     want = {"a": [1.0, {"b": 2.0}], "tool": {"version": "1"}, "timings": {"load": 1.0}}
     assert _differences({"a": [1.0, {"b": 2.0}], "tool": {"version": "2"}}, want) == []
