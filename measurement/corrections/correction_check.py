@@ -399,8 +399,8 @@ def _run_chunk(chunk: _Chunk) -> _ChunkResult:
     verdict = np.full(size, -1, dtype=np.int64)
     failures: list[str] = []
     for i, r in enumerate(range(chunk.start, chunk.stop)):
-        # a chunk is minutes of work: a run its owner stopped (a deleted dataset's analysis on a
-        # cluster worker, where a task cannot be killed from outside) ends at the next survey
+        # a run its owner stopped (a deleted dataset's analysis on a cluster worker, where a task
+        # cannot be killed from outside) starts no further survey
         if stop_requested():
             raise StopRequested("the work was told to stop")
         rng = replicate_rng(chunk.seed, chunk.scenario, r)
