@@ -88,7 +88,11 @@ VERDICTS = ("none", "minor", "substantial", "undetermined")
 BIAS_OK = 0.05
 COVERAGE_FLOOR = 0.90
 MIN_SUCCESS = 0.80         # share of replicates that must give the estimate
-CHUNKS_PER_WORKER = 4
+# Progress is reported after each wave of this many simulated surveys per worker. Each survey
+# is a task of its own: a wave waits for its slowest task, so tasks of equal size keep every
+# worker busy (chunks cut per scenario from a size set over all scenarios were uneven, 125 and
+# 75 surveys at N = 200, and one worker of two stood idle for a third of the check).
+SURVEYS_PER_WAVE = 4
 
 
 @dataclass(frozen=True)
@@ -395,8 +399,8 @@ def _run_chunk(chunk: _Chunk) -> _ChunkResult:
     verdict = np.full(size, -1, dtype=np.int64)
     failures: list[str] = []
     for i, r in enumerate(range(chunk.start, chunk.stop)):
-        # a chunk is minutes of work: a run its owner stopped (a deleted dataset's analysis on a
-        # cluster worker, where a task cannot be killed from outside) ends at the next survey
+        # a run its owner stopped (a deleted dataset's analysis on a cluster worker, where a task
+        # cannot be killed from outside) starts no further survey
         if stop_requested():
             raise StopRequested("the work was told to stop")
         rng = replicate_rng(chunk.seed, chunk.scenario, r)
@@ -449,9 +453,8 @@ def correction_check(design: Design, prepared: PreparedData, plan: MissingPlan, 
     sim_opts = dataclasses.replace(opts, bootstrap=0, check_corrections=0, sheet=None).to_dict()
     ex = executor or default_executor(n * len(runnable))
     workers = max(1, int(ex.workers))
-    size = max(1, math.ceil(n * len(runnable) / (CHUNKS_PER_WORKER * workers)))
-    chunks = [_Chunk(i, s.population, sim_design, sim_opts, keys, a, min(a + size, n), opts.seed)
-              for i, s in runnable for a in range(0, n, size)]
+    chunks = [_Chunk(i, s.population, sim_design, sim_opts, keys, a, a + 1, opts.seed)
+              for i, s in runnable for a in range(n)]
     results = _map(ex, chunks, workers, progress, n * len(runnable))
 
     P, E = len(keys), len(ESTIMATES)
@@ -529,8 +532,9 @@ def _map(ex: Executor, chunks: list[_Chunk], workers: int, progress, total: int)
     progress(0, total)
     out: list[_ChunkResult] = []
     done = 0
-    for i in range(0, len(chunks), workers):  # waves of one chunk per worker, for progress
-        wave = chunks[i:i + workers]
+    per_wave = SURVEYS_PER_WAVE * workers
+    for i in range(0, len(chunks), per_wave):  # waves, for progress
+        wave = chunks[i:i + per_wave]
         out.extend(ex.map(_run_chunk, wave))
         done += sum(c.stop - c.start for c in wave)
         progress(done, total)
