@@ -21,7 +21,7 @@ class AnalysisOptions:
 
     missing: str = "listwise"        # "listwise" or "fiml" (full-information ML)
     drop_flagged: bool = False       # drop rows flagged by screening before the analysis
-    fit_time_limit: float = 60.0     # seconds, per model fit
+    fit_time_limit: float = 60.0     # CPU seconds of one model fit (its thread's time: load-independent)
     n_starts: int = 4                # starting points per model fit
     confidence: float = 0.95
     bootstrap: int | None = None     # None: the default (a bootstrap only for small samples)

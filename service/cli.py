@@ -36,7 +36,7 @@ def _parser() -> argparse.ArgumentParser:
     a.add_argument("--drop-flagged", action="store_true",
                    help="drop rows that screening flags (by default they are reported and kept)")
     a.add_argument("--fit-time-limit", type=float, default=60.0, metavar="SECONDS",
-                   help="time cap for each model fit (default 60)")
+                   help="cap on the computation of each model fit, in CPU seconds of the fit (the same on a busy or idle machine; default 60)")
     a.add_argument("--bootstrap", type=int, default=None, metavar="N",
                    help="bootstrap replicates for percentile and BCa intervals (default: analytic intervals, "
                         "and 300 replicates when fewer than 200 rows are analysed; 0 for none)")
