@@ -110,6 +110,11 @@ PAIR_BLOCK_ROWS = 16_384
 # are added in order at the end, so the sums are the same bit for bit whether one thread or
 # PAIR_PARTS threads form them.
 PAIR_PARTS = 2
+# Threads forming the pair products by default. Two gave the same sums but were not shown
+# faster in wall time: measured only on a loaded two-core machine (200,000 x 25: 7.8 / 8.8 s
+# with one thread, 6.5 / 9.3 s with two; CPU 1.3-1.4 s against 1.4-2.1 s); measure on a quiet
+# machine before raising this.
+PAIR_THREADS = 1
 
 
 def as_rows(X: np.ndarray | ItemRows, names: Sequence[str]) -> ItemRows:
@@ -128,8 +133,8 @@ def pair_moments(rows: ItemRows | np.ndarray, names: Sequence[str] | None = None
     (``names``: the columns to use, default all) or an array whose columns ``names`` names.
     Two passes over the rows, a block at a time: the column means, then the pair products
     of the deviations. Raises ``ValueError`` when a cell is missing (FIML's scores need the
-    rows). ``threads``: how many threads form the pair products (default: up to
-    :data:`PAIR_PARTS`, as many cores as this process may use); the sums do not depend on it."""
+    rows). ``threads``: how many threads form the pair products (default :data:`PAIR_THREADS`,
+    at most :data:`PAIR_PARTS` and the cores this process may use); the sums do not depend on it."""
     if not isinstance(rows, ItemRows):
         if names is None:
             raise ValueError("an array of rows needs its column names")
@@ -146,8 +151,8 @@ def pair_moments(rows: ItemRows | np.ndarray, names: Sequence[str] | None = None
     if n == 0:
         raise ValueError("pair moments need at least one row")
     mean = total / n
-    if threads is None:
-        threads = min(PAIR_PARTS, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1)
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1
+    threads = min(PAIR_PARTS, cores, PAIR_THREADS if threads is None else threads)
     q = p * (p + 1) // 2
     parts = [(np.zeros(q), np.zeros((q, q))) for _ in range(PAIR_PARTS)]
 
