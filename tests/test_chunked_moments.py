@@ -115,3 +115,33 @@ def test_csv_chunks_give_the_moments_pandas_gives(tmp_path):
     whole = pd.read_csv(path)[ITEMS]   # pandas reference, the whole file at once
     n = len(whole)
     np.testing.assert_allclose(m.cov, whole.cov().to_numpy() * (n - 1) / n, rtol=1e-12, atol=1e-14)
+
+
+def _nbytes(obj) -> int:
+    """Bytes of the arrays an object holds (its dataclass fields, followed into)."""
+    import dataclasses
+
+    if isinstance(obj, np.ndarray):
+        return obj.nbytes
+    if dataclasses.is_dataclass(obj):
+        return sum(_nbytes(getattr(obj, f.name)) for f in dataclasses.fields(obj))
+    return 0
+
+
+def test_rare_patterns_take_about_the_rows_own_bytes_and_a_frequent_one_its_sums():
+    # Scattered gaps: 20,000 rows of 60 items, each answer missing with chance 0.1, so
+    # nearly every row has a pattern of its own (invented data: only the size is checked).
+    # A full k x k cross-product matrix per pattern would be ~20,000 x 54^2 x 8 bytes
+    # (~470 MB); kept as their answers they take at most the rows' own bytes. The 5,000
+    # complete rows are one frequent pattern: its sums, (60^2 + 60) x 8 bytes.
+    rng = np.random.default_rng(15)
+    p = 60
+    X = rng.normal(size=(20_000, p))
+    X[rng.random(X.shape) < 0.1] = np.nan
+    full = rng.normal(size=(5_000, p))
+    parts = pattern_sums(_chunks(np.vstack([X, full]), 4096))
+    assert len(parts) > 19_000
+    complete = [ps for ps in parts if ps.observed.all()]
+    assert len(complete) == 1 and complete[0].sums.n == 5_000
+    assert _nbytes(complete[0]) <= (p * p + p) * 8 + p
+    assert sum(_nbytes(ps) for ps in parts) <= 1.1 * X.nbytes + _nbytes(complete[0])
