@@ -71,12 +71,14 @@ def test_merging_is_order_free_and_empty_chunks_are_nothing():
     np.testing.assert_allclose(ab.cross / ab.n, np.cov(X, rowvar=False, bias=True), rtol=1e-12)
 
 
-def test_pattern_sums_equal_numpy_per_pattern():
+@pytest.mark.parametrize("size", [1, 37])   # one row a chunk: patterns pass k_g rows while merged
+def test_pattern_sums_equal_numpy_per_pattern(size):
     rng = np.random.default_rng(11)
     X = _hs()
     X[rng.random(X.shape) < 0.08] = np.nan
     X[5] = np.nan  # a row with no answer: left out
-    parts = pattern_sums(_chunks(X, 37))
+    parts = pattern_sums(_chunks(X, size))
+    assert any(p.rows is None for p in parts) and any(p.rows is not None for p in parts)
     obs = ~np.isnan(X)
     seen = 0
     for part in parts:
@@ -142,6 +144,10 @@ def test_rare_patterns_take_about_the_rows_own_bytes_and_a_frequent_one_its_sums
     parts = pattern_sums(_chunks(np.vstack([X, full]), 4096))
     assert len(parts) > 19_000
     complete = [ps for ps in parts if ps.observed.all()]
-    assert len(complete) == 1 and complete[0].sums.n == 5_000
+    assert len(complete) == 1 and complete[0].n == 5_000 + int((~np.isnan(X)).all(axis=1).sum())
     assert _nbytes(complete[0]) <= (p * p + p) * 8 + p
     assert sum(_nbytes(ps) for ps in parts) <= 1.1 * X.nbytes + _nbytes(complete[0])
+    # the rows held are the pattern's answers: their sums are numpy's (checked above)
+    one = next(ps for ps in parts if ps.rows is not None)
+    Y = X[(~np.isnan(X) == one.observed).all(axis=1)][:, one.observed]
+    np.testing.assert_array_equal(one.rows, Y)

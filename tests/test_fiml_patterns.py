@@ -16,7 +16,7 @@ import statsmodels.api as sm
 from scipy import stats
 from semopy.examples import holzinger39
 
-from samesource.engine.chunked_moments import pattern_sums
+from samesource.engine.chunked_moments import PatternSums, pattern_sums
 from samesource.engine.fiml import FIMLRows
 from samesource.engine.fitting import (
     RawData,
@@ -105,3 +105,21 @@ def test_complete_rows_give_one_pattern_of_at_most_p_plus_one_pseudo_rows():
     np.testing.assert_allclose(dev.T @ dev / rows.n, np.cov(X, rowvar=False, bias=True), rtol=1e-11)
     items = [f"x{i}" for i in range(1, 10)]
     assert fit_model(_one_factor(items), RawData.from_data(X, items), compute_se=False).converged
+
+
+def test_patterns_held_as_rows_give_the_likelihood_their_sums_give():
+    # Patterns of no more rows than items are held as their rows; the same patterns given
+    # as sums (eigen pseudo-rows) give the same objective and gradient, both scipy's.
+    X = _fertility()
+    st = _Structure(_one_factor(YEARS))
+    pats = pattern_sums([X])
+    assert sum(p.rows is not None for p in pats) > 3 and any(p.rows is None for p in pats)
+    held = _FIMLObjective(st, FIMLRows.from_patterns(pats, X.shape[1]))
+    summed = _FIMLObjective(st, FIMLRows.from_patterns(
+        [PatternSums(p.observed, summed=p.sums) for p in pats], X.shape[1]))
+    x = _point(held, st)
+    assert held.value(x) == pytest.approx(summed.value(x), rel=1e-12)
+    np.testing.assert_allclose(held.gradient(x), summed.gradient(x), rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(held.ac_var, summed.ac_var, rtol=1e-12)
+    assert held.value(x) == pytest.approx(_casewise(X, st.moments(x[: st.q])[1][: st.p, : st.p],
+                                                    x[st.q:]), rel=1e-12)   # scipy's density

@@ -70,11 +70,38 @@ def chunked_moments(chunks: Iterable[np.ndarray], names: Sequence[str]) -> Momen
 
 @dataclass(frozen=True)
 class PatternSums:
-    """The rows of one missing-data pattern: which variables they answered, and the sums of
-    those answers (:class:`MomentSums` over the answered variables)."""
+    """The rows of one missing-data pattern: which variables they answered, and either the
+    sums of those answers (:class:`MomentSums` over the answered variables) or, while the
+    pattern has no more rows than answered variables, the answers themselves (``rows``,
+    n_g x k_g): a k_g x k_g cross-product matrix would then take more than the rows do, and
+    with scattered gaps most patterns are of one or a few rows."""
 
     observed: np.ndarray  # bool (p,)
-    sums: MomentSums
+    summed: MomentSums | None = None
+    rows: np.ndarray | None = None
+
+    @property
+    def n(self) -> int:
+        return self.summed.n if self.rows is None else self.rows.shape[0]
+
+    @property
+    def sums(self) -> MomentSums:
+        """The sums (formed from the rows, each time, when the rows are held)."""
+        return MomentSums.of(self.rows) if self.rows is not None else self.summed
+
+    @classmethod
+    def of(cls, observed: np.ndarray, rows: np.ndarray) -> PatternSums:
+        """A pattern's answers (complete rows on its variables): held as they are up to k_g
+        rows, as sums beyond."""
+        if rows.shape[0] <= rows.shape[1]:
+            return cls(observed, rows=rows)
+        return cls(observed, summed=MomentSums.of(rows))
+
+    def merged(self, other: PatternSums) -> PatternSums:
+        """Both sets of rows (same pattern): rows while they are few, else exact sums."""
+        if self.rows is not None and other.rows is not None:
+            return PatternSums.of(self.observed, np.vstack([self.rows, other.rows]))
+        return PatternSums(self.observed, summed=self.sums.merged(other.sums))
 
 
 class PatternAccumulator:
@@ -89,12 +116,12 @@ class PatternAccumulator:
         pats, inv = row_patterns(obs)
         for pat, rows in zip(pats, rows_by_pattern(inv, len(pats)), strict=True):
             if pat.any():
-                self._merge(pat, MomentSums.of(X[np.ix_(rows, np.flatnonzero(pat))]))
+                self._merge(PatternSums.of(pat.copy(), X[np.ix_(rows, np.flatnonzero(pat))]))
 
-    def _merge(self, pat: np.ndarray, part: MomentSums) -> None:
-        key = np.packbits(pat).tobytes()
+    def _merge(self, part: PatternSums) -> None:
+        key = np.packbits(part.observed).tobytes()
         prev = self._acc.get(key)
-        self._acc[key] = PatternSums(pat.copy(), part if prev is None else prev.sums.merged(part))
+        self._acc[key] = part if prev is None else prev.merged(part)
 
     def result(self) -> list[PatternSums]:
         if not self._acc:
@@ -126,8 +153,11 @@ def project_patterns(patterns: Sequence[PatternSums], columns: Sequence[int]) ->
             continue
         pos = np.cumsum(ps.observed) - 1          # column -> place among the answered ones
         sel = pos[cols[pat]]
-        s = ps.sums
-        acc._merge(pat, MomentSums(s.n, s.mean[sel], s.cross[np.ix_(sel, sel)]))
+        if ps.rows is not None:
+            acc._merge(PatternSums.of(pat, ps.rows[:, sel]))
+        else:
+            s = ps.summed
+            acc._merge(PatternSums(pat, summed=MomentSums(s.n, s.mean[sel], s.cross[np.ix_(sel, sel)])))
     return acc.result()
 
 

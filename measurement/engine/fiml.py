@@ -14,7 +14,10 @@ sqrt(n_g) mu_o is subtracted. The objective (:class:`~samesource.engine.fitting.
 with its Schur-complement inverses) then runs over at most sum_g (min(n_g - 1, k_g) + 1)
 pseudo-rows: never more than the rows, and a bounded number (patterns x (items + 1)) however
 many rows there are, so the statistics can also be accumulated chunk by chunk
-(:func:`~samesource.engine.chunked_moments.pattern_sums`).
+(:func:`~samesource.engine.chunked_moments.pattern_sums`). A pattern of no more rows than
+items (n_g <= k_g, as many pseudo-rows as rows) is held as its rows, which are then its own
+pseudo-rows, each a mean row of weight 1: sum_i (y_i - mu_o)(y_i - mu_o)' is the same
+C_g + n_g (m_g - mu_o)(m_g - mu_o)'.
 """
 
 from __future__ import annotations
@@ -87,25 +90,30 @@ class FIMLRows:
         ac_sum = np.zeros(p)
         for g, ps in enumerate(patterns):
             o = np.flatnonzero(ps.observed)
-            s = ps.sums
             observed[g] = ps.observed
-            counts[g] = s.n
-            ac_n[o] += s.n
-            ac_sum[o] += s.n * s.mean
-            rank = min(s.n - 1, len(o))
-            rows = np.zeros((0, len(o)))
-            if rank > 0:
-                vals, vecs = np.linalg.eigh((s.cross + s.cross.T) / 2.0)
-                vals, vecs = vals[-rank:], vecs[:, -rank:]
-                pos = vals > 0
-                rows = np.sqrt(vals[pos])[:, None] * vecs[:, pos].T
-            rows = np.vstack([rows, math.sqrt(s.n) * s.mean[None, :]])
+            counts[g] = ps.n
+            ac_n[o] += ps.n
+            if ps.rows is not None:  # few rows, held as they are: their own pseudo-rows
+                rows = ps.rows
+                ac_sum[o] += rows.sum(axis=0)
+                sc = np.ones(rows.shape[0])
+            else:
+                s = ps.summed
+                ac_sum[o] += s.n * s.mean
+                rank = min(s.n - 1, len(o))
+                rows = np.zeros((0, len(o)))
+                if rank > 0:
+                    vals, vecs = np.linalg.eigh((s.cross + s.cross.T) / 2.0)
+                    vals, vecs = vals[-rank:], vecs[:, -rank:]
+                    pos = vals > 0
+                    rows = np.sqrt(vals[pos])[:, None] * vecs[:, pos].T
+                rows = np.vstack([rows, math.sqrt(s.n) * s.mean[None, :]])
+                sc = np.zeros(rows.shape[0])
+                sc[-1] = math.sqrt(s.n)
             full = np.zeros((rows.shape[0], p))
             full[:, o] = rows
             ys.append(full)
             obs.append(np.broadcast_to(ps.observed, full.shape))
-            sc = np.zeros(rows.shape[0])
-            sc[-1] = math.sqrt(s.n)
             scale.append(sc)
             pattern.append(np.full(rows.shape[0], g, dtype=np.intp))
         n = int(counts.sum())
@@ -116,8 +124,11 @@ class FIMLRows:
             dev = np.zeros(p)
             for ps in patterns:
                 o = np.flatnonzero(ps.observed)
-                s = ps.sums
-                dev[o] += np.diag(s.cross) + s.n * (s.mean - ac_mean[o]) ** 2
+                if ps.rows is not None:
+                    dev[o] += np.sum((ps.rows - ac_mean[o]) ** 2, axis=0)
+                else:
+                    s = ps.summed
+                    dev[o] += np.diag(s.cross) + s.n * (s.mean - ac_mean[o]) ** 2
             ac_var = dev / ac_n
         return cls(n=n, dropped=int(dropped), Y0=np.vstack(ys), obs=np.vstack(obs),
                    scale=np.concatenate(scale), pattern=np.concatenate(pattern),
