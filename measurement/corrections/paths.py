@@ -445,17 +445,18 @@ def available_case_cov(patterns: Sequence[PatternSums], p: int) -> np.ndarray:
     total = np.zeros(p)
     for ps in patterns:
         o = np.flatnonzero(ps.observed)
-        count[o] += ps.sums.n
-        total[o] += ps.sums.n * ps.sums.mean
+        count[o] += ps.n
+        total[o] += ps.total
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = total / count
     cross = np.zeros((p, p))
     pairs = np.zeros((p, p))
     for ps in patterns:
         o = np.flatnonzero(ps.observed)
-        d = ps.sums.mean - mean[o]
-        cross[np.ix_(o, o)] += ps.sums.cross + ps.sums.n * np.outer(d, d)
-        pairs[np.ix_(o, o)] += ps.sums.n
+        s = ps.sums   # formed on each use when the pattern holds its rows: once here
+        d = s.mean - mean[o]
+        cross[np.ix_(o, o)] += s.cross + s.n * np.outer(d, d)
+        pairs[np.ix_(o, o)] += s.n
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(pairs > 0, cross / np.where(pairs > 0, pairs, 1.0), np.nan)
 

@@ -85,6 +85,11 @@ class PatternSums:
         return self.summed.n if self.rows is None else self.rows.shape[0]
 
     @property
+    def total(self) -> np.ndarray:
+        """The sum of the answers (n_g m_g), without forming the cross-products."""
+        return self.rows.sum(axis=0) if self.rows is not None else self.summed.n * self.summed.mean
+
+    @property
     def sums(self) -> MomentSums:
         """The sums (formed from the rows, each time, when the rows are held)."""
         return MomentSums.of(self.rows) if self.rows is not None else self.summed

@@ -93,13 +93,12 @@ class FIMLRows:
             observed[g] = ps.observed
             counts[g] = ps.n
             ac_n[o] += ps.n
+            ac_sum[o] += ps.total
             if ps.rows is not None:  # few rows, held as they are: their own pseudo-rows
                 rows = ps.rows
-                ac_sum[o] += rows.sum(axis=0)
                 sc = np.ones(rows.shape[0])
             else:
                 s = ps.summed
-                ac_sum[o] += s.n * s.mean
                 rank = min(s.n - 1, len(o))
                 rows = np.zeros((0, len(o)))
                 if rank > 0:
