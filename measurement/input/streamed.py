@@ -4,7 +4,7 @@
 :class:`~samesource.input.prepare.PreparedData` that ``prepare(load_table(path), design)``
 gives, with the answers kept as one byte per cell (:class:`~samesource.input.rows.CodedRows`)
 and nothing else per row but the row numbers, ids and groups (compactly); the listwise moments
-and FIML's per-pattern sums are accumulated on the way (``sums``). :func:`stream_items`
+and FIML's per-pattern sums are formed from the kept rows on first use (``sums``). :func:`stream_items`
 accumulates those sums alone, keeping no row.
 
 Each block goes through the column-wise reader's own parser (``loading._read_plain``) and
@@ -339,8 +339,8 @@ class _Pass:
             self.vmax = np.fmax(self.vmax, np.nanmax(np.where(gaps, -np.inf, X), axis=0))
         if self.reverse:
             X[:, self.reverse] = self.lo + self.hi - X[:, self.reverse]
-        self.patterns.add(X)   # the complete rows' pattern is also the listwise sums
-        if not self.keep:
+        if not self.keep:  # the sums alone (stream_items); kept rows are summed by whoever reads them
+            self.patterns.add(X)   # the complete rows' pattern is also the listwise sums
             return
         if not codable(X, self.lo, self.hi):
             raise NotStreamable("answers that are not whole numbers (kept one byte per cell only "
@@ -372,12 +372,13 @@ class _Pass:
 
     # ------------------------------------------------------------------ results
     def items(self) -> StreamedItems:
-        sums = self.patterns.result()
-        listwise = next((ps.sums for ps in sums if ps.observed.all()), MomentSums.of(np.empty((0, self.p))))
-        return StreamedItems(source=self.source, items=tuple(self.items_), n_rows=self.n,
-                             missing_cells=self.missing, rows_without_answers=self.empty.count,
-                             scale_min=self.lo, scale_max=self.hi, listwise=listwise,
-                             patterns=tuple(sums), missing_words=self.words)
+        return _summed(self.patterns, self._counts())
+
+    def _counts(self) -> dict:
+        """What StreamedItems says besides the sums."""
+        return dict(source=self.source, items=tuple(self.items_), n_rows=self.n, missing_cells=self.missing,
+                    rows_without_answers=self.empty.count, scale_min=self.lo, scale_max=self.hi,
+                    missing_words=self.words)
 
     def prepared(self, encoding: str, size: int) -> StreamedPreparedData:
         n, design = self.n, self.design
@@ -411,7 +412,7 @@ class _Pass:
         rows = CodedRows(self.codes[:n], self.items_, row_numbers, self.lo)
         return StreamedPreparedData(items=None, ids=ids, groups=groups, scale_min=self.lo, scale_max=self.hi,
                                     scale_source="design", n_rows=n, missing_cells=self.missing,
-                                    warnings=notes, table=table, item_rows=rows, sums=self.items())
+                                    warnings=notes, table=table, item_rows=rows, counts=self._counts())
 
 
 class _FirstRows:
@@ -569,21 +570,40 @@ def _code_cells(cells: np.ndarray, where: dict[str, int], uniques: list[str], ke
     return mapped[local]
 
 
+def _summed(patterns: PatternAccumulator, counts: dict) -> StreamedItems:
+    sums = patterns.result()
+    p = len(counts["items"])
+    listwise = next((ps.sums for ps in sums if ps.observed.all()), MomentSums.of(np.empty((0, p))))
+    return StreamedItems(listwise=listwise, patterns=tuple(sums), **counts)
+
+
 class StreamedPreparedData(PreparedData):
     """:class:`~samesource.input.prepare.PreparedData` of a file read a block of lines at a
     time (:func:`prepare_streamed`): ``rows`` are :class:`~samesource.input.rows.CodedRows`;
     ``ids`` int64 (whole numbers; float64 with NaN where some are blank) or a Categorical of
     the texts, ``groups`` a Categorical of the labels, both indexed by row number;
     ``table`` a :class:`LoadedTable` whose ``frame`` has the file's columns and no rows (what
-    is read of it: the columns' order); ``sums`` the listwise moments and FIML pattern sums.
+    is read of it: the columns' order); ``sums`` the listwise moments and FIML pattern sums (formed on first use).
 
     ``items``, the answers as a float64 DataFrame (8 bytes a cell: 4.8 GB at 10,000,000 x 60),
     is built from the rows on first use, for callers that still read a DataFrame; the stages
     read ``rows`` and never build it."""
 
-    def __init__(self, *, sums: StreamedItems, **fields) -> None:
+    def __init__(self, *, counts: dict, **fields) -> None:
         super().__init__(**fields)
-        self.sums = sums
+        self._counts = counts   # the read's counts, for StreamedItems
+        self._sums: StreamedItems | None = None
+
+    @property
+    def sums(self) -> StreamedItems:
+        """The listwise moments and FIML pattern sums, summed from the rows on first use: the
+        pipeline's missing-data plan sums the rows it analyses itself, so the read does not."""
+        if self._sums is None:
+            acc = PatternAccumulator()
+            for _, X in self.rows.blocks():
+                acc.add(X)
+            self._sums = _summed(acc, self._counts)
+        return self._sums
 
     @property
     def items(self) -> pd.DataFrame:
