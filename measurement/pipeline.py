@@ -90,6 +90,12 @@ def analyze(
 
     step("load", 0, total)
     table, prepared = read_prepared(data, dsg, sources=sources, name=name, sheet=opts.sheet)
+    if opts.check_corrections:  # refused now, not after the analysis it would follow
+        from samesource.corrections.correction_check import scenario_count, size_error
+
+        too_big = size_error(int(prepared.n_rows), opts.check_corrections, scenario_count(dsg))
+        if too_big is not None:
+            raise too_big
     same = dsg.main_part()  # the main file's constructs: the same-source checks look at these
 
     step("screen", 1, total)

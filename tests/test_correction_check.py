@@ -225,3 +225,52 @@ def test_a_stopped_run_ends_its_chunk_before_the_next_survey():
     one = _run_chunk(dataclasses.replace(chunk, stop=1))
     assert one.values.shape == (1, 1, len(ESTIMATES), 3) and not one.failures
     assert np.isfinite(one.values[0, 0, ESTIMATES.index("observed"), 0])
+
+
+def test_the_population_reads_the_answers_a_block_at_a_time_as_in_memory(tmp_path):
+    """The client's answers and gaps, read through the rows, equal pandas' reading of the
+    prepared DataFrame (sorted answers without NaN; isna), and a survey read a block at a time
+    gives the same population without forming its DataFrame of answers."""
+    from samesource.corrections.correction_check import _client_answers, fit_population
+    from samesource.input.streamed import prepare_streamed
+    from samesource.options import AnalysisOptions
+    from samesource.pipeline import analyze
+
+    data, design = small_survey(200, 3)
+    (tmp_path / "s.csv").write_bytes(data)
+    design["response_scale"] = {"min": 1, "max": 7}
+    a = analyze(str(tmp_path / "s.csv"), design, {"missing": "fiml"})
+    items = list(a.prepared.items.columns)
+    answers, missing = _client_answers(a.prepared.rows, items)
+    for it, got in zip(items, answers, strict=True):
+        np.testing.assert_array_equal(got, np.sort(a.prepared.items[it].dropna().to_numpy(dtype=float)))
+    np.testing.assert_array_equal(missing, a.prepared.items[items].isna().to_numpy())
+
+    dsg = parse_design(design)
+    streamed = prepare_streamed(tmp_path / "s.csv", dsg)
+    opts = AnalysisOptions.from_dict({"missing": "fiml"})
+    mv = a.report["method_variance"]
+    want, _ = fit_population(dsg, a.prepared, a.plan, mv, opts)
+    got, _ = fit_population(dsg, streamed, a.plan, mv, opts)
+    assert all(np.array_equal(x, y) for x, y in zip(got.answers, want.answers, strict=True))
+    np.testing.assert_array_equal(got.missing, want.missing)
+    assert streamed._frame is None  # the DataFrame of answers was never formed
+
+
+def test_a_survey_too_large_for_the_check_is_refused_before_the_analysis(tmp_path, monkeypatch):
+    import samesource.corrections.correction_check as cc
+    from samesource.errors import InputError
+    from samesource.pipeline import analyze
+
+    data, design = small_survey(200, 3)
+    (tmp_path / "s.csv").write_bytes(data)
+    monkeypatch.setattr(cc, "MAX_ROWS", 150)
+    seen = []
+    with pytest.raises(InputError) as e:
+        analyze(str(tmp_path / "s.csv"), design, {"check_corrections": 20},
+                progress=lambda stage, done, total: seen.append(stage))
+    assert e.value.field == "options.check_corrections" and e.value.code == "bad_options"
+    assert "200 rows" in e.value.message and "up to 150 rows" in e.value.message
+    assert "100 in all" in e.value.message  # 20 surveys in each of the marker design's 5 scenarios
+    assert set(seen) == {"load"}  # refused before the screen
+    analyze(str(tmp_path / "s.csv"), design, {"check_corrections": 0})  # without the check it runs

@@ -241,6 +241,21 @@ def test_ids_and_groups(tmp_path):
     assert miss["message"].startswith("1 row(s)") and "row 4" in miss["message"]
 
 
+def test_whole_number_ids_give_the_note_text_ids_give(tmp_path):
+    # the same file with ids 17, 23, 17, 40 and with ids "x17", ... : one note, word for word
+    # apart from the id itself (whole-number ids are checked without a label per row)
+    rows = ["1,2,3,4,5", "2,3,4,1,2", "3,2,1,4,2", "4,4,4,4,4"]
+
+    def note(ids):
+        text = "resp,sup1,sup2,sup3,eng1,eng2\n" + "".join(f"{i},{r}\n" for i, r in zip(ids, rows, strict=True))
+        p = prepare(csv_table(tmp_path, text), design(id_column="resp"))
+        return [w["message"] for w in p.warnings if w["code"] == "duplicate_ids"]
+
+    [num] = note([17, 23, 17, 40])
+    [txt] = note(["x17", "x23", "x17", "x40"])
+    assert num == txt.replace("x17", "17") and "rows 2 and 4" in num
+
+
 def test_numeric_group_codes_from_xlsx_become_strings(tmp_path):
     path = tmp_path / "g.xlsx"
     wb = openpyxl.Workbook()

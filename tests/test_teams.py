@@ -11,11 +11,13 @@ import statsmodels.formula.api as smf
 from samesource.output.report_json import dumps
 from samesource.pipeline import analyze
 from samesource.statistics.teams import (
+    _icc1_weighted,
     _ols,
     icc_oneway,
     rwg_j,
     same_source_team_estimate,
     split_team_estimate,
+    team_moments,
     within_between,
 )
 
@@ -105,7 +107,7 @@ def team_survey(seed: int, n_teams: int = 150, method: float = 0.45):
 def test_split_team_estimate_recovers_team_path_without_method_inflation():
     xi, yi, team, truth = team_survey(seed=3)
     scores = np.column_stack([yi.mean(axis=1), xi.mean(axis=1)])
-    split = split_team_estimate(scores, team, splits=100, n_boot=100, seed=1)
+    split = split_team_estimate(scores, team, n_boot=100, seed=1)
     same = same_source_team_estimate(scores, team)
     est = split["estimate"][0]
     assert est == pytest.approx(truth, abs=0.12)
@@ -113,6 +115,63 @@ def test_split_team_estimate_recovers_team_path_without_method_inflation():
     # the same people rating both sides: individual method covariance enters team means
     assert same[0] > truth + 0.05
     assert same[0] > est
+
+
+def _every_split_scatter(x: np.ndarray, team: np.ndarray) -> np.ndarray:
+    """The definition, by brute force: every way to order each team's members (itertools), part
+    j = the members at ranks r with floor(r P / n) = j, column j averaged over part j; the
+    scatter matrix of the part means across teams (numpy.cov), averaged over every combination
+    of the teams' orders."""
+    import itertools
+
+    P = x.shape[1]
+    per_team = []
+    for t in np.unique(team):
+        rows = x[team == t]
+        n = len(rows)
+        part = np.arange(n) * P // n
+        per_team.append([np.array([rows[list(order)][part == j, j].mean() for j in range(P)])
+                         for order in itertools.permutations(range(n))])
+    total, count = np.zeros((P, P)), 0
+    for combo in itertools.product(*per_team):
+        total += np.cov(np.array(combo), rowvar=False) * (len(combo) - 1)
+        count += 1
+    return total / count
+
+
+def test_team_moments_average_every_split_exactly():
+    # Outside reference: the definition enumerated (itertools over every order of every team's
+    # members, numpy.cov of the part means), on a small invented data set (5 teams of 2 to 4).
+    rng = np.random.default_rng(5)
+    team = np.repeat(np.arange(5), [3, 4, 3, 2, 3])
+    x = rng.normal(size=(len(team), 2)) + np.array([3.0, 5.0])
+    x[:, 1] += 0.8 * x[:, 0]
+    want = _every_split_scatter(x, team)
+    tm = team_moments(x, team, 5)
+    w = np.ones(5)
+    A = np.einsum("t,tjk->jk", w, tm.expected)
+    T = w @ tm.mean
+    B = np.einsum("t,tj,tk->jk", w, tm.mean, tm.mean)
+    got = A - (np.outer(T, T) - B + A) / w.sum()
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+    np.testing.assert_array_equal(tm.parts, [[2, 1], [2, 2], [2, 1], [1, 1], [2, 1]])
+
+
+def test_weighted_icc1_equals_icc_on_the_duplicated_rows():
+    # Outside reference: icc_oneway (checked against statsmodels' ANOVA above) on the rows of a
+    # bootstrap sample written out, a team drawn twice entering as two teams.
+    rng = np.random.default_rng(2)
+    y, g = unbalanced_groups(seed=4)
+    J = int(g.max()) + 1
+    x = np.column_stack([y, y + rng.normal(size=len(y))])
+    tm = team_moments(x, g, J)
+    picked = rng.integers(0, J, J)
+    rows = np.concatenate([np.flatnonzero(g == t) for t in picked])
+    copy = np.concatenate([np.full(int((g == t).sum()), k) for k, t in enumerate(picked)])
+    w = np.bincount(picked, minlength=J).astype(float)
+    got = _icc1_weighted(tm, w)
+    for j in range(2):
+        assert got[j] == pytest.approx(icc_oneway(x[rows, j], copy).icc1, rel=1e-10)
 
 
 def test_within_between_difference_detected():

@@ -63,6 +63,7 @@ from samesource.input.design import MAIN, Design
 from samesource.input.loading import LoadedTable
 from samesource.input.missing import MissingPlan
 from samesource.input.prepare import PreparedData
+from samesource.input.rows import ItemRows
 from samesource.options import AnalysisOptions
 
 CHECK_KEY = 0x434B  # spawn-key namespace of the check's replicates (the bootstrap uses (r,))
@@ -93,6 +94,10 @@ MIN_SUCCESS = 0.80         # share of replicates that must give the estimate
 # worker busy (chunks cut per scenario from a size set over all scenarios were uneven, 125 and
 # 75 surveys at N = 200, and one worker of two stood idle for a third of the check).
 SURVEYS_PER_WAVE = 4
+# The largest survey the check runs on: each simulated survey (float64 answers, its table, the
+# analysis's copies) takes about 10 x rows x items x 8 bytes on each worker, 1 GB at 200,000 x
+# 60, and N x 5 analyses of that size take about an hour on two cores (our limit).
+MAX_ROWS = 200_000
 
 
 @dataclass(frozen=True)
@@ -190,16 +195,17 @@ def fit_population(design: Design, prepared: PreparedData, plan: MissingPlan, mv
                 trait_of.append(-1)
                 lam.append(0.0)
             m.append(_std_or_zero(fit, METHOD, it) if has_method else 0.0)
+    answers, missing = _client_answers(prepared.rows, items)
     cov = fit.all_cov.loc[list(traits), list(traits)].to_numpy(dtype=float)
     sd = np.sqrt(np.diag(cov))
     corr = _positive_definite(cov / np.outer(sd, sd), notes)
     pop = Population(
         items=tuple(items), item_source=tuple(design.constructs[design.construct_of(it)].source for it in items),
         traits=traits, trait_of=tuple(trait_of), trait_corr=corr, loadings=np.array(lam), method=np.array(m),
-        method_trait=np.zeros(len(traits)), answers=tuple(_answers(prepared.items[it]) for it in items),
+        method_trait=np.zeros(len(traits)), answers=answers,
         raw_scale=tuple(_scale_of(design, prepared, it) for it in items),
         reverse=tuple(it in design.constructs[design.construct_of(it)].reverse for it in items),
-        missing=prepared.items[list(items)].isna().to_numpy(), n=int(prepared.n_rows),
+        missing=missing, n=int(prepared.n_rows),
         truth={(p.outcome, x): fit.std("reg", p.outcome, x) for p in design.paths for x in p.predictors})
     model = {"name": fit.spec.name, "description": fit.spec.description, "status": fit.status,
              "fit": fit.fit_indices(), "method_share": pop.main_share(), "has_method": has_method, "notes": notes}
@@ -230,8 +236,31 @@ def _std_or_zero(fit, latent: str, item: str) -> float:
         return 0.0
 
 
-def _answers(col: pd.Series) -> np.ndarray:
-    return np.sort(col.dropna().to_numpy(dtype=float))
+def _client_answers(rows: ItemRows, items: list[str]) -> tuple[tuple[np.ndarray, ...], np.ndarray]:
+    """Each item's answers over the client's rows, sorted, and where answers are missing
+    (rows x items), read a block of rows at a time (a survey read a block at a time has no
+    DataFrame of answers)."""
+    parts: list[list[np.ndarray]] = [[] for _ in items]
+    missing = np.empty((len(rows), len(items)), dtype=bool)
+    for start, X in rows.blocks(items):
+        gaps = np.isnan(X)
+        missing[start:start + len(X)] = gaps
+        for j, part in enumerate(parts):
+            part.append(X[~gaps[:, j], j])
+    return tuple(np.sort(np.concatenate(p)) if p else np.empty(0) for p in parts), missing
+
+
+def size_error(n_rows: int, replicates: int, scenarios: int) -> InputError | None:
+    """Why the check cannot run on a survey of ``n_rows`` rows (None when it can): each
+    simulated survey has the client's number of rows and is held in memory while it is analysed."""
+    if n_rows <= MAX_ROWS:
+        return None
+    return InputError(
+        f"the correction check draws {replicates:,} simulated surveys per scenario ({replicates * scenarios:,} in "
+        f"all), each with this survey's {n_rows:,} rows, and analyses each in memory; it runs on surveys of up to "
+        f"{MAX_ROWS:,} rows. Run the analysis without check_corrections, or run the check on a random sample of "
+        f"up to {MAX_ROWS:,} rows: its bias figures describe this design too, its interval coverage a survey of "
+        "the sample's size", code="bad_options", field="options.check_corrections")
 
 
 def _scale_of(design: Design, prepared: PreparedData, item: str) -> tuple[float, float]:

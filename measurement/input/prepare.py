@@ -397,7 +397,7 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
     if design.id_column:
         ids = pd.Series(frame[design.id_column].to_numpy(dtype=object), index=index,
                         name=design.id_column, dtype=object)
-        _check_ids(ids, table, design.id_column, notes)
+        _check_ids(frame[design.id_column], table, design.id_column, notes)
     if design.group_column:
         labels, none = _labels(frame[design.group_column])
         groups = pd.Series(np.where(none, np.nan, labels), index=index, name=design.group_column,
@@ -542,6 +542,15 @@ def _labels(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _check_ids(ids: pd.Series, table: LoadedTable, col: str, notes: list[dict]) -> None:
+    if ids.dtype.kind in "iu":  # whole numbers: distinct numbers are distinct labels, none missing
+        codes, uniques = pd.factorize(ids.to_numpy())
+        counts = np.bincount(codes, minlength=len(uniques))
+        repeated = np.flatnonzero(counts > 1)
+        first = _label(uniques[repeated[0]]) if len(repeated) else None
+        where = ([int(r) for r in np.asarray(table.row_numbers)[codes == repeated[0]]]
+                 if len(repeated) else [])
+        notes += id_notes(table.row_label, col, 0, len(repeated), int(counts[repeated].sum()), first, where)
+        return
     labels, none = _labels(ids)
     codes, uniques = pd.factorize(labels[~none])  # in order of first appearance
     counts = np.bincount(codes, minlength=len(uniques))

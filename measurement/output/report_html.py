@@ -1020,9 +1020,9 @@ def teams_section(report: Report) -> str:
                 split_txt = f'<span class="na">not available: {h(split.note or "the split-group estimate could not be computed")}</span>'
             else:
                 split_txt = num(split.estimate) + (f" {interval(split.ci)}" if split.ci else "")
-            if split.splits is not None:
-                split_txt += (f' <span class="sub">({count(split.splits)} splits, '
-                              f'{count(split.teams_used)} groups)</span>')
+            if split.teams_used is not None:  # splits: None = every split, averaged exactly
+                how = "every split" if split.splits is None else f"{count(split.splits)} splits"
+                split_txt += f' <span class="sub">({how}, {count(split.teams_used)} groups)</span>'
             if split.note and _finite(split.estimate):
                 split_txt += f' <span class="sub">{h(split.note)}</span>'
             rows.append([arrow_title(p.predictor, p.outcome), num(p.within.estimate),
