@@ -13,6 +13,7 @@ from samesource.pipeline import analyze
 from samesource.statistics.teams import (
     _icc1_weighted,
     _ols,
+    group_index,
     icc_oneway,
     rwg_j,
     same_source_team_estimate,
@@ -211,3 +212,14 @@ def test_sample_survey_team_section_and_small_group_protection(tmp_path):
         assert v["icc1"] is None or -0.1 < v["icc1"] < 0.5
     assert {(p["outcome"], p["predictor"]) for p in teams["paths"]} == {
         (p["outcome"], x) for p in design["paths"] for x in p["predictors"]}
+
+
+def test_group_index_is_what_numpy_unique_gives():
+    # outside reference: numpy.unique(return_inverse=True), for integer codes with gaps and for text
+    rng = np.random.default_rng(3)
+    g = rng.choice([0, 2, 3, 7, 40], size=500)
+    for groups in (g, g.astype(np.int32), np.array([f"T{v:02d}" for v in g], dtype=object)):
+        codes, inv = np.unique(groups, return_inverse=True)
+        got_n, got_inv = group_index(groups)
+        assert got_n == len(codes)
+        np.testing.assert_array_equal(got_inv, inv)

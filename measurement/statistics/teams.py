@@ -27,6 +27,18 @@ class ICCResult:
     n0: float  # the ANOVA's average group size for unequal groups
 
 
+def group_index(groups: np.ndarray) -> tuple[int, np.ndarray]:
+    """(number of distinct groups, each row's group number 0.. in sorted order of the groups):
+    what ``np.unique(groups, return_inverse=True)`` gives, without sorting the rows when the
+    groups are already non-negative integer codes (the teams stage's are: one count per code)."""
+    g = np.asarray(groups)
+    if g.dtype.kind in "iu" and (len(g) == 0 or g.min() >= 0):
+        present = np.bincount(g) > 0
+        return int(present.sum()), (np.cumsum(present) - 1)[g]
+    codes, inv = np.unique(g, return_inverse=True)
+    return len(codes), inv
+
+
 def icc_oneway(values: np.ndarray, groups: np.ndarray) -> ICCResult:
     """ICC(1) and ICC(2) from a one-way random-effects ANOVA (Bliese 2000; Shrout & Fleiss
     1979). With unequal group sizes the group size in ICC(1) is the ANOVA's
@@ -39,8 +51,8 @@ def icc_oneway(values: np.ndarray, groups: np.ndarray) -> ICCResult:
     g = np.asarray(groups)
     ok = ~np.isnan(v)
     v, g = v[ok], g[ok]
-    codes, inv = np.unique(g, return_inverse=True)
-    J, N = len(codes), len(v)
+    J, inv = group_index(g)
+    N = len(v)
     n_j = np.bincount(inv)
     means = np.bincount(inv, weights=v) / n_j
     grand = v.mean()
@@ -121,10 +133,8 @@ def _ols(y: np.ndarray, X: np.ndarray, clusters: np.ndarray | None = None) -> tu
     n, k = X.shape
     if clusters is None:
         return b, XtX_inv * float(e @ e) / (n - k)
-    codes, inv = np.unique(clusters, return_inverse=True)
-    G = len(codes)
-    scores = np.zeros((G, k))
-    np.add.at(scores, inv, X * e[:, None])
+    G, inv = group_index(clusters)
+    scores = np.column_stack([np.bincount(inv, weights=X[:, j] * e, minlength=G) for j in range(k)])
     meat = scores.T @ scores
     c = G / (G - 1) * (n - 1) / (n - k)
     return b, c * XtX_inv @ meat @ XtX_inv
@@ -138,7 +148,7 @@ def within_between(y: np.ndarray, X: np.ndarray, groups: np.ndarray) -> dict | N
     random-effects estimate that pools the two is biased. None with fewer than k + 3 teams of
     two or more members."""
     g = np.asarray(groups)
-    codes, inv = np.unique(g, return_inverse=True)
+    _, inv = group_index(g)
     n_j = np.bincount(inv)
 
     def gmean(a: np.ndarray) -> np.ndarray:
@@ -273,7 +283,7 @@ def split_team_estimate(scores: np.ndarray, groups: np.ndarray, *, n_boot: int =
     The interval is the percentile interval of a team bootstrap (teams resampled with
     replacement, ICC(1) re-estimated). Teams need at least two members per part."""
     g = np.asarray(groups)
-    codes, inv = np.unique(g, return_inverse=True)
+    _, inv = group_index(g)
     parts = scores.shape[1]
     n_j = np.bincount(inv)
     eligible = n_j >= 2 * parts
