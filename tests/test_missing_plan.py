@@ -339,3 +339,22 @@ def test_reliability_and_teams_equal_on_frame_and_coded_rows(missing):
         t = [teams_section(design, p, pl, opts) for p, pl in ((prepared, plan), (coded_prepared, coded))]
         from samesource.results import thaw
         _close(thaw(t[1].section), thaw(t[0].section))
+
+
+def test_each_blocks_distinct_answers_are_numpys_unique():
+    # outside reference: numpy.unique per column, on blocks of whole-number codes (complete or
+    # with gaps, negative codes), of fractions, and of a range too wide for one count
+    from samesource.method_checks.assumptions import _block_distinct
+
+    rng = np.random.default_rng(11)
+    codes = rng.integers(-3, 8, (500, 4)).astype(float)
+    gappy = codes.copy()
+    gappy[rng.random(gappy.shape) < 0.2] = np.nan
+    gappy[:, 3] = np.nan  # a column with no answer in the block
+    halves = codes / 2
+    wide = codes * 1e5
+    for X in (codes, gappy, halves, wide):
+        answered = ~np.isnan(X)
+        got = _block_distinct(X, answered, bool(answered.all()))
+        for j in range(X.shape[1]):
+            np.testing.assert_array_equal(got[j], np.unique(X[answered[:, j], j]))

@@ -110,11 +110,11 @@ PAIR_BLOCK_ROWS = 16_384
 # are added in order at the end, so the sums are the same bit for bit whether one thread or
 # PAIR_PARTS threads form them.
 PAIR_PARTS = 2
-# Threads forming the pair products by default. Two gave the same sums but were not shown
-# faster in wall time: measured only on a loaded two-core machine (200,000 x 25: 7.8 / 8.8 s
-# with one thread, 6.5 / 9.3 s with two; CPU 1.3-1.4 s against 1.4-2.1 s); measure on a quiet
-# machine before raising this.
-PAIR_THREADS = 1
+# Threads forming the pair products by default (at most the cores this process may use); the
+# sums are the same bit for bit. On the quiet two-core machine (2026-12-03, 1,000,000 x 25) two
+# threads took 2.9 s of wall time against 4.9 s with one (CPU 5.5 s against 4.9 s); on a loaded
+# machine (200,000 x 25) they were about even: 6.5 / 9.3 s against 7.8 / 8.8 s.
+PAIR_THREADS = 2
 
 
 def as_rows(X: np.ndarray | ItemRows, names: Sequence[str]) -> ItemRows:

@@ -46,7 +46,9 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
     codes = all_codes[keep]
     labels = np.asarray(cat.categories, dtype=object)
     names = [c.name for c in design.substantive]
-    scores = score_array(plan.rows, design, names)[keep]
+    scores = score_array(plan.rows, design, names)
+    if not keep.all():  # a copy only when some rows have no group (800 MB at 10,000,000 x 10)
+        scores = scores[keep]
     col = {n: j for j, n in enumerate(names)}
     sizes = np.bincount(codes, minlength=len(labels))
     min_size = opts.min_group_size

@@ -6,11 +6,12 @@ and forming the covariance matrix (reading it whole would hold 10,000,000 x 62 n
 
 Beside them, the file read once into the PreparedData the later stages read
 (samesource.input.streamed.prepare_streamed: answers one byte per cell, row numbers, ids,
-groups), with what it holds. Each measurement runs in a fresh process, so its peak memory
+groups), with what it holds; and the whole report (samesource.pipeline.analyze, no bootstrap)
+with its stages' seconds. Each measurement runs in a fresh process, so its peak memory
 (VmHWM, as scale.py reads it) is its own. Prints one JSON line per measurement; docs/performance.md "Beyond memory" records
 the figures.
 
-    python tests/benchmarks/beyond_memory.py [--rows 10000000] [--ids] [--only prepared]
+    python tests/benchmarks/beyond_memory.py [--rows 10000000] [--ids] [--only prepared|streamed|report]
                                              [--path FILE --design FILE] [--write FOLDER]
 
 Without --path it writes the file (the benchmarks' 60-item survey of tests/benchmarks/
@@ -137,6 +138,24 @@ def child_prepared(path: str, design_path: str) -> dict:
             "complete_rows": got.sums.listwise.n, "peak_mb": _peak_mb(), "load": os.getloadavg()}
 
 
+def child_report(path: str, design_path: str, missing: str = "listwise") -> dict:
+    """The whole report (no bootstrap) as the command line makes it: samesource.pipeline.analyze
+    on the file, which reads a file this large a block at a time; its stages' seconds
+    (report.json timings), CPU time and peak memory."""
+    from samesource.pipeline import analyze
+
+    design = json.loads(Path(design_path).read_text(encoding="utf-8"))
+    t0, c0 = time.perf_counter(), time.process_time()
+    a = analyze(path, design, {"missing": missing})
+    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
+    r = a.report
+    return {"rows": r["data"]["rows"], "rows_analyzed": r["data"]["rows_analyzed"], "missing": missing,
+            "report_wall": wall, "report_cpu": cpu, "prepared": type(a.prepared).__name__,
+            "rows_type": type(a.prepared.rows).__name__, "timings": r["timings"],
+            "teams": None if r.get("teams") is None else r["teams"]["groups"],
+            "peak_mb": _peak_mb(), "load": os.getloadavg()}
+
+
 def child_floor(path: str, design_path: str) -> dict:
     import pandas as pd
 
@@ -169,8 +188,8 @@ def main() -> None:
     ap.add_argument("--design")
     ap.add_argument("--ids", action="store_true", help="the file with an id and a team column (write_survey)")
     ap.add_argument("--write", metavar="FOLDER", help="only write the file (and its design) into FOLDER")
-    ap.add_argument("--only", choices=["streamed", "prepared"],
-                    help="beside the floor, only this measurement (default: both)")
+    ap.add_argument("--only", choices=["streamed", "prepared", "report"],
+                    help="beside the floor, only this measurement (default: every one)")
     args = ap.parse_args()
     if args.write:
         print(json.dumps(dict(zip(("path", "design"), write_survey(args.rows, args.write, ids=args.ids), strict=True))))
@@ -179,7 +198,7 @@ def main() -> None:
         path, design = (args.path, args.design) if args.path else write_survey(args.rows, folder, ids=args.ids)
         print(json.dumps({"file_mb": os.path.getsize(path) / 1e6, **run_child("child_floor", path, design)}),
               flush=True)
-        for kind in ("streamed", "prepared"):
+        for kind in ("streamed", "prepared", "report"):
             if args.only in (None, kind):
                 print(json.dumps(run_child(f"child_{kind}", path, design)), flush=True)
 
