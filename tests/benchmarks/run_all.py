@@ -147,8 +147,8 @@ def main() -> None:
     out = Path(args.out)
     old = out.read_text(encoding="utf-8") if out.exists() else ""
     begin, end = "<!-- scale: begin -->", "<!-- scale: end -->"
-    if begin in old and end in old:  # scale.py's block (the big files), measured apart: kept
-        lines += ["", old[old.index(begin):old.index(end) + len(end)]]
+    if begin in old and end in old:  # scale.py's block (the big files) and what follows it: kept
+        lines += ["", old[old.index(begin):].rstrip("\n")]
     out.write_text("\n".join(lines) + "\n", encoding="utf-8")
     print(f"written {args.out}")
 

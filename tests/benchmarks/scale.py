@@ -2,8 +2,11 @@
 
 1. The full report (no bootstrap) on 60-item surveys of 10,000 / 100,000 / 1,000,000 rows
    against the floor measured in the same run: reading the same CSV file with pandas and
-   forming its covariance matrix. Each run is its own process, so its peak memory (getrusage)
-   is its own; the report's seconds per stage are report.json's `timings`.
+   forming its covariance matrix. Each run is its own process, so its peak memory (VmHWM)
+   is its own; the report's seconds per stage are report.json's `timings`. Then 10,000,000
+   rows (``--big-rows``), a file beyond memory for pandas (1.3 GB of CSV, with an id and a team
+   column: tests/benchmarks/beyond_memory.py writes it), which the report reads a block at a
+   time; its floor reads the file in chunks of 1,000,000 rows and merges their covariances.
 2. The bootstrap at 100,000 x 60 with 1,000 replicates (weighted cross-products), on the
    local process pool; forming replicate covariance matrices by resampling rows versus by
    weighted cross-products, timed alone; and the same bootstrap on a local Dask cluster of one
@@ -11,8 +14,8 @@
 
 Writes the block between the `scale` markers in docs/performance.md (run_all.py keeps it).
 
-    python tests/benchmarks/scale.py [--rows 10000,100000,1000000] [--replicates 1000]
-                                     [--skip-bootstrap] [--skip-dask] [--out docs/performance.md]
+    python tests/benchmarks/scale.py [--rows 10000,100000,1000000] [--big-rows 10000000] [--replicates 1000]
+                                     [--skip-big] [--skip-bootstrap] [--skip-dask] [--out docs/performance.md]
 """
 
 from __future__ import annotations
@@ -137,11 +140,30 @@ def write_survey(n: int, folder: str) -> tuple[str, dict, list[str]]:
     return path, design, items
 
 
+def _big_row(rows: int, folder: str) -> str:
+    """The table's row for the survey beyond memory (beyond_memory.py's file, floor and report)."""
+    import beyond_memory as bm
+
+    path, design = bm.write_survey(rows, folder, ids=True)
+    mb = os.path.getsize(path) / 1e6
+    floor = bm.run_child("child_floor", path, design)
+    rep = bm.run_child("child_report", path, design)
+    os.remove(path)
+    t = rep["timings"]
+    stages = sorted(((k, v) for k, v in t.items() if k not in ("total", "peak_memory_mb")), key=lambda kv: -kv[1])[:3]
+    slow = ", ".join(f"{k} {v:.1f}" for k, v in stages)
+    return (f"| {rows:,} (ids, teams; read a block at a time) | {mb:.0f} | {rep['report_wall']:.1f} | "
+            f"{floor['floor_wall']:.2f} | {rep['report_wall'] / floor['floor_wall']:.1f}x | {rep['peak_mb']:.0f} | "
+            f"{floor['floor_peak_mb']:.0f} | {slow} |")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--rows", default="10000,100000,1000000")
     ap.add_argument("--replicates", type=int, default=1000)
     ap.add_argument("--boot-rows", type=int, default=100_000)
+    ap.add_argument("--big-rows", type=int, default=10_000_000)
+    ap.add_argument("--skip-big", action="store_true", help="without the survey beyond memory")
     ap.add_argument("--skip-bootstrap", action="store_true")
     ap.add_argument("--skip-dask", action="store_true")
     ap.add_argument("--out", default=str(ROOT / "docs" / "performance.md"))
@@ -151,7 +173,10 @@ def main() -> None:
              f"Measured by `tests/benchmarks/scale.py` on {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}. "
              f"Synthetic surveys of {ITEMS} 5-point items (tests/benchmarks/workload.py), read from a CSV file. "
              "Floor: reading the same file with pandas and forming its covariance matrix, in the same run. "
-             "Each measurement runs in its own process; peak memory is that process's (getrusage).", "",
+             "Each measurement runs in its own process; peak memory is that process's (VmHWM). "
+             f"The {args.big_rows:,}-row survey (if measured) is tests/benchmarks/beyond_memory.py's, with an id "
+             "and a team column (200 teams), read by the report a block of lines at a time; its floor reads the "
+             "file in chunks of 1,000,000 rows and merges their covariances.", "",
              "| rows | file MB | report s | floor s | ratio | report peak MB | floor peak MB | slowest stages |",
              "| ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- |"]
     with tempfile.TemporaryDirectory(prefix="samesource-bench-") as tmp:
@@ -165,9 +190,12 @@ def main() -> None:
                             key=lambda kv: -kv[1])[:3]
             slow = ", ".join(f"{k} {v:.1f}" for k, v in stages)
             lines.append(f"| {n:,} | {mb:.0f} | {rep['wall']:.1f} | {floor['seconds']:.2f} | "
-                         f"{rep['wall'] / floor['seconds']:.0f}x | {rep['peak_mb']:.0f} | {floor['peak_mb']:.0f} | {slow} |")
+                         f"{rep['wall'] / floor['seconds']:.1f}x | {rep['peak_mb']:.0f} | {floor['peak_mb']:.0f} | {slow} |")
             print(lines[-1], flush=True)
             os.remove(path)
+        if not args.skip_big:
+            lines.append(_big_row(args.big_rows, tmp))
+            print(lines[-1], flush=True)
 
         if not args.skip_bootstrap:
             n, reps = args.boot_rows, args.replicates
