@@ -334,20 +334,29 @@ def same_source_team_estimate(scores: np.ndarray, groups: np.ndarray) -> list[fl
     return [float(v) for v in standardized_coefficients(rc, 0, list(range(1, scores.shape[1])))]
 
 
+def group_means(values: np.ndarray, codes: np.ndarray, n_groups: int) -> np.ndarray:
+    """Each group's mean of ``values`` over its members who have one (NaN for none)."""
+    has = ~np.isnan(values)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (np.bincount(codes[has], weights=values[has], minlength=n_groups)
+                / np.bincount(codes[has], minlength=n_groups))
+
+
+def group_table_of(means: np.ndarray, sizes: np.ndarray, names: list[str], labels: np.ndarray,
+                   min_size: int) -> tuple[list[dict], int]:
+    """:func:`group_table` from the groups' means (groups x names) and sizes."""
+    present = np.flatnonzero(sizes > 0)
+    rows = [{"group": str(labels[t]), "n": int(sizes[t]), **{c: float(means[t, j]) for j, c in enumerate(names)}}
+            for t in present if sizes[t] >= min_size]
+    return rows, int((sizes[present] < min_size).sum())
+
+
 def group_table(scores: np.ndarray, names: list[str], codes: np.ndarray, labels: np.ndarray,
                 min_size: int) -> tuple[list[dict], int]:
     """Team means for teams of at least ``min_size`` respondents; and how many were withheld.
     ``codes``: each row's group number into ``labels`` (the group names, in order); a team's
     mean of a score is over its members who have that score."""
     G = len(labels)
-    sizes = np.bincount(codes, minlength=G)
-    means = np.empty((G, len(names)))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        for j in range(len(names)):
-            has = ~np.isnan(scores[:, j])
-            means[:, j] = (np.bincount(codes[has], weights=scores[has, j], minlength=G)
-                           / np.bincount(codes[has], minlength=G))
-    present = np.flatnonzero(sizes > 0)
-    rows = [{"group": str(labels[t]), "n": int(sizes[t]), **{c: float(means[t, j]) for j, c in enumerate(names)}}
-            for t in present if sizes[t] >= min_size]
-    return rows, int((sizes[present] < min_size).sum())
+    means = np.column_stack([group_means(scores[:, j], codes, G) for j in range(len(names))]) \
+        if names else np.empty((G, 0))
+    return group_table_of(means, np.bincount(codes, minlength=G), names, labels, min_size)

@@ -13,7 +13,8 @@ from samesource.results import Notice, SectionResult, freeze
 from samesource.statistics.scores import score_array
 from samesource.statistics.teams import (
     group_item_variances,
-    group_table,
+    group_means,
+    group_table_of,
     icc_oneway,
     rwg_from_variance,
     same_source_team_estimate,
@@ -46,10 +47,13 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
     codes = all_codes[keep]
     labels = np.asarray(cat.categories, dtype=object)
     names = [c.name for c in design.substantive]
-    scores = score_array(plan.rows, design, names)
-    if not keep.all():  # a copy only when some rows have no group (800 MB at 10,000,000 x 10)
-        scores = scores[keep]
-    col = {n: j for j, n in enumerate(names)}
+
+    def scores_of(constructs: list[str]) -> np.ndarray:
+        # a few constructs' scores at a time (a pass over their items each), not every
+        # construct's at once: 80 MB a construct at 10,000,000 rows
+        s = score_array(plan.rows, design, constructs)
+        return s if keep.all() else s[keep]
+
     sizes = np.bincount(codes, minlength=len(labels))
     min_size = opts.min_group_size
     n_options = int(round(prepared.scale_max - prepared.scale_min)) + 1
@@ -58,8 +62,12 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
                       for link in prepared.links}
 
     constructs = {}
-    for c in design.substantive:
-        icc = icc_oneway(scores[:, col[c.name]], codes)
+    means = np.empty((len(labels), len(names)))
+    for j, c in enumerate(design.substantive):
+        score = scores_of([c.name])[:, 0]
+        means[:, j] = group_means(score, codes, len(labels))
+        icc = icc_oneway(score, codes)
+        del score
         options = source_options.get(c.source, n_options)
         complete, s2 = group_item_variances(plan.rows, list(c.items), all_codes, len(labels))
         rwgs = [rwg_from_variance(float(s2[t]), len(c.items), options)
@@ -71,9 +79,11 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
     paths = []
 
     for p in design.paths:
-        cols = [col[p.outcome]] + [col[x] for x in p.predictors]
-        ok = ~np.isnan(scores[:, cols]).any(axis=1)
-        sub, gg = scores[np.ix_(ok, cols)], codes[ok]
+        sub = scores_of([p.outcome, *p.predictors])
+        ok = ~np.isnan(sub).any(axis=1)
+        if not ok.all():
+            sub = sub[ok]
+        gg = codes if ok.all() else codes[ok]
         y, X = sub[:, 0], sub[:, 1:]
         with np.errstate(all="ignore"):
             wb = within_between(y, X, gg)
@@ -110,7 +120,7 @@ def teams_section(design: Design, prepared: PreparedData, plan: MissingPlan,
                                "effects, so a single pooled (random-effects) estimate would be biased; "
                                "read the within-team path for individual-level questions."))
 
-    table, withheld = group_table(scores, names, codes, labels, min_size)
+    table, withheld = group_table_of(means, sizes, names, labels, min_size)
     if withheld:
         said.append(Notice("small_groups_withheld",
                            f"{withheld} group(s) with fewer than {min_size} respondents are left out "
