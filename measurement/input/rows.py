@@ -136,12 +136,12 @@ class CodedRows(ItemRows):
         # Stored rows are read a block at a time; with a selection, a stored block gives its kept rows.
         for s in range(0, n_stored, size):
             c = self.codes[s:s + size]
+            if idx is not None:  # the columns first: the row selection then copies only them
+                c = c[:, idx]
             if self.keep is not None:
                 c = c[self.keep[s:s + size]]
                 if not len(c):
                     continue
-            if idx is not None:
-                c = c[:, idx]
             yield position, self._table[c]
             position += len(c)
 
