@@ -16,7 +16,7 @@ import numpy as np
 
 from samesource import __version__
 from samesource.corrections.paths_stage import paths_section
-from samesource.errors import DataError
+from samesource.errors import DataError, InputError
 from samesource.input.design import Design, parse_design
 from samesource.input.frames import Data, read_data
 from samesource.input.loading import LoadedTable
@@ -153,13 +153,21 @@ def analyze(
 STREAM_BYTES = 256 * 2**20
 
 
-def stream_bytes() -> int:
-    """The size from which a plain CSV file is read beyond memory (SAMESOURCE_STREAM_MB)."""
-    raw = os.environ.get("SAMESOURCE_STREAM_MB", "").strip()
-    try:
-        return STREAM_BYTES if not raw else max(0, int(float(raw) * 2**20))
-    except ValueError:
+def stream_bytes(env: Mapping[str, str] | None = None) -> int:
+    """The size from which a plain CSV file is read beyond memory (SAMESOURCE_STREAM_MB in
+    ``env``, default the process's environment); a value that is not a number of MB, 0 or
+    more, raises :class:`~samesource.errors.InputError`."""
+    raw = (os.environ if env is None else env).get("SAMESOURCE_STREAM_MB", "").strip()
+    if not raw:
         return STREAM_BYTES
+    try:
+        mb = float(raw)
+    except ValueError:
+        mb = float("nan")
+    if not mb >= 0 or mb == float("inf"):  # a typo must not quietly read every file in memory
+        raise InputError(f"SAMESOURCE_STREAM_MB must be a number of megabytes, 0 or more (0: read every plain "
+                         f"CSV file a block at a time), got {raw!r}", code="bad_setting")
+    return int(mb * 2**20)
 
 
 def read_prepared(data: Data, design: Design, *, sources: Mapping[str, Any] | None = None,

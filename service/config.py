@@ -197,4 +197,11 @@ def load_config(overrides: Mapping[str, Any] | None = None,
             raise ConfigError(f"unknown setting {key!r}")
         if value is not None:
             values[key] = Path(value) if key == "data_dir" else value
+    from samesource.errors import InputError
+    from samesource.pipeline import stream_bytes
+
+    try:  # read by every analysis (measurement/pipeline.py): refused at start, not in a job
+        stream_bytes(env)
+    except InputError as e:
+        raise ConfigError(e.message) from None
     return replace(ServiceConfig(), **values).validate()

@@ -4,6 +4,7 @@ children are bounded (SAMESOURCE_MAX_PARSERS), and the command line's out-of-mem
 from __future__ import annotations
 
 import io
+import json
 import threading
 import time
 
@@ -212,3 +213,30 @@ def test_the_command_line_names_the_memory_limit_when_a_workbook_exhausts_memory
     assert cli.main(["analyze", str(book), "--design", str(design), "--out", str(tmp_path / "o"),
                      "--quiet"]) == cli.EXIT_BAD_INPUT
     assert "cannot open the Excel workbook (BadZipFile)" in capsys.readouterr().err
+
+
+def test_the_size_read_a_block_at_a_time_is_a_number_of_megabytes_or_refused(tmp_path, monkeypatch, capsys):
+    # a typo must not quietly read every file in memory: refused when the service starts, and
+    # by the command line before it reads the file
+    from samesource.errors import InputError
+    from samesource.pipeline import STREAM_BYTES, stream_bytes
+    from samesource.service.config import ConfigError, load_config
+
+    assert stream_bytes({}) == STREAM_BYTES and stream_bytes({"SAMESOURCE_STREAM_MB": "0"}) == 0
+    assert stream_bytes({"SAMESOURCE_STREAM_MB": " 1.5 "}) == int(1.5 * 2**20)
+    for bad in ("abc", "-1", "nan", "inf", "256MB"):
+        with pytest.raises(InputError, match="SAMESOURCE_STREAM_MB must be a number of megabytes"):
+            stream_bytes({"SAMESOURCE_STREAM_MB": bad})
+        with pytest.raises(ConfigError, match="SAMESOURCE_STREAM_MB"):
+            load_config(env={"SAMESOURCE_STREAM_MB": bad})
+    from conftest import small_survey
+
+    from samesource.service.cli import main
+
+    data, design = small_survey(200, 3)
+    (tmp_path / "s.csv").write_bytes(data)
+    (tmp_path / "d.json").write_text(json.dumps(design))
+    monkeypatch.setenv("SAMESOURCE_STREAM_MB", "lots")
+    assert main(["analyze", str(tmp_path / "s.csv"), "--design", str(tmp_path / "d.json"),
+                 "--out", str(tmp_path / "out")]) != 0
+    assert "SAMESOURCE_STREAM_MB must be a number of megabytes" in capsys.readouterr().err

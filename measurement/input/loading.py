@@ -603,10 +603,26 @@ _POW10 = 10 ** np.arange(19, dtype=np.int64)
 _EXACT_FLOAT = 2.0 ** 53
 
 
+# A number written with the exponent 2 (12e2, 3E2) is exactly as long as the integer it is
+# (1200, 300); any other way of writing an integer (a sign, leading zeros, a decimal point,
+# another exponent) is longer.
+_EXPONENT_TWO = re.compile(rb"[0-9][eE]2(?![0-9])")
+
+
+def _may_hide_exponent(values: np.ndarray, body: bytes) -> bool:
+    """Whether a float column read from ``body`` might hold a field written with the exponent
+    2, which the line-length check cannot tell from the integer: a whole multiple of 100 in the
+    column and such a field somewhere in the file."""
+    with np.errstate(invalid="ignore"):
+        hundreds = (np.abs(values) >= 100) & (np.fmod(values, 100) == 0)
+    return bool(hundreds.any()) and _EXPONENT_TWO.search(body) is not None
+
+
 def _canonical_lengths(values: np.ndarray) -> np.ndarray | None:
     """Characters of each value written as the integer it is (0 for NaN): a numeric field
-    whose text is that long is exactly that text (any other form of the number is longer);
-    None when some value is not a whole number that is written so."""
+    whose text is that long is exactly that text (any other form of the number is longer, but
+    for the exponent 2, which :func:`_may_hide_exponent` rules out first); None when some value
+    is not a whole number that is written so."""
     v = np.asarray(values)
     if v.dtype.kind == "f":
         blank = np.isnan(v)
@@ -718,6 +734,8 @@ def _read_text_plain(text: str, delim: str) -> dict | None:
             cols[j] = np.concatenate(parts[j])
         elif kinds <= {"i", "f"}:
             cols[j] = np.concatenate([p.astype(float) for p in parts[j]])
+            if _may_hide_exponent(cols[j], body):
+                cols[j] = None  # read as text: a field like 2e2 is no integer, though as long as 200
         elif kinds == {"O"}:
             v = np.concatenate(parts[j])
             if pd.api.types.infer_dtype(v, skipna=True) in ("string", "empty"):
