@@ -227,3 +227,19 @@ def test_help_lists_every_format_of_the_registry():
     text = " ".join(res.stdout.split())  # argparse wraps the help at hyphens and spaces
     for f in READERS:
         assert f.suffixes[0] in text, (f.name, text)
+
+
+def test_the_shell_tells_numpy_not_to_ask_for_huge_pages_unless_chosen():
+    # service/__init__.py: set before numpy loads, in a fresh interpreter as the command line
+    # starts; an explicit choice in the environment stands
+    import os
+    import subprocess
+    import sys
+
+    code = ("import samesource.service.cli; from numpy._core import multiarray as m; "
+            "print(m._get_madvise_hugepage())")
+    env = {k: v for k, v in os.environ.items() if k != "NUMPY_MADVISE_HUGEPAGE"}
+    off = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True)
+    chosen = subprocess.run([sys.executable, "-c", code], env={**env, "NUMPY_MADVISE_HUGEPAGE": "1"},
+                            capture_output=True, text=True, check=True)
+    assert off.stdout.strip() == "False" and chosen.stdout.strip() == "True"

@@ -51,3 +51,6 @@ def test_only_whole_numbers_on_a_short_scale_are_coded():
     assert not codable(np.array([[7.0]]), 1, 5)
     assert not codable(np.array([[1.0]]), 0.5, 5)
     assert not codable(np.array([[1.0]]), 0, 1000)
+    assert codable(np.full((3, 2), np.nan), 1, 5)  # no answer at all: nothing that cannot be coded
+    assert not codable(np.array([[np.inf, 1.0]]), 1, 5) and not codable(np.array([[-np.inf]]), 1, 5)
+    assert not codable(np.array([[0.0, 2.0]]), 1, 5)  # below the scale

@@ -162,8 +162,9 @@ def codable(X: np.ndarray, low: float, high: float) -> bool:
     at most 255 points starting at a whole number."""
     if not float(low).is_integer() or high - low > MISSING_CODE - 1:
         return False
-    seen = X[~np.isnan(X)]
-    return bool(np.all(seen == np.round(seen)) and (seen.size == 0 or (seen.min() >= low and seen.max() <= high)))
+    # one pass of comparisons, no copy of the answers (NaN fails every comparison)
+    ok = (X == np.floor(X)) & (X >= low) & (X <= high)
+    return bool(np.all(ok | np.isnan(X)))
 
 
 def encode_block(X: np.ndarray, low: float) -> np.ndarray:

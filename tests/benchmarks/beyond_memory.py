@@ -34,7 +34,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
 sys.path.insert(0, str(HERE))
-from scale import _peak_mb  # noqa: E402  (VmHWM of this process)
+from scale import _peak_mb, child_env  # noqa: E402  (VmHWM of this process; the children's environment)
 
 PIECE = 1_000_000
 
@@ -174,7 +174,8 @@ def run_child(kind: str, *args: str) -> dict:
     code = ("import json, sys; sys.path.insert(0, sys.argv[1]); import beyond_memory as b; "
             "print('RESULT ' + json.dumps(getattr(b, sys.argv[2])(*sys.argv[3:])))")
     proc = subprocess.run([sys.executable, "-c", code, str(HERE), kind, *args],
-                          capture_output=True, text=True, cwd=ROOT)
+                          capture_output=True, text=True, cwd=ROOT,
+                          env=child_env())
     for line in proc.stdout.splitlines():
         if line.startswith("RESULT "):
             return json.loads(line[7:])

@@ -56,6 +56,12 @@ def _peak_mb() -> float:
     return peak_memory_mb() or float("nan")
 
 
+def child_env() -> dict[str, str]:
+    """A measurement's environment: numpy's huge-page advice off unless chosen, as the command
+    line and the service set it (service/__init__.py), for the report and the floor alike."""
+    return {**os.environ, "NUMPY_MADVISE_HUGEPAGE": os.environ.get("NUMPY_MADVISE_HUGEPAGE", "0")}
+
+
 def child_floor(path: str, items: list[str]) -> dict:
     import pandas as pd
 
@@ -123,7 +129,8 @@ def run_child(kind: str, *args) -> dict:
     code = ("import json, sys; sys.path.insert(0, sys.argv[1]); import scale; "
             "print('RESULT ' + json.dumps(getattr(scale, sys.argv[2])(*json.loads(sys.argv[3]))))")
     proc = subprocess.run([sys.executable, "-c", code, str(HERE), kind, json.dumps(list(args))],
-                          capture_output=True, text=True, cwd=ROOT)
+                          capture_output=True, text=True, cwd=ROOT,
+                          env=child_env())
     for line in proc.stdout.splitlines():
         if line.startswith("RESULT "):
             return json.loads(line[7:])
@@ -176,7 +183,9 @@ def main() -> None:
              "Each measurement runs in its own process; peak memory is that process's (VmHWM). "
              f"The {args.big_rows:,}-row survey (if measured) is tests/benchmarks/beyond_memory.py's, with an id "
              "and a team column (200 teams), read by the report a block of lines at a time; its floor reads the "
-             "file in chunks of 1,000,000 rows and merges their covariances.", "",
+             "file in chunks of 1,000,000 rows and merges their covariances. Every measurement runs with "
+             f"NUMPY_MADVISE_HUGEPAGE={child_env()['NUMPY_MADVISE_HUGEPAGE']} (the command line's and the "
+             "service's default, service/__init__.py).", "",
              "| rows | file MB | report s | floor s | ratio | report peak MB | floor peak MB | slowest stages |",
              "| ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- |"]
     with tempfile.TemporaryDirectory(prefix="samesource-bench-") as tmp:
