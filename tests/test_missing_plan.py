@@ -341,20 +341,41 @@ def test_reliability_and_teams_equal_on_frame_and_coded_rows(missing):
         _close(thaw(t[1].section), thaw(t[0].section))
 
 
-def test_each_blocks_distinct_answers_are_numpys_unique():
-    # outside reference: numpy.unique per column, on blocks of whole-number codes (complete or
-    # with gaps, negative codes), of fractions, and of a range too wide for one count
-    from samesource.method_checks.assumptions import _block_distinct
+def test_each_blocks_answer_counts_are_numpys_unique_counts():
+    # outside reference: numpy.unique(return_counts=True) per column, on blocks of whole-number
+    # codes (complete or with gaps, negative codes); fractions and a range too wide for one
+    # count are left to the power sums (None)
+    from samesource.method_checks.assumptions import _block_counts
 
     rng = np.random.default_rng(11)
     codes = rng.integers(-3, 8, (500, 4)).astype(float)
     gappy = codes.copy()
     gappy[rng.random(gappy.shape) < 0.2] = np.nan
     gappy[:, 3] = np.nan  # a column with no answer in the block
-    halves = codes / 2
-    wide = codes * 1e5
-    for X in (codes, gappy, halves, wide):
+    for X in (codes, gappy):
         answered = ~np.isnan(X)
-        got = _block_distinct(X, answered, bool(answered.all()))
+        lo, counts = _block_counts(X, answered, bool(answered.all()))
         for j in range(X.shape[1]):
-            np.testing.assert_array_equal(got[j], np.unique(X[answered[:, j], j]))
+            values, n = np.unique(X[answered[:, j], j], return_counts=True)
+            np.testing.assert_array_equal(lo + np.flatnonzero(counts[j]), values)
+            np.testing.assert_array_equal(counts[j][counts[j] > 0], n)
+    for X in (codes / 2, codes * 1e5):
+        assert _block_counts(X, ~np.isnan(X), True) is None
+
+
+def test_answer_distributions_over_counted_and_summed_blocks_are_scipys():
+    # outside reference: scipy.stats.skew / kurtosis and numpy.unique over every answer, where
+    # the first block of rows is whole numbers (counted) and the second has halves (summed)
+    from samesource.input.rows import BLOCK_ROWS
+
+    rng = np.random.default_rng(5)
+    X = rng.integers(1, 8, (BLOCK_ROWS + 3000, 3)).astype(float)
+    X[BLOCK_ROWS:, 1] += 0.5
+    X[rng.random(X.shape) < 0.05] = np.nan
+    X[:BLOCK_ROWS, 2] = np.where(np.arange(BLOCK_ROWS) % 3 == 0, 1.0, X[:BLOCK_ROWS, 2])  # skewed
+    d = item_distribution(FrameRows(pd.DataFrame(X, columns=["a", "b", "c"])), ["a", "b", "c"])
+    for j, it in enumerate(["a", "b", "c"]):
+        x = X[~np.isnan(X[:, j]), j]
+        assert d.loc[it, "categories"] == len(np.unique(x))
+        assert d.loc[it, "skew"] == pytest.approx(stats.skew(x, bias=False), rel=1e-10, abs=1e-12)
+        assert d.loc[it, "kurtosis"] == pytest.approx(stats.kurtosis(x, bias=False), rel=1e-10, abs=1e-12)

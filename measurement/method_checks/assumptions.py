@@ -271,41 +271,78 @@ def distinct_count(x: np.ndarray) -> int:
     return int(len(distinct_values(x)))
 
 
-def _block_distinct(X: np.ndarray, answered: np.ndarray, complete: bool) -> list[np.ndarray]:
-    """Each column's distinct answers in a block (:func:`distinct_values` per column): whole
-    numbers in a modest range (answer codes) by one bincount over the whole block."""
+def _block_counts(X: np.ndarray, answered: np.ndarray, complete: bool) -> tuple[float, np.ndarray] | None:
+    """(lowest answer, counts: columns x answers from it) of a block whose answers are whole
+    numbers in a modest range (answer codes), by one bincount over the block; None otherwise."""
     k = X.shape[1]
     given = X if complete else X[answered]
-    if given.size:
-        lo, hi = float(given.min()), float(given.max())
-        span = int(hi - lo) + 1 if hi - lo < 1e4 else 0
-        if span and k * span < 1e7 and np.array_equal(given, np.floor(given)):
-            with np.errstate(invalid="ignore"):  # NaN cells cast to nonsense, masked out below
-                at = (X - lo).astype(np.int64) + np.arange(k) * span
-            used = np.bincount(at.ravel() if complete else at[answered], minlength=k * span).reshape(k, span)
-            return [lo + np.flatnonzero(u).astype(float) for u in used]
-    return [distinct_values(X[answered[:, j], j]) for j in range(k)]
+    if not given.size:
+        return None
+    lo, hi = float(given.min()), float(given.max())
+    span = int(hi - lo) + 1 if hi - lo < 1e4 else 0
+    if not span or k * span >= 1e7 or not np.array_equal(given, np.floor(given)):
+        return None
+    with np.errstate(invalid="ignore"):  # NaN cells cast to nonsense, masked out below
+        at = (X - lo).astype(np.int64) + np.arange(k) * span
+    return lo, np.bincount(at.ravel() if complete else at[answered], minlength=k * span).reshape(k, span)
+
+
+class _AnswerCounts:
+    """Counts of each whole-number answer per column, over blocks (the range grows as needed)."""
+
+    def __init__(self, k: int) -> None:
+        self.k, self.lo, self.counts = k, 0.0, np.zeros((k, 0), dtype=np.int64)
+
+    def add(self, lo: float, counts: np.ndarray) -> None:
+        if not self.counts.shape[1]:
+            self.lo, self.counts = lo, counts.astype(np.int64)
+            return
+        new_lo = min(self.lo, lo)
+        new_hi = max(self.lo + self.counts.shape[1], lo + counts.shape[1])
+        if new_lo < self.lo or new_hi > self.lo + self.counts.shape[1]:
+            grown = np.zeros((self.k, int(new_hi - new_lo)), dtype=np.int64)
+            at = int(self.lo - new_lo)
+            grown[:, at:at + self.counts.shape[1]] = self.counts
+            self.lo, self.counts = new_lo, grown
+        at = int(lo - self.lo)
+        self.counts[:, at:at + counts.shape[1]] += counts
+
+    def power_sums(self, shift: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Per column the count and the sums of (answer - shift) to the powers 1 to 4."""
+        values = self.lo + np.arange(self.counts.shape[1])
+        d = values[None, :] - shift[:, None]
+        c = self.counts.astype(float)
+        return c.sum(axis=1), np.stack([(c * d ** p).sum(axis=1) for p in range(1, 5)])
+
+    def distinct(self, j: int) -> np.ndarray:
+        return self.lo + np.flatnonzero(self.counts[j]).astype(float)
 
 
 def item_distribution(rows: ItemRows | pd.DataFrame, items: list[str]) -> pd.DataFrame:
     """Per item: answer categories used, skewness and excess kurtosis (as scipy.stats gives
-    them, bias-corrected), a block of rows at a time: each item's distinct answers, and the
-    count and power sums (orders 1 to 4) of its answers less a shift (the item's mean in the
-    first block, so that no digits are lost to a large mean)."""
+    them, bias-corrected), a block of rows at a time: for whole-number answers in a modest
+    range (answer codes) the count of each answer, by one bincount per block; for others each
+    item's distinct answers and the power sums (orders 1 to 4) of its answers. Both about a
+    shift (the item's mean in the first block, so that no digits are lost to a large mean)."""
     rows = rows if isinstance(rows, ItemRows) else FrameRows(rows[items].apply(pd.to_numeric, errors="coerce"))
     k = len(items)
     seen: list[np.ndarray] = [np.empty(0)] * k
     n = np.zeros(k)
     sums = np.zeros((4, k))
+    coded = _AnswerCounts(k)
     shift = None
     for _, X in rows.blocks(items):
         answered = ~np.isnan(X)
-        complete = bool(answered.all())  # most blocks: no masks then, the same sums
+        complete = bool(answered.all())
         if shift is None:
             count = answered.sum(axis=0)
             shift = np.where(count > 0, np.where(answered, X, 0.0).sum(axis=0) / np.maximum(count, 1), 0.0)
-        for j, values in enumerate(_block_distinct(X, answered, complete)):
-            seen[j] = np.union1d(seen[j], values)
+        block = _block_counts(X, answered, complete)
+        if block is not None:
+            coded.add(*block)
+            continue
+        for j in range(k):
+            seen[j] = np.union1d(seen[j], distinct_values(X[answered[:, j], j]))
         d = X - shift if complete else np.where(answered, X - shift, 0.0)
         n += answered.sum(axis=0)
         power = d.copy()
@@ -314,6 +351,10 @@ def item_distribution(rows: ItemRows | pd.DataFrame, items: list[str]) -> pd.Dat
             if order < 3:
                 power *= d
     shift = np.zeros(k) if shift is None else shift
+    if coded.counts.shape[1]:
+        c_n, c_sums = coded.power_sums(shift)
+        n, sums = n + c_n, sums + c_sums
+        seen = [np.union1d(seen[j], coded.distinct(j)) for j in range(k)]
     out = [{"item": it, "categories": len(seen[j]), **_skew_kurtosis(n[j], sums[:, j], shift[j])}
            for j, it in enumerate(items)]
     return pd.DataFrame(out, columns=["item", "categories", "skew", "kurtosis"]).set_index("item")
