@@ -154,10 +154,14 @@ def pair_moments(rows: ItemRows | np.ndarray, names: Sequence[str] | None = None
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1
     threads = min(PAIR_PARTS, cores, PAIR_THREADS if threads is None else threads)
     q = p * (p + 1) // 2
-    parts = [(np.zeros(q), np.zeros((q, q))) for _ in range(PAIR_PARTS)]
+    # each part its sums and its own buffer for a block's pair products (42 MB at 25 columns,
+    # reused: formed afresh per block it was most of the pass's system time); a part is only
+    # ever added to by one thread
+    rows_per_block = min(n, PAIR_BLOCK_ROWS)
+    parts = [(np.zeros(q), np.zeros((q, q)), np.empty((rows_per_block, q))) for _ in range(PAIR_PARTS)]
 
-    def add(part: tuple[np.ndarray, np.ndarray], X: np.ndarray) -> None:
-        V = pair_products(X - mean)
+    def add(part: tuple[np.ndarray, np.ndarray, np.ndarray], X: np.ndarray) -> None:
+        V = pair_products(X - mean, out=part[2][:len(X)])
         part[0][:] += V.sum(axis=0)
         part[1][:] += V.T @ V  # one symmetric rank-k update (numpy hands A'A to syrk)
 
@@ -173,7 +177,7 @@ def pair_moments(rows: ItemRows | np.ndarray, names: Sequence[str] | None = None
             _in_threads(blocks, parts, add, min(threads, PAIR_PARTS))
     sums = parts[0][0].copy()
     cross = parts[0][1].copy()
-    for s, c in parts[1:]:
+    for s, c, _ in parts[1:]:
         sums += s
         cross += c
     return PairMoments(names=tuple(cols), n=n, mean=mean, sums=sums, cross=cross)
