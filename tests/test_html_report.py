@@ -692,6 +692,9 @@ def test_teams_say_why_a_value_is_missing_and_mark_imprecise_intervals(sample):
             assert split.startswith("too imprecise to read") and interval(ci) in split
         elif p["split_source"]["estimate"] is None:
             assert split.startswith("not available: ")
+        # splits null: the covariances averaged over every split (measurement/statistics/teams.py)
+        assert p["split_source"]["splits"] is None
+        assert f"(every split, {p['split_source']['teams_used']} groups)" in split
     assert any("too imprecise to read" in r[5] for r in rows)  # the sample's split estimates are
 
 

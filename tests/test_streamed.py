@@ -64,16 +64,22 @@ def test_streamed_moments_and_fiml_fit_equal_the_in_memory_report(small_blocks, 
     np.testing.assert_allclose(fit.params["se"], ref["se"], rtol=1e-4, atol=1e-7)
 
 
-def _with_cells(tmp_path: Path, cells: dict[tuple[int, str], str]) -> Path:
-    """The sample survey with some cells replaced ((user row, column) -> text)."""
-    lines = SURVEY.read_text(encoding="utf-8").splitlines()
+def _replaced(lines: list[str], cells: dict[tuple[int, str], str]) -> list[str]:
+    """CSV lines with some cells replaced ((user row, column) -> text)."""
+    lines = list(lines)
     header = lines[0].split(",")
     for (row, col), text in cells.items():
         fields = lines[row - 1].split(",")
         fields[header.index(col)] = text
         lines[row - 1] = ",".join(fields)
+    return lines
+
+
+def _with_cells(tmp_path: Path, cells: dict[tuple[int, str], str]) -> Path:
+    """The sample survey with some cells replaced ((user row, column) -> text)."""
     out = tmp_path / "survey.csv"
-    out.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    out.write_text("\n".join(_replaced(SURVEY.read_text(encoding="utf-8").splitlines(), cells)) + "\n",
+                   encoding="utf-8")
     return out
 
 
@@ -277,13 +283,7 @@ def test_generated_file_equals_the_in_memory_reading(monkeypatch, tmp_path, seed
 def test_errors_in_a_late_block_are_the_in_memory_ones_word_for_word(monkeypatch, tmp_path, cells):
     monkeypatch.setattr(streamed, "BLOCK_BYTES", 3_000)
     path = _generated(tmp_path, 2_000, 3)
-    lines = path.read_text(encoding="utf-8").splitlines()
-    header = lines[0].split(",")
-    for (row, col), text in cells.items():
-        fields = lines[row - 1].split(",")
-        fields[header.index(col)] = text
-        lines[row - 1] = ",".join(fields)
-    path = _write(tmp_path, lines, "bad.csv")
+    path = _write(tmp_path, _replaced(path.read_text(encoding="utf-8").splitlines(), cells), "bad.csv")
     dsg = parse_design(HAND_DESIGN)
     with pytest.raises(DataError) as want:
         prepare(load_table(str(path)), dsg)

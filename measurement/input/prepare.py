@@ -543,20 +543,15 @@ def _labels(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
 
 def _check_ids(ids: pd.Series, table: LoadedTable, col: str, notes: list[dict]) -> None:
     if ids.dtype.kind in "iu":  # whole numbers: distinct numbers are distinct labels, none missing
-        codes, uniques = pd.factorize(ids.to_numpy())
-        counts = np.bincount(codes, minlength=len(uniques))
-        repeated = np.flatnonzero(counts > 1)
-        first = _label(uniques[repeated[0]]) if len(repeated) else None
-        where = ([int(r) for r in np.asarray(table.row_numbers)[codes == repeated[0]]]
-                 if len(repeated) else [])
-        notes += id_notes(table.row_label, col, 0, len(repeated), int(counts[repeated].sum()), first, where)
-        return
-    labels, none = _labels(ids)
-    codes, uniques = pd.factorize(labels[~none])  # in order of first appearance
+        keys, none = ids.to_numpy(), np.zeros(len(ids), dtype=bool)
+    else:
+        keys, none = _labels(ids)
+    codes, uniques = pd.factorize(keys[~none])  # in order of first appearance
     counts = np.bincount(codes, minlength=len(uniques))
     repeated = np.flatnonzero(counts > 1)
-    first = uniques[repeated[0]] if len(repeated) else None
-    where = [int(r) for r in np.asarray(table.row_numbers)[np.equal(labels, first)]] if len(repeated) else []
+    first = _label(uniques[repeated[0]]) if len(repeated) else None
+    where = ([int(r) for r in np.asarray(table.row_numbers)[~none][codes == repeated[0]]]
+             if len(repeated) else [])
     notes += id_notes(table.row_label, col, int(none.sum()), len(repeated), int(counts[repeated].sum()),
                       first, where)
 

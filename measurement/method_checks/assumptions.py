@@ -259,10 +259,11 @@ def distinct_values(x: np.ndarray) -> np.ndarray:
     where the values are whole numbers in a modest range (answer codes), by one bincount."""
     if x.size == 0:
         return x[:0]
-    lo, hi = float(x.min()), float(x.max())
-    if hi - lo < 1e6 and np.array_equal(x, np.floor(x)):
-        return lo + np.flatnonzero(np.bincount((x - lo).astype(np.int64))).astype(float)
-    return np.unique(x)
+    counted = _block_counts(x[:, None], np.ones((x.size, 1), dtype=bool), True)
+    if counted is None:
+        return np.unique(x)
+    lo, counts = counted
+    return lo + np.flatnonzero(counts[0]).astype(float)
 
 
 def distinct_count(x: np.ndarray) -> int:
