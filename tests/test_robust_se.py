@@ -233,3 +233,54 @@ def test_fiml_sandwich_from_item_rows_equals_the_array():
         S = casewise_scores(fit, rows)
         assert S.shape[0] == int((~np.isnan(X[:, :4])).any(axis=1).sum())
         assert np.abs(S.sum(axis=0)).max() < 1e-3 * np.abs(S).sum(axis=0).max()
+
+
+def _exact_pair_cross(X: np.ndarray) -> np.ndarray:
+    """sum_i v_i v_i' of whole-number rows in exact rational arithmetic (Python's integers and
+    fractions): n * (x - mean) is an integer, so each sum is an integer over n**4."""
+    from fractions import Fraction
+
+    n = len(X)
+    Z = (n * X - X.sum(axis=0)).astype(object)
+    iu, ju = np.triu_indices(X.shape[1])
+    V = Z[:, iu] * Z[:, ju]
+    return np.array([[float(Fraction(int(v), n ** 4)) for v in row] for row in V.T.dot(V)])
+
+
+@pytest.mark.parametrize("low, high", [(1, 5), (0, 10)])
+def test_whole_number_pair_moments_are_the_exact_sums(low, high, monkeypatch):
+    """Whole-number answers take the single-precision integer sums: checked against the sums in
+    exact rational arithmetic (Python's fractions), to within double precision's last bits (the
+    direct double-precision sums are 100 times further off on the 5-point case); with a 0-10
+    scale the blocks shrink so every single-precision partial sum stays exact, and several
+    blocks (made small here) add up the same."""
+    from samesource.engine import robust_se as R
+
+    rng = np.random.default_rng(3)
+    X = rng.integers(low, high + 1, size=(3000, 4))
+    X[:, 1] = np.clip(X[:, 0] + rng.integers(-1, 2, size=len(X)), low, high)
+    exact = _exact_pair_cross(X)
+    monkeypatch.setattr(R, "PAIR_BLOCK_ROWS", 700)
+    got = pair_moments(X.astype(float), list("abcd"))
+    assert R._exact_block_rows(X.min(axis=0) - np.rint(X.mean(axis=0)), X.max(axis=0) - np.rint(X.mean(axis=0))) > 0
+    np.testing.assert_allclose(got.cross, exact, rtol=1e-14, atol=1e-14 * np.abs(exact).max())
+    D = X - X.mean(axis=0)
+    iu, ju = np.triu_indices(4)
+    np.testing.assert_allclose(got.sums, (D[:, iu] * D[:, ju]).sum(axis=0), rtol=1e-13)
+
+
+def test_exact_pair_moments_fall_back_where_single_precision_cannot_hold_the_sums():
+    """Deviations beyond about 11 (a 0-100 slider) or answers that are not whole numbers take
+    the double-precision sums; both agree with the exact sums to double precision's rounding."""
+    from samesource.engine.robust_se import _exact_block_rows
+
+    assert _exact_block_rows(np.array([-50.0]), np.array([50.0])) == 0
+    assert _exact_block_rows(np.array([-2.0]), np.array([2.0])) > 0
+    rng = np.random.default_rng(4)
+    X = rng.integers(0, 101, size=(2000, 3))
+    got = pair_moments(X.astype(float), list("abc"))
+    exact = _exact_pair_cross(X)
+    np.testing.assert_allclose(got.cross, exact, rtol=1e-12, atol=1e-12 * np.abs(exact).max())
+    halves = X / 2.0
+    got = pair_moments(halves, list("abc"))
+    np.testing.assert_allclose(got.cross, exact / 16, rtol=1e-12, atol=1e-12 * np.abs(exact).max() / 16)
