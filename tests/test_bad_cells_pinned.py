@@ -489,3 +489,40 @@ def test_an_id_written_with_the_exponent_2_is_read_as_written(ids, monkeypatch):
     exact = json.loads(json.dumps(outcome("s.csv", data, design), default=str))
     assert _diff(fast, exact) == []
     assert ids[1] in json.dumps(fast)
+
+
+@pytest.mark.parametrize("cell", ["", " r3", "r3 ", "\x0br3", "r3\x1f", "r3\xa0", "\u3000", "r\x003", "é"])
+def test_text_ids_with_and_without_spaces_at_their_edges_read_as_the_record_reader_reads_them(cell, monkeypatch):
+    # the column-wise reader skips stripping a text column none of whose cells begins or ends
+    # with whitespace (Python's str.isspace, the record reader's rule): one cell of each kind,
+    # among plain ids, and the reference is the record reader
+    import samesource.input.loading as loading
+
+    ids = ["r1", "r2", cell, "r4", "r5"]
+    data = ("rid,a1,a2\n" + "".join(f"{i},{1 + k % 5},{1 + (k * 3) % 5}\n" for k, i in enumerate(ids))).encode()
+    design = {"constructs": {"a": {"items": ["a1", "a2"]}}, "response_scale": {"min": 1, "max": 5},
+              "id_column": "rid", "group_column": "rid"}
+    fast = json.loads(json.dumps(outcome("s.csv", data, design), default=str))
+    monkeypatch.setattr(loading, "_read_text_plain", lambda text, delim: None)
+    exact = json.loads(json.dumps(outcome("s.csv", data, design), default=str))
+    assert _diff(fast, exact) == []
+
+
+def test_text_cells_against_python_str_methods():
+    # the facts of a text column found without a step per cell, against str.strip and len
+    from samesource.input.loading import text_cells
+
+    rng = np.random.default_rng(11)
+    pool = ["a", "bc", "", " a", "a ", "\ta", "a\x1c", "\x85", "é", "a\x00b", "\u2009x", "xyz"]
+    for _ in range(200):
+        cells = np.array([pool[i] for i in rng.integers(len(pool), size=int(rng.integers(0, 8)))] + [np.nan] * int(rng.integers(0, 2)),
+                         dtype=object)
+        rng.shuffle(cells)
+        facts = text_cells(cells)
+        text = [c for c in cells if isinstance(c, str)]
+        assert facts.spaced == any(c != c.strip() for c in text)
+        assert facts.missing.tolist() == [not isinstance(c, str) for c in cells]
+        if all(c.isascii() and "\x00" not in c for c in text):
+            assert facts.lengths.tolist() == [len(c) if isinstance(c, str) else 0 for c in cells]
+        else:
+            assert facts.lengths is None

@@ -375,10 +375,15 @@ def _unclosed_quote(row: int, line: int, source: str) -> DataError:
         file=source, row=row)
 
 
+# A character other than blanks, separators, quotes and byte-order marks (found at once in a
+# table, where stripping those off copied the whole text).
+_NOT_EMPTY_TEXT = re.compile(r'[^ \t\r\n\f\v,;|"\ufeff]')
+
+
 def _read_text(data: bytes, source: str, fmt: str) -> dict:
     text, encoding = _decode(data, source)
     text = text.rstrip("\x1a")  # an old end-of-file marker
-    if not text.strip(" \t\r\n\f\v,;|\"\ufeff"):
+    if _NOT_EMPTY_TEXT.search(text) is None:
         raise DataError("the file is empty (it holds only blank lines or empty fields); export "
                         "the survey data again", file=source)
     notes: list[dict] = []
@@ -655,14 +660,68 @@ def _compact(lengths: np.ndarray) -> np.ndarray:
 
 
 def _text_lengths(cells: np.ndarray, ascii_only: bool) -> np.ndarray:
+    """Each text cell's length in UTF-8 bytes (0 where missing)."""
+    if ascii_only:
+        lengths = text_cells(cells).lengths
+        if lengths is not None:
+            return lengths
     s = pd.Series(cells, dtype=object)
     lengths = s.str.len() if ascii_only else s.str.encode("utf-8").str.len()
     return lengths.fillna(0).to_numpy(dtype=np.int64)
 
 
+# What str.strip() removes (Python's whitespace): the ASCII ones as a byte table, all of them
+# next to a cell's edge in cells joined by NUL.
+_ASCII_SPACE = np.array([chr(b).isspace() for b in range(256)]) & (np.arange(256) < 128)
+_SPACE_AT_EDGE = re.compile(r"(?:^|\x00)\s|\s(?:\x00|$)")
+
+
+@dataclass(frozen=True)
+class TextCells:
+    """What a column's text cells hold, found without a Python step per cell: ``missing``
+    (NaN or None), ``spaced`` (some cell begins or ends with whitespace: str.strip() would
+    change it) and, when every cell is ASCII text without a NUL, ``lengths`` (characters per
+    cell, 0 where missing; else None)."""
+
+    missing: np.ndarray
+    spaced: bool
+    lengths: np.ndarray | None
+
+
+def text_cells(cells: np.ndarray) -> TextCells:
+    """:class:`TextCells` of an object array of text (str, NaN or None where missing; any other
+    value counts as spaced, so the caller takes the cell-by-cell way). The cells are joined by
+    NUL once: each cell's edges are the characters next to a NUL (or the ends), each cell's
+    length the distance between NULs."""
+    missing = pd.isna(cells)
+    present = cells[~missing] if missing.any() else cells
+    try:
+        joined = "\x00".join(present)
+    except TypeError:  # not all text
+        return TextCells(missing, True, None)
+    if joined.isascii():
+        arr = np.frombuffer(joined.encode("ascii"), dtype=np.uint8)
+        seps = np.flatnonzero(arr == 0)
+        if len(seps) == max(len(present) - 1, 0):  # no cell holds a NUL of its own
+            starts = np.concatenate(([0], seps + 1))
+            ends = np.concatenate((seps, [len(arr)]))
+            filled = starts < ends
+            spaced = bool(_ASCII_SPACE[arr[starts[filled]]].any() or _ASCII_SPACE[arr[ends[filled] - 1]].any())
+            lengths = np.zeros(len(cells), dtype=np.int64)
+            lengths[~missing] = (ends - starts)[:len(present)]
+            return TextCells(missing, spaced, lengths)
+    return TextCells(missing, _SPACE_AT_EDGE.search(joined) is not None, None)
+
+
+_NOT_SPACE = re.compile(rb"\S")  # a byte bytes.strip() keeps
+
+
 def _plain_body(text: str, delim: str) -> tuple[list[str], bytes] | None:
     body = text.encode("utf-8")
-    if b'"' in body or body.count(b"\r") != body.count(b"\r\n"):
+    if b'"' in body:
+        return None
+    returns = body.count(b"\r")
+    if returns and returns != body.count(b"\r\n"):
         return None
     if delim != "\t" and b"\t" in body:  # the two readers skip different spaces at a field's start
         return None
@@ -675,10 +734,12 @@ def _plain_body(text: str, delim: str) -> tuple[list[str], bytes] | None:
         names[0] = names[0].lstrip("\ufeff")
     if any(not n for n in names) or len(set(names)) != len(names) or len(names) < 2:
         return None
-    rest = body[cut + 1:].rstrip(b"\r\n")  # blank lines after the last row are no rows
-    if not rest.strip():
+    end = len(body)  # blank lines after the last row are no rows (one copy of the rows, not two)
+    while end > cut + 1 and body[end - 1] in b"\r\n":
+        end -= 1
+    if _NOT_SPACE.search(body, cut + 1, end) is None:
         return None
-    return names, rest
+    return names, body[cut + 1:end]
 
 
 def _read_plain(body: bytes, delim: str, width: int, columns: list[int] | None = None,
@@ -835,6 +896,11 @@ def _chunk_values(s: pd.Series) -> np.ndarray:
 
 def _plain_cells(raw: np.ndarray) -> np.ndarray:
     """Each field's cell as the csv reader gives it (leading spaces dropped), blank ones NaN."""
+    facts = text_cells(raw)
+    if not facts.spaced:  # nothing to strip (ids, most often): only empty fields become NaN
+        cells = raw.copy()
+        cells[facts.missing | np.equal(raw, "")] = np.nan
+        return cells
     codes, uniques = pd.factorize(raw)
     kept = pd.Series(uniques, dtype=object).str.lstrip(" ")
     kept = kept.where(kept.str.strip() != "", np.nan)

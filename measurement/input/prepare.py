@@ -23,6 +23,7 @@ from samesource.input.design import Design, answer_key, check_columns, did_you_m
 from samesource.input.loading import (  # missing words: read as blank, with a warning
     MISSING_WORDS,
     LoadedTable,
+    text_cells,
 )
 from samesource.input.rows import FrameRows, ItemRows
 
@@ -353,14 +354,19 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
     if design.missing_codes:
         matrix[np.isin(matrix, np.asarray(design.missing_codes, dtype=float))] = np.nan
 
+    # Each column's answers counted and their lowest and highest found once (NaN skipped),
+    # for the range check, the items that cannot be analysed and the missing cells.
+    gaps = np.array([np.count_nonzero(np.isnan(matrix[:, j])) for j in range(len(items))], dtype=np.int64)
+    lows = np.array([np.fmin.reduce(matrix[:, j]) if gaps[j] < n else np.inf for j in range(len(items))])
+    highs = np.array([np.fmax.reduce(matrix[:, j]) if gaps[j] < n else -np.inf for j in range(len(items))])
     if design.scale_min is not None and design.scale_max is not None:
         lo, hi = float(design.scale_min), float(design.scale_max)
-        with np.errstate(invalid="ignore"):
-            outside = (matrix < lo) | (matrix > hi)
-        if outside.any():
-            cols = [j for j in range(len(items)) if outside[:, j].any()]
+        cols = [j for j in range(len(items)) if lows[j] < lo or highs[j] > hi]
+        if cols:
             j = cols[0]
-            raise _scale_error(table, items[j], matrix[:, j], outside[:, j], lo, hi,
+            with np.errstate(invalid="ignore"):
+                outside = (matrix[:, j] < lo) | (matrix[:, j] > hi)
+            raise _scale_error(table, items[j], matrix[:, j], outside, lo, hi,
                                [items[k] for k in cols[1:]])
         source = "design"
     else:
@@ -369,15 +375,14 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
         source = "data"
 
     for j, col in enumerate(items):
-        present = matrix[:, j][~np.isnan(matrix[:, j])]
-        err = item_answers_error(col, present.size, float(present.min(initial=np.inf)),
-                                 float(present.max(initial=-np.inf)), n, table.source, table.row_label)
+        err = item_answers_error(col, int(n - gaps[j]), float(lows[j]), float(highs[j]), n,
+                                 table.source, table.row_label)
         if err is not None:
             raise err
 
     reverse = [i for c in design.constructs.values() for i in c.reverse]
     if source == "data":
-        lo, hi = float(np.nanmin(matrix)), float(np.nanmax(matrix))
+        lo, hi = float(lows.min()), float(highs.max())  # every item has answers (checked above)
         rev = (f" Reverse-keyed items ({', '.join(reverse)}) were recoded with it as "
                f"{_num(lo + hi)} - x." if reverse else "")
         notes.append({"code": "scale_inferred", "message": (
@@ -388,7 +393,8 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
         j = items.index(item)
         matrix[:, j] = lo + hi - matrix[:, j]
 
-    empty_rows = np.flatnonzero(np.isnan(matrix).all(axis=1)) if items else np.array([])
+    empty_rows = (np.flatnonzero(np.isnan(matrix).all(axis=1)) if items and gaps.min() > 0
+                  else np.array([], dtype=np.intp))
     if len(empty_rows):
         rows = [int(table.row_numbers[i]) for i in empty_rows[:BadCells.ROWS_KEPT]]
         notes.append(rows_without_answers_note(table.row_label, rows, len(empty_rows)))
@@ -411,7 +417,7 @@ def prepare(table: LoadedTable, design: Design) -> PreparedData:
                                dtype="float64", copy=False)
     return PreparedData(items=items_frame, ids=ids, groups=groups, scale_min=lo, scale_max=hi,
                         scale_source=source, n_rows=n,
-                        missing_cells=int(np.isnan(matrix).sum()), warnings=notes, table=table)
+                        missing_cells=int(gaps.sum()), warnings=notes, table=table)
 
 
 def missing_words_note(words: Counter) -> dict:
@@ -527,7 +533,10 @@ def _labels(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     are one key to a hash table, but not one label)."""
     cells = s.to_numpy(dtype=object)
     if pd.api.types.infer_dtype(cells, skipna=True) in ("string", "empty"):
-        stripped = pd.Series(cells, dtype=object).str.strip().to_numpy(dtype=object, copy=True)
+        if text_cells(cells).spaced:
+            stripped = pd.Series(cells, dtype=object).str.strip().to_numpy(dtype=object, copy=True)
+        else:  # nothing to strip (ids, most often)
+            stripped = cells.copy()
         none = pd.isna(stripped) | np.equal(stripped, "")
         stripped[none] = None
         return stripped, none
