@@ -226,3 +226,28 @@ def test_missing_values_do_not_leak_or_crash():
     assert res.reasons[5][0] == "missing" and "missing" in res.reasons[6]
     assert pr["flagged"].dtype == bool
     assert res.counts["missing"] == 2
+
+
+@pytest.mark.parametrize("k", [2, 7, 60, 65, 66, 90])
+def test_longstring_equals_its_definition_by_itertools_groupby(k):
+    """Longest run of equal answers per row (Johnson 2005), against the definition written with
+    Python's itertools.groupby over each row (a gap breaks a run and counts for none): the
+    64-bit-word way (2 to 65 items) and the column loop (more) alike, with gaps, straight-liners
+    and rows without answers."""
+    from itertools import groupby
+
+    from samesource.input.screening import _longstring
+
+    rng = np.random.default_rng(k)
+    x = rng.integers(1, 4, size=(400, k)).astype(float)
+    x[rng.random(x.shape) < 0.1] = np.nan
+    x[:5] = 2.0
+    x[5] = np.nan
+    x[6, : k // 2] = 1.0
+    x[7, 1::2] = np.nan
+
+    def by_definition(row):
+        runs = [len(list(g)) for v, g in groupby(row.tolist()) if v == v]  # NaN != NaN
+        return max(runs, default=0)
+
+    assert _longstring(x).tolist() == [by_definition(r) for r in x]

@@ -194,6 +194,8 @@ def _longstring(x: np.ndarray) -> np.ndarray:
     """
     x = np.asarray(x, dtype=float)
     n, k = x.shape
+    if 2 <= k <= 65:
+        return _longstring_by_bits(x)
     best = np.zeros(n, dtype=int)
     run = np.zeros(n, dtype=int)
     for j in range(k):
@@ -202,6 +204,29 @@ def _longstring(x: np.ndarray) -> np.ndarray:
         run = np.where(answered, np.where(same, run + 1, 1), 0)
         best = np.maximum(best, run)
     return best
+
+
+def _longstring_by_bits(x: np.ndarray) -> np.ndarray:
+    """:func:`_longstring` of rows of 2 to 65 answers: whether each answer equals the one before
+    (NaN equals nothing, so a gap breaks a run) as the bits of one 64-bit word per row; a run
+    of r equal answers is r - 1 consecutive set bits, and ``w & (w << 1)`` shortens every run of
+    set bits by one, so the longest run is how many such steps leave the word non-zero (each
+    step on the rows still non-zero only)."""
+    n, k = x.shape
+    same = np.zeros((n, 64), dtype=bool)
+    np.equal(x[:, 1:], x[:, :-1], out=same[:, :k - 1])
+    words = np.packbits(same, axis=1).view(">u8").ravel().astype(np.uint64)  # answer 2 = top bit
+    steps = np.zeros(n, dtype=int)
+    live = np.flatnonzero(words)
+    w = words[live]
+    step, one = 0, np.uint64(1)
+    while w.size:
+        step += 1
+        steps[live] = step
+        w &= w << one
+        keep = w != 0
+        live, w = live[keep], w[keep]
+    return np.where((x == x).any(axis=1), steps + 1, 0)
 
 
 def _intra_individual_variability(x: np.ndarray) -> np.ndarray:
@@ -295,6 +320,8 @@ class _Answers:
         self.raw_idx = None if order is None else np.array([pos[c] for c in order], dtype=np.intp)
         self.rev = np.array([i for i, c in enumerate(order or []) if c in reversed_items], dtype=np.intp)
         self.lo_hi = lo_hi
+        # the questionnaire's order is the screened columns' own: the answers as given are X
+        self.as_screened = self.raw_idx is not None and np.array_equal(self.raw_idx, np.arange(self.k))
 
     def _blocks(self):
         cols = None if self.read == list(self.rows.names) else self.read
@@ -309,8 +336,12 @@ class _Answers:
             X = np.ascontiguousarray(B[:, :self.k])
             if self.raw_frame is not None:
                 raw = np.ascontiguousarray(self.raw_frame.iloc[s:s + len(B)].to_numpy(dtype=float))
-            elif self.raw_idx is None:
+            elif self.raw_idx is None or (self.as_screened and not self.rev.size):
                 raw = X
+            elif self.raw_idx.size and self.raw_idx.max() < self.k:  # from the C-order copy: no second copy
+                raw = X[:, self.raw_idx]
+                if self.rev.size:
+                    raw[:, self.rev] = self.lo_hi - raw[:, self.rev]
             else:
                 raw = np.ascontiguousarray(B[:, self.raw_idx])  # a copy: undone in place
                 if self.rev.size:
