@@ -251,3 +251,24 @@ def test_longstring_equals_its_definition_by_itertools_groupby(k):
         return max(runs, default=0)
 
     assert _longstring(x).tolist() == [by_definition(r) for r in x]
+
+
+@pytest.mark.parametrize("alpha", [0.001, 0.05, 1e-12])
+def test_the_mahalanobis_flag_is_scipy_p_value_below_alpha(alpha):
+    """The flag decides p < alpha from the critical value of each row's degrees of freedom,
+    computing p itself only near it: against scipy.stats.chi2.sf for every row, including
+    distances placed on the critical values themselves and rows without answers."""
+    from samesource.input.screening import _p_below
+
+    rng = np.random.default_rng(1)
+    df = rng.integers(0, 40, size=5000)
+    d2 = rng.chisquare(np.maximum(df, 1)) * rng.choice([1.0, 3.0], size=df.size)
+    d2[df == 0] = np.nan
+    on = rng.random(df.size) < 0.2
+    d2[on & (df > 0)] = stats.chi2.isf(alpha, df[on & (df > 0)])
+    d2[:3] = np.nextafter(stats.chi2.isf(alpha, 5.0), [0, np.inf, np.inf][:3])
+    df[:3] = 5
+    with np.errstate(invalid="ignore"):
+        p = stats.chi2.sf(d2, df)
+    want = np.where(np.isnan(p), False, p < alpha)
+    assert _p_below(d2, df, alpha).tolist() == want.tolist()

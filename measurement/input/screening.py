@@ -161,6 +161,31 @@ def _chi2_sf(d2: np.ndarray, df: np.ndarray) -> np.ndarray:
     return out
 
 
+# Rows whose d2 lies within this share of the critical value get their p-value itself.
+_NEAR_CRITICAL = 1e-9
+
+
+def _p_below(d2: np.ndarray, df: np.ndarray, alpha: float) -> np.ndarray:
+    """Whether each row's chi-square p-value (:func:`_chi2_sf`) is below ``alpha`` (False where
+    it is NaN), without the p-value of every row: the p-value falls as d2 rises, so d2 clearly
+    above the critical value of its degrees of freedom (chi2.isf(alpha, df), one per count of
+    answered items) is below, clearly under it is not, and only a d2 within a billionth of the
+    critical value has its p-value computed and compared."""
+    df = np.asarray(df, dtype=np.int64)
+    top = int(df.max(initial=0))
+    with np.errstate(invalid="ignore"):
+        critical = np.full(top + 1, np.inf)
+        if top >= 1:
+            critical[1:] = stats.chi2.isf(alpha, np.arange(1, top + 1, dtype=float))
+        c = critical[df]
+        above = d2 > c * (1 + _NEAR_CRITICAL)
+        near = ~np.isnan(d2) & ~above & ~(d2 < c * (1 - _NEAR_CRITICAL))
+    if near.any():
+        p = _chi2_sf(d2[near], df[near])
+        above[near] = np.where(np.isnan(p), False, p < alpha)
+    return above
+
+
 def _count_dtype(most: int) -> np.dtype:
     return np.dtype(np.uint8 if most <= 255 else np.uint16 if most <= 65_535 else np.uint32)
 
@@ -631,8 +656,7 @@ def screen_respondents(
         if ls_threshold is not None:
             flags[s:e] |= (ls[s:e] >= ls_threshold) * bit["longstring"]
         if rules.mahalanobis_alpha is not None:
-            p = _chi2_sf(d2[s:e], answered[s:e])
-            flags[s:e] |= np.where(np.isnan(p), False, p < rules.mahalanobis_alpha) * bit["mahalanobis"]
+            flags[s:e] |= _p_below(d2[s:e], answered[s:e], rules.mahalanobis_alpha) * bit["mahalanobis"]
         if rules.max_share_missing is not None:
             share = 1.0 - answered[s:e].astype(np.int64) / k
             flags[s:e] |= (share > rules.max_share_missing) * bit["missing"]
