@@ -260,6 +260,10 @@ def test_estimates_and_ses_are_equal_on_frame_rows_and_coded_rows(missing):
     means = pd.concat([df[list(design.constructs[c].items)].mean(axis=1) for c in est.score_names], axis=1).dropna()
     np.testing.assert_allclose(scov, np.cov(means.to_numpy(), rowvar=False, bias=True), rtol=1e-12)
     assert n_s == len(means) == len(srows) and isinstance(srows, ScoreRows)
+    # the scores themselves: pandas' row means bit for bit, on complete blocks (the sum over the
+    # count) and on blocks with gaps (nanmean) alike
+    got = np.vstack([S for _, S in srows.blocks(size=97)])
+    np.testing.assert_array_equal(got, means.to_numpy())
 
 
 def test_available_case_covariance_equals_numpy_masked_cov():

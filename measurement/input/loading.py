@@ -639,11 +639,11 @@ def _canonical_lengths(values: np.ndarray) -> np.ndarray | None:
     elif v.dtype.kind == "i":
         if v.size and v.min() == np.iinfo(v.dtype).min:
             return None
-        ints, blank = v.astype(np.int64), None
+        ints, blank = v, None  # in their own (often one-byte) type: |v| fits, as the lowest value is not there
     else:
         return None
     mag = np.abs(ints)
-    digits = np.ones(len(ints), dtype=np.int64) + (ints < 0)
+    digits = (ints < 0).astype(np.uint8) + np.uint8(1)  # at most 20 characters
     top = int(mag.max()) if len(mag) else 0
     for p in _POW10[1:]:  # one comparison per digit the largest value has beyond the first
         if p > top:
