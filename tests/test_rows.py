@@ -54,3 +54,38 @@ def test_only_whole_numbers_on_a_short_scale_are_coded():
     assert codable(np.full((3, 2), np.nan), 1, 5)  # no answer at all: nothing that cannot be coded
     assert not codable(np.array([[np.inf, 1.0]]), 1, 5) and not codable(np.array([[-np.inf]]), 1, 5)
     assert not codable(np.array([[0.0, 2.0]]), 1, 5)  # below the scale
+
+
+def test_map_in_threads_keeps_the_order_raises_the_error_and_holds_few_items():
+    # results in the items' order whatever thread finished first; an error in a worker is
+    # raised to the caller; the items are drawn a few ahead, not all at once
+    import threading
+    import time
+
+    from samesource.input.rows import map_in_threads
+
+    def slow_first(i):
+        time.sleep(0.02 if i % 2 == 0 else 0.0)
+        return i, threading.current_thread().name
+
+    got = list(map_in_threads(slow_first, range(12), threads=2))
+    assert [i for i, _ in got] == list(range(12))
+    assert list(map_in_threads(lambda i: i * i, range(5), threads=1)) == [0, 1, 4, 9, 16]
+
+    def fails(i):
+        if i == 3:
+            raise ValueError("block 3")
+        return i
+
+    with pytest.raises(ValueError, match="block 3"):
+        list(map_in_threads(fails, range(8), threads=2))
+    drawn = []
+
+    def items():
+        for i in range(100):
+            drawn.append(i)
+            yield i
+
+    it = map_in_threads(lambda i: i, items(), threads=2)
+    assert next(it) == 0 and len(drawn) <= 4
+    it.close()

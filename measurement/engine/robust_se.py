@@ -30,7 +30,7 @@ block of rows at a time too.
 from __future__ import annotations
 
 import math
-import os
+import threading
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 
@@ -47,7 +47,7 @@ from samesource.engine.fitting import (  # the engine's own helpers
     delta_method,
 )
 from samesource.engine.patterns import row_patterns, rows_by_pattern
-from samesource.input.rows import FrameRows, ItemRows
+from samesource.input.rows import FrameRows, ItemRows, map_in_threads
 
 
 @dataclass(frozen=True)
@@ -106,15 +106,6 @@ def pair_products(D: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
 
 # Rows per block of pair products (at 25 columns, 325 products: about 40 MB a block).
 PAIR_BLOCK_ROWS = 16_384
-# Partial sums of the pair products: block i goes to partial sum i % PAIR_PARTS, and the parts
-# are added in order at the end, so the sums are the same bit for bit whether one thread or
-# PAIR_PARTS threads form them.
-PAIR_PARTS = 2
-# Threads forming the pair products by default (at most the cores this process may use); the
-# sums are the same bit for bit. On the quiet two-core machine (2026-12-03, 1,000,000 x 25) two
-# threads took 2.9 s of wall time against 4.9 s with one (CPU 5.5 s against 4.9 s); on a loaded
-# machine (200,000 x 25) they were about even: 6.5 / 9.3 s against 7.8 / 8.8 s.
-PAIR_THREADS = 2
 
 
 def as_rows(X: np.ndarray | ItemRows, names: Sequence[str]) -> ItemRows:
@@ -133,8 +124,9 @@ def pair_moments(rows: ItemRows | np.ndarray, names: Sequence[str] | None = None
     (``names``: the columns to use, default all) or an array whose columns ``names`` names.
     Two passes over the rows, a block at a time: the column means, then the pair products
     of the deviations. Raises ``ValueError`` when a cell is missing (FIML's scores need the
-    rows). ``threads``: how many threads form the pair products (default :data:`PAIR_THREADS`,
-    at most :data:`PAIR_PARTS` and the cores this process may use); the sums do not depend on it.
+    rows). ``threads``: how many threads form the pair products (default
+    :func:`~samesource.input.rows.block_threads`); the sums do not depend on it (each block's
+    are added in the blocks' order).
 
     Whole-number answers (survey items) take the exact way (:func:`_whole_number_sums`): the
     sums of products of their integer deviations from whole-number shifts, in single precision
@@ -162,14 +154,12 @@ def pair_moments(rows: ItemRows | np.ndarray, names: Sequence[str] | None = None
     if n == 0:
         raise ValueError("pair moments need at least one row")
     mean = total / n
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1
-    threads = min(PAIR_PARTS, cores, PAIR_THREADS if threads is None else threads)
     shift = np.rint(mean)
     block = _exact_block_rows(lo - shift, hi - shift) if whole else 0
     if block:
-        sums, cross = _whole_number_sums(rows, cols, shift, mean - shift, min(n, block), threads)
+        sums, cross = _whole_number_sums(rows, cols, n, shift, mean - shift, min(n, block), threads)
     else:
-        sums, cross = _pair_sums(rows, cols, mean, min(n, PAIR_BLOCK_ROWS), threads)
+        sums, cross = _pair_sums(rows, cols, n, mean, min(n, PAIR_BLOCK_ROWS), threads)
     return PairMoments(names=tuple(cols), n=n, mean=mean, sums=sums, cross=cross)
 
 
@@ -187,33 +177,26 @@ def _exact_block_rows(low: np.ndarray, high: np.ndarray) -> int:
     return min(rows, PAIR_BLOCK_ROWS) if rows >= 1024 else 0
 
 
-def _pair_sums(rows: ItemRows, cols: list[str], mean: np.ndarray, block: int, threads: int
+def _pair_sums(rows: ItemRows, cols: list[str], n: int, mean: np.ndarray, block: int, threads: int | None
                ) -> tuple[np.ndarray, np.ndarray]:
     """sum_i v_i and sum_i v_i v_i' of the pair products v of the rows' deviations from
-    ``mean``, a block of ``block`` rows at a time."""
-    p = len(cols)
-    q = p * (p + 1) // 2
-    # each part its sums and its own buffer for a block's pair products (42 MB at 25 columns,
-    # reused: formed afresh per block it was most of the pass's system time); a part is only
-    # ever added to by one thread
-    parts = [(np.zeros(q), np.zeros((q, q)), np.empty((block, q))) for _ in range(PAIR_PARTS)]
+    ``mean`` over the ``n`` rows, a block of ``block`` rows at a time."""
+    q = len(cols) * (len(cols) + 1) // 2
+    buffers = _Buffers((block, q), np.float64)
 
-    def add(part: tuple[np.ndarray, np.ndarray, np.ndarray], X: np.ndarray) -> None:
-        V = pair_products(X - mean, out=part[2][:len(X)])
-        part[0][:] += V.sum(axis=0)
-        part[1][:] += V.T @ V  # one symmetric rank-k update (numpy hands A'A to syrk)
+    def one(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        V = pair_products(X - mean, out=buffers.get()[:len(X)])
+        return V.sum(axis=0), V.T @ V  # one symmetric rank-k update (numpy hands A'A to syrk)
 
-    _sum_parts(rows, cols, block, parts, add, threads)
-    sums = parts[0][0].copy()
-    cross = parts[0][1].copy()
-    for s, c, _ in parts[1:]:
+    sums, cross = np.zeros(q), np.zeros((q, q))
+    for s, c in _over_blocks(rows, cols, n, block, one, threads):
         sums += s
         cross += c
     return sums, cross
 
 
-def _whole_number_sums(rows: ItemRows, cols: list[str], shift: np.ndarray, offset: np.ndarray,
-                       block: int, threads: int) -> tuple[np.ndarray, np.ndarray]:
+def _whole_number_sums(rows: ItemRows, cols: list[str], n: int, shift: np.ndarray, offset: np.ndarray,
+                       block: int, threads: int | None) -> tuple[np.ndarray, np.ndarray]:
     """:func:`_pair_sums` of whole-number rows, exactly: with d = x - ``shift`` (integers) and
     w = (1, d, the pair products of d), G = sum_i w_i w_i' holds every sum of products of up
     to four deviations, formed in single precision a block of ``block`` rows at a time (each
@@ -224,19 +207,16 @@ def _whole_number_sums(rows: ItemRows, cols: list[str], shift: np.ndarray, offse
     p = len(cols)
     q = p * (p + 1) // 2
     m = 1 + p + q
-    parts = [(np.zeros((m, m)), np.empty((block, m), dtype=np.float32)) for _ in range(PAIR_PARTS)]
-    for _, buf in parts:
-        buf[:, 0] = 1.0
+    buffers = _Buffers((block, m), np.float32, first=1.0)
 
-    def add(part: tuple[np.ndarray, np.ndarray], X: np.ndarray) -> None:
-        W = part[1][:len(X)]
+    def one(X: np.ndarray) -> np.ndarray:
+        W = buffers.get()[:len(X)]
         np.subtract(X, shift, out=W[:, 1:1 + p], casting="same_kind")
         pair_products(W[:, 1:1 + p], out=W[:, 1 + p:])
-        part[0][:] += W.T @ W
+        return W.T @ W
 
-    _sum_parts(rows, cols, block, parts, add, threads)
-    G = parts[0][0].copy()
-    for g, _ in parts[1:]:
+    G = np.zeros((m, m))
+    for g in _over_blocks(rows, cols, n, block, one, threads):
         G += g
     a, b = np.triu_indices(p)
     T = np.zeros((q, m))
@@ -247,57 +227,33 @@ def _whole_number_sums(rows: ItemRows, cols: list[str], shift: np.ndarray, offse
     return T @ G[:, 0], T @ G @ T.T
 
 
-def _sum_parts(rows: ItemRows, cols: list[str], block: int, parts: list, add, threads: int) -> None:
-    """``add(parts[i % PAIR_PARTS], block_i)`` over the rows' blocks of ``block`` rows, in
-    ``threads`` threads."""
+class _Buffers:
+    """One work array per thread, reused from block to block: formed afresh per block, a 42 MB
+    array of pair products was most of the pass's system time. ``first``: the value of every
+    row's first cell, set once."""
+
+    def __init__(self, shape: tuple[int, int], dtype, first: float | None = None) -> None:
+        self.shape, self.dtype, self.first, self.local = shape, dtype, first, threading.local()
+
+    def get(self) -> np.ndarray:
+        buf = getattr(self.local, "buf", None)
+        if buf is None:
+            buf = self.local.buf = np.empty(self.shape, dtype=self.dtype)
+            if self.first is not None:
+                buf[:, 0] = self.first
+        return buf
+
+
+def _over_blocks(rows: ItemRows, cols: list[str], n: int, block: int, one, threads: int | None) -> Iterator:
+    """``one(X)`` of each block of ``block`` rows (of ``n``; one block is formed in this thread),
+    in the blocks' order, worked out in threads
+    (:func:`~samesource.input.rows.map_in_threads`)."""
     blocks = (X for _, X in rows.blocks(cols, size=block))
     # One BLAS thread per thread, as in the fits: on two busy cores OpenBLAS's own second thread
     # made this product 4 to 16 times slower (measured), not faster. Our own threads instead
     # split the blocks (numpy releases the GIL in the products).
     with _single_threaded_blas():
-        if threads <= 1 or len(rows) <= block:
-            for i, X in enumerate(blocks):
-                add(parts[i % PAIR_PARTS], X)
-        else:
-            _in_threads(blocks, parts, add, min(threads, PAIR_PARTS))
-
-
-def _in_threads(blocks, parts, add, threads: int) -> None:
-    """``add(parts[i % len(parts)], block_i)`` for every block, ``threads`` threads each taking
-    its own parts (so each part sums its blocks in order, as one thread would)."""
-    import queue
-    import threading
-
-    queues: list[queue.Queue] = [queue.Queue(maxsize=2) for _ in range(threads)]
-    errors: list[BaseException] = []
-
-    def work(k: int) -> None:
-        while True:
-            item = queues[k].get()
-            if item is None:
-                return
-            i, X = item
-            if not errors:
-                try:
-                    add(parts[i % len(parts)], X)
-                except BaseException as exc:  # re-raised in the calling thread
-                    errors.append(exc)
-
-    workers = [threading.Thread(target=work, args=(k,), daemon=True) for k in range(threads)]
-    for w in workers:
-        w.start()
-    try:
-        for i, X in enumerate(blocks):
-            if errors:
-                break
-            queues[(i % len(parts)) % threads].put((i, X))
-    finally:
-        for q in queues:
-            q.put(None)
-        for w in workers:
-            w.join()
-    if errors:
-        raise errors[0]
+        yield from map_in_threads(one, blocks, 1 if n <= block else threads)
 
 
 def _meat_from_pairs(fit: FitResult, pm: PairMoments) -> np.ndarray | None:

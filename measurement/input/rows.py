@@ -13,8 +13,12 @@ user's row number in the file), which is what reports and messages name.
 
 from __future__ import annotations
 
+import os
 from abc import ABC, abstractmethod
-from collections.abc import Iterator, Sequence
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from typing import TypeVar
 
 import numpy as np
 import pandas as pd
@@ -157,6 +161,47 @@ class CodedRows(ItemRows):
         return CodedRows(self.codes, self.names, self._labels, self.low, keep=full)
 
 
+# Threads a pass over blocks of rows runs in (at most the cores this process may use). numpy
+# releases the interpreter lock in its array work, so two threads take two cores. On the quiet
+# two-core machine (2026-12-03) two threads took the robust SEs' pair products at 1,000,000 x 25
+# from 4.9 to 2.9 s of wall time; on a loaded machine (200,000 x 25) they were about even.
+BLOCK_THREADS = 2
+
+_T = TypeVar("_T")
+_R = TypeVar("_R")
+
+
+def block_threads(threads: int | None = None) -> int:
+    """How many threads a pass over blocks uses: ``threads`` (default :data:`BLOCK_THREADS`),
+    at most the cores this process may use."""
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1
+    return max(1, min(cores, BLOCK_THREADS if threads is None else threads))
+
+
+def map_in_threads(fn: Callable[[_T], _R], items: Iterable[_T], threads: int | None = None) -> Iterator[_R]:
+    """``fn`` of each item, in the items' order, worked out in :func:`block_threads` threads
+    (a few items ahead, so a pass holds a few blocks at a time, not all). ``fn`` must touch only
+    its own item's part of any shared array: its results come back in order for the caller to
+    add up, so sums are the same bit for bit however many threads there are. An error in ``fn``
+    is raised here."""
+    threads = block_threads(threads)
+    if threads <= 1:
+        yield from map(fn, items)
+        return
+    with ThreadPoolExecutor(threads, thread_name_prefix="samesource-block") as pool:
+        pending: deque = deque()
+        try:
+            for item in items:
+                pending.append(pool.submit(fn, item))
+                if len(pending) > threads:
+                    yield pending.popleft().result()
+            while pending:
+                yield pending.popleft().result()
+        finally:
+            for f in pending:
+                f.cancel()
+
+
 def codable(X: np.ndarray, low: float, high: float) -> bool:
     """Whether answers (float, NaN for none) can be kept as codes: whole numbers, a scale of
     at most 255 points starting at a whole number."""
@@ -174,4 +219,5 @@ def encode_block(X: np.ndarray, low: float) -> np.ndarray:
     return codes
 
 
-__all__ = ["BLOCK_ROWS", "MISSING_CODE", "CodedRows", "FrameRows", "ItemRows", "codable", "encode_block"]
+__all__ = ["BLOCK_ROWS", "BLOCK_THREADS", "MISSING_CODE", "CodedRows", "FrameRows", "ItemRows", "block_threads",
+           "codable", "encode_block", "map_in_threads"]

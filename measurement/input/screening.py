@@ -7,6 +7,7 @@ The rules are common practice, not laws; the result carries them in words for th
 from __future__ import annotations
 
 import math
+import threading
 from collections.abc import Collection, Iterator, Sequence
 from dataclasses import dataclass, field
 
@@ -18,7 +19,7 @@ from samesource.engine.chunked_moments import MomentSums
 from samesource.engine.fitting import _single_threaded_blas
 from samesource.engine.patterns import packed_patterns
 from samesource.errors import DesignError
-from samesource.input.rows import BLOCK_ROWS, FrameRows, ItemRows
+from samesource.input.rows import BLOCK_ROWS, FrameRows, ItemRows, map_in_threads
 
 RULE_NAMES = ("longstring", "irv", "mahalanobis", "missing", "out_of_range")
 ROW_BLOCK = BLOCK_ROWS  # rows read at a time (ItemRows.blocks)
@@ -348,30 +349,31 @@ class _Answers:
         # the questionnaire's order is the screened columns' own: the answers as given are X
         self.as_screened = self.raw_idx is not None and np.array_equal(self.raw_idx, np.arange(self.k))
 
-    def _blocks(self):
+    def blocks(self) -> Iterator[tuple[int, np.ndarray]]:
+        """The rows as read (position, block): :meth:`items` and :meth:`both` of a block give
+        the arrays a pass measures (in the thread that measures them)."""
         cols = None if self.read == list(self.rows.names) else self.read
         return self.rows.blocks(cols, size=ROW_BLOCK)
 
-    def items(self) -> Iterator[tuple[int, np.ndarray]]:
-        for s, B in self._blocks():
-            yield s, np.ascontiguousarray(B[:, :self.k])
+    def items(self, s: int, B: np.ndarray) -> np.ndarray:
+        """The screened items of the block read at ``s`` (C order)."""
+        return np.ascontiguousarray(B[:, :self.k])
 
-    def both(self) -> Iterator[tuple[int, np.ndarray, np.ndarray]]:
-        for s, B in self._blocks():
-            X = np.ascontiguousarray(B[:, :self.k])
-            if self.raw_frame is not None:
-                raw = np.ascontiguousarray(self.raw_frame.iloc[s:s + len(B)].to_numpy(dtype=float))
-            elif self.raw_idx is None or (self.as_screened and not self.rev.size):
-                raw = X
-            elif self.raw_idx.size and self.raw_idx.max() < self.k:  # from the C-order copy: no second copy
-                raw = X[:, self.raw_idx]
-                if self.rev.size:
-                    raw[:, self.rev] = self.lo_hi - raw[:, self.rev]
-            else:
-                raw = np.ascontiguousarray(B[:, self.raw_idx])  # a copy: undone in place
-                if self.rev.size:
-                    raw[:, self.rev] = self.lo_hi - raw[:, self.rev]
-            yield s, X, raw
+    def both(self, s: int, B: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The screened items and the answers as given of the block read at ``s``."""
+        X = self.items(s, B)
+        if self.raw_frame is not None:
+            raw = np.ascontiguousarray(self.raw_frame.iloc[s:s + len(B)].to_numpy(dtype=float))
+        elif self.raw_idx is None or (self.as_screened and not self.rev.size):
+            raw = X
+        else:
+            # from the C-order copy where the questionnaire's items are among the screened (one
+            # copy, not two); a copy either way, as the keying is undone in place
+            raw = X[:, self.raw_idx] if self.raw_idx.size and self.raw_idx.max() < self.k \
+                else np.ascontiguousarray(B[:, self.raw_idx])
+            if self.rev.size:
+                raw[:, self.rev] = self.lo_hi - raw[:, self.rev]
+        return X, raw
 
 
 def _mahalanobis_distances(answers: _Answers, n: int, sums: MomentSums, keys: np.ndarray | None,
@@ -406,33 +408,43 @@ def _mahalanobis_distances(answers: _Answers, n: int, sums: MomentSums, keys: np
         patterns, inverse = packed_patterns(keys, answers.k)
         counts = np.bincount(inverse, minlength=len(patterns))
     whiteners = _Whiteners(cov, patterns, counts, WHITENERS_BYTES)
-    singular_rows = 0
-    with _single_threaded_blas():
-        for s, X in answers.items():
-            if inverse is None:
-                groups = [(0, slice(None))]
-            else:
-                ids = inverse[s:s + len(X)]
-                order = np.argsort(ids, kind="stable")
-                cuts = np.flatnonzero(ids[order][1:] != ids[order][:-1]) + 1
-                groups = [(int(ids[g[0]]), g) for g in np.split(order, cuts)]
-            for j, rows in groups:
-                pat = patterns[j]
-                if not pat.any():
-                    continue
+    lock = threading.Lock()  # the whiteners kept are shared by the threads
+
+    def measure(block: tuple[int, np.ndarray]) -> int:
+        """The block's distances into d2; returns its rows whose covariance cannot be inverted."""
+        s, B = block
+        X = answers.items(s, B)
+        if inverse is None:
+            groups = [(0, slice(None))]
+        else:
+            ids = inverse[s:s + len(X)]
+            order = np.argsort(ids, kind="stable")
+            cuts = np.flatnonzero(ids[order][1:] != ids[order][:-1]) + 1
+            groups = [(int(ids[g[0]]), g) for g in np.split(order, cuts)]
+        singular = 0
+        for j, rows in groups:
+            pat = patterns[j]
+            if not pat.any():
+                continue
+            with lock:
                 white = whiteners.get(j)
-                m = len(X) if inverse is None else rows.size
-                if white is None:
-                    singular_rows += m
+            m = len(X) if inverse is None else rows.size
+            if white is None:
+                singular += m
+            else:
+                if inverse is None:
+                    dev = X - mean  # every row complete: the block itself, not a copy first
                 else:
-                    if inverse is None:
-                        dev = X - mean  # every row complete: the block itself, not a copy first
-                    else:
-                        cols = np.flatnonzero(pat)
-                        dev = X[np.ix_(rows, cols)] - mean[cols]
-                    z = dev @ white
-                    d2[s:s + len(X)][rows] = np.einsum("ij,ij->i", z, z)
+                    cols = np.flatnonzero(pat)
+                    dev = X[np.ix_(rows, cols)] - mean[cols]
+                z = dev @ white
+                d2[s:s + len(X)][rows] = np.einsum("ij,ij->i", z, z)
+            with lock:
                 whiteners.done(j, m)
+        return singular
+
+    with _single_threaded_blas():
+        singular_rows = sum(map_in_threads(measure, answers.blocks()))
     if singular_rows:
         return [f"Mahalanobis distance not computed for {singular_rows} row(s): the covariance "
                 f"of their answered items (from {sums.n} complete rows) cannot be "
@@ -619,7 +631,11 @@ def screen_respondents(
     sums = MomentSums.of(np.empty((0, k))) if moments is None else moments
 
     # First pass: the per-row measures, the complete rows' sums, the rows' patterns.
-    for s, X, raw in answers.both():
+    def measure(block: tuple[int, np.ndarray]) -> tuple[int, int, np.ndarray | None, MomentSums | None]:
+        """The block's measures into the per-row arrays; returns where it lies, its rows'
+        packed patterns (None when every row is complete) and its complete rows' sums."""
+        s, B = block
+        X, raw = answers.both(s, B)
         e = s + len(X)
         ls[s:e] = _longstring(raw)
         irv[s:e] = _intra_individual_variability(raw)
@@ -631,13 +647,19 @@ def screen_respondents(
         if scale_min is not None:
             n_oor[s:e] = (obs & ((X < scale_min) | (X > scale_max))).sum(axis=1)
         whole = m == k
-        if keys is None and not whole.all():
-            keys = np.empty((n, every.size), dtype=np.uint8)
-            keys[:s] = every
-        if keys is not None:
-            keys[s:e] = np.packbits(obs, axis=1)
-        if moments is None:
-            sums = sums.merged(MomentSums.of(X if whole.all() else X[whole]))
+        packed = None if whole.all() else np.packbits(obs, axis=1)
+        block_sums = None if moments is not None else MomentSums.of(X if packed is None else X[whole])
+        return s, e, packed, block_sums
+
+    with _single_threaded_blas():
+        for s, e, packed, block_sums in map_in_threads(measure, answers.blocks()):
+            if keys is None and packed is not None:
+                keys = np.empty((n, every.size), dtype=np.uint8)
+                keys[:s] = every
+            if keys is not None:
+                keys[s:e] = every if packed is None else packed
+            if block_sums is not None:  # added in the blocks' order: the same sums however many threads
+                sums = sums.merged(block_sums)
     notes += _mahalanobis_distances(answers, n, sums, keys, d2)
     del keys
     if not raw_given:
