@@ -10,6 +10,7 @@ docs/methods.md ("Assumption checks").
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
@@ -17,7 +18,7 @@ import pandas as pd
 from scipy import stats
 
 from samesource.input.design import Design
-from samesource.input.rows import FrameRows, ItemRows
+from samesource.input.rows import FrameRows, ItemRows, map_in_threads
 from samesource.method_checks.verdict import adjusted_tests
 
 STATUSES = ("holds", "doubtful", "fails", "untestable")
@@ -331,26 +332,41 @@ def item_distribution(rows: ItemRows | pd.DataFrame, items: list[str]) -> pd.Dat
     n = np.zeros(k)
     sums = np.zeros((4, k))
     coded = _AnswerCounts(k)
+    blocks = iter(rows.blocks(items))
+    first = next(blocks, None)
     shift = None
-    for _, X in rows.blocks(items):
+    if first is not None:
+        X = first[1]
+        answered = ~np.isnan(X)
+        count = answered.sum(axis=0)
+        shift = np.where(count > 0, np.where(answered, X, 0.0).sum(axis=0) / np.maximum(count, 1), 0.0)
+
+    def one(block: tuple[int, np.ndarray]):
+        """A block's answer counts (lowest answer, counts), or its distinct answers per item,
+        answer counts and power sums about the shift."""
+        X = block[1]
         answered = ~np.isnan(X)
         complete = bool(answered.all())
-        if shift is None:
-            count = answered.sum(axis=0)
-            shift = np.where(count > 0, np.where(answered, X, 0.0).sum(axis=0) / np.maximum(count, 1), 0.0)
-        block = _block_counts(X, answered, complete)
-        if block is not None:
-            coded.add(*block)
-            continue
-        for j in range(k):
-            seen[j] = np.union1d(seen[j], distinct_values(X[answered[:, j], j]))
+        counted = _block_counts(X, answered, complete)
+        if counted is not None:
+            return counted
+        distinct = [distinct_values(X[answered[:, j], j]) for j in range(k)]
         d = X - shift if complete else np.where(answered, X - shift, 0.0)
-        n += answered.sum(axis=0)
-        power = d.copy()
+        power, out = d.copy(), np.empty((4, k))
         for order in range(4):
-            sums[order] += power.sum(axis=0)
+            out[order] = power.sum(axis=0)
             if order < 3:
                 power *= d
+        return distinct, answered.sum(axis=0), out
+
+    for got in map_in_threads(one, itertools.chain([first] if first is not None else [], blocks)):
+        if isinstance(got[0], float):  # counted: integer counts, added in any order alike
+            coded.add(*got)
+            continue
+        distinct, answered_n, power_sums = got  # summed: added in the blocks' order
+        seen = [np.union1d(seen[j], distinct[j]) for j in range(k)]
+        n += answered_n
+        sums += power_sums
     shift = np.zeros(k) if shift is None else shift
     if coded.counts.shape[1]:
         c_n, c_sums = coded.power_sums(shift)
