@@ -380,23 +380,42 @@ def _unclosed_quote(row: int, line: int, source: str) -> DataError:
 # A character other than blanks, separators, quotes and byte-order marks (found at once in a
 # table, where stripping those off copied the whole text).
 _NOT_EMPTY_TEXT = re.compile(r'[^ \t\r\n\f\v,;|"\ufeff]')
+_NOT_EMPTY_BYTES = re.compile(rb'[^ \t\r\n\f\v,;|"]')  # the same in ASCII
 
 
-def _read_text(data: bytes, source: str, fmt: str) -> dict:
-    text, encoding = _decode(data, source)
-    text = text.rstrip("\x1a")  # an old end-of-file marker
-    if _NOT_EMPTY_TEXT.search(text) is None:
-        raise DataError("the file is empty (it holds only blank lines or empty fields); export "
-                        "the survey data again", file=source)
-    notes: list[dict] = []
+def _delimiter(text: str, fmt: str) -> str:
+    """The delimiter of a text (from its first lines, :func:`_sample_lines`)."""
     delim, _score = sniff_delimiter(text, fmt)
     if delim is None:
         # One column: split on a candidate the text does not contain.
         sample = _sample_lines(text)
         pref = _preference(fmt)
         delim = next((d for d in pref if d not in sample), pref[0])
-    try:
-        plain = _read_text_plain(text, delim)  # from the decoded text: any encoding
+    return delim
+
+
+def _read_text(data: bytes, source: str, fmt: str) -> dict:
+    tried = data.isascii()
+    if tried:  # ASCII is UTF-8 as it stands: the column-wise reader takes the bytes
+        body = data.rstrip(b"\x1a")  # (no decoded copy of the file, and no encoded one)
+        tried = _NOT_EMPTY_BYTES.search(body) is not None
+        if tried:
+            delim = _delimiter(body[:_SNIFF_CHARS + 1].decode("ascii"), fmt)
+            try:
+                plain = _read_text_plain(body, delim)
+            except (ValueError, TypeError, AttributeError, IndexError, OverflowError):
+                plain = None
+            if plain is not None:
+                return dict(plain, encoding="utf-8", delimiter=delim, warnings=[], row_names=None)
+    text, encoding = _decode(data, source)
+    text = text.rstrip("\x1a")  # an old end-of-file marker
+    if _NOT_EMPTY_TEXT.search(text) is None:
+        raise DataError("the file is empty (it holds only blank lines or empty fields); export "
+                        "the survey data again", file=source)
+    notes: list[dict] = []
+    delim = _delimiter(text, fmt)
+    try:  # from the decoded text: any encoding (an ASCII file's bytes were tried above)
+        plain = None if tried else _read_text_plain(text, delim)
     except (ValueError, TypeError, AttributeError, IndexError, OverflowError):
         plain = None  # the record-by-record reader below is exact for every file
     if plain is not None:
@@ -715,8 +734,8 @@ def text_cells(cells: np.ndarray) -> TextCells:
     return TextCells(missing, _SPACE_AT_EDGE.search(joined) is not None, None)
 
 
-def _plain_body(text: str, delim: str) -> tuple[list[str], bytes] | None:
-    body = text.encode("utf-8")
+def _plain_body(text: str | bytes, delim: str) -> tuple[list[str], bytes] | None:
+    body = text if isinstance(text, bytes) else text.encode("utf-8")
     if b'"' in body:
         return None
     returns = body.count(b"\r")
@@ -753,8 +772,9 @@ def _read_plain(body: bytes, delim: str, width: int, columns: list[int] | None =
         encoding="utf-8", chunksize=None if as_text else _PLAIN_CHUNK_ROWS)
 
 
-def _read_text_plain(text: str, delim: str) -> dict | None:
-    """The column-wise reading of a plain delimited file, or None when it is not plain.
+def _read_text_plain(text: str | bytes, delim: str) -> dict | None:
+    """The column-wise reading of a plain delimited file (its text, or its bytes when they are
+    ASCII), or None when it is not plain.
 
     Gives what the record-by-record reader gives: a column of whole numbers each written as
     the integer itself becomes numeric (the same numbers and the same text for ids and groups),
