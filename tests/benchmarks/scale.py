@@ -15,7 +15,7 @@
 Writes the block between the `scale` markers in docs/performance.md (run_all.py keeps it).
 
     python tests/benchmarks/scale.py [--rows 10000,100000,1000000] [--big-rows 10000000] [--replicates 1000]
-                                     [--skip-big] [--skip-bootstrap] [--skip-dask] [--out docs/performance.md]
+                                     [--repeat 3] [--skip-big] [--skip-bootstrap] [--skip-dask] [--out docs/performance.md]
 """
 
 from __future__ import annotations
@@ -147,6 +147,11 @@ def write_survey(n: int, folder: str) -> tuple[str, dict, list[str]]:
     return path, design, items
 
 
+def _median_run(runs: list[dict], key: str) -> dict:
+    """The run with the median ``key`` (the lower middle one of an even number)."""
+    return sorted(runs, key=lambda r: r[key])[(len(runs) - 1) // 2]
+
+
 def _big_row(rows: int, folder: str) -> str:
     """The table's row for the survey beyond memory (beyond_memory.py's file, floor and report)."""
     import beyond_memory as bm
@@ -168,6 +173,7 @@ def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--rows", default="10000,100000,1000000")
     ap.add_argument("--replicates", type=int, default=1000)
+    ap.add_argument("--repeat", type=int, default=3, help="runs of floor and report per in-memory size (medians)")
     ap.add_argument("--boot-rows", type=int, default=100_000)
     ap.add_argument("--big-rows", type=int, default=10_000_000)
     ap.add_argument("--skip-big", action="store_true", help="without the survey beyond memory")
@@ -181,6 +187,8 @@ def main() -> None:
              f"Synthetic surveys of {ITEMS} 5-point items (tests/benchmarks/workload.py), read from a CSV file. "
              "Floor: reading the same file with pandas and forming its covariance matrix, in the same run. "
              "Each measurement runs in its own process; peak memory is that process's (VmHWM). "
+             f"Up to 1,000,000 rows floor and report run alternately {args.repeat} times each and the table "
+             "gives the median run of each (the report's fastest and slowest in brackets). "
              f"The {args.big_rows:,}-row survey (if measured) is tests/benchmarks/beyond_memory.py's, with an id "
              "and a team column (200 teams), read by the report a block of lines at a time; its floor reads the "
              "file in chunks of 1,000,000 rows and merges their covariances. Every measurement runs with "
@@ -192,13 +200,21 @@ def main() -> None:
         for n in sizes:
             path, design, items = write_survey(n, tmp)
             mb = os.path.getsize(path) / 1e6
-            floor = run_child("child_floor", path, items)
-            rep = run_child("child_report", path, design, {})
+            # floor and report alternately, args.repeat times each: this machine's speed (its page
+            # faults most of all) drifts by a fifth from one minute to the next; the medians go in
+            # the table, with the spread of the report's own runs
+            floors, reps = [], []
+            for _ in range(args.repeat):
+                floors.append(run_child("child_floor", path, items))
+                reps.append(run_child("child_report", path, design, {}))
+            floor = _median_run(floors, "seconds")
+            rep = _median_run(reps, "wall")
+            spread = f" ({min(r['wall'] for r in reps):.1f}-{max(r['wall'] for r in reps):.1f})" if args.repeat > 1 else ""
             t = rep["timings"]
             stages = sorted(((k, v) for k, v in t.items() if k not in ("total", "peak_memory_mb")),
                             key=lambda kv: -kv[1])[:3]
             slow = ", ".join(f"{k} {v:.1f}" for k, v in stages)
-            lines.append(f"| {n:,} | {mb:.0f} | {rep['wall']:.1f} | {floor['seconds']:.2f} | "
+            lines.append(f"| {n:,} | {mb:.0f} | {rep['wall']:.1f}{spread} | {floor['seconds']:.2f} | "
                          f"{rep['wall'] / floor['seconds']:.1f}x | {rep['peak_mb']:.0f} | {floor['peak_mb']:.0f} | {slow} |")
             print(lines[-1], flush=True)
             os.remove(path)
