@@ -187,7 +187,7 @@ def main() -> None:
              f"Synthetic surveys of {ITEMS} 5-point items (tests/benchmarks/workload.py), read from a CSV file. "
              "Floor: reading the same file with pandas and forming its covariance matrix, in the same run. "
              "Each measurement runs in its own process; peak memory is that process's (VmHWM). "
-             f"Up to 1,000,000 rows floor and report run alternately {args.repeat} times each and the table "
+             f"For the sizes read in memory, floor and report run alternately {args.repeat} times each and the table "
              "gives the median run of each (the report's fastest and slowest in brackets). "
              f"The {args.big_rows:,}-row survey (if measured) is tests/benchmarks/beyond_memory.py's, with an id "
              "and a team column (200 teams), read by the report a block of lines at a time; its floor reads the "
