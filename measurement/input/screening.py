@@ -339,7 +339,10 @@ class _Answers:
             unknown = [c for c in names if c not in known]
             if unknown:
                 raise ValueError(f"screening: {what} names {unknown[0]!r}, not an item of these rows")
-        self.rows, self.k, self.raw_frame = rows, len(columns), raw_frame
+        self.rows, self.k = rows, len(columns)
+        # answers as given handed in as a DataFrame: its numbers once (C order), so the threads
+        # measuring blocks slice an array, not the frame
+        self.raw_values = None if raw_frame is None else np.ascontiguousarray(raw_frame.to_numpy(dtype=float))
         screened = set(columns)
         self.read = columns + [c for c in (order or []) if c not in screened]
         pos = {c: i for i, c in enumerate(self.read)}
@@ -362,8 +365,8 @@ class _Answers:
     def both(self, s: int, B: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """The screened items and the answers as given of the block read at ``s``."""
         X = self.items(s, B)
-        if self.raw_frame is not None:
-            raw = np.ascontiguousarray(self.raw_frame.iloc[s:s + len(B)].to_numpy(dtype=float))
+        if self.raw_values is not None:
+            raw = self.raw_values[s:s + len(B)]
         elif self.raw_idx is None or (self.as_screened and not self.rev.size):
             raw = X
         else:

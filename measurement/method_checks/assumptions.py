@@ -341,15 +341,16 @@ def item_distribution(rows: ItemRows | pd.DataFrame, items: list[str]) -> pd.Dat
         count = answered.sum(axis=0)
         shift = np.where(count > 0, np.where(answered, X, 0.0).sum(axis=0) / np.maximum(count, 1), 0.0)
 
-    def one(block: tuple[int, np.ndarray]):
-        """A block's answer counts (lowest answer, counts), or its distinct answers per item,
-        answer counts and power sums about the shift."""
+    def one(block: tuple[int, np.ndarray]) -> tuple[tuple[float, np.ndarray] | None, tuple | None]:
+        """(counted, summed), one of them None: a block's answer counts (lowest answer, counts)
+        where its answers are codes, else its distinct answers per item, answer counts and power
+        sums about the shift."""
         X = block[1]
         answered = ~np.isnan(X)
         complete = bool(answered.all())
         counted = _block_counts(X, answered, complete)
         if counted is not None:
-            return counted
+            return counted, None
         distinct = [distinct_values(X[answered[:, j], j]) for j in range(k)]
         d = X - shift if complete else np.where(answered, X - shift, 0.0)
         power, out = d.copy(), np.empty((4, k))
@@ -357,13 +358,13 @@ def item_distribution(rows: ItemRows | pd.DataFrame, items: list[str]) -> pd.Dat
             out[order] = power.sum(axis=0)
             if order < 3:
                 power *= d
-        return distinct, answered.sum(axis=0), out
+        return None, (distinct, answered.sum(axis=0), out)
 
-    for got in map_in_threads(one, itertools.chain([first] if first is not None else [], blocks)):
-        if isinstance(got[0], float):  # counted: integer counts, added in any order alike
-            coded.add(*got)
+    for counted, summed in map_in_threads(one, itertools.chain([first] if first is not None else [], blocks)):
+        if counted is not None:  # integer counts, added in any order alike
+            coded.add(*counted)
             continue
-        distinct, answered_n, power_sums = got  # summed: added in the blocks' order
+        distinct, answered_n, power_sums = summed  # added in the blocks' order
         seen = [np.union1d(seen[j], distinct[j]) for j in range(k)]
         n += answered_n
         sums += power_sums
